@@ -1,0 +1,59 @@
+"""The ``fecproxy`` command: a table of subcommands, each living in its own module.
+
+Every subcommand module exposes ``add_arguments(parser)`` and ``main(args) -> int``; it is
+imported only when chosen, so ``fecproxy plan`` never pays for trio or the daemon.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import sys
+
+from . import __version__
+
+#: name -> (module, one-line summary shown in --help)
+COMMANDS: dict[str, tuple[str, str]] = {
+    "run": ("fecproxy.cmd_run", "run one daemon (sender or receiver) in the foreground from a YAML config"),
+    "check": ("fecproxy.cmd_check", "validate a config file and print the effective settings"),
+    "demo": ("fecproxy.demo", "run a sender, a lossy link and a receiver on loopback and show what FEC saves"),
+    "impair": ("fecproxy.impair_cli", "relay UDP between two addresses through an emulated lossy link"),
+    "plan": ("fecproxy.plan_cli", "choose k, m and interleaving for a link from its loss and burst figures"),
+    "bench": ("fecproxy.bench", "measure codec and pipeline speed against a baseline run side by side"),
+}
+
+
+def build_parser(chosen: set[str] = frozenset()) -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="fecproxy",
+        description="Reed–Solomon forward error correction for UDP over lossy links.",
+    )
+    parser.add_argument("--version", action="version", version=f"fecproxy {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    for name, (module_name, summary) in COMMANDS.items():
+        command = sub.add_parser(
+            name,
+            help=summary,
+            description=summary,
+            formatter_class=argparse.ArgumentDefaultsHelpFormatter,
+        )
+        command.set_defaults(_module=module_name)
+        if name in chosen:
+            importlib.import_module(module_name).add_arguments(command)
+    return parser
+
+
+def _chosen(argv: list[str]) -> set[str]:
+    """The subcommand named on the command line, so only its module is imported."""
+    return {word for word in argv if word in COMMANDS}
+
+
+def main(argv: list[str] | None = None) -> int:
+    argv = sys.argv[1:] if argv is None else argv
+    parser = build_parser(_chosen(argv))
+    args = parser.parse_args(argv)
+    if not getattr(args, "_module", None):
+        parser.print_help()
+        return 2
+    module = importlib.import_module(args._module)
+    return int(module.main(args) or 0)
