@@ -1,0 +1,174 @@
+"""The fecproxy wire format: bytes <-> header fields, validated before anything is trusted.
+
+Every packet on the link starts with a 10-byte common header (all integers big-endian)::
+
+     0                   1                   2                   3
+     0 1 2 3 4 5 6 7 8 9 0 1 2 3 4 5 6 7 8 9 0 1 2 3 4 5 6 7 8 9 0 1
+    +-------+-------+---------------+-------------------------------+
+    |version| type  |     flags     |     session (32 bits) ...     |
+    +-------+-------+---------------+-------------------------------+
+    |  ... session  |      source block number (SBN, 24 bits)       |
+    +---------------+---------------+-------------------------------+
+    |  ESI (8 bits) |  ... type-specific fields and payload
+    +---------------+
+
+SBN and ESI are the FEC Payload ID of RFC 6865 §5.1 for m = 8 (24 + 8 bits).  Then:
+
+* source (type 0): flow id (8 bits), then the application datagram exactly as sent.
+* repair (type 1): the block's k (16 bits, RFC 6865 §5.1), then one repair symbol.
+* control (type 2): reserved for the receiver's loss reports; body not yet defined.
+
+Repair symbols cover, per source datagram, the RFC 6363 §4 / RFC 6865 §4 source symbol
+"flow id (1 byte) ‖ length (2 bytes) ‖ datagram ‖ zero padding" up to the block's symbol size;
+those 3 bytes and the padding never travel in source packets, so a rebuilt datagram gets back
+its exact length and flow.  k travels only in repair packets: a block closed early by its flush
+timer has fewer datagrams than configured, and that is known only once it is closed.
+The END flag on a source packet says "this is the last datagram of a block filled to its
+configured k", so a receiver with no loss can close the block without waiting for repair.
+"""
+
+from __future__ import annotations
+
+import struct
+from dataclasses import dataclass
+from enum import IntEnum
+
+VERSION = 1
+COMMON_HEADER = struct.Struct(">BBII")  # version|type, flags, session, SBN<<8 | ESI
+SOURCE_HEADER = struct.Struct(">BBIIB")  # common + flow id
+REPAIR_HEADER = struct.Struct(">BBIIH")  # common + k
+SOURCE_HEADER_BYTES = SOURCE_HEADER.size  # 11
+REPAIR_HEADER_BYTES = REPAIR_HEADER.size  # 12
+#: The flow id, the 2-byte length and zero padding of the RFC 6363 §4 source symbol.
+SYMBOL_PREFIX_BYTES = 3
+
+SBN_MODULUS = 1 << 24
+#: RFC 5510 §8.2 for GF(2^8): n ≤ 255, so ESI ≤ 254 and k ≤ 255.
+MAX_ESI = 254
+MAX_K = 255
+#: The length field is 16 bits; a datagram can't be longer than this in any block.
+MAX_DATAGRAM_LIMIT = 0xFFFF - SYMBOL_PREFIX_BYTES
+
+FLAG_END = 0x01  # source: last datagram of a block filled to its configured k
+FLAG_AUTH = 0x80  # reserved: an authentication tag follows (not in version 1)
+_KNOWN_FLAGS = FLAG_END
+
+
+class PacketType(IntEnum):
+    SOURCE = 0
+    REPAIR = 1
+    CONTROL = 2
+
+
+class PacketError(ValueError):
+    """A packet that fails validation; ``reason`` is the drop-counter label."""
+
+    reason = "malformed"
+
+
+class TruncatedPacket(PacketError):
+    pass
+
+
+class UnsupportedPacket(PacketError):
+    """A version, type or flag this build does not speak (a newer peer, or stray traffic)."""
+
+    reason = "unsupported"
+
+
+class InvalidField(PacketError):
+    pass
+
+
+class OversizePacket(PacketError):
+    reason = "oversize"
+
+
+@dataclass(frozen=True, slots=True)
+class SourcePacket:
+    session: int
+    sbn: int
+    esi: int
+    flow: int
+    end: bool
+    data: bytes
+
+
+@dataclass(frozen=True, slots=True)
+class RepairPacket:
+    session: int
+    sbn: int
+    esi: int
+    k: int
+    symbol: bytes
+
+
+@dataclass(frozen=True, slots=True)
+class ControlPacket:
+    session: int
+    body: bytes
+
+
+Packet = SourcePacket | RepairPacket | ControlPacket
+
+
+def encode_source(session: int, sbn: int, esi: int, flow: int, data: bytes, *, end: bool = False) -> bytes:
+    return SOURCE_HEADER.pack(
+        (VERSION << 4) | PacketType.SOURCE, FLAG_END if end else 0, session, (sbn << 8) | esi, flow
+    ) + data
+
+
+def encode_repair(session: int, sbn: int, esi: int, k: int, symbol: bytes) -> bytes:
+    if not (1 <= k <= MAX_K and k <= esi <= MAX_ESI):
+        raise ValueError(f"repair ESI {esi} with k={k} is outside 1 ≤ k ≤ ESI ≤ {MAX_ESI}")
+    return REPAIR_HEADER.pack((VERSION << 4) | PacketType.REPAIR, 0, session, (sbn << 8) | esi, k) + symbol
+
+
+def parse(packet: bytes, *, max_datagram: int) -> Packet:
+    """Validate every field, then return the packet; raise a PacketError naming the fault.
+
+    ``max_datagram`` bounds both source payloads and repair symbols (RFC 8681 §7.5: check every
+    header-derived size before it sizes anything), so a forged packet cannot inflate a block.
+    """
+    size = len(packet)
+    if size < COMMON_HEADER.size:
+        raise TruncatedPacket(f"packet of {size} bytes is shorter than the {COMMON_HEADER.size}-byte header")
+    version_type, flags, session, sbn_esi = COMMON_HEADER.unpack_from(packet)
+    version = version_type >> 4
+    if version != VERSION:
+        raise UnsupportedPacket(f"version {version} not supported (this build speaks {VERSION})")
+    kind = version_type & 0x0F
+    if flags & ~_KNOWN_FLAGS:
+        raise UnsupportedPacket(f"flags 0x{flags:02x} set bits this version does not define")
+    sbn = sbn_esi >> 8
+    esi = sbn_esi & 0xFF
+    if kind == PacketType.SOURCE:
+        if size < SOURCE_HEADER_BYTES:
+            raise TruncatedPacket(f"source packet of {size} bytes has no flow id")
+        if esi > MAX_ESI:
+            raise InvalidField(f"source ESI {esi} is above {MAX_ESI}")
+        payload = size - SOURCE_HEADER_BYTES
+        if payload > max_datagram:
+            raise OversizePacket(f"source datagram of {payload} bytes exceeds the limit of {max_datagram}")
+        return SourcePacket(session, sbn, esi, packet[10], bool(flags & FLAG_END), bytes(packet[SOURCE_HEADER_BYTES:]))
+    if kind == PacketType.REPAIR:
+        if flags:
+            raise InvalidField(f"repair packet with flags 0x{flags:02x}")
+        if size < REPAIR_HEADER_BYTES:
+            raise TruncatedPacket(f"repair packet of {size} bytes has no k field")
+        (k,) = struct.unpack_from(">H", packet, COMMON_HEADER.size)
+        if not 1 <= k <= MAX_K:
+            raise InvalidField(f"repair packet with k={k}; expected 1..{MAX_K}")
+        if not k <= esi <= MAX_ESI:
+            raise InvalidField(f"repair ESI {esi} with k={k}; expected k ≤ ESI ≤ {MAX_ESI}")
+        symbol_size = size - REPAIR_HEADER_BYTES
+        if symbol_size < SYMBOL_PREFIX_BYTES:
+            raise TruncatedPacket(f"repair symbol of {symbol_size} bytes is shorter than its 3-byte prefix")
+        if symbol_size > max_datagram + SYMBOL_PREFIX_BYTES:
+            raise OversizePacket(
+                f"repair symbol of {symbol_size} bytes exceeds the limit of {max_datagram + SYMBOL_PREFIX_BYTES}"
+            )
+        return RepairPacket(session, sbn, esi, k, bytes(packet[REPAIR_HEADER_BYTES:]))
+    if kind == PacketType.CONTROL:
+        return ControlPacket(session, bytes(packet[COMMON_HEADER.size:]))
+    raise UnsupportedPacket(f"packet type {kind} is not defined")
