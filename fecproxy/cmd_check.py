@@ -1,0 +1,59 @@
+"""``fecproxy check CONFIG.yaml``: validate a config and print the settings the daemon would use.
+
+Run it before ``fecproxy run`` or before sending a running daemon SIGHUP: it reads the file
+exactly as the daemon does, so a config it accepts is one the daemon accepts.
+
+Exit status: 0 = valid (effective settings on stdout, as YAML with every default filled in);
+1 = the file cannot be read; 2 = invalid config (every fault on stderr, one per line).
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+
+import yaml
+
+from .config import ConfigError, ConfigUnreadable, load_config
+
+EXIT_VALID = 0
+EXIT_UNREADABLE = 1
+EXIT_INVALID = 2
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.epilog = (
+        f"exit status: {EXIT_VALID} = valid, {EXIT_UNREADABLE} = file cannot be read, "
+        f"{EXIT_INVALID} = invalid config (every fault is listed on stderr)"
+    )
+    parser.add_argument("config", metavar="CONFIG.yaml", help="the YAML config file to validate")
+    parser.add_argument(
+        "-q",
+        "--quiet",
+        action="store_true",
+        help="print nothing when the config is valid; only the exit status tells",
+    )
+
+
+def render_effective(config, source: str) -> str:
+    """The effective settings as YAML, in the config's own key order, with a header comment."""
+    body = yaml.safe_dump(config.effective(), sort_keys=False, allow_unicode=True, default_flow_style=False)
+    return f"# {source}: valid; effective settings (defaults filled in, null = not set)\n{body}"
+
+
+def main(args: argparse.Namespace) -> int:
+    try:
+        config = load_config(args.config)
+    except ConfigUnreadable as error:
+        for message in error.messages:
+            print(message, file=sys.stderr)
+        return EXIT_UNREADABLE
+    except ConfigError as error:
+        for message in error.messages:
+            print(message, file=sys.stderr)
+        count = len(error.messages)
+        print(f"{args.config}: invalid config ({count} error{'s' if count != 1 else ''})", file=sys.stderr)
+        return EXIT_INVALID
+    if not args.quiet:
+        sys.stdout.write(render_effective(config, args.config))
+    return EXIT_VALID

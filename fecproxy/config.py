@@ -1,0 +1,883 @@
+"""The daemon's YAML configuration: read once, validated in full, then a frozen typed object.
+
+Following aioquic's configuration object, everything is checked here and nowhere else: the daemon
+receives a :class:`Config` whose values it can trust.  Validation never stops at the first fault:
+every message is collected, each naming the file, the key path, the bad value and what is
+expected, and they are raised together as one :class:`ConfigError`.
+
+The schema is a table (section -> dataclass -> one checker per key); defaults live in the
+dataclass fields, so the table, the defaults and :meth:`Config.effective` cannot drift apart.
+
+Public API: :func:`load_config`, :func:`parse_config`, :func:`parse_config_text`,
+:func:`parse_address`, :class:`Config`
+and its sections, :class:`Address`, :class:`ConfigError`.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import difflib
+import ipaddress
+import json
+import re
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass
+from enum import StrEnum
+from pathlib import Path
+
+import yaml
+
+from . import packet
+
+# --------------------------------------------------------------------------------------------
+# Limits and defaults.  Each is named, with the reason for its value.
+# --------------------------------------------------------------------------------------------
+
+#: RFC 5510 §8.2: with GF(2^8) a block has n = k + m ≤ 255 encoding symbols.
+MAX_ENCODING_SYMBOLS = packet.MAX_K
+
+#: 16 datagrams per block and 4 repair packets (25 % overhead) rides out 4 losses in 20 packets;
+#: on an i.i.d. 5 % link that leaves p·P[Binomial(19, 0.05) ≥ 4] ≈ 7e-4 residual loss per
+#: datagram (formula from the design notes), while a block of 16 stays short enough to close
+#: quickly on busy flows.  Common practice, no source, for the pair itself.
+DEFAULT_BLOCK_SIZE = 16
+DEFAULT_REPAIR = 4
+
+#: A block that is not full after 20 ms is closed and protected as it is: 20 ms bounds the added
+#: recovery delay of sparse traffic at the scale of one voice frame (RFC 3551 §4.5 makes 20 ms
+#: the default audio packetisation interval; from memory).
+DEFAULT_FLUSH_MS = 20
+#: A block held open for more than a minute protects nothing in time for any real-time use, and
+#: keeps memory busy; beyond that the setting is surely a unit mistake (seconds for ms).
+MAX_FLUSH_MS = 60_000
+
+#: A repair packet is header (12 bytes) + symbol prefix (flow 1 + length 2, RFC 6363 §4) +
+#: datagram, and should fit a 1500-byte Ethernet MTU (RFC 894) less 20 bytes of IPv4 header
+#: (RFC 791) and 8 of UDP (RFC 768), with 32 bytes kept for an authentication tag later
+#: (HMAC-SHA-256, RFC 2104/6234): 1500 − 28 − 12 − 3 − 32 = 1425, rounded down to 1400.
+DEFAULT_MAX_DATAGRAM_BYTES = 1400
+#: Room reserved for a future authentication tag (HMAC-SHA-256 output is 32 bytes).
+AUTH_TAG_RESERVE_BYTES = 32
+#: The largest UDP payload over IPv4: 65535 − 20 (IPv4 header, RFC 791) − 8 (UDP, RFC 768).
+MAX_UDP_PAYLOAD_BYTES = 65_507
+#: The largest datagram whose repair packet (with the tag reserve) still fits one UDP datagram.
+MAX_DATAGRAM_BYTES_LIMIT = (
+    MAX_UDP_PAYLOAD_BYTES - packet.REPAIR_HEADER_BYTES - packet.SYMBOL_PREFIX_BYTES - AUTH_TAG_RESERVE_BYTES
+)
+
+#: 500 ms: an incomplete block waits this long for more packets.  It must exceed the sending
+#: side's flush_ms plus the link's delay spread; 500 ms covers a geostationary hop's jitter with
+#: room to spare (common practice, no source).  Same value as decoder.DEFAULT_HOLD_TIME.
+DEFAULT_HOLD_MS = 500
+#: An hour-long hold is never useful; a minute is already generous and bounds the memory held.
+MAX_HOLD_MS = 60_000
+
+#: 256 open blocks of k=16 is 4096 datagrams in flight, ~80 ms at 50 000 datagrams/s; memory is
+#: at most 256 × (k + m) × (max_datagram + 3) bytes, ~7 MiB for k=16, m=4, 1400 bytes.
+#: Same value as decoder.DEFAULT_MAX_OPEN_BLOCKS.
+DEFAULT_MAX_OPEN_BLOCKS = 256
+#: Worst case 65536 × 255 × 1403 bytes would be ~23 GiB; this cap stops a typo, the operator
+#: still has to size memory for what they choose.
+MAX_OPEN_BLOCKS_LIMIT = 65_536
+
+#: The flow id is one byte of the RFC 6363 §4 / RFC 6865 §4 source symbol, so at most 256 flows;
+#: the default is that ceiling.
+MAX_FLOWS_LIMIT = 256
+DEFAULT_MAX_FLOWS = MAX_FLOWS_LIMIT
+#: Linux nf_conntrack forgets a UDP "stream" (traffic seen both ways) after 120 s (from memory);
+#: a proxy that keeps a flow as long as a NAT on the path would is unsurprising to operators.
+DEFAULT_FLOW_IDLE_TIMEOUT_S = 120
+#: A day: an idle flow kept longer than this is a leak, not a setting.
+MAX_FLOW_IDLE_TIMEOUT_S = 86_400
+
+#: 4 MiB of socket buffer absorbs ~30 ms of 1400-byte datagrams at 100 000/s, enough to ride out
+#: a scheduling hiccup of the event loop on a busy 2-core box.  Linux caps the request at
+#: net.core.rmem_max / wmem_max unless raised, so the daemon should log what it actually got.
+#: 0 keeps the operating system's default.
+DEFAULT_SOCKET_BUFFER_BYTES = 4 * 1024 * 1024
+#: SO_RCVBUF/SO_SNDBUF take a C int and Linux doubles the request (socket(7)), so the largest
+#: value that cannot overflow is INT_MAX // 2.
+MAX_SOCKET_BUFFER_BYTES = (2**31 - 1) // 2
+
+#: A config file is a few hundred bytes; refusing more than 1 MiB keeps a wrong path (a log, a
+#: disk image) from being read into memory and parsed.
+MAX_CONFIG_FILE_BYTES = 1024 * 1024
+
+#: difflib ratio at which an unknown key is close enough to suggest (difflib's own default).
+SUGGESTION_CUTOFF = 0.6
+#: Longest rendering of a bad value inside a message.
+MAX_SHOWN_VALUE_CHARS = 60
+
+
+# --------------------------------------------------------------------------------------------
+# Typed values
+# --------------------------------------------------------------------------------------------
+
+
+class Role(StrEnum):
+    SENDER = "sender"
+    RECEIVER = "receiver"
+
+
+class ShortBlockRepair(StrEnum):
+    """How many repair packets a block closed early by its flush timer gets."""
+
+    PROPORTIONAL = "proportional"  # ceil(m·k'/k), at least 1 when m > 0: keeps the overhead ratio
+    FULL = "full"  # always m: strongest protection for sparse traffic, at up to m/k' overhead
+
+
+class LogLevel(StrEnum):
+    DEBUG = "debug"
+    INFO = "info"
+    WARNING = "warning"
+    ERROR = "error"
+
+
+class LogFormat(StrEnum):
+    TEXT = "text"  # key=value fields on one line
+    JSON = "json"  # one JSON object per line
+
+
+class ConfigError(ValueError):
+    """An invalid configuration; ``messages`` holds every fault found, one line each."""
+
+    def __init__(self, messages):
+        self.messages = tuple(messages)
+        super().__init__("\n".join(self.messages))
+
+
+class ConfigUnreadable(ConfigError):
+    """The file could not be read at all (missing, a directory, no permission, too large)."""
+
+
+class AddressError(ValueError):
+    """A HOST:PORT string that does not parse; the text says what is wrong with it."""
+
+
+@dataclass(frozen=True)
+class Address:
+    """A socket address as written in the config; hostnames are resolved later, by the daemon."""
+
+    host: str
+    port: int
+
+    def __str__(self) -> str:
+        return f"[{self.host}]:{self.port}" if self.is_ipv6 else f"{self.host}:{self.port}"
+
+    @property
+    def is_ipv6(self) -> bool:
+        return ":" in self.host.split("%", 1)[0]
+
+    @property
+    def is_ip_literal(self) -> bool:
+        try:
+            ipaddress.ip_address(self.host)
+        except ValueError:
+            return False
+        return True
+
+    @property
+    def is_unspecified(self) -> bool:
+        """0.0.0.0 or :: — "every local address", fine to bind, meaningless to send to."""
+        return self.host in ("0.0.0.0", "::")
+
+    @property
+    def is_loopback(self) -> bool:
+        try:
+            return ipaddress.ip_address(self.host).is_loopback
+        except ValueError:
+            return self.host.lower() == "localhost"
+
+
+# RFC 1123 §2.1 host name: labels of letters, digits and inner hyphens, each 1..63 characters,
+# the whole name at most 253 (RFC 1035 §2.3.4 gives 255 octets on the wire, 253 as text).
+_LABEL = r"[A-Za-z0-9](?:[A-Za-z0-9-]{0,61}[A-Za-z0-9])?"
+_HOSTNAME = re.compile(rf"{_LABEL}(?:\.{_LABEL})*\.?")
+_MAX_HOSTNAME_CHARS = 253
+_LOOKS_NUMERIC = re.compile(r"[0-9.]+")
+_PORT = re.compile(r"[0-9]+")
+
+
+def parse_address(text: str, *, allow_port_zero: bool = False, allow_unspecified: bool = True) -> Address:
+    """Parse HOST:PORT, [IPv6]:PORT or hostname:PORT; raise AddressError saying what is wrong.
+
+    Port 0 means "any free port" and makes sense only for an address we bind.  The unspecified
+    hosts 0.0.0.0 and :: likewise make sense only to bind, never as a destination.
+    """
+    if not isinstance(text, str):
+        raise AddressError(f"is {_kind(text)}, not a HOST:PORT string")
+    text = text.strip()
+    if not text:
+        raise AddressError("is empty")
+    if text.startswith("["):
+        close = text.find("]")
+        if close < 0:
+            raise AddressError("has no closing ] after the IPv6 address")
+        host, rest = text[1:close], text[close + 1 :]
+        if not rest.startswith(":"):
+            raise AddressError("has no :PORT after ]")
+        port_text = rest[1:]
+        try:
+            host = str(ipaddress.IPv6Address(host))
+        except ValueError:
+            raise AddressError(f"has [{_clip(host)}], which is not an IPv6 address") from None
+    else:
+        host, sep, port_text = text.rpartition(":")
+        if not sep:
+            raise AddressError("has no port")
+        if ":" in host:
+            raise AddressError(f"looks like an IPv6 address without brackets; write it as [{_clip(host)}]:{_clip(port_text)}")
+        if not host:
+            raise AddressError("has no host before the colon")
+        if _LOOKS_NUMERIC.fullmatch(host):
+            try:
+                host = str(ipaddress.IPv4Address(host))
+            except ValueError:
+                raise AddressError(f"has {_clip(host)}, which is not a valid IPv4 address") from None
+        elif len(host) > _MAX_HOSTNAME_CHARS or not _HOSTNAME.fullmatch(host):
+            raise AddressError(f"has {_show(host)}, which is neither an IP address nor a valid host name")
+    if not port_text:
+        raise AddressError("has no port")
+    if not _PORT.fullmatch(port_text):
+        raise AddressError(f"has port {_show(port_text)}, which is not a number")
+    low = 0 if allow_port_zero else 1
+    port = int(port_text) if len(port_text) <= 5 else None  # never int() a huge digit string
+    if port is None or not low <= port <= 65535:
+        raise AddressError(f"has port {_clip(port_text, 10)}, out of range {low}..65535")
+    address = Address(host, port)
+    if address.is_unspecified and not allow_unspecified:
+        raise AddressError(f"has the unspecified host {host}, which cannot be a destination")
+    return address
+
+
+# --------------------------------------------------------------------------------------------
+# The configuration object
+# --------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class LinkSection:
+    bind: Address  # local address of the link side (port 0 = any free port)
+    peer: Address | None = None  # the other proxy; None on a receiver = learned from traffic
+
+
+@dataclass(frozen=True)
+class FecSection:
+    block_size: int = DEFAULT_BLOCK_SIZE  # k
+    repair: int = DEFAULT_REPAIR  # m
+    flush_ms: int = DEFAULT_FLUSH_MS
+    max_datagram_bytes: int = DEFAULT_MAX_DATAGRAM_BYTES
+    short_block_repair: ShortBlockRepair = ShortBlockRepair.PROPORTIONAL
+    allow_repair_above_source: bool = False
+
+    @property
+    def flush_seconds(self) -> float:
+        """flush_ms in seconds, the unit of the cores' ``now``."""
+        return self.flush_ms / 1000
+
+    def repair_for(self, k_actual: int) -> int:
+        """Repair packets for a block closed with k_actual ≤ block_size datagrams.
+
+        A full block gets m.  A short block (closed by its flush timer) gets, by
+        ``short_block_repair``: proportional = ceil(m·k'/k), which is ≥ 1 whenever m > 0, so
+        sparse telemetry is neither left bare nor flooded; full = m.  m = 0 always gives 0.
+        Must agree with encoder.EncoderSettings.repair_for (a test checks they do).
+        """
+        if isinstance(k_actual, bool) or not isinstance(k_actual, int) or not 1 <= k_actual <= self.block_size:
+            raise ValueError(f"k_actual must be an integer 1..{self.block_size}, got {k_actual!r}")
+        m = self.repair
+        if m == 0 or k_actual == self.block_size or self.short_block_repair is ShortBlockRepair.FULL:
+            return m
+        return -(-m * k_actual // self.block_size)  # exact integer ceil(m·k'/k); ≥ 1 as m, k' ≥ 1
+
+
+@dataclass(frozen=True)
+class DecoderSection:
+    hold_ms: int = DEFAULT_HOLD_MS
+    max_open_blocks: int = DEFAULT_MAX_OPEN_BLOCKS
+
+    @property
+    def hold_seconds(self) -> float:
+        return self.hold_ms / 1000
+
+
+@dataclass(frozen=True)
+class FlowsSection:
+    max: int = DEFAULT_MAX_FLOWS
+    idle_timeout_s: int = DEFAULT_FLOW_IDLE_TIMEOUT_S
+
+
+@dataclass(frozen=True)
+class SocketsSection:
+    receive_buffer_bytes: int = DEFAULT_SOCKET_BUFFER_BYTES  # 0 = the OS default
+    send_buffer_bytes: int = DEFAULT_SOCKET_BUFFER_BYTES  # 0 = the OS default
+
+
+@dataclass(frozen=True)
+class LogSection:
+    level: LogLevel = LogLevel.INFO
+    format: LogFormat = LogFormat.TEXT
+
+
+@dataclass(frozen=True)
+class MetricsSection:
+    listen: Address | None = None  # Prometheus endpoint; None = disabled
+
+    @property
+    def enabled(self) -> bool:
+        return self.listen is not None
+
+
+@dataclass(frozen=True)
+class Config:
+    """One daemon's settings.  Build it with :func:`parse_config` or :func:`load_config`."""
+
+    role: Role
+    link: LinkSection
+    listen: Address | None = None  # sender: applications send their datagrams here
+    forward: Address | None = None  # receiver: rebuilt datagrams are delivered here
+    fec: FecSection = FecSection()
+    decoder: DecoderSection = DecoderSection()
+    flows: FlowsSection = FlowsSection()
+    sockets: SocketsSection = SocketsSection()
+    log: LogSection = LogSection()
+    metrics: MetricsSection = MetricsSection()
+
+    def effective(self) -> dict:
+        """Every key with defaults filled in, nested as in the YAML; absent addresses are None.
+
+        The result is plain data (str, int, bool, None): safe to dump as YAML and to feed back
+        to :func:`parse_config`, which gives an equal Config.
+        """
+        document: dict = {}
+        for name in _TOP_ORDER:
+            value = getattr(self, name)
+            if dataclasses.is_dataclass(value) and not isinstance(value, Address):
+                document[name] = {f.name: _plain(getattr(value, f.name)) for f in dataclasses.fields(value)}
+            else:
+                document[name] = _plain(value)
+        return document
+
+
+def _plain(value):
+    if isinstance(value, Address):
+        return str(value)
+    if isinstance(value, StrEnum):
+        return value.value
+    return value
+
+
+# --------------------------------------------------------------------------------------------
+# Message helpers
+# --------------------------------------------------------------------------------------------
+
+
+def _kind(value) -> str:
+    if value is None:
+        return "null"
+    if isinstance(value, bool):
+        return "a boolean"
+    if isinstance(value, int):
+        return "an integer"
+    if isinstance(value, float):
+        return "a number with a fraction" if not float(value).is_integer() else "a floating-point number"
+    if isinstance(value, str):
+        return "a string"
+    if isinstance(value, Mapping):
+        return "a mapping"
+    if isinstance(value, (list, tuple)):
+        return "a list"
+    return f"a {type(value).__name__}"
+
+
+def _show(value) -> str:
+    """A bad value as the user would recognise it from the YAML."""
+    if value is None:
+        return "null"
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, str):
+        text = json.dumps(value, ensure_ascii=False)
+    elif isinstance(value, (int, float)):
+        text = repr(value)
+    elif isinstance(value, Mapping):
+        text = "{…}" if value else "{}"
+    elif isinstance(value, (list, tuple)):
+        text = "[…]" if value else "[]"
+    else:
+        text = str(value)
+    return _clip(text)
+
+
+def _clip(text: str, limit: int = MAX_SHOWN_VALUE_CHARS) -> str:
+    return text if len(text) <= limit else text[: limit - 1] + "…"
+
+
+def _key_text(key) -> str:
+    if isinstance(key, bool):
+        return "true" if key else "false"
+    return key if isinstance(key, str) else _show(key)
+
+
+def _or_list(words: list[str]) -> str:
+    return ", ".join(words[:-1]) + f" or {words[-1]}" if len(words) > 1 else words[0]
+
+
+def _closest(word: str, candidates) -> str | None:
+    lowered = {candidate.lower(): candidate for candidate in candidates}
+    match = difflib.get_close_matches(word.lower(), list(lowered), n=1, cutoff=SUGGESTION_CUTOFF)
+    return lowered[match[0]] if match else None
+
+
+def _suggest(name: str, section: str | None) -> str:
+    """The hint after "unknown key": a near miss here, the same key elsewhere, or the list."""
+    local = list(_SECTIONS[section][1]) if section else list(_TOP_ORDER)
+    prefix = f"{section}." if section else ""
+    near = _closest(name, local)
+    if near:
+        return f"did you mean {prefix}{near}?"
+    elsewhere = [path for path in _ALL_PATHS if path.rsplit(".", 1)[-1] == name.lower() and path != prefix + name]
+    if elsewhere:
+        return f"did you mean {_or_list(elsewhere)}?"
+    near_anywhere = _closest(name, [path.rsplit(".", 1)[-1] for path in _ALL_PATHS])
+    if near_anywhere:
+        paths = [path for path in _ALL_PATHS if path.rsplit(".", 1)[-1] == near_anywhere]
+        return f"did you mean {_or_list(paths)}?"
+    return f"valid keys here are {', '.join(local)}"
+
+
+# --------------------------------------------------------------------------------------------
+# Checkers: one per kind of value.  Each returns the parsed value or raises _Bad with the text
+# that follows the shown value in the message ("is out of range; expected ...").
+# --------------------------------------------------------------------------------------------
+
+
+class _Bad(Exception):
+    pass
+
+
+class _Integer:
+    def __init__(self, low: int, high: int, expected: str | None = None):
+        self.low, self.high = low, high
+        self.expected = expected or f"an integer {low}..{high}"
+
+    def __call__(self, value):
+        if isinstance(value, bool) or not isinstance(value, int):
+            raise _Bad(f"is {_kind(value)}; expected {self.expected}")
+        if not self.low <= value <= self.high:
+            raise _Bad(f"is out of range; expected {self.expected}")
+        return value
+
+
+class _Boolean:
+    expected = "true or false"
+
+    def __call__(self, value):
+        if not isinstance(value, bool):
+            raise _Bad(f"is {_kind(value)}; expected {self.expected}")
+        return value
+
+
+class _Choice:
+    def __init__(self, enum: type[StrEnum], what: str):
+        self.enum, self.what = enum, what
+        self.expected = _or_list([member.value for member in enum])
+
+    def __call__(self, value):
+        if not isinstance(value, str):
+            raise _Bad(f"is {_kind(value)}; expected {self.expected}")
+        try:
+            return self.enum(value)
+        except ValueError:
+            pass
+        hint = _closest(value, [member.value for member in self.enum])
+        suggestion = f" (did you mean {hint}?)" if hint else ""
+        raise _Bad(f"is not a valid {self.what}; expected {self.expected}{suggestion}")
+
+
+class _AddressField:
+    def __init__(self, bindable: bool):
+        self.bindable = bindable
+        if bindable:
+            self.expected = "HOST:PORT with port 0..65535 (0 = any free port), e.g. 127.0.0.1:5000 or [::1]:5000"
+        else:
+            self.expected = "HOST:PORT of a destination with port 1..65535, e.g. 192.0.2.10:7000 or [2001:db8::10]:7000"
+
+    def __call__(self, value):
+        if not isinstance(value, str):
+            raise _Bad(f"is {_kind(value)}; expected {self.expected}")
+        try:
+            return parse_address(value, allow_port_zero=self.bindable, allow_unspecified=self.bindable)
+        except AddressError as error:
+            raise _Bad(f"{error}; expected {self.expected}") from None
+
+
+_ADDRESS_TO_BIND = _AddressField(bindable=True)
+_DESTINATION = _AddressField(bindable=False)
+
+# --------------------------------------------------------------------------------------------
+# The schema table: YAML key -> checker, with defaults taken from the dataclasses above.
+# --------------------------------------------------------------------------------------------
+
+_TOP_ORDER = ("role", "listen", "forward", "link", "fec", "decoder", "flows", "sockets", "log", "metrics")
+
+_TOP_SCALARS: dict[str, Callable] = {
+    "role": _Choice(Role, "role"),
+    "listen": _ADDRESS_TO_BIND,
+    "forward": _DESTINATION,
+}
+
+_SECTIONS: dict[str, tuple[type, dict[str, Callable]]] = {
+    "link": (LinkSection, {"bind": _ADDRESS_TO_BIND, "peer": _DESTINATION}),
+    "fec": (
+        FecSection,
+        {
+            "block_size": _Integer(
+                1,
+                MAX_ENCODING_SYMBOLS,
+                f"an integer 1..{MAX_ENCODING_SYMBOLS} with block_size + repair ≤ {MAX_ENCODING_SYMBOLS}",
+            ),
+            "repair": _Integer(
+                0,
+                MAX_ENCODING_SYMBOLS - 1,
+                f"an integer 0..{MAX_ENCODING_SYMBOLS - 1} with block_size + repair ≤ {MAX_ENCODING_SYMBOLS}",
+            ),
+            "flush_ms": _Integer(1, MAX_FLUSH_MS, f"an integer number of milliseconds 1..{MAX_FLUSH_MS}"),
+            "max_datagram_bytes": _Integer(
+                1,
+                MAX_DATAGRAM_BYTES_LIMIT,
+                f"an integer 1..{MAX_DATAGRAM_BYTES_LIMIT} (a repair packet must fit one UDP datagram)",
+            ),
+            "short_block_repair": _Choice(ShortBlockRepair, "short-block rule"),
+            "allow_repair_above_source": _Boolean(),
+        },
+    ),
+    "decoder": (
+        DecoderSection,
+        {
+            "hold_ms": _Integer(1, MAX_HOLD_MS, f"an integer number of milliseconds 1..{MAX_HOLD_MS}"),
+            "max_open_blocks": _Integer(1, MAX_OPEN_BLOCKS_LIMIT),
+        },
+    ),
+    "flows": (
+        FlowsSection,
+        {
+            "max": _Integer(1, MAX_FLOWS_LIMIT, f"an integer 1..{MAX_FLOWS_LIMIT} (the flow id is one byte)"),
+            "idle_timeout_s": _Integer(1, MAX_FLOW_IDLE_TIMEOUT_S, f"an integer number of seconds 1..{MAX_FLOW_IDLE_TIMEOUT_S}"),
+        },
+    ),
+    "sockets": (
+        SocketsSection,
+        {
+            "receive_buffer_bytes": _Integer(0, MAX_SOCKET_BUFFER_BYTES, f"an integer 0..{MAX_SOCKET_BUFFER_BYTES} (0 = OS default)"),
+            "send_buffer_bytes": _Integer(0, MAX_SOCKET_BUFFER_BYTES, f"an integer 0..{MAX_SOCKET_BUFFER_BYTES} (0 = OS default)"),
+        },
+    ),
+    "log": (LogSection, {"level": _Choice(LogLevel, "log level"), "format": _Choice(LogFormat, "log format")}),
+    "metrics": (MetricsSection, {"listen": _ADDRESS_TO_BIND}),
+}
+
+#: Keys whose absence (or null) means "not set" rather than "take a default".
+_OPTIONAL = {"listen", "forward", "link.peer", "metrics.listen"}
+
+#: Role rules, looked up by role: key -> "required" | "forbidden" | "optional".
+_ROLE_RULES: dict[Role, dict[str, str]] = {
+    Role.SENDER: {"listen": "required", "forward": "forbidden", "link.peer": "required"},
+    Role.RECEIVER: {"listen": "forbidden", "forward": "required", "link.peer": "optional"},
+}
+_PURPOSE = {
+    "listen": "the address applications send their datagrams to",
+    "forward": "the address rebuilt datagrams are delivered to",
+    "link.peer": "the other proxy's link address",
+}
+
+
+def _all_paths() -> list[str]:
+    paths = list(_TOP_ORDER)
+    for section, (_, keys) in _SECTIONS.items():
+        paths += [f"{section}.{key}" for key in keys]
+    return paths
+
+
+def _defaults() -> dict[str, object]:
+    """path -> default value; required keys are absent from this map."""
+    defaults: dict[str, object] = {}
+    for section, (cls, _) in _SECTIONS.items():
+        for f in dataclasses.fields(cls):
+            if f.default is not dataclasses.MISSING:
+                defaults[f"{section}.{f.name}"] = f.default
+    for name in ("listen", "forward"):
+        defaults[name] = None
+    return defaults
+
+
+_ALL_PATHS = _all_paths()
+_DEFAULTS = _defaults()
+
+# --------------------------------------------------------------------------------------------
+# Parsing
+# --------------------------------------------------------------------------------------------
+
+
+class _Parser:
+    """One pass over a document: every fault becomes a message; good values are kept by path."""
+
+    def __init__(self, source: str):
+        self.source = source
+        self.errors: list[str] = []
+        self.values: dict[str, object] = {}
+        self.bad: set[str] = set()  # paths (and sections) that already have a message
+
+    def error(self, path: str, text: str) -> None:
+        self.errors.append(f"{self.source}: {path}: {text}")
+        self.bad.add(path)
+
+    def run(self, document) -> Config:
+        if document is None:
+            raise ConfigError([f"{self.source}: the document is empty; expected a mapping with at least role and link.bind"])
+        if not isinstance(document, Mapping):
+            raise ConfigError(
+                [f"{self.source}: the document is {_kind(document)}; expected a mapping of settings (key: value lines)"]
+            )
+        for key, raw in document.items():
+            name = _key_text(key)
+            if name in _TOP_SCALARS:
+                self.value(name, raw, _TOP_SCALARS[name])
+            elif name in _SECTIONS:
+                self.section(name, raw)
+            else:
+                self.error(name, f"unknown key; {_suggest(name, None)}")
+        self.fill_defaults()
+        self.check_role()
+        self.check_fec()
+        self.check_addresses()
+        if self.errors:
+            raise ConfigError(self.errors)
+        return self.build()
+
+    def value(self, path: str, raw, check: Callable) -> None:
+        if raw is None:
+            if path in _OPTIONAL:
+                return  # null = not set
+            self.error(path, f"has no value (null); expected {check.expected}")
+            return
+        try:
+            self.values[path] = check(raw)
+        except _Bad as bad:
+            self.error(path, f"{_show(raw)} {bad}")
+
+    def section(self, name: str, raw) -> None:
+        if raw is None:
+            return  # "metrics:" with everything commented out is an empty section
+        keys = _SECTIONS[name][1]
+        if not isinstance(raw, Mapping):
+            self.error(name, f"{_show(raw)} is {_kind(raw)}; expected a mapping of {name} settings ({', '.join(keys)})")
+            return
+        for key, value in raw.items():
+            key_name = _key_text(key)
+            path = f"{name}.{key_name}"
+            if key_name in keys:
+                self.value(path, value, keys[key_name])
+            else:
+                self.error(path, f"unknown key; {_suggest(key_name, name)}")
+
+    def fill_defaults(self) -> None:
+        for path in _ALL_PATHS:
+            if path in _SECTIONS or path in self.values or path in self.bad or path in _OPTIONAL:
+                continue
+            if path.split(".", 1)[0] in self.bad:
+                continue  # its section was not a mapping: already reported
+            if path in _DEFAULTS:
+                self.values[path] = _DEFAULTS[path]
+            elif path == "role":
+                self.error(path, f"missing; expected {_TOP_SCALARS['role'].expected}")
+            else:
+                section, key = path.split(".", 1)
+                self.error(path, f"missing; expected {_SECTIONS[section][1][key].expected}")
+
+    def check_role(self) -> None:
+        role = self.values.get("role")
+        if role is None:
+            return
+        for path, rule in _ROLE_RULES[role].items():
+            if path in self.bad or path.split(".", 1)[0] in self.bad:
+                continue
+            present = path in self.values
+            checker = _TOP_SCALARS.get(path) or _SECTIONS["link"][1]["peer"]
+            if rule == "required" and not present:
+                self.error(path, f"missing; a {role} needs {_PURPOSE[path]}; expected {checker.expected}")
+            elif rule == "forbidden" and present:
+                other = Role.RECEIVER if role is Role.SENDER else Role.SENDER
+                self.error(
+                    path,
+                    f"{_show(str(self.values[path]))} is set but role is {role}; "
+                    f"expected no {path} on a {role} ({path} is for the {other}; remove it)",
+                )
+
+    def check_fec(self) -> None:
+        k = self.values.get("fec.block_size")
+        m = self.values.get("fec.repair")
+        allow = self.values.get("fec.allow_repair_above_source")
+        if k is None or m is None:
+            return
+        if k + m > MAX_ENCODING_SYMBOLS:
+            self.error(
+                "fec.repair",
+                f"{m} is too large with fec.block_size {k}; expected block_size + repair ≤ "
+                f"{MAX_ENCODING_SYMBOLS} (RFC 5510 §8.2: n ≤ 255 in GF(2^8)), so repair ≤ {MAX_ENCODING_SYMBOLS - k}",
+            )
+        elif m > k and allow is False:
+            self.error(
+                "fec.repair",
+                f"{m} is above fec.block_size {k}; expected repair ≤ block_size (RFC 6363 §8.2 keeps the "
+                f"repair rate at or below the source rate), or set fec.allow_repair_above_source: true",
+            )
+
+    def check_addresses(self) -> None:
+        """Catch two sockets on one UDP port, and a destination that is this proxy itself."""
+        bind = self.values.get("link.bind")
+        if bind is None:
+            return
+        listen = self.values.get("listen")
+        if listen is not None and _same_local_port(listen, bind):
+            self.error(
+                "listen",
+                f"{_show(str(listen))} uses the same UDP port as link.bind {_show(str(bind))}; "
+                f"expected two different ports (both are bound on this host)",
+            )
+        for path in ("link.peer", "forward"):
+            destination = self.values.get(path)
+            if destination is not None and _is_self(destination, bind):
+                self.error(
+                    path,
+                    f"{_show(str(destination))} is this proxy's own link.bind {_show(str(bind))}; "
+                    f"expected {_PURPOSE[path]}, which must differ from link.bind",
+                )
+
+    def build(self) -> Config:
+        sections = {}
+        for name, (cls, keys) in _SECTIONS.items():
+            sections[name] = cls(**{key: self.values.get(f"{name}.{key}") for key in keys})
+        return Config(
+            role=self.values["role"],
+            listen=self.values.get("listen"),
+            forward=self.values.get("forward"),
+            **sections,
+        )
+
+
+def _same_local_port(a: Address, b: Address) -> bool:
+    if a.port != b.port or a.port == 0:
+        return False
+    if a.host == b.host:
+        return True
+    same_family = a.is_ip_literal and b.is_ip_literal and a.is_ipv6 == b.is_ipv6
+    return same_family and (a.is_unspecified or b.is_unspecified)
+
+
+def _is_self(destination: Address, bind: Address) -> bool:
+    if destination.port != bind.port:
+        return False
+    if destination.host == bind.host:
+        return True
+    return bind.is_unspecified and destination.is_loopback and destination.is_ipv6 == bind.is_ipv6
+
+
+def parse_config(document: object, source: str = "<config>") -> Config:
+    """Validate an already-loaded document (a mapping, as from YAML); raise ConfigError listing
+    every fault.  Used by :func:`load_config`, by SIGHUP reloads and by tests."""
+    return _Parser(source).run(document)
+
+
+# --------------------------------------------------------------------------------------------
+# Reading YAML
+# --------------------------------------------------------------------------------------------
+
+
+class _StrictLoader(yaml.SafeLoader):
+    """SafeLoader that records duplicate keys (PyYAML silently keeps the last one)."""
+
+    def __init__(self, stream):
+        super().__init__(stream)
+        self.duplicates: list[tuple[str, int, int]] = []
+
+    def construct_mapping(self, node, deep=False):
+        seen = set()
+        for key_node, _ in node.value:
+            if isinstance(key_node, yaml.ScalarNode):
+                key = key_node.value
+                if key in seen:
+                    mark = key_node.start_mark
+                    self.duplicates.append((key, mark.line + 1, mark.column + 1))
+                seen.add(key)
+        return super().construct_mapping(node, deep=deep)
+
+
+def _reader_message(error: yaml.reader.ReaderError, text: str, source: str) -> str:
+    """A character YAML forbids (control codes): say where, as line and column."""
+    position = min(max(error.position, 0), len(text))
+    line = text.count("\n", 0, position) + 1
+    column = position - (text.rfind("\n", 0, position) + 1) + 1
+    return (
+        f"{source}: line {line}, column {column}: YAML syntax error: character "
+        f"U+{error.character:04X} is not allowed; expected printable text"
+    )
+
+
+def _read_yaml(text: str, source: str) -> object:
+    try:
+        loader = _StrictLoader(text)
+    except yaml.reader.ReaderError as error:
+        raise ConfigError([_reader_message(error, text, source)]) from None
+    try:
+        document = loader.get_single_data()
+    except yaml.reader.ReaderError as error:
+        raise ConfigError([_reader_message(error, text, source)]) from None
+    except yaml.MarkedYAMLError as error:
+        mark = error.problem_mark or error.context_mark
+        where = f"line {mark.line + 1}, column {mark.column + 1}: " if mark else ""
+        problem = error.problem or error.context or "not valid YAML"
+        raise ConfigError([f"{source}: {where}YAML syntax error: {problem}"]) from None
+    except yaml.YAMLError as error:
+        raise ConfigError([f"{source}: YAML error: {error}"]) from None
+    except RecursionError:
+        raise ConfigError([f"{source}: YAML nested too deeply; expected a flat mapping of settings"]) from None
+    finally:
+        loader.dispose()
+    if loader.duplicates:
+        messages = [
+            f"{source}: line {line}, column {column}: {key}: duplicate key; expected each key once"
+            for key, line, column in loader.duplicates
+        ]
+        try:
+            parse_config(document, source)
+        except ConfigError as error:
+            messages += error.messages
+        raise ConfigError(messages)
+    return document
+
+
+def load_config(path: str | Path) -> Config:
+    """Read and validate a YAML config file.
+
+    Raises ConfigUnreadable when the file cannot be read at all, ConfigError (listing every
+    fault) when it can but is not a valid config.
+    """
+    source = str(path)
+    try:
+        with open(path, "rb") as file:
+            data = file.read(MAX_CONFIG_FILE_BYTES + 1)
+    except OSError as error:
+        raise ConfigUnreadable([f"{source}: cannot read the file: {error.strerror or error}"]) from None
+    if len(data) > MAX_CONFIG_FILE_BYTES:
+        raise ConfigUnreadable([f"{source}: file is larger than {MAX_CONFIG_FILE_BYTES} bytes; is this a config file?"])
+    try:
+        text = data.decode("utf-8-sig")
+    except UnicodeDecodeError as error:
+        raise ConfigError([f"{source}: byte {error.start} is not UTF-8; expected a UTF-8 text file"]) from None
+    return parse_config_text(text, source)
+
+
+def parse_config_text(text: str, source: str = "<text>") -> Config:
+    """Validate YAML text (for configs embedded in tools and tests); raise ConfigError."""
+    return parse_config(_read_yaml(text, source), source)

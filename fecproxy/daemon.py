@@ -1,0 +1,427 @@
+"""The trio shell: moves bytes between sockets and the sans-IO cores, and fires their timers.
+
+One ``Daemon`` is one side of the pair.  Both sides encode what they send on the link and decode
+what they receive from it; they differ only in the application side:
+
+* sender: applications send to ``listen``; every client address is a flow; decoded replies go
+  back to the client through the same socket.
+* receiver: rebuilt datagrams go to ``forward`` from one upstream socket per flow, so the server's
+  replies come back on that socket and are encoded towards the sender with the flow's id.
+
+All tasks live in one nursery; the timer task sleeps in a cancel scope whose deadline is the
+earliest of the cores' ``next_deadline()`` values and is moved whenever a core's changes.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import secrets
+import signal
+import socket
+from collections import defaultdict
+from pathlib import Path
+
+import trio
+
+from . import __version__
+from .channel import LossEstimator
+from .config import Config, ConfigError, load_config
+from .decoder import BlockDecoder, BlockReport, DecoderSettings, Delivery, Dropped, SessionStarted
+from .encoder import BlockEncoder, DatagramTooLarge, EncoderSettings
+from .flows import FlowTable
+from .logs import log_event
+from .metrics import build_registry, serve
+from .udp import DatagramReader, DatagramWriter, open_udp_socket, resolve
+
+log = logging.getLogger("fecproxy.daemon")
+
+#: Source packets the link-loss estimate looks back over: long enough to see several bursts at a
+#: few percent loss, short enough to follow a changing link within seconds at telemetry rates
+#: (common practice, no source).
+LOSS_ESTIMATE_WINDOW = 10_000
+
+
+def encoder_settings(config: Config) -> EncoderSettings:
+    fec = config.fec
+    return EncoderSettings(
+        block_size=fec.block_size,
+        repair=fec.repair,
+        flush_interval=fec.flush_ms / 1000,
+        max_datagram=fec.max_datagram_bytes,
+        short_block_repair=str(fec.short_block_repair),
+    )
+
+
+def decoder_settings(config: Config) -> DecoderSettings:
+    return DecoderSettings(
+        hold_time=config.decoder.hold_ms / 1000,
+        max_open_blocks=config.decoder.max_open_blocks,
+        max_datagram=config.fec.max_datagram_bytes,
+    )
+
+
+def _sockaddr(address) -> tuple:
+    return resolve(address.host, address.port)
+
+
+class Daemon:
+    """One side of the pair.  ``await daemon.run()`` until SIGTERM/SIGINT or ``stop()``."""
+
+    def __init__(self, config: Config, *, config_path: str | Path | None = None, handle_signals: bool = True):
+        self.config = config
+        self.config_path = config_path
+        self.handle_signals = handle_signals
+        self.session = secrets.randbits(32)
+        self.encoder = BlockEncoder(encoder_settings(config), self.session)
+        self.decoder = BlockDecoder(decoder_settings(config))
+        self.estimator = LossEstimator(window=LOSS_ESTIMATE_WINDOW)
+        idle = float(config.flows.idle_timeout_s)
+        self.flows: FlowTable = FlowTable(config.flows.max, idle)
+        self.reloads: dict[str, int] = {}
+        self._drops: dict[str, int] = defaultdict(int)
+        self._upstream: dict[int, _Upstream] = {}
+        self._link_writer: DatagramWriter | None = None
+        self._app_writer: DatagramWriter | None = None
+        self._timer_scope: trio.CancelScope | None = None
+        self._nursery: trio.Nursery | None = None
+        self._stopping = False
+        self.registry, self.recovery_delay = build_registry(self)
+        self.metrics_port: int | None = None
+        self.peer: tuple | None = None
+        self.link_address: tuple | None = None
+        self.listen_address: tuple | None = None
+
+    # ------------------------------------------------------------ views for metrics
+    def drop_counts(self) -> dict[str, int]:
+        totals = dict(self._drops)
+        for source in (self.encoder.stats.dropped, self.decoder.stats.dropped):
+            for reason, count in source.items():
+                totals[reason] = totals.get(reason, 0) + count
+        return totals
+
+    def send_errors(self) -> int:
+        writers = [self._link_writer, self._app_writer]
+        writers += [upstream.writer for upstream in self._upstream.values()]
+        return sum(w.send_errors for w in writers if w is not None)
+
+    def flow_count(self) -> int:
+        return len(self.flows)
+
+    def loss_estimate(self) -> tuple[float, float] | None:
+        estimate = self.estimator.estimate()
+        if estimate.samples == 0:
+            return None
+        return estimate.average_loss, estimate.mean_burst
+
+    # ------------------------------------------------------------ lifecycle
+    async def run(self, *, task_status=trio.TASK_STATUS_IGNORED) -> None:
+        cfg = self.config
+        buffers = dict(receive_buffer=cfg.sockets.receive_buffer_bytes, send_buffer=cfg.sockets.send_buffer_bytes)
+        self._link_sock = open_udp_socket(cfg.link.bind.host, cfg.link.bind.port, **buffers)
+        self._link_writer = DatagramWriter(self._link_sock)
+        self.link_address = self._link_sock.getsockname()
+        if cfg.link.peer is not None:
+            self.peer = resolve(cfg.link.peer.host, cfg.link.peer.port, self._link_sock.family)
+        self._app_sock = None
+        if cfg.role == "sender":
+            self._app_sock = open_udp_socket(cfg.listen.host, cfg.listen.port, **buffers)
+            self._app_writer = DatagramWriter(self._app_sock)
+            self.listen_address = self._app_sock.getsockname()
+        else:
+            self._forward = _sockaddr(cfg.forward)
+        stop_metrics = None
+        if cfg.metrics.listen is not None:
+            stop_metrics = serve(self.registry, cfg.metrics.listen.host, cfg.metrics.listen.port)
+            self.metrics_port = stop_metrics.port
+        try:
+            async with trio.open_nursery() as nursery:
+                self._nursery = nursery
+                nursery.start_soon(self._link_loop)
+                nursery.start_soon(self._timer_loop)
+                if self._app_sock is not None:
+                    nursery.start_soon(self._client_loop)
+                if self.handle_signals:
+                    nursery.start_soon(self._signal_loop)
+                log_event(
+                    log, logging.INFO, "started", version=__version__, role=str(cfg.role),
+                    link=_fmt(self.link_address), peer=_fmt(self.peer) if self.peer else "learned",
+                    listen=_fmt(self.listen_address) if self.listen_address else "-",
+                    forward=str(cfg.forward) if cfg.forward else "-",
+                    k=cfg.fec.block_size, m=cfg.fec.repair, flush_ms=cfg.fec.flush_ms,
+                    session=f"{self.session:08x}", metrics=self.metrics_port or "off",
+                )
+                task_status.started(self)
+        finally:
+            for upstream in self._upstream.values():
+                upstream.close()
+            self._upstream.clear()
+            self._link_sock.close()
+            if self._app_sock is not None:
+                self._app_sock.close()
+            if stop_metrics is not None:
+                stop_metrics()
+        log_event(log, logging.INFO, "stopped", **self.summary())
+
+    async def stop(self) -> None:
+        """Close the open block (its repair packets go out), then end every task."""
+        if self._stopping or self._nursery is None:
+            return
+        self._stopping = True
+        await self._send_to_peer(self.encoder.flush())
+        self._handle_events(self.decoder.close(), trio.current_time())
+        self._nursery.cancel_scope.cancel()
+
+    def summary(self) -> dict[str, int]:
+        enc, dec = self.encoder.stats, self.decoder.stats
+        return dict(
+            source_sent=enc.source_packets, repair_sent=enc.repair_packets, blocks_sent=enc.blocks,
+            received_source=dec.source_received, received_repair=dec.repair_received,
+            lost=dec.lost, recovered=dec.recovered, unrecovered=dec.unrecovered, delivered=dec.delivered,
+            dropped=sum(self.drop_counts().values()),
+        )
+
+    # ------------------------------------------------------------ tasks
+    async def _client_loop(self) -> None:
+        """Sender: applications' datagrams -> flows -> encoder -> link."""
+        reader = DatagramReader(self._app_sock)
+        encoder, flows = self.encoder, self.flows
+        while True:
+            batch = await reader.read_batch()
+            now = trio.current_time()
+            out: list[bytes] = []
+            for data, address in batch:
+                flow = flows.flow_for(address, now)
+                if flow is None:
+                    self._drops["flow_limit"] += 1
+                    continue
+                try:
+                    out += encoder.send(data, flow, now)
+                except DatagramTooLarge as error:
+                    log_event(log, logging.DEBUG, "dropped", reason="oversize", detail=str(error))
+            await self._send_to_peer(out)
+            self._reschedule()
+
+    async def _link_loop(self) -> None:
+        """Both roles: link packets -> decoder -> applications."""
+        reader = DatagramReader(self._link_sock)
+        decoder = self.decoder
+        learn = self.config.role == "receiver" and self.config.link.peer is None
+        while True:
+            batch = await reader.read_batch()
+            now = trio.current_time()
+            deliveries: list[Delivery] = []
+            for data, address in batch:
+                events = decoder.receive(data, now)
+                valid = True
+                for event in events:
+                    if type(event) is Delivery:
+                        deliveries.append(event)
+                    else:
+                        valid = valid and type(event) is not Dropped
+                        self._handle_event(event, now)
+                if learn and valid and address != self.peer:
+                    if self.peer is not None:
+                        log_event(log, logging.INFO, "peer_changed", old=_fmt(self.peer), new=_fmt(address))
+                    self.peer = address
+            await self._deliver(deliveries, now)
+            self._reschedule()
+
+    async def _timer_loop(self) -> None:
+        while True:
+            deadline = self._next_deadline()
+            with trio.CancelScope(deadline=deadline) as scope:
+                self._timer_scope = scope
+                await trio.sleep_forever()
+            self._timer_scope = None
+            now = trio.current_time()
+            await self._send_to_peer(self.encoder.on_timer(now))
+            self._handle_events(self.decoder.on_timer(now), now)
+            for flow, _ in self.flows.expire(now):
+                self._close_upstream(flow)
+                log_event(log, logging.DEBUG, "flow_expired", flow=flow)
+
+    async def _upstream_loop(self, flow: int, upstream: "_Upstream") -> None:
+        """Receiver: replies from the application server on this flow's socket -> link."""
+        with upstream.scope:
+            reader = DatagramReader(upstream.sock, batch=64)
+            while True:
+                batch = await reader.read_batch()
+                now = trio.current_time()
+                out: list[bytes] = []
+                for data, _ in batch:
+                    self.flows.touch(flow, now)
+                    try:
+                        out += self.encoder.send(data, flow, now)
+                    except DatagramTooLarge as error:
+                        log_event(log, logging.DEBUG, "dropped", reason="oversize", detail=str(error))
+                await self._send_to_peer(out)
+                self._reschedule()
+
+    async def _signal_loop(self) -> None:
+        with trio.open_signal_receiver(signal.SIGTERM, signal.SIGINT, signal.SIGHUP) as signals:
+            async for signum in signals:
+                if signum == signal.SIGHUP:
+                    self.reload()
+                else:
+                    log_event(log, logging.INFO, "stopping", signal=signal.Signals(signum).name)
+                    await self.stop()
+                    return
+
+    # ------------------------------------------------------------ helpers
+    def reload(self, config: Config | None = None) -> bool:
+        """Apply new FEC, decoder and flow settings from the next block on; keep flows.
+
+        Settings that need new sockets (role, addresses, metrics) are reported and left as they are.
+        """
+        try:
+            new = config if config is not None else load_config(self.config_path)
+        except ConfigError as error:
+            self.reloads["rejected"] = self.reloads.get("rejected", 0) + 1
+            log_event(log, logging.ERROR, "reload_rejected", errors="; ".join(error.messages) if hasattr(error, "messages") else str(error))
+            return False
+        except (OSError, TypeError) as error:
+            self.reloads["rejected"] = self.reloads.get("rejected", 0) + 1
+            log_event(log, logging.ERROR, "reload_rejected", errors=str(error))
+            return False
+        fixed = [name for name in ("role", "listen", "forward", "link", "metrics", "sockets") if getattr(new, name) != getattr(self.config, name)]
+        if fixed:
+            log_event(log, logging.WARNING, "reload_needs_restart", keys=",".join(fixed))
+        self.encoder.update(encoder_settings(new))
+        self.decoder.settings = decoder_settings(new)
+        self.flows.idle_timeout = float(new.flows.idle_timeout_s)
+        self.config = _keep_fixed(self.config, new)
+        self.reloads["applied"] = self.reloads.get("applied", 0) + 1
+        log_event(log, logging.INFO, "reloaded", k=new.fec.block_size, m=new.fec.repair, flush_ms=new.fec.flush_ms)
+        self._reschedule()
+        return True
+
+    def _next_deadline(self) -> float:
+        deadlines = [d for d in (self.encoder.next_deadline(), self.decoder.next_deadline(), self.flows.next_deadline()) if d is not None]
+        return min(deadlines) if deadlines else math.inf
+
+    def _reschedule(self) -> None:
+        if self._timer_scope is not None:
+            self._timer_scope.deadline = self._next_deadline()
+
+    async def _send_to_peer(self, packets: list[bytes]) -> None:
+        if not packets:
+            return
+        if self.peer is None:
+            self._drops["no_peer"] += len(packets)
+            return
+        await self._link_writer.send(packets, self.peer)
+
+    def _handle_events(self, events, now: float) -> None:
+        for event in events:
+            self._handle_event(event, now)
+
+    def _handle_event(self, event, now: float) -> None:
+        kind = type(event)
+        if kind is BlockReport:
+            self._observe(event)
+            if event.unrecovered:
+                log_event(log, logging.DEBUG, "block_unrecovered", sbn=event.sbn, k=event.k, lost=event.lost, outcome=event.outcome)
+        elif kind is Dropped:
+            log_event(log, logging.DEBUG, "dropped", reason=event.reason, detail=event.detail)
+        elif kind is SessionStarted:
+            log_event(log, logging.INFO, "peer_session", session=f"{event.session:08x}",
+                      previous=f"{event.previous:08x}" if event.previous is not None else "-")
+
+    def _observe(self, report: BlockReport) -> None:
+        """Feed the loss estimator the block's source positions in order (runs, not bits)."""
+        mask, span = report.arrived_mask, report.span
+        position = 0
+        while position < span:
+            lost = not (mask >> position) & 1
+            run = position
+            while run < span and (not (mask >> run) & 1) == lost:
+                run += 1
+            self.estimator.observe_run(lost, run - position)
+            position = run
+
+    async def _deliver(self, deliveries: list[Delivery], now: float) -> None:
+        if not deliveries:
+            return
+        by_destination: dict[int, list[bytes]] = defaultdict(list)
+        for delivery in deliveries:
+            if delivery.recovered:
+                self.recovery_delay.observe(delivery.delay)
+            by_destination[delivery.flow].append(delivery.data)
+        for flow, datagrams in by_destination.items():
+            if self.config.role == "sender":
+                client = self.flows.key_for(flow)
+                if client is None:
+                    self._drops["unknown_flow"] += len(datagrams)
+                    continue
+                self.flows.touch(flow, now)
+                await self._app_writer.send(datagrams, client)
+            else:
+                writer = self._upstream_writer(flow, now)
+                if writer is None:
+                    continue  # counted as flow_limit or unreachable
+                await writer.send(datagrams, self._forward)
+
+    def _upstream_writer(self, flow: int, now: float) -> DatagramWriter | None:
+        """The writer of this flow's upstream socket, opened (with its reader task) if new."""
+        entry = self._upstream.get(flow)
+        if entry is not None:
+            self.flows.touch(flow, now)
+            return entry.writer
+        if self.flows.flow_for(flow, now, flow=flow) is None:
+            self._drops["flow_limit"] += 1
+            return None
+        family = socket.AF_INET6 if len(self._forward) == 4 else socket.AF_INET
+        sock = socket.socket(family, socket.SOCK_DGRAM)
+        try:
+            sock.setblocking(False)
+            # Connected: the kernel picks the source address towards the server, and only the
+            # server's replies are accepted on this socket.
+            sock.connect(self._forward)
+        except OSError as error:
+            sock.close()
+            self.flows.remove(flow)
+            self._drops["unreachable"] += 1
+            log_event(log, logging.WARNING, "upstream_failed", forward=_fmt(self._forward), error=str(error))
+            return None
+        entry = _Upstream(sock, DatagramWriter(sock), trio.CancelScope())
+        self._upstream[flow] = entry
+        assert self._nursery is not None
+        self._nursery.start_soon(self._upstream_loop, flow, entry)
+        log_event(log, logging.DEBUG, "flow_opened", flow=flow, local=_fmt(sock.getsockname()))
+        return entry.writer
+
+    def _close_upstream(self, flow: int) -> None:
+        entry = self._upstream.pop(flow, None)
+        if entry is not None:
+            entry.close()
+
+
+class _Upstream:
+    """A receiver's socket towards the application server for one flow, and its reader task."""
+
+    __slots__ = ("sock", "writer", "scope")
+
+    def __init__(self, sock: socket.socket, writer: DatagramWriter, scope: trio.CancelScope):
+        self.sock, self.writer, self.scope = sock, writer, scope
+
+    def close(self) -> None:
+        self.scope.cancel()
+        trio.lowlevel.notify_closing(self.sock)
+        self.sock.close()
+
+
+def _keep_fixed(old: Config, new: Config) -> Config:
+    """The running config after a reload: new tunables, old sockets/addresses."""
+    import dataclasses
+
+    return dataclasses.replace(
+        new, role=old.role, listen=old.listen, forward=old.forward, link=old.link, metrics=old.metrics, sockets=old.sockets
+    )
+
+
+def _fmt(address) -> str:
+    if address is None:
+        return "-"
+    host, port = address[0], address[1]
+    return f"[{host}]:{port}" if ":" in host else f"{host}:{port}"

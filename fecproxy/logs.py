@@ -1,0 +1,62 @@
+"""One log line per event, as key=value pairs (default) or JSON objects (``log.format: json``).
+
+Callers log an event name and fields: ``log_event(log, logging.INFO, "started", role="sender")``.
+Nothing is logged per packet at the default level; per-packet detail is DEBUG only.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import sys
+import time
+
+LEVELS = {"debug": logging.DEBUG, "info": logging.INFO, "warning": logging.WARNING, "error": logging.ERROR}
+
+
+def log_event(logger: logging.Logger, level: int, event: str, **fields: object) -> None:
+    if logger.isEnabledFor(level):
+        logger.log(level, event, extra={"fields": fields})
+
+
+def _timestamp(record: logging.LogRecord) -> str:
+    return time.strftime("%Y-%m-%dT%H:%M:%S", time.gmtime(record.created)) + f".{int(record.msecs):03d}Z"
+
+
+def _quote(value: object) -> str:
+    text = str(value)
+    if not text or any(c in text for c in ' "=\n'):
+        return json.dumps(text, ensure_ascii=False)
+    return text
+
+
+class KeyValueFormatter(logging.Formatter):
+    def format(self, record: logging.LogRecord) -> str:
+        parts = [f"ts={_timestamp(record)}", f"level={record.levelname.lower()}", f"event={_quote(record.getMessage())}"]
+        for key, value in getattr(record, "fields", {}).items():
+            parts.append(f"{key}={_quote(value)}")
+        if record.exc_info:
+            parts.append(f"error={_quote(self.formatException(record.exc_info))}")
+        return " ".join(parts)
+
+
+class JsonFormatter(logging.Formatter):
+    def format(self, record: logging.LogRecord) -> str:
+        entry: dict[str, object] = {"ts": _timestamp(record), "level": record.levelname.lower(), "event": record.getMessage()}
+        for key, value in getattr(record, "fields", {}).items():
+            entry[key] = value if isinstance(value, (int, float, bool, type(None))) else str(value)
+        if record.exc_info:
+            entry["error"] = self.formatException(record.exc_info)
+        return json.dumps(entry, ensure_ascii=False)
+
+
+def setup_logging(level: str = "info", fmt: str = "text", stream=None) -> None:
+    """Route the ``fecproxy`` loggers to stderr in the chosen format (idempotent)."""
+    root = logging.getLogger("fecproxy")
+    for handler in list(root.handlers):
+        root.removeHandler(handler)
+    handler = logging.StreamHandler(stream or sys.stderr)
+    handler.setFormatter(JsonFormatter() if fmt == "json" else KeyValueFormatter())
+    root.addHandler(handler)
+    root.setLevel(LEVELS.get(level, logging.INFO))
+    root.propagate = False

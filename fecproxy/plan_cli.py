@@ -1,0 +1,341 @@
+"""``fecproxy plan``: choose k, m and interleave depth for a link, or evaluate one code on it.
+
+The arithmetic lives in :mod:`fecproxy.planner`; this module reads the options (or a running
+receiver's metrics page), prints a table or JSON, and turns bad input into one-line errors.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import re
+import sys
+import urllib.error
+import urllib.request
+
+from .channel import ChannelConfigError, GilbertElliott, channel_from_figures
+from .planner import (
+    DEFAULT_K_VALUES,
+    Candidate,
+    Plan,
+    PlanError,
+    PlanRequest,
+    effective_k,
+    evaluate,
+    parse_int_list,
+    plan,
+)
+
+#: Gauges the receiver exports from its online estimate (transition counting over the source
+#: datagrams it saw or missed); ``--from-metrics`` reads these two.
+LINK_LOSS_GAUGE = "fecproxy_link_loss_ratio"
+LINK_BURST_GAUGE = "fecproxy_link_mean_burst_packets"
+#: A metrics page is a few kB; 1 MiB is far above any real page and bounds what we read.
+MAX_METRICS_PAGE_BYTES = 1 << 20
+#: Seconds to wait for the metrics page: a receiver on the same LAN answers in milliseconds.
+DEFAULT_METRICS_TIMEOUT = 5.0
+#: Defaults for a small interactive or telemetry flow; common practice, no source.  Users with
+#: other needs say so on the command line.
+DEFAULT_LATENCY_MS = 500.0
+DEFAULT_MAX_OVERHEAD = 0.5
+DEFAULT_TARGET = 1e-3
+
+CONVENTION = (
+    "Loss model convention (Gilbert 1960; Elliott 1963): a two-state Markov chain advances once per "
+    "packet; p = P(good→bad), r = P(bad→good); a packet is lost with probability loss_good in the good "
+    "state and loss_bad in the bad state (defaults 0 and 1: the simple Gilbert channel). "
+    "--loss P --burst B gives r = 1/B, p = P/(B(1−P)); --loss alone means independent losses."
+)
+EPILOG = (
+    CONVENTION + " Residual loss is exact (binomial for independent loss; the forward recursion of "
+    "Cidon, Khamisy & Sidi 1993 for Gilbert–Elliott), with the k source packets sent before the m "
+    "repair packets and a block's packets D positions apart when interleaving at depth D. "
+    "Exit status: 0 with a recommendation (or in evaluation mode), 1 when no candidate meets the "
+    "target within the budgets, 2 on bad input."
+)
+
+
+class MetricsError(PlanError):
+    """The metrics page could not be fetched or did not hold the link gauges."""
+
+
+#: Options without a default: absent from the namespace until given (argparse.SUPPRESS keeps
+#: "(default: None)" out of --help); :func:`_fill_unset` puts None back before use.
+_UNSET_OPTIONS = ("loss", "burst", "ge_p", "ge_r", "ge_loss_good", "ge_loss_bad", "from_metrics", "rate", "flush_ms", "k", "m")
+
+
+def _fill_unset(args: argparse.Namespace) -> argparse.Namespace:
+    for name in _UNSET_OPTIONS:
+        if not hasattr(args, name):
+            setattr(args, name, None)
+    return args
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.epilog = EPILOG
+    parser.argument_default = argparse.SUPPRESS
+    link = parser.add_argument_group("link (choose one form)")
+    link.add_argument("--loss", type=float, help="average packet loss ratio of the link, 0..1")
+    link.add_argument("--burst", type=float, help="mean burst length in packets (≥ 1); needs --loss")
+    link.add_argument("--ge-p", type=float, help="Gilbert–Elliott p = P(good→bad) per packet")
+    link.add_argument("--ge-r", type=float, help="Gilbert–Elliott r = P(bad→good) per packet")
+    link.add_argument("--ge-loss-good", type=float, help="loss probability in the good state (default 0)")
+    link.add_argument("--ge-loss-bad", type=float, help="loss probability in the bad state (default 1)")
+    link.add_argument(
+        "--from-metrics",
+        metavar="URL",
+        help=f"read {LINK_LOSS_GAUGE} and {LINK_BURST_GAUGE} from a receiver's Prometheus page at URL",
+    )
+    link.add_argument(
+        "--metrics-select",
+        metavar="LABEL=VALUE",
+        action="append",
+        default=[],
+        help="with --from-metrics: keep only samples carrying this label (repeatable)",
+    )
+    link.add_argument("--metrics-timeout", type=float, default=DEFAULT_METRICS_TIMEOUT, help="seconds to wait for the metrics page")
+
+    need = parser.add_argument_group("traffic and budgets")
+    need.add_argument("--rate", type=float, help="datagrams per second the sender sees (required to plan)")
+    need.add_argument("--latency-ms", type=float, default=DEFAULT_LATENCY_MS, help="longest wait a recovered datagram may have")
+    need.add_argument(
+        "--flush-ms",
+        type=float,
+        help="time after which the sender closes a block that has not filled (default: the latency budget); "
+        "at low rates a block holds only rate·flush/D datagrams, and that effective k is what is evaluated",
+    )
+    need.add_argument("--max-overhead", type=float, default=DEFAULT_MAX_OVERHEAD, help="largest m/k allowed (≤ 1, RFC 6363 §8.2)")
+    need.add_argument("--target", type=float, default=DEFAULT_TARGET, help="residual datagram loss to reach")
+
+    codes = parser.add_argument_group("codes")
+    codes.add_argument(
+        "--k-values",
+        default=",".join(str(k) for k in DEFAULT_K_VALUES),
+        help="source block sizes to consider: a list such as 4,8,16 or ranges such as 8-24",
+    )
+    codes.add_argument("--interleave", default="1", help="interleave depths D to consider, e.g. 1,2,4")
+    codes.add_argument("--k", type=int, help="evaluation mode: source packets per block of the one code to evaluate")
+    codes.add_argument("--m", type=int, help="evaluation mode: repair packets per block of the one code to evaluate")
+    parser.add_argument("--json", action="store_true", default=False, help="print JSON instead of a table")
+
+
+# -- link from options or metrics ---------------------------------------------------------------------
+
+_SAMPLE = re.compile(
+    r"""^(?P<name>[A-Za-z_:][A-Za-z0-9_:]*)
+        (?:\{(?P<labels>(?:[^"}]|"(?:[^"\\]|\\.)*")*)\})?
+        \s+(?P<value>\S+)""",
+    re.VERBOSE,
+)
+_LABEL = re.compile(r'\s*([A-Za-z_][A-Za-z0-9_]*)\s*=\s*"((?:[^"\\]|\\.)*)"\s*,?')
+
+
+def parse_prometheus_text(page: str) -> list[tuple[str, dict[str, str], float]]:
+    """(name, labels, value) for each sample line of a Prometheus text exposition page.
+
+    Lines that do not parse are skipped: the page is someone else's, and we want two gauges from it.
+    """
+    samples = []
+    for line in page.splitlines():
+        line = line.strip()
+        if not line or line.startswith("#"):
+            continue
+        match = _SAMPLE.match(line)
+        if not match:
+            continue
+        labels = dict(_LABEL.findall(match.group("labels") or ""))
+        try:
+            value = float(match.group("value"))
+        except ValueError:
+            continue
+        samples.append((match.group("name"), labels, value))
+    return samples
+
+
+def _pick(samples, name: str, select: dict[str, str]) -> float:
+    found = [(labels, value) for n, labels, value in samples if n == name and all(labels.get(k) == v for k, v in select.items())]
+    if not found:
+        raise MetricsError(f"the metrics page has no {name}" + (f" with {select}" if select else ""))
+    if len(found) > 1:
+        sets = "; ".join(",".join(f"{k}={v}" for k, v in sorted(labels.items())) or "(none)" for labels, _ in found)
+        raise MetricsError(f"{len(found)} samples of {name} (labels: {sets}); choose one with --metrics-select LABEL=VALUE")
+    return found[0][1]
+
+
+def link_from_metrics(url: str, select: list[str], timeout: float = DEFAULT_METRICS_TIMEOUT) -> tuple[float, float]:
+    """(average loss, mean burst) as a running receiver estimates them."""
+    wanted: dict[str, str] = {}
+    for item in select:
+        key, sep, value = item.partition("=")
+        if not sep or not key:
+            raise MetricsError(f"--metrics-select wants LABEL=VALUE, got {item!r}")
+        wanted[key.strip()] = value.strip()
+    if not url.startswith(("http://", "https://")):
+        raise MetricsError(f"--from-metrics wants an http:// or https:// URL, got {url!r}")
+    try:
+        with urllib.request.urlopen(url, timeout=timeout) as response:
+            body = response.read(MAX_METRICS_PAGE_BYTES + 1)
+    except (urllib.error.URLError, OSError, ValueError) as exc:
+        raise MetricsError(f"cannot fetch {url}: {exc}") from None
+    if len(body) > MAX_METRICS_PAGE_BYTES:
+        raise MetricsError(f"{url} sent more than {MAX_METRICS_PAGE_BYTES} bytes; that is not a metrics page")
+    samples = parse_prometheus_text(body.decode("utf-8", errors="replace"))
+    loss = _pick(samples, LINK_LOSS_GAUGE, wanted)
+    burst = _pick(samples, LINK_BURST_GAUGE, wanted)
+    if not (math.isfinite(loss) and math.isfinite(burst)):
+        raise MetricsError(f"the receiver's estimate is not ready yet (loss {loss}, burst {burst}): it has seen too few packets")
+    return loss, burst
+
+
+def channel_from_args(args: argparse.Namespace) -> GilbertElliott:
+    four = dict(p=args.ge_p, r=args.ge_r, loss_good=args.ge_loss_good, loss_bad=args.ge_loss_bad)
+    if args.from_metrics:
+        if args.loss is not None or args.burst is not None or any(v is not None for v in four.values()):
+            raise PlanError("--from-metrics replaces --loss/--burst/--ge-*: give one or the other")
+        loss, burst = link_from_metrics(args.from_metrics, args.metrics_select, args.metrics_timeout)
+        if loss == 0.0:
+            return GilbertElliott.no_loss()
+        # A receiver's estimate may sit just under the conversion's limits (burst < 1 on a nearly
+        # clean link); clamp to the smallest burst the loss allows rather than refuse.
+        return GilbertElliott.from_loss_burst(loss, max(burst, 1.0, loss / (1.0 - loss)))
+    if args.loss is None and args.burst is None and all(v is None for v in four.values()):
+        raise PlanError("describe the link: --loss (and --burst), or --ge-p/--ge-r, or --from-metrics URL")
+    return channel_from_figures(loss=args.loss, burst=args.burst, **four)
+
+
+# -- output --------------------------------------------------------------------------------------------
+
+
+def _channel_dict(channel: GilbertElliott) -> dict:
+    return {
+        "p": channel.p,
+        "r": channel.r,
+        "loss_good": channel.loss_good,
+        "loss_bad": channel.loss_bad,
+        "average_loss": channel.average_loss,
+        "mean_burst": channel.mean_burst,
+    }
+
+
+def _verdict(c: Candidate) -> str:
+    if c.acceptable:
+        return "ok"
+    misses = [name for name, ok in (("residual", c.meets_target), ("latency", c.within_latency), ("overhead", c.within_overhead)) if not ok]
+    return "misses " + ",".join(misses)
+
+
+def format_table(result: Plan) -> str:
+    req = result.request
+    lines = [
+        f"link: {req.channel.describe()}",
+        f"rate {req.rate:g} datagrams/s, latency budget {req.latency_budget * 1000:g} ms, "
+        f"flush {req.flush_time * 1000:g} ms, max overhead {req.max_overhead:g}, target residual loss {req.target:g}",
+        "",
+        f"{'':1} {'k':>4} {'k_eff':>5} {'m':>4} {'D':>3} {'overhead':>8} {'block_fail':>10} {'residual':>10} {'span_ms':>8}  verdict",
+    ]
+    for c in result.candidates:
+        mark = "*" if c is result.recommended else " "
+        lines.append(
+            f"{mark} {c.k:>4} {c.k_effective:>5} {c.m:>4} {c.depth:>3} {c.overhead:>8.3f} {c.block_failure:>10.3g} "
+            f"{c.residual_loss:>10.3g} {c.span * 1000:>8.1f}  {_verdict(c)}"
+        )
+    lines.append("")
+    best = result.recommended
+    if best is not None:
+        lines.append(
+            f"recommended (*): k={best.k_effective} m={best.m} interleave D={best.depth} — overhead {best.overhead:.3f}, "
+            f"residual loss {best.residual_loss:.3g}, block span {best.span * 1000:.1f} ms"
+        )
+    else:
+        lowest = min(result.candidates, key=lambda c: c.residual_loss)
+        lines.append(
+            f"no candidate meets residual loss {req.target:g} within the budgets; the lowest is {lowest.residual_loss:.3g} "
+            f"at k={lowest.k_effective} m={lowest.m} D={lowest.depth} — allow more overhead, latency or interleaving"
+        )
+    lines.append("(each row: the fewest repair packets meeting the target for that k and D, else the most the overhead budget allows)")
+    return "\n".join(lines)
+
+
+def _evaluate_one(args: argparse.Namespace, channel: GilbertElliott, depths: tuple[int, ...]) -> int:
+    if args.k is None or args.m is None:
+        raise PlanError("evaluation mode needs both --k and --m")
+    if len(depths) != 1:
+        raise PlanError("evaluation mode evaluates one code: give a single --interleave depth")
+    depth = depths[0]
+    flush = None
+    if args.rate is not None:
+        flush = (args.flush_ms if args.flush_ms is not None else args.latency_ms) / 1000.0
+        if not (math.isfinite(args.rate) and args.rate > 0 and math.isfinite(flush) and flush > 0):
+            raise PlanError(f"rate and flush time must be > 0, got rate {args.rate!r} and flush {flush * 1000!r} ms")
+    k_eff = effective_k(args.k, args.rate, flush, depth)
+    figures = evaluate(channel, k_eff, args.m, depth)
+    out = {
+        "k": args.k,
+        "k_effective": k_eff,
+        "m": args.m,
+        "depth": depth,
+        "overhead": figures.overhead,
+        "block_failure": figures.block_failure,
+        "residual_loss": figures.residual_loss,
+        "block_span_ms": None if args.rate is None else k_eff * depth / args.rate * 1000.0,
+        "channel": _channel_dict(channel),
+    }
+    if args.json:
+        print(json.dumps(out, indent=2))
+    else:
+        print(f"link: {channel.describe()}")
+        short = f" (effective k {k_eff} at {args.rate:g}/s with flush {flush * 1000:g} ms)" if k_eff != args.k else ""
+        print(f"code: k={args.k} m={args.m} interleave D={depth}{short}, overhead {figures.overhead:.3f}")
+        print(f"block failure probability: {figures.block_failure:.6g}")
+        print(f"residual datagram loss:    {figures.residual_loss:.6g}")
+        if out["block_span_ms"] is not None:
+            print(f"block span:                {out['block_span_ms']:.1f} ms")
+    return 0
+
+
+def main(args: argparse.Namespace) -> int:
+    args = _fill_unset(args)
+    try:
+        channel = channel_from_args(args)
+        depths = parse_int_list(args.interleave)
+        if args.k is not None or args.m is not None:
+            return _evaluate_one(args, channel, depths)
+        if args.rate is None:
+            raise PlanError("planning needs the datagram rate: --rate N (datagrams per second)")
+        request = PlanRequest(
+            channel=channel,
+            rate=args.rate,
+            latency_budget=args.latency_ms / 1000.0,
+            max_overhead=args.max_overhead,
+            target=args.target,
+            k_values=parse_int_list(args.k_values),
+            depths=depths,
+            flush=None if args.flush_ms is None else args.flush_ms / 1000.0,
+        )
+        result = plan(request)
+    except (PlanError, ChannelConfigError) as exc:
+        print(f"fecproxy plan: {exc}", file=sys.stderr)
+        return 2
+    if args.json:
+        print(
+            json.dumps(
+                {
+                    "channel": _channel_dict(channel),
+                    "rate": request.rate,
+                    "latency_budget_ms": request.latency_budget * 1000.0,
+                    "flush_ms": request.flush_time * 1000.0,
+                    "max_overhead": request.max_overhead,
+                    "target": request.target,
+                    "candidates": [c.as_dict() for c in result.candidates],
+                    "recommended": None if result.recommended is None else result.recommended.as_dict(),
+                },
+                indent=2,
+            )
+        )
+    else:
+        print(format_table(result))
+    return 0 if result.recommended is not None else 1
+
+
+__all__ = ["add_arguments", "main", "link_from_metrics", "parse_prometheus_text", "LINK_LOSS_GAUGE", "LINK_BURST_GAUGE"]

@@ -1,0 +1,320 @@
+"""Residual loss of a systematic (k + m, k) MDS block code on a lossy link, exactly; and code choice.
+
+Pure math, no simulation: the answer must be reproducible and cheap enough to scan hundreds of
+candidate codes in a fraction of a second.
+
+* Independent losses with probability p (binomial): a block of n = k + m fails when more than m
+  of its n packets are lost, P = Σ_{j>m} C(n,j) p^j (1−p)^(n−j); a source packet is unrecoverable
+  when it is lost and at least m of the other n − 1 are too, so residual = p·P[Bin(n−1, p) ≥ m].
+* Gilbert–Elliott: the forward recursion over (channel state, losses so far) along the n positions
+  of a block (Cidon, Khamisy & Sidi, IEEE Trans. Inf. Theory 39(1), 1993; applied to packet FEC by
+  Frossard, IEEE Commun. Lett. 5(3), 2001).  The k source packets come first, then the m repair
+  packets — the order our sender transmits — so the recursion tracks lost *source* packets and lost
+  repair packets separately.  The chain starts in its stationary distribution.
+* Interleaving depth D: a block's packets sit D positions apart on the link, so the recursion steps
+  with the D-step transition matrix T^D.
+
+Residual loss = E[source packets lost and not recovered] / k, where a lost source packet is
+unrecoverable exactly when its block has more than m losses in total (MDS: any k packets rebuild it).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .channel import GilbertElliott
+
+#: RFC 5510 §8.2: with GF(2^8) a block has at most 255 encoding symbols (source + repair).
+MAX_BLOCK_PACKETS = 255
+#: RFC 6363 §8.2: the repair rate should never exceed the source rate, so m ≤ k (overhead ≤ 1).
+MAX_OVERHEAD = 1.0
+#: Source block sizes scanned when the user names none: dense where codes are cheap to run and
+#: delays short, sparser above 16 where each step mostly trades delay for overhead.
+DEFAULT_K_VALUES = (1, 2, 3, 4, 5, 6, 8, 10, 12, 16, 20, 24, 32, 40, 48, 64, 96, 128)
+#: Relative slack when comparing overheads and spans to budgets, so that m/k = 0.25 exactly
+#: meets a budget of 0.25 despite binary floating point.
+_BUDGET_SLACK = 1e-9
+
+
+class PlanError(ValueError):
+    """Planner inputs that cannot describe a code or a link."""
+
+
+@dataclass(frozen=True)
+class CodeFigures:
+    """Exact loss figures of one code (k source + m repair, interleave depth D) on one channel."""
+
+    k: int
+    m: int
+    depth: int
+    block_failure: float
+    residual_loss: float
+
+    @property
+    def overhead(self) -> float:
+        return self.m / self.k
+
+
+def _check_code(k: int, m: int, depth: int = 1) -> None:
+    if not (isinstance(k, int) and k >= 1):
+        raise PlanError(f"k must be an integer ≥ 1, got {k!r}")
+    if not (isinstance(m, int) and m >= 0):
+        raise PlanError(f"m must be an integer ≥ 0, got {m!r}")
+    if k + m > MAX_BLOCK_PACKETS:
+        raise PlanError(f"k + m = {k + m} exceeds {MAX_BLOCK_PACKETS} packets per block (RFC 5510 §8.2, GF(2^8))")
+    if not (isinstance(depth, int) and depth >= 1):
+        raise PlanError(f"interleave depth must be an integer ≥ 1, got {depth!r}")
+
+
+def _binomial_upper_tail(n: int, p: float, at_least: int) -> float:
+    """P[Bin(n, p) ≥ at_least], summed term by term from the tail (no 1 − x cancellation)."""
+    if at_least <= 0:
+        return 1.0
+    if at_least > n:
+        return 0.0
+    return math.fsum(math.comb(n, j) * p**j * (1.0 - p) ** (n - j) for j in range(at_least, n + 1))
+
+
+def iid_block_failure(k: int, m: int, loss: float) -> float:
+    """P[more than m of the n = k + m packets lost] under independent loss."""
+    _check_code(k, m)
+    return _binomial_upper_tail(k + m, loss, m + 1)
+
+
+def iid_residual_loss(k: int, m: int, loss: float) -> float:
+    """p·P[Bin(n − 1, p) ≥ m]: a source packet is lost and so are at least m of the others."""
+    _check_code(k, m)
+    return loss * _binomial_upper_tail(k + m - 1, loss, m)
+
+
+def evaluate_repair_range(channel: GilbertElliott, k: int, max_m: int, depth: int = 1) -> list[CodeFigures]:
+    """Figures for (k, m, depth) for every m in 0..max_m, from one pass of the recursion.
+
+    A block with m repair packets is the first k + m positions of one with max_m, so the state
+    after each repair position gives the answer for that m.  Arrays: prob[s, i, l] = P(chain in
+    state s at the current position, i source and l repair packets lost so far).
+    """
+    _check_code(k, max_m, depth)
+    step = channel.transition_matrix(depth)
+    pi = np.array([1.0 - channel.stationary_bad, channel.stationary_bad])
+    emit = np.array([channel.loss_good, channel.loss_bad])
+
+    # Phase 1: the k source positions; prob[s, i].
+    prob = np.zeros((2, k + 1))
+    prob[:, 0] = pi * (1.0 - emit)
+    prob[:, 1] = pi * emit
+    for _ in range(1, k):
+        moved = step.T @ prob
+        prob = moved * (1.0 - emit)[:, None]
+        prob[:, 1:] += moved[:, :-1] * emit[:, None]
+
+    source_lost = np.arange(k + 1)
+    figures = [
+        CodeFigures(
+            k=k,
+            m=0,
+            depth=depth,
+            block_failure=float(prob[:, 1:].sum()),
+            residual_loss=float((prob.sum(axis=0) * source_lost).sum() / k),
+        )
+    ]
+    if max_m == 0:
+        return figures
+
+    # Phase 2: the repair positions; prob[s, i, l].
+    joint = np.zeros((2, k + 1, max_m + 1))
+    joint[:, :, 0] = prob
+    total_lost = source_lost[:, None] + np.arange(max_m + 1)[None, :]
+    for m in range(1, max_m + 1):
+        moved = np.tensordot(step.T, joint, axes=1)
+        joint = moved * (1.0 - emit)[:, None, None]
+        joint[:, :, 1:] += moved[:, :, :-1] * emit[:, None, None]
+        by_count = joint.sum(axis=0)
+        failing = total_lost > m
+        figures.append(
+            CodeFigures(
+                k=k,
+                m=m,
+                depth=depth,
+                block_failure=float(by_count[failing].sum()),
+                residual_loss=float((by_count * source_lost[:, None])[failing].sum() / k),
+            )
+        )
+    return figures
+
+
+def evaluate(channel: GilbertElliott, k: int, m: int, depth: int = 1) -> CodeFigures:
+    """Exact block failure and residual loss of one code on a Gilbert–Elliott channel."""
+    return evaluate_repair_range(channel, k, m, depth)[m]
+
+
+def effective_k(k: int, rate: float | None, flush: float | None, depth: int = 1) -> int:
+    """Source packets a block really holds when the sender closes it ``flush`` seconds after opening.
+
+    With interleave depth D a block receives every D-th datagram, so rate/D per second.  Assumes
+    the sender still sends all m repair packets for a short block.
+    """
+    if rate is None or flush is None:
+        return k
+    fits = math.floor(rate * flush / depth + _BUDGET_SLACK)
+    return max(1, min(k, fits))
+
+
+@dataclass(frozen=True)
+class PlanRequest:
+    """What the operator knows about the link and wants from the code; validated once here."""
+
+    channel: GilbertElliott
+    rate: float  # datagrams per second offered to the sender
+    latency_budget: float  # seconds a recovered datagram may wait for its block
+    max_overhead: float  # m/k
+    target: float  # residual datagram loss to reach
+    k_values: tuple[int, ...] = DEFAULT_K_VALUES
+    depths: tuple[int, ...] = (1,)
+    flush: float | None = None  # seconds the sender keeps a block open; None = the latency budget
+
+    def __post_init__(self) -> None:
+        if not (math.isfinite(self.rate) and self.rate > 0):
+            raise PlanError(f"datagram rate must be > 0 per second, got {self.rate!r}")
+        if not (math.isfinite(self.latency_budget) and self.latency_budget > 0):
+            raise PlanError(f"latency budget must be > 0 seconds, got {self.latency_budget!r}")
+        if not (0 <= self.max_overhead <= MAX_OVERHEAD):
+            raise PlanError(
+                f"max overhead must be in [0, {MAX_OVERHEAD:g}] (RFC 6363 §8.2: repair rate never above the source rate), "
+                f"got {self.max_overhead!r}"
+            )
+        if not (0 < self.target < 1):
+            raise PlanError(f"target residual loss must be in (0, 1), got {self.target!r}")
+        if not self.k_values or not self.depths:
+            raise PlanError("need at least one k and one interleave depth to consider")
+        for k in self.k_values:
+            _check_code(k, 0)
+        for depth in self.depths:
+            _check_code(1, 0, depth)
+        if self.flush is not None and not (math.isfinite(self.flush) and self.flush > 0):
+            raise PlanError(f"flush time must be > 0 seconds, got {self.flush!r}")
+        object.__setattr__(self, "k_values", tuple(sorted(set(self.k_values))))
+        object.__setattr__(self, "depths", tuple(sorted(set(self.depths))))
+
+    @property
+    def flush_time(self) -> float:
+        return self.latency_budget if self.flush is None else self.flush
+
+
+@dataclass(frozen=True)
+class Candidate:
+    """One row of the plan: a code as configured (k) and as it behaves at this rate (k_effective)."""
+
+    k: int
+    k_effective: int
+    m: int
+    depth: int
+    block_failure: float
+    residual_loss: float
+    span: float  # seconds from a block's first to last source packet: k_eff·D/rate
+    meets_target: bool
+    within_latency: bool
+    within_overhead: bool
+
+    @property
+    def overhead(self) -> float:
+        return self.m / self.k_effective
+
+    @property
+    def acceptable(self) -> bool:
+        return self.meets_target and self.within_latency and self.within_overhead
+
+    def as_dict(self) -> dict:
+        return {
+            "k": self.k,
+            "k_effective": self.k_effective,
+            "m": self.m,
+            "depth": self.depth,
+            "overhead": self.overhead,
+            "block_failure": self.block_failure,
+            "residual_loss": self.residual_loss,
+            "block_span_ms": self.span * 1000.0,
+            "meets_target": self.meets_target,
+            "within_latency": self.within_latency,
+            "within_overhead": self.within_overhead,
+            "acceptable": self.acceptable,
+        }
+
+
+@dataclass(frozen=True)
+class Plan:
+    request: PlanRequest
+    candidates: list[Candidate] = field(default_factory=list)
+    recommended: Candidate | None = None
+
+
+def _cost(c: Candidate) -> tuple:
+    """Cheapest first: lowest overhead, then lowest added delay, then the simpler code."""
+    return (round(c.overhead, 12), round(c.span, 12), c.k_effective, c.depth, c.k)
+
+
+def make_candidate(request: PlanRequest, k: int, figures: CodeFigures) -> Candidate:
+    span = figures.k * figures.depth / request.rate
+    return Candidate(
+        k=k,
+        k_effective=figures.k,
+        m=figures.m,
+        depth=figures.depth,
+        block_failure=figures.block_failure,
+        residual_loss=figures.residual_loss,
+        span=span,
+        meets_target=figures.residual_loss <= request.target,
+        within_latency=span <= request.latency_budget * (1 + _BUDGET_SLACK),
+        within_overhead=figures.overhead <= request.max_overhead + _BUDGET_SLACK,
+    )
+
+
+def plan(request: PlanRequest) -> Plan:
+    """One row per (k, D): the fewest repair packets meeting the target within the overhead budget,
+    or — if none does — the most the budget allows (the best that k can do); then the cheapest
+    acceptable row is recommended.  Rows whose effective code repeats an earlier one are dropped.
+    """
+    rows: list[Candidate] = []
+    seen: set[tuple[int, int, int]] = set()
+    for depth in request.depths:
+        for k in request.k_values:
+            k_eff = effective_k(k, request.rate, request.flush_time, depth)
+            max_m = min(math.floor(k_eff * request.max_overhead + _BUDGET_SLACK), MAX_BLOCK_PACKETS - k_eff)
+            options = evaluate_repair_range(request.channel, k_eff, max_m, depth)
+            chosen = next((f for f in options if f.residual_loss <= request.target), options[-1])
+            key = (chosen.k, chosen.m, chosen.depth)
+            if key in seen:
+                continue
+            seen.add(key)
+            rows.append(make_candidate(request, k, chosen))
+    rows.sort(key=lambda c: (c.depth, c.k))
+    acceptable = [c for c in rows if c.acceptable]
+    return Plan(request=request, candidates=rows, recommended=min(acceptable, key=_cost) if acceptable else None)
+
+
+def parse_int_list(text: str | Sequence[int] | Iterable[int]) -> tuple[int, ...]:
+    """'1,2,4' or '4-16' or a mix ('1,2,8-10') → a tuple of ints; raises PlanError on junk."""
+    if not isinstance(text, str):
+        return tuple(int(v) for v in text)
+    values: list[int] = []
+    for part in text.split(","):
+        part = part.strip()
+        if not part:
+            continue
+        try:
+            if "-" in part:
+                low, high = (int(x) for x in part.split("-", 1))
+                if high < low or high - low > MAX_BLOCK_PACKETS:
+                    raise ValueError
+                values.extend(range(low, high + 1))
+            else:
+                values.append(int(part))
+        except ValueError:
+            raise PlanError(f"not a list of integers or ranges: {text!r}") from None
+    if not values:
+        raise PlanError(f"empty list: {text!r}")
+    return tuple(values)

@@ -1,0 +1,164 @@
+"""`fecproxy check`: effective settings on stdout and exit 0, or every fault on stderr and exit 2."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+import yaml
+
+from fecproxy import cli
+from fecproxy.cmd_check import EXIT_INVALID, EXIT_UNREADABLE, EXIT_VALID
+from fecproxy.config import parse_config, parse_config_text
+
+ROOT = Path(__file__).resolve().parents[1]
+EXAMPLES = ROOT / "config"
+#: A whole process (interpreter start + yaml import) takes well under a second; this only stops
+#: a hung child from hanging the suite.
+PROCESS_TIMEOUT_S = 60
+
+GOOD_SENDER = """\
+role: sender
+listen: 127.0.0.1:5000
+link:
+  bind: 127.0.0.1:0
+  peer: 127.0.0.1:7000
+fec:
+  block_size: 8
+  repair: 2
+"""
+
+
+def run_check(capsys, *argv: str) -> tuple[int, str, str]:
+    status = cli.main(["check", *argv])
+    captured = capsys.readouterr()
+    return status, captured.out, captured.err
+
+
+@pytest.mark.parametrize("name", ["sender.yaml", "receiver.yaml"])
+def test_example_files_pass_check(capsys, name):
+    path = EXAMPLES / name
+    status, out, err = run_check(capsys, str(path))
+    assert (status, err) == (EXIT_VALID, "")
+    assert out.startswith(f"# {path}: valid; effective settings")
+    effective = yaml.safe_load(out)
+    # The printed settings are a config in their own right and describe the same daemon.
+    assert parse_config(effective, "printed") == parse_config_text(path.read_text(), str(path))
+
+
+def test_output_fills_in_defaults(capsys, tmp_path):
+    path = tmp_path / "s.yaml"
+    path.write_text(GOOD_SENDER)
+    status, out, _ = run_check(capsys, str(path))
+    assert status == EXIT_VALID
+    effective = yaml.safe_load(out)
+    assert effective["fec"] == {
+        "block_size": 8,
+        "repair": 2,
+        "flush_ms": 20,
+        "max_datagram_bytes": 1400,
+        "short_block_repair": "proportional",
+        "allow_repair_above_source": False,
+    }
+    assert effective["link"] == {"bind": "127.0.0.1:0", "peer": "127.0.0.1:7000"}
+    assert effective["forward"] is None and effective["metrics"] == {"listen": None}
+    assert list(effective) == ["role", "listen", "forward", "link", "fec", "decoder", "flows", "sockets", "log", "metrics"]
+
+
+def test_quiet_prints_nothing_when_valid(capsys, tmp_path):
+    path = tmp_path / "s.yaml"
+    path.write_text(GOOD_SENDER)
+    assert run_check(capsys, "--quiet", str(path)) == (EXIT_VALID, "", "")
+
+
+BAD_FILES = [
+    # (id, file text, fragments expected on stderr)
+    ("k + m above 255", GOOD_SENDER.replace("block_size: 8", "block_size: 300"),
+     ["bad.yaml: fec.block_size: 300 is out of range; expected an integer 1..255 with block_size + repair ≤ 255"]),
+    ("typo in a key", GOOD_SENDER.replace("repair: 2", "repiar: 2"),
+     ["bad.yaml: fec.repiar: unknown key; did you mean fec.repair?"]),
+    ("m above k", GOOD_SENDER.replace("repair: 2", "repair: 9"),
+     ["bad.yaml: fec.repair: 9 is above fec.block_size 8", "RFC 6363 §8.2"]),
+    ("receiver keys on a sender", GOOD_SENDER + "forward: 127.0.0.1:6000\n",
+     ['bad.yaml: forward: "127.0.0.1:6000" is set but role is sender']),
+    ("bad port", GOOD_SENDER.replace("127.0.0.1:5000", "127.0.0.1:99999"), ['bad.yaml: listen: "127.0.0.1:99999" has port 99999, out of range 0..65535']),
+    ("YAML syntax", GOOD_SENDER + "  - oops\n", ["bad.yaml: line 9, column 3: YAML syntax error"]),
+    ("not a mapping", "- role: sender\n", ["bad.yaml: the document is a list; expected a mapping"]),
+    ("empty", "", ["bad.yaml: the document is empty"]),
+]
+
+
+@pytest.mark.parametrize("text, fragments", [case[1:] for case in BAD_FILES], ids=[case[0] for case in BAD_FILES])
+def test_bad_files_exit_2_with_messages(capsys, tmp_path, text, fragments):
+    path = tmp_path / "bad.yaml"
+    path.write_text(text)
+    status, out, err = run_check(capsys, str(path))
+    assert status == EXIT_INVALID == 2
+    assert out == ""
+    for fragment in fragments:
+        assert fragment.replace("bad.yaml", str(path)) in err, err
+    assert err.rstrip().endswith("invalid config (1 error)")
+
+
+def test_every_error_is_printed(capsys, tmp_path):
+    path = tmp_path / "bad.yaml"
+    path.write_text(GOOD_SENDER + "log:\n  level: loud\n  colour: true\nflows:\n  max: 0\n")
+    status, _, err = run_check(capsys, str(path))
+    assert status == EXIT_INVALID
+    lines = err.strip().splitlines()
+    assert len(lines) == 4 and lines[-1].endswith("invalid config (3 errors)")
+    assert any("log.level:" in line for line in lines)
+    assert any("log.colour: unknown key" in line for line in lines)
+    assert any("flows.max: 0 is out of range" in line for line in lines)
+
+
+def test_missing_file(capsys, tmp_path):
+    path = tmp_path / "nowhere.yaml"
+    status, out, err = run_check(capsys, str(path))
+    assert status == EXIT_UNREADABLE != EXIT_VALID
+    assert out == ""
+    assert f"{path}: cannot read the file: No such file or directory" in err
+
+
+def test_help_lists_the_options(capsys):
+    with pytest.raises(SystemExit) as exited:
+        cli.main(["check", "--help"])
+    assert exited.value.code == 0
+    out = capsys.readouterr().out
+    assert "validate a config file" in out
+    assert "CONFIG.yaml" in out and "--quiet" in out
+    assert "2 = invalid config" in out
+
+
+# ---------------------------------------------------------------- whole process
+
+
+def run_process(*argv: str) -> subprocess.CompletedProcess:
+    return subprocess.run(
+        [sys.executable, "-m", "fecproxy", "check", *argv],
+        capture_output=True,
+        text=True,
+        timeout=PROCESS_TIMEOUT_S,
+        cwd=ROOT,
+    )
+
+
+def test_process_accepts_the_example_sender():
+    result = run_process("config/sender.yaml")
+    assert result.returncode == 0, result.stderr
+    assert result.stderr == ""
+    effective = yaml.safe_load(result.stdout)
+    assert effective["role"] == "sender" and effective["link"]["peer"] == "192.0.2.10:7000"
+
+
+def test_process_rejects_a_bad_file(tmp_path):
+    path = tmp_path / "bad.yaml"
+    path.write_text(GOOD_SENDER.replace("block_size: 8", "blocksize: 8").replace("127.0.0.1:7000", "127.0.0.1"))
+    result = run_process(str(path))
+    assert result.returncode == 2
+    assert result.stdout == ""
+    assert f"{path}: fec.blocksize: unknown key; did you mean fec.block_size?" in result.stderr
+    assert f'{path}: link.peer: "127.0.0.1" has no port' in result.stderr
+    assert "Traceback" not in result.stderr

@@ -1,0 +1,377 @@
+"""The residual-loss planner: exact values against scipy and a seeded Monte Carlo; the plan command."""
+
+from __future__ import annotations
+
+import http.server
+import json
+import math
+import threading
+
+import numpy as np
+import pytest
+from scipy.stats import binom
+
+from fecproxy import cli
+from fecproxy.channel import GilbertElliott, GilbertElliottChannel
+from fecproxy.planner import (
+    MAX_BLOCK_PACKETS,
+    PlanError,
+    PlanRequest,
+    effective_k,
+    evaluate,
+    evaluate_repair_range,
+    iid_block_failure,
+    iid_residual_loss,
+    parse_int_list,
+    plan,
+)
+from fecproxy.plan_cli import parse_prometheus_text
+
+CODES = [(1, 1), (4, 1), (8, 2), (16, 4), (10, 5), (32, 8), (64, 16), (200, 55)]
+LOSSES = [0.001, 0.01, 0.05, 0.2, 0.5]
+
+
+# -- independent losses against scipy ---------------------------------------------------------------
+
+
+@pytest.mark.parametrize("k,m", CODES)
+@pytest.mark.parametrize("p", LOSSES)
+def test_iid_closed_forms_match_scipy(k, m, p):
+    # scipy.stats.binom as oracle: block failure = P[Bin(n, p) > n − k] = binom.sf(n − k, n, p);
+    # residual = p·P[Bin(n − 1, p) ≥ n − k] = p·binom.sf(n − k − 1, n − 1, p).
+    n = k + m
+    assert iid_block_failure(k, m, p) == pytest.approx(binom.sf(n - k, n, p), rel=1e-10, abs=1e-300)
+    assert iid_residual_loss(k, m, p) == pytest.approx(p * binom.sf(n - k - 1, n - 1, p), rel=1e-10, abs=1e-300)
+
+
+@pytest.mark.parametrize("k,m", CODES)
+@pytest.mark.parametrize("p", LOSSES)
+@pytest.mark.parametrize("depth", [1, 3])
+def test_memoryless_recursion_equals_binomial(k, m, p, depth):
+    # With r = 1 − p the chain is memoryless (every row of T is the stationary law), so the
+    # Gilbert–Elliott recursion must reproduce the binomial result exactly (to rounding), at any
+    # interleave depth.  scipy.stats.binom as oracle.
+    n = k + m
+    figures = evaluate(GilbertElliott.bernoulli(p), k, m, depth)
+    assert figures.block_failure == pytest.approx(binom.sf(n - k, n, p), abs=1e-12, rel=1e-9)
+    assert figures.residual_loss == pytest.approx(p * binom.sf(n - k - 1, n - 1, p), abs=1e-12, rel=1e-9)
+
+
+def test_memoryless_with_partial_emissions_is_binomial_in_average_loss():
+    # p + r = 1 with loss_good, loss_bad in (0, 1): packets are i.i.d. with the average loss.
+    channel = GilbertElliott(p=0.3, r=0.7, loss_good=0.02, loss_bad=0.4)
+    q = channel.average_loss
+    for k, m in [(8, 2), (16, 4)]:
+        n = k + m
+        figures = evaluate(channel, k, m)
+        assert figures.block_failure == pytest.approx(binom.sf(m, n, q), abs=1e-12)
+        assert figures.residual_loss == pytest.approx(q * binom.sf(m - 1, n - 1, q), abs=1e-12)
+
+
+def test_deep_interleaving_tends_to_independent_losses():
+    # T^D → stationary rows as D → ∞ (|1 − p − r| < 1), so a deeply interleaved block sees
+    # independent losses at the average rate: the binomial result (scipy.stats.binom).
+    channel = GilbertElliott.from_loss_burst(0.05, 5)
+    k, m = 16, 4
+    deep = evaluate(channel, k, m, depth=10_000)
+    assert deep.residual_loss == pytest.approx(0.05 * binom.sf(m - 1, k + m - 1, 0.05), rel=1e-9)
+    shallow = evaluate(channel, k, m, depth=1)
+    assert shallow.residual_loss > 10 * deep.residual_loss  # bursts dominate without interleaving
+
+
+def test_repair_range_is_consistent_and_monotone():
+    channel = GilbertElliott(p=0.02, r=0.25, loss_good=0.005, loss_bad=0.8)
+    rows = evaluate_repair_range(channel, 12, 12, depth=2)
+    assert [f.m for f in rows] == list(range(13))
+    for f in rows:
+        single = evaluate(channel, 12, f.m, depth=2)
+        assert single.residual_loss == pytest.approx(f.residual_loss, rel=1e-12, abs=1e-300)
+    residuals = [f.residual_loss for f in rows]
+    assert all(a >= b for a, b in zip(residuals, residuals[1:]))
+    # m = 0: nothing is recovered, residual = the average loss; block failure = P(any loss).
+    assert rows[0].residual_loss == pytest.approx(channel.average_loss, rel=1e-12)
+
+
+def test_small_case_by_enumeration():
+    # Brute force over all 2^n loss patterns with the chain's path probabilities (exhaustive sum,
+    # independent of the recursion): k = 3, m = 2, general Gilbert–Elliott, depth 2.
+    import itertools
+
+    channel = GilbertElliott(p=0.1, r=0.3, loss_good=0.05, loss_bad=0.9)
+    k, m, depth = 3, 2, 2
+    t = np.linalg.matrix_power(channel.transition_matrix(1), depth)
+    pi = [1 - channel.stationary_bad, channel.stationary_bad]
+    e = [channel.loss_good, channel.loss_bad]
+    failure = residual = 0.0
+    n = k + m
+    for states in itertools.product([0, 1], repeat=n):
+        path = pi[states[0]] * np.prod([t[a, b] for a, b in zip(states, states[1:])])
+        for lost in itertools.product([0, 1], repeat=n):
+            prob = path * np.prod([e[s] if x else 1 - e[s] for s, x in zip(states, lost)])
+            if sum(lost) > m:
+                failure += prob
+                residual += prob * sum(lost[:k]) / k
+    figures = evaluate(channel, k, m, depth)
+    assert figures.block_failure == pytest.approx(failure, rel=1e-12)
+    assert figures.residual_loss == pytest.approx(residual, rel=1e-12)
+
+
+# -- Monte Carlo ---------------------------------------------------------------------------------------
+
+MONTE_CARLO = [
+    # (k, m, depth, channel)
+    (8, 2, 1, GilbertElliott.from_loss_burst(0.1, 3)),
+    (16, 4, 1, GilbertElliott.from_loss_burst(0.05, 1)),
+    (4, 1, 2, GilbertElliott.bernoulli(0.2)),
+    (10, 4, 4, GilbertElliott.from_loss_burst(0.1, 5)),
+    (6, 3, 3, GilbertElliott(p=0.02, r=0.2, loss_good=0.01, loss_bad=0.7)),
+    (20, 6, 8, GilbertElliott.from_loss_burst(0.15, 8)),
+]
+
+
+def simulate(channel: GilbertElliott, k: int, m: int, depth: int, groups: int, seed) -> tuple[np.ndarray, np.ndarray]:
+    """Per-block (failed, unrecovered source packets) from one long seeded run of the link.
+
+    Interleaving as the planner models it: D blocks at a time, packet i of block b at link
+    position i·D + b of the group.
+    """
+    n = k + m
+    lost = GilbertElliottChannel(channel, seed=seed).losses(groups * n * depth)
+    blocks = lost.reshape(groups, n, depth).transpose(0, 2, 1).reshape(groups * depth, n)
+    total = blocks.sum(axis=1)
+    failed = total > m
+    unrecovered = np.where(failed, blocks[:, :k].sum(axis=1), 0)
+    return failed, unrecovered
+
+
+@pytest.mark.parametrize("k,m,depth,channel", MONTE_CARLO)
+def test_recursion_agrees_with_monte_carlo(k, m, depth, channel):
+    # Seeded Monte Carlo with our channel (itself checked against its configuration in
+    # test_channel.py).  Neighbouring blocks are correlated on a bursty link, so the standard
+    # error comes from batch means over 50 long batches, not from the naive binomial formula.
+    groups = max(1, 200_000 // depth)
+    failed, unrecovered = simulate(channel, k, m, depth, groups, seed=f"mc {k} {m} {depth}")
+    batches = 50
+    size = failed.size // batches
+    fail_batches = failed[: size * batches].reshape(batches, size).mean(axis=1)
+    resid_batches = unrecovered[: size * batches].reshape(batches, size).mean(axis=1) / k
+    figures = evaluate(channel, k, m, depth)
+    for estimates, exact in ((fail_batches, figures.block_failure), (resid_batches, figures.residual_loss)):
+        se = estimates.std(ddof=1) / math.sqrt(batches)
+        assert se > 0, "the Monte Carlo saw no failures: pick a harsher channel"
+        assert abs(estimates.mean() - exact) < 4 * se, (estimates.mean(), exact, se)
+
+
+# -- planning -------------------------------------------------------------------------------------------
+
+
+def test_effective_k_at_low_rates():
+    assert effective_k(32, rate=10, flush=0.5) == 5  # 10/s for 0.5 s: 5 datagrams
+    assert effective_k(32, rate=10, flush=0.5, depth=5) == 1
+    assert effective_k(8, rate=1000, flush=0.5) == 8
+    assert effective_k(8, rate=None, flush=None) == 8
+
+
+def test_plan_recommends_the_cheapest_acceptable():
+    request = PlanRequest(
+        channel=GilbertElliott.from_loss_burst(0.05, 2),
+        rate=100,
+        latency_budget=0.4,
+        max_overhead=0.5,
+        target=1e-3,
+        depths=(1, 2, 4),
+    )
+    result = plan(request)
+    acceptable = [c for c in result.candidates if c.acceptable]
+    assert acceptable and result.recommended in acceptable
+    best = result.recommended
+    assert all(best.overhead <= c.overhead + 1e-12 for c in acceptable)
+    assert all(c.span <= 0.4 + 1e-9 and c.m <= c.k_effective * 0.5 + 1e-9 for c in result.candidates)
+    # The recommended row's figures are the exact ones for its effective code.
+    exact = evaluate(request.channel, best.k_effective, best.m, best.depth)
+    assert best.residual_loss == exact.residual_loss
+
+
+def test_plan_without_a_solution():
+    request = PlanRequest(channel=GilbertElliott.from_loss_burst(0.3, 10), rate=50, latency_budget=0.1, max_overhead=0.2, target=1e-6)
+    result = plan(request)
+    assert result.recommended is None and result.candidates
+
+
+def test_plan_needs_no_fec_on_a_clean_link():
+    request = PlanRequest(channel=GilbertElliott.bernoulli(1e-5), rate=50, latency_budget=0.2, max_overhead=0.5, target=1e-3)
+    assert plan(request).recommended.m == 0
+
+
+@pytest.mark.parametrize(
+    "kwargs,message",
+    [
+        (dict(rate=0), "rate"),
+        (dict(latency_budget=-1), "latency"),
+        (dict(max_overhead=1.5), "RFC 6363"),
+        (dict(target=0), "target"),
+        (dict(k_values=(0,)), "k must be"),
+        (dict(depths=(0,)), "depth"),
+        (dict(k_values=(300,)), "255"),
+    ],
+)
+def test_plan_request_validation(kwargs, message):
+    base = dict(channel=GilbertElliott.bernoulli(0.1), rate=10.0, latency_budget=0.5, max_overhead=0.5, target=1e-3)
+    base.update(kwargs)
+    with pytest.raises(PlanError, match=message):
+        PlanRequest(**base)
+
+
+def test_code_limits():
+    with pytest.raises(PlanError, match="RFC 5510"):
+        evaluate(GilbertElliott.bernoulli(0.1), MAX_BLOCK_PACKETS, 1)
+    assert parse_int_list("1,2,8-10") == (1, 2, 8, 9, 10)
+    with pytest.raises(PlanError):
+        parse_int_list("a,b")
+
+
+# -- the command ---------------------------------------------------------------------------------------
+
+
+def run_plan(capsys, *argv):
+    code = cli.main(["plan", *argv])
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+def test_evaluation_mode_json(capsys):
+    code, out, _ = run_plan(capsys, "--k", "16", "--m", "4", "--loss", "0.05", "--burst", "1", "--json")
+    assert code == 0
+    data = json.loads(out)
+    exact = evaluate(GilbertElliott.from_loss_burst(0.05, 1), 16, 4)
+    assert data["block_failure"] == exact.block_failure
+    assert data["residual_loss"] == exact.residual_loss
+    assert data["channel"]["mean_burst"] == pytest.approx(1.0)
+
+
+def test_evaluation_mode_independent_loss_matches_scipy(capsys):
+    # --loss alone = independent losses; scipy.stats.binom as oracle.
+    code, out, _ = run_plan(capsys, "--k", "16", "--m", "4", "--loss", "0.05", "--json")
+    data = json.loads(out)
+    assert data["block_failure"] == pytest.approx(binom.sf(4, 20, 0.05), rel=1e-9)
+    assert data["residual_loss"] == pytest.approx(0.05 * binom.sf(3, 19, 0.05), rel=1e-9)
+
+
+def test_evaluation_mode_text_and_short_block(capsys):
+    code, out, _ = run_plan(capsys, "--k", "32", "--m", "8", "--ge-p", "0.01", "--ge-r", "0.3", "--rate", "10", "--latency-ms", "1000")
+    assert code == 0
+    assert "effective k 10" in out and "residual datagram loss" in out
+
+
+def test_plan_table(capsys):
+    # Demo scenario (invented): a hill-top radio relay carrying a weather station's telemetry at
+    # 40 datagrams/s, 3 % loss in fades of about 2 packets, 0.8 s of latency allowed.
+    code, out, _ = run_plan(capsys, "--loss", "0.03", "--burst", "2", "--rate", "40", "--latency-ms", "800", "--interleave", "1,2,4", "--target", "1e-3")
+    assert code == 0
+    assert "recommended (*)" in out
+    assert sum(1 for line in out.splitlines() if line.startswith("*")) == 1
+    assert "k_eff" in out and "span_ms" in out
+
+
+def test_plan_json(capsys):
+    code, out, _ = run_plan(capsys, "--loss", "0.03", "--burst", "2", "--rate", "40", "--latency-ms", "800", "--interleave", "1,2", "--json")
+    data = json.loads(out)
+    assert code == 0 and data["recommended"]["acceptable"]
+    assert {"k", "m", "depth", "overhead", "block_failure", "residual_loss", "block_span_ms"} <= set(data["candidates"][0])
+
+
+def test_plan_reports_no_solution_with_exit_1(capsys):
+    code, out, _ = run_plan(capsys, "--loss", "0.3", "--burst", "10", "--rate", "50", "--latency-ms", "100", "--max-overhead", "0.2", "--target", "1e-6")
+    assert code == 1 and "no candidate meets" in out
+
+
+@pytest.mark.parametrize(
+    "argv,message",
+    [
+        (["--rate", "10"], "describe the link"),
+        (["--loss", "0.1"], "--rate"),
+        (["--loss", "0.1", "--ge-p", "0.1", "--ge-r", "0.2", "--rate", "5"], "not both"),
+        (["--loss", "0.9", "--burst", "1", "--rate", "5"], "mean burst must be at least"),
+        (["--loss", "0.1", "--k", "16"], "both --k and --m"),
+        (["--loss", "0.1", "--k", "250", "--m", "10"], "255"),
+        (["--loss", "0.1", "--rate", "5", "--k-values", "x"], "not a list"),
+        (["--from-metrics", "ftp://x", "--rate", "5"], "http"),
+    ],
+)
+def test_plan_bad_input_is_a_clean_error(capsys, argv, message):
+    code, out, err = run_plan(capsys, *argv)
+    assert code == 2 and message in err
+
+
+def test_help_states_the_convention(capsys):
+    with pytest.raises(SystemExit):
+        cli.main(["plan", "--help"])
+    out = capsys.readouterr().out
+    assert "Gilbert 1960" in out and "P(good→bad)" in out and "P(bad→good)" in out
+
+
+# -- --from-metrics ---------------------------------------------------------------------------------
+
+CANNED_PAGE = """\
+# HELP fecproxy_link_loss_ratio link loss before recovery, estimated by the receiver
+# TYPE fecproxy_link_loss_ratio gauge
+fecproxy_link_loss_ratio{direction="forward"} 0.04
+fecproxy_link_loss_ratio{direction="return"} 0.01
+# HELP fecproxy_link_mean_burst_packets mean run of consecutive lost packets
+# TYPE fecproxy_link_mean_burst_packets gauge
+fecproxy_link_mean_burst_packets{direction="forward"} 2.5
+fecproxy_link_mean_burst_packets{direction="return"} 1.2
+fecproxy_other_total 12
+"""
+
+
+@pytest.fixture
+def metrics_url():
+    """A tiny HTTP server on 127.0.0.1 serving a canned Prometheus page."""
+
+    class Handler(http.server.BaseHTTPRequestHandler):
+        def do_GET(self):  # noqa: N802 (http.server naming)
+            body = CANNED_PAGE.encode()
+            self.send_response(200 if self.path == "/metrics" else 404)
+            self.send_header("Content-Type", "text/plain; version=0.0.4")
+            self.send_header("Content-Length", str(len(body)))
+            self.end_headers()
+            self.wfile.write(body)
+
+        def log_message(self, *args):
+            pass
+
+    server = http.server.ThreadingHTTPServer(("127.0.0.1", 0), Handler)
+    thread = threading.Thread(target=server.serve_forever, kwargs={"poll_interval": 0.05}, daemon=True)
+    thread.start()
+    try:
+        yield f"http://127.0.0.1:{server.server_address[1]}/metrics"
+    finally:
+        server.shutdown()
+        server.server_close()
+        thread.join(timeout=5)
+
+
+def test_from_metrics(capsys, metrics_url):
+    code, out, err = run_plan(capsys, "--from-metrics", metrics_url, "--metrics-select", "direction=forward", "--k", "16", "--m", "4", "--json")
+    assert code == 0, err
+    data = json.loads(out)
+    assert data["channel"]["average_loss"] == pytest.approx(0.04)
+    assert data["channel"]["mean_burst"] == pytest.approx(2.5)
+    assert data["residual_loss"] == evaluate(GilbertElliott.from_loss_burst(0.04, 2.5), 16, 4).residual_loss
+
+
+def test_from_metrics_needs_a_selector_when_ambiguous(capsys, metrics_url):
+    code, _, err = run_plan(capsys, "--from-metrics", metrics_url, "--rate", "20")
+    assert code == 2 and "--metrics-select" in err
+
+
+def test_from_metrics_unreachable(capsys):
+    code, _, err = run_plan(capsys, "--from-metrics", "http://127.0.0.1:9/metrics", "--rate", "20", "--metrics-timeout", "2")
+    assert code == 2 and "cannot fetch" in err
+
+
+def test_prometheus_text_parser():
+    samples = parse_prometheus_text('a_b{x="1",y="q\\"}"} 3.5\n# c\nbad line\nz NaN\nw 2 1700000000\n')
+    assert samples[0] == ("a_b", {"x": "1", "y": 'q\\"}'}, 3.5)
+    assert math.isnan(samples[1][2]) and samples[2] == ("w", {}, 2.0)
