@@ -28,6 +28,7 @@ from pathlib import Path
 import yaml
 
 from . import packet
+from .repair_rule import repair_count
 
 # --------------------------------------------------------------------------------------------
 # Limits and defaults.  Each is named, with the reason for its value.
@@ -281,14 +282,11 @@ class FecSection:
         A full block gets m.  A short block (closed by its flush timer) gets, by
         ``short_block_repair``: proportional = ceil(m·k'/k), which is ≥ 1 whenever m > 0, so
         sparse telemetry is neither left bare nor flooded; full = m.  m = 0 always gives 0.
-        Must agree with encoder.EncoderSettings.repair_for (a test checks they do).
+        The rule itself lives in fecproxy.repair_rule, shared with the encoder and planner.
         """
         if isinstance(k_actual, bool) or not isinstance(k_actual, int) or not 1 <= k_actual <= self.block_size:
             raise ValueError(f"k_actual must be an integer 1..{self.block_size}, got {k_actual!r}")
-        m = self.repair
-        if m == 0 or k_actual == self.block_size or self.short_block_repair is ShortBlockRepair.FULL:
-            return m
-        return -(-m * k_actual // self.block_size)  # exact integer ceil(m·k'/k); ≥ 1 as m, k' ≥ 1
+        return repair_count(self.block_size, self.repair, k_actual, str(self.short_block_repair))
 
 
 @dataclass(frozen=True)

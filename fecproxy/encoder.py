@@ -9,7 +9,6 @@ repair packets (RFC 5510 §8.2 code with the block's actual k).
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass, field
 from functools import lru_cache
 
@@ -17,9 +16,8 @@ import numpy as np
 
 from . import packet
 from .codec import BlockCode
+from .repair_rule import SHORT_BLOCK_RULES, repair_count
 
-#: Repair counts a short block may get; see EncoderSettings.repair_for.
-SHORT_BLOCK_RULES = ("proportional", "full")
 
 
 class DatagramTooLarge(ValueError):
@@ -51,15 +49,8 @@ class EncoderSettings:
             raise ValueError(f"short_block_repair {self.short_block_repair!r} not one of {SHORT_BLOCK_RULES}")
 
     def repair_for(self, k_actual: int) -> int:
-        """Repair packets for a block of k_actual datagrams.
-
-        proportional: ceil(m·k'/k), at least 1 when m > 0 — keeps the overhead ratio, so sparse
-        telemetry closed by the timer is neither left bare nor flooded with repair.
-        full: always m — the strongest protection for short blocks, at up to m/1 overhead.
-        """
-        if self.repair == 0 or k_actual == self.block_size or self.short_block_repair == "full":
-            return self.repair
-        return max(1, math.ceil(self.repair * k_actual / self.block_size))
+        """Repair packets for a block of k_actual datagrams (see fecproxy.repair_rule)."""
+        return repair_count(self.block_size, self.repair, k_actual, self.short_block_repair)
 
 
 @dataclass
