@@ -23,9 +23,11 @@ from . import gf256
 
 #: RFC 5510 §8.2 allows n ≤ 255 for m = 8 (the field has 255 non-zero points).
 MAX_ENCODING_SYMBOLS = 255
-#: Loss patterns whose inverse we keep per code.  A link usually repeats a few
-#: patterns (one or two lost packets at a few positions); 256 entries of at most
-#: 255×255 bytes is ≤ 16 MiB in the worst case and far less for usual m.
+#: Loss patterns whose decoding matrix we keep per code.  A link usually repeats a few
+#: patterns (one or two lost packets at a few positions).  Each entry holds the prepared
+#: multiplier for e lost symbols out of k: k·e·(8/b)·8 bytes of gather indices with b = 2
+#: or 4 (2 KiB for k=16, e=4 with b=2; 176 KiB for k=200, e=55; at most about 260 KiB at
+#: k ≈ e ≈ 128), so 256 entries stay under ~66 MiB even if every pattern were a worst case.
 INVERSE_CACHE_SIZE = 256
 
 
@@ -56,14 +58,54 @@ def _as_symbols(symbols, count: int | None, what: str) -> np.ndarray:
         if array.dtype != np.uint8 or array.ndim != 2:
             raise CodecError(f"{what} must be a 2-D uint8 array, got {array.dtype} with shape {array.shape}")
     else:
-        rows = list(symbols)
-        lengths = {len(row) for row in rows}
-        if len(lengths) > 1:
-            raise CodecError(f"{what} symbols must all have one length, got lengths {sorted(lengths)}")
-        length = lengths.pop() if lengths else 0
-        array = np.frombuffer(b"".join(bytes(row) for row in rows), dtype=np.uint8).reshape(len(rows), length)
+        try:
+            rows = list(symbols)
+        except TypeError:
+            raise CodecError(f"{what} must be a 2-D uint8 array or a sequence of bytes, got {type(symbols).__name__}") from None
+        array = _stack(rows, what)
     if count is not None and array.shape[0] != count:
         raise CodecError(f"{what} must have {count} symbols, got {array.shape[0]}")
+    return array
+
+
+def _symbol_length(symbol, what: str) -> int:
+    """Length of one symbol given as bytes-like or 1-D uint8 array; anything else is a CodecError."""
+    if isinstance(symbol, np.ndarray):
+        if symbol.dtype != np.uint8 or symbol.ndim != 1:
+            raise CodecError(f"{what} symbol must be a 1-D uint8 array, got {symbol.dtype} with shape {symbol.shape}")
+        return symbol.shape[0]
+    if isinstance(symbol, (bytes, bytearray, memoryview)):
+        return memoryview(symbol).nbytes
+    raise CodecError(f"{what} symbol must be bytes or a 1-D uint8 array, got {type(symbol).__name__}")
+
+
+def _stack(rows: Sequence, what: str, length: int | None = None) -> np.ndarray:
+    """One writable (len(rows), L) uint8 array from equal-length symbols, copying each byte once.
+
+    The fast path joins the rows' buffers in one C call (bytes, bytearray, memoryview
+    and contiguous 1-D uint8 arrays alike); anything it cannot join or whose size does
+    not add up goes through the row-by-row path, which names the fault.
+    """
+    if length is None:
+        try:
+            lengths = set(map(len, rows))
+        except TypeError:
+            lengths = {_symbol_length(row, what) for row in rows}
+        if len(lengths) > 1:
+            lengths = {_symbol_length(row, what) for row in rows}
+            raise CodecError(f"{what} symbols must all have one length, got lengths {sorted(lengths)}")
+        length = lengths.pop() if lengths else 0
+    try:
+        joined = bytearray().join(rows)
+    except (TypeError, BufferError, ValueError):
+        joined = None
+    if joined is not None and len(joined) == len(rows) * length:
+        return np.frombuffer(joined, dtype=np.uint8).reshape(len(rows), length)
+    array = np.empty((len(rows), length), dtype=np.uint8)
+    for position, row in enumerate(rows):
+        if _symbol_length(row, what) != length:
+            raise CodecError(f"{what} symbols must all have one length, got {_symbol_length(row, what)} and {length}")
+        array[position] = row if isinstance(row, np.ndarray) else np.frombuffer(row, dtype=np.uint8)
     return array
 
 
@@ -78,8 +120,9 @@ class BlockCode:
         self.k = k
         self.n = n
         self.generator = _generator(k, n)
-        self._repair_columns = np.ascontiguousarray(self.generator[:, k:].T)  # (n−k, k)
-        self._inverses: OrderedDict[tuple, np.ndarray] = OrderedDict()
+        # Repair symbol j is column j of GM applied to the source: (n − k, k) coefficients.
+        self._encoder = gf256.Multiplier(self.generator[:, k:].T)
+        self._inverses: OrderedDict[tuple, tuple[gf256.Multiplier, np.ndarray]] = OrderedDict()
 
     def __repr__(self) -> str:
         return f"BlockCode(k={self.k}, n={self.n})"
@@ -91,69 +134,88 @@ class BlockCode:
     def encode(self, source) -> np.ndarray:
         """Repair symbols k..n−1 as an (n−k, L) uint8 array."""
         data = _as_symbols(source, self.k, "source")
-        if self.n == self.k:
-            return np.zeros((0, data.shape[1]), dtype=np.uint8)
-        return gf256.matmul(self._repair_columns, data)
+        return self._encoder(data)
 
     def decode(self, received: Mapping[int, object]) -> np.ndarray:
         """The k source symbols as a (k, L) array, from any ≥ k distinct encoding symbols."""
-        indices, symbols = self._check_received(received)
-        source_present = [i for i in indices if i < self.k]
-        missing = [i for i in range(self.k) if i not in set(source_present)]
-        length = symbols.shape[1]
-        out = np.empty((self.k, length), dtype=np.uint8)
-        position = {index: row for row, index in enumerate(indices)}
-        for i in source_present:
-            out[i] = symbols[position[i]]
+        missing, repairs, stacked = self._select(received)
         if missing:
-            rebuilt = self._rebuild(indices, symbols, missing)
-            out[missing] = rebuilt
-        return out
+            rebuilt, rows = self._rebuild(missing, repairs, stacked)
+            stacked[rows] = rebuilt  # the repair symbols stood in these rows; stacked is our own copy
+        return stacked
 
     def recover(self, received: Mapping[int, object]) -> dict[int, np.ndarray]:
         """Only the missing source symbols, {index: symbol} — what a receiver needs to deliver."""
-        indices, symbols = self._check_received(received)
-        present = set(indices)
-        missing = [i for i in range(self.k) if i not in present]
+        missing, repairs, stacked = self._select(received)
         if not missing:
             return {}
-        rebuilt = self._rebuild(indices, symbols, missing)
+        rebuilt, _rows = self._rebuild(missing, repairs, stacked)
         return {index: rebuilt[row] for row, index in enumerate(missing)}
 
-    def _check_received(self, received: Mapping[int, object]) -> tuple[list[int], np.ndarray]:
-        indices = sorted(received)
-        for index in indices:
-            if not (isinstance(index, (int, np.integer)) and 0 <= index < self.n):
-                raise CodecError(f"encoding symbol index {index!r} out of range 0..{self.n - 1}")
+    def _select(self, received: Mapping[int, object]) -> tuple[list[int], list[int], np.ndarray]:
+        """Validate the received symbols and stack the k that decoding uses into one array.
+
+        Returns (missing source indices, repair indices used, stacked): stacked is a fresh
+        (k, L) array whose row i is source symbol i, or, for the j-th missing one, the j-th
+        used repair symbol.  Only those k rows are copied; extra symbols are only length-checked
+        and never read.
+        """
+        if not isinstance(received, Mapping):
+            raise CodecError(f"received must be a mapping {{index: symbol}}, got {type(received).__name__}")
+        indices = sorted(received) if set(map(type, received)) == {int} else None  # fast path
+        if indices is None or (indices and not (0 <= indices[0] and indices[-1] < self.n)):
+            indices = []
+            for index in received:  # slow path: numpy integers, or a bad index to name
+                if isinstance(index, bool) or not isinstance(index, (int, np.integer)) or not 0 <= index < self.n:
+                    raise CodecError(f"encoding symbol index {index!r} out of range 0..{self.n - 1}")
+                indices.append(int(index))
+            indices.sort()
+            received = {int(index): symbol for index, symbol in received.items()}
         if len(indices) < self.k:
             raise NotEnoughSymbols(f"need {self.k} encoding symbols to decode, got {len(indices)}")
-        symbols = _as_symbols([np.asarray(received[i], dtype=np.uint8).tobytes()
-                               if isinstance(received[i], np.ndarray) else received[i]
-                               for i in indices], None, "received")
-        return [int(i) for i in indices], symbols
+        symbols = list(received.values())
+        try:
+            lengths = set(map(len, symbols))
+        except TypeError:
+            lengths = {_symbol_length(symbol, "received") for symbol in symbols}
+        if len(lengths) > 1:
+            lengths = {_symbol_length(symbol, "received") for symbol in symbols}
+            raise CodecError(f"received symbols must all have one length, got lengths {sorted(lengths)}")
+        missing = [i for i in range(self.k) if i not in received]
+        known_count = self.k - len(missing)
+        repairs = indices[known_count : self.k]  # sorted: sources first, then the first e repairs
+        if missing:
+            stand_in = dict(zip(missing, repairs))
+            rows = [received[stand_in.get(i, i)] for i in range(self.k)]
+        else:
+            rows = [received[i] for i in range(self.k)]
+        return missing, repairs, _stack(rows, "received", lengths.pop())
 
-    def _rebuild(self, indices: Sequence[int], symbols: np.ndarray, missing: list[int]) -> np.ndarray:
+    def _rebuild(self, missing: list[int], repairs: list[int], stacked: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Solve only for the missing source rows (RFC 5510 §8.3, reduced to the lost positions).
 
-        With S the known source rows and R = repair rows used, for every used repair column j:
-        Σ_{i∈missing} GM[i,j]·s_i = r_j − Σ_{i∈known} GM[i,j]·s_i.  The |missing|×|missing|
-        system's inverse depends only on the loss pattern, so it is cached.
+        With K the known source rows and R the repair rows used, for every used repair column j:
+        Σ_{i∈missing} GM[i,j]·s_i = r_j − Σ_{i∈known} GM[i,j]·s_i.  With A the e×e system and
+        C the known part, missing = A⁻¹·R ⊕ (A⁻¹·C)·K: one e×k matrix applied to the stacked
+        rows (R standing in the missing rows) in a single pass of the fast kernel.  It depends
+        only on the loss pattern, so the prepared multiplier is cached.  Returns the rebuilt
+        rows and the index array of their positions.
         """
-        position = {index: row for row, index in enumerate(indices)}
-        known = [i for i in indices if i < self.k]
-        repairs = [i for i in indices if i >= self.k][: len(missing)]
         key = (tuple(missing), tuple(repairs))
-        inverse = self._inverses.get(key)
-        if inverse is None:
+        entry = self._inverses.get(key)
+        if entry is None:
+            lost = set(missing)
+            known = [i for i in range(self.k) if i not in lost]
             system = self.generator[np.ix_(missing, repairs)].T  # (e, e): row per repair equation
             inverse = gf256.invert_matrix(system)
-            self._inverses[key] = inverse
+            combined = np.zeros((len(missing), self.k), dtype=np.uint8)
+            combined[:, missing] = inverse  # the j-th missing row holds the j-th repair symbol
+            combined[:, known] = gf256.matmul_small(inverse, self.generator[np.ix_(known, repairs)].T)
+            entry = (gf256.Multiplier(combined), np.array(missing, dtype=np.intp))
+            self._inverses[key] = entry
             if len(self._inverses) > INVERSE_CACHE_SIZE:
                 self._inverses.popitem(last=False)
         else:
             self._inverses.move_to_end(key)
-        rhs = symbols[[position[j] for j in repairs]]
-        if known:
-            contribution = gf256.matmul(self.generator[np.ix_(known, repairs)].T, symbols[[position[i] for i in known]])
-            rhs = rhs ^ contribution
-        return gf256.matmul(inverse, rhs)
+        multiplier, rows = entry
+        return multiplier(stacked), rows
