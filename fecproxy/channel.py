@@ -341,13 +341,26 @@ class LossEstimator:
     of a bad packet (the maximum-likelihood estimates for a Markov chain), average loss = lost /
     samples, mean burst = 1/r̂.  Each sample costs O(1): four transition counters, plus a deque of
     the window's flags so the oldest pair can be taken back out.
+
+    Segments: only *adjacent* packets make a transition.  A receiver sees the source positions of
+    each block but not the repair packets sent between two blocks' sources, so the last source of
+    one block and the first of the next are m + 1 link steps apart; counting that pair as one step
+    would mix the chain and bias r̂ up, the mean burst down (by about
+    ((1 − [T^(m+1)]_bb) − r)/(k·r) relative, where T^(m+1)[bad→bad] = π_b + (1 − π_b)(1 − p − r)^(m+1):
+    −8 % for k = 8, m = 2 at 5 % loss, mean burst 2).  :meth:`observe_block` therefore makes each
+    block its own segment: no transition is counted across a segment boundary, every counted pair is a
+    true one-step pair, and the order in which blocks are reported no longer matters (a failed block
+    is reported at its hold-time expiry, after later blocks that completed).  The loss ratio is
+    unbiased either way: every source position has the stationary loss probability.
     """
 
     def __init__(self, window: int | None = None) -> None:
         if window is not None and (not isinstance(window, int) or window < 2):
             raise ChannelConfigError(f"window must be an int ≥ 2 samples (or None for all), got {window!r}")
         self.window = window
-        self._flags: deque[bool] = deque()
+        #: Per sample in the window: bit 0 = lost, bit 1 = paired with the sample before it.
+        self._flags: deque[int] = deque()
+        #: Outcome of the last sample, or None when the next sample starts a new segment.
         self._last: bool | None = None
         self._samples = 0
         self._lost = 0
@@ -368,18 +381,25 @@ class LossEstimator:
     def observe(self, lost: bool) -> None:
         """One packet: True if it was lost, False if it arrived."""
         lost = bool(lost)
-        if self._last is not None:
+        linked = self._last is not None
+        if linked:
             self._count_pair(self._last, lost, +1)
         self._last = lost
         self._samples += 1
         self._lost += lost
         if self.window is not None:
-            self._flags.append(lost)
+            self._flags.append(lost | (linked << 1))
             if len(self._flags) > self.window:
-                oldest = self._flags.popleft()
-                self._count_pair(oldest, self._flags[0], -1)
-                self._samples -= 1
-                self._lost -= oldest
+                self._forget_oldest()
+
+    def _forget_oldest(self) -> None:
+        oldest = self._flags.popleft()
+        self._samples -= 1
+        self._lost -= oldest & 1
+        following = self._flags[0]
+        if following & 2:  # the pair (oldest, following) was counted: take it back out
+            self._count_pair(bool(oldest & 1), bool(following & 1), -1)
+            self._flags[0] = following & 1
 
     def observe_many(self, flags: Iterable[bool]) -> None:
         for lost in flags:
@@ -404,6 +424,25 @@ class LossEstimator:
         self._last = lost
         self._samples += count
         self._lost += count if lost else 0
+
+    def end_segment(self) -> None:
+        """The next packet is not the link neighbour of the last one: count no transition between them."""
+        self._last = None
+
+    def observe_block(self, arrived_mask: int, span: int) -> None:
+        """A block's source positions 0..span−1 in order (bit i of ``arrived_mask`` set = arrived),
+        as a segment of its own; see the class docstring for why blocks are not chained."""
+        span = int(span)
+        self.end_segment()
+        position = 0
+        while position < span:
+            lost = not (arrived_mask >> position) & 1
+            run = position + 1
+            while run < span and (not (arrived_mask >> run) & 1) == lost:
+                run += 1
+            self.observe_run(lost, run - position)
+            position = run
+        self.end_segment()
 
     def reset(self) -> None:
         self.__init__(self.window)

@@ -17,10 +17,14 @@ import urllib.request
 from .channel import ChannelConfigError, GilbertElliott, channel_from_figures
 from .planner import (
     DEFAULT_K_VALUES,
+    DEFAULT_SHORT_BLOCK_RULE,
+    SHORT_BLOCK_RULES,
     Candidate,
     Plan,
     PlanError,
     PlanRequest,
+    block_span,
+    effective_code,
     effective_k,
     evaluate,
     parse_int_list,
@@ -51,6 +55,9 @@ EPILOG = (
     CONVENTION + " Residual loss is exact (binomial for independent loss; the forward recursion of "
     "Cidon, Khamisy & Sidi 1993 for Gilbert–Elliott), with the k source packets sent before the m "
     "repair packets and a block's packets D positions apart when interleaving at depth D. "
+    "When the rate cannot fill a block within the flush time, the sender closes it with k' < k "
+    "datagrams and m' repair packets by its short-block rule (proportional: m' = ceil(m·k'/k), at least 1; "
+    "full: m' = m); the figures are those of (k', m'), and the overhead budget applies to m'/k'. "
     "Exit status: 0 with a recommendation (or in evaluation mode), 1 when no candidate meets the "
     "target within the budgets, 2 on bad input."
 )
@@ -105,7 +112,14 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         help="time after which the sender closes a block that has not filled (default: the latency budget); "
         "at low rates a block holds only rate·flush/D datagrams, and that effective k is what is evaluated",
     )
-    need.add_argument("--max-overhead", type=float, default=DEFAULT_MAX_OVERHEAD, help="largest m/k allowed (≤ 1, RFC 6363 §8.2)")
+    need.add_argument(
+        "--short-block-repair",
+        choices=SHORT_BLOCK_RULES,
+        default=DEFAULT_SHORT_BLOCK_RULE,
+        help="the sender's fec.short_block_repair: repair packets of a block the flush timer closes short "
+        "(proportional: ceil(m·k'/k), at least 1; full: m)",
+    )
+    need.add_argument("--max-overhead", type=float, default=DEFAULT_MAX_OVERHEAD, help="largest m'/k' on the link (≤ 1, RFC 6363 §8.2)")
     need.add_argument("--target", type=float, default=DEFAULT_TARGET, help="residual datagram loss to reach")
 
     codes = parser.add_argument_group("codes")
@@ -226,34 +240,55 @@ def _verdict(c: Candidate) -> str:
 
 
 def format_table(result: Plan) -> str:
+    """The plan as a table.  Columns k' and m' (the block the sender really sends at this rate)
+    appear only when some row's blocks are closed short by the flush timer."""
     req = result.request
+    short = any(c.short for c in result.candidates)
     lines = [
         f"link: {req.channel.describe()}",
         f"rate {req.rate:g} datagrams/s, latency budget {req.latency_budget * 1000:g} ms, "
         f"flush {req.flush_time * 1000:g} ms, max overhead {req.max_overhead:g}, target residual loss {req.target:g}",
         "",
-        f"{'':1} {'k':>4} {'k_eff':>5} {'m':>4} {'D':>3} {'overhead':>8} {'block_fail':>10} {'residual':>10} {'span_ms':>8}  verdict",
     ]
+    effective_head = " " + "k'".rjust(4) + " " + "m'".rjust(4) if short else ""
+    lines.append(
+        f"{'':1} {'k':>4} {'m':>4}{effective_head} {'D':>3} {'overhead':>8} {'block_fail':>10} {'residual':>10} {'span_ms':>8}  verdict"
+    )
     for c in result.candidates:
         mark = "*" if c is result.recommended else " "
+        effective = f" {c.k_effective:>4} {c.m_effective:>4}" if short else ""
         lines.append(
-            f"{mark} {c.k:>4} {c.k_effective:>5} {c.m:>4} {c.depth:>3} {c.overhead:>8.3f} {c.block_failure:>10.3g} "
+            f"{mark} {c.k:>4} {c.m:>4}{effective} {c.depth:>3} {c.overhead:>8.3f} {c.block_failure:>10.3g} "
             f"{c.residual_loss:>10.3g} {c.span * 1000:>8.1f}  {_verdict(c)}"
         )
     lines.append("")
     best = result.recommended
     if best is not None:
+        sent = f" (blocks close short at this rate: k'={best.k_effective} m'={best.m_effective})" if best.short else ""
         lines.append(
-            f"recommended (*): k={best.k_effective} m={best.m} interleave D={best.depth} — overhead {best.overhead:.3f}, "
+            f"recommended (*): k={best.k} m={best.m} interleave D={best.depth}{sent} — overhead {best.overhead:.3f}, "
             f"residual loss {best.residual_loss:.3g}, block span {best.span * 1000:.1f} ms"
         )
     else:
         lowest = min(result.candidates, key=lambda c: c.residual_loss)
         lines.append(
             f"no candidate meets residual loss {req.target:g} within the budgets; the lowest is {lowest.residual_loss:.3g} "
-            f"at k={lowest.k_effective} m={lowest.m} D={lowest.depth} — allow more overhead, latency or interleaving"
+            f"at k={lowest.k} m={lowest.m} D={lowest.depth} — allow more overhead, latency or interleaving"
         )
     lines.append("(each row: the fewest repair packets meeting the target for that k and D, else the most the overhead budget allows)")
+    caps = {d: effective_k(max(req.k_values), req.rate, req.flush_time, d) for d in req.depths}
+    capped = {d: cap for d, cap in caps.items() if any(k > cap for k in req.k_values)}
+    if capped:
+        at = ", ".join(f"{cap} at D={d}" for d, cap in capped.items())
+        lines.append(
+            f"(at {req.rate:g} datagrams/s a block the {req.flush_time * 1000:g} ms flush timer closes holds at most {at}: "
+            f"larger k send the same blocks, so a row repeating another's (k', m') is listed once)"
+        )
+    if short:
+        lines.append(
+            f"(k', m': the block the sender really sends at this rate — closed by the {req.flush_time * 1000:g} ms flush "
+            f"timer, repair by the {req.short_block_repair} short-block rule; the figures are those of (k', m'))"
+        )
     return "\n".join(lines)
 
 
@@ -268,24 +303,31 @@ def _evaluate_one(args: argparse.Namespace, channel: GilbertElliott, depths: tup
         flush = (args.flush_ms if args.flush_ms is not None else args.latency_ms) / 1000.0
         if not (math.isfinite(args.rate) and args.rate > 0 and math.isfinite(flush) and flush > 0):
             raise PlanError(f"rate and flush time must be > 0, got rate {args.rate!r} and flush {flush * 1000!r} ms")
-    k_eff = effective_k(args.k, args.rate, flush, depth)
-    figures = evaluate(channel, k_eff, args.m, depth)
+    k_eff, m_eff = effective_code(args.k, args.m, args.rate, flush, depth, args.short_block_repair)
+    figures = evaluate(channel, k_eff, m_eff, depth)
     out = {
         "k": args.k,
         "k_effective": k_eff,
         "m": args.m,
+        "m_effective": m_eff,
+        "short_block_repair": args.short_block_repair,
         "depth": depth,
         "overhead": figures.overhead,
         "block_failure": figures.block_failure,
         "residual_loss": figures.residual_loss,
-        "block_span_ms": None if args.rate is None else k_eff * depth / args.rate * 1000.0,
+        "block_span_ms": None if args.rate is None else block_span(args.k, k_eff, args.rate, flush, depth) * 1000.0,
         "channel": _channel_dict(channel),
     }
     if args.json:
         print(json.dumps(out, indent=2))
     else:
         print(f"link: {channel.describe()}")
-        short = f" (effective k {k_eff} at {args.rate:g}/s with flush {flush * 1000:g} ms)" if k_eff != args.k else ""
+        short = (
+            f" (effective k {k_eff} m {m_eff} at {args.rate:g}/s: the {flush * 1000:g} ms flush closes blocks short, "
+            f"{args.short_block_repair} rule)"
+            if k_eff != args.k
+            else ""
+        )
         print(f"code: k={args.k} m={args.m} interleave D={depth}{short}, overhead {figures.overhead:.3f}")
         print(f"block failure probability: {figures.block_failure:.6g}")
         print(f"residual datagram loss:    {figures.residual_loss:.6g}")
@@ -312,6 +354,7 @@ def main(args: argparse.Namespace) -> int:
             k_values=parse_int_list(args.k_values),
             depths=depths,
             flush=None if args.flush_ms is None else args.flush_ms / 1000.0,
+            short_block_repair=args.short_block_repair,
         )
         result = plan(request)
     except (PlanError, ChannelConfigError) as exc:
@@ -325,6 +368,7 @@ def main(args: argparse.Namespace) -> int:
                     "rate": request.rate,
                     "latency_budget_ms": request.latency_budget * 1000.0,
                     "flush_ms": request.flush_time * 1000.0,
+                    "short_block_repair": request.short_block_repair,
                     "max_overhead": request.max_overhead,
                     "target": request.target,
                     "candidates": [c.as_dict() for c in result.candidates],

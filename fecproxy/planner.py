@@ -13,6 +13,10 @@ candidate codes in a fraction of a second.
   repair packets separately.  The chain starts in its stationary distribution.
 * Interleaving depth D: a block's packets sit D positions apart on the link, so the recursion steps
   with the D-step transition matrix T^D.
+* Short blocks: when the datagram rate cannot fill k datagrams before the sender's flush timer, a
+  block closes with k' < k datagrams and gets m' repair packets by the sender's own short-block
+  rule (:func:`fecproxy.repair_rule.repair_count`, the function the encoder calls), so the code
+  evaluated is (k', m'), not (k, m).
 
 Residual loss = E[source packets lost and not recovered] / k, where a lost source packet is
 unrecoverable exactly when its block has more than m losses in total (MDS: any k packets rebuild it).
@@ -27,6 +31,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .channel import GilbertElliott
+from .repair_rule import SHORT_BLOCK_RULES, repair_count
 
 #: RFC 5510 §8.2: with GF(2^8) a block has at most 255 encoding symbols (source + repair).
 MAX_BLOCK_PACKETS = 255
@@ -35,6 +40,9 @@ MAX_OVERHEAD = 1.0
 #: Source block sizes scanned when the user names none: dense where codes are cheap to run and
 #: delays short, sparser above 16 where each step mostly trades delay for overhead.
 DEFAULT_K_VALUES = (1, 2, 3, 4, 5, 6, 8, 10, 12, 16, 20, 24, 32, 40, 48, 64, 96, 128)
+#: The sender's default short-block rule (config ``fec.short_block_repair``), so a plan made without
+#: saying otherwise describes a sender run with its defaults.
+DEFAULT_SHORT_BLOCK_RULE = SHORT_BLOCK_RULES[0]  # "proportional"
 #: Relative slack when comparing overheads and spans to budgets, so that m/k = 0.25 exactly
 #: meets a budget of 0.25 despite binary floating point.
 _BUDGET_SLACK = 1e-9
@@ -91,12 +99,13 @@ def iid_residual_loss(k: int, m: int, loss: float) -> float:
     return loss * _binomial_upper_tail(k + m - 1, loss, m)
 
 
-def evaluate_repair_range(channel: GilbertElliott, k: int, max_m: int, depth: int = 1) -> list[CodeFigures]:
-    """Figures for (k, m, depth) for every m in 0..max_m, from one pass of the recursion.
+def _block_loss_counts(channel: GilbertElliott, k: int, max_m: int, depth: int = 1):
+    """Yield (m, P[i, l]) for m = 0..max_m: the probability that a block of k source and m repair
+    packets loses i source and l repair packets — the forward recursion along the block.
 
-    A block with m repair packets is the first k + m positions of one with max_m, so the state
-    after each repair position gives the answer for that m.  Arrays: prob[s, i, l] = P(chain in
-    state s at the current position, i source and l repair packets lost so far).
+    A block with m repair packets is the first k + m positions of one with max_m, so one pass
+    gives every m.  Internally prob[s, i, l] = P(chain in state s at the current position, i source
+    and l repair packets lost so far).
     """
     _check_code(k, max_m, depth)
     step = channel.transition_matrix(depth)
@@ -111,37 +120,41 @@ def evaluate_repair_range(channel: GilbertElliott, k: int, max_m: int, depth: in
         moved = step.T @ prob
         prob = moved * (1.0 - emit)[:, None]
         prob[:, 1:] += moved[:, :-1] * emit[:, None]
+    yield 0, prob.sum(axis=0)[:, None]
 
-    source_lost = np.arange(k + 1)
-    figures = [
-        CodeFigures(
-            k=k,
-            m=0,
-            depth=depth,
-            block_failure=float(prob[:, 1:].sum()),
-            residual_loss=float((prob.sum(axis=0) * source_lost).sum() / k),
-        )
-    ]
-    if max_m == 0:
-        return figures
-
-    # Phase 2: the repair positions; prob[s, i, l].
+    # Phase 2: the repair positions; joint[s, i, l].
     joint = np.zeros((2, k + 1, max_m + 1))
     joint[:, :, 0] = prob
-    total_lost = source_lost[:, None] + np.arange(max_m + 1)[None, :]
     for m in range(1, max_m + 1):
         moved = np.tensordot(step.T, joint, axes=1)
         joint = moved * (1.0 - emit)[:, None, None]
         joint[:, :, 1:] += moved[:, :, :-1] * emit[:, None, None]
-        by_count = joint.sum(axis=0)
-        failing = total_lost > m
+        yield m, joint.sum(axis=0)[:, : m + 1]
+
+
+def block_loss_distribution(channel: GilbertElliott, k: int, m: int, depth: int = 1) -> np.ndarray:
+    """P[i, l]: a block of (k, m) loses i of its source and l of its repair packets (exact).
+
+    The block fails when i + l > m and then i datagrams stay lost, so moments of the residual
+    (e.g. the variance a test run must allow for) follow directly.
+    """
+    *_, (_, counts) = _block_loss_counts(channel, k, m, depth)
+    return counts
+
+
+def evaluate_repair_range(channel: GilbertElliott, k: int, max_m: int, depth: int = 1) -> list[CodeFigures]:
+    """Figures for (k, m, depth) for every m in 0..max_m, from one pass of the recursion."""
+    source_lost = np.arange(k + 1)[:, None]
+    figures = []
+    for m, counts in _block_loss_counts(channel, k, max_m, depth):
+        failing = source_lost + np.arange(m + 1)[None, :] > m
         figures.append(
             CodeFigures(
                 k=k,
                 m=m,
                 depth=depth,
-                block_failure=float(by_count[failing].sum()),
-                residual_loss=float((by_count * source_lost[:, None])[failing].sum() / k),
+                block_failure=float(counts[failing].sum()),
+                residual_loss=float((counts * source_lost)[failing].sum() / k),
             )
         )
     return figures
@@ -155,13 +168,40 @@ def evaluate(channel: GilbertElliott, k: int, m: int, depth: int = 1) -> CodeFig
 def effective_k(k: int, rate: float | None, flush: float | None, depth: int = 1) -> int:
     """Source packets a block really holds when the sender closes it ``flush`` seconds after opening.
 
-    With interleave depth D a block receives every D-th datagram, so rate/D per second.  Assumes
-    the sender still sends all m repair packets for a short block.
+    Evenly paced datagrams: the block opens with a datagram at time 0 and takes the ones at
+    D/rate, 2·D/rate, … (interleave depth D: every D-th datagram) strictly before the deadline,
+    as the encoder's timer closes the block before a datagram arriving exactly at it — so
+    ceil(rate·flush/D) of them, at most k.  The repair count of such a short block is
+    :func:`effective_code`'s business.
     """
     if rate is None or flush is None:
         return k
-    fits = math.floor(rate * flush / depth + _BUDGET_SLACK)
+    fits = math.ceil(rate * flush / depth - _BUDGET_SLACK)
     return max(1, min(k, fits))
+
+
+def block_span(k: int, k_effective: int, rate: float, flush: float, depth: int = 1) -> float:
+    """Seconds from a block's first datagram to its repair packets: the longest a rebuilt datagram
+    waits.  A full block closes with its k-th datagram, (k − 1)·D/rate after the first; one the
+    flush timer closes short waits the whole flush time."""
+    if k_effective < k:
+        return flush
+    return (k_effective - 1) * depth / rate
+
+
+def effective_code(
+    k: int, m: int, rate: float | None, flush: float | None, depth: int = 1, rule: str = DEFAULT_SHORT_BLOCK_RULE
+) -> tuple[int, int]:
+    """(k', m'): the block the sender really sends for a configured (k, m) at this rate and flush time.
+
+    m' comes from the encoder's own rule (fecproxy.repair_rule), not a copy of it: proportional
+    gives ceil(m·k'/k), at least 1 when m > 0; full gives m.
+    """
+    _check_code(k, m, depth)
+    if rule not in SHORT_BLOCK_RULES:
+        raise PlanError(f"short-block rule must be one of {', '.join(SHORT_BLOCK_RULES)}, got {rule!r}")
+    k_eff = effective_k(k, rate, flush, depth)
+    return k_eff, repair_count(k, m, k_eff, rule)
 
 
 @dataclass(frozen=True)
@@ -176,6 +216,7 @@ class PlanRequest:
     k_values: tuple[int, ...] = DEFAULT_K_VALUES
     depths: tuple[int, ...] = (1,)
     flush: float | None = None  # seconds the sender keeps a block open; None = the latency budget
+    short_block_repair: str = DEFAULT_SHORT_BLOCK_RULE  # the sender's fec.short_block_repair
 
     def __post_init__(self) -> None:
         if not (math.isfinite(self.rate) and self.rate > 0):
@@ -197,6 +238,8 @@ class PlanRequest:
             _check_code(1, 0, depth)
         if self.flush is not None and not (math.isfinite(self.flush) and self.flush > 0):
             raise PlanError(f"flush time must be > 0 seconds, got {self.flush!r}")
+        if self.short_block_repair not in SHORT_BLOCK_RULES:
+            raise PlanError(f"short-block rule must be one of {', '.join(SHORT_BLOCK_RULES)}, got {self.short_block_repair!r}")
         object.__setattr__(self, "k_values", tuple(sorted(set(self.k_values))))
         object.__setattr__(self, "depths", tuple(sorted(set(self.depths))))
 
@@ -207,22 +250,30 @@ class PlanRequest:
 
 @dataclass(frozen=True)
 class Candidate:
-    """One row of the plan: a code as configured (k) and as it behaves at this rate (k_effective)."""
+    """One row of the plan: a code as configured (k, m) and as the sender really sends it at this
+    rate (k_effective, m_effective: the short block its flush timer closes, and that block's repair)."""
 
     k: int
     k_effective: int
     m: int
+    m_effective: int
     depth: int
     block_failure: float
     residual_loss: float
-    span: float  # seconds from a block's first to last source packet: k_eff·D/rate
+    span: float  # seconds from a block's first datagram to its repair: see block_span
     meets_target: bool
     within_latency: bool
     within_overhead: bool
 
     @property
     def overhead(self) -> float:
-        return self.m / self.k_effective
+        """Repair packets per source packet as they go on the link: m'/k'."""
+        return self.m_effective / self.k_effective
+
+    @property
+    def short(self) -> bool:
+        """True when the rate cannot fill a block before the flush timer closes it."""
+        return self.k_effective < self.k
 
     @property
     def acceptable(self) -> bool:
@@ -233,6 +284,7 @@ class Candidate:
             "k": self.k,
             "k_effective": self.k_effective,
             "m": self.m,
+            "m_effective": self.m_effective,
             "depth": self.depth,
             "overhead": self.overhead,
             "block_failure": self.block_failure,
@@ -257,12 +309,14 @@ def _cost(c: Candidate) -> tuple:
     return (round(c.overhead, 12), round(c.span, 12), c.k_effective, c.depth, c.k)
 
 
-def make_candidate(request: PlanRequest, k: int, figures: CodeFigures) -> Candidate:
-    span = figures.k * figures.depth / request.rate
+def make_candidate(request: PlanRequest, k: int, m: int, figures: CodeFigures) -> Candidate:
+    """A plan row for configured (k, m) whose effective code (k', m') has ``figures``."""
+    span = block_span(k, figures.k, request.rate, request.flush_time, figures.depth)
     return Candidate(
         k=k,
         k_effective=figures.k,
-        m=figures.m,
+        m=m,
+        m_effective=figures.m,
         depth=figures.depth,
         block_failure=figures.block_failure,
         residual_loss=figures.residual_loss,
@@ -274,23 +328,31 @@ def make_candidate(request: PlanRequest, k: int, figures: CodeFigures) -> Candid
 
 
 def plan(request: PlanRequest) -> Plan:
-    """One row per (k, D): the fewest repair packets meeting the target within the overhead budget,
-    or — if none does — the most the budget allows (the best that k can do); then the cheapest
-    acceptable row is recommended.  Rows whose effective code repeats an earlier one are dropped.
+    """One row per (k, D): the fewest configured repair packets m whose effective code (k', m')
+    meets the target within the overhead budget, or — if none does — the largest m the budget
+    allows (the best that k can do); then the cheapest acceptable row is recommended.  Rows whose
+    effective code repeats an earlier one are dropped.
+
+    The overhead budget applies to what goes on the link, m'/k': with the proportional rule
+    rounding up, or the full rule, a short block carries more repair per datagram than m/k.
     """
     rows: list[Candidate] = []
     seen: set[tuple[int, int, int]] = set()
+    rule = request.short_block_repair
     for depth in request.depths:
         for k in request.k_values:
             k_eff = effective_k(k, request.rate, request.flush_time, depth)
-            max_m = min(math.floor(k_eff * request.max_overhead + _BUDGET_SLACK), MAX_BLOCK_PACKETS - k_eff)
-            options = evaluate_repair_range(request.channel, k_eff, max_m, depth)
-            chosen = next((f for f in options if f.residual_loss <= request.target), options[-1])
-            key = (chosen.k, chosen.m, chosen.depth)
+            max_m = min(math.floor(k * request.max_overhead + _BUDGET_SLACK), MAX_BLOCK_PACKETS - k)
+            m_eff = {m: repair_count(k, m, k_eff, rule) for m in range(max_m + 1)}
+            in_budget = [m for m in range(max_m + 1) if m_eff[m] <= k_eff * request.max_overhead + _BUDGET_SLACK]
+            options = evaluate_repair_range(request.channel, k_eff, max(m_eff[m] for m in in_budget), depth)
+            chosen = next((m for m in in_budget if options[m_eff[m]].residual_loss <= request.target), in_budget[-1])
+            figures = options[m_eff[chosen]]
+            key = (figures.k, figures.m, figures.depth)
             if key in seen:
                 continue
             seen.add(key)
-            rows.append(make_candidate(request, k, chosen))
+            rows.append(make_candidate(request, k, chosen, figures))
     rows.sort(key=lambda c: (c.depth, c.k))
     acceptable = [c for c in rows if c.acceptable]
     return Plan(request=request, candidates=rows, recommended=min(acceptable, key=_cost) if acceptable else None)

@@ -13,8 +13,13 @@ from scipy.stats import binom
 
 from fecproxy import cli
 from fecproxy.channel import GilbertElliott, GilbertElliottChannel
+from fecproxy.encoder import BlockEncoder, EncoderSettings
+from fecproxy.packet import RepairPacket, SourcePacket, parse
 from fecproxy.planner import (
     MAX_BLOCK_PACKETS,
+    block_loss_distribution,
+    block_span,
+    effective_code,
     PlanError,
     PlanRequest,
     effective_k,
@@ -170,6 +175,76 @@ def test_effective_k_at_low_rates():
     assert effective_k(32, rate=10, flush=0.5, depth=5) == 1
     assert effective_k(8, rate=1000, flush=0.5) == 8
     assert effective_k(8, rate=None, flush=None) == 8
+    assert effective_k(32, rate=30, flush=0.25) == 8  # datagrams at 0..7/30 s, all before 0.25 s
+    assert block_span(32, 8, rate=30, flush=0.25) == 0.25  # closed by the timer
+    assert block_span(8, 8, rate=100, flush=0.25) == pytest.approx(0.07)  # closed by its 8th datagram
+
+
+@pytest.mark.parametrize("rule", ["proportional", "full"])
+def test_effective_code_is_the_encoders_rule(rule):
+    # The planner must price the block the sender really sends: compare with the encoder's own
+    # EncoderSettings.repair_for over a grid of codes and short-block sizes.
+    for k in (1, 2, 3, 5, 8, 13, 16, 32, 100):
+        for m in sorted({0, 1, 2, k // 4, k // 2, k}):
+            settings = EncoderSettings(block_size=k, repair=m, short_block_repair=rule)
+            for fits in range(1, k + 2):
+                k_eff, m_eff = effective_code(k, m, rate=fits, flush=1.0, rule=rule)
+                assert k_eff == min(k, fits)
+                assert m_eff == settings.repair_for(k_eff), (k, m, fits)
+
+
+def test_effective_code_matches_blocks_a_real_encoder_sends():
+    # Sans-IO, fake clock: 30 datagrams/s into a k=16, m=4 sender with a 250 ms flush.  The block
+    # takes the datagrams at 0, 1/30, …, 7/30 s (< 0.25 s): ceil(30·0.25) = 8, and ceil(4·8/16) = 2
+    # repair packets.
+    encoder = BlockEncoder(EncoderSettings(block_size=16, repair=4, flush_interval=0.25), session=1)
+    sources: dict[int, int] = {}
+    repairs: dict[int, int] = {}
+    now = 0.0
+    for i in range(300):
+        now = i / 30 + 1e-6  # just after each tick, so a datagram due with the deadline is not in it
+        packets = encoder.on_timer(now) + encoder.send(b"reading %d" % i, 1, now)
+        for data in packets:
+            pkt = parse(data, max_datagram=1400)
+            counts = sources if isinstance(pkt, SourcePacket) else repairs
+            assert isinstance(pkt, (SourcePacket, RepairPacket))
+            counts[pkt.sbn] = counts.get(pkt.sbn, 0) + 1
+    closed = sorted(repairs)[1:-1]  # whole blocks only
+    assert closed
+    k_eff, m_eff = effective_code(16, 4, rate=30, flush=0.25)
+    assert (k_eff, m_eff) == (8, 2)
+    assert {sources[sbn] for sbn in closed} == {k_eff} and {repairs[sbn] for sbn in closed} == {m_eff}
+
+
+def test_plan_prices_short_blocks_by_the_rule():
+    # 14 datagrams/s with a 500 ms flush: blocks hold at most 7.  Every row's figures are those
+    # of its effective code, and its overhead is what the link carries, m'/k'.
+    for rule in ("proportional", "full"):
+        request = PlanRequest(
+            channel=GilbertElliott.from_loss_burst(0.03, 2), rate=14, latency_budget=0.8, flush=0.5,
+            max_overhead=0.6, target=1e-2, k_values=(4, 8, 16, 32), short_block_repair=rule,
+        )
+        result = plan(request)
+        for c in result.candidates:
+            assert (c.k_effective, c.m_effective) == effective_code(c.k, c.m, 14, 0.5, rule=rule)
+            exact = evaluate(request.channel, c.k_effective, c.m_effective)
+            assert c.residual_loss == exact.residual_loss
+            assert c.overhead == c.m_effective / c.k_effective <= 0.6 + 1e-9
+        assert any(c.short for c in result.candidates)
+
+
+def test_block_loss_distribution():
+    # Memoryless case: source and repair losses are independent binomials (scipy.stats.binom).
+    p, k, m = 0.1, 8, 3
+    dist = block_loss_distribution(GilbertElliott.bernoulli(p), k, m)
+    expected = np.outer(binom.pmf(np.arange(k + 1), k, p), binom.pmf(np.arange(m + 1), m, p))
+    assert dist == pytest.approx(expected, abs=1e-14)
+    bursty = GilbertElliott.from_loss_burst(0.08, 2)
+    dist = block_loss_distribution(bursty, k, m)
+    assert dist.sum() == pytest.approx(1.0, abs=1e-12)
+    fails = np.add.outer(np.arange(k + 1), np.arange(m + 1)) > m
+    residual = (dist * np.arange(k + 1)[:, None])[fails].sum() / k
+    assert residual == pytest.approx(evaluate(bursty, k, m).residual_loss, rel=1e-12)
 
 
 def test_plan_recommends_the_cheapest_acceptable():
@@ -186,7 +261,7 @@ def test_plan_recommends_the_cheapest_acceptable():
     assert acceptable and result.recommended in acceptable
     best = result.recommended
     assert all(best.overhead <= c.overhead + 1e-12 for c in acceptable)
-    assert all(c.span <= 0.4 + 1e-9 and c.m <= c.k_effective * 0.5 + 1e-9 for c in result.candidates)
+    assert all(c.span <= 0.4 + 1e-9 and c.m_effective <= c.k_effective * 0.5 + 1e-9 for c in result.candidates)
     # The recommended row's figures are the exact ones for its effective code.
     exact = evaluate(request.channel, best.k_effective, best.m, best.depth)
     assert best.residual_loss == exact.residual_loss
@@ -270,7 +345,34 @@ def test_plan_table(capsys):
     assert code == 0
     assert "recommended (*)" in out
     assert sum(1 for line in out.splitlines() if line.startswith("*")) == 1
-    assert "k_eff" in out and "span_ms" in out
+    assert "span_ms" in out and "overhead" in out
+
+
+def test_plan_table_shows_effective_code_for_short_blocks(capsys):
+    argv = ["--loss", "0.03", "--burst", "2", "--rate", "14", "--latency-ms", "800", "--flush-ms", "500", "--target", "1e-2", "--max-overhead", "0.6"]
+    code, out, _ = run_plan(capsys, *argv)
+    assert code == 0
+    assert "k'" in out and "m'" in out and "proportional short-block rule" in out
+    assert "blocks close short at this rate: k'=7" in out
+    # Enough rate to fill every block: no k'/m' columns.
+    code, out, _ = run_plan(capsys, "--loss", "0.03", "--burst", "2", "--rate", "1000", "--latency-ms", "50", "--k-values", "4-16")
+    assert "k'" not in out
+
+
+def test_short_block_rule_option(capsys):
+    base = ["--k", "16", "--m", "4", "--loss", "0.03", "--burst", "2", "--rate", "10", "--flush-ms", "500", "--json"]
+    _, out, _ = run_plan(capsys, *base)
+    proportional = json.loads(out)
+    _, out, _ = run_plan(capsys, *base, "--short-block-repair", "full")
+    full = json.loads(out)
+    assert (proportional["k_effective"], proportional["m_effective"]) == (5, 2)
+    assert (full["k_effective"], full["m_effective"]) == (5, 4)
+    channel = GilbertElliott.from_loss_burst(0.03, 2)
+    assert full["residual_loss"] == evaluate(channel, 5, 4).residual_loss
+    assert proportional["residual_loss"] == evaluate(channel, 5, 2).residual_loss
+    with pytest.raises(SystemExit) as exit_info:  # argparse's choices check
+        run_plan(capsys, *base, "--short-block-repair", "some")
+    assert exit_info.value.code == 2
 
 
 def test_plan_json(capsys):

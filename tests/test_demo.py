@@ -1,0 +1,237 @@
+"""The loopback demo: the whole command as a subprocess, and its pure helpers in-process.
+
+The figures in the demo's scenario (weather station, radio relay) are invented; the checks here
+compare the demo's arithmetic with references it did not write.
+"""
+
+from __future__ import annotations
+
+import io
+import math
+import re
+import subprocess
+import sys
+from collections import Counter
+from pathlib import Path
+
+import numpy as np
+import pytest
+from scipy.stats import binom
+
+from fecproxy import demo
+from fecproxy.channel import GilbertElliott
+from fecproxy.encoder import BlockEncoder, EncoderSettings
+from fecproxy.impairment import ImpairedLink, LinkImpairment
+from fecproxy.planner import evaluate
+
+REPO = Path(__file__).resolve().parent.parent
+ROW = re.compile(r"datagrams lost\s+(\d+) of (\d+) \(([\d.]+) %\)\s+(\d+) of (\d+) \(([\d.]+) %\)")
+
+
+# -- the whole command ------------------------------------------------------------------------
+
+
+@pytest.mark.slow
+def test_demo_command_shows_fec_lowering_loss_without_corruption():
+    completed = subprocess.run(
+        [sys.executable, "-m", "fecproxy", "demo", "--seconds", "3", "--no-live", "--metrics-port", "0"],
+        cwd=REPO,
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
+    out = completed.stdout
+    assert completed.returncode == 0, completed.stderr + out
+    assert "invented" in out
+    assert re.search(r"receiver metrics: http://127\.0\.0\.1:\d+/metrics", out)
+    assert "t = " not in out  # --no-live: header and summary only
+    match = ROW.search(out)
+    assert match, out
+    without_lost, sent, _, with_lost, sent_again, _ = match.groups()
+    assert int(sent) == int(sent_again) > 0
+    assert int(without_lost) > 0, out  # seed 1 loses packets within 3 s
+    assert int(with_lost) < int(without_lost), out
+    corrupted = re.search(r"corrupted datagrams\s+–\s+(\d+)", out)
+    assert corrupted and corrupted.group(1) == "0", out
+    assert re.search(r"planner's prediction\s+8\.00 % lost\s+[\d.]+ % lost", out), out
+
+
+def test_bad_options_exit_2_with_a_message(capsys):
+    from fecproxy.cli import main
+
+    assert main(["demo", "--k", "8", "--m", "9"]) == 2
+    assert "--m must be 0..8 with --k 8" in capsys.readouterr().err
+    assert main(["demo", "--burst", "0.5"]) == 2
+    assert "--loss/--burst" in capsys.readouterr().err
+    assert main(["demo", "--flush-ms", "0"]) == 2
+    assert "--flush-ms: 0 is out of range" in capsys.readouterr().err
+    assert main(["demo", "--seconds", "0"]) == 2
+    assert "--seconds must be > 0" in capsys.readouterr().err
+
+
+# -- the application datagram ------------------------------------------------------------------
+
+
+def test_datagram_round_trip_and_every_single_byte_flip_is_caught():
+    data = demo.pack_datagram(demo.STREAM_CAMERA, 41, 12.5, b"still image bytes")
+    assert demo.unpack_datagram(data) == demo.AppDatagram(demo.STREAM_CAMERA, 41, 12.5, b"still image bytes")
+    assert demo.peek_id(data) == (demo.STREAM_CAMERA, 41)
+    for position in range(len(data)):
+        damaged = bytearray(data)
+        damaged[position] ^= 0x01
+        assert demo.unpack_datagram(bytes(damaged)) is None
+    assert demo.unpack_datagram(data[:-1]) is None
+    assert demo.unpack_datagram(b"") is None
+    assert demo.unpack_datagram(demo.pack_datagram(99, 0, 0.0, b"")) is None  # unknown stream
+
+
+def test_camera_chunks_fit_the_datagram_size_and_reassemble():
+    image = bytes(range(256)) * 300  # 76 800 bytes
+    chunks = demo.camera_chunks(7, image)
+    sizes = [len(demo.pack_datagram(demo.STREAM_CAMERA, i, 0.0, c)) for i, c in enumerate(chunks)]
+    assert max(sizes) == demo.CAMERA_CHUNK_BYTES
+    head = demo.CAMERA_CHUNK_HEADER
+    assert [head.unpack_from(c) for c in chunks] == [(7, i, len(chunks)) for i in range(len(chunks))]
+    assert b"".join(c[head.size :] for c in chunks) == image
+
+
+def test_seq_set_counts_distinct_and_reports_duplicates():
+    seen = demo.SeqSet()
+    assert seen.add(0) and seen.add(9000) and not seen.add(9000)
+    assert 9000 in seen and 1 not in seen and 10**7 not in seen
+    assert seen.count == 2
+
+
+# -- figures ----------------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("values", [[3.0], [5.0, 1.0], list(np.linspace(0, 1, 37)), [2.0, 2.0, 9.0, 1.0, 7.0]])
+@pytest.mark.parametrize("q", [0, 1, 50, 99, 100])
+def test_percentile_is_the_nearest_rank_definition(values, q):
+    # Nearest rank = Hyndman & Fan (1996) definition 1, numpy's method="inverted_cdf", as oracle.
+    assert demo.percentile(values, q) == np.percentile(values, q, method="inverted_cdf")
+
+
+def test_percentile_of_nothing_is_nan():
+    assert math.isnan(demo.percentile([], 50))
+
+
+def test_predicted_residual_weights_blocks_by_their_datagrams():
+    # i.i.d. loss p: residual per datagram = p·P[Bin(n−1, p) ≥ m] (design notes), scipy.stats.binom
+    # as oracle; a mix of blocks averages it over datagrams, i.e. weighted by k'.
+    p = 0.08
+    channel = GilbertElliott.bernoulli(p)
+    blocks = Counter({(32, 16): 3, (20, 10): 5, (4, 2): 2})
+
+    def iid(k, m):
+        return p * binom.sf(m - 1, k + m - 1, p)
+
+    expected = sum(k * count * iid(k, m) for (k, m), count in blocks.items()) / sum(k * c for (k, _), c in blocks.items())
+    assert demo.predicted_residual(channel, blocks) == pytest.approx(expected, rel=1e-9)
+    bursty = GilbertElliott.from_loss_burst(0.08, 3)
+    assert demo.predicted_residual(bursty, Counter({(32, 16): 4})) == evaluate(bursty, 32, 16).residual_loss
+    assert demo.predicted_residual(bursty, Counter({(5, 0): 1})) == pytest.approx(0.08)  # no repair: the link's loss
+    assert math.isnan(demo.predicted_residual(bursty, Counter()))
+
+
+def test_formatting_helpers():
+    assert demo.fmt_percent(0.0801) == "8.01 %"
+    assert demo.fmt_percent(0.00042) == "0.042 %"
+    assert demo.fmt_percent(0) == "0 %"
+    assert demo.fmt_percent(math.nan) == "–"
+    assert demo.fmt_ms(0.5123) == "512 ms" and demo.fmt_ms(0.00123) == "1.2 ms" and demo.fmt_ms(0.0004) == "0.40 ms"
+    assert demo.fmt_bytes(512) == "512 B" and demo.fmt_bytes(61_500) == "61.5 kB" and demo.fmt_bytes(3.1e6) == "3.1 MB"
+    assert "no packets" in demo.describe_link(GilbertElliott.no_loss())
+    assert "independently" in demo.describe_link(GilbertElliott.bernoulli(0.05))
+    assert "mean burst 3 packets" in demo.describe_link(GilbertElliott.from_loss_burst(0.08, 3))
+
+
+def _result(**changes) -> demo.DemoResult:
+    fields = dict(
+        seconds=20.0, seed=1, k=32, m=16, flush_ms=1000, channel=GilbertElliott.from_loss_burst(0.08, 3),
+        sent=600, app_bytes=320_000, delivered=597, corrupted=0, duplicates=0, link_source_lost=48,
+        source_packets=600, repair_packets=300, source_wire_bytes=326_600, repair_wire_bytes=250_000,
+        link_packets=900, link_lost=70, rebuilt_delays=[0.1, 0.5, 0.9], intact_delays=[0.0006] * 10,
+        images_sent=4, images_complete=4, images_complete_without_fec=1, acks_sent=80, acks_received=79,
+        receiver_lost=48, receiver_recovered=45, receiver_unrecovered=3, blocks=Counter({(20, 10): 20, (32, 16): 6}),
+    )
+    fields.update(changes)
+    return demo.DemoResult(**fields)
+
+
+def test_summary_puts_without_and_with_fec_side_by_side():
+    text = demo.format_summary(_result())
+    assert ROW.search(text).groups() == ("48", "600", "8.00", "3", "600", "0.50")
+    assert re.search(r"camera stills complete\s+1 of 4\s+4 of 4", text)
+    assert re.search(r"corrupted datagrams\s+–\s+0", text)
+    assert "+300 repair, 50.00 % overhead" in text
+    assert "p50 500 ms, p99 900 ms, max 900 ms (3 rebuilt)" in text
+    assert "for the 26 blocks sent" in text
+    assert "invented" in text
+    assert "ended early" in demo.format_summary(_result(interrupted=True))
+    assert "nothing needed rebuilding" in demo.format_summary(_result(rebuilt_delays=[]))
+
+
+def test_live_view_redraws_in_place_on_a_terminal_and_prints_plain_lines_otherwise():
+    snapshot = demo.LiveSnapshot(
+        elapsed=1.0, rate=31, link_packets=100, link_lost=8, source_sent=70, source_lost=6, recovered=6,
+        unrecovered=0, delay_p50=0.0006, rebuilt_p50=0.4, acks=2,
+    )
+
+    class Terminal(io.StringIO):
+        def isatty(self):
+            return True
+
+    terminal = Terminal()
+    view = demo.LiveView(terminal, enabled=True)
+    view.show(snapshot)
+    view.show(snapshot)
+    lines = len(demo.format_live(snapshot))
+    assert terminal.getvalue().count(f"\x1b[{lines}F") == 1  # cursor back up before the redraw
+    assert "link lost 8.00 % of packets, 6 of 70 datagrams" in terminal.getvalue()
+
+    plain = io.StringIO()
+    view = demo.LiveView(plain, enabled=True)
+    for second in range(1, 12):
+        view.show(demo.LiveSnapshot(**{**snapshot.__dict__, "elapsed": float(second)}))
+    assert "\x1b" not in plain.getvalue()
+    assert plain.getvalue().count("\n") == 3  # t = 1, 6, 11 s
+
+    silent = io.StringIO()
+    demo.LiveView(silent, enabled=False).show(snapshot)
+    assert silent.getvalue() == ""
+
+
+# -- the link tap, with the real encoder and emulated link, no sockets --------------------------
+
+
+def test_link_tap_counts_packets_blocks_and_which_datagrams_the_link_lost():
+    settings = EncoderSettings(block_size=8, repair=4, flush_interval=0.05)
+    encoder = BlockEncoder(settings, session=7)
+    link = ImpairedLink(LinkImpairment(loss=GilbertElliott.from_loss_burst(0.2, 2)), seed=3)
+    tap = demo.LinkTap(link)
+    now, delivered = 0.0, []
+    for seq in range(100):
+        now += 0.01
+        packets = encoder.send(demo.pack_datagram(demo.STREAM_TELEMETRY, seq, now, b"x" * 50), 0, now)
+        packets += encoder.on_timer(now)
+        for data in packets:
+            link.submit(data, now)  # the tap's wrapper, as the relay calls it
+        delivered += link.due(now)
+    for data in encoder.flush():
+        link.submit(data, now)
+    delivered += link.due(now)
+    blocks = tap.finish()
+
+    stats = link.stats()
+    assert tap.packets == stats.sent and tap.lost == stats.lost > 0
+    assert tap.source_packets == encoder.stats.source_packets == 100
+    assert tap.repair_packets == encoder.stats.repair_packets
+    assert sum(blocks.values()) == encoder.stats.blocks
+    assert sum(k * n for (k, _), n in blocks.items()) == 100
+    assert all(m == settings.repair_for(k) for k, m in blocks)
+    arrived = {
+        demo.peek_id(data[demo.packet.SOURCE_HEADER_BYTES :]) for data in delivered if data[0] & 0x0F == demo.packet.PacketType.SOURCE
+    }
+    assert tap.lost_ids == {(demo.STREAM_TELEMETRY, seq) for seq in range(100)} - arrived
+    assert tap.source_lost == len(tap.lost_ids)
