@@ -20,6 +20,7 @@ import secrets
 import signal
 import socket
 from collections import defaultdict
+from contextlib import nullcontext
 from pathlib import Path
 
 import trio
@@ -40,6 +41,8 @@ log = logging.getLogger("fecproxy.daemon")
 #: few percent loss, short enough to follow a changing link within seconds at telemetry rates
 #: (common practice, no source).
 LOSS_ESTIMATE_WINDOW = 10_000
+#: SIGTERM/SIGINT stop (after flushing the open block), SIGHUP reloads the config.
+HANDLED_SIGNALS = (signal.SIGTERM, signal.SIGINT, signal.SIGHUP)
 
 
 def encoder_settings(config: Config) -> EncoderSettings:
@@ -63,6 +66,18 @@ def decoder_settings(config: Config) -> DecoderSettings:
 
 def _sockaddr(address) -> tuple:
     return resolve(address.host, address.port)
+
+
+class SocketOpenError(OSError):
+    """A configured address that cannot be bound or resolved; says which key and address."""
+
+    def __init__(self, key: str, address, error: OSError):
+        reason = error.strerror or str(error)
+        super().__init__(error.errno, f"{key} {address}: {reason}")
+        self.key, self.address = key, address
+
+    def __str__(self) -> str:
+        return self.strerror
 
 
 class Daemon:
@@ -115,25 +130,56 @@ class Daemon:
         return estimate.average_loss, estimate.mean_burst
 
     # ------------------------------------------------------------ lifecycle
-    async def run(self, *, task_status=trio.TASK_STATUS_IGNORED) -> None:
+    def _open_sockets(self):
+        """Bind every configured address; on failure close what was opened and raise a
+        SocketOpenError naming the config key and address.  Returns the metrics stopper."""
         cfg = self.config
         buffers = dict(receive_buffer=cfg.sockets.receive_buffer_bytes, send_buffer=cfg.sockets.send_buffer_bytes)
-        self._link_sock = open_udp_socket(cfg.link.bind.host, cfg.link.bind.port, **buffers)
-        self._link_writer = DatagramWriter(self._link_sock)
-        self.link_address = self._link_sock.getsockname()
-        if cfg.link.peer is not None:
-            self.peer = resolve(cfg.link.peer.host, cfg.link.peer.port, self._link_sock.family)
-        self._app_sock = None
-        if cfg.role == "sender":
-            self._app_sock = open_udp_socket(cfg.listen.host, cfg.listen.port, **buffers)
-            self._app_writer = DatagramWriter(self._app_sock)
-            self.listen_address = self._app_sock.getsockname()
-        else:
-            self._forward = _sockaddr(cfg.forward)
+        self._link_sock = self._app_sock = None
         stop_metrics = None
-        if cfg.metrics.listen is not None:
-            stop_metrics = serve(self.registry, cfg.metrics.listen.host, cfg.metrics.listen.port)
-            self.metrics_port = stop_metrics.port
+        key, address = "link.bind", cfg.link.bind
+        try:
+            self._link_sock = open_udp_socket(cfg.link.bind.host, cfg.link.bind.port, **buffers)
+            self._link_writer = DatagramWriter(self._link_sock)
+            self.link_address = self._link_sock.getsockname()
+            if cfg.link.peer is not None:
+                key, address = "link.peer", cfg.link.peer
+                self.peer = resolve(cfg.link.peer.host, cfg.link.peer.port, self._link_sock.family)
+            if cfg.role == "sender":
+                key, address = "listen", cfg.listen
+                self._app_sock = open_udp_socket(cfg.listen.host, cfg.listen.port, **buffers)
+                self._app_writer = DatagramWriter(self._app_sock)
+                self.listen_address = self._app_sock.getsockname()
+            else:
+                key, address = "forward", cfg.forward
+                self._forward = _sockaddr(cfg.forward)
+            if cfg.metrics.listen is not None:
+                key, address = "metrics.listen", cfg.metrics.listen
+                stop_metrics = serve(self.registry, cfg.metrics.listen.host, cfg.metrics.listen.port)
+                self.metrics_port = stop_metrics.port
+        except OSError as error:
+            for sock in (self._link_sock, self._app_sock):
+                if sock is not None:
+                    sock.close()
+            raise SocketOpenError(key, address, error) from error
+        return stop_metrics
+
+    @property
+    def stopping(self) -> bool:
+        """True from the first stop request on (the open block is being flushed, or was)."""
+        return self._stopping
+
+    async def run(self, *, task_status=trio.TASK_STATUS_IGNORED) -> None:
+        # Signals are received from before "started" is logged until every socket is closed, so
+        # a SIGTERM repeated during the flush is seen here, not by the default action (exit -15).
+        # Trio re-raises signals still pending when the receiver closes: the process owner
+        # (cmd_run) keeps a handler beneath it for those.
+        with trio.open_signal_receiver(*HANDLED_SIGNALS) if self.handle_signals else nullcontext() as signals:
+            await self._run(signals, task_status)
+
+    async def _run(self, signals, task_status) -> None:
+        cfg = self.config
+        stop_metrics = self._open_sockets()
         try:
             async with trio.open_nursery() as nursery:
                 self._nursery = nursery
@@ -141,8 +187,8 @@ class Daemon:
                 nursery.start_soon(self._timer_loop)
                 if self._app_sock is not None:
                     nursery.start_soon(self._client_loop)
-                if self.handle_signals:
-                    nursery.start_soon(self._signal_loop)
+                if signals is not None:
+                    nursery.start_soon(self._signal_loop, signals)
                 log_event(
                     log, logging.INFO, "started", version=__version__, role=str(cfg.role),
                     link=_fmt(self.link_address), peer=_fmt(self.peer) if self.peer else "learned",
@@ -186,12 +232,18 @@ class Daemon:
         """Sender: applications' datagrams -> flows -> encoder -> link."""
         reader = DatagramReader(self._app_sock)
         encoder, flows = self.encoder, self.flows
+        unseen = object()  # a client not yet looked up in this batch (None = flow table full)
         while True:
             batch = await reader.read_batch()
             now = trio.current_time()
             out: list[bytes] = []
+            # One flow-table lookup per client per batch: all of a batch shares one `now`, so
+            # repeating it per datagram would only redo the same bookkeeping.
+            flow_of: dict = {}
             for data, address in batch:
-                flow = flows.flow_for(address, now)
+                flow = flow_of.get(address, unseen)
+                if flow is unseen:
+                    flow = flow_of[address] = flows.flow_for(address, now)
                 if flow is None:
                     self._drops["flow_limit"] += 1
                     continue
@@ -199,28 +251,44 @@ class Daemon:
                     out += encoder.send(data, flow, now)
                 except DatagramTooLarge as error:
                     log_event(log, logging.DEBUG, "dropped", reason="oversize", detail=str(error))
+                except Exception:  # a bug must cost one datagram, never the daemon
+                    self._internal_error("encoder")
             await self._send_to_peer(out)
             self._reschedule()
 
+    def _internal_error(self, where: str) -> None:
+        self._drops["internal_error"] += 1
+        log.error("internal_error", exc_info=True, extra={"fields": {"where": where}})
+
     async def _link_loop(self) -> None:
         """Both roles: link packets -> decoder -> applications."""
-        reader = DatagramReader(self._link_sock)
-        decoder = self.decoder
+        # The peer sends with GSO, so with GRO a burst of its packets is one read (see udp.py).
+        reader = DatagramReader(self._link_sock, coalesce=True)
+        receive = self.decoder.receive
+        estimator = self.estimator
         learn = self.config.role == "receiver" and self.config.link.peer is None
         while True:
             batch = await reader.read_batch()
             now = trio.current_time()
             deliveries: list[Delivery] = []
             for data, address in batch:
-                events = decoder.receive(data, now)
+                try:
+                    events = receive(data, now)
+                except Exception:  # a bug must cost one packet, never the daemon
+                    self._internal_error("decoder")
+                    continue
                 valid = True
                 for event in events:
-                    if type(event) is Delivery:
+                    kind = type(event)
+                    if kind is Delivery:
                         deliveries.append(event)
+                    elif kind is BlockReport and not event.lost and event.span:
+                        # A block with nothing lost is one run of arrivals, a segment of its own.
+                        estimator.observe_block(event.arrived_mask, event.span)
                     else:
-                        valid = valid and type(event) is not Dropped
+                        valid = valid and kind is not Dropped
                         self._handle_event(event, now)
-                if learn and valid and address != self.peer:
+                if learn and valid and self.decoder.in_session and address != self.peer:
                     if self.peer is not None:
                         log_event(log, logging.INFO, "peer_changed", old=_fmt(self.peer), new=_fmt(address))
                     self.peer = address
@@ -245,28 +313,28 @@ class Daemon:
         """Receiver: replies from the application server on this flow's socket -> link."""
         with upstream.scope:
             reader = DatagramReader(upstream.sock, batch=64)
+            encoder = self.encoder
             while True:
                 batch = await reader.read_batch()
                 now = trio.current_time()
+                self.flows.touch(flow, now)  # once per batch: every datagram shares this `now`
                 out: list[bytes] = []
                 for data, _ in batch:
-                    self.flows.touch(flow, now)
                     try:
-                        out += self.encoder.send(data, flow, now)
+                        out += encoder.send(data, flow, now)
                     except DatagramTooLarge as error:
                         log_event(log, logging.DEBUG, "dropped", reason="oversize", detail=str(error))
                 await self._send_to_peer(out)
                 self._reschedule()
 
-    async def _signal_loop(self) -> None:
-        with trio.open_signal_receiver(signal.SIGTERM, signal.SIGINT, signal.SIGHUP) as signals:
-            async for signum in signals:
-                if signum == signal.SIGHUP:
-                    self.reload()
-                else:
-                    log_event(log, logging.INFO, "stopping", signal=signal.Signals(signum).name)
-                    await self.stop()
-                    return
+    async def _signal_loop(self, signals) -> None:
+        async for signum in signals:
+            if signum == signal.SIGHUP:
+                self.reload()
+            elif not self._stopping:
+                log_event(log, logging.INFO, "stopping", signal=signal.Signals(signum).name)
+                await self.stop()
+            # A repeated SIGTERM/SIGINT while stopping changes nothing: the flush is under way.
 
     # ------------------------------------------------------------ helpers
     def reload(self, config: Config | None = None) -> bool:
@@ -319,7 +387,9 @@ class Daemon:
     def _handle_event(self, event, now: float) -> None:
         kind = type(event)
         if kind is BlockReport:
-            self._observe(event)
+            # One segment per block: repair positions sit between blocks on the link, so chaining
+            # blocks would bias the burst estimate (see channel.LossEstimator).
+            self.estimator.observe_block(event.arrived_mask, event.span)
             if event.unrecovered:
                 log_event(log, logging.DEBUG, "block_unrecovered", sbn=event.sbn, k=event.k, lost=event.lost, outcome=event.outcome)
         elif kind is Dropped:
@@ -328,28 +398,21 @@ class Daemon:
             log_event(log, logging.INFO, "peer_session", session=f"{event.session:08x}",
                       previous=f"{event.previous:08x}" if event.previous is not None else "-")
 
-    def _observe(self, report: BlockReport) -> None:
-        """Feed the loss estimator the block's source positions in order (runs, not bits)."""
-        mask, span = report.arrived_mask, report.span
-        position = 0
-        while position < span:
-            lost = not (mask >> position) & 1
-            run = position
-            while run < span and (not (mask >> run) & 1) == lost:
-                run += 1
-            self.estimator.observe_run(lost, run - position)
-            position = run
-
     async def _deliver(self, deliveries: list[Delivery], now: float) -> None:
         if not deliveries:
             return
-        by_destination: dict[int, list[bytes]] = defaultdict(list)
+        by_destination: dict[int, list[bytes]] = {}
         for delivery in deliveries:
             if delivery.recovered:
                 self.recovery_delay.observe(delivery.delay)
-            by_destination[delivery.flow].append(delivery.data)
+            datagrams = by_destination.get(delivery.flow)
+            if datagrams is None:
+                by_destination[delivery.flow] = [delivery.data]
+            else:
+                datagrams.append(delivery.data)
+        sender = self.config.role == "sender"
         for flow, datagrams in by_destination.items():
-            if self.config.role == "sender":
+            if sender:
                 client = self.flows.key_for(flow)
                 if client is None:
                     self._drops["unknown_flow"] += len(datagrams)

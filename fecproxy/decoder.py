@@ -28,8 +28,19 @@ DEFAULT_HOLD_TIME = 0.5
 DEFAULT_MAX_OPEN_BLOCKS = 256
 #: Finished block numbers remembered, so their late packets are recognised rather than reopened.
 FINISHED_MEMORY_FACTOR = 4
+#: The fast path reads the common header and the byte after it (a source packet's flow id, or
+#: the high byte of a repair packet's k) in one unpack.
+_LEADING_FIELDS = packet.SOURCE_HEADER.unpack_from
+_SOURCE_TYPE_BYTE = (packet.VERSION << 4) | packet.PacketType.SOURCE
+_REPAIR_TYPE_BYTE = (packet.VERSION << 4) | packet.PacketType.REPAIR
 #: Earlier sender sessions remembered, so stragglers from before a restart are dropped as stale.
 RETIRED_SESSIONS = 4
+#: Packets of a new session needed before it replaces a session that is still sending.  One stray
+#: packet with a random session value must not retire the live one (without authentication a
+#: determined forger still can; RFC 6363 §9).  A restarted sender is adopted at once when the old
+#: session has been quiet for the hold time, or after this many packets otherwise; until then its
+#: source datagrams are still delivered, and its packets are replayed into the new session's blocks.
+SESSION_CONFIRM_PACKETS = 8
 
 
 @dataclass(frozen=True)
@@ -130,9 +141,52 @@ class BlockDecoder:
         self._open: OrderedDict[int, _Block] = OrderedDict()
         self._finished: OrderedDict[int, None] = OrderedDict()
         self._highest: int | None = None
+        self._last_seen = float("-inf")  # when the adopted session last sent a valid packet
+        self._candidate: int | None = None
+        self._candidate_packets: list[packet.SourcePacket | packet.RepairPacket] = []
+        #: Whether the last packet received belonged to the adopted session (the shell learns its
+        #: peer address only from those).
+        self.in_session = False
 
     # ------------------------------------------------------------------ feeding
     def receive(self, data: bytes, now: float) -> list[Event]:
+        # Fast path for the two packets a clean link brings: a source packet of the current
+        # session, and a repair packet of a block already complete.  Same checks, same order
+        # and same outcome as packet.parse + the general path below, minus the packet object;
+        # anything else (another session, a bad field) falls through to the general path.
+        size = len(data)
+        if size >= packet.SOURCE_HEADER_BYTES:
+            version_type, flags, session, sbn_esi, flow = _LEADING_FIELDS(data)
+            if session == self.session:
+                self._last_seen = now
+                self.in_session = True
+                esi = sbn_esi & 0xFF
+                sbn = sbn_esi >> 8
+                if version_type == _SOURCE_TYPE_BYTE:
+                    if not flags & ~packet.FLAG_END and esi <= packet.MAX_ESI and size - packet.SOURCE_HEADER_BYTES <= self.settings.max_datagram:
+                        self.stats.source_received += 1
+                        events: list[Event] = []
+                        block = self._open.get(sbn)
+                        if block is None:
+                            block = self._block_for(sbn, now, events)
+                            if block is None:
+                                events.append(self._behind(sbn, repair=False))
+                                return events
+                        self._add_source_fields(block, sbn, esi, flow, bool(flags), bytes(data[packet.SOURCE_HEADER_BYTES:]), events)
+                        self._try_finish(block, now, events)
+                        return events
+                elif version_type == _REPAIR_TYPE_BYTE and not flags and size >= packet.REPAIR_HEADER_BYTES:
+                    k = (flow << 8) | data[packet.COMMON_HEADER.size + 1]
+                    symbol_size = size - packet.REPAIR_HEADER_BYTES
+                    if (
+                        1 <= k <= esi <= packet.MAX_ESI
+                        and packet.SYMBOL_PREFIX_BYTES <= symbol_size <= self.settings.max_datagram + packet.SYMBOL_PREFIX_BYTES
+                        and sbn not in self._open
+                        and sbn in self._finished
+                    ):
+                        self.stats.repair_received += 1
+                        self.stats.repair_unneeded += 1  # normal: the block completed before its repair came
+                        return []
         try:
             pkt = packet.parse(data, max_datagram=self.settings.max_datagram)
         except packet.PacketError as error:
@@ -140,29 +194,69 @@ class BlockDecoder:
         if isinstance(pkt, packet.ControlPacket):
             return [self._drop("unsupported", "control packets are not handled by this version")]
         events: list[Event] = []
+        self.in_session = False
         if pkt.session != self.session:
             if pkt.session in self._retired:
                 return [self._drop("stale", f"packet from retired session {pkt.session:#010x}")]
+            if not self._may_adopt(pkt, now):
+                return self._hold_candidate(pkt)
+            replay = self._candidate_packets if self._candidate == pkt.session else []
+            self._candidate, self._candidate_packets = None, []
             events.extend(self._start_session(pkt.session))
+            for earlier in replay:
+                self._admit(earlier, now, events, replayed=True)
+        self.in_session = True
+        self._last_seen = now
         if isinstance(pkt, packet.SourcePacket):
             self.stats.source_received += 1
         else:
             self.stats.repair_received += 1
+        self._admit(pkt, now, events)
+        return events
+
+    def _may_adopt(self, pkt: packet.SourcePacket | packet.RepairPacket, now: float) -> bool:
+        """A new session replaces the adopted one if that one is quiet, or once it is confirmed."""
+        if self.session is None or now - self._last_seen >= self.settings.hold_time:
+            return True
+        return self._candidate == pkt.session and len(self._candidate_packets) + 1 >= SESSION_CONFIRM_PACKETS
+
+    def _hold_candidate(self, pkt: packet.SourcePacket | packet.RepairPacket) -> list[Event]:
+        """A packet of a not-yet-adopted session: deliver its datagram (it needs no block state),
+        keep the packet to replay if the session is adopted."""
+        if self._candidate != pkt.session:
+            self._candidate, self._candidate_packets = pkt.session, []
+        self._candidate_packets.append(pkt)
+        if isinstance(pkt, packet.RepairPacket):
+            self.stats.repair_received += 1
+            return []
+        self.stats.source_received += 1
+        self.stats.delivered += 1
+        return [Delivery(pkt.flow, pkt.data)]
+
+    def _admit(self, pkt: packet.SourcePacket | packet.RepairPacket, now: float, events: list[Event], *, replayed: bool = False) -> None:
+        """Add a packet to its block (opening it if new) and finish the block if it can."""
         block = self._block_for(pkt.sbn, now, events)
         if block is None:
             if isinstance(pkt, packet.RepairPacket) and pkt.sbn in self._finished:
                 self.stats.repair_unneeded += 1  # normal: a block complete before its repair arrived
-            elif pkt.sbn in self._finished:
-                events.append(self._drop("late", f"source packet for finished block {pkt.sbn}"))
-            else:
-                events.append(self._drop("stale", f"block {pkt.sbn} is behind the window"))
-            return events
+            elif not replayed:
+                events.append(self._behind(pkt.sbn, repair=isinstance(pkt, packet.RepairPacket)))
+            return
         if isinstance(pkt, packet.SourcePacket):
-            self._add_source(block, pkt, events)
+            if replayed:
+                # Delivered while its session was a candidate: record it, don't deliver it again.
+                added: list[Event] = []
+                self._add_source_fields(block, pkt.sbn, pkt.esi, pkt.flow, pkt.end, pkt.data, added)
+                for event in added:
+                    if type(event) is Delivery:
+                        self.stats.delivered -= 1
+                    else:
+                        events.append(event)
+            else:
+                self._add_source_fields(block, pkt.sbn, pkt.esi, pkt.flow, pkt.end, pkt.data, events)
         else:
             self._add_repair(block, pkt, events)
         self._try_finish(block, now, events)
-        return events
 
     def next_deadline(self) -> float | None:
         if not self._open:
@@ -226,29 +320,40 @@ class BlockDecoder:
         """How far behind the newest block a never-seen block may still be opened."""
         return self.settings.max_open_blocks * FINISHED_MEMORY_FACTOR
 
-    def _add_source(self, block: _Block, pkt: packet.SourcePacket, events: list[Event]) -> None:
-        if pkt.esi in block.sources:
-            events.append(self._drop("duplicate", f"source {pkt.sbn}/{pkt.esi} seen before"))
+    def _behind(self, sbn: int, *, repair: bool) -> Dropped:
+        """The drop for a packet whose block is finished or too far behind to open."""
+        if sbn in self._finished and not repair:
+            return self._drop("late", f"source packet for finished block {sbn}")
+        return self._drop("stale", f"block {sbn} is behind the window")
+
+    def _add_source_fields(
+        self, block: _Block, sbn: int, esi: int, flow: int, end: bool, data: bytes, events: list[Event]
+    ) -> None:
+        """Hold and deliver one source datagram (fields given singly: the fast path has no packet)."""
+        k = block.k
+        if esi in block.sources:
+            events.append(self._drop("duplicate", f"source {sbn}/{esi} seen before"))
             return
-        if block.k is not None and pkt.esi >= block.k:
-            events.append(self._drop("inconsistent", f"source ESI {pkt.esi} but block {pkt.sbn} has k={block.k}"))
+        if k is not None and esi >= k:
+            events.append(self._drop("inconsistent", f"source ESI {esi} but block {sbn} has k={k}"))
             return
-        if block.symbol_len is not None and len(pkt.data) + packet.SYMBOL_PREFIX_BYTES > block.symbol_len:
-            events.append(self._drop("inconsistent", f"source {pkt.sbn}/{pkt.esi} longer than the block's symbols"))
+        if block.symbol_len is not None and len(data) + packet.SYMBOL_PREFIX_BYTES > block.symbol_len:
+            events.append(self._drop("inconsistent", f"source {sbn}/{esi} longer than the block's symbols"))
             return
-        if pkt.end:
-            if block.k is not None and block.k != pkt.esi + 1:
-                events.append(self._drop("inconsistent", f"END at ESI {pkt.esi} but block {pkt.sbn} has k={block.k}"))
+        if end:
+            if k is not None and k != esi + 1:
+                events.append(self._drop("inconsistent", f"END at ESI {esi} but block {sbn} has k={k}"))
                 return
-            if pkt.esi < block.max_esi:
-                events.append(self._drop("inconsistent", f"END at ESI {pkt.esi} below ESI {block.max_esi} seen"))
+            if esi < block.max_esi:
+                events.append(self._drop("inconsistent", f"END at ESI {esi} below ESI {block.max_esi} seen"))
                 return
-            block.k = pkt.esi + 1
-        block.sources[pkt.esi] = (pkt.flow, pkt.data)
-        block.arrived |= 1 << pkt.esi
-        block.max_esi = max(block.max_esi, pkt.esi)
+            block.k = esi + 1
+        block.sources[esi] = (flow, data)
+        block.arrived |= 1 << esi
+        if esi > block.max_esi:
+            block.max_esi = esi
         self.stats.delivered += 1
-        events.append(Delivery(pkt.flow, pkt.data))
+        events.append(Delivery(flow, data))
 
     def _add_repair(self, block: _Block, pkt: packet.RepairPacket, events: list[Event]) -> None:
         if pkt.esi in block.repairs:
@@ -303,7 +408,9 @@ class BlockDecoder:
         for esi in repair_indices:
             symbols[row] = np.frombuffer(block.repairs[esi], dtype=np.uint8)
             row += 1
-        code: BlockCode = _code(k, max(indices) + 1)
+        # Column j of the generator depends only on k and j: one code per k serves every block of
+        # that k, and its cache of loss-pattern inverses is shared across them.
+        code: BlockCode = _code(k, packet.MAX_ESI + 1)
         rebuilt = code.recover(dict(zip(indices, symbols)))
         delay = now - block.first_seen
         events: list[Event] = []

@@ -9,6 +9,7 @@ repair packets (RFC 5510 §8.2 code with the block's actual k).
 
 from __future__ import annotations
 
+import struct
 from dataclasses import dataclass, field
 from functools import lru_cache
 
@@ -18,6 +19,8 @@ from . import packet
 from .codec import BlockCode
 from .repair_rule import SHORT_BLOCK_RULES, repair_count
 
+#: RFC 6363 §4 / RFC 6865 §4 source symbol prefix: flow id (1 byte) ‖ length (2 bytes, big-endian).
+_SYMBOL_PREFIX = struct.Struct(">BH")
 
 
 class DatagramTooLarge(ValueError):
@@ -103,7 +106,11 @@ class BlockEncoder:
     def _allocate(self, settings: EncoderSettings) -> None:
         width = packet.SYMBOL_PREFIX_BYTES + settings.max_datagram
         width += -width % 8  # whole uint64 words for the codec
-        self._symbols = np.zeros((settings.block_size, width), dtype=np.uint8)
+        # One bytearray, seen by the codec as a (k, width) array without a copy: the per-datagram
+        # copy is then a plain memoryview slice assignment, not numpy calls on a row.
+        self._storage = memoryview(bytearray(settings.block_size * width))
+        self._width = width
+        self._symbols = np.frombuffer(self._storage, dtype=np.uint8).reshape(settings.block_size, width)
 
     def send(self, datagram: bytes, flow: int, now: float) -> list[bytes]:
         """Frame one application datagram; returns the packets to put on the link now."""
@@ -115,12 +122,12 @@ class BlockEncoder:
         index = self._count
         if index == 0:
             self._deadline = now + settings.flush_interval
-        row = self._symbols[index]
-        row[0] = flow
-        row[1] = size >> 8
-        row[2] = size & 0xFF
-        row[3 : 3 + size] = np.frombuffer(datagram, dtype=np.uint8)
-        self._symbol_len = max(self._symbol_len, 3 + size)
+        start = index * self._width
+        storage = self._storage
+        storage[start : start + packet.SYMBOL_PREFIX_BYTES] = _SYMBOL_PREFIX.pack(flow, size)
+        storage[start + packet.SYMBOL_PREFIX_BYTES : start + packet.SYMBOL_PREFIX_BYTES + size] = datagram
+        if size + packet.SYMBOL_PREFIX_BYTES > self._symbol_len:
+            self._symbol_len = size + packet.SYMBOL_PREFIX_BYTES
         self._count = index + 1
         full = self._count == settings.block_size
         out = [packet.encode_source(self.session, self._sbn, index, flow, bytes(datagram), end=full)]

@@ -49,12 +49,14 @@ class FlowTable(Generic[K]):
             self._by_key.move_to_end(key)
             self._last_used[existing] = now
             return existing
+        if len(self._by_key) >= self.max_flows:
+            return None  # full, however the ids were chosen (explicit ones may be ≥ max_flows)
         if flow is None:
             if not self._free:
                 return None
             flow = self._free.pop()
         else:
-            if flow in self._by_flow or not 0 <= flow < MAX_FLOW_IDS or len(self._by_key) >= self.max_flows:
+            if flow in self._by_flow or not 0 <= flow < MAX_FLOW_IDS:
                 return None
             if flow in self._free:
                 self._free.remove(flow)

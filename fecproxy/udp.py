@@ -5,7 +5,9 @@ socket awaited with ``trio.lowlevel.wait_readable`` and drained with ``recvfrom_
 preallocated buffers until ``BlockingIOError`` reaches about 100 k/s.  Runs of equal-size packets
 to one destination (a block's repair packets, or a burst of same-size datagrams) go out in one
 ``sendmsg`` with Linux UDP GSO (``UDP_SEGMENT``); where the kernel lacks it we fall back to one
-``sendto`` per packet and remember not to try again.
+``sendto`` per packet and remember not to try again.  On the link, where the other end is our own
+GSO sender, the reader can also ask for UDP GRO (``UDP_GRO``), so such a burst arrives as one
+buffer: one system call and one kernel queue entry for up to 54 packets instead of one each.
 """
 
 from __future__ import annotations
@@ -22,6 +24,10 @@ log = logging.getLogger("fecproxy.udp")
 #: linux/udp.h: setsockopt level SOL_UDP, option UDP_SEGMENT (Linux ≥ 4.18).
 SOL_UDP = getattr(socket, "SOL_UDP", 17)
 UDP_SEGMENT = getattr(socket, "UDP_SEGMENT", 103)
+#: linux/udp.h: UDP_GRO (Linux ≥ 5.0); the segment size comes back as an int in a cmsg.
+UDP_GRO = getattr(socket, "UDP_GRO", 104)
+_GRO_SEGMENT = struct.Struct("=i")
+_GRO_CMSG_SPACE = socket.CMSG_SPACE(_GRO_SEGMENT.size)
 #: The kernel accepts at most 64 segments per GSO send (UDP_MAX_SEGMENTS in linux/udp.h).
 GSO_MAX_SEGMENTS = 64
 #: A GSO send is one UDP datagram to the kernel, so its total is bounded by 65 507 bytes.
@@ -58,31 +64,83 @@ def resolve(host: str, port: int, family: int = 0) -> Address:
     return infos[0][4]
 
 
-class DatagramReader:
-    """Drains a socket in batches into preallocated buffers: no allocation per wake-up."""
+def enable_coalescing(sock: socket.socket) -> bool:
+    """Ask the kernel for UDP GRO on this socket (Linux ≥ 5.0): a burst sent with GSO, or
+    consecutive equal-size datagrams of one flow, then arrives as one buffer plus its segment
+    size, so one system call reads many datagrams.  False where the kernel lacks it."""
+    try:
+        sock.setsockopt(SOL_UDP, UDP_GRO, 1)
+    except OSError:
+        return False
+    return True
 
-    def __init__(self, sock: socket.socket, batch: int = RECV_BATCH, size: int = MAX_UDP_PAYLOAD):
+
+class DatagramReader:
+    """Drains a socket in batches through one preallocated buffer: each datagram is copied out
+    as ``bytes`` at once, so a single buffer serves the whole batch.
+
+    ``coalesce=True`` turns on UDP GRO (:func:`enable_coalescing`) and splits coalesced buffers
+    back into datagrams.  Use it where the other end is our own GSO sender (the link), not for
+    applications' sockets, whose datagrams each cost a read anyway.
+    """
+
+    def __init__(self, sock: socket.socket, batch: int = RECV_BATCH, size: int = MAX_UDP_PAYLOAD, *, coalesce: bool = False):
         self.sock = sock
-        self._buffers = [bytearray(size) for _ in range(batch)]
-        self._views = [memoryview(b) for b in self._buffers]
+        self.batch = batch
+        self._view = memoryview(bytearray(size))
+        self.coalescing = coalesce and enable_coalescing(sock)
 
     async def read_batch(self) -> list[tuple[bytes, Address]]:
-        """Wait until readable, then return every datagram queued (up to the batch size)."""
-        sock = self.sock
+        """Wait until readable, then return every datagram queued (up to about the batch size).
+
+        Every call lets other tasks run at least once, even when the socket never empties:
+        a busy socket must not starve the timers, the other direction or signal handling.
+        """
         out: list[tuple[bytes, Address]] = []
+        waited = False
         while True:
-            for view in self._views:
-                try:
-                    size, address = sock.recvfrom_into(view)
-                except BlockingIOError:
-                    break
-                except ConnectionRefusedError:
-                    # An ICMP port-unreachable from an earlier send: the peer is not up yet.
-                    continue
-                out.append((view[:size].tobytes(), address))
+            if self.coalescing:
+                self._drain_coalesced(out)
+            else:
+                self._drain(out)
             if out:
+                if not waited:
+                    await trio.lowlevel.checkpoint()
                 return out
-            await trio.lowlevel.wait_readable(sock)
+            await trio.lowlevel.wait_readable(self.sock)
+            waited = True
+
+    def _drain(self, out: list) -> None:
+        receive, view, append = self.sock.recvfrom_into, self._view, out.append
+        for _ in range(self.batch):
+            try:
+                size, address = receive(view)
+            except BlockingIOError:
+                return
+            except ConnectionRefusedError:
+                # An ICMP port-unreachable from an earlier send: the peer is not up yet.
+                continue
+            append((view[:size].tobytes(), address))
+
+    def _drain_coalesced(self, out: list) -> None:
+        receive, view, append = self.sock.recvmsg_into, self._view, out.append
+        buffers = [view]
+        while len(out) < self.batch:
+            try:
+                size, ancillary, _, address = receive(buffers, _GRO_CMSG_SPACE)
+            except BlockingIOError:
+                return
+            except ConnectionRefusedError:
+                continue
+            segment = size
+            for level, kind, data in ancillary:
+                if level == SOL_UDP and kind == UDP_GRO and len(data) >= _GRO_SEGMENT.size:
+                    segment = _GRO_SEGMENT.unpack_from(data)[0] or size
+            if segment >= size:
+                append((view[:size].tobytes(), address))
+                continue
+            for start in range(0, size, segment):
+                append((view[start : min(start + segment, size)].tobytes(), address))
 
 
 class DatagramWriter:
@@ -93,6 +151,14 @@ class DatagramWriter:
     def __init__(self, sock: socket.socket):
         self.sock = sock
         self.send_errors = 0
+        self._wait_lock = trio.Lock()
+
+    async def _wait_writable(self) -> None:
+        """Wait for send-buffer space.  Several tasks share a writer (the receiver's timer and
+        its per-flow reply tasks all send on the link socket), and trio allows only one waiter
+        per socket, so the others queue on a lock instead of raising BusyResourceError."""
+        async with self._wait_lock:
+            await trio.lowlevel.wait_writable(self.sock)
 
     async def send(self, packets: list[bytes], address: Address) -> None:
         if not packets:
@@ -109,7 +175,7 @@ class DatagramWriter:
                 self.sock.sendto(data, address)
                 return
             except BlockingIOError:
-                await trio.lowlevel.wait_writable(self.sock)
+                await self._wait_writable()
             except OSError as error:
                 # Unreachable peer, refused port, no route: UDP is best effort; count and go on.
                 self.send_errors += 1
@@ -124,7 +190,8 @@ class DatagramWriter:
             end = start + 1
             total = size
             while (
-                end < count
+                size  # a GSO segment size of 0 would merge empty datagrams into one: send them singly
+                and end < count
                 and len(packets[end]) == size
                 and end - start < GSO_MAX_SEGMENTS
                 and total + size <= GSO_MAX_BYTES
@@ -146,7 +213,7 @@ class DatagramWriter:
                 DatagramWriter.gso_supported = True
                 return True
             except BlockingIOError:
-                await trio.lowlevel.wait_writable(self.sock)
+                await self._wait_writable()
             except OSError as error:
                 if error.errno in (errno.EINVAL, errno.ENOPROTOOPT, errno.EOPNOTSUPP, errno.EIO, errno.EMSGSIZE):
                     if DatagramWriter.gso_supported is None:

@@ -161,12 +161,12 @@ def test_sender_restart_starts_a_new_session_and_old_stragglers_are_stale():
     dec = BlockDecoder()
     events = feed(dec, old[:2])
     assert isinstance(events[0], SessionStarted) and events[0].session == 100
-    events = feed(dec, new[:1])
+    events = feed(dec, new[:1], now=1.0 + dec.settings.hold_time)  # the old session fell quiet
     assert [type(e) for e in events] == [BlockReport, SessionStarted, Delivery]
     assert events[0].outcome == "superseded"
-    events = feed(dec, old[2:])
+    events = feed(dec, old[2:], now=2.0)
     assert [e.reason for e in events] == ["stale", "stale"]
-    events = feed(dec, new[1:])
+    events = feed(dec, new[1:], now=2.0)
     assert reports(events)[0].outcome == "complete"
 
 
@@ -262,3 +262,35 @@ def test_random_loss_never_corrupts_and_delivers_each_datagram_at_most_once(k, m
     assert dec.stats.delivered == len(got)
     assert len(reports(events)) <= blocks
     assert total_unrecovered <= len(remaining)
+
+
+def test_a_stray_packet_of_another_session_does_not_retire_the_live_one():
+    from fecproxy.decoder import SESSION_CONFIRM_PACKETS
+
+    datagrams, live = make_block(4, 2, session=100)
+    dec = BlockDecoder()
+    feed(dec, live[:1], now=1.0)
+    stray = packet.encode_source(0xDEAD, 7, 0, 3, b"stray")
+    events = feed(dec, [stray], now=1.01)
+    assert delivered(events) == [(3, b"stray")]  # its datagram is not lost
+    assert dec.session == 100 and not dec.in_session
+    events = feed(dec, live[2:3] + live[4:], now=1.02)  # the live session goes on and recovers
+    assert dec.in_session and sorted(delivered(events)) == sorted(datagrams[1:])
+
+
+def test_a_restarted_sender_is_adopted_after_confirmation_without_double_delivery():
+    from fecproxy.decoder import SESSION_CONFIRM_PACKETS
+
+    _, old = make_block(4, 2, session=100)
+    k = SESSION_CONFIRM_PACKETS + 4
+    datagrams, new = make_block(k, 2, session=200, seed=4)
+    dec = BlockDecoder()
+    feed(dec, old[:2], now=1.0)
+    events = feed(dec, new[: SESSION_CONFIRM_PACKETS - 1], now=1.01)
+    assert dec.session == 100 and len(delivered(events)) == SESSION_CONFIRM_PACKETS - 1
+    lost = SESSION_CONFIRM_PACKETS + 1  # one source lost after adoption, rebuilt from repair
+    rest = [p for i, p in enumerate(new[SESSION_CONFIRM_PACKETS - 1 :], SESSION_CONFIRM_PACKETS - 1) if i != lost]
+    events += feed(dec, rest, now=1.02)
+    assert dec.session == 200
+    assert sorted(delivered(events)) == sorted(datagrams)  # each exactly once
+    assert dec.stats.delivered == k + 2 and dec.stats.recovered == 1  # + the old session's two

@@ -1,0 +1,56 @@
+"""Smoke test of ``fecproxy bench pipeline``: every process starts, counts add up, all stop.
+
+No speed is asserted (a shared 2-core machine is too noisy for that); the benchmark prints its
+figures for people to read.  Only 127.0.0.1 is used; the run is bounded by --quick.
+"""
+
+from __future__ import annotations
+
+import json
+import multiprocessing
+
+import pytest
+
+from fecproxy import bench_pipeline
+from fecproxy.cli import main
+
+
+@pytest.mark.slow
+def test_quick_run_reports_both_pipelines_and_delays(capsys):
+    children_before = set(multiprocessing.active_children())
+
+    assert main(["bench", "pipeline", "--quick", "--json"]) == 0
+
+    result = json.loads(capsys.readouterr().out)
+    assert result["datagram_bytes"] == bench_pipeline.DATAGRAM_BYTES
+    assert (result["k"], result["m"]) == (bench_pipeline.BLOCK_SIZE, bench_pipeline.REPAIR)
+    pipelines = {trial["pipeline"] for trial in result["trials"]}
+    assert pipelines == {"plain", "pair"}
+    for trial in result["trials"]:
+        assert trial["sent"] > 0
+        assert 0 <= trial["received"] <= trial["sent"]  # counted by distinct sequence number
+        assert trial["passed"] == (trial["loss"] < bench_pipeline.LOSS_LIMIT)
+    assert [d["path"] for d in result["delays"]] == ["direct", "plain", "pair"]
+    assert all(d["samples"] > 0 and d["p50_us"] <= d["p99_us"] for d in result["delays"])
+    # Every child process was stopped.
+    assert set(multiprocessing.active_children()) <= children_before
+
+
+def test_search_steps_up_then_bisects_and_stops():
+    search = bench_pipeline.RateSearch("pair", start=1000.0, ceiling=1e6)
+
+    def trial(rate: float, lost: int) -> bench_pipeline.Trial:
+        return bench_pipeline.Trial("pair", rate, rate, 10_000, 10_000 - lost, 0)
+
+    assert search.next_rate() == 1000.0
+    search.record(trial(1000.0, 0))
+    assert search.next_rate() == pytest.approx(1000.0 * bench_pipeline.STEP_UP)
+    search.record(trial(1500.0, 50))  # 0.5 % lost: fails
+    assert 1000.0 < search.next_rate() < 1500.0
+    for _ in range(20):
+        rate = search.next_rate()
+        if rate is None:
+            break
+        search.record(trial(rate, 0 if rate < 1200.0 else 11))  # 0.11 % lost above 1200/s
+    assert search.stopped == "converged"
+    assert 1200.0 / (1 + bench_pipeline.SEARCH_PRECISION) <= search.best < 1200.0

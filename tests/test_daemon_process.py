@@ -1,0 +1,846 @@
+"""Whole-process tests: ``fecproxy run`` pairs on 127.0.0.1 with a lossy relay between them.
+
+Topology of every test (all sockets on 127.0.0.1, ports chosen by the kernel and read back from
+each daemon's ``event=started`` log line, so no port is ever guessed)::
+
+    clients --> sender proxy --> LossyRelay (tests/lossy_relay.py) --> receiver proxy --> AppServer
+            <--              <--                                   <--                <-- (echo)
+
+Each application datagram carries a stream id, a sequence number, a deterministic filler of
+varying length and an 8-byte BLAKE2b digest, so a corrupted, truncated, duplicated or misrouted
+datagram is detected at once.  Every wait is bounded by a timeout; every load loop by a count.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import random
+import re
+import signal
+import socket
+import struct
+import subprocess
+import sys
+import threading
+import time
+import urllib.request
+from collections import Counter, defaultdict
+from pathlib import Path
+
+import pytest
+import yaml
+from prometheus_client.parser import text_string_to_metric_families
+from scipy.stats import binom, hypergeom
+
+from lossy_relay import LossyRelay, drop_indices, iid_loss, no_loss
+
+LOOPBACK = "127.0.0.1"
+#: Upper bound for a daemon to start (imports numpy, trio, prometheus-client) on a busy 2-core box.
+STARTUP_TIMEOUT = 20.0
+#: Upper bound for traffic already sent to drain through the pair.
+DRAIN_TIMEOUT = 10.0
+#: Exit bound asked by the issue after SIGTERM: "exit 0 within a second".
+SIGTERM_EXIT_SECONDS = 1.0
+#: A flush interval far longer than any test's traffic burst: blocks close only when full, so
+#: link packet i of the forward direction is packet i % (k + m) of block i // (k + m).
+NEVER_FLUSH_MS = 30_000
+
+# --------------------------------------------------------------------------------------------
+# Application payloads
+# --------------------------------------------------------------------------------------------
+
+_FILLER = bytes(range(256)) * 2
+_HEAD = struct.Struct(">HI")  # stream id, sequence number
+DIGEST_BYTES = 8
+
+
+def make_payload(stream: int, seq: int) -> bytes:
+    """A self-checking datagram of 1..255 filler bytes (lengths vary, so padding is exercised)."""
+    length = 1 + (seq * 37 + stream * 11) % 255
+    body = _HEAD.pack(stream, seq) + _FILLER[seq % 256 : seq % 256 + length]
+    return body + hashlib.blake2b(body, digest_size=DIGEST_BYTES).digest()
+
+
+def check_payload(data: bytes) -> tuple[int, int] | None:
+    """(stream, seq) of an intact datagram, None for a corrupted one."""
+    if len(data) < _HEAD.size + 1 + DIGEST_BYTES:
+        return None
+    body, digest = data[:-DIGEST_BYTES], data[-DIGEST_BYTES:]
+    if hashlib.blake2b(body, digest_size=DIGEST_BYTES).digest() != digest:
+        return None
+    stream, seq = _HEAD.unpack_from(body)
+    return (stream, seq) if make_payload(stream, seq) == data else None
+
+
+def parse_link_header(data: bytes) -> tuple[int, int, int, int]:
+    """(type, session, SBN, ESI) of a link packet, read from the wire layout documented in
+    fecproxy/packet.py (version|type, flags, session 32, SBN 24 | ESI 8) without using its code."""
+    version_type, _flags, session, sbn_esi = struct.unpack_from(">BBII", data)
+    return version_type & 0x0F, session, sbn_esi >> 8, sbn_esi & 0xFF
+
+
+SOURCE, REPAIR = 0, 1
+
+# --------------------------------------------------------------------------------------------
+# Application endpoints
+# --------------------------------------------------------------------------------------------
+
+
+def _udp_socket() -> socket.socket:
+    sock = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    for option in (socket.SO_RCVBUF, socket.SO_SNDBUF):
+        sock.setsockopt(socket.SOL_SOCKET, option, 4 * 1024 * 1024)
+    sock.bind((LOOPBACK, 0))
+    sock.settimeout(0.05)
+    return sock
+
+
+class AppServer:
+    """The application server behind the receiver: checks every datagram; optionally echoes it."""
+
+    def __init__(self, *, echo: bool = False):
+        self.sock = _udp_socket()
+        self.echo = echo
+        self.received: list[tuple[int, int]] = []
+        self.raw: list[bytes] = []
+        self.sources: dict[int, set] = defaultdict(set)  # stream -> source addresses seen
+        self.corrupted = 0
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, daemon=True)
+        self._thread.start()
+
+    @property
+    def address(self) -> tuple[str, int]:
+        return self.sock.getsockname()
+
+    def _run(self) -> None:
+        while not self._stop.is_set():
+            try:
+                data, address = self.sock.recvfrom(65535)
+            except (TimeoutError, BlockingIOError):
+                continue
+            except OSError:
+                return
+            self.raw.append(data)
+            ids = check_payload(data)
+            if ids is None:
+                self.corrupted += 1
+                continue
+            self.received.append(ids)
+            self.sources[ids[0]].add(address)
+            if self.echo:
+                self.sock.sendto(data, address)
+
+    def count(self) -> int:
+        return len(self.received)
+
+    def close(self) -> None:
+        self._stop.set()
+        self._thread.join(timeout=2)
+        self.sock.close()
+
+
+class Client:
+    """An application client in front of the sender; collects the replies it gets."""
+
+    def __init__(self, stream: int, destination: tuple[str, int]):
+        self.stream = stream
+        self.destination = destination
+        self.sock = _udp_socket()
+        self.sock.setblocking(False)
+        self.replies: list[tuple[int, int] | None] = []
+
+    def send(self, seq: int) -> None:
+        self.sock.sendto(make_payload(self.stream, seq), self.destination)
+
+    def collect(self) -> None:
+        while True:
+            try:
+                data = self.sock.recv(65535)
+            except BlockingIOError:
+                return
+            self.replies.append(check_payload(data))
+
+    def close(self) -> None:
+        self.sock.close()
+
+
+def send_paced(send, count: int, rate: float) -> None:
+    """Call ``send(i)`` for i < count at about ``rate`` per second (modest rates: nothing is lost
+    in a kernel buffer, so every missing datagram is the relay's doing)."""
+    start = time.monotonic()
+    for i in range(count):
+        ahead = start + i / rate - time.monotonic()
+        if ahead > 0.002:
+            time.sleep(ahead)
+        send(i)
+
+
+def wait_until(predicate, timeout: float, interval: float = 0.02) -> bool:
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        if predicate():
+            return True
+        time.sleep(interval)
+    return predicate()
+
+
+# --------------------------------------------------------------------------------------------
+# Daemon processes
+# --------------------------------------------------------------------------------------------
+
+_FIELD = re.compile(r'(\w+)=("(?:[^"\\]|\\.)*"|\S*)')
+
+
+def parse_log_line(line: str) -> dict[str, str]:
+    return {key: json.loads(value) if value.startswith('"') else value for key, value in _FIELD.findall(line)}
+
+
+class DaemonProcess:
+    """``python -m fecproxy run CONFIG`` with its stderr collected line by line in a thread."""
+
+    def __init__(self, config_path: Path):
+        self.config_path = config_path
+        self.proc = subprocess.Popen(
+            [sys.executable, "-m", "fecproxy", "run", str(config_path), "--log-format", "text"],
+            stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True,
+        )
+        self.lines: list[str] = []
+        self._reader = threading.Thread(target=self._read, daemon=True)
+        self._reader.start()
+        self.started: dict[str, str] = {}
+
+    def _read(self) -> None:
+        for line in self.proc.stderr:
+            self.lines.append(line.rstrip("\n"))
+
+    def events(self, name: str) -> list[dict[str, str]]:
+        return [fields for fields in map(parse_log_line, list(self.lines)) if fields.get("event") == name]
+
+    def wait_event(self, name: str, timeout: float, count: int = 1) -> dict[str, str]:
+        ok = wait_until(lambda: len(self.events(name)) >= count or self.proc.poll() is not None, timeout)
+        found = self.events(name)
+        assert ok and len(found) >= count, f"no event={name} (x{count}) within {timeout}s; log:\n" + self.log()
+        return found[count - 1]
+
+    def wait_started(self) -> None:
+        self.started = self.wait_event("started", STARTUP_TIMEOUT)
+
+    def log(self) -> str:
+        return "\n".join(self.lines)
+
+    @staticmethod
+    def _address(text: str) -> tuple[str, int]:
+        host, _, port = text.rpartition(":")
+        return host, int(port)
+
+    @property
+    def link_address(self) -> tuple[str, int]:
+        return self._address(self.started["link"])
+
+    @property
+    def listen_address(self) -> tuple[str, int]:
+        return self._address(self.started["listen"])
+
+    def metrics(self) -> dict[tuple[str, tuple], float]:
+        """Every sample on /metrics, keyed by (sample name, sorted label items)."""
+        url = f"http://{LOOPBACK}:{self.started['metrics']}/metrics"
+        with urllib.request.urlopen(url, timeout=5) as response:
+            text = response.read().decode()
+        samples = {}
+        for family in text_string_to_metric_families(text):
+            for sample in family.samples:
+                samples[(sample.name, tuple(sorted(sample.labels.items())))] = sample.value
+        return samples
+
+    def metric(self, name: str, **labels: str) -> float:
+        return self.metrics()[(name, tuple(sorted(labels.items())))]
+
+    def info(self) -> dict[str, str]:
+        for (name, labels), _ in self.metrics().items():
+            if name == "fecproxy_info":
+                return dict(labels)
+        raise AssertionError("no fecproxy_info on /metrics")
+
+    def signal_stop(self) -> None:
+        if self.proc.poll() is None:
+            self.proc.send_signal(signal.SIGTERM)
+
+    def terminate(self, timeout: float = 5.0) -> int:
+        self.signal_stop()
+        try:
+            return self.proc.wait(timeout=timeout)
+        except subprocess.TimeoutExpired:
+            self.proc.kill()
+            self.proc.wait(timeout=5)
+            raise AssertionError(f"{self.config_path.name} did not exit within {timeout}s of SIGTERM")
+        finally:
+            self._reader.join(timeout=2)
+
+
+def write_config(path: Path, document: dict) -> Path:
+    path.write_text(yaml.safe_dump(document, sort_keys=False))
+    return path
+
+
+def sender_config(peer: tuple[str, int], **fec) -> dict:
+    return {
+        "role": "sender",
+        "listen": f"{LOOPBACK}:0",
+        "link": {"bind": f"{LOOPBACK}:0", "peer": f"{peer[0]}:{peer[1]}"},
+        "fec": {"block_size": 16, "repair": 4, "flush_ms": 20, **fec},
+        "metrics": {"listen": f"{LOOPBACK}:0"},
+        "log": {"level": "info", "format": "text"},
+    }
+
+
+def receiver_config(forward: tuple[str, int], **fec) -> dict:
+    return {
+        "role": "receiver",
+        "forward": f"{forward[0]}:{forward[1]}",
+        "link": {"bind": f"{LOOPBACK}:0"},
+        "fec": {"block_size": 16, "repair": 4, "flush_ms": 20, **fec},
+        "metrics": {"listen": f"{LOOPBACK}:0"},
+        "log": {"level": "info", "format": "text"},
+    }
+
+
+class Pair:
+    """Application server, receiver, relay and sender, started in that order; closed in reverse."""
+
+    def __init__(self, tmp_path: Path, *, sender_fec=None, receiver_fec=None, forward=no_loss, back=no_loss,
+                 record=False, echo=False, sender_extra=None, receiver_extra=None):
+        self._closers = []
+        try:
+            self.server = AppServer(echo=echo)
+            self._closers.append(self.server.close)
+            self.relay = LossyRelay(forward=forward, back=back, record=record).__enter__()
+            self._closers.append(self.relay.close)
+            sender = sender_config(self.relay.address, **(sender_fec or {})) | (sender_extra or {})
+            receiver = receiver_config(self.server.address, **(receiver_fec or {})) | (receiver_extra or {})
+            self.sender_path = write_config(tmp_path / "sender.yaml", sender)
+            receiver_path = write_config(tmp_path / "receiver.yaml", receiver)
+            # Both daemons start at once (their imports dominate), then the relay learns its target.
+            self.receiver = DaemonProcess(receiver_path)
+            self._closers.append(self.receiver.terminate)
+            self.sender = DaemonProcess(self.sender_path)
+            self._closers.append(self.sender.terminate)
+            self.receiver.wait_started()
+            self.sender.wait_started()
+            self.relay.target = self.receiver.link_address
+        except BaseException:
+            self.close()
+            raise
+        self.clients: list[Client] = []
+
+    def client(self, stream: int) -> Client:
+        client = Client(stream, self.sender.listen_address)
+        self.clients.append(client)
+        return client
+
+    def close(self) -> list[int]:
+        """Stop everything; returns the daemons' exit codes (sender first)."""
+        codes, errors = [], []
+        for client in getattr(self, "clients", []):
+            client.close()
+        for daemon in (getattr(self, "sender", None), getattr(self, "receiver", None)):
+            if daemon is not None:
+                daemon.signal_stop()  # both stop at once; terminate() below collects them
+        for closer in reversed(self._closers):
+            try:
+                codes.append(closer())
+            except Exception as error:  # keep closing the rest, report afterwards
+                errors.append(error)
+        self._closers.clear()
+        if errors:
+            raise errors[0]
+        return [code for code in codes if code is not None]
+
+
+@pytest.fixture
+def pairs(tmp_path):
+    """Factory of started pairs; every pair is stopped at the end of the test, pass or fail."""
+    started: list[Pair] = []
+
+    def start(**kwargs) -> Pair:
+        pair = Pair(tmp_path, **kwargs)
+        started.append(pair)
+        return pair
+
+    yield start
+    codes = [code for pair in started for code in pair.close()]
+    assert codes == [0] * len(codes), f"daemon exit codes after SIGTERM: {codes}"
+
+
+def drain(pair: Pair, expected: int, timeout: float = DRAIN_TIMEOUT) -> None:
+    """Wait until the server has ``expected`` datagrams, or the receiver has accounted for every
+    one of them as delivered or unrecovered (blocks that failed are reported after hold_ms)."""
+
+    def settled() -> bool:
+        if pair.server.count() >= expected:
+            return True
+        metrics = pair.receiver.metrics()
+        done = metrics[("fecproxy_datagrams_delivered_total", ())] + metrics[("fecproxy_datagrams_unrecovered_total", ())]
+        return done >= expected and pair.server.count() >= metrics[("fecproxy_datagrams_delivered_total", ())]
+
+    assert wait_until(settled, timeout, interval=0.1), (
+        f"server has {pair.server.count()} of {expected}; receiver log:\n{pair.receiver.log()}"
+    )
+
+
+def exact_residual(packets, k: int, m: int) -> tuple[int, int]:
+    """(source packets lost on the link, source datagrams no decoder can rebuild), computed from
+    the relay's own record of the forward direction, with blocks aligned as NEVER_FLUSH_MS makes
+    them: an MDS code rebuilds a block exactly when at most m of its k + m packets are lost."""
+    n = k + m
+    lost_sources = 0
+    residual = 0
+    per_block: dict[int, list[int]] = defaultdict(list)
+    for index, dropped, _ in packets:
+        if dropped:
+            per_block[index // n].append(index % n)
+    for positions in per_block.values():
+        sources = sum(1 for p in positions if p < k)
+        lost_sources += sources
+        if len(positions) > m:
+            residual += sources
+    return lost_sources, residual
+
+
+def assert_aligned(packets, k: int, m: int) -> None:
+    """Link packet i is ESI i % n of block i // n: the premise of ``exact_residual``."""
+    n = k + m
+    for index, _, data in packets:
+        kind, _, sbn, esi = parse_link_header(data)
+        assert (sbn, esi) == (index // n, index % n), f"packet {index} is {sbn}/{esi}"
+        assert kind == (SOURCE if esi < k else REPAIR)
+
+
+# --------------------------------------------------------------------------------------------
+# The data path
+# --------------------------------------------------------------------------------------------
+
+
+def test_no_corrupted_or_duplicated_datagram_is_ever_delivered(pairs):
+    """20 % i.i.d. loss: many blocks are rebuilt, many fail; whatever arrives is bit-exact."""
+    k, m, count = 16, 4, 1600
+    pair = pairs(sender_fec={"flush_ms": NEVER_FLUSH_MS}, forward=iid_loss(0.20, seed=7), record=True)
+    client = pair.client(stream=1)
+    send_paced(client.send, count, rate=2000)
+    drain(pair, count)
+    assert pair.server.corrupted == 0
+    received = Counter(pair.server.received)
+    assert max(received.values()) == 1, "a datagram was delivered twice"
+    assert set(received) <= {(1, seq) for seq in range(count)}
+    metrics = pair.receiver.metrics()
+    assert metrics[("fecproxy_datagrams_recovered_total", ())] > 0
+    assert metrics[("fecproxy_datagrams_unrecovered_total", ())] > 0
+    assert metrics[("fecproxy_datagrams_delivered_total", ())] == len(received)
+    assert len(received) + metrics[("fecproxy_datagrams_unrecovered_total", ())] == count
+
+
+def test_every_datagram_arrives_when_each_block_loses_at_most_m(pairs):
+    """Deterministic pattern: block b loses b % (m + 1) of its k + m packets, sources and repair
+    alike, at positions drawn by a seeded generator.  MDS: any k of n rebuild the block."""
+    k, m, blocks = 16, 4, 100
+    n = k + m
+    rng = random.Random(3)
+    dropped = {b * n + position for b in range(blocks) for position in rng.sample(range(n), b % (m + 1))}
+    pair = pairs(sender_fec={"flush_ms": NEVER_FLUSH_MS}, forward=drop_indices(dropped), record=True)
+    client = pair.client(stream=2)
+    send_paced(client.send, blocks * k, rate=2000)
+    drain(pair, blocks * k)
+    assert pair.relay.forward.dropped == len(dropped)
+    assert_aligned(pair.relay.forward.packets, k, m)
+    assert sorted(pair.server.received) == [(2, seq) for seq in range(blocks * k)]
+    assert pair.server.corrupted == 0
+    lost_sources = sum(1 for i in dropped if i % n < k)
+    metrics = pair.receiver.metrics()
+    assert metrics[("fecproxy_source_packets_lost_total", ())] == lost_sources
+    assert metrics[("fecproxy_datagrams_recovered_total", ())] == lost_sources
+    assert metrics[("fecproxy_datagrams_unrecovered_total", ())] == 0
+    assert metrics[("fecproxy_link_packets_received_total", (("kind", "source"),))] == blocks * k - lost_sources
+    sent = pair.sender.metrics()
+    assert sent[("fecproxy_source_packets_sent_total", ())] == blocks * k
+    assert sent[("fecproxy_repair_packets_sent_total", ())] == blocks * m
+    assert sent[("fecproxy_blocks_sent_total", ())] == blocks
+
+
+@pytest.mark.slow
+def test_residual_loss_on_iid_link_matches_the_mds_formula(pairs):
+    """Seeded i.i.d. 5 % link, k=16, m=4, 1250 full blocks (20 000 datagrams).
+
+    Oracle (design notes §4, the standard MDS erasure result): a source datagram is lost after
+    decoding when it is lost and at least n − k of the other n − 1 packets of its block are lost
+    too, so the residual loss per datagram is p · P[Binomial(n − 1, p) ≥ n − k]; scipy.stats.binom
+    computes it.  Losses inside a block are correlated, so the statistical unit is the block:
+    X_b = source datagrams block b cannot rebuild, with L ~ Binomial(n, p) packets lost and the
+    lost sources given L hypergeometric (scipy.stats.hypergeom); E[X]/k must equal the formula.
+    Tolerance: the total of 1250 independent X_b lies within 4 standard deviations of its mean
+    (normal approximation; one-sided tail 3e-5 when it holds).  With ~13 expected residual losses
+    the lower bound is 0, so the check is "FEC leaves at most ~45 of the ~1000 the link drops".
+    """
+    k, m, p, blocks = 16, 4, 0.05, 1250
+    n = k + m
+    # scipy.stats.binom and scipy.stats.hypergeom as oracles.
+    formula = p * binom.sf(n - k - 1, n - 1, p)  # P[Bin(n-1, p) ≥ n-k] = sf(n-k-1)
+    mean_x = second_x = 0.0
+    for lost in range(m + 1, n + 1):
+        weight = binom.pmf(lost, n, p)
+        for sources in range(lost + 1):  # population n, k of them sources, `lost` drawn
+            both = weight * hypergeom.pmf(sources, n, k, lost)
+            mean_x += both * sources
+            second_x += both * sources**2
+    assert math.isclose(mean_x / k, formula, rel_tol=1e-9)
+    sigma = math.sqrt(blocks * (second_x - mean_x**2))
+    expected = blocks * mean_x
+
+    pair = pairs(sender_fec={"flush_ms": NEVER_FLUSH_MS}, forward=iid_loss(p, seed=2024), record=True)
+    client = pair.client(stream=3)
+    count = blocks * k
+    send_paced(client.send, count, rate=3000)
+    drain(pair, count, timeout=20)
+
+    packets = pair.relay.forward.packets
+    assert len(packets) == blocks * n
+    assert_aligned(packets, k, m)
+    link_lost_sources, residual = exact_residual(packets, k, m)
+    # The relay's own loss rate is a binomial sample too: within 4 sigma of n·blocks·p.
+    link_packets = blocks * n
+    assert abs(pair.relay.forward.dropped - link_packets * p) <= 4 * math.sqrt(link_packets * p * (1 - p))
+    assert residual <= expected + 4 * sigma, (residual, expected, sigma)
+    assert residual >= expected - 4 * sigma
+
+    # The pair's own counts agree exactly with what the relay did, and with the server's count.
+    missing = count - len(set(pair.server.received))
+    assert pair.server.corrupted == 0
+    assert missing == residual
+    metrics = pair.receiver.metrics()
+    assert metrics[("fecproxy_source_packets_lost_total", ())] == link_lost_sources
+    assert metrics[("fecproxy_datagrams_unrecovered_total", ())] == residual
+    assert metrics[("fecproxy_datagrams_recovered_total", ())] == link_lost_sources - residual
+    print(f"residual {residual} (expected {expected:.1f} ± {sigma:.1f}), link lost {link_lost_sources} sources")
+
+
+def test_replies_reach_the_right_client(pairs):
+    """Four clients at once; the server echoes each datagram; each client gets exactly its own.
+
+    The reply direction loses 2 of every 12 link packets (blocks of k=8, m=4 that close only
+    when full), so rebuilt replies must find their client through the flow id carried inside
+    the repair symbol (RFC 6363 §4), not through a source packet header.
+    """
+    clients_count, per_client = 4, 50
+    k, m = 8, 4
+    blocks = clients_count * per_client // k
+    rng = random.Random(5)
+    back_losses = {b * (k + m) + position for b in range(blocks) for position in rng.sample(range(k + m), 2)}
+    pair = pairs(echo=True, receiver_fec={"block_size": k, "repair": m, "flush_ms": NEVER_FLUSH_MS},
+                 back=drop_indices(back_losses))
+    clients = [pair.client(stream=10 + i) for i in range(clients_count)]
+
+    def send(i: int) -> None:
+        clients[i % clients_count].send(i // clients_count)
+
+    send_paced(send, clients_count * per_client, rate=1000)
+
+    def all_replied() -> bool:
+        for client in clients:
+            client.collect()
+        return all(len(client.replies) >= per_client for client in clients)
+
+    assert wait_until(all_replied, DRAIN_TIMEOUT), [len(c.replies) for c in clients]
+    time.sleep(0.1)  # anything extra or misrouted would show up now
+    for client in clients:
+        client.collect()
+        assert sorted(client.replies) == [(client.stream, seq) for seq in range(per_client)]
+    # The receiver talks to the server from one socket per flow, so each client has its own port.
+    assert all(len(pair.server.sources[c.stream]) == 1 for c in clients)
+    assert len({next(iter(pair.server.sources[c.stream])) for c in clients}) == clients_count
+    assert pair.sender.metric("fecproxy_flows") == clients_count
+    assert pair.receiver.metric("fecproxy_flows") == clients_count
+    assert pair.relay.back.dropped == len(back_losses)
+    rebuilt = sum(1 for i in back_losses if i % (k + m) < k)
+    assert pair.sender.metric("fecproxy_datagrams_recovered_total") == rebuilt > 0
+    assert pair.sender.metric("fecproxy_datagrams_unrecovered_total") == 0
+
+
+def test_empty_and_largest_datagrams_are_rebuilt_exactly_and_oversize_is_counted(pairs):
+    """Zero-length and max_datagram_bytes datagrams survive loss and rebuilding byte for byte
+    (RFC 6363 §4: the length travels inside the source symbol); one byte more is dropped and
+    counted at the sender, and takes no place in a block."""
+    k, m = 4, 2
+    pair = pairs(sender_fec={"block_size": k, "repair": m, "flush_ms": NEVER_FLUSH_MS},
+                 forward=drop_indices({0, 1, 6 + 0, 6 + 1}), record=True)
+    # Losses: block 0 its empty and its largest datagram, block 1 its largest and one empty.
+    blocks = [[b"", b"\x00" * 1400, b"a", b"\xff" * 700], [b"z" * 1400, b"", b"", b"q"]]
+    client = pair.client(stream=50)
+    for i, data in enumerate(blocks[0] + blocks[1]):
+        client.sock.sendto(data, client.destination)
+        if i == 2:
+            client.sock.sendto(b"o" * 1401, client.destination)  # oversize, between two datagrams
+    assert wait_until(lambda: len(pair.server.raw) >= 8, DRAIN_TIMEOUT), pair.server.raw
+    time.sleep(0.05)
+    assert Counter(pair.server.raw) == Counter(blocks[0] + blocks[1])
+    assert pair.receiver.metric("fecproxy_datagrams_recovered_total") == 4
+    assert pair.sender.metric("fecproxy_packets_dropped_total", reason="oversize") == 1
+    assert pair.sender.metric("fecproxy_source_packets_sent_total") == 8
+    assert_aligned(pair.relay.forward.packets, k, m)
+
+
+def test_consecutive_empty_datagrams_are_all_delivered(pairs):
+    """Two empty datagrams rebuilt from the same block reach the server as two datagrams."""
+    pair = pairs(sender_fec={"block_size": 4, "repair": 2, "flush_ms": NEVER_FLUSH_MS}, forward=drop_indices({0, 1}))
+    client = pair.client(stream=51)
+    for data in (b"", b"", b"a", b"b"):
+        client.sock.sendto(data, client.destination)
+    assert wait_until(lambda: pair.receiver.metric("fecproxy_datagrams_delivered_total") == 4, DRAIN_TIMEOUT)
+    time.sleep(0.1)
+    assert Counter(pair.server.raw) == Counter([b"", b"", b"a", b"b"])
+
+
+def test_flow_table_limit_and_idle_expiry(pairs):
+    """flows.max bounds the sender's table (the extra client's datagram is counted as
+    flow_limit); idle flows expire on both sides and their ids are reused."""
+    flows = {"max": 2, "idle_timeout_s": 1}
+    pair = pairs(echo=True, sender_extra={"flows": flows}, receiver_extra={"flows": {"idle_timeout_s": 1}})
+    clients = [pair.client(stream=60 + i) for i in range(3)]
+    for client in clients:
+        client.send(0)
+        time.sleep(0.01)
+    assert wait_until(lambda: pair.server.count() >= 2, DRAIN_TIMEOUT)
+    assert wait_until(lambda: pair.sender.metric("fecproxy_packets_dropped_total", reason="flow_limit") == 1, 5)
+    assert sorted(pair.server.received) == [(60, 0), (61, 0)]
+    assert pair.sender.metric("fecproxy_flows") == 2
+    assert wait_until(lambda: pair.sender.metric("fecproxy_flows") == 0, 5, interval=0.1)
+    assert wait_until(lambda: pair.receiver.metric("fecproxy_flows") == 0, 5, interval=0.1)
+    # The third client now gets a flow (a reused id) and its reply.
+    clients[2].send(1)
+    assert wait_until(lambda: (clients[2].collect(), clients[2].replies)[1] == [(62, 1)], DRAIN_TIMEOUT)
+    assert pair.sender.metric("fecproxy_flows") == 1
+
+
+# --------------------------------------------------------------------------------------------
+# Signals
+# --------------------------------------------------------------------------------------------
+
+
+def _source_and_repair(packets, start: int = 0) -> tuple[int, int]:
+    kinds = Counter(parse_link_header(data)[0] for _, _, data in packets[start:])
+    return kinds[SOURCE], kinds[REPAIR]
+
+
+def test_sighup_changes_k_and_m_live_and_keeps_flows(pairs, tmp_path):
+    pair = pairs(sender_fec={"flush_ms": NEVER_FLUSH_MS}, echo=True, record=True)
+    client = pair.client(stream=20)
+    assert pair.sender.info()["k"] == "16" and pair.sender.info()["m"] == "4"
+    send_paced(client.send, 32, rate=1000)
+    drain(pair, 32)
+    assert _source_and_repair(pair.relay.forward.packets) == (32, 8)
+
+    # A valid new config: k=8, m=4 from the next block on.
+    document = sender_config(pair.relay.address, block_size=8, repair=4, flush_ms=NEVER_FLUSH_MS)
+    document["listen"] = f"{LOOPBACK}:0"  # unchanged: port 0 as before
+    write_config(pair.sender_path, document)
+    pair.sender.proc.send_signal(signal.SIGHUP)
+    reloaded = pair.sender.wait_event("reloaded", 5)
+    assert (reloaded["k"], reloaded["m"]) == ("8", "4")
+    assert pair.sender.info()["k"] == "8" and pair.sender.info()["m"] == "4"
+    assert pair.sender.metric("fecproxy_config_reloads_total", result="applied") == 1
+    before = len(pair.relay.forward.packets)
+    send_paced(lambda i: client.send(32 + i), 32, rate=1000)
+    drain(pair, 64)
+    assert wait_until(lambda: len(pair.relay.forward.packets) >= before + 32 + 16, 5)
+    assert _source_and_repair(pair.relay.forward.packets, before) == (32, 16)  # 4 blocks of 8 + 4
+
+    # An invalid new config is logged and the old one kept.
+    document["fec"]["repair"] = 300
+    write_config(pair.sender_path, document)
+    pair.sender.proc.send_signal(signal.SIGHUP)
+    rejected = pair.sender.wait_event("reload_rejected", 5)
+    assert "fec.repair" in rejected["errors"]
+    assert pair.sender.metric("fecproxy_config_reloads_total", result="rejected") == 1
+    assert pair.sender.info()["k"] == "8" and pair.sender.info()["m"] == "4"
+
+    # The flow survived both reloads: same client, same flow, replies still come back.
+    send_paced(lambda i: client.send(64 + i), 8, rate=1000)
+    drain(pair, 72)
+    assert wait_until(lambda: (client.collect(), len(client.replies) >= 72)[1], DRAIN_TIMEOUT)
+    assert sorted(client.replies) == [(20, seq) for seq in range(72)]
+    assert pair.sender.metric("fecproxy_flows") == 1
+    assert pair.sender.proc.poll() is None
+
+
+def test_sigterm_sends_the_open_blocks_repair_and_exits_0_within_a_second(pairs):
+    """A block of 5 datagrams, one lost on the link, would wait 30 s for its flush timer; SIGTERM
+    closes it at once: its ceil(4·5/16) = 2 repair packets go out and the receiver rebuilds."""
+    pair = pairs(sender_fec={"flush_ms": NEVER_FLUSH_MS}, forward=drop_indices({2}), record=True)
+    client = pair.client(stream=30)
+    for seq in range(5):
+        client.send(seq)
+    assert wait_until(lambda: pair.relay.forward.seen >= 5, DRAIN_TIMEOUT)
+    time.sleep(0.05)
+    assert _source_and_repair(pair.relay.forward.packets) == (5, 0)
+    started = time.monotonic()
+    pair.sender.proc.send_signal(signal.SIGTERM)
+    code = pair.sender.proc.wait(timeout=5)
+    elapsed = time.monotonic() - started
+    assert code == 0
+    assert elapsed < SIGTERM_EXIT_SECONDS, f"exit took {elapsed:.2f}s"
+    print(f"sender exited {elapsed * 1000:.0f} ms after SIGTERM")
+    assert _source_and_repair(pair.relay.forward.packets) == (5, 2)
+    drain(pair, 5)
+    assert sorted(pair.server.received) == [(30, seq) for seq in range(5)]
+    assert pair.receiver.metric("fecproxy_datagrams_recovered_total") == 1
+    pair.sender._reader.join(timeout=2)
+    assert pair.sender.events("stopping")[0]["signal"] == "SIGTERM"
+    assert pair.sender.events("stopped")[0]["repair_sent"] == "2"
+    # The receiver stops on SIGINT just the same, and stop signals repeated while it shuts down
+    # (an impatient operator, a supervisor's retry) still end in a clean exit 0, not death by signal.
+    for signum in (signal.SIGINT, signal.SIGINT, signal.SIGTERM):
+        pair.receiver.proc.send_signal(signum)
+        time.sleep(0.01)
+    assert pair.receiver.proc.wait(timeout=5) == 0
+    pair.receiver._reader.join(timeout=2)
+    assert len(pair.receiver.events("stopping")) == 1
+
+
+# --------------------------------------------------------------------------------------------
+# Start-up failures
+# --------------------------------------------------------------------------------------------
+
+
+def _run_to_exit(config_path: Path, timeout: float = STARTUP_TIMEOUT) -> subprocess.CompletedProcess:
+    return subprocess.run(
+        [sys.executable, "-m", "fecproxy", "run", str(config_path)],
+        stdin=subprocess.DEVNULL, capture_output=True, text=True, timeout=timeout,
+    )
+
+
+def test_invalid_config_exits_2_with_the_message(tmp_path):
+    document = receiver_config((LOOPBACK, 9), block_size=10, repair=20)
+    document["fec"]["flsh_ms"] = 5
+    path = write_config(tmp_path / "bad.yaml", document)
+    result = _run_to_exit(path)
+    assert result.returncode == 2
+    assert f"{path}" in result.stderr
+    assert "fec.repair" in result.stderr and "block_size" in result.stderr
+    assert "did you mean fec.flush_ms?" in result.stderr
+    assert "Traceback" not in result.stderr
+    missing = _run_to_exit(tmp_path / "absent.yaml")
+    assert missing.returncode == 2 and "cannot read" in missing.stderr
+
+
+@pytest.mark.parametrize("busy_key", ["listen", "link.bind", "metrics.listen"])
+def test_busy_port_exits_1_with_a_clear_message(tmp_path, busy_key):
+    kind = socket.SOCK_STREAM if busy_key == "metrics.listen" else socket.SOCK_DGRAM
+    with socket.socket(socket.AF_INET, kind) as holder:
+        holder.bind((LOOPBACK, 0))
+        if kind == socket.SOCK_STREAM:
+            holder.listen()
+        busy = f"{LOOPBACK}:{holder.getsockname()[1]}"
+        document = sender_config((LOOPBACK, 9))
+        if busy_key == "listen":
+            document["listen"] = busy
+        elif busy_key == "link.bind":
+            document["link"]["bind"] = busy
+        else:
+            document["metrics"]["listen"] = busy
+        result = _run_to_exit(write_config(tmp_path / "busy.yaml", document))
+    assert result.returncode == 1, result.stderr
+    assert busy_key in result.stderr and busy in result.stderr
+    assert "in use" in result.stderr
+    assert "Traceback" not in result.stderr
+
+
+# --------------------------------------------------------------------------------------------
+# Hostile input on the link
+# --------------------------------------------------------------------------------------------
+
+
+def test_malformed_and_forged_packets_are_counted_and_never_crash_the_receiver(pairs):
+    pair = pairs(echo=True, record=True)
+    client = pair.client(stream=40)
+    send_paced(client.send, 32, rate=1000)
+    drain(pair, 32)
+    _, session, _, _ = parse_link_header(pair.relay.forward.packets[0][2])
+    genuine_source = pair.relay.forward.packets[3][2]  # block 0 is finished by now
+
+    def header(kind: int, flags: int, sbn: int, esi: int, version: int = 1, sess: int = session) -> bytes:
+        return struct.pack(">BBII", (version << 4) | kind, flags, sess, (sbn << 8) | esi)
+
+    hostile = {
+        "malformed": [
+            b"",  # empty datagram
+            b"\x10\x00\x00",  # shorter than the common header
+            header(SOURCE, 0, 5, 0),  # source without its flow id
+            header(REPAIR, 0, 5, 20) + b"\x00",  # repair without its k field
+            header(REPAIR, 0, 5, 20) + struct.pack(">H", 0) + b"abc",  # k = 0
+            header(REPAIR, 0, 5, 3) + struct.pack(">H", 16) + b"abc",  # ESI below k
+            header(REPAIR, 0, 5, 255) + struct.pack(">H", 16) + b"abc",  # ESI 255 (n ≤ 255)
+            header(REPAIR, 0, 5, 20) + struct.pack(">H", 16) + b"a",  # symbol shorter than its prefix
+        ],
+        "unsupported": [
+            header(SOURCE, 0, 5, 0, version=2) + b"\x00data",  # a future version
+            header(SOURCE, 0x40, 5, 0) + b"\x00data",  # undefined flag
+            header(7, 0, 5, 0) + b"\x00data",  # undefined type
+        ],
+        "oversize": [
+            header(SOURCE, 0, 5, 0) + b"\x00" + bytes(1401),  # above max_datagram_bytes 1400
+            header(REPAIR, 0, 5, 20) + struct.pack(">H", 16) + bytes(1404),
+        ],
+        "late": [genuine_source],  # replay of a datagram of a finished block
+        "stale": [header(SOURCE, 0, (1 << 24) - 5000, 0) + b"\x00old"],  # far behind the window
+    }
+    before = {reason: pair.receiver.metric("fecproxy_packets_dropped_total", reason=reason) for reason in hostile}
+    with socket.socket(socket.AF_INET, socket.SOCK_DGRAM) as attacker:
+        attacker.bind((LOOPBACK, 0))
+        for _ in range(3):  # bounded repetitions
+            for packets in hostile.values():
+                for data in packets:
+                    attacker.sendto(data, pair.receiver.link_address)
+        rng = random.Random(11)
+        for _ in range(300):  # random bytes of random lengths, bounded
+            junk = rng.randbytes(rng.randrange(0, 1600))
+            if junk[:1] in (b"\x10", b"\x11") and junk[1:2] in (b"\x00", b"\x01"):
+                continue  # could pass as a well-formed packet of a new session (see below)
+            attacker.sendto(junk, pair.receiver.link_address)
+
+        def counted() -> bool:
+            metrics = pair.receiver.metrics()
+            return all(
+                metrics[("fecproxy_packets_dropped_total", (("reason", reason),))] - before[reason] >= 3 * len(packets)
+                for reason, packets in hostile.items()
+            )
+
+        assert wait_until(counted, DRAIN_TIMEOUT, interval=0.1), pair.receiver.metrics()
+        for reason, packets in hostile.items():
+            assert pair.receiver.metric("fecproxy_packets_dropped_total", reason=reason) - before[reason] >= 3 * len(packets)
+        assert pair.server.corrupted == 0
+        assert pair.receiver.proc.poll() is None
+        # Nothing hostile changed the learned peer: the pair still works both ways.
+        send_paced(lambda i: client.send(32 + i), 32, rate=1000)
+        drain(pair, 64)
+        assert wait_until(lambda: (client.collect(), len(client.replies) >= 64)[1], DRAIN_TIMEOUT)
+        assert sorted(client.replies) == [(40, seq) for seq in range(64)]
+        attacker.setblocking(False)
+        with pytest.raises(BlockingIOError):
+            attacker.recv(65535)  # no reply was ever sent to the attacker
+    assert pair.receiver.proc.poll() is None
+
+
+def test_one_forged_packet_of_a_new_session_does_not_stop_the_genuine_stream(pairs):
+    pair = pairs(record=True)
+    client = pair.client(stream=41)
+    send_paced(client.send, 16, rate=1000)
+    drain(pair, 16)
+    _, session, _, _ = parse_link_header(pair.relay.forward.packets[0][2])
+    forged = struct.pack(">BBIIB", 0x10 | SOURCE, 0, session ^ 0xFFFFFFFF, 0, 0) + b"forged"
+    with socket.socket(socket.AF_INET, socket.SOCK_DGRAM) as attacker:
+        attacker.bind((LOOPBACK, 0))
+        attacker.sendto(forged, pair.receiver.link_address)
+        assert wait_until(lambda: len(pair.server.raw) >= 17, DRAIN_TIMEOUT)
+    send_paced(lambda i: client.send(16 + i), 16, rate=1000)
+    drain(pair, 32, timeout=1.5)
+    assert sorted(pair.server.received) == [(41, seq) for seq in range(32)]
