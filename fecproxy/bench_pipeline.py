@@ -202,11 +202,11 @@ def _sink_main(conn) -> None:
                 delays.append(arrived - stamp)
 
 
-def _relay_main(conn, forward: tuple, link_side: bool) -> None:
+def _relay_main(conn, forward: tuple) -> None:
     """A plain relay: the same reader/writer as the daemon, no FEC.  Stops on SIGTERM.
 
-    The second relay of the chain reads like a receiver's link socket (``coalesce=True``),
-    the first like a sender's application socket, so both pipelines use the same I/O.
+    Both relays read with UDP GRO (``coalesce=True``), as the daemon reads its application and
+    link sockets, so both pipelines use the same I/O.
     """
     import trio
 
@@ -216,7 +216,7 @@ def _relay_main(conn, forward: tuple, link_side: bool) -> None:
         buffers = dict(receive_buffer=SOCKET_BUFFER_BYTES, send_buffer=SOCKET_BUFFER_BYTES)
         inbound = open_udp_socket("127.0.0.1", 0, **buffers)
         outbound = open_udp_socket("127.0.0.1", 0, **buffers)
-        reader, writer = DatagramReader(inbound, coalesce=link_side), DatagramWriter(outbound)
+        reader, writer = DatagramReader(inbound, coalesce=True), DatagramWriter(outbound)
         conn.send(inbound.getsockname())
         while True:
             batch = await reader.read_batch()
@@ -388,8 +388,8 @@ class _Bench:
             self.sink = self._start("sink", _sink_main)
             self.sink_address = self._reply(self.sink)
             self._reply(self.generator)
-            relay2_address = self._reply(self._start("plain relay 2", _relay_main, self.sink_address, True))
-            self.plain_address = self._reply(self._start("plain relay 1", _relay_main, relay2_address, False))
+            relay2_address = self._reply(self._start("plain relay 2", _relay_main, self.sink_address))
+            self.plain_address = self._reply(self._start("plain relay 1", _relay_main, relay2_address))
             receiver = self._daemon("receiver", {
                 "role": "receiver", "forward": _text(self.sink_address),
                 "link": {"bind": "127.0.0.1:0"}, "fec": {"block_size": self.k, "repair": self.m},

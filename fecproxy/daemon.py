@@ -29,7 +29,7 @@ from . import __version__
 from .channel import LossEstimator
 from .config import Config, ConfigError, load_config
 from .decoder import BlockDecoder, BlockReport, DecoderSettings, Delivery, Dropped, SessionStarted
-from .encoder import BlockEncoder, DatagramTooLarge, EncoderSettings
+from .encoder import BlockEncoder, EncoderSettings
 from .flows import FlowTable
 from .logs import log_event
 from .metrics import build_registry, serve
@@ -230,16 +230,16 @@ class Daemon:
     # ------------------------------------------------------------ tasks
     async def _client_loop(self) -> None:
         """Sender: applications' datagrams -> flows -> encoder -> link."""
-        reader = DatagramReader(self._app_sock)
-        encoder, flows = self.encoder, self.flows
+        reader = DatagramReader(self._app_sock, coalesce=True)
+        flows = self.flows
         unseen = object()  # a client not yet looked up in this batch (None = flow table full)
         while True:
             batch = await reader.read_batch()
             now = trio.current_time()
-            out: list[bytes] = []
             # One flow-table lookup per client per batch: all of a batch shares one `now`, so
             # repeating it per datagram would only redo the same bookkeeping.
             flow_of: dict = {}
+            items: list[tuple[bytes, int]] = []
             for data, address in batch:
                 flow = flow_of.get(address, unseen)
                 if flow is unseen:
@@ -247,14 +247,25 @@ class Daemon:
                 if flow is None:
                     self._drops["flow_limit"] += 1
                     continue
-                try:
-                    out += encoder.send(data, flow, now)
-                except DatagramTooLarge as error:
-                    log_event(log, logging.DEBUG, "dropped", reason="oversize", detail=str(error))
-                except Exception:  # a bug must cost one datagram, never the daemon
-                    self._internal_error("encoder")
-            await self._send_to_peer(out)
-            self._reschedule()
+                items.append((data, flow))
+            await self._encode_and_send(items, now)
+
+    async def _encode_and_send(self, items: list[tuple[bytes, int]], now: float) -> None:
+        """Frame a batch (blocks it fills share codec calls, see BlockEncoder.send_batch) and
+        put it on the link."""
+        encoder = self.encoder
+        oversize = encoder.stats.dropped.get("oversize", 0)
+        try:
+            out = encoder.send_batch(items, now)
+        except Exception:  # a bug must cost one batch, never the daemon
+            self._internal_error("encoder")
+            out = []
+        dropped = encoder.stats.dropped.get("oversize", 0) - oversize
+        if dropped:
+            log_event(log, logging.DEBUG, "dropped", reason="oversize", count=dropped,
+                      detail=f"datagrams over max_datagram {encoder.settings.max_datagram} bytes")
+        await self._send_to_peer(out)
+        self._reschedule()
 
     def _internal_error(self, where: str) -> None:
         self._drops["internal_error"] += 1
@@ -312,20 +323,12 @@ class Daemon:
     async def _upstream_loop(self, flow: int, upstream: "_Upstream") -> None:
         """Receiver: replies from the application server on this flow's socket -> link."""
         with upstream.scope:
-            reader = DatagramReader(upstream.sock, batch=64)
-            encoder = self.encoder
+            reader = DatagramReader(upstream.sock, batch=64, coalesce=True)
             while True:
                 batch = await reader.read_batch()
                 now = trio.current_time()
                 self.flows.touch(flow, now)  # once per batch: every datagram shares this `now`
-                out: list[bytes] = []
-                for data, _ in batch:
-                    try:
-                        out += encoder.send(data, flow, now)
-                    except DatagramTooLarge as error:
-                        log_event(log, logging.DEBUG, "dropped", reason="oversize", detail=str(error))
-                await self._send_to_peer(out)
-                self._reschedule()
+                await self._encode_and_send([(data, flow) for data, _ in batch], now)
 
     async def _signal_loop(self, signals) -> None:
         async for signum in signals:

@@ -286,7 +286,7 @@ class Multiplier:
             _xtime(by_value[power // 2 - 1], by_value[power - 1], tmp)
             np.bitwise_xor(by_value[: power - 1], by_value[power - 1][None], out=by_value[power : 2 * power - 1])
             power *= 2
-        gathered = np.take(table, self._index, axis=0)  # (inner, digits·rows, width)
+        gathered = table.take(self._index, axis=0)  # (inner, digits·rows, width)
         digits = np.bitwise_xor.reduce(gathered, axis=0).reshape(self.digits, self.rows, width)
         # Horner as a tree: join digit pairs (low + 2^b·high), then pairs of pairs.  The
         # gathered rows are spent by now, so their memory serves as scratch (no allocations).
