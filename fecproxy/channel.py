@@ -434,6 +434,11 @@ class LossEstimator:
         as a segment of its own; see the class docstring for why blocks are not chained."""
         span = int(span)
         self.end_segment()
+        if arrived_mask == (1 << span) - 1:  # the usual clean block: one run, no bit walk
+            if span:
+                self.observe_run(False, span)
+            self.end_segment()
+            return
         position = 0
         while position < span:
             lost = not (arrived_mask >> position) & 1
