@@ -248,6 +248,8 @@ class BlockDecoder:
         keep the packet to replay if the session is adopted."""
         if self._candidate != pkt.session:
             self._candidate, self._candidate_packets = pkt.session, []
+        if any(held.sbn == pkt.sbn and held.esi == pkt.esi for held in self._candidate_packets):
+            return [self._drop("duplicate", f"packet {pkt.sbn}/{pkt.esi} of a new session seen before")]
         self._candidate_packets.append(pkt)
         if isinstance(pkt, packet.RepairPacket):
             self.stats.repair_received += 1

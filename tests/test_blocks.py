@@ -294,3 +294,13 @@ def test_a_restarted_sender_is_adopted_after_confirmation_without_double_deliver
     assert dec.session == 200
     assert sorted(delivered(events)) == sorted(datagrams)  # each exactly once
     assert dec.stats.delivered == k + 2 and dec.stats.recovered == 1  # + the old session's two
+
+
+def test_a_duplicated_packet_of_a_candidate_session_is_delivered_once():
+    _, live = make_block(4, 2, session=100)
+    datagrams, new = make_block(4, 2, session=200, seed=8)
+    dec = BlockDecoder()
+    feed(dec, live[:1], now=1.0)
+    events = feed(dec, [new[0], new[0]], now=1.01)
+    assert delivered(events) == datagrams[:1]
+    assert [e.reason for e in events if isinstance(e, Dropped)] == ["duplicate"]
