@@ -304,3 +304,30 @@ def test_a_duplicated_packet_of_a_candidate_session_is_delivered_once():
     events = feed(dec, [new[0], new[0]], now=1.01)
     assert delivered(events) == datagrams[:1]
     assert [e.reason for e in events if isinstance(e, Dropped)] == ["duplicate"]
+
+
+def test_repair_packets_carry_rfc_symbols_of_the_rfc6363_framing():
+    # Outside check: the repair payloads equal what galois computes for RFC 5510 §8.2
+    # (GM = V_k^-1 · V over GF(2^8) on 0x11D, alpha = 2, §8.1) applied to the source symbols
+    # framed as RFC 6363 §4 / RFC 6865 §4 say: flow id (1) ‖ length (2, big-endian) ‖ data ‖ zeros.
+    import galois
+    import numpy as np
+
+    field = galois.GF(2**8, irreducible_poly=0x11D)
+    k, m = 3, 2
+    flows_and_data = [(7, b"wind 4.2"), (9, b"rain 0.0 mm"), (7, b"")]
+    enc = BlockEncoder(EncoderSettings(block_size=k, repair=m), session=1)
+    link = []
+    for flow, data in flows_and_data:
+        link += enc.send(data, flow, now=0.0)
+    repairs = [packet.parse(p, max_datagram=1400) for p in link[k:]]
+    length = 3 + max(len(d) for _, d in flows_and_data)
+    symbols = np.zeros((k, length), dtype=np.uint8)
+    for row, (flow, data) in enumerate(flows_and_data):
+        framed = bytes([flow]) + len(data).to_bytes(2, "big") + data
+        symbols[row, : len(framed)] = np.frombuffer(framed, dtype=np.uint8)
+    vandermonde = field.Vandermonde(field.primitive_element, k, k + m)
+    generator = np.linalg.inv(vandermonde[:, :k]) @ vandermonde
+    expected = generator[:, k:].T @ field(symbols)
+    assert [r.k for r in repairs] == [k, k] and [r.esi for r in repairs] == [k, k + 1]
+    assert [r.symbol for r in repairs] == [bytes(np.asarray(row, dtype=np.uint8)) for row in expected]

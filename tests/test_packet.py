@@ -14,7 +14,9 @@ from fecproxy.packet import (
     parse,
 )
 
-# Test vectors of our own format; DEVELOPERS.md "Wire format" lists the same bytes.
+# Test vectors of our own format; DEVELOPERS.md "Wire format" lists the same bytes.  The SBN (24 bits)
+# and ESI (8 bits) are the FEC Payload ID of RFC 6865 §5.1 for m = 8, and the repair packet's k is
+# its 16-bit "number of source symbols" field.
 SOURCE_VECTOR = bytes.fromhex("10 01 0a0b0c0d 000102 03 05") + b"wx"
 REPAIR_VECTOR = bytes.fromhex("11 00 0a0b0c0d fffffe 06 0004") + bytes.fromhex("1516177f")
 
