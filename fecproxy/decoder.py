@@ -139,7 +139,7 @@ class DecoderStats:
 
 
 class _Block:
-    __slots__ = ("sbn", "first_seen", "k", "sources", "repairs", "symbol_len", "max_esi", "arrived", "rebuilt")
+    __slots__ = ("sbn", "first_seen", "k", "sources", "repairs", "symbol_len", "max_esi", "arrived", "rebuilt", "told_previous")
 
     def __init__(self, sbn: int, now: float):
         self.sbn = sbn
@@ -151,6 +151,7 @@ class _Block:
         self.max_esi = -1
         self.arrived = 0  # bit i: source i came directly
         self.rebuilt = 0
+        self.told_previous = False  # a source packet has told the previous block's k
 
 
 class BlockDecoder:
@@ -164,6 +165,7 @@ class BlockDecoder:
         self._open: OrderedDict[int, _Block] = OrderedDict()
         self._finished: OrderedDict[int, None] = OrderedDict()
         self._highest: int | None = None
+        self._first_sbn: int | None = None  # the first block this session showed us
         self._last_seen = float("-inf")  # when the adopted session last sent a valid packet
         self._candidate: int | None = None
         self._candidate_packets: list[packet.SourcePacket | packet.RepairPacket] = []
@@ -179,7 +181,7 @@ class BlockDecoder:
         # anything else (another session, a bad field) falls through to the general path.
         size = len(data)
         if size >= packet.SOURCE_HEADER_BYTES:
-            version_type, flags, session, sbn_esi, flow = _LEADING_FIELDS(data)
+            version_type, flags, session, sbn_esi, flow, previous_k = _LEADING_FIELDS(data)
             if session == self.session:
                 self._last_seen = now
                 self.in_session = True
@@ -195,6 +197,9 @@ class BlockDecoder:
                             if block is None:
                                 events.append(self._behind(sbn, repair=False))
                                 return events
+                        if previous_k and not block.told_previous:
+                            block.told_previous = True
+                            self._learn_previous_k(sbn, previous_k, now, events)
                         self._add_source_fields(block, sbn, esi, flow, bool(flags), bytes(data[packet.SOURCE_HEADER_BYTES:]), events)
                         self._try_finish(block, now, events)
                         return events
@@ -267,6 +272,9 @@ class BlockDecoder:
             elif not replayed:
                 events.append(self._behind(pkt.sbn, repair=isinstance(pkt, packet.RepairPacket)))
             return
+        if isinstance(pkt, packet.SourcePacket) and pkt.previous_k and not block.told_previous:
+            block.told_previous = True
+            self._learn_previous_k(pkt.sbn, pkt.previous_k, now, events)
         if isinstance(pkt, packet.SourcePacket):
             if replayed:
                 # Delivered while its session was a candidate: record it, don't deliver it again.
@@ -309,6 +317,31 @@ class BlockDecoder:
         self.stats.dropped[reason] = self.stats.dropped.get(reason, 0) + 1
         return Dropped(reason, detail)
 
+    def _learn_previous_k(self, sbn: int, k: int, now: float, events: list[Event]) -> None:
+        """A source packet of a newly seen block told the size of the block before it.
+
+        That block may still be open without a known k (its tail and all its repair packets
+        were lost): now it knows how many datagrams it lost.  Or it was never seen at all (lost
+        whole): it is opened empty with that size, so it expires as counted loss unless its
+        packets still come.  Blocks before the first one this session showed are left alone —
+        they were sent before this receiver was listening.
+        """
+        previous = (sbn - 1) % packet.SBN_MODULUS
+        block = self._open.get(previous)
+        if block is not None:
+            if block.k is None and k > block.max_esi:
+                block.k = k
+                self._try_finish(block, now, events)
+            return
+        if previous in self._finished or self._first_sbn is None:
+            return
+        after_first = (previous - self._first_sbn) % packet.SBN_MODULUS
+        if not 0 < after_first < packet.SBN_MODULUS // 2:
+            return
+        block = self._block_for(previous, now, events)
+        if block is not None:
+            block.k = k
+
     def _start_session(self, session: int) -> list[Event]:
         events: list[Event] = [self._finish(block, "superseded") for block in list(self._open.values())]
         previous = self.session
@@ -317,6 +350,7 @@ class BlockDecoder:
         self.session = session
         self._finished.clear()
         self._highest = None
+        self._first_sbn = None
         events.append(SessionStarted(session, previous))
         return events
 
@@ -338,6 +372,8 @@ class BlockDecoder:
         while len(self._open) >= self.settings.max_open_blocks:
             events.append(self._finish(next(iter(self._open.values())), "evicted"))
         block = _Block(sbn, now)
+        if self._first_sbn is None:
+            self._first_sbn = sbn
         self._open[sbn] = block
         return block
 

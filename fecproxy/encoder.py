@@ -113,6 +113,7 @@ class BlockEncoder:
         self._pending: EncoderSettings | None = None
         self._allocate(settings)
         self._count = 0  # datagrams in the open block
+        self._previous_k = 0  # k of the block before the open one; 0 = none yet (a new session)
         self._symbol_len = 0
         self._deadline: float | None = None
 
@@ -166,7 +167,11 @@ class BlockEncoder:
             self._symbol_len = size + packet.SYMBOL_PREFIX_BYTES
         self._count = index + 1
         full = self._count == settings.block_size
-        out = [packet.encode_source(self.session, self._sbn, index, flow, bytes(datagram), end=full)]
+        out = [
+            packet.encode_source(
+                self.session, self._sbn, index, flow, bytes(datagram), end=full, previous_k=self._previous_k
+            )
+        ]
         self.stats.source_packets += 1
         if full:
             out.extend(self._close())
@@ -186,6 +191,7 @@ class BlockEncoder:
         session, pack_source, pack_prefix = self.session, packet.SOURCE_HEADER.pack, _SYMBOL_PREFIX.pack_into
         prefix = packet.SYMBOL_PREFIX_BYTES
         count, sbn, storage, symbol_len = self._count, self._sbn, self._storage, self._symbol_len
+        previous_k = self._previous_k
         sources: list[bytes] = []
         pieces = [sources]  # source runs, each full block's (still empty) repair list between them
         deferred: list[_FullBlock] = []
@@ -206,14 +212,18 @@ class BlockEncoder:
                 count += 1
                 sent += 1
                 if count < block_size:
-                    sources.append(pack_source(_SOURCE_TYPE_BYTE, 0, session, (sbn << 8) | (count - 1), flow) + datagram)
+                    sources.append(pack_source(_SOURCE_TYPE_BYTE, 0, session, (sbn << 8) | (count - 1), flow, previous_k) + datagram)
                     continue
-                sources.append(pack_source(_SOURCE_TYPE_BYTE, packet.FLAG_END, session, (sbn << 8) | (count - 1), flow) + datagram)
+                sources.append(
+                    pack_source(_SOURCE_TYPE_BYTE, packet.FLAG_END, session, (sbn << 8) | (count - 1), flow, previous_k)
+                    + datagram
+                )
                 self._count, self._symbol_len = count, symbol_len
                 block = self._set_aside()
                 settings = self._settings  # a pending update applies from the next block on
                 block_size, max_datagram, width = settings.block_size, settings.max_datagram, self._width
                 count, sbn, storage, symbol_len = 0, self._sbn, self._storage, 0
+                previous_k = self._previous_k
                 deferred.append(block)
                 sources = []
                 pieces += (block.packets, sources)
@@ -324,6 +334,7 @@ class BlockEncoder:
         if k < settings.block_size:
             self.stats.short_blocks += 1
         self._sbn = (self._sbn + 1) % packet.SBN_MODULUS
+        self._previous_k = k
         self._count = 0
         self._symbol_len = 0
         self._deadline = None

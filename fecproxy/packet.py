@@ -14,7 +14,8 @@ Every packet on the link starts with a 10-byte common header (all integers big-e
 
 SBN and ESI are the FEC Payload ID of RFC 6865 §5.1 for m = 8 (24 + 8 bits).  Then:
 
-* source (type 0): flow id (8 bits), then the application datagram exactly as sent.
+* source (type 0): flow id (8 bits), the previous block's k (8 bits; 0 = none or not known), then
+  the application datagram exactly as sent.
 * repair (type 1): the block's k (16 bits, RFC 6865 §5.1), then one repair symbol.
 * control (type 2): reserved for the receiver's loss reports; body not yet defined.
 
@@ -24,7 +25,10 @@ those 3 bytes and the padding never travel in source packets, so a rebuilt datag
 its exact length and flow.  k travels only in repair packets: a block closed early by its flush
 timer has fewer datagrams than configured, and that is known only once it is closed.
 The END flag on a source packet says "this is the last datagram of a block filled to its
-configured k", so a receiver with no loss can close the block without waiting for repair.
+configured k", so a receiver with no loss can close the block without waiting for repair.  And
+every source packet tells the k of the block before it: when a block's last datagrams and all its
+repair packets are lost, or the block is lost whole, the next block still tells the receiver how
+many datagrams went missing, so loss is counted, not silently under-counted.
 """
 
 from __future__ import annotations
@@ -35,9 +39,9 @@ from enum import IntEnum
 
 VERSION = 1
 COMMON_HEADER = struct.Struct(">BBII")  # version|type, flags, session, SBN<<8 | ESI
-SOURCE_HEADER = struct.Struct(">BBIIB")  # common + flow id
+SOURCE_HEADER = struct.Struct(">BBIIBB")  # common + flow id + previous block's k
 REPAIR_HEADER = struct.Struct(">BBIIH")  # common + k
-SOURCE_HEADER_BYTES = SOURCE_HEADER.size  # 11
+SOURCE_HEADER_BYTES = SOURCE_HEADER.size  # 12
 REPAIR_HEADER_BYTES = REPAIR_HEADER.size  # 12
 #: The flow id, the 2-byte length and zero padding of the RFC 6363 §4 source symbol.
 SYMBOL_PREFIX_BYTES = 3
@@ -92,6 +96,7 @@ class SourcePacket:
     flow: int
     end: bool
     data: bytes
+    previous_k: int = 0  # k of block sbn − 1, so a block whose repair was all lost still has a size
 
 
 @dataclass(frozen=True, slots=True)
@@ -112,9 +117,11 @@ class ControlPacket:
 Packet = SourcePacket | RepairPacket | ControlPacket
 
 
-def encode_source(session: int, sbn: int, esi: int, flow: int, data: bytes, *, end: bool = False) -> bytes:
+def encode_source(
+    session: int, sbn: int, esi: int, flow: int, data: bytes, *, end: bool = False, previous_k: int = 0
+) -> bytes:
     return SOURCE_HEADER.pack(
-        (VERSION << 4) | PacketType.SOURCE, FLAG_END if end else 0, session, (sbn << 8) | esi, flow
+        (VERSION << 4) | PacketType.SOURCE, FLAG_END if end else 0, session, (sbn << 8) | esi, flow, previous_k
     ) + data
 
 
@@ -144,13 +151,15 @@ def parse(packet: bytes, *, max_datagram: int) -> Packet:
     esi = sbn_esi & 0xFF
     if kind == PacketType.SOURCE:
         if size < SOURCE_HEADER_BYTES:
-            raise TruncatedPacket(f"source packet of {size} bytes has no flow id")
+            raise TruncatedPacket(f"source packet of {size} bytes has no flow id and previous k")
         if esi > MAX_ESI:
             raise InvalidField(f"source ESI {esi} is above {MAX_ESI}")
         payload = size - SOURCE_HEADER_BYTES
         if payload > max_datagram:
             raise OversizePacket(f"source datagram of {payload} bytes exceeds the limit of {max_datagram}")
-        return SourcePacket(session, sbn, esi, packet[10], bool(flags & FLAG_END), bytes(packet[SOURCE_HEADER_BYTES:]))
+        return SourcePacket(
+            session, sbn, esi, packet[10], bool(flags & FLAG_END), bytes(packet[SOURCE_HEADER_BYTES:]), packet[11]
+        )
     if kind == PacketType.REPAIR:
         if flags:
             raise InvalidField(f"repair packet with flags 0x{flags:02x}")

@@ -331,3 +331,60 @@ def test_repair_packets_carry_rfc_symbols_of_the_rfc6363_framing():
     expected = generator[:, k:].T @ field(symbols)
     assert [r.k for r in repairs] == [k, k] and [r.esi for r in repairs] == [k, k + 1]
     assert [r.symbol for r in repairs] == [bytes(np.asarray(row, dtype=np.uint8)) for row in expected]
+
+
+def _stream(k, m, blocks, *, flush_after=None):
+    """Link packets of ``blocks`` consecutive blocks, grouped per block."""
+    enc = BlockEncoder(EncoderSettings(block_size=k, repair=m), session=5)
+    grouped = []
+    for b in range(blocks):
+        out = []
+        for i in range(k if flush_after is None else flush_after):
+            out += enc.send(bytes([b, i]) * 3, 0, now=b)
+        if flush_after is not None:
+            out += enc.on_timer(b + 1.0)
+        grouped.append(out)
+    return grouped
+
+
+def test_every_source_packet_tells_the_previous_blocks_k():
+    grouped = _stream(4, 1, 3, flush_after=3)  # timer-closed blocks of 3
+    previous = [[packet.parse(p, max_datagram=1400) for p in block][0].previous_k for block in grouped]
+    assert previous == [0, 3, 3]
+
+
+def test_a_lost_tail_with_all_its_repair_is_still_counted():
+    grouped = _stream(4, 1, 2)
+    dec = BlockDecoder()
+    events = feed(dec, grouped[0][:2], now=1.0)  # sources 2, 3 and the repair are lost
+    events += feed(dec, grouped[1][:1], now=1.1)  # the next block says block 0 had k=4
+    events += dec.on_timer(5.0)
+    block0 = [r for r in reports(events) if r.sbn == 0][0]
+    assert block0.k == 4 and block0.lost == 2 and block0.unrecovered == 2
+
+
+def test_a_block_lost_whole_is_counted():
+    grouped = _stream(4, 1, 3)
+    dec = BlockDecoder()
+    events = feed(dec, grouped[0] + grouped[2], now=1.0)  # block 1 never arrives
+    events += dec.on_timer(5.0)
+    block1 = [r for r in reports(events) if r.sbn == 1][0]
+    assert block1.k == 4 and block1.lost == 4 and block1.outcome == "expired"
+    assert dec.stats.lost == 4 and dec.stats.unrecovered == 4
+
+
+def test_a_late_lost_block_still_recovers_after_being_presumed_lost():
+    grouped = _stream(4, 2, 3)
+    dec = BlockDecoder()
+    events = feed(dec, grouped[0] + grouped[2], now=1.0)
+    events += feed(dec, grouped[1][1:], now=1.1)  # block 1 arrives late, missing one source
+    assert sorted(delivered(events)) == sorted((0, bytes([b, i]) * 3) for b in range(3) for i in range(4))
+    assert dec.stats.unrecovered == 0
+
+
+def test_blocks_before_the_receiver_listened_are_not_counted():
+    grouped = _stream(4, 1, 4)
+    dec = BlockDecoder()
+    events = feed(dec, grouped[2] + grouped[3], now=1.0)  # joined at block 2
+    events += dec.on_timer(5.0)
+    assert dec.stats.lost == 0 and all(r.sbn in (2, 3) for r in reports(events))

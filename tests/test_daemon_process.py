@@ -774,7 +774,7 @@ def test_malformed_and_forged_packets_are_counted_and_never_crash_the_receiver(p
         "malformed": [
             b"",  # empty datagram
             b"\x10\x00\x00",  # shorter than the common header
-            header(SOURCE, 0, 5, 0),  # source without its flow id
+            header(SOURCE, 0, 5, 0),  # source without its flow id and previous k
             header(REPAIR, 0, 5, 20) + b"\x00",  # repair without its k field
             header(REPAIR, 0, 5, 20) + struct.pack(">H", 0) + b"abc",  # k = 0
             header(REPAIR, 0, 5, 3) + struct.pack(">H", 16) + b"abc",  # ESI below k
@@ -787,11 +787,11 @@ def test_malformed_and_forged_packets_are_counted_and_never_crash_the_receiver(p
             header(7, 0, 5, 0) + b"\x00data",  # undefined type
         ],
         "oversize": [
-            header(SOURCE, 0, 5, 0) + b"\x00" + bytes(1401),  # above max_datagram_bytes 1400
+            header(SOURCE, 0, 5, 0) + b"\x00\x00" + bytes(1401),  # above max_datagram_bytes 1400
             header(REPAIR, 0, 5, 20) + struct.pack(">H", 16) + bytes(1404),
         ],
         "late": [genuine_source],  # replay of a datagram of a finished block
-        "stale": [header(SOURCE, 0, (1 << 24) - 5000, 0) + b"\x00old"],  # far behind the window
+        "stale": [header(SOURCE, 0, (1 << 24) - 5000, 0) + b"\x00\x00old"],  # far behind the window
     }
     before = {reason: pair.receiver.metric("fecproxy_packets_dropped_total", reason=reason) for reason in hostile}
     with socket.socket(socket.AF_INET, socket.SOCK_DGRAM) as attacker:

@@ -17,13 +17,13 @@ from fecproxy.packet import (
 # Test vectors of our own format; DEVELOPERS.md "Wire format" lists the same bytes.  The SBN (24 bits)
 # and ESI (8 bits) are the FEC Payload ID of RFC 6865 §5.1 for m = 8, and the repair packet's k is
 # its 16-bit "number of source symbols" field.
-SOURCE_VECTOR = bytes.fromhex("10 01 0a0b0c0d 000102 03 05") + b"wx"
+SOURCE_VECTOR = bytes.fromhex("10 01 0a0b0c0d 000102 03 05 10") + b"wx"
 REPAIR_VECTOR = bytes.fromhex("11 00 0a0b0c0d fffffe 06 0004") + bytes.fromhex("1516177f")
 
 
 def test_source_vector_encodes_and_parses():
-    assert packet.encode_source(0x0A0B0C0D, 0x000102, 3, 5, b"wx", end=True) == SOURCE_VECTOR
-    assert parse(SOURCE_VECTOR, max_datagram=1400) == SourcePacket(0x0A0B0C0D, 0x102, 3, 5, True, b"wx")
+    assert packet.encode_source(0x0A0B0C0D, 0x000102, 3, 5, b"wx", end=True, previous_k=16) == SOURCE_VECTOR
+    assert parse(SOURCE_VECTOR, max_datagram=1400) == SourcePacket(0x0A0B0C0D, 0x102, 3, 5, True, b"wx", 16)
 
 
 def test_repair_vector_encodes_and_parses():
@@ -33,7 +33,7 @@ def test_repair_vector_encodes_and_parses():
 
 
 def test_header_sizes_are_documented_sizes():
-    assert packet.SOURCE_HEADER_BYTES == 11
+    assert packet.SOURCE_HEADER_BYTES == 12
     assert packet.REPAIR_HEADER_BYTES == 12
 
 
@@ -42,12 +42,12 @@ def test_header_sizes_are_documented_sizes():
     [
         (b"", TruncatedPacket, "shorter than the 10-byte header"),
         (bytes.fromhex("10 00 00000001 000000"), TruncatedPacket, "shorter than the 10-byte header"),
-        (bytes.fromhex("10 00 00000001 000000 00"), TruncatedPacket, "no flow id"),
+        (bytes.fromhex("10 00 00000001 000000 00 00"), TruncatedPacket, "no flow id"),
         (bytes.fromhex("20 00 00000001 000000 00 00"), UnsupportedPacket, "version 2"),
         (bytes.fromhex("15 00 00000001 000000 00 00"), UnsupportedPacket, "packet type 5"),
         (bytes.fromhex("10 02 00000001 000000 00 00"), UnsupportedPacket, "flags 0x02"),
         (bytes.fromhex("10 80 00000001 000000 00 00"), UnsupportedPacket, "flags 0x80"),
-        (bytes.fromhex("10 00 00000001 000000 ff 00"), InvalidField, "source ESI 255"),
+        (bytes.fromhex("10 00 00000001 000000 ff 00 00"), InvalidField, "source ESI 255"),
         (bytes.fromhex("11 00 00000001 000000 04 0000 000000"), InvalidField, "k=0"),
         (bytes.fromhex("11 00 00000001 000000 04 0100 000000"), InvalidField, "k=256"),
         (bytes.fromhex("11 00 00000001 000000 03 0004 000000"), InvalidField, "repair ESI 3 with k=4"),
