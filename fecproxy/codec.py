@@ -219,3 +219,10 @@ class BlockCode:
             self._inverses.move_to_end(key)
         multiplier, rows = entry
         return multiplier(stacked), rows
+
+
+@lru_cache(maxsize=512)
+def block_code(k: int, n: int) -> BlockCode:
+    """A shared BlockCode per (k, n), so its generator and inverse cache serve every block of that
+    shape: a sender sees a few shapes (full blocks, short blocks), a receiver one per k."""
+    return BlockCode(k, n)

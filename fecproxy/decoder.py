@@ -16,8 +16,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from . import packet
-from .codec import BlockCode
-from .encoder import _code
+from .codec import BlockCode, block_code
 
 #: How long an incomplete block waits for more packets.  Must exceed the sender's flush interval
 #: plus the link's delay spread; 500 ms covers a geostationary hop's jitter with room to spare
@@ -28,8 +27,8 @@ DEFAULT_HOLD_TIME = 0.5
 DEFAULT_MAX_OPEN_BLOCKS = 256
 #: Finished block numbers remembered, so their late packets are recognised rather than reopened.
 FINISHED_MEMORY_FACTOR = 4
-#: The fast path reads the common header and the byte after it (a source packet's flow id, or
-#: the high byte of a repair packet's k) in one unpack.
+#: The fast path reads the common header and the two bytes after it (a source packet's flow id and
+#: previous k, or a repair packet's k) in one unpack.
 _LEADING_FIELDS = packet.SOURCE_HEADER.unpack_from
 _SOURCE_TYPE_BYTE = (packet.VERSION << 4) | packet.PacketType.SOURCE
 _REPAIR_TYPE_BYTE = (packet.VERSION << 4) | packet.PacketType.REPAIR
@@ -471,7 +470,7 @@ class BlockDecoder:
             row += 1
         # Column j of the generator depends only on k and j: one code per k serves every block of
         # that k, and its cache of loss-pattern inverses is shared across them.
-        code: BlockCode = _code(k, packet.MAX_ESI + 1)
+        code: BlockCode = block_code(k, packet.MAX_ESI + 1)
         rebuilt = code.recover(dict(zip(indices, symbols)))
         delay = now - block.first_seen
         events: list[Event] = []

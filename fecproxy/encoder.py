@@ -20,12 +20,11 @@ from __future__ import annotations
 import struct
 from collections.abc import Iterable
 from dataclasses import dataclass, field
-from functools import lru_cache
 
 import numpy as np
 
 from . import packet
-from .codec import BlockCode
+from .codec import block_code
 from .repair_rule import SHORT_BLOCK_RULES, repair_count
 
 #: RFC 6363 §4 / RFC 6865 §4 source symbol prefix: flow id (1 byte) ‖ length (2 bytes, big-endian).
@@ -83,11 +82,6 @@ class EncoderStats:
     blocks: int = 0
     short_blocks: int = 0
     dropped: dict[str, int] = field(default_factory=dict)
-
-
-@lru_cache(maxsize=512)
-def _code(k: int, n: int) -> BlockCode:
-    return BlockCode(k, n)
 
 
 class _FullBlock:
@@ -273,7 +267,7 @@ class BlockEncoder:
                 continue
             k, m = block.k, block.m
             if m:
-                code = _code(k, k + m)
+                code = block_code(k, k + m)
                 if len(run) == 1:
                     parts = [(block, code.encode(block.symbols[:k, : block.length]), 0)]
                 else:
@@ -319,7 +313,7 @@ class BlockEncoder:
         length = self._symbol_len
         out: list[bytes] = []
         if m:
-            repair = _code(k, k + m).encode(self._symbols[:k, :length])
+            repair = block_code(k, k + m).encode(self._symbols[:k, :length])
             sbn, session = self._sbn, self.session
             out = [packet.encode_repair(session, sbn, k + j, k, repair[j].data) for j in range(m)]
         self._symbols[:k, :length] = 0  # padding of the next block must be zeros again

@@ -15,6 +15,7 @@ import pytest
 from hypothesis import given, settings, strategies as st
 
 from fecproxy import encoder as encoder_module
+from fecproxy import codec as codec_module
 from fecproxy import packet
 from fecproxy.decoder import BlockDecoder, Delivery
 from fecproxy.encoder import BlockEncoder, EncoderSettings
@@ -65,13 +66,13 @@ def test_many_full_blocks_in_one_batch_span_several_codec_calls(monkeypatch):
     """More blocks than one codec call takes (MAX_BLOCKS_PER_ENCODE), and wide symbols that hit
     the byte bound: still the same packets, and the calls are really shared."""
     calls = []
-    original = encoder_module.BlockCode.encode
+    original = codec_module.BlockCode.encode
 
     def counting(self, source):
         calls.append(source.shape)
         return original(self, source)
 
-    monkeypatch.setattr(encoder_module.BlockCode, "encode", counting)
+    monkeypatch.setattr(codec_module.BlockCode, "encode", counting)
     rng = random.Random(5)
     k, m = 4, 2
     blocks = 3 * encoder_module.MAX_BLOCKS_PER_ENCODE + 1

@@ -5,7 +5,7 @@ fake clock); the decoder's ``BlockReport`` masks go to a :class:`LossEstimator`.
 cannot see, and what that does to the estimate:
 
 * repair positions: the source positions of consecutive blocks are m + 1 link steps apart, not
-  one.  Chaining the blocks' masks (as ``daemon.Daemon._observe`` did when this was written) counts
+  one.  Chaining the blocks' masks (as an earlier receiver did) counts
   that pair as a one-step transition and biases the mean burst *down*; the limit is computed below
   and checked.  ``LossEstimator.observe_block`` makes each block its own segment and has no such
   bias;
