@@ -388,3 +388,34 @@ def test_blocks_before_the_receiver_listened_are_not_counted():
     events = feed(dec, grouped[2] + grouped[3], now=1.0)  # joined at block 2
     events += dec.on_timer(5.0)
     assert dec.stats.lost == 0 and all(r.sbn in (2, 3) for r in reports(events))
+
+
+@settings(max_examples=150, deadline=None)
+@given(
+    seed=st.integers(0, 2**32 - 1),
+    flips=st.lists(st.tuples(st.integers(0, 40), st.integers(0, 63), st.integers(1, 255)), max_size=12),
+    junk=st.lists(st.binary(max_size=40), max_size=6),
+)
+def test_mutated_and_junk_packets_never_raise_and_state_stays_bounded(seed, flips, junk):
+    # Fuzzing the decoder with genuine packets, byte-flipped copies of them and junk: every
+    # input gets events (deliveries or counted drops), never an exception, and the open-block
+    # table respects its bound.
+    rng = random.Random(seed)
+    grouped = _stream(4, 2, 5)
+    link = [p for block in grouped for p in block]
+    mutated = []
+    for index, offset, xor in flips:
+        original = bytearray(link[index % len(link)])
+        original[offset % len(original)] ^= xor
+        mutated.append(bytes(original))
+    stream = link + mutated + junk
+    rng.shuffle(stream)
+    dec = BlockDecoder(DecoderSettings(max_open_blocks=3, max_datagram=64))
+    now = 0.0
+    for data in stream:
+        now += 0.01
+        dec.receive(data, now)
+        dec.on_timer(now)
+        assert len(dec._open) <= 3
+    dec.on_timer(now + 10)
+    assert dec.next_deadline() is None
