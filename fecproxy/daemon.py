@@ -14,6 +14,7 @@ earliest of the cores' ``next_deadline()`` values and is moved whenever a core's
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 import math
 import secrets
@@ -479,8 +480,6 @@ class _Upstream:
 
 def _keep_fixed(old: Config, new: Config) -> Config:
     """The running config after a reload: new tunables, old sockets/addresses."""
-    import dataclasses
-
     return dataclasses.replace(
         new, role=old.role, listen=old.listen, forward=old.forward, link=old.link, metrics=old.metrics, sockets=old.sockets
     )

@@ -397,9 +397,9 @@ class SeqSet:
 class LinkTap:
     """Counts every packet the relay's forward link carries, by kind, size and fate.
 
-    It wraps ``submit`` of the relay's forward :class:`~fecproxy.impairment.ImpairedLink`
-    (``relay.links['forward']``), so it sees each packet as it faces the loss model.  Only the
-    public header layout of :mod:`fecproxy.packet` is read.
+    It observes the relay's forward :class:`~fecproxy.impairment.ImpairedLink`
+    (``relay.links['forward']``) through its ``on_air`` hook, so it sees each packet as it faces
+    the loss model.  Only the public header layout of :mod:`fecproxy.packet` is read.
     """
 
     #: Finished blocks are folded into the (k', m') counter once this many are open in the tap.
@@ -407,9 +407,7 @@ class LinkTap:
 
     def __init__(self, link) -> None:
         self.link = link
-        self._submit = link.submit
-        link.submit = self.submit  # instance attribute: the relay's tasks call link.submit(...)
-        self._lost_so_far = link.stats().lost
+        link.on_air = self.observe
         self.packets = self.lost = 0
         self.source_packets = self.repair_packets = 0
         self.source_bytes = self.repair_bytes = 0
@@ -418,11 +416,7 @@ class LinkTap:
         self.blocks: Counter = Counter()
         self._open: dict[int, list[int]] = {}  # sbn -> [source packets, repair packets, k]
 
-    def submit(self, data: bytes, now: float) -> None:
-        self._submit(data, now)
-        lost_so_far = self.link.stats().lost
-        lost = lost_so_far != self._lost_so_far
-        self._lost_so_far = lost_so_far
+    def observe(self, data: bytes, lost: bool) -> None:
         self.packets += 1
         self.lost += lost
         if len(data) < packet.COMMON_HEADER.size:

@@ -26,6 +26,7 @@ import math
 import random
 import re
 from collections import deque
+from collections.abc import Callable
 from dataclasses import dataclass, field
 
 from .channel import GilbertElliott, LossEstimator, make_channel
@@ -209,6 +210,9 @@ class ImpairedLink:
         self._last_due = -math.inf  # for FIFO delivery when reordering is off
         self._submitted = self._sent = self._lost = self._delivered = self._duplicates = 0
         self._queue_drops = self._blackout_drops = self._in_flight_drops = 0
+        #: Optional observer called as ``on_air(datagram, lost)`` for every datagram that went on
+        #: the air (after the modem buffer and blackouts), so a tool can see each packet's fate.
+        self.on_air: Callable[[bytes, bool], None] | None = None
 
     # -- feeding ---------------------------------------------------------------------------------
 
@@ -235,6 +239,8 @@ class ImpairedLink:
         self._sent += 1
         lost = self._channel.lose()
         self._estimator.observe(lost)
+        if self.on_air is not None:
+            self.on_air(datagram, lost)
         if lost:
             self._lost += 1
             return

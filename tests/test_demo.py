@@ -216,7 +216,7 @@ def test_link_tap_counts_packets_blocks_and_which_datagrams_the_link_lost():
         packets = encoder.send(demo.pack_datagram(demo.STREAM_TELEMETRY, seq, now, b"x" * 50), 0, now)
         packets += encoder.on_timer(now)
         for data in packets:
-            link.submit(data, now)  # the tap's wrapper, as the relay calls it
+            link.submit(data, now)  # the tap sees it through the link's on_air hook
         delivered += link.due(now)
     for data in encoder.flush():
         link.submit(data, now)
