@@ -1,6 +1,49 @@
 """fecproxy: forward error correction for UDP across lossy links.
 
-Public library API (stable): :class:`fecproxy.codec.BlockCode`.
+Public library API (stable), importable from here:
+
+* :class:`BlockCode` — the RFC 5510 Reed–Solomon block code over GF(2^8);
+* :class:`BlockEncoder` / :class:`EncoderSettings` and :class:`BlockDecoder` /
+  :class:`DecoderSettings` — the sans-IO sender and receiver cores (datagrams or packets and a
+  ``now`` in; packets or events and the next deadline out);
+* the decoder's events :class:`Delivery`, :class:`BlockReport`, :class:`Dropped`,
+  :class:`SessionStarted`.
+
+The names load on first use (PEP 562), so ``import fecproxy`` stays cheap for commands that need
+none of them, and the package root imports nothing eagerly (see tests/test_layers.py).
 """
 
+from __future__ import annotations
+
+import importlib
+
 __version__ = "0.1.0"
+
+#: public name -> module that defines it
+_PUBLIC = {
+    "BlockCode": "fecproxy.coding.codec",
+    "BlockEncoder": "fecproxy.protocol.encoder",
+    "EncoderSettings": "fecproxy.protocol.encoder",
+    "DatagramTooLarge": "fecproxy.protocol.encoder",
+    "BlockDecoder": "fecproxy.protocol.decoder",
+    "DecoderSettings": "fecproxy.protocol.decoder",
+    "Delivery": "fecproxy.protocol.decoder",
+    "BlockReport": "fecproxy.protocol.decoder",
+    "Dropped": "fecproxy.protocol.decoder",
+    "SessionStarted": "fecproxy.protocol.decoder",
+}
+
+__all__ = ["__version__", *_PUBLIC]
+
+
+def __getattr__(name: str):
+    module = _PUBLIC.get(name)
+    if module is None:
+        raise AttributeError(f"module 'fecproxy' has no attribute {name!r}")
+    value = getattr(importlib.import_module(module), name)
+    globals()[name] = value
+    return value
+
+
+def __dir__() -> list[str]:
+    return sorted(__all__)

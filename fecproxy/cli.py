@@ -10,16 +10,16 @@ import argparse
 import importlib
 import sys
 
-from . import __version__
+from fecproxy import __version__
 
 #: name -> (module, one-line summary shown in --help)
 COMMANDS: dict[str, tuple[str, str]] = {
-    "run": ("fecproxy.cmd_run", "run one daemon (sender or receiver) in the foreground from a YAML config"),
-    "check": ("fecproxy.cmd_check", "validate a config file and print the effective settings"),
-    "demo": ("fecproxy.demo", "run a sender, a lossy link and a receiver on loopback and show what FEC saves"),
-    "impair": ("fecproxy.impair_cli", "relay UDP between two addresses through an emulated lossy link"),
-    "plan": ("fecproxy.plan_cli", "choose k, m and interleaving for a link from its loss and burst figures"),
-    "bench": ("fecproxy.bench", "measure codec and pipeline speed against a baseline run side by side"),
+    "run": ("fecproxy.commands.run", "run one daemon (sender or receiver) in the foreground from a YAML config"),
+    "check": ("fecproxy.commands.check", "validate a config file and print the effective settings"),
+    "demo": ("fecproxy.commands.demo", "run a sender, a lossy link and a receiver on loopback and show what FEC saves"),
+    "impair": ("fecproxy.commands.impair", "relay UDP between two addresses through an emulated lossy link"),
+    "plan": ("fecproxy.commands.plan", "choose k, m and interleaving for a link from its loss and burst figures"),
+    "bench": ("fecproxy.commands.bench", "measure codec and pipeline speed against a baseline run side by side"),
 }
 
 

@@ -11,7 +11,7 @@ import multiprocessing
 
 import pytest
 
-from fecproxy import bench_pipeline
+from fecproxy.commands.bench import pipeline as bench_pipeline
 from fecproxy.cli import main
 
 

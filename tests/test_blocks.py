@@ -6,9 +6,9 @@ import random
 import pytest
 from hypothesis import given, settings, strategies as st
 
-from fecproxy import packet
-from fecproxy.decoder import BlockDecoder, BlockReport, DecoderSettings, Delivery, Dropped, SessionStarted
-from fecproxy.encoder import BlockEncoder, DatagramTooLarge, EncoderSettings
+from fecproxy.protocol import wire
+from fecproxy.protocol.decoder import BlockDecoder, BlockReport, DecoderSettings, Delivery, Dropped, SessionStarted
+from fecproxy.protocol.encoder import BlockEncoder, DatagramTooLarge, EncoderSettings
 
 
 def make_block(k, m, sizes=None, *, session=1, seed=0, first_sbn=0):
@@ -90,7 +90,7 @@ def test_short_block_closed_by_timer_recovers():
     repairs = enc.on_timer(0.02)
     # proportional rule: ceil(4·3/16) = 1 repair packet
     assert len(repairs) == 1 and enc.next_deadline() is None
-    assert packet.parse(repairs[0], max_datagram=1400).k == 3
+    assert wire.parse(repairs[0], max_datagram=1400).k == 3
     dec = BlockDecoder()
     events = feed(dec, [packets[0], packets[2], repairs[0]])
     assert sorted(delivered(events)) == sorted(datagrams)
@@ -146,7 +146,7 @@ def test_block_number_wraps_around():
     sbns = []
     for i in range(8):
         out = enc.send(bytes([i]) * 5, 0, now=i)
-        sbns.append(packet.parse(out[0], max_datagram=1400).sbn)
+        sbns.append(wire.parse(out[0], max_datagram=1400).sbn)
         lost_first = out[1:] if i % 2 == 0 else out  # lose the first datagram of every block
         events = feed(dec, lost_first, now=i)
         if i % 2 == 1:
@@ -201,12 +201,12 @@ def test_packets_contradicting_the_block_are_dropped_not_trusted():
     datagrams, packets = make_block(4, 2)
     dec = BlockDecoder()
     feed(dec, packets[:1] + packets[4:5])
-    size = len(packet.parse(packets[4], max_datagram=1400).symbol)
+    size = len(wire.parse(packets[4], max_datagram=1400).symbol)
     forged = [
-        packet.encode_repair(1, 0, 5, 3, bytes(size)),  # another k
-        packet.encode_repair(1, 0, 5, 4, bytes(size + 1)),  # another symbol size
-        packet.encode_source(1, 0, 4, 0, b"x"),  # ESI beyond k
-        packet.encode_source(1, 0, 1, 0, bytes(size)),  # longer than the block's symbols
+        wire.encode_repair(1, 0, 5, 3, bytes(size)),  # another k
+        wire.encode_repair(1, 0, 5, 4, bytes(size + 1)),  # another symbol size
+        wire.encode_source(1, 0, 4, 0, b"x"),  # ESI beyond k
+        wire.encode_source(1, 0, 1, 0, bytes(size)),  # longer than the block's symbols
     ]
     events = feed(dec, forged)
     assert [e.reason for e in events] == ["inconsistent"] * 4
@@ -216,7 +216,7 @@ def test_packets_contradicting_the_block_are_dropped_not_trusted():
 
 def test_malformed_packets_are_counted_by_reason():
     dec = BlockDecoder()
-    events = feed(dec, [b"", b"\x20" + bytes(12), packet.encode_source(1, 0, 0, 0, bytes(2000))])
+    events = feed(dec, [b"", b"\x20" + bytes(12), wire.encode_source(1, 0, 0, 0, bytes(2000))])
     assert [e.reason for e in events] == ["malformed", "unsupported", "oversize"]
     assert dec.stats.dropped == {"malformed": 1, "unsupported": 1, "oversize": 1}
 
@@ -265,12 +265,12 @@ def test_random_loss_never_corrupts_and_delivers_each_datagram_at_most_once(k, m
 
 
 def test_a_stray_packet_of_another_session_does_not_retire_the_live_one():
-    from fecproxy.decoder import SESSION_CONFIRM_PACKETS
+    from fecproxy.protocol.decoder import SESSION_CONFIRM_PACKETS
 
     datagrams, live = make_block(4, 2, session=100)
     dec = BlockDecoder()
     feed(dec, live[:1], now=1.0)
-    stray = packet.encode_source(0xDEAD, 7, 0, 3, b"stray")
+    stray = wire.encode_source(0xDEAD, 7, 0, 3, b"stray")
     events = feed(dec, [stray], now=1.01)
     assert delivered(events) == [(3, b"stray")]  # its datagram is not lost
     assert dec.session == 100 and not dec.in_session
@@ -279,7 +279,7 @@ def test_a_stray_packet_of_another_session_does_not_retire_the_live_one():
 
 
 def test_a_restarted_sender_is_adopted_after_confirmation_without_double_delivery():
-    from fecproxy.decoder import SESSION_CONFIRM_PACKETS
+    from fecproxy.protocol.decoder import SESSION_CONFIRM_PACKETS
 
     _, old = make_block(4, 2, session=100)
     k = SESSION_CONFIRM_PACKETS + 4
@@ -320,7 +320,7 @@ def test_repair_packets_carry_rfc_symbols_of_the_rfc6363_framing():
     link = []
     for flow, data in flows_and_data:
         link += enc.send(data, flow, now=0.0)
-    repairs = [packet.parse(p, max_datagram=1400) for p in link[k:]]
+    repairs = [wire.parse(p, max_datagram=1400) for p in link[k:]]
     length = 3 + max(len(d) for _, d in flows_and_data)
     symbols = np.zeros((k, length), dtype=np.uint8)
     for row, (flow, data) in enumerate(flows_and_data):
@@ -349,7 +349,7 @@ def _stream(k, m, blocks, *, flush_after=None):
 
 def test_every_source_packet_tells_the_previous_blocks_k():
     grouped = _stream(4, 1, 3, flush_after=3)  # timer-closed blocks of 3
-    previous = [[packet.parse(p, max_datagram=1400) for p in block][0].previous_k for block in grouped]
+    previous = [[wire.parse(p, max_datagram=1400) for p in block][0].previous_k for block in grouped]
     assert previous == [0, 3, 3]
 
 

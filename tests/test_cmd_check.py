@@ -10,7 +10,7 @@ import pytest
 import yaml
 
 from fecproxy import cli
-from fecproxy.cmd_check import EXIT_INVALID, EXIT_UNREADABLE, EXIT_VALID
+from fecproxy.commands.check import EXIT_INVALID, EXIT_UNREADABLE, EXIT_VALID
 from fecproxy.config import parse_config, parse_config_text
 
 ROOT = Path(__file__).resolve().parents[1]

@@ -17,8 +17,12 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from fecproxy import cli, codec, gf256
-from fecproxy.codec import BlockCode, CodecError, NotEnoughSymbols
+from fecproxy import cli
+
+from fecproxy.coding import codec
+
+from fecproxy.coding import gf256
+from fecproxy.coding.codec import BlockCode, CodecError, NotEnoughSymbols
 
 
 @pytest.fixture(scope="module")

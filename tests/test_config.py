@@ -116,8 +116,8 @@ def test_null_sections_and_optional_keys_mean_not_set():
 
 def test_defaults_agree_with_the_cores():
     """The config's defaults are the encoder's and decoder's own, so `check` shows what runs."""
-    from fecproxy.decoder import DecoderSettings
-    from fecproxy.encoder import EncoderSettings
+    from fecproxy.protocol.decoder import DecoderSettings
+    from fecproxy.protocol.encoder import EncoderSettings
 
     fec, decoder = FecSection(), cfg.DecoderSection()
     encoder_defaults = EncoderSettings()
@@ -460,13 +460,13 @@ _scalars = st.one_of(
     st.none(), st.booleans(), st.integers(-(2**70), 2**70), st.floats(allow_nan=True), st.text(max_size=30)
 )
 _keys = st.one_of(
-    st.sampled_from(cfg._ALL_PATHS + ["bind", "peer", "block_size", "listen"]), st.text(max_size=12), st.integers()
+    st.sampled_from(cfg.schema.ALL_KEY_PATHS + ["bind", "peer", "block_size", "listen"]), st.text(max_size=12), st.integers()
 )
 _yamlish = st.recursive(_scalars, lambda inner: st.lists(inner, max_size=4) | st.dictionaries(_keys, inner, max_size=5), max_leaves=25)
 
 
 @settings(max_examples=300, deadline=None)
-@given(st.dictionaries(st.sampled_from(list(cfg._TOP_ORDER) + ["bogus"]), _yamlish, max_size=8))
+@given(st.dictionaries(st.sampled_from(list(cfg.schema.TOP_LEVEL_KEYS) + ["bogus"]), _yamlish, max_size=8))
 def test_arbitrary_documents_never_crash(document):
     try:
         parse_config(document, "fuzz")
@@ -607,7 +607,7 @@ def test_proportional_rule_keeps_the_ratio_with_the_fewest_packets(data):
 
 def test_rule_agrees_with_the_encoder():
     """One rule, two places: the config shows it, the encoder applies it."""
-    from fecproxy.encoder import EncoderSettings
+    from fecproxy.protocol.encoder import EncoderSettings
 
     for rule in ShortBlockRepair:
         for k in range(1, 33):

@@ -18,11 +18,11 @@ import numpy as np
 import pytest
 from scipy.stats import binom
 
-from fecproxy import demo
-from fecproxy.channel import GilbertElliott
-from fecproxy.encoder import BlockEncoder, EncoderSettings
-from fecproxy.impairment import ImpairedLink, LinkImpairment
-from fecproxy.planner import evaluate
+from fecproxy.commands import demo
+from fecproxy.linkmodel.loss_models import GilbertElliott
+from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
+from fecproxy.linkmodel.impairment import ImpairedLink, LinkImpairment
+from fecproxy.linkmodel.planner import evaluate
 
 REPO = Path(__file__).resolve().parent.parent
 ROW = re.compile(r"datagrams lost\s+(\d+) of (\d+) \(([\d.]+) %\)\s+(\d+) of (\d+) \(([\d.]+) %\)")
@@ -231,7 +231,7 @@ def test_link_tap_counts_packets_blocks_and_which_datagrams_the_link_lost():
     assert sum(k * n for (k, _), n in blocks.items()) == 100
     assert all(m == settings.repair_for(k) for k, m in blocks)
     arrived = {
-        demo.peek_id(data[demo.packet.SOURCE_HEADER_BYTES :]) for data in delivered if data[0] & 0x0F == demo.packet.PacketType.SOURCE
+        demo.peek_id(data[demo.wire.SOURCE_HEADER_BYTES :]) for data in delivered if data[0] & 0x0F == demo.wire.PacketType.SOURCE
     }
     assert tap.lost_ids == {(demo.STREAM_TELEMETRY, seq) for seq in range(100)} - arrived
     assert tap.source_lost == len(tap.lost_ids)

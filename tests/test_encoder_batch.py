@@ -14,11 +14,11 @@ import numpy as np
 import pytest
 from hypothesis import given, settings, strategies as st
 
-from fecproxy import encoder as encoder_module
-from fecproxy import codec as codec_module
-from fecproxy import packet
-from fecproxy.decoder import BlockDecoder, Delivery
-from fecproxy.encoder import BlockEncoder, EncoderSettings
+from fecproxy.protocol import encoder as encoder_module
+from fecproxy.coding import codec as codec_module
+from fecproxy.protocol import wire
+from fecproxy.protocol.decoder import BlockDecoder, Delivery
+from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
 
 SESSION = 0x5EA7_0001
 
@@ -56,7 +56,7 @@ def test_batch_gives_the_bytes_and_order_of_one_send_per_datagram(k, m):
     rng = random.Random(k * 1000 + m)
     settings_ = EncoderSettings(block_size=k, repair=m, flush_interval=0.01, max_datagram=300)
     batches = weather_station_batches(rng, 12 if k < 200 else 30, settings_.max_datagram)
-    one_by_one, batched, expected, got = run_both(settings_, batches, first_sbn=packet.SBN_MODULUS - 3)
+    one_by_one, batched, expected, got = run_both(settings_, batches, first_sbn=wire.SBN_MODULUS - 3)
     assert got == expected
     assert batched.stats == one_by_one.stats
     assert batched.sbn == one_by_one.sbn
@@ -112,7 +112,7 @@ def test_repair_of_a_batched_block_matches_galois():
         expected = generator[:, k:].T @ symbols
         repairs = packets[block * (k + m) + k : (block + 1) * (k + m)]
         for j, data in enumerate(repairs):
-            parsed = packet.parse(data, max_datagram=40)
+            parsed = wire.parse(data, max_datagram=40)
             assert (parsed.sbn, parsed.esi, parsed.k) == (block, k + j, k)
             assert parsed.symbol == np.asarray(expected[j], dtype=np.uint8).tobytes()
 
@@ -151,7 +151,7 @@ def test_update_during_a_batch_applies_from_the_next_block():
             out += enc.send_batch(second, 0.1)
         out += enc.flush()
     assert got == expected
-    assert [packet.parse(p, max_datagram=64).k for p in got if p[0] & 0x0F == packet.PacketType.REPAIR][:3] == [4, 2, 2]
+    assert [wire.parse(p, max_datagram=64).k for p in got if p[0] & 0x0F == wire.PacketType.REPAIR][:3] == [4, 2, 2]
 
 
 def test_timer_closes_a_short_block_left_open_by_a_batch():

@@ -11,7 +11,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from fecproxy.flows import MAX_FLOW_IDS, FlowTable
+from fecproxy.protocol.flows import MAX_FLOW_IDS, FlowTable
 
 CLIENT_A = ("127.0.0.1", 40001)
 CLIENT_B = ("127.0.0.1", 40002)

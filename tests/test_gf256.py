@@ -15,7 +15,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 
-from fecproxy import gf256
+from fecproxy.coding import gf256
 
 
 @pytest.fixture(scope="module")

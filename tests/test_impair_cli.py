@@ -13,9 +13,10 @@ import pytest
 import trio
 
 from fecproxy import cli
-from fecproxy.channel import GilbertElliott
-from fecproxy.impair_cli import RelayConfig, config_from_args, parse_address, run_relay
-from fecproxy.impairment import Blackout, ImpairmentConfigError, LinkImpairment
+from fecproxy.linkmodel.loss_models import GilbertElliott
+from fecproxy.commands.impair import config_from_args, parse_address
+from fecproxy.shell.relay import RelayConfig, run_relay
+from fecproxy.linkmodel.impairment import Blackout, ImpairmentConfigError, LinkImpairment
 
 LOOPBACK = "127.0.0.1"
 TIMEOUT = 10.0  # seconds: generous upper bound for a shared 2-core machine

@@ -7,9 +7,9 @@ import math
 import numpy as np
 import pytest
 
-from fecproxy import impairment
-from fecproxy.channel import GilbertElliott
-from fecproxy.impairment import (
+from fecproxy.linkmodel import impairment
+from fecproxy.linkmodel.loss_models import GilbertElliott
+from fecproxy.linkmodel.impairment import (
     WIRE_OVERHEAD_BYTES,
     Blackout,
     ImpairedLink,

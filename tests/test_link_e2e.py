@@ -32,9 +32,9 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from fecproxy.channel import GilbertElliott
-from fecproxy.planner import block_loss_distribution, evaluate
-from fecproxy.plan_cli import parse_prometheus_text
+from fecproxy.linkmodel.loss_models import GilbertElliott
+from fecproxy.linkmodel.planner import block_loss_distribution, evaluate
+from fecproxy.commands.plan import parse_prometheus_text
 from test_online_estimate import invisible_share  # closed form, checked there against enumeration
 
 LOOPBACK = "127.0.0.1"

@@ -33,10 +33,11 @@ import math
 import numpy as np
 import pytest
 
-from fecproxy.channel import GilbertElliott, GilbertElliottChannel, LossEstimator
-from fecproxy.decoder import BlockDecoder, BlockReport, DecoderSettings
-from fecproxy.encoder import BlockEncoder, EncoderSettings
-from fecproxy.packet import parse
+from fecproxy.linkmodel.estimator import LossEstimator
+from fecproxy.linkmodel.loss_models import GilbertElliott, GilbertElliottChannel
+from fecproxy.protocol.decoder import BlockDecoder, BlockReport, DecoderSettings
+from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
+from fecproxy.protocol.wire import parse
 
 Z = 4.0  # standard errors allowed
 

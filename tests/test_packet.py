@@ -3,8 +3,8 @@
 import pytest
 from hypothesis import given, strategies as st
 
-from fecproxy import packet
-from fecproxy.packet import (
+from fecproxy.protocol import wire
+from fecproxy.protocol.wire import (
     InvalidField,
     OversizePacket,
     RepairPacket,
@@ -22,19 +22,19 @@ REPAIR_VECTOR = bytes.fromhex("11 00 0a0b0c0d fffffe 06 0004") + bytes.fromhex("
 
 
 def test_source_vector_encodes_and_parses():
-    assert packet.encode_source(0x0A0B0C0D, 0x000102, 3, 5, b"wx", end=True, previous_k=16) == SOURCE_VECTOR
+    assert wire.encode_source(0x0A0B0C0D, 0x000102, 3, 5, b"wx", end=True, previous_k=16) == SOURCE_VECTOR
     assert parse(SOURCE_VECTOR, max_datagram=1400) == SourcePacket(0x0A0B0C0D, 0x102, 3, 5, True, b"wx", 16)
 
 
 def test_repair_vector_encodes_and_parses():
     symbol = bytes.fromhex("1516177f")
-    assert packet.encode_repair(0x0A0B0C0D, 0xFFFFFE, 6, 4, symbol) == REPAIR_VECTOR
+    assert wire.encode_repair(0x0A0B0C0D, 0xFFFFFE, 6, 4, symbol) == REPAIR_VECTOR
     assert parse(REPAIR_VECTOR, max_datagram=1400) == RepairPacket(0x0A0B0C0D, 0xFFFFFE, 6, 4, symbol)
 
 
 def test_header_sizes_are_documented_sizes():
-    assert packet.SOURCE_HEADER_BYTES == 12
-    assert packet.REPAIR_HEADER_BYTES == 12
+    assert wire.SOURCE_HEADER_BYTES == 12
+    assert wire.REPAIR_HEADER_BYTES == 12
 
 
 @pytest.mark.parametrize(
@@ -64,26 +64,26 @@ def test_malformed_packets_raise_typed_errors(data, error, fragment):
 
 
 def test_oversize_source_and_repair_are_refused_before_use():
-    big_source = packet.encode_source(1, 0, 0, 0, bytes(101))
+    big_source = wire.encode_source(1, 0, 0, 0, bytes(101))
     with pytest.raises(OversizePacket) as info:
         parse(big_source, max_datagram=100)
     assert info.value.reason == "oversize"
-    big_repair = packet.encode_repair(1, 0, 4, 4, bytes(104))
+    big_repair = wire.encode_repair(1, 0, 4, 4, bytes(104))
     with pytest.raises(OversizePacket):
         parse(big_repair, max_datagram=100)
-    assert parse(packet.encode_repair(1, 0, 4, 4, bytes(103)), max_datagram=100).symbol == bytes(103)
+    assert parse(wire.encode_repair(1, 0, 4, 4, bytes(103)), max_datagram=100).symbol == bytes(103)
 
 
 def test_encode_repair_refuses_impossible_indices():
     with pytest.raises(ValueError):
-        packet.encode_repair(1, 0, 3, 4, b"abc")
+        wire.encode_repair(1, 0, 3, 4, b"abc")
 
 
 @given(st.binary(max_size=64))
 def test_parse_never_raises_anything_but_packet_error(data):
     try:
         parse(data, max_datagram=32)
-    except packet.PacketError:
+    except wire.PacketError:
         pass
 
 
@@ -96,5 +96,5 @@ def test_parse_never_raises_anything_but_packet_error(data):
     end=st.booleans(),
 )
 def test_source_round_trip(session, sbn, esi, flow, data, end):
-    wire = packet.encode_source(session, sbn, esi, flow, data, end=end)
-    assert parse(wire, max_datagram=50) == SourcePacket(session, sbn, esi, flow, end, data)
+    encoded = wire.encode_source(session, sbn, esi, flow, data, end=end)
+    assert parse(encoded, max_datagram=50) == SourcePacket(session, sbn, esi, flow, end, data)

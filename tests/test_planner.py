@@ -12,10 +12,10 @@ import pytest
 from scipy.stats import binom
 
 from fecproxy import cli
-from fecproxy.channel import GilbertElliott, GilbertElliottChannel
-from fecproxy.encoder import BlockEncoder, EncoderSettings
-from fecproxy.packet import RepairPacket, SourcePacket, parse
-from fecproxy.planner import (
+from fecproxy.linkmodel.loss_models import GilbertElliott, GilbertElliottChannel
+from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
+from fecproxy.protocol.wire import RepairPacket, SourcePacket, parse
+from fecproxy.linkmodel.planner import (
     MAX_BLOCK_PACKETS,
     block_loss_distribution,
     block_span,
@@ -30,7 +30,7 @@ from fecproxy.planner import (
     parse_int_list,
     plan,
 )
-from fecproxy.plan_cli import parse_prometheus_text
+from fecproxy.commands.plan import parse_prometheus_text
 
 CODES = [(1, 1), (4, 1), (8, 2), (16, 4), (10, 5), (32, 8), (64, 16), (200, 55)]
 LOSSES = [0.001, 0.01, 0.05, 0.2, 0.5]

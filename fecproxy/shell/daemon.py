@@ -26,17 +26,17 @@ from pathlib import Path
 
 import trio
 
-from . import __version__
-from .channel import LossEstimator
-from .config import Config, ConfigError, load_config
-from .decoder import BlockDecoder, BlockReport, DecoderSettings, Delivery, Dropped, SessionStarted
-from .encoder import BlockEncoder, EncoderSettings
-from .flows import FlowTable
-from .logs import log_event
-from .metrics import build_registry, serve
-from .udp import DatagramReader, DatagramWriter, open_udp_socket, resolve
+from fecproxy import __version__
+from fecproxy.linkmodel.estimator import LossEstimator
+from fecproxy.config import Config, ConfigError, load_config
+from fecproxy.protocol.decoder import BlockDecoder, BlockReport, DecoderSettings, Delivery, Dropped, SessionStarted
+from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
+from fecproxy.protocol.flows import FlowTable
+from fecproxy.shell.logs import log_event
+from fecproxy.shell.metrics import build_registry, serve
+from fecproxy.shell.udp import DatagramReader, DatagramWriter, open_udp_socket, resolve
 
-log = logging.getLogger("fecproxy.daemon")
+log = logging.getLogger("fecproxy.shell.daemon")
 
 #: Source packets the link-loss estimate looks back over: long enough to see several bursts at a
 #: few percent loss, short enough to follow a changing link within seconds at telemetry rates

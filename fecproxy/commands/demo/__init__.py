@@ -38,10 +38,10 @@ import numpy as np
 import trio
 import trio.socket
 
-from . import packet
-from .channel import ChannelConfigError, GilbertElliott
-from .config import MAX_ENCODING_SYMBOLS, MAX_HOLD_MS, ConfigError, parse_config
-from .planner import evaluate
+from fecproxy.protocol import wire
+from fecproxy.linkmodel.loss_models import ChannelConfigError, GilbertElliott
+from fecproxy.config import MAX_ENCODING_SYMBOLS, MAX_HOLD_MS, ConfigError, parse_config
+from fecproxy.linkmodel.planner import evaluate
 
 # --------------------------------------------------------------------------------------------
 # The scenario.  Every figure here is invented for the demo; none is a measurement.
@@ -310,7 +310,7 @@ def format_summary(r: DemoResult) -> str:
     def row(label: str, without: str, with_fec: str) -> str:
         return f"  {label:<{left}} {without:<{right}} {with_fec}"
 
-    wire = r.source_wire_bytes + r.repair_wire_bytes
+    on_air = r.source_wire_bytes + r.repair_wire_bytes
     rebuilt = r.rebuilt_delays
     if rebuilt:
         delay = (
@@ -344,7 +344,7 @@ def format_summary(r: DemoResult) -> str:
         row(
             "bytes on the link",
             fmt_bytes(r.app_bytes),
-            f"{fmt_bytes(wire)} (+{fmt_percent(ratio(wire - r.app_bytes, r.app_bytes))}: "
+            f"{fmt_bytes(on_air)} (+{fmt_percent(ratio(on_air - r.app_bytes, r.app_bytes))}: "
             f"repair {fmt_bytes(r.repair_wire_bytes)}, headers {fmt_bytes(r.source_wire_bytes - r.app_bytes)})",
         ),
         row("delay of rebuilt datagrams", "–", delay),
@@ -419,29 +419,29 @@ class LinkTap:
     def observe(self, data: bytes, lost: bool) -> None:
         self.packets += 1
         self.lost += lost
-        if len(data) < packet.COMMON_HEADER.size:
+        if len(data) < wire.COMMON_HEADER.size:
             return
-        version_type, _, _, sbn_esi = packet.COMMON_HEADER.unpack_from(data)
+        version_type, _, _, sbn_esi = wire.COMMON_HEADER.unpack_from(data)
         kind, sbn = version_type & 0x0F, sbn_esi >> 8
         block = self._open.get(sbn)
         if block is None:
             block = self._open[sbn] = [0, 0, 0]
             if len(self._open) > self.OPEN_BLOCKS:
                 self._fold(min(self._open))
-        if kind == packet.PacketType.SOURCE:
+        if kind == wire.PacketType.SOURCE:
             self.source_packets += 1
             self.source_bytes += len(data)
             block[0] += 1
             if lost:
                 self.source_lost += 1
-                ident = peek_id(memoryview(data)[packet.SOURCE_HEADER_BYTES :])
+                ident = peek_id(memoryview(data)[wire.SOURCE_HEADER_BYTES :])
                 if ident is not None:
                     self.lost_ids.add(ident)
-        elif kind == packet.PacketType.REPAIR and len(data) >= packet.REPAIR_HEADER_BYTES:
+        elif kind == wire.PacketType.REPAIR and len(data) >= wire.REPAIR_HEADER_BYTES:
             self.repair_packets += 1
             self.repair_bytes += len(data)
             block[1] += 1
-            block[2] = packet.REPAIR_HEADER.unpack_from(data)[4]
+            block[2] = wire.REPAIR_HEADER.unpack_from(data)[4]
 
     def _fold(self, sbn: int) -> None:
         source, repair, k = self._open.pop(sbn)
@@ -644,7 +644,7 @@ def _fmt_addr(address) -> str:
 
 def _start_metrics(registry, port: int) -> tuple[object | None, str]:
     """Serve the receiver's /metrics; a busy port falls back to any free one, never to a crash."""
-    from .metrics import serve
+    from fecproxy.shell.metrics import serve
 
     try:
         stop = serve(registry, LOOPBACK, port)
@@ -662,9 +662,9 @@ def _start_metrics(registry, port: int) -> tuple[object | None, str]:
 
 async def run_demo(options: DemoOptions, out=None) -> DemoResult:
     """Wire everything up in one nursery, run for ``options.seconds``, wind down, return figures."""
-    from .daemon import Daemon
-    from .impair_cli import RelayConfig, run_relay
-    from .impairment import LinkImpairment
+    from fecproxy.shell.daemon import Daemon
+    from fecproxy.shell.relay import RelayConfig, run_relay
+    from fecproxy.linkmodel.impairment import LinkImpairment
 
     out = sys.stdout if out is None else out
     channel = check_options(options)

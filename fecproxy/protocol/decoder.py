@@ -15,8 +15,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from . import packet
-from .codec import BlockCode, block_code
+from fecproxy.protocol import wire
+from fecproxy.coding.codec import BlockCode, block_code
 
 #: How long an incomplete block waits for more packets.  Must exceed the sender's flush interval
 #: plus the link's delay spread; 500 ms covers a geostationary hop's jitter with room to spare
@@ -29,9 +29,9 @@ DEFAULT_MAX_OPEN_BLOCKS = 256
 FINISHED_MEMORY_FACTOR = 4
 #: The fast path reads the common header and the two bytes after it (a source packet's flow id and
 #: previous k, or a repair packet's k) in one unpack.
-_LEADING_FIELDS = packet.SOURCE_HEADER.unpack_from
-_SOURCE_TYPE_BYTE = (packet.VERSION << 4) | packet.PacketType.SOURCE
-_REPAIR_TYPE_BYTE = (packet.VERSION << 4) | packet.PacketType.REPAIR
+_LEADING_FIELDS = wire.SOURCE_HEADER.unpack_from
+_SOURCE_TYPE_BYTE = (wire.VERSION << 4) | wire.PacketType.SOURCE
+_REPAIR_TYPE_BYTE = (wire.VERSION << 4) | wire.PacketType.REPAIR
 #: Earlier sender sessions remembered, so stragglers from before a restart are dropped as stale.
 RETIRED_SESSIONS = 4
 #: Packets of a new session needed before it replaces a session that is still sending.  One stray
@@ -53,8 +53,8 @@ class DecoderSettings:
             raise ValueError(f"hold_time must be positive, got {self.hold_time}")
         if not self.max_open_blocks >= 1:
             raise ValueError(f"max_open_blocks must be ≥ 1, got {self.max_open_blocks}")
-        if not 1 <= self.max_datagram <= packet.MAX_DATAGRAM_LIMIT:
-            raise ValueError(f"max_datagram {self.max_datagram} outside 1..{packet.MAX_DATAGRAM_LIMIT}")
+        if not 1 <= self.max_datagram <= wire.MAX_DATAGRAM_LIMIT:
+            raise ValueError(f"max_datagram {self.max_datagram} outside 1..{wire.MAX_DATAGRAM_LIMIT}")
 
 
 @dataclass(frozen=True, slots=True)
@@ -167,7 +167,7 @@ class BlockDecoder:
         self._first_sbn: int | None = None  # the first block this session showed us
         self._last_seen = float("-inf")  # when the adopted session last sent a valid packet
         self._candidate: int | None = None
-        self._candidate_packets: list[packet.SourcePacket | packet.RepairPacket] = []
+        self._candidate_packets: list[wire.SourcePacket | wire.RepairPacket] = []
         #: Whether the last packet received belonged to the adopted session (the shell learns its
         #: peer address only from those).
         self.in_session = False
@@ -176,10 +176,10 @@ class BlockDecoder:
     def receive(self, data: bytes, now: float) -> list[Event]:
         # Fast path for the two packets a clean link brings: a source packet of the current
         # session, and a repair packet of a block already complete.  Same checks, same order
-        # and same outcome as packet.parse + the general path below, minus the packet object;
+        # and same outcome as wire.parse + the general path below, minus the packet object;
         # anything else (another session, a bad field) falls through to the general path.
         size = len(data)
-        if size >= packet.SOURCE_HEADER_BYTES:
+        if size >= wire.SOURCE_HEADER_BYTES:
             version_type, flags, session, sbn_esi, flow, previous_k = _LEADING_FIELDS(data)
             if session == self.session:
                 self._last_seen = now
@@ -187,7 +187,7 @@ class BlockDecoder:
                 esi = sbn_esi & 0xFF
                 sbn = sbn_esi >> 8
                 if version_type == _SOURCE_TYPE_BYTE:
-                    if not flags & ~packet.FLAG_END and esi <= packet.MAX_ESI and size - packet.SOURCE_HEADER_BYTES <= self.settings.max_datagram:
+                    if not flags & ~wire.FLAG_END and esi <= wire.MAX_ESI and size - wire.SOURCE_HEADER_BYTES <= self.settings.max_datagram:
                         self.stats.source_received += 1
                         events: list[Event] = []
                         block = self._open.get(sbn)
@@ -199,15 +199,15 @@ class BlockDecoder:
                         if previous_k and not block.told_previous:
                             block.told_previous = True
                             self._learn_previous_k(sbn, previous_k, now, events)
-                        self._add_source_fields(block, sbn, esi, flow, bool(flags), bytes(data[packet.SOURCE_HEADER_BYTES:]), events)
+                        self._add_source_fields(block, sbn, esi, flow, bool(flags), bytes(data[wire.SOURCE_HEADER_BYTES:]), events)
                         self._try_finish(block, now, events)
                         return events
-                elif version_type == _REPAIR_TYPE_BYTE and not flags and size >= packet.REPAIR_HEADER_BYTES:
-                    k = (flow << 8) | data[packet.COMMON_HEADER.size + 1]
-                    symbol_size = size - packet.REPAIR_HEADER_BYTES
+                elif version_type == _REPAIR_TYPE_BYTE and not flags and size >= wire.REPAIR_HEADER_BYTES:
+                    k = (flow << 8) | data[wire.COMMON_HEADER.size + 1]
+                    symbol_size = size - wire.REPAIR_HEADER_BYTES
                     if (
-                        1 <= k <= esi <= packet.MAX_ESI
-                        and packet.SYMBOL_PREFIX_BYTES <= symbol_size <= self.settings.max_datagram + packet.SYMBOL_PREFIX_BYTES
+                        1 <= k <= esi <= wire.MAX_ESI
+                        and wire.SYMBOL_PREFIX_BYTES <= symbol_size <= self.settings.max_datagram + wire.SYMBOL_PREFIX_BYTES
                         and sbn not in self._open
                         and sbn in self._finished
                     ):
@@ -215,10 +215,10 @@ class BlockDecoder:
                         self.stats.repair_unneeded += 1  # normal: the block completed before its repair came
                         return []
         try:
-            pkt = packet.parse(data, max_datagram=self.settings.max_datagram)
-        except packet.PacketError as error:
+            pkt = wire.parse(data, max_datagram=self.settings.max_datagram)
+        except wire.PacketError as error:
             return [self._drop(error.reason, str(error))]
-        if isinstance(pkt, packet.ControlPacket):
+        if isinstance(pkt, wire.ControlPacket):
             return [self._drop("unsupported", "control packets are not handled by this version")]
         events: list[Event] = []
         self.in_session = False
@@ -234,20 +234,20 @@ class BlockDecoder:
                 self._admit(earlier, now, events, replayed=True)
         self.in_session = True
         self._last_seen = now
-        if isinstance(pkt, packet.SourcePacket):
+        if isinstance(pkt, wire.SourcePacket):
             self.stats.source_received += 1
         else:
             self.stats.repair_received += 1
         self._admit(pkt, now, events)
         return events
 
-    def _may_adopt(self, pkt: packet.SourcePacket | packet.RepairPacket, now: float) -> bool:
+    def _may_adopt(self, pkt: wire.SourcePacket | wire.RepairPacket, now: float) -> bool:
         """A new session replaces the adopted one if that one is quiet, or once it is confirmed."""
         if self.session is None or now - self._last_seen >= self.settings.hold_time:
             return True
         return self._candidate == pkt.session and len(self._candidate_packets) + 1 >= SESSION_CONFIRM_PACKETS
 
-    def _hold_candidate(self, pkt: packet.SourcePacket | packet.RepairPacket) -> list[Event]:
+    def _hold_candidate(self, pkt: wire.SourcePacket | wire.RepairPacket) -> list[Event]:
         """A packet of a not-yet-adopted session: deliver its datagram (it needs no block state),
         keep the packet to replay if the session is adopted."""
         if self._candidate != pkt.session:
@@ -255,26 +255,26 @@ class BlockDecoder:
         if any(held.sbn == pkt.sbn and held.esi == pkt.esi for held in self._candidate_packets):
             return [self._drop("duplicate", f"packet {pkt.sbn}/{pkt.esi} of a new session seen before")]
         self._candidate_packets.append(pkt)
-        if isinstance(pkt, packet.RepairPacket):
+        if isinstance(pkt, wire.RepairPacket):
             self.stats.repair_received += 1
             return []
         self.stats.source_received += 1
         self.stats.delivered += 1
         return [Delivery(pkt.flow, pkt.data)]
 
-    def _admit(self, pkt: packet.SourcePacket | packet.RepairPacket, now: float, events: list[Event], *, replayed: bool = False) -> None:
+    def _admit(self, pkt: wire.SourcePacket | wire.RepairPacket, now: float, events: list[Event], *, replayed: bool = False) -> None:
         """Add a packet to its block (opening it if new) and finish the block if it can."""
         block = self._block_for(pkt.sbn, now, events)
         if block is None:
-            if isinstance(pkt, packet.RepairPacket) and pkt.sbn in self._finished:
+            if isinstance(pkt, wire.RepairPacket) and pkt.sbn in self._finished:
                 self.stats.repair_unneeded += 1  # normal: a block complete before its repair arrived
             elif not replayed:
-                events.append(self._behind(pkt.sbn, repair=isinstance(pkt, packet.RepairPacket)))
+                events.append(self._behind(pkt.sbn, repair=isinstance(pkt, wire.RepairPacket)))
             return
-        if isinstance(pkt, packet.SourcePacket) and pkt.previous_k and not block.told_previous:
+        if isinstance(pkt, wire.SourcePacket) and pkt.previous_k and not block.told_previous:
             block.told_previous = True
             self._learn_previous_k(pkt.sbn, pkt.previous_k, now, events)
-        if isinstance(pkt, packet.SourcePacket):
+        if isinstance(pkt, wire.SourcePacket):
             if replayed:
                 # Delivered while its session was a candidate: record it, don't deliver it again.
                 added: list[Event] = []
@@ -325,7 +325,7 @@ class BlockDecoder:
         packets still come.  Blocks before the first one this session showed are left alone —
         they were sent before this receiver was listening.
         """
-        previous = (sbn - 1) % packet.SBN_MODULUS
+        previous = (sbn - 1) % wire.SBN_MODULUS
         block = self._open.get(previous)
         if block is not None:
             if block.k is None and k > block.max_esi:
@@ -334,8 +334,8 @@ class BlockDecoder:
             return
         if previous in self._finished or self._first_sbn is None:
             return
-        after_first = (previous - self._first_sbn) % packet.SBN_MODULUS
-        if not 0 < after_first < packet.SBN_MODULUS // 2:
+        after_first = (previous - self._first_sbn) % wire.SBN_MODULUS
+        if not 0 < after_first < wire.SBN_MODULUS // 2:
             return
         block = self._block_for(previous, now, events)
         if block is not None:
@@ -360,8 +360,8 @@ class BlockDecoder:
         if sbn in self._finished:
             return None
         if self._highest is not None:
-            behind = (self._highest - sbn) % packet.SBN_MODULUS
-            if 0 < behind < packet.SBN_MODULUS // 2:
+            behind = (self._highest - sbn) % wire.SBN_MODULUS
+            if 0 < behind < wire.SBN_MODULUS // 2:
                 if behind > self._window():
                     return None
             else:
@@ -397,7 +397,7 @@ class BlockDecoder:
         if k is not None and esi >= k:
             events.append(self._drop("inconsistent", f"source ESI {esi} but block {sbn} has k={k}"))
             return
-        if block.symbol_len is not None and len(data) + packet.SYMBOL_PREFIX_BYTES > block.symbol_len:
+        if block.symbol_len is not None and len(data) + wire.SYMBOL_PREFIX_BYTES > block.symbol_len:
             events.append(self._drop("inconsistent", f"source {sbn}/{esi} longer than the block's symbols"))
             return
         if end:
@@ -415,7 +415,7 @@ class BlockDecoder:
         self.stats.delivered += 1
         events.append(_direct_delivery(flow, data))
 
-    def _add_repair(self, block: _Block, pkt: packet.RepairPacket, events: list[Event]) -> None:
+    def _add_repair(self, block: _Block, pkt: wire.RepairPacket, events: list[Event]) -> None:
         if pkt.esi in block.repairs:
             events.append(self._drop("duplicate", f"repair {pkt.sbn}/{pkt.esi} seen before"))
             return
@@ -430,7 +430,7 @@ class BlockDecoder:
             events.append(self._drop("inconsistent", f"repair symbol of {size} bytes, block uses {block.symbol_len}"))
             return
         longest = max((len(data) for _, data in block.sources.values()), default=0)
-        if longest + packet.SYMBOL_PREFIX_BYTES > size:
+        if longest + wire.SYMBOL_PREFIX_BYTES > size:
             events.append(self._drop("inconsistent", f"repair symbol of {size} bytes shorter than a source datagram"))
             return
         block.k = pkt.k
@@ -470,14 +470,14 @@ class BlockDecoder:
             row += 1
         # Column j of the generator depends only on k and j: one code per k serves every block of
         # that k, and its cache of loss-pattern inverses is shared across them.
-        code: BlockCode = block_code(k, packet.MAX_ESI + 1)
+        code: BlockCode = block_code(k, wire.MAX_ESI + 1)
         rebuilt = code.recover(dict(zip(indices, symbols)))
         delay = now - block.first_seen
         events: list[Event] = []
         for esi in sorted(rebuilt):
             symbol = rebuilt[esi]
             size = (int(symbol[1]) << 8) | int(symbol[2])
-            if size + packet.SYMBOL_PREFIX_BYTES > length:
+            if size + wire.SYMBOL_PREFIX_BYTES > length:
                 events.append(self._drop("inconsistent", f"rebuilt datagram {block.sbn}/{esi} claims {size} bytes"))
                 continue
             data = symbol[3 : 3 + size].tobytes()

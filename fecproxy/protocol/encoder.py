@@ -23,14 +23,14 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from . import packet
-from .codec import block_code
-from .repair_rule import SHORT_BLOCK_RULES, repair_count
+from fecproxy.protocol import wire
+from fecproxy.coding.codec import block_code
+from fecproxy.protocol.repair_rule import SHORT_BLOCK_RULES, repair_count
 
 #: RFC 6363 §4 / RFC 6865 §4 source symbol prefix: flow id (1 byte) ‖ length (2 bytes, big-endian).
 _SYMBOL_PREFIX = struct.Struct(">BH")
-_SOURCE_TYPE_BYTE = (packet.VERSION << 4) | packet.PacketType.SOURCE
-_REPAIR_TYPE_BYTE = (packet.VERSION << 4) | packet.PacketType.REPAIR
+_SOURCE_TYPE_BYTE = (wire.VERSION << 4) | wire.PacketType.SOURCE
+_REPAIR_TYPE_BYTE = (wire.VERSION << 4) | wire.PacketType.REPAIR
 #: Full blocks whose repair ``send_batch`` computes in one codec call, symbols side by side.
 #: Measured on this project's 2-core machine with (16, 1208)-byte blocks, k=16, m=4, µs per
 #: block: 50–60 alone, 36 for 2, 30 for 4, 25 for 8, 25–29 for 12 to 32: past ~8 blocks the
@@ -59,14 +59,14 @@ class EncoderSettings:
     short_block_repair: str = "proportional"
 
     def __post_init__(self) -> None:
-        if not 1 <= self.block_size <= packet.MAX_K:
-            raise ValueError(f"block_size {self.block_size} outside 1..{packet.MAX_K}")
-        if not 0 <= self.repair <= packet.MAX_ESI + 1 - self.block_size:
+        if not 1 <= self.block_size <= wire.MAX_K:
+            raise ValueError(f"block_size {self.block_size} outside 1..{wire.MAX_K}")
+        if not 0 <= self.repair <= wire.MAX_ESI + 1 - self.block_size:
             raise ValueError(f"repair {self.repair} with block_size {self.block_size} exceeds n ≤ 255")
         if not self.flush_interval > 0:
             raise ValueError(f"flush_interval must be positive, got {self.flush_interval}")
-        if not 1 <= self.max_datagram <= packet.MAX_DATAGRAM_LIMIT:
-            raise ValueError(f"max_datagram {self.max_datagram} outside 1..{packet.MAX_DATAGRAM_LIMIT}")
+        if not 1 <= self.max_datagram <= wire.MAX_DATAGRAM_LIMIT:
+            raise ValueError(f"max_datagram {self.max_datagram} outside 1..{wire.MAX_DATAGRAM_LIMIT}")
         if self.short_block_repair not in SHORT_BLOCK_RULES:
             raise ValueError(f"short_block_repair {self.short_block_repair!r} not one of {SHORT_BLOCK_RULES}")
 
@@ -102,7 +102,7 @@ class BlockEncoder:
             raise ValueError(f"session {session} does not fit 32 bits")
         self.session = session
         self.stats = EncoderStats()
-        self._sbn = first_sbn % packet.SBN_MODULUS
+        self._sbn = first_sbn % wire.SBN_MODULUS
         self._settings = settings
         self._pending: EncoderSettings | None = None
         self._allocate(settings)
@@ -129,7 +129,7 @@ class BlockEncoder:
             self._pending = settings
 
     def _allocate(self, settings: EncoderSettings) -> None:
-        width = packet.SYMBOL_PREFIX_BYTES + settings.max_datagram
+        width = wire.SYMBOL_PREFIX_BYTES + settings.max_datagram
         width += -width % 8  # whole uint64 words for the codec
         self._width = width
         self._spare: list[tuple[memoryview, np.ndarray]] = []  # zeroed buffers of this shape
@@ -155,14 +155,14 @@ class BlockEncoder:
             self._deadline = now + settings.flush_interval
         start = index * self._width
         storage = self._storage
-        storage[start : start + packet.SYMBOL_PREFIX_BYTES] = _SYMBOL_PREFIX.pack(flow, size)
-        storage[start + packet.SYMBOL_PREFIX_BYTES : start + packet.SYMBOL_PREFIX_BYTES + size] = datagram
-        if size + packet.SYMBOL_PREFIX_BYTES > self._symbol_len:
-            self._symbol_len = size + packet.SYMBOL_PREFIX_BYTES
+        storage[start : start + wire.SYMBOL_PREFIX_BYTES] = _SYMBOL_PREFIX.pack(flow, size)
+        storage[start + wire.SYMBOL_PREFIX_BYTES : start + wire.SYMBOL_PREFIX_BYTES + size] = datagram
+        if size + wire.SYMBOL_PREFIX_BYTES > self._symbol_len:
+            self._symbol_len = size + wire.SYMBOL_PREFIX_BYTES
         self._count = index + 1
         full = self._count == settings.block_size
         out = [
-            packet.encode_source(
+            wire.encode_source(
                 self.session, self._sbn, index, flow, bytes(datagram), end=full, previous_k=self._previous_k
             )
         ]
@@ -182,8 +182,8 @@ class BlockEncoder:
         """
         settings = self._settings
         block_size, max_datagram, width = settings.block_size, settings.max_datagram, self._width
-        session, pack_source, pack_prefix = self.session, packet.SOURCE_HEADER.pack, _SYMBOL_PREFIX.pack_into
-        prefix = packet.SYMBOL_PREFIX_BYTES
+        session, pack_source, pack_prefix = self.session, wire.SOURCE_HEADER.pack, _SYMBOL_PREFIX.pack_into
+        prefix = wire.SYMBOL_PREFIX_BYTES
         count, sbn, storage, symbol_len = self._count, self._sbn, self._storage, self._symbol_len
         previous_k = self._previous_k
         sources: list[bytes] = []
@@ -209,7 +209,7 @@ class BlockEncoder:
                     sources.append(pack_source(_SOURCE_TYPE_BYTE, 0, session, (sbn << 8) | (count - 1), flow, previous_k) + datagram)
                     continue
                 sources.append(
-                    pack_source(_SOURCE_TYPE_BYTE, packet.FLAG_END, session, (sbn << 8) | (count - 1), flow, previous_k)
+                    pack_source(_SOURCE_TYPE_BYTE, wire.FLAG_END, session, (sbn << 8) | (count - 1), flow, previous_k)
                     + datagram
                 )
                 self._count, self._symbol_len = count, symbol_len
@@ -250,8 +250,8 @@ class BlockEncoder:
         """Fill each set-aside block's ``packets`` with its repair packets: one codec call per
         run of blocks of equal (k, m), within MAX_BYTES_PER_ENCODE; then recycle the buffers."""
         # k ≤ 255 and ESI = k + j ≤ k + m − 1 ≤ 254 hold by EncoderSettings' checks, so the header
-        # is packed here directly (what packet.encode_repair does after validating them).
-        session, pack_repair, repair_type = self.session, packet.REPAIR_HEADER.pack, _REPAIR_TYPE_BYTE
+        # is packed here directly (what wire.encode_repair does after validating them).
+        session, pack_repair, repair_type = self.session, wire.REPAIR_HEADER.pack, _REPAIR_TYPE_BYTE
         run: list[_FullBlock] = []
         run_bytes = 0
         for position, block in enumerate(blocks):
@@ -315,7 +315,7 @@ class BlockEncoder:
         if m:
             repair = block_code(k, k + m).encode(self._symbols[:k, :length])
             sbn, session = self._sbn, self.session
-            out = [packet.encode_repair(session, sbn, k + j, k, repair[j].data) for j in range(m)]
+            out = [wire.encode_repair(session, sbn, k + j, k, repair[j].data) for j in range(m)]
         self._symbols[:k, :length] = 0  # padding of the next block must be zeros again
         self._advance(k)
         return out
@@ -327,7 +327,7 @@ class BlockEncoder:
         self.stats.blocks += 1
         if k < settings.block_size:
             self.stats.short_blocks += 1
-        self._sbn = (self._sbn + 1) % packet.SBN_MODULUS
+        self._sbn = (self._sbn + 1) % wire.SBN_MODULUS
         self._previous_k = k
         self._count = 0
         self._symbol_len = 0

@@ -11,8 +11,8 @@ import sys
 
 import trio
 
-from .config import ConfigError, load_config
-from .logs import setup_logging
+from fecproxy.config import ConfigError, load_config
+from fecproxy.shell.logs import setup_logging
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
@@ -31,7 +31,7 @@ def main(args: argparse.Namespace) -> int:
             print(message, file=sys.stderr)
         return 2
     setup_logging(args.log_level or str(config.log.level), args.log_format or str(config.log.format))
-    from .daemon import Daemon, SocketOpenError
+    from fecproxy.shell.daemon import Daemon, SocketOpenError
 
     daemon = Daemon(config, config_path=args.config)
 

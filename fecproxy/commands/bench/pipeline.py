@@ -210,7 +210,7 @@ def _relay_main(conn, forward: tuple) -> None:
     """
     import trio
 
-    from .udp import DatagramReader, DatagramWriter, open_udp_socket
+    from fecproxy.shell.udp import DatagramReader, DatagramWriter, open_udp_socket
 
     async def relay() -> None:
         buffers = dict(receive_buffer=SOCKET_BUFFER_BYTES, send_buffer=SOCKET_BUFFER_BYTES)
@@ -234,8 +234,8 @@ def _daemon_main(conn, document: dict) -> None:
 
     import trio
 
-    from .config import parse_config
-    from .daemon import Daemon
+    from fecproxy.config import parse_config
+    from fecproxy.shell.daemon import Daemon
 
     logging.basicConfig(level=logging.WARNING, stream=sys.stderr)
     daemon = Daemon(parse_config(document, "<bench pipeline>"), handle_signals=True)

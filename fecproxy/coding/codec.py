@@ -19,7 +19,7 @@ from functools import lru_cache
 
 import numpy as np
 
-from . import gf256
+from fecproxy.coding import gf256
 
 #: RFC 5510 §8.2 allows n ≤ 255 for m = 8 (the field has 255 non-zero points).
 MAX_ENCODING_SYMBOLS = 255

@@ -30,8 +30,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .channel import GilbertElliott
-from .repair_rule import SHORT_BLOCK_RULES, repair_count
+from fecproxy.linkmodel.loss_models import GilbertElliott
+from fecproxy.protocol.repair_rule import SHORT_BLOCK_RULES, repair_count
 
 #: RFC 5510 §8.2: with GF(2^8) a block has at most 255 encoding symbols (source + repair).
 MAX_BLOCK_PACKETS = 255

@@ -23,7 +23,7 @@ from dataclasses import asdict, dataclass
 
 import numpy as np
 
-from .codec import MAX_ENCODING_SYMBOLS, BlockCode
+from fecproxy.coding.codec import MAX_ENCODING_SYMBOLS, BlockCode
 
 #: (k, m, L) shapes measured by default: a small block for low-latency voice/telemetry, a
 #: middle one, and the largest this field allows with a 20–25 % repair rate; 1200-byte
@@ -39,7 +39,7 @@ DEFAULT_SECONDS = 1.0
 ROUNDS = 5
 #: Seed of the random source data: the same bytes every run.
 SEED = 5510
-PIPELINE_MODULE = "fecproxy.bench_pipeline"
+PIPELINE_MODULE = "fecproxy.commands.bench.pipeline"
 
 
 @dataclass(frozen=True)

@@ -24,12 +24,12 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from fecproxy.channel import (
+from fecproxy.linkmodel.estimator import LossEstimator
+from fecproxy.linkmodel.loss_models import (
     BernoulliChannel,
     ChannelConfigError,
     GilbertElliott,
     GilbertElliottChannel,
-    LossEstimator,
     channel_from_figures,
     make_channel,
 )

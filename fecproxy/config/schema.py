@@ -8,34 +8,28 @@ expected, and they are raised together as one :class:`ConfigError`.
 The schema is a table (section -> dataclass -> one checker per key); defaults live in the
 dataclass fields, so the table, the defaults and :meth:`Config.effective` cannot drift apart.
 
-Public API: :func:`load_config`, :func:`parse_config`, :func:`parse_config_text`,
-:func:`parse_address`, :class:`Config`
-and its sections, :class:`Address`, :class:`ConfigError`.
+Public API (re-exported by :mod:`fecproxy.config`): :func:`parse_config`, :class:`Config` and its
+sections, :class:`ConfigError`, and the named limits and defaults.
 """
 
 from __future__ import annotations
 
 import dataclasses
-import difflib
-import ipaddress
-import json
-import re
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from enum import StrEnum
-from pathlib import Path
 
-import yaml
-
-from . import packet
-from .repair_rule import repair_count
+from fecproxy.protocol import wire
+from fecproxy.protocol.repair_rule import repair_count
+from fecproxy.config.addresses import Address, AddressError, parse_address
+from fecproxy.config.messages import closest, key_text, kind_of, or_list, show_value
 
 # --------------------------------------------------------------------------------------------
 # Limits and defaults.  Each is named, with the reason for its value.
 # --------------------------------------------------------------------------------------------
 
 #: RFC 5510 §8.2: with GF(2^8) a block has n = k + m ≤ 255 encoding symbols.
-MAX_ENCODING_SYMBOLS = packet.MAX_K
+MAX_ENCODING_SYMBOLS = wire.MAX_K
 
 #: 16 datagrams per block and 4 repair packets (25 % overhead) rides out 4 losses in 20 packets;
 #: on an i.i.d. 5 % link that leaves p·P[Binomial(19, 0.05) ≥ 4] ≈ 7e-4 residual loss per
@@ -63,7 +57,7 @@ AUTH_TAG_RESERVE_BYTES = 32
 MAX_UDP_PAYLOAD_BYTES = 65_507
 #: The largest datagram whose repair packet (with the tag reserve) still fits one UDP datagram.
 MAX_DATAGRAM_BYTES_LIMIT = (
-    MAX_UDP_PAYLOAD_BYTES - packet.REPAIR_HEADER_BYTES - packet.SYMBOL_PREFIX_BYTES - AUTH_TAG_RESERVE_BYTES
+    MAX_UDP_PAYLOAD_BYTES - wire.REPAIR_HEADER_BYTES - wire.SYMBOL_PREFIX_BYTES - AUTH_TAG_RESERVE_BYTES
 )
 
 #: 500 ms: an incomplete block waits this long for more packets.  It must exceed the sending
@@ -100,14 +94,6 @@ DEFAULT_SOCKET_BUFFER_BYTES = 4 * 1024 * 1024
 #: value that cannot overflow is INT_MAX // 2.
 MAX_SOCKET_BUFFER_BYTES = (2**31 - 1) // 2
 
-#: A config file is a few hundred bytes; refusing more than 1 MiB keeps a wrong path (a log, a
-#: disk image) from being read into memory and parsed.
-MAX_CONFIG_FILE_BYTES = 1024 * 1024
-
-#: difflib ratio at which an unknown key is close enough to suggest (difflib's own default).
-SUGGESTION_CUTOFF = 0.6
-#: Longest rendering of a bad value inside a message.
-MAX_SHOWN_VALUE_CHARS = 60
 
 
 # --------------------------------------------------------------------------------------------
@@ -149,106 +135,6 @@ class ConfigError(ValueError):
 
 class ConfigUnreadable(ConfigError):
     """The file could not be read at all (missing, a directory, no permission, too large)."""
-
-
-class AddressError(ValueError):
-    """A HOST:PORT string that does not parse; the text says what is wrong with it."""
-
-
-@dataclass(frozen=True)
-class Address:
-    """A socket address as written in the config; hostnames are resolved later, by the daemon."""
-
-    host: str
-    port: int
-
-    def __str__(self) -> str:
-        return f"[{self.host}]:{self.port}" if self.is_ipv6 else f"{self.host}:{self.port}"
-
-    @property
-    def is_ipv6(self) -> bool:
-        return ":" in self.host.split("%", 1)[0]
-
-    @property
-    def is_ip_literal(self) -> bool:
-        try:
-            ipaddress.ip_address(self.host)
-        except ValueError:
-            return False
-        return True
-
-    @property
-    def is_unspecified(self) -> bool:
-        """0.0.0.0 or :: — "every local address", fine to bind, meaningless to send to."""
-        return self.host in ("0.0.0.0", "::")
-
-    @property
-    def is_loopback(self) -> bool:
-        try:
-            return ipaddress.ip_address(self.host).is_loopback
-        except ValueError:
-            return self.host.lower() == "localhost"
-
-
-# RFC 1123 §2.1 host name: labels of letters, digits and inner hyphens, each 1..63 characters,
-# the whole name at most 253 (RFC 1035 §2.3.4 gives 255 octets on the wire, 253 as text).
-_LABEL = r"[A-Za-z0-9](?:[A-Za-z0-9-]{0,61}[A-Za-z0-9])?"
-_HOSTNAME = re.compile(rf"{_LABEL}(?:\.{_LABEL})*\.?")
-_MAX_HOSTNAME_CHARS = 253
-_LOOKS_NUMERIC = re.compile(r"[0-9.]+")
-_PORT = re.compile(r"[0-9]+")
-
-
-def parse_address(text: str, *, allow_port_zero: bool = False, allow_unspecified: bool = True) -> Address:
-    """Parse HOST:PORT, [IPv6]:PORT or hostname:PORT; raise AddressError saying what is wrong.
-
-    Port 0 means "any free port" and makes sense only for an address we bind.  The unspecified
-    hosts 0.0.0.0 and :: likewise make sense only to bind, never as a destination.
-    """
-    if not isinstance(text, str):
-        raise AddressError(f"is {_kind(text)}, not a HOST:PORT string")
-    text = text.strip()
-    if not text:
-        raise AddressError("is empty")
-    if text.startswith("["):
-        close = text.find("]")
-        if close < 0:
-            raise AddressError("has no closing ] after the IPv6 address")
-        host, rest = text[1:close], text[close + 1 :]
-        if not rest.startswith(":"):
-            raise AddressError("has no :PORT after ]")
-        port_text = rest[1:]
-        try:
-            host = str(ipaddress.IPv6Address(host))
-        except ValueError:
-            raise AddressError(f"has [{_clip(host)}], which is not an IPv6 address") from None
-    else:
-        host, sep, port_text = text.rpartition(":")
-        if not sep:
-            raise AddressError("has no port")
-        if ":" in host:
-            raise AddressError(f"looks like an IPv6 address without brackets; write it as [{_clip(host)}]:{_clip(port_text)}")
-        if not host:
-            raise AddressError("has no host before the colon")
-        if _LOOKS_NUMERIC.fullmatch(host):
-            try:
-                host = str(ipaddress.IPv4Address(host))
-            except ValueError:
-                raise AddressError(f"has {_clip(host)}, which is not a valid IPv4 address") from None
-        elif len(host) > _MAX_HOSTNAME_CHARS or not _HOSTNAME.fullmatch(host):
-            raise AddressError(f"has {_show(host)}, which is neither an IP address nor a valid host name")
-    if not port_text:
-        raise AddressError("has no port")
-    if not _PORT.fullmatch(port_text):
-        raise AddressError(f"has port {_show(port_text)}, which is not a number")
-    low = 0 if allow_port_zero else 1
-    port = int(port_text) if len(port_text) <= 5 else None  # never int() a huge digit string
-    if port is None or not low <= port <= 65535:
-        raise AddressError(f"has port {_clip(port_text, 10)}, out of range {low}..65535")
-    address = Address(host, port)
-    if address.is_unspecified and not allow_unspecified:
-        raise AddressError(f"has the unspecified host {host}, which cannot be a destination")
-    return address
 
 
 # --------------------------------------------------------------------------------------------
@@ -348,7 +234,7 @@ class Config:
         to :func:`parse_config`, which gives an equal Config.
         """
         document: dict = {}
-        for name in _TOP_ORDER:
+        for name in TOP_LEVEL_KEYS:
             value = getattr(self, name)
             if dataclasses.is_dataclass(value) and not isinstance(value, Address):
                 document[name] = {f.name: _plain(getattr(value, f.name)) for f in dataclasses.fields(value)}
@@ -365,82 +251,20 @@ def _plain(value):
     return value
 
 
-# --------------------------------------------------------------------------------------------
-# Message helpers
-# --------------------------------------------------------------------------------------------
-
-
-def _kind(value) -> str:
-    if value is None:
-        return "null"
-    if isinstance(value, bool):
-        return "a boolean"
-    if isinstance(value, int):
-        return "an integer"
-    if isinstance(value, float):
-        return "a number with a fraction" if not float(value).is_integer() else "a floating-point number"
-    if isinstance(value, str):
-        return "a string"
-    if isinstance(value, Mapping):
-        return "a mapping"
-    if isinstance(value, (list, tuple)):
-        return "a list"
-    return f"a {type(value).__name__}"
-
-
-def _show(value) -> str:
-    """A bad value as the user would recognise it from the YAML."""
-    if value is None:
-        return "null"
-    if isinstance(value, bool):
-        return "true" if value else "false"
-    if isinstance(value, str):
-        text = json.dumps(value, ensure_ascii=False)
-    elif isinstance(value, (int, float)):
-        text = repr(value)
-    elif isinstance(value, Mapping):
-        text = "{…}" if value else "{}"
-    elif isinstance(value, (list, tuple)):
-        text = "[…]" if value else "[]"
-    else:
-        text = str(value)
-    return _clip(text)
-
-
-def _clip(text: str, limit: int = MAX_SHOWN_VALUE_CHARS) -> str:
-    return text if len(text) <= limit else text[: limit - 1] + "…"
-
-
-def _key_text(key) -> str:
-    if isinstance(key, bool):
-        return "true" if key else "false"
-    return key if isinstance(key, str) else _show(key)
-
-
-def _or_list(words: list[str]) -> str:
-    return ", ".join(words[:-1]) + f" or {words[-1]}" if len(words) > 1 else words[0]
-
-
-def _closest(word: str, candidates) -> str | None:
-    lowered = {candidate.lower(): candidate for candidate in candidates}
-    match = difflib.get_close_matches(word.lower(), list(lowered), n=1, cutoff=SUGGESTION_CUTOFF)
-    return lowered[match[0]] if match else None
-
-
 def _suggest(name: str, section: str | None) -> str:
     """The hint after "unknown key": a near miss here, the same key elsewhere, or the list."""
-    local = list(_SECTIONS[section][1]) if section else list(_TOP_ORDER)
+    local = list(_SECTIONS[section][1]) if section else list(TOP_LEVEL_KEYS)
     prefix = f"{section}." if section else ""
-    near = _closest(name, local)
+    near = closest(name, local)
     if near:
         return f"did you mean {prefix}{near}?"
-    elsewhere = [path for path in _ALL_PATHS if path.rsplit(".", 1)[-1] == name.lower() and path != prefix + name]
+    elsewhere = [path for path in ALL_KEY_PATHS if path.rsplit(".", 1)[-1] == name.lower() and path != prefix + name]
     if elsewhere:
-        return f"did you mean {_or_list(elsewhere)}?"
-    near_anywhere = _closest(name, [path.rsplit(".", 1)[-1] for path in _ALL_PATHS])
+        return f"did you mean {or_list(elsewhere)}?"
+    near_anywhere = closest(name, [path.rsplit(".", 1)[-1] for path in ALL_KEY_PATHS])
     if near_anywhere:
-        paths = [path for path in _ALL_PATHS if path.rsplit(".", 1)[-1] == near_anywhere]
-        return f"did you mean {_or_list(paths)}?"
+        paths = [path for path in ALL_KEY_PATHS if path.rsplit(".", 1)[-1] == near_anywhere]
+        return f"did you mean {or_list(paths)}?"
     return f"valid keys here are {', '.join(local)}"
 
 
@@ -461,7 +285,7 @@ class _Integer:
 
     def __call__(self, value):
         if isinstance(value, bool) or not isinstance(value, int):
-            raise _Bad(f"is {_kind(value)}; expected {self.expected}")
+            raise _Bad(f"is {kind_of(value)}; expected {self.expected}")
         if not self.low <= value <= self.high:
             raise _Bad(f"is out of range; expected {self.expected}")
         return value
@@ -472,23 +296,23 @@ class _Boolean:
 
     def __call__(self, value):
         if not isinstance(value, bool):
-            raise _Bad(f"is {_kind(value)}; expected {self.expected}")
+            raise _Bad(f"is {kind_of(value)}; expected {self.expected}")
         return value
 
 
 class _Choice:
     def __init__(self, enum: type[StrEnum], what: str):
         self.enum, self.what = enum, what
-        self.expected = _or_list([member.value for member in enum])
+        self.expected = or_list([member.value for member in enum])
 
     def __call__(self, value):
         if not isinstance(value, str):
-            raise _Bad(f"is {_kind(value)}; expected {self.expected}")
+            raise _Bad(f"is {kind_of(value)}; expected {self.expected}")
         try:
             return self.enum(value)
         except ValueError:
             pass
-        hint = _closest(value, [member.value for member in self.enum])
+        hint = closest(value, [member.value for member in self.enum])
         suggestion = f" (did you mean {hint}?)" if hint else ""
         raise _Bad(f"is not a valid {self.what}; expected {self.expected}{suggestion}")
 
@@ -503,7 +327,7 @@ class _AddressField:
 
     def __call__(self, value):
         if not isinstance(value, str):
-            raise _Bad(f"is {_kind(value)}; expected {self.expected}")
+            raise _Bad(f"is {kind_of(value)}; expected {self.expected}")
         try:
             return parse_address(value, allow_port_zero=self.bindable, allow_unspecified=self.bindable)
         except AddressError as error:
@@ -517,7 +341,7 @@ _DESTINATION = _AddressField(bindable=False)
 # The schema table: YAML key -> checker, with defaults taken from the dataclasses above.
 # --------------------------------------------------------------------------------------------
 
-_TOP_ORDER = ("role", "listen", "forward", "link", "fec", "decoder", "flows", "sockets", "log", "metrics")
+TOP_LEVEL_KEYS = ("role", "listen", "forward", "link", "fec", "decoder", "flows", "sockets", "log", "metrics")
 
 _TOP_SCALARS: dict[str, Callable] = {
     "role": _Choice(Role, "role"),
@@ -591,7 +415,7 @@ _PURPOSE = {
 
 
 def _all_paths() -> list[str]:
-    paths = list(_TOP_ORDER)
+    paths = list(TOP_LEVEL_KEYS)
     for section, (_, keys) in _SECTIONS.items():
         paths += [f"{section}.{key}" for key in keys]
     return paths
@@ -609,7 +433,7 @@ def _defaults() -> dict[str, object]:
     return defaults
 
 
-_ALL_PATHS = _all_paths()
+ALL_KEY_PATHS = _all_paths()
 _DEFAULTS = _defaults()
 
 # --------------------------------------------------------------------------------------------
@@ -635,10 +459,10 @@ class _Parser:
             raise ConfigError([f"{self.source}: the document is empty; expected a mapping with at least role and link.bind"])
         if not isinstance(document, Mapping):
             raise ConfigError(
-                [f"{self.source}: the document is {_kind(document)}; expected a mapping of settings (key: value lines)"]
+                [f"{self.source}: the document is {kind_of(document)}; expected a mapping of settings (key: value lines)"]
             )
         for key, raw in document.items():
-            name = _key_text(key)
+            name = key_text(key)
             if name in _TOP_SCALARS:
                 self.value(name, raw, _TOP_SCALARS[name])
             elif name in _SECTIONS:
@@ -662,17 +486,17 @@ class _Parser:
         try:
             self.values[path] = check(raw)
         except _Bad as bad:
-            self.error(path, f"{_show(raw)} {bad}")
+            self.error(path, f"{show_value(raw)} {bad}")
 
     def section(self, name: str, raw) -> None:
         if raw is None:
             return  # "metrics:" with everything commented out is an empty section
         keys = _SECTIONS[name][1]
         if not isinstance(raw, Mapping):
-            self.error(name, f"{_show(raw)} is {_kind(raw)}; expected a mapping of {name} settings ({', '.join(keys)})")
+            self.error(name, f"{show_value(raw)} is {kind_of(raw)}; expected a mapping of {name} settings ({', '.join(keys)})")
             return
         for key, value in raw.items():
-            key_name = _key_text(key)
+            key_name = key_text(key)
             path = f"{name}.{key_name}"
             if key_name in keys:
                 self.value(path, value, keys[key_name])
@@ -680,7 +504,7 @@ class _Parser:
                 self.error(path, f"unknown key; {_suggest(key_name, name)}")
 
     def fill_defaults(self) -> None:
-        for path in _ALL_PATHS:
+        for path in ALL_KEY_PATHS:
             if path in _SECTIONS or path in self.values or path in self.bad or path in _OPTIONAL:
                 continue
             if path.split(".", 1)[0] in self.bad:
@@ -708,7 +532,7 @@ class _Parser:
                 other = Role.RECEIVER if role is Role.SENDER else Role.SENDER
                 self.error(
                     path,
-                    f"{_show(str(self.values[path]))} is set but role is {role}; "
+                    f"{show_value(str(self.values[path]))} is set but role is {role}; "
                     f"expected no {path} on a {role} ({path} is for the {other}; remove it)",
                 )
 
@@ -740,7 +564,7 @@ class _Parser:
         if listen is not None and _same_local_port(listen, bind):
             self.error(
                 "listen",
-                f"{_show(str(listen))} uses the same UDP port as link.bind {_show(str(bind))}; "
+                f"{show_value(str(listen))} uses the same UDP port as link.bind {show_value(str(bind))}; "
                 f"expected two different ports (both are bound on this host)",
             )
         for path in ("link.peer", "forward"):
@@ -748,7 +572,7 @@ class _Parser:
             if destination is not None and _is_self(destination, bind):
                 self.error(
                     path,
-                    f"{_show(str(destination))} is this proxy's own link.bind {_show(str(bind))}; "
+                    f"{show_value(str(destination))} is this proxy's own link.bind {show_value(str(bind))}; "
                     f"expected {_PURPOSE[path]}, which must differ from link.bind",
                 )
 
@@ -786,96 +610,3 @@ def parse_config(document: object, source: str = "<config>") -> Config:
     every fault.  Used by :func:`load_config`, by SIGHUP reloads and by tests."""
     return _Parser(source).run(document)
 
-
-# --------------------------------------------------------------------------------------------
-# Reading YAML
-# --------------------------------------------------------------------------------------------
-
-
-class _StrictLoader(yaml.SafeLoader):
-    """SafeLoader that records duplicate keys (PyYAML silently keeps the last one)."""
-
-    def __init__(self, stream):
-        super().__init__(stream)
-        self.duplicates: list[tuple[str, int, int]] = []
-
-    def construct_mapping(self, node, deep=False):
-        seen = set()
-        for key_node, _ in node.value:
-            if isinstance(key_node, yaml.ScalarNode):
-                key = key_node.value
-                if key in seen:
-                    mark = key_node.start_mark
-                    self.duplicates.append((key, mark.line + 1, mark.column + 1))
-                seen.add(key)
-        return super().construct_mapping(node, deep=deep)
-
-
-def _reader_message(error: yaml.reader.ReaderError, text: str, source: str) -> str:
-    """A character YAML forbids (control codes): say where, as line and column."""
-    position = min(max(error.position, 0), len(text))
-    line = text.count("\n", 0, position) + 1
-    column = position - (text.rfind("\n", 0, position) + 1) + 1
-    return (
-        f"{source}: line {line}, column {column}: YAML syntax error: character "
-        f"U+{error.character:04X} is not allowed; expected printable text"
-    )
-
-
-def _read_yaml(text: str, source: str) -> object:
-    try:
-        loader = _StrictLoader(text)
-    except yaml.reader.ReaderError as error:
-        raise ConfigError([_reader_message(error, text, source)]) from None
-    try:
-        document = loader.get_single_data()
-    except yaml.reader.ReaderError as error:
-        raise ConfigError([_reader_message(error, text, source)]) from None
-    except yaml.MarkedYAMLError as error:
-        mark = error.problem_mark or error.context_mark
-        where = f"line {mark.line + 1}, column {mark.column + 1}: " if mark else ""
-        problem = error.problem or error.context or "not valid YAML"
-        raise ConfigError([f"{source}: {where}YAML syntax error: {problem}"]) from None
-    except yaml.YAMLError as error:
-        raise ConfigError([f"{source}: YAML error: {error}"]) from None
-    except RecursionError:
-        raise ConfigError([f"{source}: YAML nested too deeply; expected a flat mapping of settings"]) from None
-    finally:
-        loader.dispose()
-    if loader.duplicates:
-        messages = [
-            f"{source}: line {line}, column {column}: {key}: duplicate key; expected each key once"
-            for key, line, column in loader.duplicates
-        ]
-        try:
-            parse_config(document, source)
-        except ConfigError as error:
-            messages += error.messages
-        raise ConfigError(messages)
-    return document
-
-
-def load_config(path: str | Path) -> Config:
-    """Read and validate a YAML config file.
-
-    Raises ConfigUnreadable when the file cannot be read at all, ConfigError (listing every
-    fault) when it can but is not a valid config.
-    """
-    source = str(path)
-    try:
-        with open(path, "rb") as file:
-            data = file.read(MAX_CONFIG_FILE_BYTES + 1)
-    except OSError as error:
-        raise ConfigUnreadable([f"{source}: cannot read the file: {error.strerror or error}"]) from None
-    if len(data) > MAX_CONFIG_FILE_BYTES:
-        raise ConfigUnreadable([f"{source}: file is larger than {MAX_CONFIG_FILE_BYTES} bytes; is this a config file?"])
-    try:
-        text = data.decode("utf-8-sig")
-    except UnicodeDecodeError as error:
-        raise ConfigError([f"{source}: byte {error.start} is not UTF-8; expected a UTF-8 text file"]) from None
-    return parse_config_text(text, source)
-
-
-def parse_config_text(text: str, source: str = "<text>") -> Config:
-    """Validate YAML text (for configs embedded in tools and tests); raise ConfigError."""
-    return parse_config(_read_yaml(text, source), source)

@@ -8,15 +8,30 @@ prefix ``fecproxy_``, base units, counters end in ``_total``, labels only from s
 from __future__ import annotations
 
 from collections.abc import Callable, Iterable
-from typing import TYPE_CHECKING
+from typing import Protocol
 
 from prometheus_client import CollectorRegistry, Histogram
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, InfoMetricFamily
 
-from . import __version__
+from fecproxy import __version__
 
-if TYPE_CHECKING:
-    from .daemon import Daemon
+
+class DaemonView(Protocol):
+    """What the collector reads from a daemon at scrape time (the daemon satisfies it; metrics
+    never imports the daemon module, so the two cannot form an import cycle)."""
+
+    encoder: object
+    decoder: object
+    config: object
+    reloads: dict[str, int]
+
+    def drop_counts(self) -> dict[str, int]: ...
+
+    def send_errors(self) -> int: ...
+
+    def flow_count(self) -> int: ...
+
+    def loss_estimate(self) -> tuple[float, float] | None: ...
 
 #: Every drop reason any layer can count; all are exported (as 0 until they happen) so alert
 #: rules and dashboards can rely on the series existing.
@@ -42,7 +57,7 @@ RECOVERY_DELAY_BUCKETS = (0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.
 class DaemonCollector:
     """Reads a daemon's counters at scrape time."""
 
-    def __init__(self, daemon: "Daemon"):
+    def __init__(self, daemon: "DaemonView"):
         self.daemon = daemon
 
     def describe(self) -> Iterable:
@@ -100,7 +115,7 @@ class DaemonCollector:
         yield info
 
 
-def build_registry(daemon: "Daemon") -> tuple[CollectorRegistry, Histogram]:
+def build_registry(daemon: "DaemonView") -> tuple[CollectorRegistry, Histogram]:
     """A registry of this daemon's own (several daemons may share one process, as in the demo)."""
     registry = CollectorRegistry(auto_describe=False)
     registry.register(DaemonCollector(daemon))

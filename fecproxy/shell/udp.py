@@ -21,7 +21,7 @@ import struct
 
 import trio
 
-log = logging.getLogger("fecproxy.udp")
+log = logging.getLogger("fecproxy.shell.udp")
 
 #: linux/udp.h: setsockopt level SOL_UDP, option UDP_SEGMENT (Linux ≥ 4.18).
 SOL_UDP = getattr(socket, "SOL_UDP", 17)

@@ -29,7 +29,8 @@ from collections import deque
 from collections.abc import Callable
 from dataclasses import dataclass, field
 
-from .channel import GilbertElliott, LossEstimator, make_channel
+from fecproxy.linkmodel.estimator import LossEstimator
+from fecproxy.linkmodel.loss_models import GilbertElliott, make_channel
 
 #: Bytes of IPv4 + UDP header per datagram counted against ``rate_bps``: a radio carries them too
 #: (20 + 8, RFC 791 and RFC 768); IPv6 would be 48, a small error at typical payload sizes.

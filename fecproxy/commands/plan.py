@@ -14,8 +14,8 @@ import sys
 import urllib.error
 import urllib.request
 
-from .channel import ChannelConfigError, GilbertElliott, channel_from_figures
-from .planner import (
+from fecproxy.linkmodel.loss_models import ChannelConfigError, GilbertElliott, channel_from_figures
+from fecproxy.linkmodel.planner import (
     DEFAULT_K_VALUES,
     DEFAULT_SHORT_BLOCK_RULE,
     SHORT_BLOCK_RULES,

@@ -14,7 +14,7 @@ import sys
 
 import yaml
 
-from .config import ConfigError, ConfigUnreadable, load_config
+from fecproxy.config import ConfigError, ConfigUnreadable, load_config
 
 EXIT_VALID = 0
 EXIT_UNREADABLE = 1

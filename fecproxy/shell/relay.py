@@ -1,0 +1,220 @@
+"""A bidirectional UDP relay through two emulated lossy links: the trio shell of
+:mod:`fecproxy.linkmodel.impairment`, used by ``fecproxy impair`` and the demo.
+
+Datagrams arriving on ``listen`` go through the *forward* :class:`ImpairedLink` to ``to``;
+datagrams coming back from ``to`` go through the *return* link to whichever address last sent to
+``listen``.  In-process use (a demo or a test inside a trio nursery)::
+
+    relay = await nursery.start(run_relay, RelayConfig(listen=("127.0.0.1", 0), to=receiver_addr, ...))
+    relay.listen_address   # where the sender should send
+    relay.stats()          # per-direction LinkStats
+"""
+
+from __future__ import annotations
+
+import math
+import socket as stdlib_socket
+from collections import Counter
+from dataclasses import dataclass, field
+
+import trio
+
+from fecproxy.linkmodel.impairment import ImpairedLink, LinkImpairment, LinkStats
+
+#: Receive buffer: the largest UDP payload (65 535 − 8 header bytes), so nothing is truncated.
+MAX_DATAGRAM_BYTES = 65_535
+#: Default seed: runs are reproducible unless the user asks otherwise.
+DEFAULT_SEED = 1
+#: Socket receive/send buffers asked of the kernel.  The relay is one Python task per direction;
+#: a sender's burst must wait in the kernel rather than be dropped there, where we cannot count
+#: it.  4 MiB holds about a second of a 30 Mbit/s link; Linux caps it at net.core.rmem_max/wmem_max.
+SOCKET_BUFFER_BYTES = 4 * 1024 * 1024
+DIRECTIONS = ("forward", "return")
+#: Drops that happen in the relay shell rather than on the emulated link.
+SHELL_DROP_REASONS = ("no_client", "send_error")
+
+
+class RelayError(RuntimeError):
+    """The relay could not start (address resolution or bind failed)."""
+
+
+@dataclass(frozen=True)
+class RelayConfig:
+    """Everything :func:`run_relay` needs; the two :class:`LinkImpairment` are already validated."""
+
+    listen: tuple[str, int]
+    to: tuple[str, int]
+    forward: LinkImpairment = field(default_factory=LinkImpairment)
+    back: LinkImpairment = field(default_factory=LinkImpairment)
+    seed: int | str = DEFAULT_SEED
+    bind_out: tuple[str, int] | None = None  # local address toward ``to``; None = any
+
+
+class UdpRelay:
+    """The running relay: two sockets, two impaired links, a pump per direction."""
+
+    def __init__(self, config: RelayConfig) -> None:
+        self.config = config
+        self.links: dict[str, ImpairedLink] = {}
+        self.shell_drops: Counter[tuple[str, str]] = Counter()
+        self.listen_address: tuple | None = None
+        self.out_address: tuple | None = None
+        self.client: tuple | None = None  # who sent to --listen last; replies go there
+        self._wake = {direction: trio.Event() for direction in DIRECTIONS}
+
+    async def run(self, *, task_status=trio.TASK_STATUS_IGNORED) -> None:
+        """Bind, report ``self`` through ``task_status``, relay until cancelled."""
+        config = self.config
+        try:
+            listen_info = await trio.socket.getaddrinfo(*config.listen, type=stdlib_socket.SOCK_DGRAM)
+            to_info = await trio.socket.getaddrinfo(*config.to, type=stdlib_socket.SOCK_DGRAM)
+            listen_sock = trio.socket.socket(listen_info[0][0], stdlib_socket.SOCK_DGRAM)
+            out_sock = trio.socket.socket(to_info[0][0], stdlib_socket.SOCK_DGRAM)
+        except OSError as exc:
+            raise RelayError(f"cannot resolve or open sockets for {config.listen} / {config.to}: {exc}") from None
+        with listen_sock, out_sock:
+            for sock in (listen_sock, out_sock):
+                for option in (stdlib_socket.SO_RCVBUF, stdlib_socket.SO_SNDBUF):
+                    try:
+                        sock.setsockopt(stdlib_socket.SOL_SOCKET, option, SOCKET_BUFFER_BYTES)
+                    except OSError:  # a smaller buffer still works; only bursts suffer
+                        pass
+            try:
+                await listen_sock.bind(listen_info[0][4])
+                if config.bind_out is not None:
+                    await out_sock.bind(config.bind_out)
+                await out_sock.connect(to_info[0][4])
+            except OSError as exc:
+                raise RelayError(f"cannot bind {config.listen} or reach {config.to}: {exc}") from None
+            self.listen_address = listen_sock.getsockname()
+            self.out_address = out_sock.getsockname()
+            start = trio.current_time()
+            self.links = {
+                "forward": ImpairedLink(config.forward, seed=f"{config.seed}:forward", start=start),
+                "return": ImpairedLink(config.back, seed=f"{config.seed}:return", start=start),
+            }
+            task_status.started(self)
+            async with trio.open_nursery() as nursery:
+                nursery.start_soon(self._receive_from_clients, listen_sock)
+                nursery.start_soon(self._receive_from_far_end, out_sock)
+                nursery.start_soon(self._pump, "forward", out_sock, listen_sock)
+                nursery.start_soon(self._pump, "return", out_sock, listen_sock)
+
+    async def _receive_from_clients(self, sock) -> None:
+        link = self.links["forward"]
+        while True:
+            try:
+                data, address = await sock.recvfrom(MAX_DATAGRAM_BYTES)
+            except OSError:  # an ICMP error for an earlier send surfaces here; nothing was received
+                continue
+            self.client = address
+            link.submit(data, trio.current_time())
+            self._wake["forward"].set()
+
+    async def _receive_from_far_end(self, sock) -> None:
+        link = self.links["return"]
+        while True:
+            try:
+                data = await sock.recv(MAX_DATAGRAM_BYTES)
+            except OSError:  # e.g. ECONNREFUSED while the far end is not up yet
+                continue
+            link.submit(data, trio.current_time())
+            self._wake["return"].set()
+
+    async def _pump(self, direction: str, out_sock, listen_sock) -> None:
+        """Send what the link says is due, then sleep until its next deadline or new input."""
+        link = self.links[direction]
+        while True:
+            for datagram in link.due(trio.current_time()):
+                try:
+                    if direction == "forward":
+                        await out_sock.send(datagram)
+                    elif self.client is None:
+                        self.shell_drops[(direction, "no_client")] += 1
+                    else:
+                        await listen_sock.sendto(datagram, self.client)
+                except OSError:
+                    self.shell_drops[(direction, "send_error")] += 1
+            wake = self._wake[direction]
+            deadline = link.next_deadline()
+            with trio.move_on_at(math.inf if deadline is None else deadline):
+                await wake.wait()
+            if wake.is_set():
+                self._wake[direction] = trio.Event()
+
+    # -- reporting ---------------------------------------------------------------------------------
+
+    def stats(self) -> dict[str, LinkStats]:
+        """Per-direction link counters (safe to call from another thread: it only reads)."""
+        return {direction: link.stats() for direction, link in self.links.items()}
+
+    def summary(self) -> str:
+        lines = []
+        configured = {"forward": self.config.forward, "return": self.config.back}
+        for direction, stats in self.stats().items():
+            loss = configured[direction].loss
+            shell = {reason: self.shell_drops[(direction, reason)] for reason in SHELL_DROP_REASONS}
+            lines.append(
+                f"{direction}: submitted {stats.submitted}, on the air {stats.sent}, delivered {stats.delivered} "
+                f"(duplicates {stats.duplicates})\n"
+                f"  loss model: lost {stats.lost}, measured loss {stats.measured_loss:.4g} (configured {loss.average_loss:.4g}), "
+                f"mean burst {stats.measured_mean_burst:.4g} (configured {loss.mean_burst:.4g})\n"
+                f"  drops: queue {stats.queue_drops}, blackout {stats.blackout_drops}, in-flight limit {stats.in_flight_drops}, "
+                f"no client {shell['no_client']}, send errors {shell['send_error']}"
+            )
+        return "\n".join(lines)
+
+
+async def run_relay(config: RelayConfig, *, task_status=trio.TASK_STATUS_IGNORED) -> None:
+    """Run a relay until cancelled; ``task_status.started`` receives the :class:`UdpRelay`
+    (its ``listen_address`` is the bound address, its ``stats()`` the counters)."""
+    await UdpRelay(config).run(task_status=task_status)
+
+
+# -- metrics -------------------------------------------------------------------------------------------
+
+
+class _RelayCollector:
+    """Prometheus collector reading the relay's counters at scrape time (no per-packet cost)."""
+
+    def __init__(self, relay: UdpRelay) -> None:
+        self.relay = relay
+
+    def collect(self):
+        from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
+
+        prefix = "fecproxy_impair_"
+        counters = {
+            "submitted": CounterMetricFamily(prefix + "datagrams_submitted", "datagrams offered to the emulated link", labels=["direction"]),
+            "sent": CounterMetricFamily(prefix + "datagrams_sent", "datagrams put on the air (faced the loss model)", labels=["direction"]),
+            "delivered": CounterMetricFamily(prefix + "datagrams_delivered", "datagrams delivered, duplicates included", labels=["direction"]),
+            "duplicates": CounterMetricFamily(prefix + "datagrams_duplicated", "extra copies delivered", labels=["direction"]),
+        }
+        dropped = CounterMetricFamily(prefix + "datagrams_dropped", "datagrams dropped, by reason", labels=["direction", "reason"])
+        loss = GaugeMetricFamily(prefix + "loss_ratio", "measured loss ratio of the loss model", labels=["direction"])
+        burst = GaugeMetricFamily(prefix + "mean_burst_packets", "measured mean run of consecutive losses", labels=["direction"])
+        queued = GaugeMetricFamily(prefix + "queue_datagrams", "datagrams in the modem buffer", labels=["direction"])
+        in_flight = GaugeMetricFamily(prefix + "in_flight_datagrams", "datagrams delayed and not yet due", labels=["direction"])
+        for direction, stats in self.relay.stats().items():
+            for name, family in counters.items():
+                family.add_metric([direction], getattr(stats, name))
+            for reason, count in stats.drops.items():
+                dropped.add_metric([direction, reason], count)
+            for reason in SHELL_DROP_REASONS:
+                dropped.add_metric([direction, reason], self.relay.shell_drops[(direction, reason)])
+            loss.add_metric([direction], stats.measured_loss)
+            burst.add_metric([direction], stats.measured_mean_burst)
+            queued.add_metric([direction], stats.queued)
+            in_flight.add_metric([direction], stats.in_flight)
+        yield from counters.values()
+        yield from (dropped, loss, burst, queued, in_flight)
+
+
+def start_metrics_server(relay: UdpRelay, address: tuple[str, int]):
+    """Serve ``/metrics`` from a prometheus_client thread; returns (server, bound address)."""
+    from prometheus_client import CollectorRegistry, start_http_server
+
+    registry = CollectorRegistry()
+    registry.register(_RelayCollector(relay))
+    server, _thread = start_http_server(address[1], addr=address[0], registry=registry)
+    return server, server.server_address[:2]
