@@ -23,6 +23,17 @@ COMMANDS: dict[str, tuple[str, str]] = {
 }
 
 
+class _HelpFormatter(argparse.ArgumentDefaultsHelpFormatter):
+    """Shows a default only where it tells the reader something: not for flags (False), unset
+    options (None), empty lists, or help text that already names its default."""
+
+    def _get_help_string(self, action: argparse.Action) -> str:
+        text = action.help or ""
+        if "default" in text or action.default in (None, False, [], argparse.SUPPRESS):
+            return text
+        return super()._get_help_string(action)
+
+
 def build_parser(chosen: set[str] = frozenset()) -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="fecproxy",
@@ -35,7 +46,7 @@ def build_parser(chosen: set[str] = frozenset()) -> argparse.ArgumentParser:
             name,
             help=summary,
             description=summary,
-            formatter_class=argparse.ArgumentDefaultsHelpFormatter,
+            formatter_class=_HelpFormatter,
         )
         command.set_defaults(_module=module_name)
         if name in chosen:

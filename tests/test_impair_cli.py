@@ -14,7 +14,7 @@ import trio
 
 from fecproxy import cli
 from fecproxy.linkmodel.loss_models import GilbertElliott
-from fecproxy.commands.impair import config_from_args, parse_address
+from fecproxy.commands.impair import config_from_args, format_summary, parse_address
 from fecproxy.shell.relay import RelayConfig, run_relay
 from fecproxy.linkmodel.impairment import Blackout, ImpairmentConfigError, LinkImpairment
 
@@ -56,7 +56,7 @@ async def test_relay_carries_datagrams_and_replies():
         assert replies == {b"re:m%d" % i for i in range(50)}
         stats = relay.stats()
         assert stats["forward"].delivered == stats["return"].delivered == 50
-        assert "forward: submitted 50" in relay.summary()
+        assert "forward: submitted 50" in format_summary(relay)
         nursery.cancel_scope.cancel()
 
 
@@ -200,7 +200,7 @@ def test_timed_run_prints_summary(capsys):
     assert cli.main(["impair", "--listen", "127.0.0.1:0", "--to", "127.0.0.1:9", "--seconds", "0.2", "--loss", "0.05"]) == 0
     out = capsys.readouterr().out
     assert "listening on 127.0.0.1:" in out
-    assert "forward: submitted 0" in out and "return: submitted 0" in out and "measured loss" in out
+    assert "forward: submitted 0" in out and "return: submitted 0" in out and "no traffic went on the air, nothing measured" in out
 
 
 def test_help_states_the_convention(capsys):
@@ -265,3 +265,44 @@ def test_command_relays_serves_metrics_and_summarises_on_sigterm():
     assert "forward: submitted 20, on the air 20, delivered 20" in out
     assert "return: submitted 20, on the air 20, delivered 20" in out
     assert "drops: queue 0, blackout 0" in out
+
+
+def test_no_traffic_prints_no_nan_and_progress_lines(capsys):
+    argv = ["impair", "--listen", "127.0.0.1:0", "--to", "127.0.0.1:9", "--seconds", "0.35", "--interval", "0.1"]
+    assert cli.main(argv) == 0
+    out = capsys.readouterr().out
+    assert "nan" not in out
+    assert "no traffic went on the air" in out
+    assert out.count("t=0s") + out.count("t=1s") >= 2  # progress lines while it ran
+
+
+def test_jitter_above_delay_is_explained(capsys):
+    argv = ["impair", "--listen", "127.0.0.1:0", "--to", "127.0.0.1:9", "--seconds", "0.1", "--delay-ms", "5", "--jitter-ms", "20"]
+    assert cli.main(argv) == 0
+    assert "jitter above the delay is cut at 0 ms" in capsys.readouterr().out
+
+
+def test_return_loss_help_says_what_stays_on_the_return_path(capsys):
+    with pytest.raises(SystemExit):
+        cli.main(["impair", "--help"])
+    help_text = " ".join(capsys.readouterr().out.split())
+    assert "--return-loss 0 removes only the loss model on the return path" in help_text
+
+
+def test_ipv6_relay_counts_ipv6_headers_against_the_rate_cap():
+    config = RelayConfig(listen=("::1", 0), to=("::1", 9), forward=LinkImpairment(rate_bps=64_000))
+
+    async def start():
+        async with trio.open_nursery() as nursery:
+            relay = await nursery.start(run_relay, config)
+            headers = {direction: link.header_bytes for direction, link in relay.links.items()}
+            nursery.cancel_scope.cancel()
+        return headers
+
+    if not socket.has_ipv6:
+        pytest.skip("this machine has no IPv6 loopback")
+    try:
+        headers = trio.run(start)
+    except OSError as error:  # ::1 configured off on this host
+        pytest.skip(f"IPv6 loopback unusable here: {error}")
+    assert headers == {"forward": 48, "return": 48}  # RFC 8200 §3 (40) + RFC 768 (8)

@@ -10,7 +10,8 @@ import pytest
 from fecproxy.linkmodel import impairment
 from fecproxy.linkmodel.loss_models import GilbertElliott
 from fecproxy.linkmodel.impairment import (
-    WIRE_OVERHEAD_BYTES,
+    IPV4_UDP_HEADER_BYTES,
+    IPV6_UDP_HEADER_BYTES,
     Blackout,
     ImpairedLink,
     ImpairmentConfigError,
@@ -114,8 +115,16 @@ def test_bit_rate_cap_counts_headers():
     link = ImpairedLink(LinkImpairment(rate_bps=64_000, queue_packets=10))
     link.submit(bytes(172), now=0.0)
     # (172 + 28) bytes × 8 / 64 kbit/s = 25 ms
-    assert link.next_deadline() == pytest.approx((172 + WIRE_OVERHEAD_BYTES) * 8 / 64_000)
-    assert WIRE_OVERHEAD_BYTES == 20 + 8  # IPv4 header (RFC 791) + UDP header (RFC 768)
+    assert link.next_deadline() == pytest.approx((172 + IPV4_UDP_HEADER_BYTES) * 8 / 64_000)
+    assert IPV4_UDP_HEADER_BYTES == 20 + 8  # IPv4 header without options (RFC 791 §3.1) + UDP header (RFC 768)
+
+
+def test_bit_rate_cap_counts_ipv6_headers():
+    link = ImpairedLink(LinkImpairment(rate_bps=64_000, queue_packets=10), header_bytes=IPV6_UDP_HEADER_BYTES)
+    link.submit(bytes(152), now=0.0)
+    # (152 + 48) bytes × 8 / 64 kbit/s = 25 ms
+    assert link.next_deadline() == pytest.approx(0.025)
+    assert IPV6_UDP_HEADER_BYTES == 40 + 8  # IPv6 fixed header (RFC 8200 §3) + UDP header (RFC 768)
 
 
 def test_full_buffer_tail_drops_and_recovers():

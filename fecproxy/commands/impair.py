@@ -18,7 +18,13 @@ import trio
 
 from fecproxy.linkmodel.loss_models import ChannelConfigError, channel_from_figures
 from fecproxy.linkmodel.impairment import Blackout, ImpairmentConfigError, LinkImpairment
-from fecproxy.shell.relay import DEFAULT_SEED, RelayConfig, RelayError, UdpRelay, start_metrics_server
+from fecproxy.config import addresses as config_addresses
+from fecproxy.config.addresses import format_sockaddr
+from fecproxy.shell.relay import DEFAULT_SEED, SHELL_DROP_REASONS, RelayConfig, RelayError, UdpRelay, start_metrics_server
+
+#: A progress line every 10 s: often enough to see a blackout or a rate cap bite, rare enough
+#: to leave the terminal readable for hours (common practice, no source).
+DEFAULT_PROGRESS_INTERVAL_S = 10.0
 
 CONVENTION = (
     "Loss model (Gilbert 1960; Elliott 1963): a two-state Markov chain advances once per packet; "
@@ -30,31 +36,66 @@ EPILOG = (
     "Directions: forward = datagrams from clients of --listen toward --to; return = replies from --to "
     "back to the address that last sent to --listen. The plain options impair the forward direction "
     "and, unless a --return-* option overrides them one by one, the return direction too (a radio "
-    "channel is usually alike both ways); give --return-loss 0 for a clean return path. "
+    "channel is usually alike both ways). --return-loss 0 removes only the loss model on the return "
+    "path: delay, jitter, duplication, rate cap and blackouts still apply there as given for the forward "
+    "direction, unless their own --return-* options (e.g. --return-delay-ms 0) change them. "
     + CONVENTION
     + " Order on the link: modem buffer and rate cap (tail drop when full), blackout, loss model, "
     "duplication, delay ± jitter (uniform). Blackout syntax: DURATION/PERIOD[@OFFSET], e.g. 3s/60s "
     "(first outage at 60 s) or 500ms/10s@2s. A summary with measured loss and mean burst per "
-    "direction is printed at exit (SIGINT, SIGTERM or --seconds)."
+    "direction is printed at exit (SIGINT, SIGTERM or --seconds), and a progress line every --interval "
+    "seconds while it runs."
 )
 
 
-def parse_address(text: str) -> tuple[str, int]:
-    """'HOST:PORT' or '[V6]:PORT' → (host, port)."""
-    text = text.strip()
-    if text.startswith("["):
-        host, sep, port = text[1:].partition("]:")
-    else:
-        host, sep, port = text.rpartition(":")
-    if not sep or not host:
-        raise ImpairmentConfigError(f"address must be HOST:PORT (or [IPv6]:PORT), got {text!r}")
+def parse_address(text: str, option: str = "address") -> tuple[str, int]:
+    """'HOST:PORT' or '[V6]:PORT' → (host, port), parsed by the config layer's one parser."""
     try:
-        number = int(port)
-    except ValueError:
-        raise ImpairmentConfigError(f"port must be a number, got {port!r} in {text!r}") from None
-    if not 0 <= number <= 65535:
-        raise ImpairmentConfigError(f"port must be in 0..65535, got {number} in {text!r}")
-    return host, number
+        address = config_addresses.parse_address(text, allow_port_zero=True)
+    except config_addresses.AddressError as error:
+        raise ImpairmentConfigError(f"{option} {text!r} {error}; expected HOST:PORT (or [IPv6]:PORT)") from None
+    return address.host, address.port
+
+
+def format_summary(relay: UdpRelay) -> str:
+    """Per direction: what went through, the measured loss beside the configured one, drops."""
+    lines = []
+    configured = {"forward": relay.config.forward, "return": relay.config.back}
+    for direction, stats in relay.stats().items():
+        loss = configured[direction].loss
+        shell = {reason: relay.shell_drops[(direction, reason)] for reason in SHELL_DROP_REASONS}
+        if stats.sent:
+            measured = (
+                f"measured loss {stats.measured_loss:.4g} (configured {loss.average_loss:.4g}), "
+                f"mean burst {_burst_text(stats.measured_mean_burst, stats.lost)} (configured {loss.mean_burst:.4g})"
+            )
+        else:
+            measured = "no traffic went on the air, nothing measured"
+        lines.append(
+            f"{direction}: submitted {stats.submitted}, on the air {stats.sent}, delivered {stats.delivered} "
+            f"(duplicates {stats.duplicates})\n"
+            f"  loss model: lost {stats.lost}, {measured}\n"
+            f"  drops: queue {stats.queue_drops}, blackout {stats.blackout_drops}, in-flight limit {stats.in_flight_drops}, "
+            f"no client {shell['no_client']}, send errors {shell['send_error']}"
+        )
+    return "\n".join(lines)
+
+
+def _burst_text(value: float, lost: int) -> str:
+    return f"{value:.4g}" if lost else "- (nothing lost)"
+
+
+def format_progress(elapsed: float, relay: UdpRelay, previous: dict) -> str:
+    """One line per interval while the relay runs: what each direction carried and lost since the
+    last line (``previous`` holds the last counters and is updated)."""
+    parts = [f"t={elapsed:.0f}s"]
+    for direction, stats in relay.stats().items():
+        sent0, lost0, delivered0 = previous.get(direction, (0, 0, 0))
+        sent, lost = stats.sent - sent0, stats.lost - lost0
+        share = f"{lost / sent:.2%}" if sent else "-"
+        parts.append(f"{direction}: on the air {sent}, lost {lost} ({share}), delivered {stats.delivered - delivered0}")
+        previous[direction] = (stats.sent, stats.lost, stats.delivered)
+    return "  ".join(parts)
 
 
 # -- command line ----------------------------------------------------------------------------------------
@@ -85,6 +126,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--bind-out", metavar="HOST:PORT", default=argparse.SUPPRESS, help="local address of the socket toward --to (default: any)")
     parser.add_argument("--seed", type=int, default=DEFAULT_SEED, help="seed for every random choice; same seed and traffic, same losses")
     parser.add_argument("--seconds", type=float, default=argparse.SUPPRESS, help="stop after this many seconds (default: run until SIGINT/SIGTERM)")
+    parser.add_argument("--interval", type=float, default=DEFAULT_PROGRESS_INTERVAL_S, metavar="SECONDS",
+                        help="print a progress line this often while running; 0 = only the summary at exit")
     parser.add_argument("--metrics", metavar="HOST:PORT", default=argparse.SUPPRESS, help="serve Prometheus metrics (fecproxy_impair_*) at http://HOST:PORT/metrics")
     for prefix, title in (("", "forward direction (and return, unless overridden)"), ("return-", "return direction overrides")):
         group = parser.add_argument_group(title)
@@ -147,21 +190,16 @@ def config_from_args(args: argparse.Namespace) -> RelayConfig:
     back = _link_from_args(args, "return-", forward)
     bind_out = getattr(args, "bind_out", None)
     return RelayConfig(
-        listen=parse_address(args.listen),
-        to=parse_address(args.to),
+        listen=parse_address(args.listen, "--listen"),
+        to=parse_address(args.to, "--to"),
         forward=forward,
         back=back,
         seed=args.seed,
-        bind_out=None if bind_out is None else parse_address(bind_out),
+        bind_out=None if bind_out is None else parse_address(bind_out, "--bind-out"),
     )
 
 
-def _fmt(address) -> str:
-    host, port = address[0], address[1]
-    return f"[{host}]:{port}" if ":" in host else f"{host}:{port}"
-
-
-async def _serve(config: RelayConfig, seconds: float | None, metrics: tuple[str, int] | None) -> int:
+async def _serve(config: RelayConfig, seconds: float | None, metrics: tuple[str, int] | None, interval: float = 0.0) -> int:
     relay = UdpRelay(config)
     server = None
     failures: list[BaseException] = []
@@ -169,12 +207,12 @@ async def _serve(config: RelayConfig, seconds: float | None, metrics: tuple[str,
         try:
             async with trio.open_nursery() as nursery:
                 await nursery.start(relay.run)
-                print(f"fecproxy impair: listening on {_fmt(relay.listen_address)}, relaying to {_fmt(config.to)}", flush=True)
+                print(f"fecproxy impair: listening on {format_sockaddr(relay.listen_address)}, relaying to {format_sockaddr(config.to)}", flush=True)
                 print(f"forward: {config.forward.describe()}", flush=True)
                 print(f"return: {config.back.describe()}", flush=True)
                 if metrics is not None:
                     server, bound = start_metrics_server(relay, metrics)
-                    print(f"metrics: http://{_fmt(bound)}/metrics", flush=True)
+                    print(f"metrics: http://{format_sockaddr(bound)}/metrics", flush=True)
                 if seconds is not None:
                     nursery.cancel_scope.deadline = trio.current_time() + seconds
 
@@ -184,6 +222,8 @@ async def _serve(config: RelayConfig, seconds: float | None, metrics: tuple[str,
                         return
 
                 nursery.start_soon(stop_on_signal)
+                if interval > 0:
+                    nursery.start_soon(_progress_loop, relay, interval)
         except* (RelayError, OSError) as group:
             failures.extend(group.exceptions)
         finally:
@@ -194,22 +234,33 @@ async def _serve(config: RelayConfig, seconds: float | None, metrics: tuple[str,
         for exc in failures:
             print(f"fecproxy impair: {exc}", file=sys.stderr)
         return 2
-    print(relay.summary(), flush=True)
+    print(format_summary(relay), flush=True)
     return 0
+
+
+async def _progress_loop(relay: UdpRelay, interval: float) -> None:
+    started = trio.current_time()
+    previous: dict = {}
+    while True:
+        await trio.sleep(interval)
+        print(format_progress(trio.current_time() - started, relay, previous), flush=True)
 
 
 def main(args: argparse.Namespace) -> int:
     try:
         config = config_from_args(args)
         metrics_text = getattr(args, "metrics", None)
-        metrics = None if metrics_text is None else parse_address(metrics_text)
+        metrics = None if metrics_text is None else parse_address(metrics_text, "--metrics")
         seconds = getattr(args, "seconds", None)
         if seconds is not None and not (math.isfinite(seconds) and seconds > 0):
             raise ImpairmentConfigError(f"--seconds must be > 0, got {seconds!r}")
+        interval = getattr(args, "interval", DEFAULT_PROGRESS_INTERVAL_S)
+        if not (math.isfinite(interval) and interval >= 0):
+            raise ImpairmentConfigError(f"--interval must be ≥ 0 seconds (0 = no progress lines), got {interval!r}")
     except (ImpairmentConfigError, ChannelConfigError) as exc:
         print(f"fecproxy impair: {exc}", file=sys.stderr)
         return 2
-    return trio.run(_serve, config, seconds, metrics)
+    return trio.run(_serve, config, seconds, metrics, interval)
 
 
-__all__ = ["parse_address", "config_from_args", "add_arguments", "main"]
+__all__ = ["parse_address", "config_from_args", "format_summary", "add_arguments", "main"]

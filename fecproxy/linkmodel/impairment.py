@@ -32,9 +32,11 @@ from dataclasses import dataclass, field
 from fecproxy.linkmodel.estimator import LossEstimator
 from fecproxy.linkmodel.loss_models import GilbertElliott, make_channel
 
-#: Bytes of IPv4 + UDP header per datagram counted against ``rate_bps``: a radio carries them too
-#: (20 + 8, RFC 791 and RFC 768); IPv6 would be 48, a small error at typical payload sizes.
-WIRE_OVERHEAD_BYTES = 28
+#: Bytes of IP + UDP header per datagram counted against ``rate_bps``: a radio carries them too.
+#: IPv4: a 20-byte header without options (RFC 791 §3.1) + 8 bytes of UDP (RFC 768).
+IPV4_UDP_HEADER_BYTES = 28
+#: IPv6: the 40-byte fixed header (RFC 8200 §3) + 8 bytes of UDP (RFC 768).
+IPV6_UDP_HEADER_BYTES = 48
 #: Datagrams held in flight (delayed, not yet due) per direction.  Bounds memory when a fast
 #: sender meets a long delay: 20 000 × 1500 B ≈ 30 MB, and 20 000 packets in flight is 20 kpps at
 #: one second of delay — far above the data radios and satellite terminals this emulates.
@@ -140,11 +142,12 @@ class LinkImpairment:
     def rate_capped(self) -> bool:
         return self.rate_bps is not None or self.rate_pps is not None
 
-    def transmit_time(self, size: int) -> float:
-        """Seconds the transmitter is busy with one datagram of ``size`` payload bytes."""
+    def transmit_time(self, size: int, header_bytes: int = IPV4_UDP_HEADER_BYTES) -> float:
+        """Seconds the transmitter is busy with one datagram of ``size`` payload bytes, carried
+        with ``header_bytes`` of IP and UDP header (IPv4 or IPv6, see the constants above)."""
         seconds = 0.0
         if self.rate_bps is not None:
-            seconds = (size + WIRE_OVERHEAD_BYTES) * 8 / self.rate_bps
+            seconds = (size + header_bytes) * 8 / self.rate_bps
         if self.rate_pps is not None:
             seconds = max(seconds, 1.0 / self.rate_pps)
         return seconds
@@ -152,7 +155,11 @@ class LinkImpairment:
     def describe(self) -> str:
         parts = [self.loss.describe() if self.loss.average_loss > 0 else "no loss"]
         if self.delay or self.jitter:
-            parts.append(f"delay {self.delay * 1000:g}±{self.jitter * 1000:g} ms" + (" reordering" if self.reorder else ""))
+            text = f"delay {self.delay * 1000:g}±{self.jitter * 1000:g} ms" + (" reordering" if self.reorder else "")
+            if self.jitter > self.delay:
+                # Nothing arrives before it was sent: draws below zero delay are cut to zero.
+                text += " (jitter above the delay is cut at 0 ms, so the mean delay is above the set delay)"
+            parts.append(text)
         if self.duplicate:
             parts.append(f"duplicate {self.duplicate:g}")
         if self.rate_bps is not None:
@@ -198,8 +205,11 @@ class LinkStats:
 class ImpairedLink:
     """One direction of the emulated link.  Deterministic for a given seed and call sequence."""
 
-    def __init__(self, config: LinkImpairment, *, seed: int | str = 0, start: float = 0.0) -> None:
+    def __init__(
+        self, config: LinkImpairment, *, seed: int | str = 0, start: float = 0.0, header_bytes: int = IPV4_UDP_HEADER_BYTES
+    ) -> None:
         self.config = config
+        self.header_bytes = header_bytes  # IP + UDP bytes the rate cap counts per datagram
         self.start = start  # the blackout schedule counts from here
         self._rng = random.Random(f"{seed}:link")
         self._channel = make_channel(config.loss, f"{seed}:loss")
@@ -229,7 +239,7 @@ class ImpairedLink:
                 self._queue_drops += 1
                 return
             begin = max(now, self._busy_until)
-            end = begin + config.transmit_time(len(datagram))
+            end = begin + config.transmit_time(len(datagram), self.header_bytes)
             self._busy_until = end
             buffer.append(end)
         else:

@@ -19,7 +19,7 @@ from dataclasses import dataclass, field
 
 import trio
 
-from fecproxy.linkmodel.impairment import ImpairedLink, LinkImpairment, LinkStats
+from fecproxy.linkmodel.impairment import IPV4_UDP_HEADER_BYTES, IPV6_UDP_HEADER_BYTES, ImpairedLink, LinkImpairment, LinkStats
 
 #: Receive buffer: the largest UDP payload (65 535 − 8 header bytes), so nothing is truncated.
 MAX_DATAGRAM_BYTES = 65_535
@@ -89,9 +89,14 @@ class UdpRelay:
             self.listen_address = listen_sock.getsockname()
             self.out_address = out_sock.getsockname()
             start = trio.current_time()
+            # The rate cap counts the IP header each datagram really carries on its way out.
+            headers = {
+                direction: IPV6_UDP_HEADER_BYTES if sock.family == stdlib_socket.AF_INET6 else IPV4_UDP_HEADER_BYTES
+                for direction, sock in (("forward", out_sock), ("return", listen_sock))
+            }
             self.links = {
-                "forward": ImpairedLink(config.forward, seed=f"{config.seed}:forward", start=start),
-                "return": ImpairedLink(config.back, seed=f"{config.seed}:return", start=start),
+                "forward": ImpairedLink(config.forward, seed=f"{config.seed}:forward", start=start, header_bytes=headers["forward"]),
+                "return": ImpairedLink(config.back, seed=f"{config.seed}:return", start=start, header_bytes=headers["return"]),
             }
             task_status.started(self)
             async with trio.open_nursery() as nursery:
@@ -147,22 +152,6 @@ class UdpRelay:
     def stats(self) -> dict[str, LinkStats]:
         """Per-direction link counters (safe to call from another thread: it only reads)."""
         return {direction: link.stats() for direction, link in self.links.items()}
-
-    def summary(self) -> str:
-        lines = []
-        configured = {"forward": self.config.forward, "return": self.config.back}
-        for direction, stats in self.stats().items():
-            loss = configured[direction].loss
-            shell = {reason: self.shell_drops[(direction, reason)] for reason in SHELL_DROP_REASONS}
-            lines.append(
-                f"{direction}: submitted {stats.submitted}, on the air {stats.sent}, delivered {stats.delivered} "
-                f"(duplicates {stats.duplicates})\n"
-                f"  loss model: lost {stats.lost}, measured loss {stats.measured_loss:.4g} (configured {loss.average_loss:.4g}), "
-                f"mean burst {stats.measured_mean_burst:.4g} (configured {loss.mean_burst:.4g})\n"
-                f"  drops: queue {stats.queue_drops}, blackout {stats.blackout_drops}, in-flight limit {stats.in_flight_drops}, "
-                f"no client {shell['no_client']}, send errors {shell['send_error']}"
-            )
-        return "\n".join(lines)
 
 
 async def run_relay(config: RelayConfig, *, task_status=trio.TASK_STATUS_IGNORED) -> None:
