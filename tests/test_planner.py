@@ -397,6 +397,7 @@ def test_plan_reports_no_solution_with_exit_1(capsys):
         (["--loss", "0.1", "--k", "16"], "both --k and --m"),
         (["--loss", "0.1", "--k", "250", "--m", "10"], "255"),
         (["--loss", "0.1", "--rate", "5", "--k-values", "x"], "not a list"),
+        (["--loss", "0.1", "--rate", "5", "--k-values", "300"], "k = 300 is out of range"),
         (["--from-metrics", "ftp://x", "--rate", "5"], "http"),
     ],
 )
@@ -427,13 +428,23 @@ fecproxy_other_total 12
 """
 
 
+EMPTY_RECEIVER_PAGE = """\
+# TYPE fecproxy_link_loss_ratio gauge
+fecproxy_link_loss_ratio NaN
+# TYPE fecproxy_link_mean_burst_packets gauge
+fecproxy_link_mean_burst_packets NaN
+"""
+
+
 @pytest.fixture
-def metrics_url():
-    """A tiny HTTP server on 127.0.0.1 serving a canned Prometheus page."""
+def metrics_url(request):
+    """A tiny HTTP server on 127.0.0.1 serving a canned Prometheus page (CANNED_PAGE unless the
+    test is parametrized indirectly with another page)."""
+    page = getattr(request, "param", CANNED_PAGE)
 
     class Handler(http.server.BaseHTTPRequestHandler):
         def do_GET(self):  # noqa: N802 (http.server naming)
-            body = CANNED_PAGE.encode()
+            body = page.encode()
             self.send_response(200 if self.path == "/metrics" else 404)
             self.send_header("Content-Type", "text/plain; version=0.0.4")
             self.send_header("Content-Length", str(len(body)))
@@ -466,6 +477,12 @@ def test_from_metrics(capsys, metrics_url):
 def test_from_metrics_needs_a_selector_when_ambiguous(capsys, metrics_url):
     code, _, err = run_plan(capsys, "--from-metrics", metrics_url, "--rate", "20")
     assert code == 2 and "--metrics-select" in err
+
+
+@pytest.mark.parametrize("metrics_url", [EMPTY_RECEIVER_PAGE], indirect=True)
+def test_from_metrics_before_any_traffic_says_so(capsys, metrics_url):
+    code, _, err = run_plan(capsys, "--from-metrics", metrics_url, "--rate", "20")
+    assert code == 2 and "no traffic measured yet" in err
 
 
 def test_from_metrics_unreachable(capsys):

@@ -170,7 +170,10 @@ def parse_prometheus_text(page: str) -> list[tuple[str, dict[str, str], float]]:
 def _pick(samples, name: str, select: dict[str, str]) -> float:
     found = [(labels, value) for n, labels, value in samples if n == name and all(labels.get(k) == v for k, v in select.items())]
     if not found:
-        raise MetricsError(f"the metrics page has no {name}" + (f" with {select}" if select else ""))
+        raise MetricsError(
+            f"the metrics page has no {name}" + (f" with {select}" if select else "")
+            + "; is this the metrics page of a fecproxy daemon that receives from the link?"
+        )
     if len(found) > 1:
         sets = "; ".join(",".join(f"{k}={v}" for k, v in sorted(labels.items())) or "(none)" for labels, _ in found)
         raise MetricsError(f"{len(found)} samples of {name} (labels: {sets}); choose one with --metrics-select LABEL=VALUE")
@@ -197,8 +200,14 @@ def link_from_metrics(url: str, select: list[str], timeout: float = DEFAULT_METR
     samples = parse_prometheus_text(body.decode("utf-8", errors="replace"))
     loss = _pick(samples, LINK_LOSS_GAUGE, wanted)
     burst = _pick(samples, LINK_BURST_GAUGE, wanted)
-    if not (math.isfinite(loss) and math.isfinite(burst)):
-        raise MetricsError(f"the receiver's estimate is not ready yet (loss {loss}, burst {burst}): it has seen too few packets")
+    if not math.isfinite(loss):
+        raise MetricsError(
+            f"no traffic measured yet at {url}: the receiver has no link estimate until blocks arrive; "
+            "run traffic through the pair and try again"
+        )
+    if not math.isfinite(burst):
+        # Loss measured but no burst yet: only possible with nothing lost, where any burst fits.
+        burst = 1.0
     return loss, burst
 
 

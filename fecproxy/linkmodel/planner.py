@@ -233,7 +233,11 @@ class PlanRequest:
         if not self.k_values or not self.depths:
             raise PlanError("need at least one k and one interleave depth to consider")
         for k in self.k_values:
-            _check_code(k, 0)
+            if not 1 <= k < MAX_BLOCK_PACKETS:
+                raise PlanError(
+                    f"k = {k} is out of range: k must be 1..{MAX_BLOCK_PACKETS - 1}, since a block of k source "
+                    f"and at least one repair packet has at most {MAX_BLOCK_PACKETS} packets (RFC 5510 §8.2, GF(2^8))"
+                )
         for depth in self.depths:
             _check_code(1, 0, depth)
         if self.flush is not None and not (math.isfinite(self.flush) and self.flush > 0):
