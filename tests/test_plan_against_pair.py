@@ -35,7 +35,7 @@ import pytest
 from fecproxy.linkmodel.loss_models import GilbertElliott
 from fecproxy.linkmodel.planner import block_loss_distribution, evaluate
 from fecproxy.commands.plan import parse_prometheus_text
-from test_online_estimate import invisible_share  # closed form, checked there against enumeration
+from test_receiver_loss_estimate import invisible_share  # closed form, checked there against enumeration
 
 LOOPBACK = "127.0.0.1"
 START_TIMEOUT = 15.0  # seconds for a process to start and say where it listens (shared 2-core box)

@@ -34,7 +34,7 @@ import yaml
 from prometheus_client.parser import text_string_to_metric_families
 from scipy.stats import binom, hypergeom
 
-from lossy_relay import LossyRelay, drop_indices, iid_loss, no_loss
+from support.lossy_relay import LossyRelay, drop_indices, iid_loss, no_loss
 
 LOOPBACK = "127.0.0.1"
 #: Upper bound for a daemon to start (imports numpy, trio, prometheus-client) on a busy 2-core box.
