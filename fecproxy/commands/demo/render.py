@@ -18,7 +18,7 @@ from fecproxy.config.addresses import format_sockaddr
 from fecproxy.linkmodel.loss_models import GilbertElliott
 from fecproxy.linkmodel.planner import evaluate
 
-#: Header text is wrapped to fit an 80-column terminal with room to spare.
+#: Header text is wrapped at this width: it fits a 100-column terminal.
 HEADER_WIDTH = 96
 #: Without a terminal the live view prints a plain line this often, so a captured log stays short.
 PLAIN_INTERVAL_S = 5.0
