@@ -34,7 +34,7 @@ from support.daemon_pair import (
 from support.lossy_relay import drop_indices, iid_loss
 from support.processes import run_to_exit
 
-#: Exit bound asked by the issue after SIGTERM: "exit 0 within a second".
+#: Exit bound required of a daemon after SIGTERM: "exit 0 within a second".
 SIGTERM_EXIT_SECONDS = 1.0
 #: A flush interval far longer than any test's traffic burst: blocks close only when full, so
 #: link packet i of the forward direction is packet i % (k + m) of block i // (k + m).
@@ -47,7 +47,7 @@ NEVER_FLUSH_MS = 30_000
 
 def parse_link_header(data: bytes) -> tuple[int, int, int, int]:
     """(type, session, SBN, ESI) of a link packet, read from the wire layout documented in
-    fecproxy/packet.py (version|type, flags, session 32, SBN 24 | ESI 8) without using its code."""
+    fecproxy/protocol/wire.py (version|type, flags, session 32, SBN 24 | ESI 8) without using its code."""
     version_type, _flags, session, sbn_esi = struct.unpack_from(">BBII", data)
     return version_type & 0x0F, session, sbn_esi >> 8, sbn_esi & 0xFF
 
