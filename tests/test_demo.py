@@ -18,11 +18,13 @@ import numpy as np
 import pytest
 from scipy.stats import binom
 
-from fecproxy.commands import demo
+from fecproxy.commands.demo import render, traffic
+from fecproxy.commands.demo.tap import LinkTap
 from fecproxy.linkmodel.loss_models import GilbertElliott
 from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
 from fecproxy.linkmodel.impairment import ImpairedLink, LinkImpairment
 from fecproxy.linkmodel.planner import evaluate
+from fecproxy.protocol import wire
 
 REPO = Path(__file__).resolve().parent.parent
 ROW = re.compile(r"datagrams lost\s+(\d+) of (\d+) \(([\d.]+) %\)\s+(\d+) of (\d+) \(([\d.]+) %\)")
@@ -73,30 +75,30 @@ def test_bad_options_exit_2_with_a_message(capsys):
 
 
 def test_datagram_round_trip_and_every_single_byte_flip_is_caught():
-    data = demo.pack_datagram(demo.STREAM_CAMERA, 41, 12.5, b"still image bytes")
-    assert demo.unpack_datagram(data) == demo.AppDatagram(demo.STREAM_CAMERA, 41, 12.5, b"still image bytes")
-    assert demo.peek_id(data) == (demo.STREAM_CAMERA, 41)
+    data = traffic.pack_datagram(traffic.STREAM_CAMERA, 41, 12.5, b"still image bytes")
+    assert traffic.unpack_datagram(data) == traffic.AppDatagram(traffic.STREAM_CAMERA, 41, 12.5, b"still image bytes")
+    assert traffic.peek_id(data) == (traffic.STREAM_CAMERA, 41)
     for position in range(len(data)):
         damaged = bytearray(data)
         damaged[position] ^= 0x01
-        assert demo.unpack_datagram(bytes(damaged)) is None
-    assert demo.unpack_datagram(data[:-1]) is None
-    assert demo.unpack_datagram(b"") is None
-    assert demo.unpack_datagram(demo.pack_datagram(99, 0, 0.0, b"")) is None  # unknown stream
+        assert traffic.unpack_datagram(bytes(damaged)) is None
+    assert traffic.unpack_datagram(data[:-1]) is None
+    assert traffic.unpack_datagram(b"") is None
+    assert traffic.unpack_datagram(traffic.pack_datagram(99, 0, 0.0, b"")) is None  # unknown stream
 
 
 def test_camera_chunks_fit_the_datagram_size_and_reassemble():
     image = bytes(range(256)) * 300  # 76 800 bytes
-    chunks = demo.camera_chunks(7, image)
-    sizes = [len(demo.pack_datagram(demo.STREAM_CAMERA, i, 0.0, c)) for i, c in enumerate(chunks)]
-    assert max(sizes) == demo.CAMERA_CHUNK_BYTES
-    head = demo.CAMERA_CHUNK_HEADER
+    chunks = traffic.camera_chunks(7, image)
+    sizes = [len(traffic.pack_datagram(traffic.STREAM_CAMERA, i, 0.0, c)) for i, c in enumerate(chunks)]
+    assert max(sizes) == traffic.CAMERA_CHUNK_BYTES
+    head = traffic.CAMERA_CHUNK_HEADER
     assert [head.unpack_from(c) for c in chunks] == [(7, i, len(chunks)) for i in range(len(chunks))]
     assert b"".join(c[head.size :] for c in chunks) == image
 
 
 def test_seq_set_counts_distinct_and_reports_duplicates():
-    seen = demo.SeqSet()
+    seen = traffic.SeqSet()
     assert seen.add(0) and seen.add(9000) and not seen.add(9000)
     assert 9000 in seen and 1 not in seen and 10**7 not in seen
     assert seen.count == 2
@@ -109,11 +111,11 @@ def test_seq_set_counts_distinct_and_reports_duplicates():
 @pytest.mark.parametrize("q", [0, 1, 50, 99, 100])
 def test_percentile_is_the_nearest_rank_definition(values, q):
     # Nearest rank = Hyndman & Fan (1996) definition 1, numpy's method="inverted_cdf", as oracle.
-    assert demo.percentile(values, q) == np.percentile(values, q, method="inverted_cdf")
+    assert render.percentile(values, q) == np.percentile(values, q, method="inverted_cdf")
 
 
 def test_percentile_of_nothing_is_nan():
-    assert math.isnan(demo.percentile([], 50))
+    assert math.isnan(render.percentile([], 50))
 
 
 def test_predicted_residual_weights_blocks_by_their_datagrams():
@@ -127,26 +129,26 @@ def test_predicted_residual_weights_blocks_by_their_datagrams():
         return p * binom.sf(m - 1, k + m - 1, p)
 
     expected = sum(k * count * iid(k, m) for (k, m), count in blocks.items()) / sum(k * c for (k, _), c in blocks.items())
-    assert demo.predicted_residual(channel, blocks) == pytest.approx(expected, rel=1e-9)
+    assert render.predicted_residual(channel, blocks) == pytest.approx(expected, rel=1e-9)
     bursty = GilbertElliott.from_loss_burst(0.08, 3)
-    assert demo.predicted_residual(bursty, Counter({(32, 16): 4})) == evaluate(bursty, 32, 16).residual_loss
-    assert demo.predicted_residual(bursty, Counter({(5, 0): 1})) == pytest.approx(0.08)  # no repair: the link's loss
-    assert math.isnan(demo.predicted_residual(bursty, Counter()))
+    assert render.predicted_residual(bursty, Counter({(32, 16): 4})) == evaluate(bursty, 32, 16).residual_loss
+    assert render.predicted_residual(bursty, Counter({(5, 0): 1})) == pytest.approx(0.08)  # no repair: the link's loss
+    assert math.isnan(render.predicted_residual(bursty, Counter()))
 
 
 def test_formatting_helpers():
-    assert demo.fmt_percent(0.0801) == "8.01 %"
-    assert demo.fmt_percent(0.00042) == "0.042 %"
-    assert demo.fmt_percent(0) == "0 %"
-    assert demo.fmt_percent(math.nan) == "–"
-    assert demo.fmt_ms(0.5123) == "512 ms" and demo.fmt_ms(0.00123) == "1.2 ms" and demo.fmt_ms(0.0004) == "0.40 ms"
-    assert demo.fmt_bytes(512) == "512 B" and demo.fmt_bytes(61_500) == "61.5 kB" and demo.fmt_bytes(3.1e6) == "3.1 MB"
-    assert "no packets" in demo.describe_link(GilbertElliott.no_loss())
-    assert "independently" in demo.describe_link(GilbertElliott.bernoulli(0.05))
-    assert "mean burst 3 packets" in demo.describe_link(GilbertElliott.from_loss_burst(0.08, 3))
+    assert render.fmt_percent(0.0801) == "8.01 %"
+    assert render.fmt_percent(0.00042) == "0.042 %"
+    assert render.fmt_percent(0) == "0 %"
+    assert render.fmt_percent(math.nan) == "–"
+    assert render.fmt_ms(0.5123) == "512 ms" and render.fmt_ms(0.00123) == "1.2 ms" and render.fmt_ms(0.0004) == "0.40 ms"
+    assert render.fmt_bytes(512) == "512 B" and render.fmt_bytes(61_500) == "61.5 kB" and render.fmt_bytes(3.1e6) == "3.1 MB"
+    assert "no packets" in render.describe_link(GilbertElliott.no_loss())
+    assert "independently" in render.describe_link(GilbertElliott.bernoulli(0.05))
+    assert "mean burst 3 packets" in render.describe_link(GilbertElliott.from_loss_burst(0.08, 3))
 
 
-def _result(**changes) -> demo.DemoResult:
+def _result(**changes) -> render.DemoResult:
     fields = dict(
         seconds=20.0, seed=1, k=32, m=16, flush_ms=1000, channel=GilbertElliott.from_loss_burst(0.08, 3),
         sent=600, app_bytes=320_000, delivered=597, corrupted=0, duplicates=0, link_source_lost=48,
@@ -156,11 +158,11 @@ def _result(**changes) -> demo.DemoResult:
         receiver_lost=48, receiver_recovered=45, receiver_unrecovered=3, blocks=Counter({(20, 10): 20, (32, 16): 6}),
     )
     fields.update(changes)
-    return demo.DemoResult(**fields)
+    return render.DemoResult(**fields)
 
 
 def test_summary_puts_without_and_with_fec_side_by_side():
-    text = demo.format_summary(_result())
+    text = render.format_summary(_result())
     assert ROW.search(text).groups() == ("48", "600", "8.00", "3", "600", "0.50")
     assert re.search(r"camera stills complete\s+1 of 4\s+4 of 4", text)
     assert re.search(r"corrupted datagrams\s+–\s+0", text)
@@ -168,12 +170,12 @@ def test_summary_puts_without_and_with_fec_side_by_side():
     assert "p50 500 ms, p99 900 ms, max 900 ms (3 rebuilt)" in text
     assert "for the 26 blocks sent" in text
     assert "invented" in text
-    assert "ended early" in demo.format_summary(_result(interrupted=True))
-    assert "nothing needed rebuilding" in demo.format_summary(_result(rebuilt_delays=[]))
+    assert "ended early" in render.format_summary(_result(interrupted=True))
+    assert "nothing needed rebuilding" in render.format_summary(_result(rebuilt_delays=[]))
 
 
 def test_live_view_redraws_in_place_on_a_terminal_and_prints_plain_lines_otherwise():
-    snapshot = demo.LiveSnapshot(
+    snapshot = render.LiveSnapshot(
         elapsed=1.0, rate=31, link_packets=100, link_lost=8, source_sent=70, source_lost=6, recovered=6,
         unrecovered=0, delay_p50=0.0006, rebuilt_p50=0.4, acks=2,
     )
@@ -183,22 +185,22 @@ def test_live_view_redraws_in_place_on_a_terminal_and_prints_plain_lines_otherwi
             return True
 
     terminal = Terminal()
-    view = demo.LiveView(terminal, enabled=True)
+    view = render.LiveView(terminal, enabled=True)
     view.show(snapshot)
     view.show(snapshot)
-    lines = len(demo.format_live(snapshot))
+    lines = len(render.format_live(snapshot))
     assert terminal.getvalue().count(f"\x1b[{lines}F") == 1  # cursor back up before the redraw
     assert "link lost 8.00 % of packets, 6 of 70 datagrams" in terminal.getvalue()
 
     plain = io.StringIO()
-    view = demo.LiveView(plain, enabled=True)
+    view = render.LiveView(plain, enabled=True)
     for second in range(1, 12):
-        view.show(demo.LiveSnapshot(**{**snapshot.__dict__, "elapsed": float(second)}))
+        view.show(render.LiveSnapshot(**{**snapshot.__dict__, "elapsed": float(second)}))
     assert "\x1b" not in plain.getvalue()
     assert plain.getvalue().count("\n") == 3  # t = 1, 6, 11 s
 
     silent = io.StringIO()
-    demo.LiveView(silent, enabled=False).show(snapshot)
+    render.LiveView(silent, enabled=False).show(snapshot)
     assert silent.getvalue() == ""
 
 
@@ -209,11 +211,11 @@ def test_link_tap_counts_packets_blocks_and_which_datagrams_the_link_lost():
     settings = EncoderSettings(block_size=8, repair=4, flush_interval=0.05)
     encoder = BlockEncoder(settings, session=7)
     link = ImpairedLink(LinkImpairment(loss=GilbertElliott.from_loss_burst(0.2, 2)), seed=3)
-    tap = demo.LinkTap(link)
+    tap = LinkTap(link)
     now, delivered = 0.0, []
     for seq in range(100):
         now += 0.01
-        packets = encoder.send(demo.pack_datagram(demo.STREAM_TELEMETRY, seq, now, b"x" * 50), 0, now)
+        packets = encoder.send(traffic.pack_datagram(traffic.STREAM_TELEMETRY, seq, now, b"x" * 50), 0, now)
         packets += encoder.on_timer(now)
         for data in packets:
             link.submit(data, now)  # the tap sees it through the link's on_air hook
@@ -231,7 +233,7 @@ def test_link_tap_counts_packets_blocks_and_which_datagrams_the_link_lost():
     assert sum(k * n for (k, _), n in blocks.items()) == 100
     assert all(m == settings.repair_for(k) for k, m in blocks)
     arrived = {
-        demo.peek_id(data[demo.wire.SOURCE_HEADER_BYTES :]) for data in delivered if data[0] & 0x0F == demo.wire.PacketType.SOURCE
+        traffic.peek_id(data[wire.SOURCE_HEADER_BYTES :]) for data in delivered if data[0] & 0x0F == wire.PacketType.SOURCE
     }
-    assert tap.lost_ids == {(demo.STREAM_TELEMETRY, seq) for seq in range(100)} - arrived
+    assert tap.lost_ids == {(traffic.STREAM_TELEMETRY, seq) for seq in range(100)} - arrived
     assert tap.source_lost == len(tap.lost_ids)

@@ -18,15 +18,9 @@ from __future__ import annotations
 
 import json
 import math
-import queue
-import re
-import signal
 import socket
-import subprocess
-import sys
 import threading
 import time
-import urllib.request
 from pathlib import Path
 
 import numpy as np
@@ -34,82 +28,15 @@ import pytest
 
 from fecproxy.linkmodel.loss_models import GilbertElliott
 from fecproxy.linkmodel.planner import block_loss_distribution, evaluate
-from fecproxy.commands.plan import parse_prometheus_text
-from test_online_estimate import invisible_share  # closed form, checked there against enumeration
+from support.processes import LOOPBACK, Child, fecproxy, run_json, scrape
+from support.receiver_view import invisible_share  # closed form, checked in test_receiver_loss_estimate.py
 
-LOOPBACK = "127.0.0.1"
-START_TIMEOUT = 15.0  # seconds for a process to start and say where it listens (shared 2-core box)
 RATE = 800.0  # datagrams per second offered by the generator
 LINK_LOSS, LINK_BURST = 0.08, 2.0  # the emulated radio: 8 % loss in bursts of 2 on average
 SEED = 11
 Z = 4.0
 
 pytestmark = pytest.mark.slow
-
-
-# -- processes ---------------------------------------------------------------------------------------
-
-
-class Child:
-    """A child process whose stdout and stderr lines are collected by reader threads."""
-
-    def __init__(self, argv: list[str]):
-        self.argv = argv
-        self.proc = subprocess.Popen(argv, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, bufsize=1)
-        self.lines: queue.Queue[str] = queue.Queue()
-        self.seen: list[str] = []
-        for stream in (self.proc.stdout, self.proc.stderr):
-            threading.Thread(target=self._pump, args=(stream,), daemon=True).start()
-
-    def _pump(self, stream) -> None:
-        for line in stream:
-            self.lines.put(line.rstrip("\n"))
-
-    def wait_for(self, pattern: str, timeout: float = START_TIMEOUT) -> re.Match:
-        deadline = time.monotonic() + timeout
-        regex = re.compile(pattern)
-        while time.monotonic() < deadline:
-            try:
-                line = self.lines.get(timeout=0.1)
-            except queue.Empty:
-                if self.proc.poll() is not None:
-                    break
-                continue
-            self.seen.append(line)
-            match = regex.search(line)
-            if match:
-                return match
-        raise AssertionError(f"{self.argv[3:5]} did not print {pattern!r}; output: {self.seen[-20:]}")
-
-    def stop(self) -> None:
-        if self.proc.poll() is None:
-            self.proc.send_signal(signal.SIGTERM)
-            try:
-                self.proc.wait(timeout=5)
-            except subprocess.TimeoutExpired:
-                self.proc.kill()
-                self.proc.wait(timeout=5)
-
-
-def fecproxy(*args: str) -> list[str]:
-    return [sys.executable, "-m", "fecproxy", *args]
-
-
-def scrape(port: int) -> dict[str, float]:
-    """name{labels} → value from a Prometheus page on 127.0.0.1."""
-    with urllib.request.urlopen(f"http://{LOOPBACK}:{port}/metrics", timeout=5) as response:
-        page = response.read().decode()
-    out = {}
-    for name, labels, value in parse_prometheus_text(page):
-        key = name + ("{" + ",".join(f"{k}={v}" for k, v in sorted(labels.items())) + "}" if labels else "")
-        out[key] = value
-    return out
-
-
-def run_json(*args: str) -> dict:
-    done = subprocess.run(fecproxy(*args), capture_output=True, text=True, timeout=60)
-    assert done.returncode in (0, 1), done.stderr
-    return json.loads(done.stdout)
 
 
 # -- one run of the pair --------------------------------------------------------------------------------
@@ -284,10 +211,10 @@ def test_plan_from_metrics_reads_the_link(baseline, capsys):
     out = run_json("plan", "--from-metrics", url, "--rate", str(RATE), "--latency-ms", "100", "--json")
     loss, burst = out["channel"]["average_loss"], out["channel"]["mean_burst"]
     # The receiver's window holds the last LOSS_ESTIMATE_WINDOW (10 000) source positions, here
-    # every source the run sent but a few.  Bounds as in test_online_estimate.py: loss SE from the
+    # every source the run sent but a few.  Bounds as in test_receiver_loss_estimate.py: loss SE from the
     # chain's autocorrelation, burst SE from the Markov-chain MLE (Anderson & Goodman 1957, from
     # memory), widened by the known downward biases: chaining blocks over hidden repair positions
-    # and invisible block tails (both computed in test_online_estimate.py; ≤ 15 % for k=8, m=2).
+    # and invisible block tails (both computed in support/receiver_view.py; ≤ 15 % for k=8, m=2).
     samples = min(baseline["sent"], 10_000)
     lam = 1 - LINK.p - LINK.r
     loss_se = math.sqrt(LINK.stationary_bad * (1 - LINK.stationary_bad) * (1 + lam) / (1 - lam) / samples)

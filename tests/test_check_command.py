@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import subprocess
-import sys
 from pathlib import Path
 
 import pytest
@@ -12,6 +11,7 @@ import yaml
 from fecproxy import cli
 from fecproxy.commands.check import EXIT_INVALID, EXIT_UNREADABLE, EXIT_VALID
 from fecproxy.config import parse_config, parse_config_text
+from support.processes import run_to_exit
 
 ROOT = Path(__file__).resolve().parents[1]
 EXAMPLES = ROOT / "config"
@@ -136,13 +136,7 @@ def test_help_lists_the_options(capsys):
 
 
 def run_process(*argv: str) -> subprocess.CompletedProcess:
-    return subprocess.run(
-        [sys.executable, "-m", "fecproxy", "check", *argv],
-        capture_output=True,
-        text=True,
-        timeout=PROCESS_TIMEOUT_S,
-        cwd=ROOT,
-    )
+    return run_to_exit("check", *argv, timeout=PROCESS_TIMEOUT_S, cwd=ROOT)
 
 
 def test_process_accepts_the_example_sender():
