@@ -89,7 +89,7 @@ MAX_SECONDS = 3600.0
 MAX_TELEMETRY_RATE = 1000.0
 #: Prometheus' port registry lists 9464 for the OpenTelemetry/Prometheus exporter (from memory);
 #: it is what users of an exporter expect to scrape.
-DEFAULT_METRICS_PORT = 9464
+DEFAULT_METRICS_PORT = 11464  # fecproxy's example port, not an exporter's (README, "Metrics port")
 LOOPBACK = "127.0.0.1"
 #: Header text is wrapped to fit an 80-column terminal with room to spare.
 HEADER_WIDTH = 96
