@@ -91,6 +91,30 @@ def test_recording_rule_names_follow_level_metric_operations():
         assert rule["for"] and rule["annotations"]["action"].count("\n") == 0
 
 
+def test_grafana_dashboard_and_provisioning_are_well_formed():
+    # Grafana docs, "Provisioning": `apiVersion: 1`; dashboard providers with `type: file` and
+    # `options.path`; a dashboard JSON model carries `schemaVersion`.
+    provisioning = ROOT / "deploy" / "grafana" / "provisioning"
+    providers = yaml.safe_load((provisioning / "dashboards" / "fecproxy.yaml").read_text())
+    assert providers["apiVersion"] == 1
+    assert all(p["type"] == "file" and p["options"]["path"] for p in providers["providers"])
+    sources = yaml.safe_load((provisioning / "datasources" / "fecproxy.yaml").read_text())
+    assert sources["apiVersion"] == 1
+    uids = {source["uid"] for source in sources["datasources"]}
+    dashboard = json.loads(DASHBOARD.read_text())
+    assert isinstance(dashboard["schemaVersion"], int) and dashboard["uid"] and dashboard["title"]
+    ids = [panel["id"] for panel in dashboard["panels"]]
+    assert len(ids) == len(set(ids))
+    for panel in dashboard["panels"]:
+        assert panel["datasource"]["uid"] in uids and panel["targets"]
+        assert all(target["datasource"]["uid"] in uids and target["expr"] for target in panel["targets"])
+    exprs = " ".join(t["expr"] for panel in dashboard["panels"] for t in panel["targets"])
+    for needed in ("source_packets_lost_per_expected", "datagrams_unrecovered_per_expected", "datagrams_recovered",
+                   "repair_packets_sent_per", "repair_bytes_sent_per", "histogram_quantile", "packets_dropped",
+                   "fecproxy_flows", "fecproxy_link_loss_ratio", "fecproxy_link_mean_burst_packets", "fecproxy_info"):
+        assert needed in exprs, needed
+
+
 def free_port() -> int:
     with socket.socket() as probe:
         probe.bind((LOOPBACK, 0))
