@@ -23,8 +23,11 @@ from scipy.stats import binom, hypergeom
 from support.daemon_pair import (
     DRAIN_TIMEOUT,
     LOOPBACK,
+    REPAIR,
+    SOURCE,
     STARTUP_TIMEOUT,
     drain,
+    parse_link_header,
     receiver_config,
     send_paced,
     sender_config,
@@ -45,14 +48,6 @@ NEVER_FLUSH_MS = 30_000
 # --------------------------------------------------------------------------------------------
 
 
-def parse_link_header(data: bytes) -> tuple[int, int, int, int]:
-    """(type, session, SBN, ESI) of a link packet, read from the wire layout documented in
-    fecproxy/protocol/wire.py (version|type, flags, session 32, SBN 24 | ESI 8) without using its code."""
-    version_type, _flags, session, sbn_esi = struct.unpack_from(">BBII", data)
-    return version_type & 0x0F, session, sbn_esi >> 8, sbn_esi & 0xFF
-
-
-SOURCE, REPAIR = 0, 1
 
 
 def exact_residual(packets, k: int, m: int) -> tuple[int, int]:

@@ -81,6 +81,8 @@ class EncoderStats:
     repair_packets: int = 0
     blocks: int = 0
     short_blocks: int = 0
+    source_bytes: int = 0  # source packets' bytes on the link, headers included
+    repair_bytes: int = 0  # repair packets' bytes on the link, headers included
     dropped: dict[str, int] = field(default_factory=dict)
 
 
@@ -167,6 +169,7 @@ class BlockEncoder:
             )
         ]
         self.stats.source_packets += 1
+        self.stats.source_bytes += len(out[0])
         if full:
             out.extend(self._close())
         return out
@@ -189,7 +192,7 @@ class BlockEncoder:
         sources: list[bytes] = []
         pieces = [sources]  # source runs, each full block's (still empty) repair list between them
         deferred: list[_FullBlock] = []
-        sent = oversize = 0
+        sent = oversize = sent_bytes = 0
         try:
             for datagram, flow in items:
                 size = len(datagram)
@@ -205,6 +208,7 @@ class BlockEncoder:
                     symbol_len = size + prefix
                 count += 1
                 sent += 1
+                sent_bytes += size
                 if count < block_size:
                     sources.append(pack_source(_SOURCE_TYPE_BYTE, 0, session, (sbn << 8) | (count - 1), flow, previous_k) + datagram)
                     continue
@@ -230,6 +234,7 @@ class BlockEncoder:
             # so a receiver sees them as link loss and the repair still matches).
             self._count, self._symbol_len = count, symbol_len
             self.stats.source_packets += sent
+            self.stats.source_bytes += sent_bytes + sent * wire.SOURCE_HEADER_BYTES
             if oversize:
                 self.stats.dropped["oversize"] = self.stats.dropped.get("oversize", 0) + oversize
         if deferred:
@@ -324,6 +329,7 @@ class BlockEncoder:
         """Count the block just closed (k datagrams) and open the next one."""
         settings = self._settings
         self.stats.repair_packets += settings.repair_for(k)
+        self.stats.repair_bytes += settings.repair_for(k) * (wire.REPAIR_HEADER_BYTES + self._symbol_len)
         self.stats.blocks += 1
         if k < settings.block_size:
             self.stats.short_blocks += 1

@@ -73,6 +73,8 @@ class DaemonCollector:
 
         yield counter("fecproxy_source_packets_sent", "Source packets sent on the link.", enc.source_packets)
         yield counter("fecproxy_repair_packets_sent", "Repair packets sent on the link.", enc.repair_packets)
+        yield counter("fecproxy_source_bytes_sent", "Bytes of source packets sent on the link, headers included.", enc.source_bytes)
+        yield counter("fecproxy_repair_bytes_sent", "Bytes of repair packets sent on the link, headers included.", enc.repair_bytes)
         yield counter("fecproxy_blocks_sent", "Source blocks closed and protected.", enc.blocks)
         yield counter("fecproxy_short_blocks_sent", "Blocks closed by the flush timer before reaching k.", enc.short_blocks)
         received = CounterMetricFamily("fecproxy_link_packets_received", "Valid FEC packets received from the link.", labels=["kind"])

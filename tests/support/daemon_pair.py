@@ -356,3 +356,13 @@ def drain(pair: Pair, expected: int, timeout: float = DRAIN_TIMEOUT) -> None:
     assert wait_until(settled, timeout, interval=0.1), (
         f"server has {pair.server.count()} of {expected}; receiver log:\n{pair.receiver.log()}"
     )
+
+
+def parse_link_header(data: bytes) -> tuple[int, int, int, int]:
+    """(type, session, SBN, ESI) of a link packet, read from the wire layout documented in
+    fecproxy/protocol/wire.py (version|type, flags, session 32, SBN 24 | ESI 8) without using its code."""
+    version_type, _flags, session, sbn_esi = struct.unpack_from(">BBII", data)
+    return version_type & 0x0F, session, sbn_esi >> 8, sbn_esi & 0xFF
+
+
+SOURCE, REPAIR = 0, 1

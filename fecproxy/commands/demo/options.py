@@ -43,9 +43,9 @@ DEFAULT_SECONDS = 20.0
 MAX_SECONDS = 3600.0
 #: Above this the demo stops being a modest background load on a 2-core machine.
 MAX_TELEMETRY_RATE = 1000.0
-#: Prometheus' port registry lists 9464 for the OpenTelemetry/Prometheus exporter (from memory);
-#: it is what users of an exporter expect to scrape.
-DEFAULT_METRICS_PORT = 9464
+#: fecproxy's own example metrics port (README, "Metrics port"): 9464 is registered for another
+#: widely used exporter (from memory) and would clash with it on the same host.
+DEFAULT_METRICS_PORT = 11464
 LOOPBACK = "127.0.0.1"
 
 

@@ -1,0 +1,253 @@
+"""``fecproxy watch``: the dashboard's figures in a terminal, read from daemons' /metrics.
+
+For an operator on a site with no Prometheus or Grafana: point it at the sender's and the
+receiver's metrics URLs and it shows, refreshed every second, the link loss before recovery and
+the residual loss after it, recoveries per second, repair overhead in packets and bytes, recovery
+delay quantiles, drops by reason, flows, the online loss/burst estimate and the current code.
+Rates are differences between two reads (the first frame shows totals since each daemon
+started).  An endpoint that cannot be read is shown as DOWN with the error, and the rest go on.
+Rendering is a pure function of metrics text, so it is tested without a network.
+"""
+
+from __future__ import annotations
+
+import argparse
+import math
+import sys
+import time
+import urllib.error
+import urllib.request
+from dataclasses import dataclass, field
+
+from prometheus_client.parser import text_string_to_metric_families
+
+#: A read slower than this counts as a failing endpoint: a healthy daemon answers in
+#: milliseconds, and two endpoints must fit roughly within a few refresh periods.
+FETCH_TIMEOUT_S = 2.0
+#: Once a second, like the dashboard's short refresh: fast enough to see a burst, slow enough
+#: that the rates are not dominated by single packets.
+DEFAULT_INTERVAL_S = 1.0
+#: Bound on frames when a count is given (a runaway script loop should still end).
+MAX_COUNT = 1_000_000
+QUANTILES = (0.5, 0.9, 0.99)
+CLEAR_SCREEN = "\x1b[H\x1b[2J"
+
+Samples = dict[tuple[str, tuple[tuple[str, str], ...]], float]
+
+
+def parse_metrics(text: str) -> Samples:
+    """Every sample of a Prometheus text exposition, keyed by (name, sorted labels)."""
+    samples: Samples = {}
+    for family in text_string_to_metric_families(text):
+        for sample in family.samples:
+            samples[(sample.name, tuple(sorted(sample.labels.items())))] = float(sample.value)
+    return samples
+
+
+def _get(samples: Samples, name: str, **labels: str) -> float:
+    return samples.get((name, tuple(sorted(labels.items()))), 0.0)
+
+
+def _delta(now: Samples, before: Samples | None, name: str, **labels: str) -> float:
+    """Increase of a counter since the previous read (all of it on the first read; a counter
+    that went down means the daemon restarted: its new value is the increase)."""
+    value = _get(now, name, **labels)
+    if before is None:
+        return value
+    previous = _get(before, name, **labels)
+    return value - previous if value >= previous else value
+
+
+def _ratio(numerator: float, denominator: float) -> float | None:
+    return numerator / denominator if denominator > 0 else None
+
+
+def histogram_quantile(q: float, buckets: list[tuple[float, float]]) -> float | None:
+    """The q-quantile of cumulative (upper bound, count) buckets, interpolated linearly within
+    a bucket as Prometheus' histogram_quantile does; None without observations."""
+    buckets = sorted(buckets)
+    if not buckets or buckets[-1][1] <= 0:
+        return None
+    rank = q * buckets[-1][1]
+    lower_bound, lower_count = 0.0, 0.0
+    for bound, count in buckets:
+        if count >= rank:
+            if math.isinf(bound):
+                return lower_bound  # above the highest finite bucket: its bound, as Prometheus
+            if count == lower_count:
+                return bound
+            return lower_bound + (bound - lower_bound) * (rank - lower_count) / (count - lower_count)
+        lower_bound, lower_count = bound, count
+    return None
+
+
+@dataclass
+class Figures:
+    """What one endpoint shows: the dashboard's panels for one daemon."""
+
+    role: str = "?"
+    k: str = "?"
+    m: str = "?"
+    version: str = "?"
+    seconds: float | None = None  # the span the rates cover; None = totals since start
+    link_loss: float | None = None
+    residual_loss: float | None = None
+    lost: float = 0.0
+    expected: float = 0.0
+    recovered: float = 0.0
+    repair_packet_overhead: float | None = None
+    repair_byte_overhead: float | None = None
+    delay_quantiles: dict[float, float | None] = field(default_factory=dict)
+    drops: dict[str, float] = field(default_factory=dict)
+    flows: float = 0.0
+    estimate: tuple[float, float] | None = None
+
+
+def figures(now: Samples, before: Samples | None = None, seconds: float | None = None) -> Figures:
+    """The dashboard's figures from one read (totals) or two reads ``seconds`` apart (rates)."""
+    out = Figures(seconds=seconds if before is not None else None)
+    for (name, labels), _ in now.items():
+        if name == "fecproxy_info":
+            info = dict(labels)
+            out.role, out.k, out.m, out.version = (info.get(key, "?") for key in ("role", "k", "m", "version"))
+    lost = _delta(now, before, "fecproxy_source_packets_lost_total")
+    arrived = _delta(now, before, "fecproxy_link_packets_received_total", kind="source")
+    out.lost, out.expected = lost, lost + arrived
+    out.link_loss = _ratio(lost, lost + arrived)
+    out.residual_loss = _ratio(_delta(now, before, "fecproxy_datagrams_unrecovered_total"), lost + arrived)
+    out.recovered = _delta(now, before, "fecproxy_datagrams_recovered_total")
+    out.repair_packet_overhead = _ratio(
+        _delta(now, before, "fecproxy_repair_packets_sent_total"), _delta(now, before, "fecproxy_source_packets_sent_total")
+    )
+    out.repair_byte_overhead = _ratio(
+        _delta(now, before, "fecproxy_repair_bytes_sent_total"), _delta(now, before, "fecproxy_source_bytes_sent_total")
+    )
+    buckets = []
+    for (name, labels), _ in now.items():
+        if name == "fecproxy_recovery_delay_seconds_bucket":
+            le = dict(labels)["le"]
+            buckets.append((float(le), _delta(now, before, name, le=le)))
+    out.delay_quantiles = {q: histogram_quantile(q, buckets) for q in QUANTILES}
+    for (name, labels), _ in now.items():
+        if name == "fecproxy_packets_dropped_total":
+            reason = dict(labels).get("reason", "?")
+            count = _delta(now, before, name, reason=reason)
+            if count:
+                out.drops[reason] = count
+    out.flows = _get(now, "fecproxy_flows")
+    if ("fecproxy_link_loss_ratio", ()) in now:
+        out.estimate = (_get(now, "fecproxy_link_loss_ratio"), _get(now, "fecproxy_link_mean_burst_packets"))
+    return out
+
+
+def _percent(value: float | None) -> str:
+    return "—" if value is None else f"{100 * value:.3f} %"
+
+
+def _per(count: float, seconds: float | None) -> str:
+    return f"{count / seconds:.1f}/s" if seconds else f"{count:.0f} total"
+
+
+def _ms(value: float | None) -> str:
+    return "—" if value is None else f"{1000 * value:.1f} ms"
+
+
+def render_endpoint(url: str, view: Figures | str) -> list[str]:
+    """Lines for one endpoint; ``view`` is its figures, or the error text when it is down."""
+    if isinstance(view, str):
+        return [f"{url}", f"  DOWN: {view}"]
+    f = view
+    span = f"last {f.seconds:.1f} s" if f.seconds else "since start"
+    lines = [
+        f"{url}  role={f.role}  code k={f.k} m={f.m}  version {f.version}  ({span})",
+        f"  link loss (before recovery)  {_percent(f.link_loss):>12}   {f.lost:.0f} of {f.expected:.0f} source packets",
+        f"  residual loss (after)        {_percent(f.residual_loss):>12}",
+        f"  recovered                    {_per(f.recovered, f.seconds):>12}",
+        f"  repair overhead              {_percent(f.repair_packet_overhead):>12} packets   "
+        f"{_percent(f.repair_byte_overhead)} bytes",
+        "  recovery delay               "
+        + "   ".join(f"p{round(100 * q)} {_ms(value)}" for q, value in f.delay_quantiles.items()),
+        "  drops                        "
+        + (", ".join(f"{reason} {_per(count, f.seconds)}" for reason, count in sorted(f.drops.items())) or "none"),
+        f"  flows                        {f.flows:.0f}",
+        "  online estimate              "
+        + ("— (not a receiving side yet)" if f.estimate is None
+           else f"loss {_percent(f.estimate[0])}, mean burst {f.estimate[1]:.2f} packets"),
+    ]
+    return lines
+
+
+def render(views: list[tuple[str, Figures | str]], clock: str = "") -> str:
+    """One whole frame for every endpoint, in the order given."""
+    lines = [f"fecproxy watch  {clock}".rstrip()]
+    for url, view in views:
+        lines.append("")
+        lines.extend(render_endpoint(url, view))
+    return "\n".join(lines) + "\n"
+
+
+def metrics_url(text: str) -> str:
+    """Accept ``host:port``, ``http://host:port`` or a full URL; default path /metrics."""
+    url = text if "://" in text else f"http://{text}"
+    scheme, _, rest = url.partition("://")
+    return url if "/" in rest else f"{url}/metrics"
+
+
+def fetch(url: str, timeout: float = FETCH_TIMEOUT_S) -> Samples:
+    with urllib.request.urlopen(url, timeout=timeout) as response:
+        return parse_metrics(response.read().decode("utf-8"))
+
+
+def _error_text(error: Exception) -> str:
+    if isinstance(error, urllib.error.URLError) and not isinstance(error, urllib.error.HTTPError):
+        error = error.reason if isinstance(error.reason, Exception) else error
+    return f"{type(error).__name__}: {error}"
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("urls", nargs="+", metavar="URL",
+                        help="metrics endpoint of a daemon (host:port or http://host:port/metrics); give the sender's and the receiver's")
+    parser.add_argument("--interval", type=float, default=DEFAULT_INTERVAL_S, help="seconds between frames")
+    parser.add_argument("--count", type=int, default=None, help="stop after this many frames (default: until Ctrl-C)")
+    parser.add_argument("--once", action="store_true", help="print one frame of totals since start and exit")
+
+
+def main(args: argparse.Namespace) -> int:
+    if len(args.urls) > 2:
+        print("fecproxy watch: give one or two metrics URLs (sender's and receiver's)", file=sys.stderr)
+        return 2
+    if not (math.isfinite(args.interval) and 0.05 <= args.interval <= 3600):
+        print("fecproxy watch: --interval must be between 0.05 and 3600 s", file=sys.stderr)
+        return 2
+    count = 1 if args.once else args.count
+    if count is not None and not 1 <= count <= MAX_COUNT:
+        print(f"fecproxy watch: --count must be between 1 and {MAX_COUNT}", file=sys.stderr)
+        return 2
+    urls = [metrics_url(url) for url in args.urls]
+    previous: dict[str, tuple[Samples, float]] = {}
+    clear = sys.stdout.isatty()
+    frame = 0
+    any_up = False
+    try:
+        while count is None or frame < count:
+            if frame:
+                time.sleep(args.interval)
+            views: list[tuple[str, Figures | str]] = []
+            any_up = False
+            for url in urls:
+                try:
+                    samples, at = fetch(url), time.monotonic()
+                except Exception as error:  # any failure to read or parse is shown, not raised
+                    views.append((url, _error_text(error)))
+                    continue
+                any_up = True
+                before = previous.get(url)
+                views.append((url, figures(samples, *((before[0], at - before[1]) if before else (None, None)))))
+                previous[url] = (samples, at)
+            text = render(views, time.strftime("%Y-%m-%d %H:%M:%S"))
+            sys.stdout.write((CLEAR_SCREEN if clear else ("\n" if frame else "")) + text)
+            sys.stdout.flush()
+            frame += 1
+    except KeyboardInterrupt:
+        return 0
+    return 0 if any_up else 1
