@@ -16,6 +16,7 @@ import sys
 
 import trio
 
+from fecproxy.config.addresses import format_sockaddr
 from fecproxy.linkmodel.loss_models import ChannelConfigError, channel_from_figures
 from fecproxy.linkmodel.impairment import Blackout, ImpairmentConfigError, LinkImpairment
 from fecproxy.shell.relay import DEFAULT_SEED, RelayConfig, RelayError, UdpRelay, start_metrics_server
@@ -156,11 +157,6 @@ def config_from_args(args: argparse.Namespace) -> RelayConfig:
     )
 
 
-def _fmt(address) -> str:
-    host, port = address[0], address[1]
-    return f"[{host}]:{port}" if ":" in host else f"{host}:{port}"
-
-
 async def _serve(config: RelayConfig, seconds: float | None, metrics: tuple[str, int] | None) -> int:
     relay = UdpRelay(config)
     server = None
@@ -169,12 +165,12 @@ async def _serve(config: RelayConfig, seconds: float | None, metrics: tuple[str,
         try:
             async with trio.open_nursery() as nursery:
                 await nursery.start(relay.run)
-                print(f"fecproxy impair: listening on {_fmt(relay.listen_address)}, relaying to {_fmt(config.to)}", flush=True)
+                print(f"fecproxy impair: listening on {format_sockaddr(relay.listen_address)}, relaying to {format_sockaddr(config.to)}", flush=True)
                 print(f"forward: {config.forward.describe()}", flush=True)
                 print(f"return: {config.back.describe()}", flush=True)
                 if metrics is not None:
-                    server, bound = start_metrics_server(relay, metrics)
-                    print(f"metrics: http://{_fmt(bound)}/metrics", flush=True)
+                    server = start_metrics_server(relay, metrics)
+                    print(f"metrics: http://{format_sockaddr(server.address)}/metrics", flush=True)
                 if seconds is not None:
                     nursery.cancel_scope.deadline = trio.current_time() + seconds
 
@@ -188,8 +184,7 @@ async def _serve(config: RelayConfig, seconds: float | None, metrics: tuple[str,
             failures.extend(group.exceptions)
         finally:
             if server is not None:
-                server.shutdown()
-                server.server_close()
+                server.stop()
     if failures:
         for exc in failures:
             print(f"fecproxy impair: {exc}", file=sys.stderr)
