@@ -41,15 +41,16 @@ def test_send_batch_counts_the_bytes_it_returns():
 
 
 class _Daemon:
-    """Just what the collector reads."""
+    """Just what the collector reads (shell.metrics.DaemonView)."""
 
     def __init__(self, encoder):
-        self.encoder = encoder
-        self.decoder = type("D", (), {"stats": type("S", (), {
+        self.encoder_stats = encoder.stats
+        self.decoder_stats = type("S", (), {
             "source_received": 0, "repair_received": 0, "lost": 0, "recovered": 0, "unrecovered": 0,
-            "delivered": 0, "repair_unneeded": 0, "blocks": {}})()})()
-        self.config = type("C", (), {"role": "sender"})()
-        self.reloads = {}
+            "delivered": 0, "repair_unneeded": 0, "blocks": {}})()
+        self.role = "sender"
+        self.block_shape = (encoder.settings.block_size, encoder.settings.repair)
+        self.reloads = {"applied": 0, "rejected": 0}
 
     def drop_counts(self):
         return {}

@@ -211,8 +211,8 @@ async def _serve(config: RelayConfig, seconds: float | None, metrics: tuple[str,
                 print(f"forward: {config.forward.describe()}", flush=True)
                 print(f"return: {config.back.describe()}", flush=True)
                 if metrics is not None:
-                    server, bound = start_metrics_server(relay, metrics)
-                    print(f"metrics: http://{format_sockaddr(bound)}/metrics", flush=True)
+                    server = start_metrics_server(relay, metrics)
+                    print(f"metrics: http://{format_sockaddr(server.address)}/metrics", flush=True)
                 if seconds is not None:
                     nursery.cancel_scope.deadline = trio.current_time() + seconds
 
@@ -228,8 +228,7 @@ async def _serve(config: RelayConfig, seconds: float | None, metrics: tuple[str,
             failures.extend(group.exceptions)
         finally:
             if server is not None:
-                server.shutdown()
-                server.server_close()
+                server.stop()
     if failures:
         for exc in failures:
             print(f"fecproxy impair: {exc}", file=sys.stderr)

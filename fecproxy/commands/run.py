@@ -27,7 +27,7 @@ def main(args: argparse.Namespace) -> int:
     try:
         config = load_config(args.config)
     except ConfigError as error:
-        for message in getattr(error, "messages", [str(error)]):
+        for message in error.messages:
             print(message, file=sys.stderr)
         return 2
     setup_logging(args.log_level or str(config.log.level), args.log_format or str(config.log.format))

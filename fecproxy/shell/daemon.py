@@ -5,21 +5,21 @@ what they receive from it; they differ only in the application side:
 
 * sender: applications send to ``listen``; every client address is a flow; decoded replies go
   back to the client through the same socket.
-* receiver: rebuilt datagrams go to ``forward`` from one upstream socket per flow, so the server's
-  replies come back on that socket and are encoded towards the sender with the flow's id.
+* receiver: rebuilt datagrams go to ``forward`` from one upstream socket per flow
+  (:mod:`fecproxy.shell.upstream`), so the server's replies come back on that socket and are
+  encoded towards the sender with the flow's id.
 
 All tasks live in one nursery; the timer task sleeps in a cancel scope whose deadline is the
-earliest of the cores' ``next_deadline()`` values and is moved whenever a core's changes.
+earliest of the cores' ``next_deadline()`` values and is moved whenever a core's changes.  What
+a config means for the cores, at start and on SIGHUP, is :mod:`fecproxy.shell.settings`.
 """
 
 from __future__ import annotations
 
-import dataclasses
 import logging
 import math
 import secrets
 import signal
-import socket
 from collections import defaultdict
 from contextlib import nullcontext
 from pathlib import Path
@@ -27,14 +27,25 @@ from pathlib import Path
 import trio
 
 from fecproxy import __version__
+from fecproxy.config import Config
+from fecproxy.config.addresses import format_sockaddr
 from fecproxy.linkmodel.estimator import LossEstimator
-from fecproxy.config import Config, ConfigError, load_config
-from fecproxy.protocol.decoder import BlockDecoder, BlockReport, DecoderSettings, Delivery, Dropped, SessionStarted
-from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
+from fecproxy.protocol.decoder import BlockDecoder, BlockReport, DecoderStats, Delivery, Dropped, SessionStarted
+from fecproxy.protocol.encoder import BlockEncoder, EncoderStats
 from fecproxy.protocol.flows import FlowTable
-from fecproxy.shell.logs import log_event
-from fecproxy.shell.metrics import build_registry, serve
+from fecproxy.shell.logs import log_event, log_exception
+from fecproxy.shell.metrics import MetricsServer, build_registry, serve
+from fecproxy.shell.settings import (
+    ReloadRejected,
+    decoder_settings,
+    encoder_settings,
+    flow_idle_timeout,
+    keep_fixed,
+    needs_restart,
+    read_new_config,
+)
 from fecproxy.shell.udp import DatagramReader, DatagramWriter, open_udp_socket, resolve
+from fecproxy.shell.upstream import Upstreams
 
 log = logging.getLogger("fecproxy.shell.daemon")
 
@@ -44,29 +55,6 @@ log = logging.getLogger("fecproxy.shell.daemon")
 LOSS_ESTIMATE_WINDOW = 10_000
 #: SIGTERM/SIGINT stop (after flushing the open block), SIGHUP reloads the config.
 HANDLED_SIGNALS = (signal.SIGTERM, signal.SIGINT, signal.SIGHUP)
-
-
-def encoder_settings(config: Config) -> EncoderSettings:
-    fec = config.fec
-    return EncoderSettings(
-        block_size=fec.block_size,
-        repair=fec.repair,
-        flush_interval=fec.flush_ms / 1000,
-        max_datagram=fec.max_datagram_bytes,
-        short_block_repair=str(fec.short_block_repair),
-    )
-
-
-def decoder_settings(config: Config) -> DecoderSettings:
-    return DecoderSettings(
-        hold_time=config.decoder.hold_ms / 1000,
-        max_open_blocks=config.decoder.max_open_blocks,
-        max_datagram=config.fec.max_datagram_bytes,
-    )
-
-
-def _sockaddr(address) -> tuple:
-    return resolve(address.host, address.port)
 
 
 class SocketOpenError(OSError):
@@ -92,11 +80,11 @@ class Daemon:
         self.encoder = BlockEncoder(encoder_settings(config), self.session)
         self.decoder = BlockDecoder(decoder_settings(config))
         self.estimator = LossEstimator(window=LOSS_ESTIMATE_WINDOW)
-        idle = float(config.flows.idle_timeout_s)
-        self.flows: FlowTable = FlowTable(config.flows.max, idle)
-        self.reloads: dict[str, int] = {}
+        self.flows: FlowTable = FlowTable(config.flows.max, flow_idle_timeout(config))
+        self._reloads: dict[str, int] = {"applied": 0, "rejected": 0}
         self._drops: dict[str, int] = defaultdict(int)
-        self._upstream: dict[int, _Upstream] = {}
+        self.upstreams: Upstreams | None = None  # receiver only, from run() on
+        self._link_sock = self._app_sock = None
         self._link_writer: DatagramWriter | None = None
         self._app_writer: DatagramWriter | None = None
         self._timer_scope: trio.CancelScope | None = None
@@ -108,18 +96,45 @@ class Daemon:
         self.link_address: tuple | None = None
         self.listen_address: tuple | None = None
 
-    # ------------------------------------------------------------ views for metrics
+    # ------------------------------------------------------------ what metrics reads (DaemonView)
+    @property
+    def role(self) -> str:
+        return str(self.config.role)
+
+    @property
+    def encoder_stats(self) -> EncoderStats:
+        return self.encoder.stats
+
+    @property
+    def decoder_stats(self) -> DecoderStats:
+        return self.decoder.stats
+
+    @property
+    def block_shape(self) -> tuple[int, int]:
+        """(k, m) of the blocks being sent now."""
+        settings = self.encoder.settings
+        return settings.block_size, settings.repair
+
+    @property
+    def reloads(self) -> dict[str, int]:
+        """SIGHUP reloads by result, "applied" and "rejected" (a copy)."""
+        return dict(self._reloads)
+
     def drop_counts(self) -> dict[str, int]:
         totals = dict(self._drops)
-        for source in (self.encoder.stats.dropped, self.decoder.stats.dropped):
+        sources = [self.encoder.stats.dropped, self.decoder.stats.dropped]
+        if self.upstreams is not None:
+            sources.append(self.upstreams.drops)
+        for source in sources:
             for reason, count in source.items():
                 totals[reason] = totals.get(reason, 0) + count
         return totals
 
     def send_errors(self) -> int:
-        writers = [self._link_writer, self._app_writer]
-        writers += [upstream.writer for upstream in self._upstream.values()]
-        return sum(w.send_errors for w in writers if w is not None)
+        errors = sum(w.send_errors for w in (self._link_writer, self._app_writer) if w is not None)
+        if self.upstreams is not None:
+            errors += self.upstreams.send_errors()
+        return errors
 
     def flow_count(self) -> int:
         return len(self.flows)
@@ -131,13 +146,12 @@ class Daemon:
         return estimate.average_loss, estimate.mean_burst
 
     # ------------------------------------------------------------ lifecycle
-    def _open_sockets(self):
+    def _open_sockets(self) -> MetricsServer | None:
         """Bind every configured address; on failure close what was opened and raise a
-        SocketOpenError naming the config key and address.  Returns the metrics stopper."""
+        SocketOpenError naming the config key and address.  Returns the metrics server."""
         cfg = self.config
         buffers = dict(receive_buffer=cfg.sockets.receive_buffer_bytes, send_buffer=cfg.sockets.send_buffer_bytes)
-        self._link_sock = self._app_sock = None
-        stop_metrics = None
+        metrics = None
         key, address = "link.bind", cfg.link.bind
         try:
             self._link_sock = open_udp_socket(cfg.link.bind.host, cfg.link.bind.port, **buffers)
@@ -153,17 +167,18 @@ class Daemon:
                 self.listen_address = self._app_sock.getsockname()
             else:
                 key, address = "forward", cfg.forward
-                self._forward = _sockaddr(cfg.forward)
+                forward = resolve(cfg.forward.host, cfg.forward.port)
+                self.upstreams = Upstreams(forward, self.flows, self._encode_and_send)
             if cfg.metrics.listen is not None:
                 key, address = "metrics.listen", cfg.metrics.listen
-                stop_metrics = serve(self.registry, cfg.metrics.listen.host, cfg.metrics.listen.port)
-                self.metrics_port = stop_metrics.port
+                metrics = serve(self.registry, cfg.metrics.listen.host, cfg.metrics.listen.port)
+                self.metrics_port = metrics.port
         except OSError as error:
             for sock in (self._link_sock, self._app_sock):
                 if sock is not None:
                     sock.close()
             raise SocketOpenError(key, address, error) from error
-        return stop_metrics
+        return metrics
 
     @property
     def stopping(self) -> bool:
@@ -174,16 +189,18 @@ class Daemon:
         # Signals are received from before "started" is logged until every socket is closed, so
         # a SIGTERM repeated during the flush is seen here, not by the default action (exit -15).
         # Trio re-raises signals still pending when the receiver closes: the process owner
-        # (cmd_run) keeps a handler beneath it for those.
+        # (commands/run.py) keeps a handler beneath it for those.
         with trio.open_signal_receiver(*HANDLED_SIGNALS) if self.handle_signals else nullcontext() as signals:
             await self._run(signals, task_status)
 
     async def _run(self, signals, task_status) -> None:
         cfg = self.config
-        stop_metrics = self._open_sockets()
+        metrics = self._open_sockets()
         try:
             async with trio.open_nursery() as nursery:
                 self._nursery = nursery
+                if self.upstreams is not None:
+                    self.upstreams.attach(nursery)
                 nursery.start_soon(self._link_loop)
                 nursery.start_soon(self._timer_loop)
                 if self._app_sock is not None:
@@ -192,22 +209,22 @@ class Daemon:
                     nursery.start_soon(self._signal_loop, signals)
                 log_event(
                     log, logging.INFO, "started", version=__version__, role=str(cfg.role),
-                    link=_fmt(self.link_address), peer=_fmt(self.peer) if self.peer else "learned",
-                    listen=_fmt(self.listen_address) if self.listen_address else "-",
+                    link=format_sockaddr(self.link_address),
+                    peer=format_sockaddr(self.peer) if self.peer else "learned",
+                    listen=format_sockaddr(self.listen_address),
                     forward=str(cfg.forward) if cfg.forward else "-",
                     k=cfg.fec.block_size, m=cfg.fec.repair, flush_ms=cfg.fec.flush_ms,
                     session=f"{self.session:08x}", metrics=self.metrics_port or "off",
                 )
                 task_status.started(self)
         finally:
-            for upstream in self._upstream.values():
-                upstream.close()
-            self._upstream.clear()
+            if self.upstreams is not None:
+                self.upstreams.close_all()
             self._link_sock.close()
             if self._app_sock is not None:
                 self._app_sock.close()
-            if stop_metrics is not None:
-                stop_metrics()
+            if metrics is not None:
+                metrics.stop()
         log_event(log, logging.INFO, "stopped", **self.summary())
 
     async def stop(self) -> None:
@@ -253,7 +270,7 @@ class Daemon:
 
     async def _encode_and_send(self, items: list[tuple[bytes, int]], now: float) -> None:
         """Frame a batch (blocks it fills share codec calls, see BlockEncoder.send_batch) and
-        put it on the link."""
+        put it on the link.  Both roles: the sender's client datagrams, the receiver's replies."""
         encoder = self.encoder
         oversize = encoder.stats.dropped.get("oversize", 0)
         try:
@@ -270,7 +287,7 @@ class Daemon:
 
     def _internal_error(self, where: str) -> None:
         self._drops["internal_error"] += 1
-        log.error("internal_error", exc_info=True, extra={"fields": {"where": where}})
+        log_exception(log, "internal_error", where=where)
 
     async def _link_loop(self) -> None:
         """Both roles: link packets -> decoder -> applications."""
@@ -302,7 +319,7 @@ class Daemon:
                         self._handle_event(event, now)
                 if learn and valid and self.decoder.in_session and address != self.peer:
                     if self.peer is not None:
-                        log_event(log, logging.INFO, "peer_changed", old=_fmt(self.peer), new=_fmt(address))
+                        log_event(log, logging.INFO, "peer_changed", old=format_sockaddr(self.peer), new=format_sockaddr(address))
                     self.peer = address
             await self._deliver(deliveries, now)
             self._reschedule()
@@ -318,18 +335,9 @@ class Daemon:
             await self._send_to_peer(self.encoder.on_timer(now))
             self._handle_events(self.decoder.on_timer(now), now)
             for flow, _ in self.flows.expire(now):
-                self._close_upstream(flow)
+                if self.upstreams is not None:
+                    self.upstreams.close(flow)
                 log_event(log, logging.DEBUG, "flow_expired", flow=flow)
-
-    async def _upstream_loop(self, flow: int, upstream: "_Upstream") -> None:
-        """Receiver: replies from the application server on this flow's socket -> link."""
-        with upstream.scope:
-            reader = DatagramReader(upstream.sock, batch=64, coalesce=True)
-            while True:
-                batch = await reader.read_batch()
-                now = trio.current_time()
-                self.flows.touch(flow, now)  # once per batch: every datagram shares this `now`
-                await self._encode_and_send([(data, flow) for data, _ in batch], now)
 
     async def _signal_loop(self, signals) -> None:
         async for signum in signals:
@@ -342,28 +350,25 @@ class Daemon:
 
     # ------------------------------------------------------------ helpers
     def reload(self, config: Config | None = None) -> bool:
-        """Apply new FEC, decoder and flow settings from the next block on; keep flows.
+        """Apply new FEC, decoder and flow-timeout settings from the next block on; keep flows.
 
-        Settings that need new sockets (role, addresses, metrics) are reported and left as they are.
+        ``config`` defaults to the config file read again.  Settings that need new sockets
+        (settings.RESTART_KEYS) are reported and left as they are.
         """
         try:
-            new = config if config is not None else load_config(self.config_path)
-        except ConfigError as error:
-            self.reloads["rejected"] = self.reloads.get("rejected", 0) + 1
-            log_event(log, logging.ERROR, "reload_rejected", errors="; ".join(error.messages) if hasattr(error, "messages") else str(error))
+            new = config if config is not None else read_new_config(self.config_path)
+        except ReloadRejected as rejected:
+            self._reloads["rejected"] += 1
+            log_event(log, logging.ERROR, "reload_rejected", errors=rejected.errors)
             return False
-        except (OSError, TypeError) as error:
-            self.reloads["rejected"] = self.reloads.get("rejected", 0) + 1
-            log_event(log, logging.ERROR, "reload_rejected", errors=str(error))
-            return False
-        fixed = [name for name in ("role", "listen", "forward", "link", "metrics", "sockets") if getattr(new, name) != getattr(self.config, name)]
+        fixed = needs_restart(self.config, new)
         if fixed:
             log_event(log, logging.WARNING, "reload_needs_restart", keys=",".join(fixed))
         self.encoder.update(encoder_settings(new))
         self.decoder.settings = decoder_settings(new)
-        self.flows.idle_timeout = float(new.flows.idle_timeout_s)
-        self.config = _keep_fixed(self.config, new)
-        self.reloads["applied"] = self.reloads.get("applied", 0) + 1
+        self.flows.idle_timeout = flow_idle_timeout(new)
+        self.config = keep_fixed(self.config, new)
+        self._reloads["applied"] += 1
         log_event(log, logging.INFO, "reloaded", k=new.fec.block_size, m=new.fec.repair, flush_ms=new.fec.flush_ms)
         self._reschedule()
         return True
@@ -392,7 +397,7 @@ class Daemon:
         kind = type(event)
         if kind is BlockReport:
             # One segment per block: repair positions sit between blocks on the link, so chaining
-            # blocks would bias the burst estimate (see channel.LossEstimator).
+            # blocks would bias the burst estimate (see linkmodel.estimator.LossEstimator).
             self.estimator.observe_block(event.arrived_mask, event.span)
             if event.unrecovered:
                 log_event(log, logging.DEBUG, "block_unrecovered", sbn=event.sbn, k=event.k, lost=event.lost, outcome=event.outcome)
@@ -414,79 +419,17 @@ class Daemon:
                 by_destination[delivery.flow] = [delivery.data]
             else:
                 datagrams.append(delivery.data)
-        sender = self.config.role == "sender"
+        upstreams = self.upstreams
         for flow, datagrams in by_destination.items():
-            if sender:
+            if upstreams is None:  # sender: back to the client of this flow
                 client = self.flows.key_for(flow)
                 if client is None:
                     self._drops["unknown_flow"] += len(datagrams)
                     continue
                 self.flows.touch(flow, now)
                 await self._app_writer.send(datagrams, client)
-            else:
-                writer = self._upstream_writer(flow, now)
+            else:  # receiver: to the server, from this flow's own socket
+                writer = upstreams.writer_for(flow, now)
                 if writer is None:
                     continue  # counted as flow_limit or unreachable
-                await writer.send(datagrams, self._forward)
-
-    def _upstream_writer(self, flow: int, now: float) -> DatagramWriter | None:
-        """The writer of this flow's upstream socket, opened (with its reader task) if new."""
-        entry = self._upstream.get(flow)
-        if entry is not None:
-            self.flows.touch(flow, now)
-            return entry.writer
-        if self.flows.flow_for(flow, now, flow=flow) is None:
-            self._drops["flow_limit"] += 1
-            return None
-        family = socket.AF_INET6 if len(self._forward) == 4 else socket.AF_INET
-        sock = socket.socket(family, socket.SOCK_DGRAM)
-        try:
-            sock.setblocking(False)
-            # Connected: the kernel picks the source address towards the server, and only the
-            # server's replies are accepted on this socket.
-            sock.connect(self._forward)
-        except OSError as error:
-            sock.close()
-            self.flows.remove(flow)
-            self._drops["unreachable"] += 1
-            log_event(log, logging.WARNING, "upstream_failed", forward=_fmt(self._forward), error=str(error))
-            return None
-        entry = _Upstream(sock, DatagramWriter(sock), trio.CancelScope())
-        self._upstream[flow] = entry
-        assert self._nursery is not None
-        self._nursery.start_soon(self._upstream_loop, flow, entry)
-        log_event(log, logging.DEBUG, "flow_opened", flow=flow, local=_fmt(sock.getsockname()))
-        return entry.writer
-
-    def _close_upstream(self, flow: int) -> None:
-        entry = self._upstream.pop(flow, None)
-        if entry is not None:
-            entry.close()
-
-
-class _Upstream:
-    """A receiver's socket towards the application server for one flow, and its reader task."""
-
-    __slots__ = ("sock", "writer", "scope")
-
-    def __init__(self, sock: socket.socket, writer: DatagramWriter, scope: trio.CancelScope):
-        self.sock, self.writer, self.scope = sock, writer, scope
-
-    def close(self) -> None:
-        self.scope.cancel()
-        trio.lowlevel.notify_closing(self.sock)
-        self.sock.close()
-
-
-def _keep_fixed(old: Config, new: Config) -> Config:
-    """The running config after a reload: new tunables, old sockets/addresses."""
-    return dataclasses.replace(
-        new, role=old.role, listen=old.listen, forward=old.forward, link=old.link, metrics=old.metrics, sockets=old.sockets
-    )
-
-
-def _fmt(address) -> str:
-    if address is None:
-        return "-"
-    host, port = address[0], address[1]
-    return f"[{host}]:{port}" if ":" in host else f"{host}:{port}"
+                await writer.send(datagrams, upstreams.forward)

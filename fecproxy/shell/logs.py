@@ -19,6 +19,11 @@ def log_event(logger: logging.Logger, level: int, event: str, **fields: object) 
         logger.log(level, event, extra={"fields": fields})
 
 
+def log_exception(logger: logging.Logger, event: str, **fields: object) -> None:
+    """Like :func:`log_event` at ERROR, with the traceback of the exception being handled."""
+    logger.error(event, exc_info=True, extra={"fields": fields})
+
+
 def _timestamp(record: logging.LogRecord) -> str:
     return time.strftime("%Y-%m-%dT%H:%M:%S", time.gmtime(record.created)) + f".{int(record.msecs):03d}Z"
 

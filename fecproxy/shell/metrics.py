@@ -7,23 +7,44 @@ prefix ``fecproxy_``, base units, counters end in ``_total``, labels only from s
 
 from __future__ import annotations
 
-from collections.abc import Callable, Iterable
-from typing import Protocol
+import socket
+import threading
+from collections.abc import Iterable, Mapping
+from socketserver import ThreadingMixIn
+from typing import TYPE_CHECKING, Protocol
+from wsgiref.simple_server import WSGIRequestHandler, WSGIServer, make_server
 
-from prometheus_client import CollectorRegistry, Histogram
+from prometheus_client import CollectorRegistry, Histogram, make_wsgi_app
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, InfoMetricFamily
 
 from fecproxy import __version__
 
+if TYPE_CHECKING:
+    from fecproxy.protocol.decoder import DecoderStats
+    from fecproxy.protocol.encoder import EncoderStats
+
 
 class DaemonView(Protocol):
-    """What the collector reads from a daemon at scrape time (the daemon satisfies it; metrics
-    never imports the daemon module, so the two cannot form an import cycle)."""
+    """Everything the collector reads from a daemon at scrape time, all of it public on the
+    daemon.  Metrics never imports the daemon module (the daemon imports this one), so the two
+    cannot form an import cycle."""
 
-    encoder: object
-    decoder: object
-    config: object
-    reloads: dict[str, int]
+    @property
+    def role(self) -> str: ...
+
+    @property
+    def encoder_stats(self) -> EncoderStats: ...
+
+    @property
+    def decoder_stats(self) -> DecoderStats: ...
+
+    @property
+    def block_shape(self) -> tuple[int, int]:
+        """(k, m) of the blocks being sent now (a reload changes them)."""
+
+    @property
+    def reloads(self) -> Mapping[str, int]:
+        """SIGHUP reloads by result: "applied", "rejected"."""
 
     def drop_counts(self) -> dict[str, int]: ...
 
@@ -31,7 +52,9 @@ class DaemonView(Protocol):
 
     def flow_count(self) -> int: ...
 
-    def loss_estimate(self) -> tuple[float, float] | None: ...
+    def loss_estimate(self) -> tuple[float, float] | None:
+        """(average loss, mean burst) of the link, or None before any sample."""
+
 
 #: Every drop reason any layer can count; all are exported (as 0 until they happen) so alert
 #: rules and dashboards can rely on the series existing.
@@ -57,7 +80,7 @@ RECOVERY_DELAY_BUCKETS = (0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.
 class DaemonCollector:
     """Reads a daemon's counters at scrape time."""
 
-    def __init__(self, daemon: "DaemonView"):
+    def __init__(self, daemon: DaemonView):
         self.daemon = daemon
 
     def describe(self) -> Iterable:
@@ -65,8 +88,8 @@ class DaemonCollector:
 
     def collect(self) -> Iterable:
         d = self.daemon
-        enc = d.encoder.stats
-        dec = d.decoder.stats
+        enc = d.encoder_stats
+        dec = d.decoder_stats
 
         def counter(name: str, doc: str, value: float) -> CounterMetricFamily:
             return CounterMetricFamily(name, doc, value=value)
@@ -109,15 +132,13 @@ class DaemonCollector:
             yield GaugeMetricFamily(
                 "fecproxy_link_mean_burst_packets", "Estimated mean length of loss bursts, in packets.", value=estimate[1]
             )
-        fec = d.encoder.settings
+        k, m = d.block_shape
         info = InfoMetricFamily("fecproxy", "Build and FEC parameters of this daemon.")
-        info.add_metric(
-            [], {"version": __version__, "role": d.config.role, "k": str(fec.block_size), "m": str(fec.repair)}
-        )
+        info.add_metric([], {"version": __version__, "role": d.role, "k": str(k), "m": str(m)})
         yield info
 
 
-def build_registry(daemon: "DaemonView") -> tuple[CollectorRegistry, Histogram]:
+def build_registry(daemon: DaemonView) -> tuple[CollectorRegistry, Histogram]:
     """A registry of this daemon's own (several daemons may share one process, as in the demo)."""
     registry = CollectorRegistry(auto_describe=False)
     registry.register(DaemonCollector(daemon))
@@ -134,37 +155,46 @@ def build_registry(daemon: "DaemonView") -> tuple[CollectorRegistry, Histogram]:
 #: start_http_server keeps socketserver's 0.5 s, which alone spends half of the one second the
 #: daemon has to exit after SIGTERM; 50 ms costs a negligible 20 wake-ups a second.
 STOP_POLL_SECONDS = 0.05
+#: Seconds ``stop`` waits for the server thread; it is a daemon thread, so a scrape still being
+#: answered cannot hold up the process's exit beyond this.
+STOP_JOIN_SECONDS = 1.0
 
 
-def serve(registry: CollectorRegistry, host: str, port: int) -> Callable[[], None]:
-    """Serve /metrics from a background thread; returns a function that stops it (quickly)."""
-    import socket
-    import threading
-    from socketserver import ThreadingMixIn
-    from wsgiref.simple_server import WSGIRequestHandler, WSGIServer, make_server
+class _ThreadingServer(ThreadingMixIn, WSGIServer):
+    daemon_threads = True
 
-    from prometheus_client import make_wsgi_app
 
+class _QuietHandler(WSGIRequestHandler):
+    def log_message(self, format: str, *args) -> None:
+        """Scrapes are not events: nothing is logged per request."""
+
+
+class MetricsServer:
+    """A running /metrics endpoint: ``address`` is where it listens (the bound port when 0 was
+    asked for), ``stop()`` ends it quickly."""
+
+    def __init__(self, server: WSGIServer, thread: threading.Thread):
+        self._server, self._thread = server, thread
+        self.address: tuple[str, int] = server.server_address[:2]
+        self.port: int = self.address[1]
+
+    def stop(self) -> None:
+        self._server.shutdown()
+        self._server.server_close()
+        self._thread.join(timeout=STOP_JOIN_SECONDS)
+
+
+def serve(registry: CollectorRegistry, host: str, port: int) -> MetricsServer:
+    """Serve the registry (at /metrics, as at every path) from a background thread.
+
+    The one metrics HTTP server of the package: the daemon, the demo and the impairment relay all
+    start theirs here.  Raises OSError when the address cannot be resolved or bound.
+    """
     family = socket.getaddrinfo(host, port, type=socket.SOCK_STREAM, flags=socket.AI_PASSIVE)[0][0]
-
-    class Server(ThreadingMixIn, WSGIServer):
-        daemon_threads = True
-        address_family = family
-
-    class QuietHandler(WSGIRequestHandler):
-        def log_message(self, format: str, *args) -> None:
-            """Scrapes are not events: nothing is logged per request."""
-
-    server = make_server(host, port, make_wsgi_app(registry), Server, handler_class=QuietHandler)
+    server_class = type("MetricsHTTPServer", (_ThreadingServer,), {"address_family": family})
+    server = make_server(host, port, make_wsgi_app(registry), server_class, handler_class=_QuietHandler)
     thread = threading.Thread(
         target=server.serve_forever, kwargs={"poll_interval": STOP_POLL_SECONDS}, name="fecproxy-metrics", daemon=True
     )
     thread.start()
-
-    def stop() -> None:
-        server.shutdown()
-        server.server_close()
-        thread.join(timeout=1)
-
-    stop.port = server.server_address[1]  # type: ignore[attr-defined]
-    return stop
+    return MetricsServer(server, thread)

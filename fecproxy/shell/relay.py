@@ -18,11 +18,14 @@ from collections import Counter
 from dataclasses import dataclass, field
 
 import trio
+from prometheus_client import CollectorRegistry
+from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
 
+from fecproxy.config.addresses import format_sockaddr
 from fecproxy.linkmodel.impairment import IPV4_UDP_HEADER_BYTES, IPV6_UDP_HEADER_BYTES, ImpairedLink, LinkImpairment, LinkStats
+from fecproxy.shell.metrics import MetricsServer, serve
+from fecproxy.shell.udp import MAX_UDP_PAYLOAD
 
-#: Receive buffer: the largest UDP payload (65 535 − 8 header bytes), so nothing is truncated.
-MAX_DATAGRAM_BYTES = 65_535
 #: Default seed: runs are reproducible unless the user asks otherwise.
 DEFAULT_SEED = 1
 #: Socket receive/send buffers asked of the kernel.  The relay is one Python task per direction;
@@ -71,7 +74,9 @@ class UdpRelay:
             listen_sock = trio.socket.socket(listen_info[0][0], stdlib_socket.SOCK_DGRAM)
             out_sock = trio.socket.socket(to_info[0][0], stdlib_socket.SOCK_DGRAM)
         except OSError as exc:
-            raise RelayError(f"cannot resolve or open sockets for {config.listen} / {config.to}: {exc}") from None
+            raise RelayError(
+                f"cannot resolve or open sockets for {format_sockaddr(config.listen)} / {format_sockaddr(config.to)}: {exc}"
+            ) from None
         with listen_sock, out_sock:
             for sock in (listen_sock, out_sock):
                 for option in (stdlib_socket.SO_RCVBUF, stdlib_socket.SO_SNDBUF):
@@ -85,7 +90,7 @@ class UdpRelay:
                     await out_sock.bind(config.bind_out)
                 await out_sock.connect(to_info[0][4])
             except OSError as exc:
-                raise RelayError(f"cannot bind {config.listen} or reach {config.to}: {exc}") from None
+                raise RelayError(f"cannot bind {format_sockaddr(config.listen)} or reach {format_sockaddr(config.to)}: {exc}") from None
             self.listen_address = listen_sock.getsockname()
             self.out_address = out_sock.getsockname()
             start = trio.current_time()
@@ -109,7 +114,7 @@ class UdpRelay:
         link = self.links["forward"]
         while True:
             try:
-                data, address = await sock.recvfrom(MAX_DATAGRAM_BYTES)
+                data, address = await sock.recvfrom(MAX_UDP_PAYLOAD)
             except OSError:  # an ICMP error for an earlier send surfaces here; nothing was received
                 continue
             self.client = address
@@ -120,7 +125,7 @@ class UdpRelay:
         link = self.links["return"]
         while True:
             try:
-                data = await sock.recv(MAX_DATAGRAM_BYTES)
+                data = await sock.recv(MAX_UDP_PAYLOAD)
             except OSError:  # e.g. ECONNREFUSED while the far end is not up yet
                 continue
             link.submit(data, trio.current_time())
@@ -170,8 +175,6 @@ class _RelayCollector:
         self.relay = relay
 
     def collect(self):
-        from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
-
         prefix = "fecproxy_impair_"
         counters = {
             "submitted": CounterMetricFamily(prefix + "datagrams_submitted", "datagrams offered to the emulated link", labels=["direction"]),
@@ -199,11 +202,9 @@ class _RelayCollector:
         yield from (dropped, loss, burst, queued, in_flight)
 
 
-def start_metrics_server(relay: UdpRelay, address: tuple[str, int]):
-    """Serve ``/metrics`` from a prometheus_client thread; returns (server, bound address)."""
-    from prometheus_client import CollectorRegistry, start_http_server
-
-    registry = CollectorRegistry()
+def start_metrics_server(relay: UdpRelay, address: tuple[str, int]) -> MetricsServer:
+    """Serve the relay's counters at ``/metrics`` (see :func:`fecproxy.shell.metrics.serve`);
+    the returned server's ``address`` is the bound one, its ``stop()`` ends it."""
+    registry = CollectorRegistry(auto_describe=False)
     registry.register(_RelayCollector(relay))
-    server, _thread = start_http_server(address[1], addr=address[0], registry=registry)
-    return server, server.server_address[:2]
+    return serve(registry, address[0], address[1])

@@ -7,9 +7,14 @@ to one destination (a block's repair packets, or a burst of same-size datagrams)
 ``sendmsg`` with Linux UDP GSO (``UDP_SEGMENT``); where the kernel lacks it we fall back to one
 ``sendto`` per packet and remember not to try again.  The reader can also ask for UDP GRO
 (``UDP_GRO``), so such a burst arrives as one buffer: one system call, one kernel queue entry and
-one source address conversion for up to 64 datagrams instead of one each.  The kernel merges only
-equal-size datagrams of one flow (same addresses and ports) and reports the size, so the split
-back into datagrams is exact; a peer that sends singly costs about what a plain read costs.
+one source address conversion for the whole burst instead of one per datagram.  The kernel
+merges only equal-size datagrams of one flow (same addresses and ports) and reports the size, so
+the split back into datagrams is exact; a peer that sends singly costs about what a plain read
+costs.
+
+This module is the one owner of the GSO/GRO socket options: other code that sends or reads
+coalesced datagrams uses :func:`gso_control`, :func:`enable_coalescing`, :data:`GRO_CMSG_SPACE`,
+:func:`gro_segment_size` and :func:`split_coalesced` from here.
 """
 
 from __future__ import annotations
@@ -21,23 +26,35 @@ import struct
 
 import trio
 
+from fecproxy.config.addresses import format_sockaddr
+from fecproxy.shell.logs import log_event
+
 log = logging.getLogger("fecproxy.shell.udp")
 
-#: linux/udp.h: setsockopt level SOL_UDP, option UDP_SEGMENT (Linux ≥ 4.18).
+#: linux/udp.h: setsockopt level SOL_UDP, option UDP_SEGMENT (Linux ≥ 4.18); the fallbacks hold
+#: where Python's socket module lacks the names.
 SOL_UDP = getattr(socket, "SOL_UDP", 17)
 UDP_SEGMENT = getattr(socket, "UDP_SEGMENT", 103)
 #: linux/udp.h: UDP_GRO (Linux ≥ 5.0); the segment size comes back as an int in a cmsg.
 UDP_GRO = getattr(socket, "UDP_GRO", 104)
 _GRO_SEGMENT = struct.Struct("=i")
-_GRO_CMSG_SPACE = socket.CMSG_SPACE(_GRO_SEGMENT.size)
-#: The kernel accepts at most 64 segments per GSO send (UDP_MAX_SEGMENTS in linux/udp.h).
+_GSO_SEGMENT = struct.Struct("=H")
+#: Ancillary buffer size to pass to ``recvmsg``/``recvmsg_into`` on a GRO socket.
+GRO_CMSG_SPACE = socket.CMSG_SPACE(_GRO_SEGMENT.size)
+#: Segments per GSO send.  The kernel's limit is UDP_MAX_SEGMENTS (include/linux/udp.h): 64 in
+#: the kernels GSO first shipped in, 128 in recent ones (this machine's 6.18 accepts 128 and
+#: refuses 129, measured).  64 is accepted everywhere, and a run of 64 already amortises the
+#: system call.
 GSO_MAX_SEGMENTS = 64
-#: A GSO send is one UDP datagram to the kernel, so its total is bounded by 65 507 bytes.
+#: A GSO send is one UDP datagram to the kernel, so its total is bounded by the largest IPv4 UDP
+#: payload, 65 535 − 20 (IPv4 header) − 8 (UDP header) = 65 507 bytes.
 GSO_MAX_BYTES = 65507
 #: Datagrams drained per wake-up before yielding to other tasks, so one busy socket cannot
 #: starve the timers (common practice, no source).
 RECV_BATCH = 256
-#: Largest UDP payload; receive buffers are this size so nothing is ever truncated silently.
+#: Receive buffer size: 65 535 bytes, the most a 16-bit IP or UDP length field can describe, so
+#: every datagram (at most 65 507 bytes of payload over IPv4, 65 527 over IPv6) and every
+#: coalesced GRO buffer fits and nothing is ever truncated silently.
 MAX_UDP_PAYLOAD = 65535
 
 Address = tuple  # (host, port) or (host, port, flowinfo, scope_id)
@@ -64,6 +81,29 @@ def open_udp_socket(host: str, port: int, *, receive_buffer: int = 0, send_buffe
 def resolve(host: str, port: int, family: int = 0) -> Address:
     infos = socket.getaddrinfo(host, port, family=family, type=socket.SOCK_DGRAM)
     return infos[0][4]
+
+
+def gso_control(segment: int) -> list[tuple[int, int, bytes]]:
+    """The ``sendmsg`` ancillary data that makes the kernel split one buffer into datagrams of
+    ``segment`` bytes each (the last may be shorter)."""
+    return [(SOL_UDP, UDP_SEGMENT, _GSO_SEGMENT.pack(segment))]
+
+
+def gro_segment_size(ancillary: list, size: int) -> int:
+    """The segment size of a ``recvmsg`` read of ``size`` bytes on a GRO socket: the size the
+    kernel reported in ``ancillary``, or ``size`` when the read was not coalesced."""
+    for level, kind, data in ancillary:
+        if level == SOL_UDP and kind == UDP_GRO and len(data) >= _GRO_SEGMENT.size:
+            return _GRO_SEGMENT.unpack_from(data)[0] or size
+    return size
+
+
+def split_coalesced(data: bytes, segment: int) -> list[bytes]:
+    """A coalesced GRO read back as its datagrams: ``segment`` bytes each, the last possibly
+    shorter (the kernel merges only equal-size datagrams, except for a shorter last one)."""
+    if segment >= len(data) or segment <= 0:
+        return [data]
+    return [data[start : start + segment] for start in range(0, len(data), segment)]
 
 
 def enable_coalescing(sock: socket.socket) -> bool:
@@ -130,21 +170,18 @@ class DatagramReader:
         buffers = [view]
         while len(out) < self.batch:
             try:
-                size, ancillary, _, address = receive(buffers, _GRO_CMSG_SPACE)
+                size, ancillary, _, address = receive(buffers, GRO_CMSG_SPACE)
             except BlockingIOError:
                 return
             except ConnectionRefusedError:
                 continue
-            segment = size
-            for level, kind, data in ancillary:
-                if level == SOL_UDP and kind == UDP_GRO and len(data) >= _GRO_SEGMENT.size:
-                    segment = _GRO_SEGMENT.unpack_from(data)[0] or size
             data = view[:size].tobytes()
+            segment = gro_segment_size(ancillary, size) if ancillary else size
             if segment >= size:
                 append((data, address))
                 continue
-            for start in range(0, size, segment):
-                append((data[start : start + segment], address))  # one copy out, then bytes slices
+            for piece in split_coalesced(data, segment):  # one copy out, then bytes slices
+                append((piece, address))
 
 
 class DatagramWriter:
@@ -183,7 +220,7 @@ class DatagramWriter:
             except OSError as error:
                 # Unreachable peer, refused port, no route: UDP is best effort; count and go on.
                 self.send_errors += 1
-                log.debug("event=send_error address=%s error=%s", address, error)
+                log_event(log, logging.DEBUG, "send_error", address=format_sockaddr(address), error=str(error))
                 return
 
     async def _send_gso(self, packets: list[bytes], address: Address) -> None:
@@ -210,7 +247,7 @@ class DatagramWriter:
             start = end
 
     async def _sendmsg_gso(self, run: list[bytes], segment: int, address: Address) -> bool:
-        control = [(SOL_UDP, UDP_SEGMENT, struct.pack("=H", segment))]
+        control = gso_control(segment)
         while True:
             try:
                 self.sock.sendmsg([b"".join(run)], control, 0, address)
@@ -221,9 +258,9 @@ class DatagramWriter:
             except OSError as error:
                 if error.errno in (errno.EINVAL, errno.ENOPROTOOPT, errno.EOPNOTSUPP, errno.EIO, errno.EMSGSIZE):
                     if DatagramWriter.gso_supported is None:
-                        log.info("event=gso_unavailable error=%s fallback=sendto", error)
+                        log_event(log, logging.INFO, "gso_unavailable", error=str(error), fallback="sendto")
                         DatagramWriter.gso_supported = False
                     return False
                 self.send_errors += 1
-                log.debug("event=send_error address=%s error=%s", address, error)
+                log_event(log, logging.DEBUG, "send_error", address=format_sockaddr(address), error=str(error))
                 return True

@@ -66,14 +66,14 @@ def _start_metrics(registry, port: int) -> tuple[object | None, str]:
     from fecproxy.shell.metrics import serve
 
     try:
-        stop = serve(registry, LOOPBACK, port)
-        return stop, f"http://{LOOPBACK}:{stop.port}/metrics"
+        server = serve(registry, LOOPBACK, port)
+        return server.stop, f"http://{LOOPBACK}:{server.port}/metrics"
     except OSError as error:
         busy = f"port {port}: {error.strerror or error}"
     if port != 0:
         try:
-            stop = serve(registry, LOOPBACK, 0)
-            return stop, f"http://{LOOPBACK}:{stop.port}/metrics ({busy}, so a free port was taken)"
+            server = serve(registry, LOOPBACK, 0)
+            return server.stop, f"http://{LOOPBACK}:{server.port}/metrics ({busy}, so a free port was taken)"
         except OSError as error:
             busy += f"; any free port: {error.strerror or error}"
     return None, f"off ({busy})"

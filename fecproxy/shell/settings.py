@@ -1,0 +1,75 @@
+"""A daemon's core settings from its config, at start and on a SIGHUP reload.
+
+The cores can take new FEC, decoder and flow-timeout settings between blocks, so a reload applies
+those without dropping a flow.  What is bound to sockets or to the process's shape (role,
+addresses, metrics endpoint, socket buffers) cannot change under a running daemon: a reload
+reports such a change and keeps the running values until a restart.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from pathlib import Path
+
+from fecproxy.config import Config, ConfigError, load_config
+from fecproxy.protocol.decoder import DecoderSettings
+from fecproxy.protocol.encoder import EncoderSettings
+
+#: Config sections a reload cannot apply (they need new sockets or another role): a change to
+#: one is reported, and the running value is kept.
+RESTART_KEYS = ("role", "listen", "forward", "link", "metrics", "sockets")
+
+
+class ReloadRejected(Exception):
+    """The new config could not be used; ``errors`` is one line for the log."""
+
+    def __init__(self, errors: str):
+        super().__init__(errors)
+        self.errors = errors
+
+
+def encoder_settings(config: Config) -> EncoderSettings:
+    fec = config.fec
+    return EncoderSettings(
+        block_size=fec.block_size,
+        repair=fec.repair,
+        flush_interval=fec.flush_seconds,
+        max_datagram=fec.max_datagram_bytes,
+        short_block_repair=str(fec.short_block_repair),
+    )
+
+
+def decoder_settings(config: Config) -> DecoderSettings:
+    return DecoderSettings(
+        hold_time=config.decoder.hold_seconds,
+        max_open_blocks=config.decoder.max_open_blocks,
+        max_datagram=config.fec.max_datagram_bytes,
+    )
+
+
+def flow_idle_timeout(config: Config) -> float:
+    return float(config.flows.idle_timeout_s)
+
+
+def read_new_config(path: str | Path | None) -> Config:
+    """The config file as it is now; raises ReloadRejected saying why it cannot be used."""
+    if path is None:
+        raise ReloadRejected("this daemon was started without a config file, so there is nothing to reload")
+    try:
+        return load_config(path)
+    except ConfigError as error:  # also covers an unreadable file (ConfigUnreadable)
+        raise ReloadRejected("; ".join(error.messages)) from None
+
+
+def needs_restart(running: Config, new: Config) -> list[str]:
+    """The RESTART_KEYS sections that differ between the running config and the new one."""
+    return [key for key in RESTART_KEYS if getattr(new, key) != getattr(running, key)]
+
+
+def keep_fixed(running: Config, new: Config) -> Config:
+    """The running config after a reload: the new tunables, the running sockets and addresses.
+
+    The flow table keeps the size it was built with (``flows.max``) and logging keeps its start
+    setup (``log``), although the returned config shows the new values of both.
+    """
+    return dataclasses.replace(new, **{key: getattr(running, key) for key in RESTART_KEYS})

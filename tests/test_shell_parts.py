@@ -1,0 +1,154 @@
+"""The trio shell's small parts, each on its own: GRO splitting, structured log lines, the
+metrics collector against a stand-in daemon, and what a reload keeps.
+
+Sockets only on 127.0.0.1; no timing assertions.
+"""
+
+from __future__ import annotations
+
+import logging
+import socket
+import sys
+import urllib.request
+from io import StringIO
+from pathlib import Path
+
+import pytest
+
+from fecproxy.config import parse_config_text
+from fecproxy.protocol.decoder import DecoderStats
+from fecproxy.protocol.encoder import EncoderStats
+from fecproxy.shell import logs, udp
+from fecproxy.shell.metrics import DROP_REASONS, build_registry, serve
+from fecproxy.shell.settings import RESTART_KEYS, keep_fixed, needs_restart, read_new_config, ReloadRejected
+
+LOOPBACK = "127.0.0.1"
+
+
+# ------------------------------------------------------------------------------ udp
+
+
+def test_split_coalesced_cuts_at_the_segment_size_with_a_shorter_tail():
+    data = b"aaaabbbbcc"
+    assert udp.split_coalesced(data, 4) == [b"aaaa", b"bbbb", b"cc"]
+    assert udp.split_coalesced(data, 10) == [data]
+    assert udp.split_coalesced(data, 0) == [data]  # a zero segment size means "not coalesced"
+
+
+def test_gro_segment_size_reads_the_kernels_cmsg_and_defaults_to_the_read_size():
+    cmsg = (udp.SOL_UDP, udp.UDP_GRO, (300).to_bytes(4, sys.byteorder))  # a native int, as linux/udp.h sends it
+    assert udp.gro_segment_size([cmsg], 1200) == 300
+    assert udp.gro_segment_size([], 1200) == 1200
+    assert udp.gro_segment_size([(socket.SOL_SOCKET, 1, b"\0\0\0\0")], 1200) == 1200
+
+
+def test_gso_send_and_gro_read_round_trip_on_loopback():
+    receiver = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    sender = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    with receiver, sender:
+        receiver.bind((LOOPBACK, 0))
+        receiver.settimeout(5)
+        if not udp.enable_coalescing(receiver):
+            pytest.skip("no UDP_GRO on this kernel")
+        datagrams = [bytes([i]) * 100 for i in range(8)]
+        try:
+            sender.sendmsg([b"".join(datagrams)], udp.gso_control(100), 0, receiver.getsockname())
+        except OSError:
+            pytest.skip("no UDP_SEGMENT on this kernel")
+        got: list[bytes] = []
+        buffer = bytearray(udp.MAX_UDP_PAYLOAD)
+        while len(got) < len(datagrams):
+            size, ancillary, _, _ = receiver.recvmsg_into([buffer], udp.GRO_CMSG_SPACE)
+            got += udp.split_coalesced(bytes(buffer[:size]), udp.gro_segment_size(ancillary, size))
+        assert got == datagrams
+
+
+def test_udp_log_lines_are_structured_events():
+    stream = StringIO()
+    handler = logging.StreamHandler(stream)
+    handler.setFormatter(logs.KeyValueFormatter())
+    udp.log.addHandler(handler)
+    try:
+        logs.log_event(udp.log, logging.ERROR, "gso_unavailable", error="[Errno 5] EIO", fallback="sendto")
+    finally:
+        udp.log.removeHandler(handler)
+    line = stream.getvalue().strip()
+    assert " event=gso_unavailable " in line and "event=event=" not in line
+    assert line.endswith('error="[Errno 5] EIO" fallback=sendto')
+
+
+def test_no_shell_module_writes_its_own_event_field():
+    """Every shell log line goes through logs.log_event, which writes event= itself."""
+    shell = Path(udp.__file__).parent
+    for path in shell.glob("*.py"):
+        assert "event=" not in path.read_text(encoding="utf-8").replace("event={", ""), path.name
+
+
+# ------------------------------------------------------------------------------ metrics
+
+
+class StandInDaemon:
+    """Only what metrics.DaemonView declares: the collector must need nothing more."""
+
+    role = "receiver"
+    block_shape = (8, 2)
+    reloads = {"applied": 1, "rejected": 0}
+
+    def __init__(self):
+        self.encoder_stats = EncoderStats()
+        self.decoder_stats = DecoderStats()
+        self.decoder_stats.recovered = 3
+
+    def drop_counts(self):
+        return {"late": 2}
+
+    def send_errors(self):
+        return 0
+
+    def flow_count(self):
+        return 1
+
+    def loss_estimate(self):
+        return (0.05, 2.0)
+
+
+def test_collector_reads_only_the_daemon_view_and_serve_exposes_it():
+    registry, _ = build_registry(StandInDaemon())
+    server = serve(registry, LOOPBACK, 0)
+    try:
+        assert server.address == (LOOPBACK, server.port) and server.port > 0
+        with urllib.request.urlopen(f"http://{LOOPBACK}:{server.port}/metrics", timeout=5) as response:
+            text = response.read().decode()
+    finally:
+        server.stop()
+    assert "fecproxy_datagrams_recovered_total 3.0" in text
+    assert 'fecproxy_packets_dropped_total{reason="late"} 2.0' in text
+    assert all(f'reason="{reason}"' in text for reason in DROP_REASONS)
+    assert 'fecproxy_info{k="8",m="2",role="receiver"' in text
+    assert "fecproxy_link_loss_ratio 0.05" in text
+
+
+# ------------------------------------------------------------------------------ reload
+
+SENDER = """
+role: sender
+listen: 127.0.0.1:5000
+link: {{bind: 127.0.0.1:0, peer: 127.0.0.1:6000}}
+fec: {{block_size: {k}, repair: 4}}
+"""
+
+
+def test_reload_takes_tunables_and_keeps_what_needs_a_restart():
+    running = parse_config_text(SENDER.format(k=16))
+    new = parse_config_text(SENDER.format(k=8).replace("5000", "5001"))
+    assert needs_restart(running, new) == ["listen"]
+    kept = keep_fixed(running, new)
+    assert kept.fec.block_size == 8
+    assert all(getattr(kept, key) == getattr(running, key) for key in RESTART_KEYS)
+
+
+def test_reload_without_a_config_file_is_rejected_with_a_reason(tmp_path):
+    with pytest.raises(ReloadRejected, match="without a config file"):
+        read_new_config(None)
+    with pytest.raises(ReloadRejected, match="cannot read"):
+        read_new_config(tmp_path / "missing.yaml")
