@@ -20,6 +20,7 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "impair": ("fecproxy.commands.impair", "relay UDP between two addresses through an emulated lossy link"),
     "plan": ("fecproxy.commands.plan", "choose k, m and interleaving for a link from its loss and burst figures"),
     "bench": ("fecproxy.commands.bench", "measure codec and pipeline speed against a baseline run side by side"),
+    "keygen": ("fecproxy.commands.keygen", "write a new pre-shared link key file (mode 0600) for auth.key_file"),
 }
 
 
