@@ -31,6 +31,8 @@ from enum import Enum
 
 #: Bits per ring block (RFC 6479 §2 uses the machine word; Python ints of 64 bits stay small).
 BLOCK_BITS = 64
+_SHIFT = BLOCK_BITS.bit_length() - 1  # sequence >> _SHIFT is the block number
+_BIT = BLOCK_BITS - 1  # sequence & _BIT is the bit within its block
 #: RFC 4303 §3.4.3: the window MUST be at least 32 and SHOULD be at least 64 packets wide.
 MIN_WINDOW = 64
 #: 16 384 packets.  A packet later than the decoder's hold time (500 ms by default) no longer
@@ -76,7 +78,7 @@ class ReplayWindow:
             return Verdict.FRESH
         if highest - sequence >= self.window:
             return Verdict.TOO_OLD
-        if self._blocks[(sequence >> 6) % self._ring] >> (sequence & 63) & 1:
+        if self._blocks[(sequence >> _SHIFT) % self._ring] >> (sequence & _BIT) & 1:
             return Verdict.DUPLICATE
         return Verdict.FRESH
 
@@ -90,12 +92,12 @@ class ReplayWindow:
             self._blocks = [0] * ring
             self.highest = sequence
         elif sequence > highest:
-            top_block = highest >> 6
-            entered = min((sequence >> 6) - top_block, ring)
+            top_block = highest >> _SHIFT
+            entered = min((sequence >> _SHIFT) - top_block, ring)
             blocks = self._blocks
             for step in range(1, entered + 1):
                 blocks[(top_block + step) % ring] = 0
             self.highest = sequence
         elif highest - sequence >= self.window:
             raise ValueError(f"sequence {sequence} is too old to commit (highest {highest})")
-        self._blocks[(sequence >> 6) % ring] |= 1 << (sequence & 63)
+        self._blocks[(sequence >> _SHIFT) % ring] |= 1 << (sequence & _BIT)
