@@ -371,3 +371,14 @@ def test_print_cost_per_packet(capsys):
         print("\nper 1200-byte packet, best of 5 rounds:")
         for name, micros in rows.items():
             print(f"  {name:40s} {micros:7.2f} µs  ({micros / baseline:5.2f}× wire.parse)")
+
+
+def test_a_short_plain_packet_is_reported_as_untagged_not_truncated():
+    # A peer without a key sends plain packets, some shorter than a trailer: say what is wrong.
+    short = wire.encode_source(SESSION, 1, 0, 0, b"")
+    assert len(short) < auth.MIN_PROTECTED_BYTES
+    assert reject(short, ring()).kind == "no_tag"
+    assert reject(short[:5], ring()).kind == "truncated"
+    with pytest.raises(auth.AuthError) as caught:
+        auth.open_packet(short, ring(), ReplayWindow())
+    assert caught.value.kind == "no_tag"

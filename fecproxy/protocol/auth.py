@@ -239,12 +239,18 @@ def peek_trailer(packet: bytes) -> tuple[int, int, int]:
     return session, key_id, sequence
 
 
+def _require_tag_flag(packet: bytes) -> None:
+    """A plain packet (even one shorter than a trailer) is reported as untagged, not truncated:
+    that is what a peer without a key sends."""
+    if len(packet) >= HEADER_BYTES and not packet[1] & FLAG_AUTH:
+        raise AuthError("no_tag", "packet carries no authentication tag: the peer has no auth.key_file set")
+
+
 def verify(packet: bytes, keyring: Keyring) -> Verified:
     """Check a packet's tag (and decrypt it); return the version-1 packet or raise AuthError."""
-    session, key_id, sequence = peek_trailer(packet)
+    _require_tag_flag(packet)
     flags = packet[1]
-    if not flags & FLAG_AUTH:
-        raise AuthError("no_tag", "packet carries no authentication tag: the peer has no auth.key_file set")
+    session, key_id, sequence = peek_trailer(packet)
     encrypted = bool(flags & FLAG_ENCRYPTED)
     if encrypted != keyring.encrypt:
         peer, here = ("encrypts", "does not") if encrypted else ("does not encrypt", "does")
@@ -291,6 +297,7 @@ def open_packet(packet: bytes, keyring: Keyring, window: ReplayWindow) -> Verifi
     ``window`` is the replay window of the packet's session (the caller picks it by the header's
     session field, e.g. from :func:`peek_trailer`).  Raises AuthError or ReplayedPacket.
     """
+    _require_tag_flag(packet)
     _, _, sequence = peek_trailer(packet)
     verdict = window.check(sequence)
     if not verdict.accepted:
