@@ -249,8 +249,8 @@ def _require_tag_flag(packet: bytes) -> None:
 def verify(packet: bytes, keyring: Keyring) -> Verified:
     """Check a packet's tag (and decrypt it); return the version-1 packet or raise AuthError."""
     _require_tag_flag(packet)
-    flags = packet[1]
     session, key_id, sequence = peek_trailer(packet)
+    flags = packet[1]
     encrypted = bool(flags & FLAG_ENCRYPTED)
     if encrypted != keyring.encrypt:
         peer, here = ("encrypts", "does not") if encrypted else ("does not encrypt", "does")
