@@ -254,13 +254,13 @@ def verify(packet: bytes, keyring: Keyring) -> Verified:
     encrypted = bool(flags & FLAG_ENCRYPTED)
     if encrypted != keyring.encrypt:
         peer, here = ("encrypts", "does not") if encrypted else ("does not encrypt", "does")
-        raise AuthError("mode_mismatch", f"the peer {peer} (auth.encrypt) but this side {here}: set auth.encrypt alike on both sides", key_id)
+        raise AuthError("mode_mismatch", f"the peer {peer} (auth.encrypt) but this side {here}: set auth.encrypt alike on both sides (or the packet is forged)", key_id)
     candidates = keyring.candidates(key_id)
     if not candidates:
         ours = ", ".join(f"0x{known:02x}" for known in keyring.key_ids)
         raise AuthError(
             "unknown_key",
-            f"packet made with key id 0x{key_id:02x}, this side has {ours}: the two sides have different key files",
+            f"packet made with key id 0x{key_id:02x}, this side has {ours}: the two sides have different key files (or the packet is forged)",
             key_id,
         )
     tag_start = len(packet) - TAG_BYTES
