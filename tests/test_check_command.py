@@ -64,7 +64,7 @@ def test_output_fills_in_defaults(capsys, tmp_path):
     }
     assert effective["link"] == {"bind": "127.0.0.1:0", "peer": "127.0.0.1:7000"}
     assert effective["forward"] is None and effective["metrics"] == {"listen": None}
-    assert list(effective) == ["role", "listen", "forward", "link", "fec", "decoder", "flows", "sockets", "log", "metrics"]
+    assert list(effective) == ["role", "listen", "forward", "link", "fec", "decoder", "flows", "sockets", "log", "metrics", "auth"]
 
 
 def test_quiet_prints_nothing_when_valid(capsys, tmp_path):

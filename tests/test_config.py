@@ -391,7 +391,7 @@ def test_deep_nesting_does_not_crash():
 
 def test_effective_has_every_key_in_yaml_nesting():
     effective = parse_config(SENDER).effective()
-    assert list(effective) == ["role", "listen", "forward", "link", "fec", "decoder", "flows", "sockets", "log", "metrics"]
+    assert list(effective) == ["role", "listen", "forward", "link", "fec", "decoder", "flows", "sockets", "log", "metrics", "auth"]
     assert effective["fec"] == {
         "block_size": 16,
         "repair": 4,

@@ -38,7 +38,13 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 def render_effective(config, source: str) -> str:
     """The effective settings as YAML, in the config's own key order, with a header comment."""
     body = yaml.safe_dump(config.effective(), sort_keys=False, allow_unicode=True, default_flow_style=False)
-    return f"# {source}: valid; effective settings (defaults filled in, null = not set)\n{body}"
+    header = f"# {source}: valid; effective settings (defaults filled in, null = not set)\n"
+    auth = config.auth
+    if auth.key is not None:
+        # Only the key ids (they travel in every packet): compare them with the peer's output.
+        previous = f", previous key id 0x{auth.previous_key.key_id:02x}" if auth.previous_key is not None else ""
+        header += f"# auth: key id 0x{auth.key.key_id:02x}{previous} (the keys themselves are never shown)\n"
+    return header + body
 
 
 def main(args: argparse.Namespace) -> int:

@@ -2,11 +2,11 @@
 
 Modules: :mod:`~fecproxy.config.schema` (sections, defaults, limits, the checker table),
 :mod:`~fecproxy.config.addresses` (HOST:PORT in and out), :mod:`~fecproxy.config.loading`
-(file and YAML reading), :mod:`~fecproxy.config.messages` (how faults are worded).
+(file and YAML reading, key files), :mod:`~fecproxy.config.messages` (how faults are worded).
 """
 
 from fecproxy.config.addresses import Address, AddressError, format_sockaddr, parse_address
-from fecproxy.config.loading import MAX_CONFIG_FILE_BYTES, load_config, parse_config_text
+from fecproxy.config.loading import MAX_CONFIG_FILE_BYTES, load_config, load_keys, parse_config_text, read_key_file
 from fecproxy.config.schema import *  # noqa: F401,F403 - the schema's names are this package's API
 from fecproxy.config.schema import Config, ConfigError, ConfigUnreadable, parse_config
 
@@ -19,6 +19,8 @@ __all__ = [
     "MAX_CONFIG_FILE_BYTES",
     "format_sockaddr",
     "load_config",
+    "load_keys",
+    "read_key_file",
     "parse_address",
     "parse_config",
     "parse_config_text",

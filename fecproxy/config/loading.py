@@ -1,12 +1,16 @@
-"""Reading a config file: bytes -> UTF-8 text -> YAML (duplicate keys caught) -> Config."""
+"""Reading a config file: bytes -> UTF-8 text -> YAML (duplicate keys caught) -> Config,
+then the key files it names (auth.key_file, auth.previous_key_file) -> keys in the Config."""
 
 from __future__ import annotations
 
+import dataclasses
+import os
 from pathlib import Path
 
 import yaml
 
 from fecproxy.config.schema import Config, ConfigError, ConfigUnreadable, parse_config
+from fecproxy.protocol.keys import MAX_KEY_FILE_BYTES, KeyFileError, MasterKey, check_key_file_mode, parse_key_text
 
 #: A config file is a few hundred bytes; refusing more than 1 MiB keeps a wrong path (a log, a
 #: disk image) from being read into memory and parsed.
@@ -94,7 +98,68 @@ def load_config(path: str | Path) -> Config:
         text = data.decode("utf-8-sig")
     except UnicodeDecodeError as error:
         raise ConfigError([f"{source}: byte {error.start} is not UTF-8; expected a UTF-8 text file"]) from None
-    return parse_config_text(text, source)
+    config = parse_config_text(text, source)
+    return load_keys(config, source, Path(path).parent)
+
+
+def key_file_path(written: str, base: Path) -> Path:
+    """Where a key file named in the config lives: relative paths are taken from the config
+    file's directory, so the daemon finds it whatever its working directory."""
+    return base / Path(written).expanduser()
+
+
+def read_key_file(path: Path) -> MasterKey:
+    """Open, check the mode of what was opened (no race with a swapped file), read, parse.
+
+    Raises KeyFileError naming the file and what to do.
+    """
+    shown = str(path)
+    try:
+        descriptor = os.open(path, os.O_RDONLY | getattr(os, "O_CLOEXEC", 0) | getattr(os, "O_NONBLOCK", 0))
+    except FileNotFoundError:
+        raise KeyFileError(f"{shown}: no such key file; create one with `fecproxy keygen {shown}` and copy it to the peer") from None
+    except OSError as error:
+        raise KeyFileError(
+            f"{shown}: cannot read the key file ({error.strerror or error}); make it readable by the user fecproxy runs as, "
+            f"and by no one else (chmod 600)"
+        ) from None
+    try:
+        check_key_file_mode(os.fstat(descriptor).st_mode, shown)
+        data = os.read(descriptor, MAX_KEY_FILE_BYTES + 1)
+    except OSError as error:
+        raise KeyFileError(f"{shown}: cannot read the key file ({error.strerror or error})") from None
+    finally:
+        os.close(descriptor)
+    if len(data) > MAX_KEY_FILE_BYTES:
+        raise KeyFileError(f"{shown}: larger than {MAX_KEY_FILE_BYTES} bytes, so not a key file; expected 64 hexadecimal digits")
+    return parse_key_text(data.decode("ascii", errors="replace"), shown)
+
+
+def load_keys(config: Config, source: str, base: Path) -> Config:
+    """Read the key files the config names; ConfigError listing every fault (the keys never
+    appear in a message)."""
+    auth = config.auth
+    if auth.key_file is None:
+        return config
+    errors: list[str] = []
+    loaded: dict[str, MasterKey] = {}
+    for name in ("key_file", "previous_key_file"):
+        written = getattr(auth, name)
+        if written is None:
+            continue
+        try:
+            loaded[name] = read_key_file(key_file_path(written, base))
+        except KeyFileError as error:
+            errors.append(f"{source}: auth.{name}: {error}")
+    if not errors and "previous_key_file" in loaded and loaded["key_file"] == loaded["previous_key_file"]:
+        errors.append(
+            f"{source}: auth.previous_key_file: holds the same key as auth.key_file; expected the old key during a "
+            f"rollover, or no previous_key_file"
+        )
+    if errors:
+        raise ConfigError(errors)
+    keys = dataclasses.replace(auth, key=loaded["key_file"], previous_key=loaded.get("previous_key_file"))
+    return dataclasses.replace(config, auth=keys)
 
 
 def parse_config_text(text: str, source: str = "<text>") -> Config:

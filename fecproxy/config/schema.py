@@ -15,11 +15,13 @@ sections, :class:`ConfigError`, and the named limits and defaults.
 from __future__ import annotations
 
 import dataclasses
+import importlib.util
 from collections.abc import Callable, Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from enum import StrEnum
 
 from fecproxy.protocol import wire
+from fecproxy.protocol.keys import MasterKey
 from fecproxy.protocol.repair_rule import repair_count
 from fecproxy.config.addresses import Address, AddressError, parse_address
 from fecproxy.config.messages import closest, key_text, kind_of, or_list, show_value
@@ -213,6 +215,26 @@ class MetricsSection:
 
 
 @dataclass(frozen=True)
+class AuthSection:
+    """Packet authentication with a pre-shared key (RFC 6363 §9); off when key_file is unset.
+
+    ``key_file`` and ``previous_key_file`` are paths as written in the YAML (relative ones are
+    taken from the config file's directory).  :func:`fecproxy.config.load_config` reads them and
+    fills ``key`` and ``previous_key``; the keys never appear in a repr or in :meth:`Config.effective`.
+    """
+
+    key_file: str | None = None  # 64 hex digits, mode 0600 (`fecproxy keygen PATH`)
+    previous_key_file: str | None = None  # also accepted during a key rollover
+    encrypt: bool = False  # ChaCha20-Poly1305 over source and repair packets alike
+    key: MasterKey | None = field(default=None, repr=False)
+    previous_key: MasterKey | None = field(default=None, repr=False)
+
+    @property
+    def enabled(self) -> bool:
+        return self.key_file is not None
+
+
+@dataclass(frozen=True)
 class Config:
     """One daemon's settings.  Build it with :func:`parse_config` or :func:`load_config`."""
 
@@ -226,18 +248,20 @@ class Config:
     sockets: SocketsSection = SocketsSection()
     log: LogSection = LogSection()
     metrics: MetricsSection = MetricsSection()
+    auth: AuthSection = AuthSection()
 
     def effective(self) -> dict:
         """Every key with defaults filled in, nested as in the YAML; absent addresses are None.
 
         The result is plain data (str, int, bool, None): safe to dump as YAML and to feed back
-        to :func:`parse_config`, which gives an equal Config.
+        to :func:`parse_config`, which gives an equal Config (keys loaded from key files aside:
+        only their paths are shown).
         """
         document: dict = {}
         for name in TOP_LEVEL_KEYS:
             value = getattr(self, name)
-            if dataclasses.is_dataclass(value) and not isinstance(value, Address):
-                document[name] = {f.name: _plain(getattr(value, f.name)) for f in dataclasses.fields(value)}
+            if name in _SECTIONS:  # the YAML keys only: never the loaded key material
+                document[name] = {key: _plain(getattr(value, key)) for key in _SECTIONS[name][1]}
             else:
                 document[name] = _plain(value)
         return document
@@ -334,6 +358,17 @@ class _AddressField:
             raise _Bad(f"{error}; expected {self.expected}") from None
 
 
+class _FilePath:
+    expected = "the path of a key file, e.g. /etc/fecproxy/link.key (made by `fecproxy keygen PATH`)"
+
+    def __call__(self, value):
+        if not isinstance(value, str):
+            raise _Bad(f"is {kind_of(value)}; expected {self.expected}")
+        if not value.strip() or "\0" in value:
+            raise _Bad(f"is not a usable path; expected {self.expected}")
+        return value
+
+
 _ADDRESS_TO_BIND = _AddressField(bindable=True)
 _DESTINATION = _AddressField(bindable=False)
 
@@ -341,7 +376,7 @@ _DESTINATION = _AddressField(bindable=False)
 # The schema table: YAML key -> checker, with defaults taken from the dataclasses above.
 # --------------------------------------------------------------------------------------------
 
-TOP_LEVEL_KEYS = ("role", "listen", "forward", "link", "fec", "decoder", "flows", "sockets", "log", "metrics")
+TOP_LEVEL_KEYS = ("role", "listen", "forward", "link", "fec", "decoder", "flows", "sockets", "log", "metrics", "auth")
 
 _TOP_SCALARS: dict[str, Callable] = {
     "role": _Choice(Role, "role"),
@@ -397,10 +432,14 @@ _SECTIONS: dict[str, tuple[type, dict[str, Callable]]] = {
     ),
     "log": (LogSection, {"level": _Choice(LogLevel, "log level"), "format": _Choice(LogFormat, "log format")}),
     "metrics": (MetricsSection, {"listen": _ADDRESS_TO_BIND}),
+    "auth": (AuthSection, {"key_file": _FilePath(), "previous_key_file": _FilePath(), "encrypt": _Boolean()}),
 }
 
 #: Keys whose absence (or null) means "not set" rather than "take a default".
-_OPTIONAL = {"listen", "forward", "link.peer", "metrics.listen"}
+_OPTIONAL = {"listen", "forward", "link.peer", "metrics.listen", "auth.key_file", "auth.previous_key_file"}
+#: The optional package behind auth.encrypt, and how to get it.
+CRYPTO_PACKAGE = "cryptography"
+CRYPTO_INSTALL_HINT = "pip install 'fecproxy[crypto]'"
 
 #: Role rules, looked up by role: key -> "required" | "forbidden" | "optional".
 _ROLE_RULES: dict[Role, dict[str, str]] = {
@@ -424,9 +463,9 @@ def _all_paths() -> list[str]:
 def _defaults() -> dict[str, object]:
     """path -> default value; required keys are absent from this map."""
     defaults: dict[str, object] = {}
-    for section, (cls, _) in _SECTIONS.items():
+    for section, (cls, keys) in _SECTIONS.items():
         for f in dataclasses.fields(cls):
-            if f.default is not dataclasses.MISSING:
+            if f.name in keys and f.default is not dataclasses.MISSING:
                 defaults[f"{section}.{f.name}"] = f.default
     for name in ("listen", "forward"):
         defaults[name] = None
@@ -473,6 +512,7 @@ class _Parser:
         self.check_role()
         self.check_fec()
         self.check_addresses()
+        self.check_auth()
         if self.errors:
             raise ConfigError(self.errors)
         return self.build()
@@ -576,6 +616,29 @@ class _Parser:
                     f"expected {_PURPOSE[path]}, which must differ from link.bind",
                 )
 
+    def check_auth(self) -> None:
+        key_file = self.values.get("auth.key_file")
+        previous = self.values.get("auth.previous_key_file")
+        if key_file is None and "auth.key_file" not in self.bad:
+            if previous is not None:
+                self.error(
+                    "auth.previous_key_file",
+                    f"{show_value(previous)} is set without auth.key_file; expected auth.key_file (the key this side "
+                    f"sends with) as well: previous_key_file is only the second key accepted during a rollover",
+                )
+            if self.values.get("auth.encrypt") is True:
+                self.error("auth.encrypt", "true needs auth.key_file; expected a key file on both sides (`fecproxy keygen PATH`)")
+        if key_file is not None and previous is not None and key_file == previous:
+            self.error(
+                "auth.previous_key_file",
+                f"{show_value(previous)} is the same file as auth.key_file; expected the old key's file during a rollover, or no previous_key_file",
+            )
+        if self.values.get("auth.encrypt") is True and not crypto_available():
+            self.error(
+                "auth.encrypt",
+                f"true needs the {CRYPTO_PACKAGE} package, which is not installed; run {CRYPTO_INSTALL_HINT}, or set auth.encrypt: false",
+            )
+
     def build(self) -> Config:
         sections = {}
         for name, (cls, keys) in _SECTIONS.items():
@@ -603,6 +666,11 @@ def _is_self(destination: Address, bind: Address) -> bool:
     if destination.host == bind.host:
         return True
     return bind.is_unspecified and destination.is_loopback and destination.is_ipv6 == bind.is_ipv6
+
+
+def crypto_available() -> bool:
+    """Whether auth.encrypt can work here: the optional ChaCha20-Poly1305 provider is installed."""
+    return importlib.util.find_spec(CRYPTO_PACKAGE) is not None
 
 
 def parse_config(document: object, source: str = "<config>") -> Config:
