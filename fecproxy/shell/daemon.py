@@ -29,7 +29,8 @@ import trio
 from fecproxy import __version__
 from fecproxy.linkmodel.estimator import LossEstimator
 from fecproxy.config import Config, ConfigError, load_config
-from fecproxy.protocol.decoder import BlockDecoder, BlockReport, DecoderSettings, Delivery, Dropped, SessionStarted
+from fecproxy.protocol.decoder import BlockDecoder, DecoderSettings
+from fecproxy.protocol.events import BlockReport, Delivery, DropReason, Dropped, SessionStarted
 from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
 from fecproxy.protocol.flows import FlowTable
 from fecproxy.shell.logs import log_event
@@ -95,7 +96,7 @@ class Daemon:
         idle = float(config.flows.idle_timeout_s)
         self.flows: FlowTable = FlowTable(config.flows.max, idle)
         self.reloads: dict[str, int] = {}
-        self._drops: dict[str, int] = defaultdict(int)
+        self._drops: dict[DropReason, int] = defaultdict(int)
         self._upstream: dict[int, _Upstream] = {}
         self._link_writer: DatagramWriter | None = None
         self._app_writer: DatagramWriter | None = None
@@ -215,7 +216,7 @@ class Daemon:
         if self._stopping or self._nursery is None:
             return
         self._stopping = True
-        await self._send_to_peer(self.encoder.flush())
+        await self._send_to_peer(self.encoder.close())
         self._handle_events(self.decoder.close(), trio.current_time())
         self._nursery.cancel_scope.cancel()
 
@@ -246,7 +247,7 @@ class Daemon:
                 if flow is unseen:
                     flow = flow_of[address] = flows.flow_for(address, now)
                 if flow is None:
-                    self._drops["flow_limit"] += 1
+                    self._drops[DropReason.FLOW_LIMIT] += 1
                     continue
                 items.append((data, flow))
             await self._encode_and_send(items, now)
@@ -255,21 +256,21 @@ class Daemon:
         """Frame a batch (blocks it fills share codec calls, see BlockEncoder.send_batch) and
         put it on the link."""
         encoder = self.encoder
-        oversize = encoder.stats.dropped.get("oversize", 0)
+        oversize = encoder.stats.dropped.get(DropReason.OVERSIZE, 0)
         try:
             out = encoder.send_batch(items, now)
         except Exception:  # a bug must cost one batch, never the daemon
             self._internal_error("encoder")
             out = []
-        dropped = encoder.stats.dropped.get("oversize", 0) - oversize
+        dropped = encoder.stats.dropped.get(DropReason.OVERSIZE, 0) - oversize
         if dropped:
-            log_event(log, logging.DEBUG, "dropped", reason="oversize", count=dropped,
+            log_event(log, logging.DEBUG, "dropped", reason=DropReason.OVERSIZE, count=dropped,
                       detail=f"datagrams over max_datagram {encoder.settings.max_datagram} bytes")
         await self._send_to_peer(out)
         self._reschedule()
 
     def _internal_error(self, where: str) -> None:
-        self._drops["internal_error"] += 1
+        self._drops[DropReason.INTERNAL_ERROR] += 1
         log.error("internal_error", exc_info=True, extra={"fields": {"where": where}})
 
     async def _link_loop(self) -> None:
@@ -285,7 +286,7 @@ class Daemon:
             deliveries: list[Delivery] = []
             for data, address in batch:
                 try:
-                    events = receive(data, now)
+                    events, in_session = receive(data, now)
                 except Exception:  # a bug must cost one packet, never the daemon
                     self._internal_error("decoder")
                     continue
@@ -300,7 +301,8 @@ class Daemon:
                     else:
                         valid = valid and kind is not Dropped
                         self._handle_event(event, now)
-                if learn and valid and self.decoder.in_session and address != self.peer:
+                # The peer is learnt only from a valid packet of the adopted session that dropped nothing.
+                if learn and in_session and valid and address != self.peer:
                     if self.peer is not None:
                         log_event(log, logging.INFO, "peer_changed", old=_fmt(self.peer), new=_fmt(address))
                     self.peer = address
@@ -380,7 +382,7 @@ class Daemon:
         if not packets:
             return
         if self.peer is None:
-            self._drops["no_peer"] += len(packets)
+            self._drops[DropReason.NO_PEER] += len(packets)
             return
         await self._link_writer.send(packets, self.peer)
 
@@ -419,7 +421,7 @@ class Daemon:
             if sender:
                 client = self.flows.key_for(flow)
                 if client is None:
-                    self._drops["unknown_flow"] += len(datagrams)
+                    self._drops[DropReason.UNKNOWN_FLOW] += len(datagrams)
                     continue
                 self.flows.touch(flow, now)
                 await self._app_writer.send(datagrams, client)
@@ -436,7 +438,7 @@ class Daemon:
             self.flows.touch(flow, now)
             return entry.writer
         if self.flows.flow_for(flow, now, flow=flow) is None:
-            self._drops["flow_limit"] += 1
+            self._drops[DropReason.FLOW_LIMIT] += 1
             return None
         family = socket.AF_INET6 if len(self._forward) == 4 else socket.AF_INET
         sock = socket.socket(family, socket.SOCK_DGRAM)
@@ -448,7 +450,7 @@ class Daemon:
         except OSError as error:
             sock.close()
             self.flows.remove(flow)
-            self._drops["unreachable"] += 1
+            self._drops[DropReason.UNREACHABLE] += 1
             log_event(log, logging.WARNING, "upstream_failed", forward=_fmt(self._forward), error=str(error))
             return None
         entry = _Upstream(sock, DatagramWriter(sock), trio.CancelScope())
