@@ -64,7 +64,7 @@ MAX_OPEN_BLOCKS_LIMIT = 65_536
 
 #: The flow id is one byte of the RFC 6363 §4 / RFC 6865 §4 source symbol, so at most 256 flows;
 #: the default is that ceiling.
-MAX_FLOWS_LIMIT = 256
+MAX_FLOWS_LIMIT = wire.MAX_FLOW_IDS
 DEFAULT_MAX_FLOWS = MAX_FLOWS_LIMIT
 #: Linux nf_conntrack forgets a UDP "stream" (traffic seen both ways) after 120 s (from memory);
 #: a proxy that keeps a flow as long as a NAT on the path would is unsurprising to operators.

@@ -56,6 +56,8 @@ SYMBOL_PREFIX = struct.Struct(">BH")
 SYMBOL_PREFIX_BYTES = SYMBOL_PREFIX.size
 
 SBN_MODULUS = 1 << 24
+#: The flow id is one byte of the source header and of the source symbol (RFC 6363 §4, RFC 6865 §4).
+MAX_FLOW_IDS = 1 << 8
 #: RFC 5510 §8.2 for GF(2^8): n ≤ 255 encoding symbols, so ESI ≤ 254 and k ≤ 255.
 MAX_K = MAX_ENCODING_SYMBOLS
 MAX_ESI = MAX_ENCODING_SYMBOLS - 1
