@@ -159,7 +159,7 @@ class BlockDecoder:
         address the shell may take as its peer's."""
         # Fast path for the two packets a clean link brings: a source packet of the adopted
         # session, and such a repair packet of a block already finished.  The same checks in the
-        # same order as wire.parse + _receive_parsed, with the same outcome, minus the packet
+        # same order as wire.parse + _receive_general, with the same outcome, minus the packet
         # object (tests/test_decoder_paths.py compares the two); anything else (another session,
         # a bad field, a repair packet still needed) takes the general path.
         size = len(data)
