@@ -20,7 +20,7 @@ from dataclasses import dataclass
 from enum import StrEnum
 
 from fecproxy.protocol import decoder as _decoder, encoder as _encoder, wire
-from fecproxy.protocol.repair_rule import ShortBlockRepair, repair_count
+from fecproxy.protocol.repair_rule import DEFAULT_SHORT_BLOCK_REPAIR, ShortBlockRepair, repair_count
 from fecproxy.config.addresses import Address, AddressError, parse_address
 from fecproxy.config.messages import closest, key_text, kind_of, or_list, show_value
 
@@ -134,7 +134,7 @@ class FecSection:
     repair: int = DEFAULT_REPAIR  # m
     flush_ms: int = DEFAULT_FLUSH_MS
     max_datagram_bytes: int = DEFAULT_MAX_DATAGRAM_BYTES
-    short_block_repair: ShortBlockRepair = ShortBlockRepair.PROPORTIONAL
+    short_block_repair: ShortBlockRepair = DEFAULT_SHORT_BLOCK_REPAIR
     allow_repair_above_source: bool = False
 
     @property

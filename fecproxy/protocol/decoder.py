@@ -16,7 +16,7 @@ Sender sessions
 Every packet carries the sender's 32-bit session value, new at each sender start.  The decoder
 follows one *adopted* session; what a valid packet of session s does depends on the state (A is
 the adopted session, C the candidate, "quiet" means A sent no valid packet for ``hold_time``,
-"confirmed" means this is C's SESSION_CONFIRM_PACKETS-th distinct packet)::
+"confirmed" means SESSION_CONFIRM_PACKETS − 1 distinct packets of C are held already)::
 
     state       packet's session   condition      action                              next state
     ----------  -----------------  -------------  ----------------------------------  ----------
@@ -30,7 +30,8 @@ the adopted session, C the candidate, "quiet" means A sent no valid packet for `
     CANDIDATE   C                  A quiet or     adopt C (A retired), replay the     ADOPTED
                                    confirmed      held packets into C's blocks
     CANDIDATE   C                  otherwise      hold (drop "duplicate" if held)     CANDIDATE
-    CANDIDATE   other              A quiet        adopt s (A retired, C's dropped)    ADOPTED
+    CANDIDATE   other              A quiet        adopt s (A retired, C's packets     ADOPTED
+                                                  discarded)
     CANDIDATE   other              otherwise      s replaces C as candidate           CANDIDATE
 
 Adopting a session finishes the old one's open blocks as "superseded" and emits SessionStarted.

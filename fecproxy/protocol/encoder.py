@@ -29,7 +29,7 @@ import numpy as np
 from fecproxy.coding.codec import block_code
 from fecproxy.protocol import wire
 from fecproxy.protocol.events import DropReason
-from fecproxy.protocol.repair_rule import SHORT_BLOCK_RULES, ShortBlockRepair, repair_count
+from fecproxy.protocol.repair_rule import DEFAULT_SHORT_BLOCK_REPAIR, SHORT_BLOCK_RULES, repair_count
 
 #: 16 datagrams per block and 4 repair packets (25 % overhead) rides out 4 losses in 20 packets;
 #: on an i.i.d. 5 % link that leaves p·P[Binomial(19, 0.05) ≥ 4] ≈ 7e-4 residual loss per
@@ -60,7 +60,7 @@ class EncoderSettings:
     repair: int = DEFAULT_REPAIR  # m
     flush_interval: float = DEFAULT_FLUSH_INTERVAL  # seconds
     max_datagram: int = wire.DEFAULT_MAX_DATAGRAM
-    short_block_repair: str = ShortBlockRepair.PROPORTIONAL
+    short_block_repair: str = DEFAULT_SHORT_BLOCK_REPAIR
 
     def __post_init__(self) -> None:
         if not 1 <= self.block_size <= wire.MAX_K:

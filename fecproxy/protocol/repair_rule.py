@@ -22,9 +22,11 @@ class ShortBlockRepair(StrEnum):
 
 
 SHORT_BLOCK_RULES = tuple(rule.value for rule in ShortBlockRepair)
+#: The sender's default: the overhead stays m/k whatever the traffic's rhythm.
+DEFAULT_SHORT_BLOCK_REPAIR = ShortBlockRepair.PROPORTIONAL
 
 
-def repair_count(block_size: int, repair: int, k_actual: int, rule: str = ShortBlockRepair.PROPORTIONAL) -> int:
+def repair_count(block_size: int, repair: int, k_actual: int, rule: str = DEFAULT_SHORT_BLOCK_REPAIR) -> int:
     if not 1 <= k_actual <= block_size:
         raise ValueError(f"k_actual must be 1..{block_size}, got {k_actual!r}")
     if rule not in SHORT_BLOCK_RULES:
