@@ -6,8 +6,9 @@ Public library API (stable), importable from here:
 * :class:`BlockEncoder` / :class:`EncoderSettings` and :class:`BlockDecoder` /
   :class:`DecoderSettings` — the sans-IO sender and receiver cores (datagrams or packets and a
   ``now`` in; packets or events and the next deadline out);
-* the decoder's events :class:`Delivery`, :class:`BlockReport`, :class:`Dropped`,
-  :class:`SessionStarted`.
+* the decoder's events (base :class:`Event`) :class:`Delivery`, :class:`BlockReport`,
+  :class:`Dropped`, :class:`SessionStarted`, and the counter labels :class:`DropReason` and
+  :class:`BlockOutcome`.
 
 The names load on first use (PEP 562), so ``import fecproxy`` stays cheap for commands that need
 none of them, and the package root imports nothing eagerly (see tests/test_layers.py).
@@ -24,13 +25,15 @@ _PUBLIC = {
     "BlockCode": "fecproxy.coding.codec",
     "BlockEncoder": "fecproxy.protocol.encoder",
     "EncoderSettings": "fecproxy.protocol.encoder",
-    "DatagramTooLarge": "fecproxy.protocol.encoder",
     "BlockDecoder": "fecproxy.protocol.decoder",
     "DecoderSettings": "fecproxy.protocol.decoder",
-    "Delivery": "fecproxy.protocol.decoder",
-    "BlockReport": "fecproxy.protocol.decoder",
-    "Dropped": "fecproxy.protocol.decoder",
-    "SessionStarted": "fecproxy.protocol.decoder",
+    "Event": "fecproxy.protocol.events",
+    "Delivery": "fecproxy.protocol.events",
+    "BlockReport": "fecproxy.protocol.events",
+    "Dropped": "fecproxy.protocol.events",
+    "SessionStarted": "fecproxy.protocol.events",
+    "DropReason": "fecproxy.protocol.events",
+    "BlockOutcome": "fecproxy.protocol.events",
 }
 
 __all__ = ["__version__", *_PUBLIC]

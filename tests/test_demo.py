@@ -220,7 +220,7 @@ def test_link_tap_counts_packets_blocks_and_which_datagrams_the_link_lost():
         for data in packets:
             link.submit(data, now)  # the tap sees it through the link's on_air hook
         delivered += link.due(now)
-    for data in encoder.flush():
+    for data in encoder.close():
         link.submit(data, now)
     delivered += link.due(now)
     blocks = tap.finish()

@@ -36,7 +36,7 @@ def test_send_and_timer_count_the_bytes_they_return():
 def test_send_batch_counts_the_bytes_it_returns():
     encoder = BlockEncoder(EncoderSettings(block_size=8, repair=3, max_datagram=250), session=6)
     batch = [(data, 2) for data in datagrams(40, seed=2)]  # some above max_datagram: dropped
-    packets = encoder.send_batch(batch, now=0.0) + encoder.flush()
+    packets = encoder.send_batch(batch, now=0.0) + encoder.close()
     assert (encoder.stats.source_bytes, encoder.stats.repair_bytes) == split(packets)
 
 

@@ -17,7 +17,8 @@ from hypothesis import given, settings, strategies as st
 from fecproxy.protocol import encoder as encoder_module
 from fecproxy.coding import codec as codec_module
 from fecproxy.protocol import wire
-from fecproxy.protocol.decoder import BlockDecoder, Delivery
+from fecproxy.protocol.decoder import BlockDecoder
+from fecproxy.protocol.events import Delivery
 from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
 
 SESSION = 0x5EA7_0001
@@ -46,8 +47,8 @@ def run_both(settings_, batches, *, first_sbn=0):
             expected += one_by_one.send(datagram, flow, now)
         got += batched.send_batch(batch, now)
         assert one_by_one.next_deadline() == batched.next_deadline()
-    expected += one_by_one.flush()
-    got += batched.flush()
+    expected += one_by_one.close()
+    got += batched.close()
     return one_by_one, batched, expected, got
 
 
@@ -149,7 +150,7 @@ def test_update_during_a_batch_applies_from_the_next_block():
                 out += enc.send(data, flow, 0.1)
         else:
             out += enc.send_batch(second, 0.1)
-        out += enc.flush()
+        out += enc.close()
     assert got == expected
     assert [wire.parse(p, max_datagram=64).k for p in got if p[0] & 0x0F == wire.PacketType.REPAIR][:3] == [4, 2, 2]
 
@@ -187,7 +188,7 @@ def test_decoder_rebuilds_every_batched_block_that_lost_at_most_m(k, m, seed, dr
         lost = set(drops.sample(range(n), drops.randint(0, m)))
         kept += [p for i, p in enumerate(packets[block * n : (block + 1) * n]) if i not in lost]
     dec = BlockDecoder()
-    events = [event for p in kept for event in dec.receive(p, 0.002)]
+    events = [event for p in kept for event in dec.receive(p, 0.002)[0]]
     delivered = sorted((e.flow, e.data) for e in events if isinstance(e, Delivery))
     assert delivered == sorted((flow, data) for data, flow in sent)
     assert dec.stats.unrecovered == 0
@@ -202,7 +203,7 @@ def test_a_bad_item_midway_raises_and_leaves_the_block_consistent():
     packets = enc.send_batch([(b"third", 2), (b"4th", 2)], 0.001)
     assert len(packets) == 2 + 2  # two sources, then the block's two repair packets
     dec = BlockDecoder()
-    events = [event for p in packets for event in dec.receive(p, 0.002)]
+    events = [event for p in packets for event in dec.receive(p, 0.002)[0]]
     delivered = sorted((e.flow, e.data) for e in events if isinstance(e, Delivery))
     assert delivered == sorted([(1, b"first"), (1, b"second!"), (2, b"third"), (2, b"4th")])
     assert enc.next_deadline() is None

@@ -7,8 +7,9 @@ import pytest
 from hypothesis import given, settings, strategies as st
 
 from fecproxy.protocol import wire
-from fecproxy.protocol.decoder import BlockDecoder, BlockReport, DecoderSettings, Delivery, Dropped, SessionStarted
-from fecproxy.protocol.encoder import BlockEncoder, DatagramTooLarge, EncoderSettings
+from fecproxy.protocol.decoder import BlockDecoder, DecoderSettings
+from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
+from fecproxy.protocol.events import BlockReport, Delivery, Dropped, SessionStarted
 
 
 def make_block(k, m, sizes=None, *, session=1, seed=0, first_sbn=0):
@@ -30,7 +31,7 @@ def make_block(k, m, sizes=None, *, session=1, seed=0, first_sbn=0):
 def feed(decoder, packets, now=1.0):
     events = []
     for p in packets:
-        events += decoder.receive(p, now)
+        events += decoder.receive(p, now)[0]
     return events
 
 
@@ -183,11 +184,10 @@ def test_open_blocks_are_bounded_oldest_evicted_first():
     assert evicted == [0, 1] and all(r.outcome == "evicted" for r in reports(events))
 
 
-def test_oversize_datagram_is_refused_and_block_stays_intact():
+def test_oversize_datagram_is_counted_and_skipped_and_block_stays_intact():
     enc = BlockEncoder(EncoderSettings(block_size=2, repair=1, max_datagram=10), session=1)
     first = enc.send(b"a" * 10, 0, now=0)
-    with pytest.raises(DatagramTooLarge):
-        enc.send(b"b" * 11, 0, now=0)
+    assert enc.send(b"b" * 11, 0, now=0) == []
     second = enc.send(b"c" * 3, 0, now=0)
     dec = BlockDecoder(DecoderSettings(max_datagram=10))
     events = feed(dec, [first[0], second[1]])  # lose the second source, keep repair
@@ -196,7 +196,7 @@ def test_oversize_datagram_is_refused_and_block_stays_intact():
 
 
 def test_packets_contradicting_the_block_are_dropped_not_trusted():
-    # Without authentication (a later issue) the first consistent packet sets the block's shape;
+    # Without authentication (not in wire version 1) the first consistent packet sets the block's shape;
     # anything contradicting it afterwards is dropped and counted, and decoding stays correct.
     datagrams, packets = make_block(4, 2)
     dec = BlockDecoder()
@@ -271,11 +271,13 @@ def test_a_stray_packet_of_another_session_does_not_retire_the_live_one():
     dec = BlockDecoder()
     feed(dec, live[:1], now=1.0)
     stray = wire.encode_source(0xDEAD, 7, 0, 3, b"stray")
-    events = feed(dec, [stray], now=1.01)
+    events, stray_in_session = dec.receive(stray, 1.01)
     assert delivered(events) == [(3, b"stray")]  # its datagram is not lost
-    assert dec.session == 100 and not dec.in_session
-    events = feed(dec, live[2:3] + live[4:], now=1.02)  # the live session goes on and recovers
-    assert dec.in_session and sorted(delivered(events)) == sorted(datagrams[1:])
+    assert dec.session == 100 and not stray_in_session
+    events = feed(dec, live[2:3] + live[4:-1], now=1.02)  # the live session goes on and recovers
+    last_events, last_in_session = dec.receive(live[-1], 1.02)
+    events += last_events
+    assert last_in_session and sorted(delivered(events)) == sorted(datagrams[1:])
 
 
 def test_a_restarted_sender_is_adopted_after_confirmation_without_double_delivery():

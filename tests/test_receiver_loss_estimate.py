@@ -36,7 +36,8 @@ import pytest
 
 from fecproxy.linkmodel.estimator import LossEstimator
 from fecproxy.linkmodel.loss_models import GilbertElliott, GilbertElliottChannel
-from fecproxy.protocol.decoder import BlockDecoder, BlockReport, DecoderSettings
+from fecproxy.protocol.decoder import BlockDecoder, DecoderSettings
+from fecproxy.protocol.events import BlockReport
 from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
 from fecproxy.protocol.wire import parse
 from support.receiver_view import chained_burst_limit, invisible_share, visible_limits
@@ -91,7 +92,7 @@ def run_pair(channel: GilbertElliott, k: int, m: int, datagrams: int, seed: str)
             if position == 0:
                 truth.append(lost)
             if not lost:
-                take(decoder.receive(pkt, now))
+                take(decoder.receive(pkt, now)[0])
         take(decoder.on_timer(now))
     take(decoder.close())
     return {"reports": reports, "truth": np.array(truth), "decoder": decoder.stats, "link": on_link}

@@ -19,7 +19,8 @@ from fecproxy.config import parse_config_text
 from fecproxy.protocol.decoder import DecoderStats
 from fecproxy.protocol.encoder import EncoderStats
 from fecproxy.shell import logs, udp
-from fecproxy.shell.metrics import DROP_REASONS, build_registry, serve
+from fecproxy.protocol.events import DropReason
+from fecproxy.shell.metrics import build_registry, serve
 from fecproxy.shell.settings import RESTART_KEYS, keep_fixed, needs_restart, read_new_config, ReloadRejected
 
 LOOPBACK = "127.0.0.1"
@@ -123,7 +124,7 @@ def test_collector_reads_only_the_daemon_view_and_serve_exposes_it():
         server.stop()
     assert "fecproxy_datagrams_recovered_total 3.0" in text
     assert 'fecproxy_packets_dropped_total{reason="late"} 2.0' in text
-    assert all(f'reason="{reason}"' in text for reason in DROP_REASONS)
+    assert all(f'reason="{reason}"' in text for reason in DropReason)
     assert 'fecproxy_info{k="8",m="2",role="receiver"' in text
     assert "fecproxy_link_loss_ratio 0.05" in text
 

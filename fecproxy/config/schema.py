@@ -20,9 +20,9 @@ from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from enum import StrEnum
 
-from fecproxy.protocol import wire
+from fecproxy.protocol import decoder as _decoder, encoder as _encoder, wire
 from fecproxy.protocol.keys import MasterKey
-from fecproxy.protocol.repair_rule import repair_count
+from fecproxy.protocol.repair_rule import DEFAULT_SHORT_BLOCK_REPAIR, ShortBlockRepair, repair_count
 from fecproxy.config.addresses import Address, AddressError, parse_address
 from fecproxy.config.messages import closest, key_text, kind_of, or_list, show_value
 
@@ -33,28 +33,19 @@ from fecproxy.config.messages import closest, key_text, kind_of, or_list, show_v
 #: RFC 5510 §8.2: with GF(2^8) a block has n = k + m ≤ 255 encoding symbols.
 MAX_ENCODING_SYMBOLS = wire.MAX_K
 
-#: 16 datagrams per block and 4 repair packets (25 % overhead) rides out 4 losses in 20 packets;
-#: on an i.i.d. 5 % link that leaves p·P[Binomial(19, 0.05) ≥ 4] ≈ 7e-4 residual loss per
-#: datagram (formula from the design notes), while a block of 16 stays short enough to close
-#: quickly on busy flows.  Common practice, no source, for the pair itself.
-DEFAULT_BLOCK_SIZE = 16
-DEFAULT_REPAIR = 4
-
-#: A block that is not full after 20 ms is closed and protected as it is: 20 ms bounds the added
-#: recovery delay of sparse traffic at the scale of one voice frame (RFC 3551 §4.5 makes 20 ms
-#: the default audio packetisation interval; from memory).
-DEFAULT_FLUSH_MS = 20
+#: The sender's block shape and flush interval: the protocol core owns the defaults and their
+#: reasons (fecproxy.protocol.encoder); the config keys show them in their own units.
+DEFAULT_BLOCK_SIZE = _encoder.DEFAULT_BLOCK_SIZE
+DEFAULT_REPAIR = _encoder.DEFAULT_REPAIR
+DEFAULT_FLUSH_MS = round(_encoder.DEFAULT_FLUSH_INTERVAL * 1000)
 #: A block held open for more than a minute protects nothing in time for any real-time use, and
 #: keeps memory busy; beyond that the setting is surely a unit mistake (seconds for ms).
 MAX_FLUSH_MS = 60_000
 
-#: A repair packet is header (12 bytes) + symbol prefix (flow 1 + length 2, RFC 6363 §4) +
-#: datagram, and should fit a 1500-byte Ethernet MTU (RFC 894) less 20 bytes of IPv4 header
-#: (RFC 791) and 8 of UDP (RFC 768), with 32 bytes kept for an authentication tag later
-#: (HMAC-SHA-256, RFC 2104/6234): 1500 − 28 − 12 − 3 − 32 = 1425, rounded down to 1400.
-DEFAULT_MAX_DATAGRAM_BYTES = 1400
+#: The wire format owns the default and its reason (fecproxy.protocol.wire.DEFAULT_MAX_DATAGRAM).
+DEFAULT_MAX_DATAGRAM_BYTES = wire.DEFAULT_MAX_DATAGRAM
 #: Room reserved for a future authentication tag (HMAC-SHA-256 output is 32 bytes).
-AUTH_TAG_RESERVE_BYTES = 32
+AUTH_TAG_RESERVE_BYTES = wire.AUTH_TAG_RESERVE_BYTES
 #: The largest UDP payload over IPv4: 65535 − 20 (IPv4 header, RFC 791) − 8 (UDP, RFC 768).
 MAX_UDP_PAYLOAD_BYTES = 65_507
 #: The largest datagram whose repair packet (with the tag reserve) still fits one UDP datagram.
@@ -62,24 +53,20 @@ MAX_DATAGRAM_BYTES_LIMIT = (
     MAX_UDP_PAYLOAD_BYTES - wire.REPAIR_HEADER_BYTES - wire.SYMBOL_PREFIX_BYTES - AUTH_TAG_RESERVE_BYTES
 )
 
-#: 500 ms: an incomplete block waits this long for more packets.  It must exceed the sending
-#: side's flush_ms plus the link's delay spread; 500 ms covers a geostationary hop's jitter with
-#: room to spare (common practice, no source).  Same value as decoder.DEFAULT_HOLD_TIME.
-DEFAULT_HOLD_MS = 500
+#: The decoder owns the hold time and its reason (fecproxy.protocol.decoder.DEFAULT_HOLD_TIME).
+DEFAULT_HOLD_MS = round(_decoder.DEFAULT_HOLD_TIME * 1000)
 #: An hour-long hold is never useful; a minute is already generous and bounds the memory held.
 MAX_HOLD_MS = 60_000
 
-#: 256 open blocks of k=16 is 4096 datagrams in flight, ~80 ms at 50 000 datagrams/s; memory is
-#: at most 256 × (k + m) × (max_datagram + 3) bytes, ~7 MiB for k=16, m=4, 1400 bytes.
-#: Same value as decoder.DEFAULT_MAX_OPEN_BLOCKS.
-DEFAULT_MAX_OPEN_BLOCKS = 256
+#: The decoder owns the open-block bound and its reason (decoder.DEFAULT_MAX_OPEN_BLOCKS).
+DEFAULT_MAX_OPEN_BLOCKS = _decoder.DEFAULT_MAX_OPEN_BLOCKS
 #: Worst case 65536 × 255 × 1403 bytes would be ~23 GiB; this cap stops a typo, the operator
 #: still has to size memory for what they choose.
 MAX_OPEN_BLOCKS_LIMIT = 65_536
 
 #: The flow id is one byte of the RFC 6363 §4 / RFC 6865 §4 source symbol, so at most 256 flows;
 #: the default is that ceiling.
-MAX_FLOWS_LIMIT = 256
+MAX_FLOWS_LIMIT = wire.MAX_FLOW_IDS
 DEFAULT_MAX_FLOWS = MAX_FLOWS_LIMIT
 #: Linux nf_conntrack forgets a UDP "stream" (traffic seen both ways) after 120 s (from memory);
 #: a proxy that keeps a flow as long as a NAT on the path would is unsurprising to operators.
@@ -106,13 +93,6 @@ MAX_SOCKET_BUFFER_BYTES = (2**31 - 1) // 2
 class Role(StrEnum):
     SENDER = "sender"
     RECEIVER = "receiver"
-
-
-class ShortBlockRepair(StrEnum):
-    """How many repair packets a block closed early by its flush timer gets."""
-
-    PROPORTIONAL = "proportional"  # ceil(m·k'/k), at least 1 when m > 0: keeps the overhead ratio
-    FULL = "full"  # always m: strongest protection for sparse traffic, at up to m/k' overhead
 
 
 class LogLevel(StrEnum):
@@ -156,7 +136,7 @@ class FecSection:
     repair: int = DEFAULT_REPAIR  # m
     flush_ms: int = DEFAULT_FLUSH_MS
     max_datagram_bytes: int = DEFAULT_MAX_DATAGRAM_BYTES
-    short_block_repair: ShortBlockRepair = ShortBlockRepair.PROPORTIONAL
+    short_block_repair: ShortBlockRepair = DEFAULT_SHORT_BLOCK_REPAIR
     allow_repair_above_source: bool = False
 
     @property

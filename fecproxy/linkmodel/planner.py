@@ -31,7 +31,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from fecproxy.linkmodel.loss_models import GilbertElliott
-from fecproxy.protocol.repair_rule import SHORT_BLOCK_RULES, repair_count
+from fecproxy.protocol.repair_rule import DEFAULT_SHORT_BLOCK_REPAIR, SHORT_BLOCK_RULES, repair_count
 
 #: RFC 5510 §8.2: with GF(2^8) a block has at most 255 encoding symbols (source + repair).
 MAX_BLOCK_PACKETS = 255
@@ -42,7 +42,7 @@ MAX_OVERHEAD = 1.0
 DEFAULT_K_VALUES = (1, 2, 3, 4, 5, 6, 8, 10, 12, 16, 20, 24, 32, 40, 48, 64, 96, 128)
 #: The sender's default short-block rule (config ``fec.short_block_repair``), so a plan made without
 #: saying otherwise describes a sender run with its defaults.
-DEFAULT_SHORT_BLOCK_RULE = SHORT_BLOCK_RULES[0]  # "proportional"
+DEFAULT_SHORT_BLOCK_RULE = DEFAULT_SHORT_BLOCK_REPAIR.value
 #: Relative slack when comparing overheads and spans to budgets, so that m/k = 0.25 exactly
 #: meets a budget of 0.25 despite binary floating point.
 _BUDGET_SLACK = 1e-9

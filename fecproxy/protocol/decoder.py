@@ -5,33 +5,72 @@ any k packets of a block are in hand, its missing datagrams are rebuilt and deli
 once.  A block that can no longer complete is expired after the hold time and reported, so the
 shell can count loss on the link (before recovery) apart from loss after it (RFC 6363 §6).
 Memory is bounded: at most ``max_open_blocks`` blocks, each holding at most 255 packets of at most
-``max_datagram`` + 3 bytes, and a bounded memory of finished block numbers.
+``max_datagram`` + 3 bytes, a bounded memory of finished block numbers, and at most
+SESSION_CONFIRM_PACKETS − 1 packets of a candidate session.
+
+``receive`` returns the events and whether the packet was a valid packet of the adopted session:
+the shell learns its peer's address only from those.
+
+Sender sessions
+---------------
+Every packet carries the sender's 32-bit session value, new at each sender start.  The decoder
+follows one *adopted* session; what a valid packet of session s does depends on the state (A is
+the adopted session, C the candidate, "quiet" means A sent no valid packet for ``hold_time``,
+"confirmed" means SESSION_CONFIRM_PACKETS − 1 distinct packets of C are held already)::
+
+    state       packet's session   condition      action                              next state
+    ----------  -----------------  -------------  ----------------------------------  ----------
+    NO_SESSION  any                -              adopt s                             ADOPTED
+    ADOPTED     A                  -              admit to its block                  ADOPTED
+    ADOPTED     retired            -              drop "stale"                        ADOPTED
+    ADOPTED     other              A quiet        adopt s (A retired)                 ADOPTED
+    ADOPTED     other              otherwise      hold s's packet as candidate        CANDIDATE
+    CANDIDATE   A                  -              admit to its block                  CANDIDATE
+    CANDIDATE   retired            -              drop "stale"                        CANDIDATE
+    CANDIDATE   C                  A quiet or     adopt C (A retired), replay the     ADOPTED
+                                   confirmed      held packets into C's blocks
+    CANDIDATE   C                  otherwise      hold (drop "duplicate" if held)     CANDIDATE
+    CANDIDATE   other              A quiet        adopt s (A retired, C's packets     ADOPTED
+                                                  discarded)
+    CANDIDATE   other              otherwise      s replaces C as candidate           CANDIDATE
+
+Adopting a session finishes the old one's open blocks as "superseded" and emits SessionStarted.
+A held candidate packet's datagram is delivered at once (it needs no block state) and is not
+delivered again when replayed.  A candidate stays until adopted or replaced: packets of A do not
+clear it.
 """
 
 from __future__ import annotations
 
 from collections import OrderedDict, deque
 from dataclasses import dataclass, field
+from enum import Enum
 
 import numpy as np
 
-from fecproxy.protocol import wire
 from fecproxy.coding.codec import BlockCode, block_code
+from fecproxy.protocol import wire
+from fecproxy.protocol.events import (
+    BlockOutcome,
+    BlockReport,
+    Delivery,
+    DropReason,
+    Dropped,
+    Event,
+    SessionStarted,
+    direct_delivery,
+)
 
 #: How long an incomplete block waits for more packets.  Must exceed the sender's flush interval
 #: plus the link's delay spread; 500 ms covers a geostationary hop's jitter with room to spare
 #: (common practice, no source).
 DEFAULT_HOLD_TIME = 0.5
 #: Open blocks kept at once; the oldest is evicted (and counted) beyond this.  256 blocks of
-#: k=16 is 4096 datagrams in flight, ~80 ms at 50 000 datagrams/s.
+#: k=16 is 4096 datagrams in flight, ~80 ms at 50 000 datagrams/s; memory is at most
+#: 256 × (k + m) × (max_datagram + 3) bytes, ~7 MiB for k=16, m=4, 1400 bytes.
 DEFAULT_MAX_OPEN_BLOCKS = 256
 #: Finished block numbers remembered, so their late packets are recognised rather than reopened.
 FINISHED_MEMORY_FACTOR = 4
-#: The fast path reads the common header and the two bytes after it (a source packet's flow id and
-#: previous k, or a repair packet's k) in one unpack.
-_LEADING_FIELDS = wire.SOURCE_HEADER.unpack_from
-_SOURCE_TYPE_BYTE = (wire.VERSION << 4) | wire.PacketType.SOURCE
-_REPAIR_TYPE_BYTE = (wire.VERSION << 4) | wire.PacketType.REPAIR
 #: Earlier sender sessions remembered, so stragglers from before a restart are dropped as stale.
 RETIRED_SESSIONS = 4
 #: Packets of a new session needed before it replaces a session that is still sending.  One stray
@@ -41,12 +80,23 @@ RETIRED_SESSIONS = 4
 #: source datagrams are still delivered, and its packets are replayed into the new session's blocks.
 SESSION_CONFIRM_PACKETS = 8
 
+#: The fast path peeks a packet's fixed header (12 bytes for both kinds).
+_LEADING_BYTES = max(wire.SOURCE_HEADER_BYTES, wire.REPAIR_HEADER_BYTES)
+
+
+class SessionState(Enum):
+    """Where the decoder stands with the sender's sessions (transition table in the module doc)."""
+
+    NO_SESSION = "no_session"  # no valid packet yet
+    ADOPTED = "adopted"  # following one session
+    CANDIDATE = "candidate"  # following one session, holding another's packets until confirmed
+
 
 @dataclass(frozen=True)
 class DecoderSettings:
     hold_time: float = DEFAULT_HOLD_TIME
     max_open_blocks: int = DEFAULT_MAX_OPEN_BLOCKS
-    max_datagram: int = 1400
+    max_datagram: int = wire.DEFAULT_MAX_DATAGRAM
 
     def __post_init__(self) -> None:
         if not self.hold_time > 0:
@@ -55,73 +105,6 @@ class DecoderSettings:
             raise ValueError(f"max_open_blocks must be ≥ 1, got {self.max_open_blocks}")
         if not 1 <= self.max_datagram <= wire.MAX_DATAGRAM_LIMIT:
             raise ValueError(f"max_datagram {self.max_datagram} outside 1..{wire.MAX_DATAGRAM_LIMIT}")
-
-
-@dataclass(frozen=True, slots=True)
-class Delivery:
-    """A datagram for the application; ``delay`` is 0 unless it was rebuilt."""
-
-    flow: int
-    data: bytes
-    recovered: bool = False
-    delay: float = 0.0
-
-
-@dataclass(frozen=True, slots=True)
-class BlockReport:
-    """How one block fared.  ``lost`` counts source datagrams missing on the link (before
-    recovery); ``unrecovered`` those still missing after it.  ``arrived_mask`` bit i is set when
-    source datagram i came directly; ``k`` is None when no packet told the block's size, in which
-    case the counts cover positions up to the highest one seen."""
-
-    sbn: int
-    k: int | None
-    outcome: str  # complete | recovered | expired | evicted | superseded
-    lost: int
-    recovered: int
-    unrecovered: int
-    arrived_mask: int
-    span: int  # source positions the report covers: k, or highest ESI seen + 1
-
-
-def _delivery_maker():
-    """Delivery(flow, data) for a datagram that came directly, built by filling its slots.
-
-    The generated __init__ of a frozen dataclass sets each field through object.__setattr__:
-    measured here, 0.97 µs against 0.51 µs this way, paid once per datagram on the receiver.
-    """
-    new, set_flow, set_data = object.__new__, Delivery.flow.__set__, Delivery.data.__set__
-    set_recovered, set_delay = Delivery.recovered.__set__, Delivery.delay.__set__
-
-    def make(flow: int, data: bytes) -> Delivery:
-        delivery = new(Delivery)
-        set_flow(delivery, flow)
-        set_data(delivery, data)
-        set_recovered(delivery, False)
-        set_delay(delivery, 0.0)
-        return delivery
-
-    return make
-
-
-_direct_delivery = _delivery_maker()
-
-
-@dataclass(frozen=True, slots=True)
-class Dropped:
-    reason: str
-    detail: str
-
-
-@dataclass(frozen=True, slots=True)
-class SessionStarted:
-    """The peer's sender restarted (or first appeared): state from before is gone."""
-
-    session: int
-    previous: int | None
-
-
-Event = Delivery | BlockReport | Dropped | SessionStarted
 
 
 @dataclass
@@ -159,7 +142,8 @@ class BlockDecoder:
     def __init__(self, settings: DecoderSettings = DecoderSettings()):
         self.settings = settings
         self.stats = DecoderStats()
-        self.session: int | None = None
+        self.state = SessionState.NO_SESSION
+        self.session: int | None = None  # the adopted session
         self._retired: deque[int] = deque(maxlen=RETIRED_SESSIONS)
         self._open: OrderedDict[int, _Block] = OrderedDict()
         self._finished: OrderedDict[int, None] = OrderedDict()
@@ -168,92 +152,109 @@ class BlockDecoder:
         self._last_seen = float("-inf")  # when the adopted session last sent a valid packet
         self._candidate: int | None = None
         self._candidate_packets: list[wire.SourcePacket | wire.RepairPacket] = []
-        #: Whether the last packet received belonged to the adopted session (the shell learns its
-        #: peer address only from those).
-        self.in_session = False
 
     # ------------------------------------------------------------------ feeding
-    def receive(self, data: bytes, now: float) -> list[Event]:
-        # Fast path for the two packets a clean link brings: a source packet of the current
-        # session, and a repair packet of a block already complete.  Same checks, same order
-        # and same outcome as wire.parse + the general path below, minus the packet object;
-        # anything else (another session, a bad field) falls through to the general path.
+    def receive(self, data: bytes, now: float) -> tuple[list[Event], bool]:
+        """Take one link packet.  Returns its events, and True when it was a valid packet of the
+        adopted session (possibly adopted by this very packet): the only packets whose source
+        address the shell may take as its peer's."""
+        # Fast path for the two packets a clean link brings: a source packet of the adopted
+        # session, and such a repair packet of a block already finished.  The same checks in the
+        # same order as wire.parse + _receive_general, with the same outcome, minus the packet
+        # object (tests/test_decoder_paths.py compares the two); anything else (another session,
+        # a bad field, a repair packet still needed) takes the general path.
         size = len(data)
-        if size >= wire.SOURCE_HEADER_BYTES:
-            version_type, flags, session, sbn_esi, flow, previous_k = _LEADING_FIELDS(data)
-            if session == self.session:
-                self._last_seen = now
-                self.in_session = True
-                esi = sbn_esi & 0xFF
-                sbn = sbn_esi >> 8
-                if version_type == _SOURCE_TYPE_BYTE:
-                    if not flags & ~wire.FLAG_END and esi <= wire.MAX_ESI and size - wire.SOURCE_HEADER_BYTES <= self.settings.max_datagram:
-                        self.stats.source_received += 1
-                        events: list[Event] = []
-                        block = self._open.get(sbn)
+        if size >= _LEADING_BYTES:
+            type_byte = data[0]
+            if type_byte == wire.SOURCE_TYPE_BYTE:
+                _, flags, session, payload_id, flow, previous_k = wire.peek_source(data)
+                if (
+                    session == self.session
+                    and not flags & ~wire.FLAG_END
+                    and payload_id & wire.ESI_MASK <= wire.MAX_ESI
+                    and size - wire.SOURCE_HEADER_BYTES <= self.settings.max_datagram
+                ):
+                    self._last_seen = now
+                    self.stats.source_received += 1
+                    sbn, esi = payload_id >> wire.ESI_BITS, payload_id & wire.ESI_MASK
+                    events: list[Event] = []
+                    block = self._open.get(sbn)
+                    if block is None:
+                        block = self._block_for(sbn, now, events)
                         if block is None:
-                            block = self._block_for(sbn, now, events)
-                            if block is None:
-                                events.append(self._behind(sbn, repair=False))
-                                return events
-                        if previous_k and not block.told_previous:
-                            block.told_previous = True
-                            self._learn_previous_k(sbn, previous_k, now, events)
-                        self._add_source_fields(block, sbn, esi, flow, bool(flags), bytes(data[wire.SOURCE_HEADER_BYTES:]), events)
-                        self._try_finish(block, now, events)
-                        return events
-                elif version_type == _REPAIR_TYPE_BYTE and not flags and size >= wire.REPAIR_HEADER_BYTES:
-                    k = (flow << 8) | data[wire.COMMON_HEADER.size + 1]
-                    symbol_size = size - wire.REPAIR_HEADER_BYTES
-                    if (
-                        1 <= k <= esi <= wire.MAX_ESI
-                        and wire.SYMBOL_PREFIX_BYTES <= symbol_size <= self.settings.max_datagram + wire.SYMBOL_PREFIX_BYTES
-                        and sbn not in self._open
-                        and sbn in self._finished
-                    ):
-                        self.stats.repair_received += 1
-                        self.stats.repair_unneeded += 1  # normal: the block completed before its repair came
-                        return []
+                            events.append(self._behind(sbn, repair=False))
+                            return events, True
+                    if previous_k and not block.told_previous:
+                        block.told_previous = True
+                        self._learn_previous_k(sbn, previous_k, now, events)
+                    self._add_source_fields(block, sbn, esi, flow, bool(flags), bytes(data[wire.SOURCE_HEADER_BYTES:]), events)
+                    self._try_finish(block, now, events)
+                    return events, True
+            elif type_byte == wire.REPAIR_TYPE_BYTE:
+                _, flags, session, payload_id, k = wire.peek_repair(data)
+                symbol_size = size - wire.REPAIR_HEADER_BYTES
+                sbn = payload_id >> wire.ESI_BITS
+                if (
+                    session == self.session
+                    and not flags
+                    and 1 <= k <= payload_id & wire.ESI_MASK <= wire.MAX_ESI
+                    and wire.SYMBOL_PREFIX_BYTES <= symbol_size <= self.settings.max_datagram + wire.SYMBOL_PREFIX_BYTES
+                    and sbn not in self._open
+                    and sbn in self._finished
+                ):
+                    self._last_seen = now
+                    self.stats.repair_received += 1
+                    self.stats.repair_unneeded += 1  # normal: the block completed before its repair came
+                    return [], True
+        return self._receive_general(data, now)
+
+    def _receive_general(self, data: bytes, now: float) -> tuple[list[Event], bool]:
+        """``receive`` without its fast path: complete on its own (the fast path only saves the
+        parsing of the two commonest packets), so tests can compare the two."""
         try:
             pkt = wire.parse(data, max_datagram=self.settings.max_datagram)
         except wire.PacketError as error:
-            return [self._drop(error.reason, str(error))]
+            return [self._drop(error.reason, str(error))], False
         if isinstance(pkt, wire.ControlPacket):
-            return [self._drop("unsupported", "control packets are not handled by this version")]
+            return [self._drop(DropReason.UNSUPPORTED, "control packets are not handled by this version")], False
         events: list[Event] = []
-        self.in_session = False
         if pkt.session != self.session:
             if pkt.session in self._retired:
-                return [self._drop("stale", f"packet from retired session {pkt.session:#010x}")]
+                return [self._drop(DropReason.STALE, f"packet from retired session {pkt.session:#010x}")], False
             if not self._may_adopt(pkt, now):
-                return self._hold_candidate(pkt)
+                return self._hold_candidate(pkt), False
             replay = self._candidate_packets if self._candidate == pkt.session else []
             self._candidate, self._candidate_packets = None, []
             events.extend(self._start_session(pkt.session))
             for earlier in replay:
                 self._admit(earlier, now, events, replayed=True)
-        self.in_session = True
         self._last_seen = now
         if isinstance(pkt, wire.SourcePacket):
             self.stats.source_received += 1
         else:
             self.stats.repair_received += 1
         self._admit(pkt, now, events)
-        return events
+        return events, True
 
     def _may_adopt(self, pkt: wire.SourcePacket | wire.RepairPacket, now: float) -> bool:
-        """A new session replaces the adopted one if that one is quiet, or once it is confirmed."""
-        if self.session is None or now - self._last_seen >= self.settings.hold_time:
-            return True
-        return self._candidate == pkt.session and len(self._candidate_packets) + 1 >= SESSION_CONFIRM_PACKETS
+        """Whether a packet of another session adopts it (the "condition" column of the table)."""
+        state = self.state
+        if state is SessionState.NO_SESSION or now - self._last_seen >= self.settings.hold_time:
+            return True  # nothing adopted yet, or the adopted session is quiet
+        return (
+            state is SessionState.CANDIDATE
+            and self._candidate == pkt.session
+            and len(self._candidate_packets) + 1 >= SESSION_CONFIRM_PACKETS
+        )
 
     def _hold_candidate(self, pkt: wire.SourcePacket | wire.RepairPacket) -> list[Event]:
         """A packet of a not-yet-adopted session: deliver its datagram (it needs no block state),
         keep the packet to replay if the session is adopted."""
         if self._candidate != pkt.session:
             self._candidate, self._candidate_packets = pkt.session, []
+            self.state = SessionState.CANDIDATE
         if any(held.sbn == pkt.sbn and held.esi == pkt.esi for held in self._candidate_packets):
-            return [self._drop("duplicate", f"packet {pkt.sbn}/{pkt.esi} of a new session seen before")]
+            return [self._drop(DropReason.DUPLICATE, f"packet {pkt.sbn}/{pkt.esi} of a new session seen before")]
         self._candidate_packets.append(pkt)
         if isinstance(pkt, wire.RepairPacket):
             self.stats.repair_received += 1
@@ -304,15 +305,18 @@ class BlockDecoder:
             block = next(iter(self._open.values()))
             if block.first_seen + hold > now:
                 break
-            events.append(self._finish(block, "expired"))
+            events.append(self._finish(block, BlockOutcome.EXPIRED))
         return events
 
     def close(self) -> list[Event]:
-        """Report every open block as it stands (shutdown)."""
-        return [self._finish(block, "expired") for block in list(self._open.values())]
+        """Shutdown: report every open block as it stands, as expired.
+
+        The decoder stays usable; later packets open new blocks.
+        """
+        return [self._finish(block, BlockOutcome.EXPIRED) for block in list(self._open.values())]
 
     # ------------------------------------------------------------------ internals
-    def _drop(self, reason: str, detail: str) -> Dropped:
+    def _drop(self, reason: DropReason, detail: str) -> Dropped:
         self.stats.dropped[reason] = self.stats.dropped.get(reason, 0) + 1
         return Dropped(reason, detail)
 
@@ -332,7 +336,7 @@ class BlockDecoder:
                 block.k = k
                 self._try_finish(block, now, events)
             return
-        if previous in self._finished or self._first_sbn is None:
+        if previous in self._finished:
             return
         after_first = (previous - self._first_sbn) % wire.SBN_MODULUS
         if not 0 < after_first < wire.SBN_MODULUS // 2:
@@ -342,11 +346,12 @@ class BlockDecoder:
             block.k = k
 
     def _start_session(self, session: int) -> list[Event]:
-        events: list[Event] = [self._finish(block, "superseded") for block in list(self._open.values())]
+        events: list[Event] = [self._finish(block, BlockOutcome.SUPERSEDED) for block in list(self._open.values())]
         previous = self.session
         if previous is not None:
             self._retired.append(previous)
         self.session = session
+        self.state = SessionState.ADOPTED
         self._finished.clear()
         self._highest = None
         self._first_sbn = None
@@ -369,7 +374,7 @@ class BlockDecoder:
         else:
             self._highest = sbn
         while len(self._open) >= self.settings.max_open_blocks:
-            events.append(self._finish(next(iter(self._open.values())), "evicted"))
+            events.append(self._finish(next(iter(self._open.values())), BlockOutcome.EVICTED))
         block = _Block(sbn, now)
         if self._first_sbn is None:
             self._first_sbn = sbn
@@ -383,8 +388,8 @@ class BlockDecoder:
     def _behind(self, sbn: int, *, repair: bool) -> Dropped:
         """The drop for a packet whose block is finished or too far behind to open."""
         if sbn in self._finished and not repair:
-            return self._drop("late", f"source packet for finished block {sbn}")
-        return self._drop("stale", f"block {sbn} is behind the window")
+            return self._drop(DropReason.LATE, f"source packet for finished block {sbn}")
+        return self._drop(DropReason.STALE, f"block {sbn} is behind the window")
 
     def _add_source_fields(
         self, block: _Block, sbn: int, esi: int, flow: int, end: bool, data: bytes, events: list[Event]
@@ -392,20 +397,20 @@ class BlockDecoder:
         """Hold and deliver one source datagram (fields given singly: the fast path has no packet)."""
         k = block.k
         if esi in block.sources:
-            events.append(self._drop("duplicate", f"source {sbn}/{esi} seen before"))
+            events.append(self._drop(DropReason.DUPLICATE, f"source {sbn}/{esi} seen before"))
             return
         if k is not None and esi >= k:
-            events.append(self._drop("inconsistent", f"source ESI {esi} but block {sbn} has k={k}"))
+            events.append(self._drop(DropReason.INCONSISTENT, f"source ESI {esi} but block {sbn} has k={k}"))
             return
         if block.symbol_len is not None and len(data) + wire.SYMBOL_PREFIX_BYTES > block.symbol_len:
-            events.append(self._drop("inconsistent", f"source {sbn}/{esi} longer than the block's symbols"))
+            events.append(self._drop(DropReason.INCONSISTENT, f"source {sbn}/{esi} longer than the block's symbols"))
             return
         if end:
             if k is not None and k != esi + 1:
-                events.append(self._drop("inconsistent", f"END at ESI {esi} but block {sbn} has k={k}"))
+                events.append(self._drop(DropReason.INCONSISTENT, f"END at ESI {esi} but block {sbn} has k={k}"))
                 return
             if esi < block.max_esi:
-                events.append(self._drop("inconsistent", f"END at ESI {esi} below ESI {block.max_esi} seen"))
+                events.append(self._drop(DropReason.INCONSISTENT, f"END at ESI {esi} below ESI {block.max_esi} seen"))
                 return
             block.k = esi + 1
         block.sources[esi] = (flow, data)
@@ -413,25 +418,25 @@ class BlockDecoder:
         if esi > block.max_esi:
             block.max_esi = esi
         self.stats.delivered += 1
-        events.append(_direct_delivery(flow, data))
+        events.append(direct_delivery(flow, data))
 
     def _add_repair(self, block: _Block, pkt: wire.RepairPacket, events: list[Event]) -> None:
         if pkt.esi in block.repairs:
-            events.append(self._drop("duplicate", f"repair {pkt.sbn}/{pkt.esi} seen before"))
+            events.append(self._drop(DropReason.DUPLICATE, f"repair {pkt.sbn}/{pkt.esi} seen before"))
             return
         if block.k is not None and block.k != pkt.k:
-            events.append(self._drop("inconsistent", f"repair says k={pkt.k}, block {pkt.sbn} has k={block.k}"))
+            events.append(self._drop(DropReason.INCONSISTENT, f"repair says k={pkt.k}, block {pkt.sbn} has k={block.k}"))
             return
         if block.max_esi >= pkt.k:
-            events.append(self._drop("inconsistent", f"repair says k={pkt.k} but source ESI {block.max_esi} was seen"))
+            events.append(self._drop(DropReason.INCONSISTENT, f"repair says k={pkt.k} but source ESI {block.max_esi} was seen"))
             return
         size = len(pkt.symbol)
         if block.symbol_len is not None and block.symbol_len != size:
-            events.append(self._drop("inconsistent", f"repair symbol of {size} bytes, block uses {block.symbol_len}"))
+            events.append(self._drop(DropReason.INCONSISTENT, f"repair symbol of {size} bytes, block uses {block.symbol_len}"))
             return
         longest = max((len(data) for _, data in block.sources.values()), default=0)
         if longest + wire.SYMBOL_PREFIX_BYTES > size:
-            events.append(self._drop("inconsistent", f"repair symbol of {size} bytes shorter than a source datagram"))
+            events.append(self._drop(DropReason.INCONSISTENT, f"repair symbol of {size} bytes shorter than a source datagram"))
             return
         block.k = pkt.k
         block.symbol_len = size
@@ -443,10 +448,10 @@ class BlockDecoder:
             return
         have = len(block.sources)
         if have >= k:
-            events.append(self._finish(block, "complete"))
+            events.append(self._finish(block, BlockOutcome.COMPLETE))
         elif have + len(block.repairs) >= k:
             events.extend(self._rebuild(block, now))
-            events.append(self._finish(block, "recovered"))
+            events.append(self._finish(block, BlockOutcome.RECOVERED))
 
     def _rebuild(self, block: _Block, now: float) -> list[Event]:
         k = block.k
@@ -478,7 +483,7 @@ class BlockDecoder:
             symbol = rebuilt[esi]
             size = (int(symbol[1]) << 8) | int(symbol[2])
             if size + wire.SYMBOL_PREFIX_BYTES > length:
-                events.append(self._drop("inconsistent", f"rebuilt datagram {block.sbn}/{esi} claims {size} bytes"))
+                events.append(self._drop(DropReason.INCONSISTENT, f"rebuilt datagram {block.sbn}/{esi} claims {size} bytes"))
                 continue
             data = symbol[3 : 3 + size].tobytes()
             block.sources[esi] = (int(symbol[0]), data)
@@ -488,7 +493,7 @@ class BlockDecoder:
             events.append(Delivery(int(symbol[0]), data, recovered=True, delay=delay))
         return events
 
-    def _finish(self, block: _Block, outcome: str) -> BlockReport:
+    def _finish(self, block: _Block, outcome: BlockOutcome) -> BlockReport:
         del self._open[block.sbn]
         self._finished[block.sbn] = None
         while len(self._finished) > self._window():

@@ -12,8 +12,7 @@ from collections import OrderedDict
 from collections.abc import Hashable
 from typing import Generic, TypeVar
 
-#: The flow id is one byte in the source symbol (RFC 6363 §4, RFC 6865 §4).
-MAX_FLOW_IDS = 256
+from fecproxy.protocol.wire import MAX_FLOW_IDS
 
 K = TypeVar("K", bound=Hashable)
 

@@ -30,7 +30,8 @@ from fecproxy import __version__
 from fecproxy.config import Config
 from fecproxy.config.addresses import format_sockaddr
 from fecproxy.linkmodel.estimator import LossEstimator
-from fecproxy.protocol.decoder import BlockDecoder, BlockReport, DecoderStats, Delivery, Dropped, SessionStarted
+from fecproxy.protocol.decoder import BlockDecoder, DecoderStats
+from fecproxy.protocol.events import BlockReport, Delivery, DropReason, Dropped, SessionStarted
 from fecproxy.protocol.encoder import BlockEncoder, EncoderStats
 from fecproxy.protocol.flows import FlowTable
 from fecproxy.shell.logs import log_event, log_exception
@@ -82,7 +83,7 @@ class Daemon:
         self.estimator = LossEstimator(window=LOSS_ESTIMATE_WINDOW)
         self.flows: FlowTable = FlowTable(config.flows.max, flow_idle_timeout(config))
         self._reloads: dict[str, int] = {"applied": 0, "rejected": 0}
-        self._drops: dict[str, int] = defaultdict(int)
+        self._drops: dict[DropReason, int] = defaultdict(int)
         self.upstreams: Upstreams | None = None  # receiver only, from run() on
         self._link_sock = self._app_sock = None
         self._link_writer: DatagramWriter | None = None
@@ -232,7 +233,7 @@ class Daemon:
         if self._stopping or self._nursery is None:
             return
         self._stopping = True
-        await self._send_to_peer(self.encoder.flush())
+        await self._send_to_peer(self.encoder.close())
         self._handle_events(self.decoder.close(), trio.current_time())
         self._nursery.cancel_scope.cancel()
 
@@ -263,7 +264,7 @@ class Daemon:
                 if flow is unseen:
                     flow = flow_of[address] = flows.flow_for(address, now)
                 if flow is None:
-                    self._drops["flow_limit"] += 1
+                    self._drops[DropReason.FLOW_LIMIT] += 1
                     continue
                 items.append((data, flow))
             await self._encode_and_send(items, now)
@@ -272,21 +273,21 @@ class Daemon:
         """Frame a batch (blocks it fills share codec calls, see BlockEncoder.send_batch) and
         put it on the link.  Both roles: the sender's client datagrams, the receiver's replies."""
         encoder = self.encoder
-        oversize = encoder.stats.dropped.get("oversize", 0)
+        oversize = encoder.stats.dropped.get(DropReason.OVERSIZE, 0)
         try:
             out = encoder.send_batch(items, now)
         except Exception:  # a bug must cost one batch, never the daemon
             self._internal_error("encoder")
             out = []
-        dropped = encoder.stats.dropped.get("oversize", 0) - oversize
+        dropped = encoder.stats.dropped.get(DropReason.OVERSIZE, 0) - oversize
         if dropped:
-            log_event(log, logging.DEBUG, "dropped", reason="oversize", count=dropped,
+            log_event(log, logging.DEBUG, "dropped", reason=DropReason.OVERSIZE, count=dropped,
                       detail=f"datagrams over max_datagram {encoder.settings.max_datagram} bytes")
         await self._send_to_peer(out)
         self._reschedule()
 
     def _internal_error(self, where: str) -> None:
-        self._drops["internal_error"] += 1
+        self._drops[DropReason.INTERNAL_ERROR] += 1
         log_exception(log, "internal_error", where=where)
 
     async def _link_loop(self) -> None:
@@ -302,7 +303,7 @@ class Daemon:
             deliveries: list[Delivery] = []
             for data, address in batch:
                 try:
-                    events = receive(data, now)
+                    events, in_session = receive(data, now)
                 except Exception:  # a bug must cost one packet, never the daemon
                     self._internal_error("decoder")
                     continue
@@ -317,7 +318,8 @@ class Daemon:
                     else:
                         valid = valid and kind is not Dropped
                         self._handle_event(event, now)
-                if learn and valid and self.decoder.in_session and address != self.peer:
+                # The peer is learnt only from a valid packet of the adopted session that dropped nothing.
+                if learn and in_session and valid and address != self.peer:
                     if self.peer is not None:
                         log_event(log, logging.INFO, "peer_changed", old=format_sockaddr(self.peer), new=format_sockaddr(address))
                     self.peer = address
@@ -385,7 +387,7 @@ class Daemon:
         if not packets:
             return
         if self.peer is None:
-            self._drops["no_peer"] += len(packets)
+            self._drops[DropReason.NO_PEER] += len(packets)
             return
         await self._link_writer.send(packets, self.peer)
 
@@ -424,7 +426,7 @@ class Daemon:
             if upstreams is None:  # sender: back to the client of this flow
                 client = self.flows.key_for(flow)
                 if client is None:
-                    self._drops["unknown_flow"] += len(datagrams)
+                    self._drops[DropReason.UNKNOWN_FLOW] += len(datagrams)
                     continue
                 self.flows.touch(flow, now)
                 await self._app_writer.send(datagrams, client)

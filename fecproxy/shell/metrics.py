@@ -18,6 +18,7 @@ from prometheus_client import CollectorRegistry, Histogram, make_wsgi_app
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, InfoMetricFamily
 
 from fecproxy import __version__
+from fecproxy.protocol.events import BlockOutcome, DropReason
 
 if TYPE_CHECKING:
     from fecproxy.protocol.decoder import DecoderStats
@@ -56,23 +57,6 @@ class DaemonView(Protocol):
         """(average loss, mean burst) of the link, or None before any sample."""
 
 
-#: Every drop reason any layer can count; all are exported (as 0 until they happen) so alert
-#: rules and dashboards can rely on the series existing.
-DROP_REASONS = (
-    "malformed",  # fails parsing
-    "unsupported",  # version, type or flag this build does not speak
-    "oversize",  # datagram or symbol above max_datagram_bytes
-    "stale",  # retired sender session, or block far behind the window
-    "late",  # source packet for a block already finished
-    "duplicate",  # packet already held
-    "inconsistent",  # contradicts what the block already holds (k, symbol size)
-    "flow_limit",  # flow table full
-    "unknown_flow",  # reply for a flow that has expired
-    "no_peer",  # receiver has no peer address yet to send replies to
-    "unreachable",  # receiver could not open a socket towards forward
-    "internal_error",  # a bug in fecproxy: logged with a traceback, cost one packet
-)
-BLOCK_OUTCOMES = ("complete", "recovered", "expired", "evicted", "superseded")
 #: From 1 ms (a fast LAN hop) to 2 s (well past any hold time we would configure).
 RECOVERY_DELAY_BUCKETS = (0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.0)
 
@@ -110,13 +94,16 @@ class DaemonCollector:
         yield counter("fecproxy_datagrams_delivered", "Datagrams handed to the application side.", dec.delivered)
         yield counter("fecproxy_repair_packets_unneeded", "Repair packets for blocks already complete.", dec.repair_unneeded)
         blocks = CounterMetricFamily("fecproxy_blocks_received", "Received blocks by how they ended.", labels=["outcome"])
-        for outcome in BLOCK_OUTCOMES:
-            blocks.add_metric([outcome], dec.blocks.get(outcome, 0))
+        # Every block outcome and drop reason is exported (as 0 until it happens), so alert rules
+        # and dashboards can rely on the series existing; the protocol core owns both lists
+        # (fecproxy.protocol.events) and the label values are the members' strings.
+        for outcome in BlockOutcome:
+            blocks.add_metric([outcome.value], dec.blocks.get(outcome, 0))
         yield blocks
         dropped = CounterMetricFamily("fecproxy_packets_dropped", "Packets and datagrams dropped, by reason.", labels=["reason"])
         totals = d.drop_counts()
-        for reason in DROP_REASONS:
-            dropped.add_metric([reason], totals.get(reason, 0))
+        for reason in DropReason:
+            dropped.add_metric([reason.value], totals.get(reason, 0))
         yield dropped
         yield counter("fecproxy_send_errors", "Datagrams the OS refused to send.", d.send_errors())
         reloads = CounterMetricFamily("fecproxy_config_reloads", "SIGHUP reloads by result.", labels=["result"])

@@ -15,6 +15,7 @@ from collections.abc import Awaitable, Callable
 import trio
 
 from fecproxy.config.addresses import format_sockaddr
+from fecproxy.protocol.events import DropReason
 from fecproxy.protocol.flows import FlowTable
 from fecproxy.shell.logs import log_event
 from fecproxy.shell.udp import Address, DatagramReader, DatagramWriter
@@ -74,7 +75,7 @@ class Upstreams:
             self.flows.touch(flow, now)
             return entry.writer
         if self.flows.flow_for(flow, now, flow=flow) is None:
-            self.drops["flow_limit"] += 1
+            self.drops[DropReason.FLOW_LIMIT] += 1
             return None
         family = socket.AF_INET6 if len(self.forward) == 4 else socket.AF_INET
         sock = socket.socket(family, socket.SOCK_DGRAM)
@@ -86,7 +87,7 @@ class Upstreams:
         except OSError as error:
             sock.close()
             self.flows.remove(flow)
-            self.drops["unreachable"] += 1
+            self.drops[DropReason.UNREACHABLE] += 1
             log_event(log, logging.WARNING, "upstream_failed", forward=format_sockaddr(self.forward), error=str(error))
             return None
         entry = _Upstream(sock, DatagramWriter(sock), trio.CancelScope())
