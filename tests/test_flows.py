@@ -158,6 +158,7 @@ def test_a_reply_for_an_earlier_client_of_a_slot_reaches_nobody():
     new = table.request(CLIENT_B, 1.0)
     assert slot_of(old) == slot_of(new) and old != new
     assert table.reply(old, 1.5) is None  # the caller counts unknown_flow
+    assert not table.is_established(old) and table.client_of(old) is None
     assert table.reply(new, 1.5) == CLIENT_B
 
 

@@ -191,7 +191,11 @@ class _Tiers:
         return closed
 
     def is_established(self, flow: int) -> bool:
-        return self._state.get(flow >> GENERATION_BITS) == _ESTABLISHED
+        """Whether ``flow`` is held now and past its first exchange."""
+        return self.flow_in(flow >> GENERATION_BITS) == flow and self._state[flow >> GENERATION_BITS] == _ESTABLISHED
+
+    def flow_in(self, slot: int) -> int | None:  # pragma: no cover - abstract
+        raise NotImplementedError
 
     # ------------------------------------------------------------ for the tables
 
