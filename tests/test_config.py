@@ -80,7 +80,8 @@ def test_minimal_sender_gets_every_default():
     assert config.fec.short_block_repair is ShortBlockRepair.PROPORTIONAL
     assert config.fec.allow_repair_above_source is False
     assert (config.decoder.hold_ms, config.decoder.max_open_blocks) == (500, 256)
-    assert (config.flows.max, config.flows.idle_timeout_s) == (256, 120)
+    assert (config.flows.max, config.flows.idle_timeout_s) == (4096, 120)
+    assert (config.flows.first_exchange_timeout_s, config.flows.protect_s) == (30, 2)
     assert config.sockets.receive_buffer_bytes == config.sockets.send_buffer_bytes == 4 * 1024 * 1024
     assert (config.log.level, config.log.format) == ("info", "text")
     assert not config.metrics.enabled and config.metrics.listen is None
@@ -174,11 +175,18 @@ def test_repair_rate_rule_follows_rfc_6363():
     assert config.fec.repair == 5
 
 
-def test_flow_limit_is_one_byte_of_flow_id():
-    # RFC 6363 §4 / RFC 6865 §4: the flow id in the source symbol is one byte.
-    assert cfg.MAX_FLOWS_LIMIT == 2**8
-    parse_config(edited(SENDER, flows__max=256))
-    assert errors_of(edited(SENDER, flows__max=257))
+def test_flow_limit_is_half_the_16_bit_slot_space():
+    assert cfg.MAX_FLOWS_LIMIT == 2**15
+    assert parse_config(edited(SENDER, flows__max=32768)).flows.max == 32768
+    [message] = errors_of(edited(SENDER, flows__max=32769))
+    assert "flows.max: 32769 is out of range; expected an integer 1..32768 (half the 16-bit flow slot space)" in message
+
+
+def test_flow_timeouts_and_protection_are_independent_keys():
+    """The first-exchange timeout may exceed idle_timeout_s (the smaller applies), and 0
+    protection is allowed (always evict, never refuse)."""
+    config = parse_config(edited(SENDER, flows__idle_timeout_s=1, flows__first_exchange_timeout_s=600, flows__protect_s=0))
+    assert (config.flows.idle_timeout_s, config.flows.first_exchange_timeout_s, config.flows.protect_s) == (1, 600, 0)
 
 
 def test_socket_buffer_limit_cannot_overflow_the_doubled_int():
@@ -252,7 +260,14 @@ BAD_CONFIGS = [
     ("metrics listen bad", edited(SENDER, metrics__listen="localhost"), ['metrics.listen: "localhost" has no port']),
     ("hold zero", edited(SENDER, decoder__hold_ms=0), ["decoder.hold_ms: 0 is out of range"]),
     ("open blocks zero", edited(SENDER, decoder__max_open_blocks=0), ["decoder.max_open_blocks: 0 is out of range"]),
-    ("flows zero", edited(SENDER, flows__max=0), ["flows.max: 0 is out of range", "the flow id is one byte"]),
+    ("flows zero", edited(SENDER, flows__max=0), ["flows.max: 0 is out of range", "half the 16-bit flow slot space"]),
+    ("first exchange zero", edited(SENDER, flows__first_exchange_timeout_s=0),
+     ["flows.first_exchange_timeout_s: 0 is out of range; expected an integer number of seconds 1..86400"]),
+    ("protect negative", edited(SENDER, flows__protect_s=-1),
+     ["flows.protect_s: -1 is out of range; expected an integer number of seconds 0..86400 (0 = never refuse)"]),
+    ("protect fraction", edited(SENDER, flows__protect_s=1.5), ["flows.protect_s: 1.5 is a"]),
+    ("first exchange misspelt", edited(SENDER, flows__first_exchange_timeout=30),
+     ["flows.first_exchange_timeout: unknown key; did you mean flows.first_exchange_timeout_s?"]),
     ("idle timeout huge", edited(SENDER, flows__idle_timeout_s=86401), ["flows.idle_timeout_s: 86401 is out of range"]),
     ("buffer negative", edited(SENDER, sockets__send_buffer_bytes=-1), ["sockets.send_buffer_bytes: -1 is out of range"]),
     ("buffer with unit", edited(SENDER, sockets__receive_buffer_bytes="4MiB"), ['"4MiB" is a string']),
@@ -430,7 +445,11 @@ def valid_documents(draw):
             "max_datagram_bytes": draw(st.integers(1, cfg.MAX_DATAGRAM_BYTES_LIMIT)),
             "short_block_repair": draw(st.sampled_from(["proportional", "full"])),
         },
-        "flows": {"max": draw(st.integers(1, 256))},
+        "flows": {
+            "max": draw(st.integers(1, cfg.MAX_FLOWS_LIMIT)),
+            "first_exchange_timeout_s": draw(st.integers(1, cfg.MAX_FLOW_IDLE_TIMEOUT_S)),
+            "protect_s": draw(st.integers(0, cfg.MAX_FLOW_PROTECT_S)),
+        },
         "log": {"level": draw(st.sampled_from(["debug", "info", "warning", "error"]))},
     }
     if role == "sender":

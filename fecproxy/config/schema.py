@@ -21,6 +21,7 @@ from dataclasses import dataclass, field
 from enum import StrEnum
 
 from fecproxy.protocol import decoder as _decoder, encoder as _encoder, wire
+from fecproxy.protocol.flows import FLOW_SLOTS
 from fecproxy.protocol.keys import MasterKey
 from fecproxy.protocol.repair_rule import DEFAULT_SHORT_BLOCK_REPAIR, ShortBlockRepair, repair_count
 from fecproxy.config.addresses import Address, AddressError, parse_address
@@ -64,15 +65,32 @@ DEFAULT_MAX_OPEN_BLOCKS = _decoder.DEFAULT_MAX_OPEN_BLOCKS
 #: still has to size memory for what they choose.
 MAX_OPEN_BLOCKS_LIMIT = 65_536
 
-#: The flow id is one byte of the RFC 6363 §4 / RFC 6865 §4 source symbol, so at most 256 flows;
-#: the default is that ceiling.
-MAX_FLOWS_LIMIT = wire.MAX_FLOW_IDS
-DEFAULT_MAX_FLOWS = MAX_FLOWS_LIMIT
+#: Flow ids are a 16-bit slot and an 8-bit generation (protocol.flows, planned wire format).
+#: Half the slot space: free slots are handed out least recently freed first, so with at most
+#: half of them in use a slot rests for at least 32 768 hand-outs before its next client.
+MAX_FLOWS_LIMIT = FLOW_SLOTS // 2
+#: Thousands of clients, each request from a fresh port (a resolver, a poller): 4096 flows hold
+#: ~136 new clients a second for the 30 s first-exchange timeout before the oldest are recycled.
+#: A receiver keeps one socket per flow, so 4096 needs the file-descriptor limit raised above
+#: the usual soft limit of 1024 (from memory); the systemd unit sets it.
+DEFAULT_MAX_FLOWS = 4096
 #: Linux nf_conntrack forgets a UDP "stream" (traffic seen both ways) after 120 s (from memory);
 #: a proxy that keeps a flow as long as a NAT on the path would is unsurprising to operators.
+#: This is the timeout of established flows.
 DEFAULT_FLOW_IDLE_TIMEOUT_S = 120
+#: A flow still in its first exchange (no reply yet, or replies to its first request only) is
+#: forgotten after 30 s idle, as stateful firewalls time out unreplied UDP (nf_conntrack: 30 s,
+#: from memory): a one-off query is long answered by then.  Capped by idle_timeout_s.
+DEFAULT_FLOW_FIRST_EXCHANGE_TIMEOUT_S = 30
 #: A day: an idle flow kept longer than this is a leak, not a setting.
 MAX_FLOW_IDLE_TIMEOUT_S = 86_400
+#: A flow active within the last 2 s may still wait for its reply: a geostationary round trip
+#: (~0.6 s, from memory) plus the default decoder hold on both sides (2 × 0.5 s) fits inside it,
+#: so a full table refuses a new client rather than cut a live exchange (common practice, no
+#: source).  0 = always evict the least recently active flow, never refuse.
+DEFAULT_FLOW_PROTECT_S = 2
+#: Protection beyond the longest idle timeout would mean never evicting at all.
+MAX_FLOW_PROTECT_S = MAX_FLOW_IDLE_TIMEOUT_S
 
 #: 4 MiB of socket buffer absorbs ~30 ms of 1400-byte datagrams at 100 000/s, enough to ride out
 #: a scheduling hiccup of the event loop on a busy 2-core box.  Linux caps the request at
@@ -170,7 +188,9 @@ class DecoderSection:
 @dataclass(frozen=True)
 class FlowsSection:
     max: int = DEFAULT_MAX_FLOWS
-    idle_timeout_s: int = DEFAULT_FLOW_IDLE_TIMEOUT_S
+    idle_timeout_s: int = DEFAULT_FLOW_IDLE_TIMEOUT_S  # established flows
+    first_exchange_timeout_s: int = DEFAULT_FLOW_FIRST_EXCHANGE_TIMEOUT_S  # capped by idle_timeout_s
+    protect_s: int = DEFAULT_FLOW_PROTECT_S  # never evict a flow active this recently
 
 
 @dataclass(frozen=True)
@@ -399,8 +419,14 @@ _SECTIONS: dict[str, tuple[type, dict[str, Callable]]] = {
     "flows": (
         FlowsSection,
         {
-            "max": _Integer(1, MAX_FLOWS_LIMIT, f"an integer 1..{MAX_FLOWS_LIMIT} (the flow id is one byte)"),
+            "max": _Integer(1, MAX_FLOWS_LIMIT, f"an integer 1..{MAX_FLOWS_LIMIT} (half the 16-bit flow slot space)"),
             "idle_timeout_s": _Integer(1, MAX_FLOW_IDLE_TIMEOUT_S, f"an integer number of seconds 1..{MAX_FLOW_IDLE_TIMEOUT_S}"),
+            "first_exchange_timeout_s": _Integer(
+                1, MAX_FLOW_IDLE_TIMEOUT_S, f"an integer number of seconds 1..{MAX_FLOW_IDLE_TIMEOUT_S}"
+            ),
+            "protect_s": _Integer(
+                0, MAX_FLOW_PROTECT_S, f"an integer number of seconds 0..{MAX_FLOW_PROTECT_S} (0 = never refuse)"
+            ),
         },
     ),
     "sockets": (
