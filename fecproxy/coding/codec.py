@@ -194,24 +194,19 @@ class BlockCode:
     def _rebuild(self, missing: list[int], repairs: list[int], stacked: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Solve only for the missing source rows (RFC 5510 §8.3, reduced to the lost positions).
 
-        With K the known source rows and R the repair rows used, for every used repair column j:
-        Σ_{i∈missing} GM[i,j]·s_i = r_j − Σ_{i∈known} GM[i,j]·s_i.  With A the e×e system and
-        C the known part, missing = A⁻¹·R ⊕ (A⁻¹·C)·K: one e×k matrix applied to the stacked
-        rows (R standing in the missing rows) in a single pass of the fast kernel.  It depends
-        only on the loss pattern, so the prepared multiplier is cached.  Returns the rebuilt
-        rows and the index array of their positions.
+        The e×k matrix that maps the stacked rows (repairs standing in the missing rows) to the
+        missing ones comes in closed form from :func:`lagrange_coefficients`, applied in one
+        pass of the fast kernel.  It depends only on the loss pattern, so the prepared
+        multiplier is also cached; a fresh pattern costs a few small numpy calls, no
+        Gauss–Jordan elimination.  Returns the rebuilt rows and the index array of their positions.
         """
         key = (tuple(missing), tuple(repairs))
         entry = self._inverses.get(key)
         if entry is None:
             lost = set(missing)
-            known = [i for i in range(self.k) if i not in lost]
-            system = self.generator[np.ix_(missing, repairs)].T  # (e, e): row per repair equation
-            inverse = gf256.invert_matrix(system)
-            combined = np.zeros((len(missing), self.k), dtype=np.uint8)
-            combined[:, missing] = inverse  # the j-th missing row holds the j-th repair symbol
-            combined[:, known] = gf256.matmul_small(inverse, self.generator[np.ix_(known, repairs)].T)
-            entry = (gf256.Multiplier(combined), np.array(missing, dtype=np.intp))
+            stand_in = iter(repairs)
+            points = [next(stand_in) if i in lost else i for i in range(self.k)]  # stacked row order
+            entry = (gf256.Multiplier(lagrange_coefficients(missing, points)), np.array(missing, dtype=np.intp))
             self._inverses[key] = entry
             if len(self._inverses) > INVERSE_CACHE_SIZE:
                 self._inverses.popitem(last=False)
@@ -219,6 +214,48 @@ class BlockCode:
             self._inverses.move_to_end(key)
         multiplier, rows = entry
         return multiplier(stacked), rows
+
+
+def _build_log_difference() -> np.ndarray:
+    """LOG_DIFFERENCE[a, b] = log(alpha^a − alpha^b) for encoding symbol positions a ≠ b < 255.
+
+    Subtraction is XOR in GF(2^8).  The diagonal (a zero difference, no logarithm) holds 0 so
+    that a row sum over a set of points that includes a itself skips it.  int32: a sum of up
+    to 255 logarithms below 255 does not fit int16.
+    """
+    positions = np.arange(MAX_ENCODING_SYMBOLS)
+    points = gf256.EXP[positions]
+    table = gf256.LOG[points[:, None] ^ points[None, :]].astype(np.int32)
+    np.fill_diagonal(table, 0)
+    return table
+
+
+LOG_DIFFERENCE = _build_log_difference()
+
+
+def lagrange_coefficients(missing: Sequence[int], points: Sequence[int]) -> np.ndarray:
+    """The (len(missing), k) matrix C with s_m = Σ_p C[m, p]·symbol_p, from any k known positions.
+
+    RFC 5510 §8.2: GM = V_k⁻¹·V, so encoding symbol p (source or repair) is P(alpha^p), where
+    P is the polynomial of degree < k through (alpha^i, source_i), i < k.  Given P at k
+    distinct points x_p = alpha^p, Lagrange interpolation (any algebra text, e.g. Lidl &
+    Niederreiter, *Finite Fields*, §1.6 / Knuth TAOCP vol. 2 §4.6.4) gives its value at
+    x_m = alpha^m for a missing source position m:
+
+        P(x_m) = Σ_p symbol_p · N(x_m) / ((x_m − x_p) · D_p),
+        N(x) = Π_q (x − x_q),   D_p = Π_{q≠p} (x_p − x_q).
+
+    In logarithms every factor is a table lookup and every product a sum, so the whole matrix
+    is a handful of whole-array operations on e×k and k×k integers; no matrix inversion.
+    Columns follow the order of ``points``.  Every coefficient is non-zero (x_m is never a point).
+    """
+    missing = np.asarray(missing, dtype=np.intp)
+    points = np.asarray(points, dtype=np.intp)
+    to_points = LOG_DIFFERENCE[missing[:, None], points[None, :]]  # log(x_m − x_p), (e, k)
+    log_n = to_points.sum(axis=1)  # log N(x_m): x_m is not a point, so no zero factor
+    log_d = LOG_DIFFERENCE[points[:, None], points[None, :]].sum(axis=1)  # log D_p (diagonal is 0)
+    logs = log_n[:, None] - to_points - log_d[None, :]
+    return gf256.EXP[logs % (gf256.ORDER - 1)]
 
 
 @lru_cache(maxsize=512)
