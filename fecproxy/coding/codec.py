@@ -249,13 +249,21 @@ def lagrange_coefficients(missing: Sequence[int], points: Sequence[int]) -> np.n
     is a handful of whole-array operations on e×k and k×k integers; no matrix inversion.
     Columns follow the order of ``points``.  Every coefficient is non-zero (x_m is never a point).
     """
-    missing = np.asarray(missing, dtype=np.intp)
-    points = np.asarray(points, dtype=np.intp)
-    to_points = LOG_DIFFERENCE[missing[:, None], points[None, :]]  # log(x_m − x_p), (e, k)
-    log_n = to_points.sum(axis=1)  # log N(x_m): x_m is not a point, so no zero factor
-    log_d = LOG_DIFFERENCE[points[:, None], points[None, :]].sum(axis=1)  # log D_p (diagonal is 0)
-    logs = log_n[:, None] - to_points - log_d[None, :]
-    return gf256.EXP[logs % (gf256.ORDER - 1)]
+    e = len(missing)
+    rows = np.array([*missing, *points], dtype=np.intp)
+    differences = LOG_DIFFERENCE[rows[:, None], rows[None, e:]]  # log(x_r − x_p), (e + k, k)
+    # Row sums: log N(x_m) for the e missing rows (x_m is no point, so no zero factor), then
+    # log D_p for the k points (the diagonal is 0).  Reduced once, so the sum below stays in
+    # −2·254 .. 254 and one lookup in the thrice-repeated exponent table finishes it.
+    sums = differences.sum(axis=1) % (gf256.ORDER - 1)
+    logs = (sums[:e, None] + _EXP_OFFSET) - differences[:e] - sums[None, e:]
+    return _EXP_WRAPPED[logs]
+
+
+#: _EXP_WRAPPED[i + _EXP_OFFSET] = alpha^i for −510 ≤ i < 255: the exponent table repeated so a
+#: difference of logarithms needs no modulo.
+_EXP_OFFSET = 2 * (gf256.ORDER - 1)
+_EXP_WRAPPED = np.tile(gf256.EXP[: gf256.ORDER - 1], 3)
 
 
 @lru_cache(maxsize=512)
