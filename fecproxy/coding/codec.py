@@ -112,7 +112,9 @@ def _stack(rows: Sequence, what: str, length: int | None = None) -> np.ndarray:
 class BlockCode:
     """The (n, k) code of RFC 5510 §8.2: ``encode`` makes repair symbols, ``decode`` rebuilds."""
 
-    def __init__(self, k: int, n: int):
+    def __init__(self, k: int, n: int, *, pattern_cache: bool = True):
+        """``pattern_cache=False`` prepares every loss pattern afresh (what a benchmark of fresh
+        patterns needs); the default keeps the last INVERSE_CACHE_SIZE patterns."""
         if not (isinstance(k, int) and isinstance(n, int)):
             raise CodecError(f"k and n must be integers, got k={k!r}, n={n!r}")
         if not 1 <= k <= n <= MAX_ENCODING_SYMBOLS:
@@ -123,6 +125,7 @@ class BlockCode:
         # Repair symbol j is column j of GM applied to the source: (n − k, k) coefficients.
         self._encoder = gf256.Multiplier(self.generator[:, k:].T)
         self._inverses: OrderedDict[tuple, tuple[gf256.Multiplier, np.ndarray]] = OrderedDict()
+        self._pattern_cache = pattern_cache
 
     def __repr__(self) -> str:
         return f"BlockCode(k={self.k}, n={self.n})"
@@ -207,6 +210,8 @@ class BlockCode:
             stand_in = iter(repairs)
             points = [next(stand_in) if i in lost else i for i in range(self.k)]  # stacked row order
             entry = (gf256.Multiplier(lagrange_coefficients(missing, points)), np.array(missing, dtype=np.intp))
+            if not self._pattern_cache:
+                return entry[0](stacked), entry[1]
             self._inverses[key] = entry
             if len(self._inverses) > INVERSE_CACHE_SIZE:
                 self._inverses.popitem(last=False)
