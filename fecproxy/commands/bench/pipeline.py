@@ -32,11 +32,13 @@ from fecproxy.commands.bench.processes import (
     SOCKET_BUFFER_BYTES,
     daemon_main,
     generator_main,
+    link_channel,
     relay_main,
     sink_main,
 )
 from fecproxy.commands.bench.search import (  # noqa: F401  (re-exported: the pipeline's public names)
     GENERATOR_SHORTFALL,
+    residual_allowance,
     LOSS_LIMIT,
     SEARCH_PRECISION,
     STEP_UP,
@@ -46,6 +48,7 @@ from fecproxy.commands.bench.search import (  # noqa: F401  (re-exported: the pi
     Trial,
     format_result,
 )
+from fecproxy.linkmodel.planner import evaluate
 
 #: The block shape under test (the issue's k=16, m=4; also the config defaults).
 BLOCK_SIZE = 16
@@ -65,6 +68,11 @@ DEFAULT_MAX_RATE = 400_000.0
 #: "A moderate rate" for delay trials: a tenth of what the issue asks the pair to carry.
 DEFAULT_DELAY_RATE = 5_000.0
 DEFAULT_DELAY_SECONDS = 2.0
+#: Seed of the impaired link's loss pattern: the same losses every run.
+DEFAULT_SEED = 5510
+#: Link loss the --loss option accepts: at half the packets lost, no useful code is left to
+#: measure (the planner's figures for m ≤ k would all be failures).
+MAX_LINK_LOSS = 0.5
 #: Seconds a child process gets to start (spawn imports numpy and trio) or to stop.
 PROCESS_START_TIMEOUT_S = 30.0
 PROCESS_STOP_TIMEOUT_S = 3.0
@@ -73,8 +81,11 @@ PROCESS_STOP_TIMEOUT_S = 3.0
 class _Bench:
     """Owns the child processes; every one is stopped (by its own handle) on exit."""
 
-    def __init__(self, k: int, m: int, trial_seconds: float):
+    def __init__(self, k: int, m: int, trial_seconds: float, impairment: tuple | None = None,
+                 predicted_residual: float = 0.0):
         self.k, self.m, self.trial_seconds = k, m, trial_seconds
+        self.impairment = impairment  # (loss, burst, seed) of the lossy pair's link, or None
+        self.predicted_residual = predicted_residual
         self.context = multiprocessing.get_context("spawn")
         self.processes: list = []
         self.connections: list = []
@@ -89,19 +100,9 @@ class _Bench:
             self._reply(self.generator)
             relay2_address = self._reply(self._start("plain relay 2", relay_main, self.sink_address))
             self.plain_address = self._reply(self._start("plain relay 1", relay_main, relay2_address))
-            receiver = self._daemon("receiver", {
-                "role": "receiver", "forward": _text(self.sink_address),
-                "link": {"bind": "127.0.0.1:0"}, "fec": {"block_size": self.k, "repair": self.m},
-                "sockets": _socket_section(), "log": {"level": "warning"},
-            })
-            receiver_link, _ = receiver
-            sender = self._daemon("sender", {
-                "role": "sender", "listen": "127.0.0.1:0",
-                "link": {"bind": "127.0.0.1:0", "peer": _text(receiver_link)},
-                "fec": {"block_size": self.k, "repair": self.m},
-                "sockets": _socket_section(), "log": {"level": "warning"},
-            })
-            self.pair_address = sender[1]
+            self.pair_address = self._pair("", self.sink_address)
+            if self.impairment is not None:
+                self.lossy_address = self._pair("lossy ", self.sink_address, self.impairment)
         except BaseException:
             self.__exit__(None, None, None)
             raise
@@ -136,6 +137,25 @@ class _Bench:
         self.pids[role] = process.pid
         return parent
 
+    def _pair(self, prefix: str, forward: tuple, impairment: tuple | None = None) -> tuple:
+        """Start a receiver and a sender (with a lossy link relay between them when impaired);
+        return the sender's application address."""
+        fec = {"block_size": self.k, "repair": self.m}
+        receiver_link, _ = self._daemon(f"{prefix}receiver", {
+            "role": "receiver", "forward": _text(forward),
+            "link": {"bind": "127.0.0.1:0"}, "fec": fec,
+            "sockets": _socket_section(), "log": {"level": "warning"},
+        })
+        peer = receiver_link
+        if impairment is not None:
+            peer = self._reply(self._start("link impairment", relay_main, receiver_link, impairment))
+        _, sender_listen = self._daemon(f"{prefix}sender", {
+            "role": "sender", "listen": "127.0.0.1:0",
+            "link": {"bind": "127.0.0.1:0", "peer": _text(peer)}, "fec": fec,
+            "sockets": _socket_section(), "log": {"level": "warning"},
+        })
+        return sender_listen
+
     def _daemon(self, role: str, document: dict) -> tuple:
         return self._reply(self._start(role, daemon_main, document))
 
@@ -149,7 +169,8 @@ class _Bench:
         return conn.recv()
 
     def target(self, pipeline: str) -> tuple:
-        return {"plain": self.plain_address, "pair": self.pair_address, "direct": self.sink_address}[pipeline]
+        return {"plain": self.plain_address, "pair": self.pair_address, "direct": self.sink_address,
+                "lossy": getattr(self, "lossy_address", None)}[pipeline]
 
     def run_trial(self, pipeline: str, rate: float, seconds: float, keep_delays: bool = False):
         self.trial_id += 1
@@ -169,8 +190,11 @@ class _Bench:
             for role in stages
             if cpu_after.get(role) is not None and cpu_before.get(role) is not None
         }
+        limit = LOSS_LIMIT
+        if pipeline == "lossy":
+            limit = residual_allowance(self.predicted_residual, sent, self.m)
         trial = Trial(pipeline, rate, sent / elapsed if elapsed > 0 else rate, sent, counts["received"],
-                      counts["duplicates"], cpu_us)
+                      counts["duplicates"], cpu_us, limit)
         delays = array("q")
         if counts["delays"]:
             delays.frombytes(counts["delays"])
@@ -184,7 +208,12 @@ class _Bench:
 
 
 #: The processes a datagram crosses between generator and sink, per pipeline.
-PIPELINE_STAGES = {"plain": ("plain relay 1", "plain relay 2"), "pair": ("sender", "receiver"), "direct": ()}
+PIPELINE_STAGES = {
+    "plain": ("plain relay 1", "plain relay 2"),
+    "pair": ("sender", "receiver"),
+    "lossy": ("lossy sender", "link impairment", "lossy receiver"),
+    "direct": (),
+}
 
 
 def _process_cpu_seconds(pid: int) -> float | None:
@@ -225,14 +254,28 @@ def run_pipeline_bench(
     max_rate: float = DEFAULT_MAX_RATE,
     delay_rate: float = DEFAULT_DELAY_RATE,
     delay_seconds: float = DEFAULT_DELAY_SECONDS,
+    link_loss: float | None = None,
+    link_burst: float | None = None,
+    seed: int = DEFAULT_SEED,
     progress=None,
 ) -> PipelineResult:
-    """Start every process, search both pipelines' rates in alternation, then measure delay."""
+    """Start every process, search the pipelines' rates in alternation, then measure delay.
+
+    With ``link_loss`` a third pipeline runs: a second pair whose link crosses an in-process
+    impairment (loss ``link_loss``, i.i.d. or with mean burst ``link_burst``); it passes a trial
+    while its residual loss stays within the planner's prediction for that channel.
+    """
     say = progress or (lambda line: None)
-    with _Bench(k, m, trial_seconds) as bench:
-        for pipeline in ("plain", "pair"):  # warm-up: flows opened, sessions learned
+    impairment = predicted = None
+    pipelines = ["plain", "pair"]
+    if link_loss is not None:
+        impairment = (link_loss, link_burst, seed)
+        predicted = evaluate(link_channel(link_loss, link_burst), k, m).residual_loss
+        pipelines.append("lossy")
+    with _Bench(k, m, trial_seconds, impairment, predicted or 0.0) as bench:
+        for pipeline in pipelines:  # warm-up: flows opened, sessions learned
             bench.run_trial(pipeline, min(start_rate, 2000.0), 0.2)
-        searches = [RateSearch("plain", start_rate, max_rate), RateSearch("pair", start_rate, max_rate)]
+        searches = [RateSearch(pipeline, start_rate, max_rate) for pipeline in pipelines]
         deadline = time.monotonic() + budget_seconds
         while time.monotonic() < deadline:
             stepped = False
@@ -254,12 +297,16 @@ def run_pipeline_bench(
             trial, values = bench.run_trial(path, delay_rate, delay_seconds, keep_delays=True)
             delays.append(DelayFigures(path, trial.offered, len(values), trial.loss,
                                        _percentile_us(values, 50), _percentile_us(values, 99)))
-    plain, pair = searches
-    return PipelineResult(
+    plain, pair, *lossy = searches
+    result = PipelineResult(
         datagram_bytes=DATAGRAM_BYTES, k=k, m=m, trial_seconds=trial_seconds,
         plain_rate=plain.best, pair_rate=pair.best, plain_stopped=plain.stopped, pair_stopped=pair.stopped,
-        delays=delays, trials=plain.trials + pair.trials,
+        delays=delays, trials=[trial for search in searches for trial in search.trials],
     )
+    if lossy:
+        result.link_loss, result.link_burst, result.predicted_residual = link_loss, link_burst, predicted
+        result.lossy_rate, result.lossy_stopped = lossy[0].best, lossy[0].stopped
+    return result
 
 
 def _positive(kind):
@@ -273,6 +320,26 @@ def _positive(kind):
         return value
 
     return parse
+
+
+def _probability(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
+    if not 0 < value < MAX_LINK_LOSS:
+        raise argparse.ArgumentTypeError(f"loss must be in (0, {MAX_LINK_LOSS}), got {text!r}")
+    return value
+
+
+def _burst(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
+    if not 1 <= value <= 1000:
+        raise argparse.ArgumentTypeError(f"mean burst must be in [1, 1000] packets, got {text!r}")
+    return value
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
@@ -294,6 +361,12 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="length of each delay trial")
     parser.add_argument("--block-size", type=_positive(int), default=BLOCK_SIZE, help="k of the fecproxy pair")
     parser.add_argument("--repair", type=int, default=REPAIR, help="m of the fecproxy pair")
+    parser.add_argument("--loss", type=_probability, default=None,
+                        help="also search a pair whose link loses this share of packets (e.g. 0.05), "
+                        "passing while residual loss stays within the planner's prediction")
+    parser.add_argument("--burst", type=_burst, default=None,
+                        help="mean loss burst length in packets for --loss (Gilbert model); default i.i.d.")
+    parser.add_argument("--seed", type=int, default=DEFAULT_SEED, help="seed of the impaired link's losses")
     parser.add_argument("--quick", action="store_true",
                         help="a few short trials at low rates (a smoke test, not a measurement)")
     parser.add_argument("--json", action="store_true", help="print the result as JSON instead of a table")
@@ -308,10 +381,13 @@ def main(args: argparse.Namespace) -> int:
     settings = dict(
         k=args.block_size, m=args.repair, trial_seconds=args.trial_seconds, budget_seconds=args.budget_seconds,
         start_rate=args.start_rate, max_rate=args.max_rate, delay_rate=args.delay_rate,
-        delay_seconds=args.delay_seconds,
+        delay_seconds=args.delay_seconds, link_loss=args.loss, link_burst=args.burst, seed=args.seed,
     )
+    if args.burst is not None and args.loss is None:
+        print("fecproxy bench pipeline: --burst needs --loss", file=sys.stderr)
+        return 2
     if args.quick:
-        settings.update(trial_seconds=0.2, budget_seconds=1.0, start_rate=1000.0, max_rate=2000.0,
+        settings.update(trial_seconds=0.2, budget_seconds=1.6, start_rate=1000.0, max_rate=2000.0,
                         delay_rate=1000.0, delay_seconds=0.2)
     progress = (lambda line: print(line, file=sys.stderr, flush=True)) if args.verbose else None
     result = run_pipeline_bench(progress=progress, **settings)

@@ -147,15 +147,32 @@ def sink_main(conn) -> None:
                 delays.append(arrived - stamp)
 
 
-def relay_main(conn, forward: tuple) -> None:
-    """A plain relay: the same reader/writer as the daemon, no FEC.  Stops on SIGTERM.
+def link_channel(loss: float, burst: float | None):
+    """The loss model of the impaired link: independent loss, or Gilbert bursts of mean length B."""
+    from fecproxy.linkmodel.loss_models import GilbertElliott
 
-    Both relays read with UDP GRO (``coalesce=True``), as the daemon reads its application and
-    link sockets, so both pipelines use the same I/O.
+    return GilbertElliott.bernoulli(loss) if burst is None else GilbertElliott.from_loss_burst(loss, burst)
+
+
+def relay_main(conn, forward: tuple, impairment: tuple | None = None) -> None:
+    """A relay: the same reader/writer as the daemon, no FEC.  Stops on SIGTERM.
+
+    Both plain relays read with UDP GRO (``coalesce=True``), as the daemon reads its application
+    and link sockets, so both pipelines use the same I/O.  With ``impairment = (loss, burst,
+    seed)`` the relay is the lossy link between the pair's sender and receiver: every datagram
+    goes through the sans-IO link model of :mod:`fecproxy.linkmodel.impairment` (seeded, loss
+    only, no delay), so the pair meets a reproducible loss pattern at any rate.
     """
     import trio
 
     from fecproxy.shell.udp import DatagramReader, DatagramWriter, open_udp_socket
+
+    link = None
+    if impairment is not None:
+        from fecproxy.linkmodel.impairment import ImpairedLink, LinkImpairment
+
+        loss, burst, seed = impairment
+        link = ImpairedLink(LinkImpairment(loss=link_channel(loss, burst)), seed=seed, start=time.monotonic())
 
     async def relay() -> None:
         buffers = dict(receive_buffer=SOCKET_BUFFER_BYTES, send_buffer=SOCKET_BUFFER_BYTES)
@@ -165,7 +182,15 @@ def relay_main(conn, forward: tuple) -> None:
         conn.send(inbound.getsockname())
         while True:
             batch = await reader.read_batch()
-            await writer.send([data for data, _ in batch], forward)
+            if link is None:
+                await writer.send([data for data, _ in batch], forward)
+                continue
+            now = time.monotonic()
+            for data, _ in batch:
+                link.submit(data, now)
+            passed = link.due(now)  # no delay configured: what survived is due at once
+            if passed:
+                await writer.send(passed, forward)
 
     try:
         trio.run(relay)
