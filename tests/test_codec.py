@@ -310,6 +310,29 @@ def test_lagrange_matrix_matches_galois_solution(GF, shape, data):
     assert np.array_equal(codec.lagrange_coefficients(missing, points), solved.view(np.ndarray))
 
 
+@settings(max_examples=40, deadline=None)
+@given(st.sampled_from(DECODE_SHAPES), st.integers(1, 12), st.data())
+def test_recover_many_equals_recover_block_by_block(GF, shape, blocks, data):
+    # Several blocks of galois-encoded data (RFC 5510 §8.2), each with its own random loss
+    # pattern (some undamaged, different loss counts): one batched call rebuilds every block.
+    k, m = shape
+    n = k + m
+    rng = np.random.default_rng(data.draw(st.integers(0, 2**32 - 1)))
+    code = BlockCode(k, n)
+    receptions, sources = [], []
+    for _ in range(blocks):
+        source = rng.integers(0, 256, size=(k, 24), dtype=np.uint8)
+        symbols = np.concatenate([source, (galois_repair_matrix(k, n) @ GF(source)).view(np.ndarray)])
+        kept = rng.permutation(n)[: n - int(rng.integers(0, m + 1))]
+        receptions.append({int(i): bytes(symbols[i]) for i in kept})
+        sources.append(source)
+    rebuilt = code.recover_many(receptions)
+    assert len(rebuilt) == blocks
+    for received, source, found in zip(receptions, sources, rebuilt):
+        assert sorted(found) == [i for i in range(k) if i not in received]
+        assert all(np.array_equal(symbol, source[i]) for i, symbol in found.items())
+
+
 # --- the benchmark command runs (no speed assertion) -----------------------------------------
 
 

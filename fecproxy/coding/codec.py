@@ -155,6 +155,35 @@ class BlockCode:
         rebuilt, _rows = self._rebuild(missing, repairs, stacked)
         return {index: rebuilt[row] for row, index in enumerate(missing)}
 
+    def recover_many(self, receptions: Sequence[Mapping[int, object]]) -> list[dict[int, np.ndarray]]:
+        """:meth:`recover` for several blocks of this code at once, results in the same order.
+
+        Blocks with the same number of lost source symbols share one closed-form computation and
+        one pass of the kernel (:meth:`gf256.Multiplier.block_diagonal`), so a receiver holding
+        several damaged blocks pays the fixed per-call cost once.  Never uses the pattern cache.
+        An invalid block raises as :meth:`recover` would, before any work is done.
+        """
+        selected = [self._select(received) for received in receptions]
+        results: list[dict[int, np.ndarray]] = [{} for _ in selected]
+        by_loss: dict[int, list[int]] = {}
+        for position, (missing, _repairs, _stacked) in enumerate(selected):
+            if missing:
+                by_loss.setdefault(len(missing), []).append(position)
+        for e, members in by_loss.items():
+            positions = np.empty((len(members), e + self.k), dtype=np.intp)
+            for row, position in enumerate(members):
+                missing, repairs, _ = selected[position]
+                lost = set(missing)
+                stand_in = iter(repairs)
+                positions[row] = [*missing, *(next(stand_in) if i in lost else i for i in range(self.k))]
+            coefficients = lagrange_coefficients_many(positions, e)
+            data = np.concatenate([selected[position][2] for position in members])
+            rebuilt = gf256.Multiplier.block_diagonal(coefficients)(data)
+            for row, position in enumerate(members):
+                missing = selected[position][0]
+                results[position] = {index: rebuilt[row * e + j] for j, index in enumerate(missing)}
+        return results
+
     def _select(self, received: Mapping[int, object]) -> tuple[list[int], list[int], np.ndarray]:
         """Validate the received symbols and stack the k that decoding uses into one array.
 
@@ -254,14 +283,18 @@ def lagrange_coefficients(missing: Sequence[int], points: Sequence[int]) -> np.n
     is a handful of whole-array operations on e×k and k×k integers; no matrix inversion.
     Columns follow the order of ``points``.  Every coefficient is non-zero (x_m is never a point).
     """
-    e = len(missing)
-    rows = np.array([*missing, *points], dtype=np.intp)
-    differences = LOG_DIFFERENCE[rows[:, None], rows[None, e:]]  # log(x_r − x_p), (e + k, k)
+    return lagrange_coefficients_many(np.array([[*missing, *points]], dtype=np.intp), len(missing))[0]
+
+
+def lagrange_coefficients_many(positions: np.ndarray, e: int) -> np.ndarray:
+    """:func:`lagrange_coefficients` for B loss patterns at once: ``positions`` is (B, e + k),
+    each row the e missing positions then the k points; returns (B, e, k)."""
+    differences = LOG_DIFFERENCE[positions[:, :, None], positions[:, None, e:]]  # log(x_r − x_p)
     # Row sums: log N(x_m) for the e missing rows (x_m is no point, so no zero factor), then
     # log D_p for the k points (the diagonal is 0).  Reduced once, so the sum below stays in
     # −2·254 .. 254 and one lookup in the thrice-repeated exponent table finishes it.
-    sums = differences.sum(axis=1) % (gf256.ORDER - 1)
-    logs = (sums[:e, None] + _EXP_OFFSET) - differences[:e] - sums[None, e:]
+    sums = differences.sum(axis=2) % (gf256.ORDER - 1)
+    logs = (sums[:, :e, None] + _EXP_OFFSET) - differences[:, :e] - sums[:, None, e:]
     return _EXP_WRAPPED[logs]
 
 

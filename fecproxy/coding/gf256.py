@@ -245,6 +245,35 @@ class Multiplier:
         index += np.arange(self.inner)[:, None, None]
         self._index = index.reshape(self.inner, self.digits * self.rows)
 
+    @classmethod
+    def block_diagonal(cls, coefficients: np.ndarray, digit_bits: int | None = None) -> "Multiplier":
+        """One multiplier for B independent (rows × inner) products: ``coefficients`` is (B, rows,
+        inner); the data is the B blocks' rows stacked, (B·inner, L); the result is (B·rows, L),
+        block b's rows from block b's data only.
+
+        Why: a receiver that holds several damaged blocks pays the fixed cost of the kernel (a few
+        dozen numpy calls) once instead of once per block.  The product table spans all B·inner
+        data rows; each output row gathers only from its own block's rows, so the work stays
+        linear in B (the XOR-reduction runs over ``inner``, not B·inner).
+        """
+        coefficients = np.asarray(coefficients, dtype=np.uint8)
+        if coefficients.ndim != 3:
+            raise ValueError(f"coefficients must be 3-D (blocks, rows, inner), got shape {coefficients.shape}")
+        blocks, rows, inner = coefficients.shape
+        self = cls.__new__(cls)
+        self.rows, self.inner = blocks * rows, blocks * inner
+        if digit_bits is None:
+            digit_bits = 4 if self.rows >= FOUR_BIT_DIGITS_FROM_ROWS else 2
+        if digit_bits not in DIGIT_BITS_CHOICES:
+            raise ValueError(f"digit_bits must be one of {DIGIT_BITS_CHOICES}, got {digit_bits}")
+        self.digit_bits, self.digits, self._entries = digit_bits, 8 // digit_bits, (1 << digit_bits) - 1
+        # index[i, d, b, r] = digit d of coefficients[b, r, i] · (B·inner) + b·inner + i
+        index = np.empty((inner, self.digits, blocks, rows), dtype=np.intp)
+        np.multiply(_DIGIT_VALUES[digit_bits][coefficients].transpose(2, 3, 0, 1), self.inner, out=index)
+        index += (np.arange(blocks)[:, None] * inner)[None, None] + np.arange(inner)[:, None, None, None]
+        self._index = index.reshape(inner, self.digits * self.rows)
+        return self
+
     def __repr__(self) -> str:
         return f"Multiplier(rows={self.rows}, inner={self.inner}, digit_bits={self.digit_bits})"
 
@@ -269,7 +298,7 @@ class Multiplier:
         return product if product.shape[1] == length else np.ascontiguousarray(product[:, :length])
 
     def _chunk_words(self, words: int) -> int:
-        per_word = self.inner * self.digits * self.rows * _WORD_BYTES
+        per_word = self._index.size * _WORD_BYTES  # bytes gathered per word of symbol length
         chunk = max(MIN_CHUNK_WORDS, GATHER_CHUNK_BYTES // per_word)
         if chunk >= words:
             return words
