@@ -15,6 +15,14 @@ are exact) and, for delay trials, keeps ``now − timestamp`` per datagram (CLOC
 system-wide, so both ends read the same clock).  The rate search alternates trials between the
 two pipelines, so a noisy neighbour on a shared machine hurts neither figure more than the
 other.  This is a benchmark that prints figures, never a pass/fail test.
+
+With ``--loss P [--burst B]`` a second pair runs beside the first, its link crossing a relay
+that applies the seeded link model of :mod:`fecproxy.linkmodel.impairment`; its rate search
+passes a trial while the residual loss stays within what :mod:`fecproxy.linkmodel.planner`
+predicts for that channel, and the report gives its rate over the clean pair's, same run.
+
+This module starts the processes and runs the search; the pure search and the report live in
+:mod:`.search`, the child processes in :mod:`.processes`.
 """
 from __future__ import annotations
 
