@@ -283,9 +283,10 @@ def lagrange_coefficients(missing: Sequence[int], points: Sequence[int]) -> np.n
 
     RFC 5510 §8.2: GM = V_k⁻¹·V, so encoding symbol p (source or repair) is P(alpha^p), where
     P is the polynomial of degree < k through (alpha^i, source_i), i < k.  Given P at k
-    distinct points x_p = alpha^p, Lagrange interpolation (any algebra text, e.g. Lidl &
-    Niederreiter, *Finite Fields*, §1.6 / Knuth TAOCP vol. 2 §4.6.4) gives its value at
-    x_m = alpha^m for a missing source position m:
+    distinct points x_p = alpha^p, the Lagrange interpolation formula (valid over any field;
+    e.g. Lidl & Niederreiter, *Finite Fields*, ch. 1 — chapter from memory; the tests check the
+    matrix against galois solving the §8.2 system) gives its value at x_m = alpha^m for a
+    missing source position m:
 
         P(x_m) = Σ_p symbol_p · N(x_m) / ((x_m − x_p) · D_p),
         N(x) = Π_q (x − x_q),   D_p = Π_{q≠p} (x_p − x_q).

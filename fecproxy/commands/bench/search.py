@@ -135,6 +135,9 @@ class PipelineResult:
     predicted_residual: float | None = None
     lossy_rate: float | None = None
     lossy_stopped: str = ""
+    #: The same pair and relay hop with no loss: the like-for-like reference for ``lossy_rate``.
+    relayed_rate: float | None = None
+    relayed_stopped: str = ""
 
     @property
     def lossy_ratio(self) -> float | None:
@@ -142,6 +145,13 @@ class PipelineResult:
         if not self.pair_rate or self.lossy_rate is None:
             return None
         return self.lossy_rate / self.pair_rate
+
+    @property
+    def lossy_over_relayed(self) -> float | None:
+        """Highest rate over the impaired link / over the same relay hop without loss, same run."""
+        if not self.relayed_rate or self.lossy_rate is None:
+            return None
+        return self.lossy_rate / self.relayed_rate
 
     @property
     def ratio(self) -> float | None:
@@ -161,6 +171,7 @@ class PipelineResult:
         out = {k: v for k, v in asdict(self).items() if k != "trials"}
         out["ratio"] = self.ratio
         out["lossy_ratio"] = self.lossy_ratio
+        out["lossy_over_relayed"] = self.lossy_over_relayed
         out["trials"] = [dict(asdict(t), loss=t.loss, passed=t.passed) for t in self.trials]
         direct, pair = self.delay("direct"), self.delay("pair")
         if direct and pair:
@@ -188,13 +199,20 @@ def format_result(result: PipelineResult) -> str:
         lines += [
             f"{title:<34} {rate(result.lossy_rate):>12}  "
             f"{sum(t.pipeline == 'lossy' for t in result.trials):>6}  {result.lossy_stopped}",
+            f"{'pair over the same relay, no loss':<34} {rate(result.relayed_rate):>12}  "
+            f"{sum(t.pipeline == 'relayed' for t in result.trials):>6}  {result.relayed_stopped}",
             f"{'ratio lossy link / clean link':<34} "
             f"{'-' if result.lossy_ratio is None else f'{result.lossy_ratio:.2f}':>12}",
+            f"{'ratio lossy / relayed (same hops)':<34} "
+            f"{'-' if result.lossy_over_relayed is None else f'{result.lossy_over_relayed:.2f}':>12}",
             f"  link: {result.link_loss:.1%} loss ({burst}, seeded, impaired in-process between sender and "
             f"receiver); pass = residual loss within the planner's prediction {result.predicted_residual:.3%} "
             f"+ {RESIDUAL_SIGMAS:g}σ sampling margin",
         ]
-    for pipeline, title in (("plain", "plain relays"), ("pair", "fecproxy pair"), ("lossy", "pair, lossy link")):
+    for pipeline, title in (
+        ("plain", "plain relays"), ("pair", "fecproxy pair"), ("lossy", "pair, lossy link"),
+        ("relayed", "pair, lossless relay"),
+    ):
         best = result.best_trial(pipeline)
         if best is not None and best.cpu_us:
             parts = ", ".join(f"{role} {us:.1f}" for role, us in best.cpu_us.items())
