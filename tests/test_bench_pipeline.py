@@ -54,3 +54,40 @@ def test_search_steps_up_then_bisects_and_stops():
         search.record(trial(rate, 0 if rate < 1200.0 else 11))  # 0.11 % lost above 1200/s
     assert search.stopped == "converged"
     assert 1200.0 / (1 + bench_pipeline.SEARCH_PRECISION) <= search.best < 1200.0
+
+
+def test_impaired_trials_pass_within_the_predicted_residual_loss():
+    # The allowance is the prediction plus a sampling margin that shrinks with the trial length.
+    predicted = 6.6e-4
+    short = bench_pipeline.residual_allowance(predicted, 1_000, 4)
+    long = bench_pipeline.residual_allowance(predicted, 1_000_000, 4)
+    assert predicted < long < short
+    assert bench_pipeline.residual_allowance(0.0, 1_000, 4) == 0.0
+    limit = bench_pipeline.residual_allowance(predicted, 40_000, 4)
+    within = bench_pipeline.Trial("lossy", 2e4, 2e4, 40_000, 40_000 - int(limit * 40_000) + 1, 0, {}, limit)
+    beyond = bench_pipeline.Trial("lossy", 2e4, 2e4, 40_000, 40_000 - int(limit * 40_000) - 1, 0, {}, limit)
+    assert within.passed and not beyond.passed
+
+
+def test_report_names_the_impaired_link_and_the_ratio_to_the_clean_link():
+    trials = [bench_pipeline.Trial("pair", 1e4, 1e4, 100, 100, 0), bench_pipeline.Trial("lossy", 8e3, 8e3, 100, 100, 0)]
+    result = bench_pipeline.PipelineResult(
+        datagram_bytes=1200, k=16, m=4, trial_seconds=1.0, plain_rate=2e4, pair_rate=1e4,
+        plain_stopped="converged", pair_stopped="converged", delays=[], trials=trials,
+        link_loss=0.05, link_burst=None, predicted_residual=6.6e-4, lossy_rate=8e3, lossy_stopped="converged",
+    )
+    text = bench_pipeline.format_result(result)
+    assert "5.0% link loss" in text and "i.i.d." in text and "0.80" in text
+    assert result.as_dict()["lossy_ratio"] == pytest.approx(0.8)
+
+
+@pytest.mark.slow
+def test_quick_run_over_an_impaired_link(capsys):
+    children_before = set(multiprocessing.active_children())
+    assert main(["bench", "pipeline", "--quick", "--json", "--loss", "0.05", "--burst", "2"]) == 0
+    result = json.loads(capsys.readouterr().out)
+    assert (result["link_loss"], result["link_burst"]) == (0.05, 2.0)
+    assert 0 < result["predicted_residual"] < 0.05
+    lossy = [trial for trial in result["trials"] if trial["pipeline"] == "lossy"]
+    assert lossy and all(trial["loss_limit"] > result["predicted_residual"] for trial in lossy)
+    assert set(multiprocessing.active_children()) <= children_before

@@ -8,6 +8,7 @@ shared/design-notes.md (computed there with galois from §8.2).
 from __future__ import annotations
 
 import contextlib
+import functools
 import importlib.util
 import io
 import json
@@ -248,6 +249,88 @@ def test_inverse_cache_is_reused_and_bounded(monkeypatch):
         assert np.array_equal(code.decode({i: symbols[i] for i in range(7) if i != lost}), source)
         assert len(code._inverses) <= 3
     assert len(code._inverses) == 3
+
+
+# --- fresh loss patterns against galois (the shapes the decoder is tuned for) ----------------
+
+#: Shapes the decode path is tuned and benchmarked at, plus a short code and a full-length one.
+DECODE_SHAPES = [(16, 4), (64, 16), (200, 55), (5, 3), (100, 155)]
+
+
+@functools.lru_cache(maxsize=None)
+def galois_repair_matrix(k: int, n: int) -> np.ndarray:
+    # RFC 5510 §8.2: GM = V_k^-1 · V with V[i][j] = alpha^(i·j); repair symbol j ≥ k is column j
+    # of GM applied to the source.  Built with galois on the RFC 5510 §8.1 field (0x11D).
+    galois = importlib.import_module("galois")
+    field = galois.GF(2**8, irreducible_poly=0x11D)
+    vandermonde = field.Vandermonde(field.primitive_element, k, n)
+    return (np.linalg.inv(vandermonde[:, :k]) @ vandermonde)[:, k:].T  # (n − k, k) field array
+
+
+@settings(max_examples=150, deadline=None)
+@given(st.sampled_from(DECODE_SHAPES), st.sampled_from([1, 8, 61, 1200]), st.data())
+def test_fresh_loss_patterns_rebuild_galois_encoded_blocks(GF, shape, length, data):
+    # Repair symbols computed by galois from RFC 5510 §8.2; our decoder, with an empty pattern
+    # cache every time, must rebuild the source from any k of the n symbols (§8.3–8.4: MDS).
+    k, m = shape
+    n = k + m
+    seed = data.draw(st.integers(0, 2**32 - 1))
+    rng = np.random.default_rng(seed)
+    source = rng.integers(0, 256, size=(k, length), dtype=np.uint8)
+    repair = (galois_repair_matrix(k, n) @ GF(source)).view(np.ndarray)
+    symbols = np.concatenate([source, repair])
+    lost = data.draw(st.integers(0, m))
+    kept = rng.permutation(n)[: n - lost]  # any n − lost ≥ k survivors, sources and repairs alike
+    received = {int(i): bytes(symbols[i]) for i in kept}
+    code = BlockCode(k, n)
+    assert np.array_equal(code.decode(received), source)
+    missing = [i for i in range(k) if i not in received]
+    rebuilt = code.recover(received)
+    assert sorted(rebuilt) == missing
+    assert all(np.array_equal(rebuilt[i], source[i]) for i in missing)
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.sampled_from(DECODE_SHAPES), st.data())
+def test_lagrange_matrix_matches_galois_solution(GF, shape, data):
+    # The closed-form decode matrix must equal the one galois gets by solving the RFC 5510 §8.2
+    # system directly: with the k received columns G_P of GM, source = received · G_P^-1, so
+    # missing source m is Σ_p (G_P^-1)[p, m] · symbol_p.
+    k, m = shape
+    n = k + m
+    rng = np.random.default_rng(data.draw(st.integers(0, 2**32 - 1)))
+    e = data.draw(st.integers(1, min(m, k)))
+    missing = sorted(rng.choice(k, e, replace=False).tolist())
+    repairs = sorted(rng.choice(np.arange(k, n), e, replace=False).tolist())
+    stand_in = iter(repairs)
+    points = [next(stand_in) if i in missing else i for i in range(k)]
+    vandermonde = GF.Vandermonde(GF.primitive_element, k, n)
+    generator = np.linalg.inv(vandermonde[:, :k]) @ vandermonde
+    solved = np.linalg.inv(generator[:, points])[:, missing].T  # (e, k), columns in points order
+    assert np.array_equal(codec.lagrange_coefficients(missing, points), solved.view(np.ndarray))
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.sampled_from(DECODE_SHAPES), st.integers(1, 12), st.data())
+def test_recover_many_equals_recover_block_by_block(GF, shape, blocks, data):
+    # Several blocks of galois-encoded data (RFC 5510 §8.2), each with its own random loss
+    # pattern (some undamaged, different loss counts): one batched call rebuilds every block.
+    k, m = shape
+    n = k + m
+    rng = np.random.default_rng(data.draw(st.integers(0, 2**32 - 1)))
+    code = BlockCode(k, n)
+    receptions, sources = [], []
+    for _ in range(blocks):
+        source = rng.integers(0, 256, size=(k, 24), dtype=np.uint8)
+        symbols = np.concatenate([source, (galois_repair_matrix(k, n) @ GF(source)).view(np.ndarray)])
+        kept = rng.permutation(n)[: n - int(rng.integers(0, m + 1))]
+        receptions.append({int(i): bytes(symbols[i]) for i in kept})
+        sources.append(source)
+    rebuilt = code.recover_many(receptions)
+    assert len(rebuilt) == blocks
+    for received, source, found in zip(receptions, sources, rebuilt):
+        assert sorted(found) == [i for i in range(k) if i not in received]
+        assert all(np.array_equal(symbol, source[i]) for i, symbol in found.items())
 
 
 # --- the benchmark command runs (no speed assertion) -----------------------------------------

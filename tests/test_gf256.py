@@ -158,3 +158,15 @@ def test_multiplier_rejects_bad_shapes():
         gf256.Multiplier(np.ones(3, dtype=np.uint8))
     with pytest.raises(ValueError, match="digit_bits"):
         gf256.Multiplier(np.ones((2, 3), dtype=np.uint8), digit_bits=3)
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.integers(1, 5), st.integers(0, 6), st.integers(0, 9), st.integers(0, 40), st.sampled_from([None, 2, 4]), st.integers(0, 2**32 - 1))
+def test_block_diagonal_multiplier_equals_one_reference_product_per_block(blocks, rows, inner, length, digit_bits, seed):
+    # Each block's rows come from its own data rows only: the same as B separate products.
+    rng = np.random.default_rng(seed)
+    coefficients = rng.integers(0, 256, size=(blocks, rows, inner), dtype=np.uint8)
+    data = rng.integers(0, 256, size=(blocks * inner, length), dtype=np.uint8)
+    product = gf256.Multiplier.block_diagonal(coefficients, digit_bits)(data)
+    expected = [gf256.matmul_reference(coefficients[b], data[b * inner : (b + 1) * inner]) for b in range(blocks)]
+    assert np.array_equal(product, np.concatenate(expected) if expected else product)

@@ -202,6 +202,20 @@ def _mul_power_of_two(x: np.ndarray, s: int, out: np.ndarray, tmp: np.ndarray, t
     return out
 
 
+def _digit_values(digit_bits: int) -> np.ndarray:
+    """(256, 8 // digit_bits) table: the digits of every byte value, low digit first but in
+    bit-reversed digit order (0, 2, 1, 3 for four digits) so that every level of the Horner
+    tree pairs the first half of the digit rows with the second half: contiguous slices."""
+    digits = 8 // digit_bits
+    width = digits.bit_length() - 1
+    order = [int(format(d, f"0{width}b")[::-1], 2) if width else 0 for d in range(digits)]
+    shifts = np.array(order) * digit_bits
+    return ((np.arange(ORDER)[:, None] >> shifts[None, :]) & ((1 << digit_bits) - 1)).astype(np.intp)
+
+
+_DIGIT_VALUES = {bits: _digit_values(bits) for bits in (2, 4)}
+
+
 class Multiplier:
     """Multiplication by one fixed (rows × inner) coefficient matrix, prepared for many blocks.
 
@@ -221,20 +235,44 @@ class Multiplier:
             raise ValueError(f"digit_bits must be one of {DIGIT_BITS_CHOICES}, got {digit_bits}")
         self.digit_bits = digit_bits
         self.digits = 8 // digit_bits
-        self._entries = (1 << digit_bits) - 1  # non-zero digit values, one table row each
-        # Digit d of every coefficient: shape (digits, rows, inner).  Digits are stored in
-        # bit-reversed order (0, 2, 1, 3 for four) so that every level of the Horner tree
-        # pairs the first half with the second half: contiguous slices, faster ufuncs.
-        order = [int(f"{d:0{self.digits.bit_length() - 1}b}"[::-1] or "0", 2) for d in range(self.digits)]
-        shifts = (np.array(order) * digit_bits).astype(np.uint8)
-        digit = ((coefficients[None] >> shifts[:, None, None]) & self._entries).astype(np.intp)
-        # Table layout is entry-major: row (value − 1)·inner + i holds value·data[i]; the
-        # last row is all zeros and stands for a zero digit.
-        zero_row = self._entries * self.inner
-        source = np.arange(self.inner)[None, None, :]
-        index = np.where(digit != 0, (digit - 1) * self.inner + source, zero_row)
-        # Inner-major so the XOR-reduction runs over axis 0 with long contiguous rows.
-        self._index = np.ascontiguousarray(index.reshape(self.digits * self.rows, self.inner).T)
+        self._entries = (1 << digit_bits) - 1  # non-zero digit values
+        # Table layout is value-major: row v·inner + i holds v·data[i], v = 0 (zeros) .. entries,
+        # so the row a digit names is digit·inner + i with no special case for a zero digit.
+        # Index layout (inner, digits, rows), inner-major so the XOR-reduction runs over axis 0
+        # with long contiguous rows: one table lookup, one multiply-add.
+        index = np.empty((self.inner, self.digits, self.rows), dtype=np.intp)
+        np.multiply(_DIGIT_VALUES[digit_bits][coefficients.T].transpose(0, 2, 1), self.inner, out=index)
+        index += np.arange(self.inner)[:, None, None]
+        self._index = index.reshape(self.inner, self.digits * self.rows)
+
+    @classmethod
+    def block_diagonal(cls, coefficients: np.ndarray, digit_bits: int | None = None) -> "Multiplier":
+        """One multiplier for B independent (rows × inner) products: ``coefficients`` is (B, rows,
+        inner); the data is the B blocks' rows stacked, (B·inner, L); the result is (B·rows, L),
+        block b's rows from block b's data only.
+
+        Why: a receiver that holds several damaged blocks pays the fixed cost of the kernel (a few
+        dozen numpy calls) once instead of once per block.  The product table spans all B·inner
+        data rows; each output row gathers only from its own block's rows, so the work stays
+        linear in B (the XOR-reduction runs over ``inner``, not B·inner).
+        """
+        coefficients = np.asarray(coefficients, dtype=np.uint8)
+        if coefficients.ndim != 3:
+            raise ValueError(f"coefficients must be 3-D (blocks, rows, inner), got shape {coefficients.shape}")
+        blocks, rows, inner = coefficients.shape
+        self = cls.__new__(cls)
+        self.rows, self.inner = blocks * rows, blocks * inner
+        if digit_bits is None:
+            digit_bits = 4 if self.rows >= FOUR_BIT_DIGITS_FROM_ROWS else 2
+        if digit_bits not in DIGIT_BITS_CHOICES:
+            raise ValueError(f"digit_bits must be one of {DIGIT_BITS_CHOICES}, got {digit_bits}")
+        self.digit_bits, self.digits, self._entries = digit_bits, 8 // digit_bits, (1 << digit_bits) - 1
+        # index[i, d, b, r] = digit d of coefficients[b, r, i] · (B·inner) + b·inner + i
+        index = np.empty((inner, self.digits, blocks, rows), dtype=np.intp)
+        np.multiply(_DIGIT_VALUES[digit_bits][coefficients].transpose(2, 3, 0, 1), self.inner, out=index)
+        index += (np.arange(blocks)[:, None] * inner)[None, None] + np.arange(inner)[:, None, None, None]
+        self._index = index.reshape(inner, self.digits * self.rows)
+        return self
 
     def __repr__(self) -> str:
         return f"Multiplier(rows={self.rows}, inner={self.inner}, digit_bits={self.digit_bits})"
@@ -260,7 +298,7 @@ class Multiplier:
         return product if product.shape[1] == length else np.ascontiguousarray(product[:, :length])
 
     def _chunk_words(self, words: int) -> int:
-        per_word = self.inner * self.digits * self.rows * _WORD_BYTES
+        per_word = self._index.size * _WORD_BYTES  # bytes gathered per word of symbol length
         chunk = max(MIN_CHUNK_WORDS, GATHER_CHUNK_BYTES // per_word)
         if chunk >= words:
             return words
@@ -276,15 +314,15 @@ class Multiplier:
 
     def _multiply_chunk(self, packed: np.ndarray, out: np.ndarray) -> None:
         inner, width, entries = self.inner, packed.shape[1], self._entries
-        table = np.empty((entries * inner + 1, width), dtype=np.uint64)
-        table[-1] = 0
-        by_value = table[:-1].reshape(entries, inner, width)  # by_value[v − 1] = v·data
-        by_value[0] = packed
+        table = np.empty(((entries + 1) * inner, width), dtype=np.uint64)
+        by_value = table.reshape(entries + 1, inner, width)  # by_value[v] = v·data
+        by_value[0] = 0
+        by_value[1] = packed
         tmp = np.empty((inner, width), dtype=np.uint64)
         power = 2
         while power <= entries:  # power·data by doubling, then its sums with every smaller value
-            _xtime(by_value[power // 2 - 1], by_value[power - 1], tmp)
-            np.bitwise_xor(by_value[: power - 1], by_value[power - 1][None], out=by_value[power : 2 * power - 1])
+            _xtime(by_value[power // 2], by_value[power], tmp)
+            np.bitwise_xor(by_value[1:power], by_value[power][None], out=by_value[power + 1 : 2 * power])
             power *= 2
         gathered = table.take(self._index, axis=0)  # (inner, digits·rows, width)
         digits = np.bitwise_xor.reduce(gathered, axis=0).reshape(self.digits, self.rows, width)

@@ -1,249 +1,39 @@
 """``fecproxy bench``: measure speed side by side with a baseline, never as a pass/fail test.
 
-``fecproxy bench codec`` times our RFC 5510 encoder and decoder on the block shapes the
-daemon meets and, when the C library zfec is installed (``pip install 'fecproxy[bench]'``),
-zfec on the same data in the same run, so the ratio is fair on a shared, noisy machine.
-zfec is GPL-licensed: it is imported only inside :func:`measure_codec`, never by the package.
-Note zfec's code evaluates at other points than RFC 5510, so its bytes differ from ours;
-only its speed is compared.
-
-``fecproxy bench pipeline`` lives in ``fecproxy.bench_pipeline`` and is dispatched to it.
+``bench codec`` (module :mod:`.codec`) times the Reed–Solomon codec beside zfec;
+``bench pipeline`` (module :mod:`.pipeline`) searches the highest datagram rate the daemon pair
+carries.  This module only builds the argument parser and dispatches.
 """
 
 from __future__ import annotations
 
 import argparse
-import importlib
-import importlib.util
-import json
-import sys
-import time
-from collections.abc import Callable
-from dataclasses import asdict, dataclass
 
-import numpy as np
-
-from fecproxy.coding.codec import MAX_ENCODING_SYMBOLS, BlockCode
-
-#: (k, m, L) shapes measured by default: a small block for low-latency voice/telemetry, a
-#: middle one, and the largest this field allows with a 20–25 % repair rate; 1200-byte
-#: symbols fit a 1280-byte IPv6 minimum MTU with room for headers.
-DEFAULT_SHAPES: tuple[tuple[int, int, int], ...] = ((16, 4, 1200), (64, 16, 1200), (200, 55, 1200))
-#: Seconds spent timing each function (our encode, our decode, zfec encode, zfec decode) per
-#: shape.  One second each keeps a default run of three shapes near 15 s while giving
-#: hundreds to thousands of calls per function.
-DEFAULT_SECONDS = 1.0
-#: The time of each measurement is split into rounds that alternate between ours and zfec;
-#: the best round counts for each side, so a burst of load from a neighbour on a shared
-#: machine hurts neither figure more than the other.
-ROUNDS = 5
-#: Seed of the random source data: the same bytes every run.
-SEED = 5510
-PIPELINE_MODULE = "fecproxy.commands.bench.pipeline"
-
-
-@dataclass(frozen=True)
-class CodecFigures:
-    """Throughput in MB/s (10^6 bytes of source data per second) for one (k, m, L)."""
-
-    k: int
-    m: int
-    length: int
-    encode: float
-    decode: float
-    zfec_encode: float | None
-    zfec_decode: float | None
-
-    @property
-    def encode_ratio(self) -> float | None:
-        return None if self.zfec_encode is None else self.encode / self.zfec_encode
-
-    @property
-    def decode_ratio(self) -> float | None:
-        return None if self.zfec_decode is None else self.decode / self.zfec_decode
-
-    @property
-    def decode_over_encode(self) -> float:
-        return self.decode / self.encode
-
-    def as_dict(self) -> dict:
-        figures = asdict(self)
-        figures.update(
-            encode_ratio=self.encode_ratio,
-            decode_ratio=self.decode_ratio,
-            decode_over_encode=self.decode_over_encode,
-        )
-        return figures
-
-
-def _shape(text: str) -> tuple[int, int, int]:
-    """Parse 'K,M,L' for argparse, with the code's own limits."""
-    try:
-        k, m, length = (int(part) for part in text.split(","))
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"shape must be K,M,L (three integers), got {text!r}") from None
-    if not (k >= 1 and m >= 0 and k + m <= MAX_ENCODING_SYMBOLS and length >= 1):
-        raise argparse.ArgumentTypeError(
-            f"need k ≥ 1, m ≥ 0, k + m ≤ {MAX_ENCODING_SYMBOLS} and L ≥ 1, got {text!r}"
-        )
-    return k, m, length
-
-
-def _positive_seconds(text: str) -> float:
-    try:
-        seconds = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"seconds must be a number, got {text!r}") from None
-    if not 0 < seconds <= 600:
-        raise argparse.ArgumentTypeError(f"seconds must be in (0, 600], got {text!r}")
-    return seconds
+from fecproxy.commands.bench import codec, pipeline
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     targets = parser.add_subparsers(dest="bench_target", metavar="TARGET", required=True)
-    codec = targets.add_parser(
-        "codec",
-        help="encode/decode throughput of the Reed–Solomon codec, beside zfec when installed",
-        description="Encode and decode throughput in MB/s of source data; with zfec installed, "
-        "zfec's figures are measured in the same run and the ratios printed.",
-        formatter_class=argparse.ArgumentDefaultsHelpFormatter,
-    )
-    codec.add_argument(
-        "--shape",
-        action="append",
-        type=_shape,
-        metavar="K,M,L",
-        help="block shape to measure: K source symbols, M repair symbols, L bytes per symbol "
-        "(repeat for several; default: " + " ".join(",".join(map(str, s)) for s in DEFAULT_SHAPES) + ")",
-    )
-    codec.add_argument(
-        "--seconds",
-        type=_positive_seconds,
-        default=DEFAULT_SECONDS,
-        help="seconds spent timing each function (our encode/decode, zfec encode/decode) per shape",
-    )
-    codec.add_argument("--json", action="store_true", help="print the figures as JSON instead of a table")
-    pipeline = targets.add_parser(
-        "pipeline",
-        help="sender → lossy link → receiver throughput (provided by fecproxy.bench_pipeline)",
-        formatter_class=argparse.ArgumentDefaultsHelpFormatter,
-    )
-    if importlib.util.find_spec(PIPELINE_MODULE) is not None:
-        importlib.import_module(PIPELINE_MODULE).add_arguments(pipeline)
-
-
-def _rates(functions: dict[str, Callable[[], object]], seconds: float) -> dict[str, float]:
-    """Best calls per second of each function over ROUNDS alternating rounds."""
-    best = dict.fromkeys(functions, 0.0)
-    per_round = seconds / ROUNDS
-    for _ in range(ROUNDS):
-        for name, function in functions.items():
-            function()  # warm caches before the clock starts
-            calls, start = 0, time.perf_counter()
-            while True:
-                function()
-                calls += 1
-                elapsed = time.perf_counter() - start
-                if elapsed >= per_round:
-                    break
-            best[name] = max(best[name], calls / elapsed)
-    return best
-
-
-def measure_codec(k: int, m: int, length: int, seconds: float = DEFAULT_SECONDS, use_zfec: bool = True) -> CodecFigures:
-    """Encode and decode rates for one shape; decode rebuilds the first m source symbols."""
-    rng = np.random.default_rng(SEED)
-    source = rng.integers(0, 256, size=(k, length), dtype=np.uint8)
-    source_bytes = [bytes(row) for row in source]
-    code = BlockCode(k, k + m)
-    repair_bytes = [bytes(row) for row in code.encode(source)]
-    # What a receiver holds after losing the first m source packets: bytes from the wire.
-    lost = min(m, k)
-    received = {i: source_bytes[i] for i in range(lost, k)}
-    received.update({k + j: repair_bytes[j] for j in range(lost)})
-    if not np.array_equal(code.decode(received), source):
-        raise AssertionError(f"decode did not rebuild the source for k={k}, m={m}, L={length}")
-
-    functions: dict[str, Callable[[], object]] = {
-        "encode": lambda: code.encode(source_bytes),
-        "decode": lambda: code.decode(received),
-    }
-    if use_zfec:
-        try:
-            import zfec  # GPL: speed reference only, imported here and nowhere else
-        except ImportError:
-            zfec = None
-        if zfec is not None and m > 0:
-            encoder = zfec.Encoder(k, k + m)
-            decoder = zfec.Decoder(k, k + m)
-            wanted = tuple(range(k, k + m))
-            inputs = tuple(source_bytes)
-            zfec_repairs = encoder.encode(inputs, wanted)
-            blocks = tuple(source_bytes[lost:]) + tuple(zfec_repairs[:lost])
-            numbers = tuple(range(lost, k)) + tuple(range(k, k + lost))
-            if b"".join(decoder.decode(blocks, numbers)) != b"".join(source_bytes):
-                raise AssertionError("zfec did not rebuild the source")  # guards a fair comparison
-            functions["zfec_encode"] = lambda: encoder.encode(inputs, wanted)
-            functions["zfec_decode"] = lambda: decoder.decode(blocks, numbers)
-    rates = _rates(functions, seconds)
-    megabytes = k * length / 1e6
-    zfec_encode = rates.get("zfec_encode")
-    zfec_decode = rates.get("zfec_decode")
-    return CodecFigures(
-        k=k,
-        m=m,
-        length=length,
-        encode=rates["encode"] * megabytes,
-        decode=rates["decode"] * megabytes,
-        zfec_encode=None if zfec_encode is None else zfec_encode * megabytes,
-        zfec_decode=None if zfec_decode is None else zfec_decode * megabytes,
-    )
-
-
-def _cell(value: float | None, digits: int) -> str:
-    return "-" if value is None else f"{value:.{digits}f}"
-
-
-def format_table(figures: list[CodecFigures], seconds: float) -> str:
-    header = (
-        f"{'k':>4} {'m':>4} {'L':>6} | {'encode':>8} {'zfec enc':>9} {'ratio':>6} | "
-        f"{'decode':>8} {'zfec dec':>9} {'ratio':>6} | {'dec/enc':>7}"
-    )
-    lines = [
-        f"codec throughput in MB/s of source data (best of {ROUNDS} alternating rounds, "
-        f"{seconds:g} s per function per shape; decode rebuilds m lost source symbols)",
-        header,
-        "-" * len(header),
-    ]
-    for f in figures:
-        lines.append(
-            f"{f.k:>4} {f.m:>4} {f.length:>6} | {f.encode:>8.1f} {_cell(f.zfec_encode, 1):>9} "
-            f"{_cell(f.encode_ratio, 2):>6} | {f.decode:>8.1f} {_cell(f.zfec_decode, 1):>9} "
-            f"{_cell(f.decode_ratio, 2):>6} | {f.decode_over_encode:>7.2f}"
+    codec.add_arguments(
+        targets.add_parser(
+            "codec",
+            help="encode/decode throughput of the Reed–Solomon codec, beside zfec when installed",
+            description="Encode and decode throughput in MB/s of source data; decode loses a fresh "
+            "random pattern per block.  With zfec installed, zfec's figures are measured in the same "
+            "run on the same blocks and the ratios printed.",
+            formatter_class=argparse.ArgumentDefaultsHelpFormatter,
         )
-    if figures and all(f.zfec_encode is None for f in figures):
-        lines.append("zfec not installed: pip install 'fecproxy[bench]' to measure the baseline side by side")
-    return "\n".join(lines)
-
-
-def main_codec(args: argparse.Namespace) -> int:
-    shapes = args.shape or list(DEFAULT_SHAPES)
-    figures = [measure_codec(k, m, length, args.seconds) for k, m, length in shapes]
-    if args.json:
-        print(json.dumps({"seconds": args.seconds, "rounds": ROUNDS, "shapes": [f.as_dict() for f in figures]}, indent=2))
-    else:
-        print(format_table(figures, args.seconds))
-    return 0
-
-
-def main_pipeline(args: argparse.Namespace) -> int:
-    if importlib.util.find_spec(PIPELINE_MODULE) is None:
-        print(f"fecproxy bench pipeline: not available in this version ({PIPELINE_MODULE} is missing)", file=sys.stderr)
-        return 2
-    return int(importlib.import_module(PIPELINE_MODULE).main(args) or 0)
+    )
+    pipeline.add_arguments(
+        targets.add_parser(
+            "pipeline",
+            help="highest datagram rate through the daemon pair, clean or over an impaired link",
+            formatter_class=argparse.ArgumentDefaultsHelpFormatter,
+        )
+    )
 
 
 def main(args: argparse.Namespace) -> int:
     if args.bench_target == "pipeline":
-        return main_pipeline(args)
-    return main_codec(args)
+        return int(pipeline.main(args) or 0)
+    return codec.main(args)
