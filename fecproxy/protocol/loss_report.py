@@ -36,8 +36,9 @@ RFC 6363 §6: the figures a sender bases its repair rate on are the ones *before
 
 The loss estimate is 16-bit fixed point, value = round(loss × 65536), saturating at 65535.
 RFC 3550 §6.4.1 carries its "fraction lost" as lost/expected × 256 in 8 bits; a step of 1/256 =
-0.39 % is too coarse here: the repair count for a 10^-4 target changes between 1.0 % and 1.2 %
-loss, and a step of 1/65536 = 0.0015 % resolves that.  The mean burst (packets per run of
+0.39 % is too coarse here: 1.2 % and 1.4 % loss both read 3/256, yet for k = 16 and a 10^-6
+target they need m = 4 and m = 5 (i.i.d. residual loss, tests/test_loss_report.py); a step of
+1/65536 = 0.0015 % tells them apart.  The mean burst (packets per run of
 consecutive losses, ≥ 1 when defined) is 8.8 fixed point, value = round(burst × 256), saturating at
 0xFFFF (≥ 255.996 packets, i.e. longer than any block of n ≤ 255: RFC 5510 §8.2), which also
 stands for an unbounded burst; 0 = no burst seen.  Both are the receiver's own online estimate
