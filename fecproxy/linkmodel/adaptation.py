@@ -38,7 +38,7 @@ from dataclasses import dataclass, field
 from fecproxy.linkmodel.loss_models import GilbertElliott
 from fecproxy.linkmodel.planner import MAX_BLOCK_PACKETS, effective_k, evaluate_repair_range
 from fecproxy.protocol import wire
-from fecproxy.protocol.loss_report import LossReport
+from fecproxy.protocol.loss_report import BURST_SCALE, LossReport
 from fecproxy.protocol.repair_rule import SHORT_BLOCK_RULES, repair_count
 
 #: Five report intervals without a report before the return path is called dead.  With
@@ -67,6 +67,9 @@ MAX_MODEL_LOSS = 0.999
 #: Bursts longer than any block (n ≤ 255, RFC 5510 §8.2) all wipe whole blocks out; the report's
 #: saturated or infinite burst is modelled as this long.
 MAX_MODEL_BURST = float(MAX_BLOCK_PACKETS)
+#: A reported burst within half a step of the report's 8.8 fixed point (1/512 packet) of the
+#: independent-loss value 1/(1 − P) is independent loss: rounding must not invent burstiness.
+INDEPENDENT_BURST_TOLERANCE = 0.5 / BURST_SCALE
 #: Relative slack when comparing to budgets (m/k = 0.25 meets 0.25 despite binary floating point).
 _SLACK = 1e-9
 #: 32-bit serial-number comparison of report sequence numbers (RFC 1982 style: half the space ahead).
@@ -168,7 +171,7 @@ class LinkView:
             return GilbertElliott.no_loss()
         independent_burst = 1.0 / (1.0 - loss)
         burst = min(max(self.mean_burst, independent_burst), MAX_MODEL_BURST)
-        if burst <= independent_burst * (1 + _SLACK):
+        if burst <= independent_burst + INDEPENDENT_BURST_TOLERANCE:
             return GilbertElliott.bernoulli(loss)
         return GilbertElliott.from_loss_burst(loss, burst)
 
@@ -374,6 +377,8 @@ class RedundancyController:
             return None  # not even m = 0 fits (cannot happen: 0 repair is always within the caps)
         target = self.policy.target_residual
         current = next((o for o in options if o == self._choice), None)
+        if current is not None:
+            self._choice = current  # its figures on this link, for the record and the events
         strongest = self._strongest(options)
         needed = next((o for o in options if o.residual_loss <= target), None)
 
@@ -385,9 +390,7 @@ class RedundancyController:
                 return self._move(now, needed, TARGET_MISSED, link)
             if strongest > current:
                 return self._move(now, strongest, TARGET_UNREACHABLE, link)
-            self._choice = current  # held at the cap; keep the figures current
-            return None
-        self._choice = current
+            return None  # held at the cap
         lower = next((o for o in options if o.residual_loss <= target * LOWER_MARGIN), None)
         if lower is None or not lower < current:
             self._reset_lowering()
@@ -396,7 +399,7 @@ class RedundancyController:
         self._lower_to = lower if self._lower_to is None else max(self._lower_to, lower)
         if self._lower_streak < LOWER_AFTER_REPORTS:
             return None
-        chosen = next(o for o in options if o == self._lower_to)
+        chosen = next((o for o in options if o == self._lower_to), lower)  # lower: if the caps moved since
         return self._move(now, chosen, MARGIN_REGAINED, link)
 
     @staticmethod
