@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import math
 
+import numpy as np
 import pytest
 from hypothesis import given, settings, strategies as st
 from scipy.stats import binom
@@ -418,3 +419,93 @@ def test_never_above_the_caps(phases, overhead, min_repair, rate):
         assert choice.m_effective * (15 + 1000) <= overhead * choice.k_effective * (12 + 300) + 1e-6
         for event in decisions(events):
             assert event.direction == (UP if event.choice > event.previous else DOWN)
+
+
+# ---------------------------------------------------------------- closed loop over a simulated link
+
+
+def _run_closed_loop(phases, rate=2000, seed="fading hill-top relay"):
+    """Sender blocks (k = 16, m from the controller) through a Gilbert–Elliott link whose
+    parameters change per phase; a receiver counting loss before and after recovery, with a
+    windowed estimator, reports once per interval.  Returns per interval (phase, m, blocks, lost
+    source packets unrecovered)."""
+    from fecproxy.linkmodel.estimator import LossEstimator
+    from fecproxy.linkmodel.loss_models import make_channel
+
+    controller = RedundancyController(policy(), initial_repair=4, now=0.0)
+    blocks_per_interval = rate // K
+    estimator = LossEstimator(window=blocks_per_interval * K)  # about one interval of source datagrams
+    epoch, sequence, received, repaired, lost_total = 0xC0FFEE, 0, 0, 0, 0
+    rows = []
+    now = 0.0
+    for phase, (channel, intervals) in enumerate(phases):
+        link = make_channel(channel, seed=f"{seed} {phase}")
+        for _ in range(intervals):
+            m = controller.repair
+            n = K + m
+            lost = link.losses(blocks_per_interval * n).reshape(blocks_per_interval, n)
+            source_lost = lost[:, :K]
+            failed = lost.sum(axis=1) > m
+            unrecovered = int(source_lost[failed].sum())
+            for row in source_lost:
+                estimator.observe_block(int(np.packbits(~row, bitorder="little").view("<u2")[0]), K)
+            lost_now = int(source_lost.sum())
+            received += blocks_per_interval * K - lost_now
+            repaired += int((~lost[:, K:]).sum())
+            lost_total += lost_now
+            sequence += 1
+            estimate = estimator.estimate()
+            report = LossReport(
+                epoch=epoch,
+                sequence=sequence,
+                interval_ms=1000,
+                source_received=received,
+                repair_received=repaired,
+                source_lost=lost_total,
+                unrecovered=0,  # not used for decisions (RFC 6363 §6)
+                loss_estimate=estimate.average_loss,
+                mean_burst=estimate.mean_burst,
+                estimate_samples=estimate.samples,
+            )
+            now += INTERVAL
+            controller.on_report(parse_report(encode_report(report)), now)
+            rows.append((phase, m, blocks_per_interval, unrecovered))
+    return controller, rows
+
+
+def test_closed_loop_follows_a_fading_link():
+    # Demo scenario: a weather station's radio hop, 1 % independent loss, then a fade of 10 % loss
+    # in bursts of 2, then calm again.
+    phases = [(CALM, 8), (FADE, 8), (CALM, 8)]
+    controller, rows = _run_closed_loop(phases)
+    ms = [m for _, m, _, _ in rows]
+    # m in use during each interval (set by the report at the end of the interval before).
+    calm_m, fade_m = least_m(CALM, TARGET), least_m(FADE, TARGET)
+    assert ms[8] == calm_m  # the first fade interval still runs the calm code ...
+    assert ms[9] in (fade_m - 1, fade_m, fade_m + 1)  # ... and the very next one the fade code
+    assert all(m >= fade_m - 1 for m in ms[9:16])
+    # Back to calm: lowered only after LOWER_AFTER_REPORTS agreeing reports, then to the calm code.
+    assert all(m > calm_m for m in ms[16 : 16 + LOWER_AFTER_REPORTS])
+    assert ms[-1] == calm_m
+    assert set(controller.stats.decisions) <= {(UP, TARGET_MISSED), (DOWN, MARGIN_REGAINED), (UP, TARGET_UNREACHABLE)}
+
+    # In each phase's steady part the residual loss stays under the target, within what the planner
+    # predicts for the codes in use on the true link (4 standard deviations of the exact per-block
+    # distribution; blocks on a burst-2 link are nearly independent: the chain forgets its state
+    # within a few packets, (1 − p − r)^j).
+    for phase, (channel, _) in enumerate(phases):
+        steady = [row for i, row in enumerate(rows) if row[0] == phase and i not in (8, 16)]
+        expected = variance = 0.0
+        blocks = unrecovered = 0
+        for _, m, count, lost in steady:
+            distribution = planner.block_loss_distribution(channel, K, m)
+            i = np.arange(K + 1)[:, None]
+            failing = (i + np.arange(m + 1)[None, :]) > m
+            per_block = np.where(failing, i, 0)
+            mean = float((distribution * per_block).sum())
+            expected += count * mean
+            variance += count * (float((distribution * per_block**2).sum()) - mean**2)
+            blocks += count
+            unrecovered += lost
+        assert unrecovered <= expected + 4 * math.sqrt(variance), (phase, unrecovered, expected, variance)
+        assert expected / (blocks * K) <= TARGET
