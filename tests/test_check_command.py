@@ -61,10 +61,14 @@ def test_output_fills_in_defaults(capsys, tmp_path):
         "max_datagram_bytes": 1400,
         "short_block_repair": "proportional",
         "allow_repair_above_source": False,
+        "adapt": None,
     }
     assert effective["link"] == {"bind": "127.0.0.1:0", "peer": "127.0.0.1:7000"}
     assert effective["forward"] is None and effective["metrics"] == {"listen": None}
-    assert list(effective) == ["role", "listen", "forward", "link", "fec", "decoder", "flows", "sockets", "log", "metrics", "auth"]
+    assert list(effective) == [
+        "role", "listen", "forward", "link", "fec", "decoder", "flows", "sockets", "log", "metrics", "reports", "auth"
+    ]
+    assert effective["reports"] == {"interval_ms": 1000}
 
 
 def test_quiet_prints_nothing_when_valid(capsys, tmp_path):

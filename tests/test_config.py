@@ -276,6 +276,29 @@ BAD_CONFIGS = [
     ("log format", edited(SENDER, log__format="xml"), ['log.format: "xml" is not a valid log format; expected text or json']),
     ("long value is shortened", edited(SENDER, log__level="x" * 500), ["…"]),
     ("list where a scalar goes", edited(SENDER, fec__repair=[1, 2]), ["fec.repair: […] is a list"]),
+    ("adapt not a mapping", edited(SENDER, fec__adapt=True), ["fec.adapt: true is a boolean; expected a mapping of fec.adapt settings"]),
+    ("adapt unknown key", edited(SENDER, fec__adapt={"target_residal": 0.01}),
+     ["fec.adapt.target_residal: unknown key; did you mean target_residual?"]),
+    ("adapt target zero", edited(SENDER, fec__adapt={"target_residual": 0}),
+     ["fec.adapt.target_residual: 0 is out of range; expected a number 0 < x < 1"]),
+    ("adapt target one", edited(SENDER, fec__adapt={"target_residual": 1.0}), ["fec.adapt.target_residual: 1.0 is out of range"]),
+    ("adapt target as YAML 1.1 text", edited(SENDER, fec__adapt={"target_residual": "1e-3"}),
+     ['fec.adapt.target_residual: "1e-3" is a string', "write 0.001 or 1.0e-3"]),
+    ("adapt target NaN", edited(SENDER, fec__adapt={"target_residual": math.nan}), ["fec.adapt.target_residual: ", "out of range"]),
+    ("adapt min above max", edited(SENDER, fec__adapt={"min_repair": 5, "max_repair": 3}),
+     ["fec.adapt.min_repair: 5 is above fec.adapt.max_repair 3; expected min_repair ≤ max_repair"]),
+    ("adapt k + max_repair above 255", edited(SENDER, fec__block_size=200, fec__adapt={"max_repair": 60}),
+     ["fec.adapt.max_repair: 60 is too large with fec.block_size 200", "RFC 5510 §8.2", "max_repair ≤ 55"]),
+    ("adapt overhead above source rate", edited(SENDER, fec__adapt={"max_overhead": 1.5}),
+     ["fec.adapt.max_overhead: 1.5 is above 1", "RFC 6363 §8.2", "fec.allow_repair_above_source: true"]),
+    ("adapt overhead zero", edited(SENDER, fec__adapt={"max_overhead": 0}), ["fec.adapt.max_overhead: 0 is out of range"]),
+    ("adapt min_repair beyond the overhead cap", edited(SENDER, fec__block_size=8, fec__adapt={"min_repair": 3, "max_overhead": 0.25}),
+     ["fec.adapt.min_repair: 3 is above the 2 repair packets that fec.adapt.max_overhead 0.25 allows with fec.block_size 8"]),
+    ("adapt null key", edited(SENDER, fec__adapt={"min_repair": None}), ["fec.adapt.min_repair: has no value (null)"]),
+    ("adapt without reports", edited(SENDER, fec__adapt={}, reports__interval_ms=0),
+     ["fec.adapt: is set but reports.interval_ms is 0", "adaptation needs loss reports"]),
+    ("report interval negative", edited(SENDER, reports__interval_ms=-1), ["reports.interval_ms: -1 is out of range", "0 = no reports"]),
+    ("report interval above a minute", edited(RECEIVER, reports__interval_ms=60_001), ["reports.interval_ms: 60001 is out of range"]),
 ]
 
 
@@ -284,6 +307,44 @@ def test_bad_config_is_reported(document, fragments):
     messages = errors_of(document)
     assert any(all(fragment in message for fragment in fragments) for message in messages), messages
     assert all(message.startswith("test.yaml: ") for message in messages)
+
+
+def test_adapt_section_defaults_and_values():
+    assert parse_config(SENDER).fec.adapt is None  # absent = m stays fixed
+    config = parse_config(edited(SENDER, fec__adapt={}))
+    assert config.fec.adapt == cfg.AdaptSection()
+    adapt = cfg.AdaptSection()
+    assert (adapt.target_residual, adapt.min_repair, adapt.max_repair, adapt.max_overhead) == (1e-3, 1, None, 1.0)
+    # Without max_repair the ceiling is what max_overhead and n ≤ 255 (RFC 5510 §8.2) allow.
+    assert adapt.repair_ceiling(16) == 16 and adapt.repair_ceiling(200) == 55
+    assert cfg.AdaptSection(max_overhead=0.25).repair_ceiling(10) == 2
+    assert cfg.AdaptSection(max_repair=3).repair_ceiling(16) == 3
+    config = parse_config(
+        edited(
+            SENDER,
+            fec__adapt={"target_residual": 1.0e-4, "min_repair": 0, "max_repair": 8, "max_overhead": 1},
+            reports__interval_ms=250,
+        )
+    )
+    assert config.fec.adapt == cfg.AdaptSection(target_residual=1e-4, min_repair=0, max_repair=8, max_overhead=1.0)
+    assert config.reports.interval_ms == 250 and config.reports.enabled
+    assert parse_config(config.effective()) == config
+    # Above the source rate only when the operator says so (RFC 6363 §8.2).
+    allowed = edited(SENDER, fec__allow_repair_above_source=True, fec__adapt={"max_overhead": 2})
+    assert parse_config(allowed).fec.adapt.max_overhead == 2.0
+    assert not parse_config(edited(RECEIVER, reports__interval_ms=0)).reports.enabled
+
+
+def test_adapt_faults_are_each_reported_under_their_own_path():
+    messages = errors_of(edited(SENDER, fec__adapt={"target_residual": 2, "min_repair": -1, "bogus": 1}))
+    paths = sorted(message.split(": ")[1] for message in messages)
+    assert paths == ["fec.adapt.bogus", "fec.adapt.min_repair", "fec.adapt.target_residual"], messages
+
+
+def test_report_interval_fits_the_report_field():
+    from fecproxy.protocol.loss_report import MAX_INTERVAL_MS
+
+    assert cfg.MAX_REPORT_INTERVAL_MS <= MAX_INTERVAL_MS
 
 
 def test_every_fault_is_reported_at_once():
@@ -406,7 +467,9 @@ def test_deep_nesting_does_not_crash():
 
 def test_effective_has_every_key_in_yaml_nesting():
     effective = parse_config(SENDER).effective()
-    assert list(effective) == ["role", "listen", "forward", "link", "fec", "decoder", "flows", "sockets", "log", "metrics", "auth"]
+    assert list(effective) == [
+        "role", "listen", "forward", "link", "fec", "decoder", "flows", "sockets", "log", "metrics", "reports", "auth"
+    ]
     assert effective["fec"] == {
         "block_size": 16,
         "repair": 4,
@@ -414,7 +477,9 @@ def test_effective_has_every_key_in_yaml_nesting():
         "max_datagram_bytes": 1400,
         "short_block_repair": "proportional",
         "allow_repair_above_source": False,
+        "adapt": None,
     }
+    assert effective["reports"] == {"interval_ms": 1000}
     assert effective["forward"] is None and effective["metrics"] == {"listen": None}
     # Plain data only, so yaml.safe_dump accepts it.
     assert type(effective["role"]) is str and type(effective["fec"]["short_block_repair"]) is str
@@ -461,6 +526,17 @@ def valid_documents(draw):
             document["link"]["peer"] = address("2001:db8::10", ports[2])
     if draw(st.booleans()):
         document["metrics"] = {"listen": address(draw(_bindable_hosts), draw(st.integers(0, 65535)))}
+    document["reports"] = {"interval_ms": draw(st.integers(1, cfg.MAX_REPORT_INTERVAL_MS))}
+    if draw(st.booleans()):
+        overhead = draw(st.sampled_from([0.25, 0.5, 1.0] + ([2.0] if allow else [])))
+        ceiling = min(int(k * overhead), 255 - k)
+        high = draw(st.integers(0, ceiling))
+        document["fec"]["adapt"] = {
+            "target_residual": draw(st.sampled_from([0.01, 1.0e-3, 1.0e-6])),
+            "min_repair": draw(st.integers(0, high)),
+            "max_repair": draw(st.sampled_from([high, None])),
+            "max_overhead": overhead,
+        }
     return document
 
 

@@ -101,6 +101,24 @@ DEFAULT_SOCKET_BUFFER_BYTES = 4 * 1024 * 1024
 #: value that cannot overflow is INT_MAX // 2.
 MAX_SOCKET_BUFFER_BYTES = (2**31 - 1) // 2
 
+#: fec.adapt.target_residual: one datagram in a thousand left unrecovered, ten times under the
+#: ~1 % loss that voice and video codecs conceal well (from memory; common practice, no source).
+DEFAULT_TARGET_RESIDUAL = 1e-3
+#: fec.adapt.min_repair: one repair packet per block even on a clean link, so the first loss after
+#: a quiet spell is repaired while the report that shows it is still on its way.  Common practice,
+#: no source.
+DEFAULT_MIN_REPAIR = 1
+#: fec.adapt.max_overhead: RFC 6363 §8.2 — the repair rate never above the source rate (packets and
+#: bytes); an operator narrows it to what the link budget affords.
+DEFAULT_MAX_OVERHEAD = 1.0
+#: reports.interval_ms: one loss report a second.  A 66-byte packet per second (528 bit/s) costs
+#: nothing even on a narrow radio link, and lets the sender follow a fading link within a few
+#: seconds.  0 turns reports off.
+DEFAULT_REPORT_INTERVAL_MS = 1000
+#: A report period above a minute cannot follow a link; it also keeps the value inside the report's
+#: 16-bit interval field (fecproxy.protocol.loss_report.MAX_INTERVAL_MS).
+MAX_REPORT_INTERVAL_MS = 60_000
+
 
 
 # --------------------------------------------------------------------------------------------
@@ -149,6 +167,22 @@ class LinkSection:
 
 
 @dataclass(frozen=True)
+class AdaptSection:
+    """fec.adapt: the sender chooses m for the next blocks from the receiver's loss reports."""
+
+    target_residual: float = DEFAULT_TARGET_RESIDUAL
+    min_repair: int = DEFAULT_MIN_REPAIR
+    max_repair: int | None = None  # None = as many as max_overhead and n ≤ 255 allow
+    max_overhead: float = DEFAULT_MAX_OVERHEAD
+
+    def repair_ceiling(self, block_size: int) -> int:
+        """The largest m the controller may choose for k = block_size."""
+        by_overhead = int(block_size * self.max_overhead + 1e-9)
+        ceiling = min(by_overhead, MAX_ENCODING_SYMBOLS - block_size)
+        return ceiling if self.max_repair is None else min(ceiling, self.max_repair)
+
+
+@dataclass(frozen=True)
 class FecSection:
     block_size: int = DEFAULT_BLOCK_SIZE  # k
     repair: int = DEFAULT_REPAIR  # m
@@ -156,6 +190,7 @@ class FecSection:
     max_datagram_bytes: int = DEFAULT_MAX_DATAGRAM_BYTES
     short_block_repair: ShortBlockRepair = DEFAULT_SHORT_BLOCK_REPAIR
     allow_repair_above_source: bool = False
+    adapt: AdaptSection | None = None  # None = m stays fixed at repair
 
     @property
     def flush_seconds(self) -> float:
@@ -235,6 +270,15 @@ class AuthSection:
 
 
 @dataclass(frozen=True)
+class ReportsSection:
+    interval_ms: int = DEFAULT_REPORT_INTERVAL_MS  # 0 = send no loss reports
+
+    @property
+    def enabled(self) -> bool:
+        return self.interval_ms > 0
+
+
+@dataclass(frozen=True)
 class Config:
     """One daemon's settings.  Build it with :func:`parse_config` or :func:`load_config`."""
 
@@ -248,6 +292,7 @@ class Config:
     sockets: SocketsSection = SocketsSection()
     log: LogSection = LogSection()
     metrics: MetricsSection = MetricsSection()
+    reports: ReportsSection = ReportsSection()
     auth: AuthSection = AuthSection()
 
     def effective(self) -> dict:
@@ -268,6 +313,8 @@ class Config:
 
 
 def _plain(value):
+    if dataclasses.is_dataclass(value) and not isinstance(value, Address):
+        return {f.name: _plain(getattr(value, f.name)) for f in dataclasses.fields(value)}
     if isinstance(value, Address):
         return str(value)
     if isinstance(value, StrEnum):
@@ -369,6 +416,94 @@ class _FilePath:
         return value
 
 
+class _Number:
+    """A real number in a range; YAML ints are accepted, booleans and strings are not."""
+
+    def __init__(self, low: float, high: float, *, low_open: bool = False, high_open: bool = False, expected: str):
+        self.low, self.high, self.low_open, self.high_open = low, high, low_open, high_open
+        self.expected = expected
+
+    def __call__(self, value):
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            hint = ""
+            if isinstance(value, str) and _looks_numeric(value):
+                hint = " (YAML reads a number like 1e-3 as text: write 0.001 or 1.0e-3)"
+            raise _Bad(f"is {kind_of(value)}; expected {self.expected}{hint}")
+        number = float(value)
+        above = number > self.low if self.low_open else number >= self.low
+        below = number < self.high if self.high_open else number <= self.high
+        if not (above and below):  # NaN fails both
+            raise _Bad(f"is out of range; expected {self.expected}")
+        return number
+
+
+def _looks_numeric(text: str) -> bool:
+    try:
+        float(text)
+    except ValueError:
+        return False
+    return True
+
+
+class _BadKeys(Exception):
+    """Faults inside a nested mapping: (key, text) pairs, each reported under its own path."""
+
+    def __init__(self, faults: list[tuple[str, str]]):
+        self.faults = faults
+
+
+class _Mapping:
+    """A nested mapping of settings (like fec.adapt); missing keys take the dataclass defaults."""
+
+    def __init__(self, cls: type, keys: dict[str, Callable], what: str):
+        self.cls, self.keys, self.what = cls, keys, what
+        self.expected = f"a mapping of {what} settings ({', '.join(keys)})"
+
+    def __call__(self, value):
+        if not isinstance(value, Mapping):
+            raise _Bad(f"is {kind_of(value)}; expected {self.expected}")
+        faults: list[tuple[str, str]] = []
+        parsed = {}
+        for key, raw in value.items():
+            name = key_text(key)
+            check = self.keys.get(name)
+            if check is None:
+                near = closest(name, list(self.keys))
+                faults.append((name, f"unknown key; {f'did you mean {near}?' if near else 'valid keys here are ' + ', '.join(self.keys)}"))
+            elif raw is None and name in _NULLABLE_NESTED:
+                parsed[name] = None
+            elif raw is None:
+                faults.append((name, f"has no value (null); expected {check.expected}"))
+            else:
+                try:
+                    parsed[name] = check(raw)
+                except _Bad as bad:
+                    faults.append((name, f"{show_value(raw)} {bad}"))
+        if faults:
+            raise _BadKeys(faults)
+        return self.cls(**parsed)
+
+
+#: Nested keys where null means "not set" (the default applies).
+_NULLABLE_NESTED = {"max_repair"}
+
+_ADAPT = _Mapping(
+    AdaptSection,
+    {
+        "target_residual": _Number(0, 1, low_open=True, high_open=True, expected="a number 0 < x < 1, e.g. 0.001"),
+        "min_repair": _Integer(0, MAX_ENCODING_SYMBOLS - 1, f"an integer 0..{MAX_ENCODING_SYMBOLS - 1} with min_repair ≤ max_repair"),
+        "max_repair": _Integer(
+            0,
+            MAX_ENCODING_SYMBOLS - 1,
+            f"an integer 0..{MAX_ENCODING_SYMBOLS - 1} with block_size + max_repair ≤ {MAX_ENCODING_SYMBOLS}, or null",
+        ),
+        "max_overhead": _Number(
+            0, MAX_ENCODING_SYMBOLS, low_open=True, expected="a number 0 < x ≤ 1 (above 1 only with fec.allow_repair_above_source)"
+        ),
+    },
+    "fec.adapt",
+)
+
 _ADDRESS_TO_BIND = _AddressField(bindable=True)
 _DESTINATION = _AddressField(bindable=False)
 
@@ -376,7 +511,7 @@ _DESTINATION = _AddressField(bindable=False)
 # The schema table: YAML key -> checker, with defaults taken from the dataclasses above.
 # --------------------------------------------------------------------------------------------
 
-TOP_LEVEL_KEYS = ("role", "listen", "forward", "link", "fec", "decoder", "flows", "sockets", "log", "metrics", "auth")
+TOP_LEVEL_KEYS = ("role", "listen", "forward", "link", "fec", "decoder", "flows", "sockets", "log", "metrics", "reports", "auth")
 
 _TOP_SCALARS: dict[str, Callable] = {
     "role": _Choice(Role, "role"),
@@ -407,6 +542,7 @@ _SECTIONS: dict[str, tuple[type, dict[str, Callable]]] = {
             ),
             "short_block_repair": _Choice(ShortBlockRepair, "short-block rule"),
             "allow_repair_above_source": _Boolean(),
+            "adapt": _ADAPT,
         },
     ),
     "decoder": (
@@ -438,11 +574,19 @@ _SECTIONS: dict[str, tuple[type, dict[str, Callable]]] = {
     ),
     "log": (LogSection, {"level": _Choice(LogLevel, "log level"), "format": _Choice(LogFormat, "log format")}),
     "metrics": (MetricsSection, {"listen": _ADDRESS_TO_BIND}),
+    "reports": (
+        ReportsSection,
+        {
+            "interval_ms": _Integer(
+                0, MAX_REPORT_INTERVAL_MS, f"an integer number of milliseconds 0..{MAX_REPORT_INTERVAL_MS} (0 = no reports)"
+            ),
+        },
+    ),
     "auth": (AuthSection, {"key_file": _FilePath(), "previous_key_file": _FilePath(), "encrypt": _Boolean()}),
 }
 
 #: Keys whose absence (or null) means "not set" rather than "take a default".
-_OPTIONAL = {"listen", "forward", "link.peer", "metrics.listen", "auth.key_file", "auth.previous_key_file"}
+_OPTIONAL = {"listen", "forward", "link.peer", "metrics.listen", "fec.adapt", "auth.key_file", "auth.previous_key_file"}
 #: The optional package behind auth.encrypt, and how to get it.
 CRYPTO_PACKAGE = "cryptography"
 CRYPTO_INSTALL_HINT = "pip install 'fecproxy[crypto]'"
@@ -533,6 +677,10 @@ class _Parser:
             self.values[path] = check(raw)
         except _Bad as bad:
             self.error(path, f"{show_value(raw)} {bad}")
+        except _BadKeys as bad:
+            for key, text in bad.faults:
+                self.error(f"{path}.{key}", text)
+            self.bad.add(path)
 
     def section(self, name: str, raw) -> None:
         if raw is None:
@@ -599,6 +747,41 @@ class _Parser:
                 "fec.repair",
                 f"{m} is above fec.block_size {k}; expected repair ≤ block_size (RFC 6363 §8.2 keeps the "
                 f"repair rate at or below the source rate), or set fec.allow_repair_above_source: true",
+            )
+        self.check_adapt(k, allow)
+
+    def check_adapt(self, k: int, allow) -> None:
+        adapt = self.values.get("fec.adapt")
+        if adapt is None:
+            return
+        if adapt.max_repair is not None:
+            if adapt.min_repair > adapt.max_repair:
+                self.error(
+                    "fec.adapt.min_repair",
+                    f"{adapt.min_repair} is above fec.adapt.max_repair {adapt.max_repair}; expected min_repair ≤ max_repair",
+                )
+            if k + adapt.max_repair > MAX_ENCODING_SYMBOLS:
+                self.error(
+                    "fec.adapt.max_repair",
+                    f"{adapt.max_repair} is too large with fec.block_size {k}; expected block_size + max_repair ≤ "
+                    f"{MAX_ENCODING_SYMBOLS} (RFC 5510 §8.2: n ≤ 255 in GF(2^8)), so max_repair ≤ {MAX_ENCODING_SYMBOLS - k}",
+                )
+        if adapt.max_overhead > 1 and allow is False:
+            self.error(
+                "fec.adapt.max_overhead",
+                f"{adapt.max_overhead:g} is above 1; expected max_overhead ≤ 1 (RFC 6363 §8.2 keeps the repair rate "
+                f"at or below the source rate), or set fec.allow_repair_above_source: true",
+            )
+        elif (adapt.max_repair is None or adapt.min_repair <= adapt.max_repair) and adapt.min_repair > adapt.repair_ceiling(k):
+            self.error(
+                "fec.adapt.min_repair",
+                f"{adapt.min_repair} is above the {adapt.repair_ceiling(k)} repair packets that fec.adapt.max_overhead "
+                f"{adapt.max_overhead:g} allows with fec.block_size {k}; expected min_repair ≤ block_size × max_overhead",
+            )
+        if self.values.get("reports.interval_ms") == 0:
+            self.error(
+                "fec.adapt",
+                "is set but reports.interval_ms is 0; expected reports.interval_ms > 0 (adaptation needs loss reports)",
             )
 
     def check_addresses(self) -> None:
