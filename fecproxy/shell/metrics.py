@@ -137,7 +137,8 @@ STOP_POLL_SECONDS = 0.05
 
 
 def serve(registry: CollectorRegistry, host: str, port: int) -> Callable[[], None]:
-    """Serve /metrics from a background thread; returns a function that stops it (quickly)."""
+    """Serve /metrics and the status page from a background thread; returns a function that stops
+    it (quickly)."""
     import socket
     import threading
     from socketserver import ThreadingMixIn
@@ -155,7 +156,11 @@ def serve(registry: CollectorRegistry, host: str, port: int) -> Callable[[], Non
         def log_message(self, format: str, *args) -> None:
             """Scrapes are not events: nothing is logged per request."""
 
-    server = make_server(host, port, make_wsgi_app(registry), Server, handler_class=QuietHandler)
+    from fecproxy.shell.status import status_app
+
+    # `/` and `/status.json` are the status page; every other path is prometheus-client's.
+    app = status_app(registry, make_wsgi_app(registry))
+    server = make_server(host, port, app, Server, handler_class=QuietHandler)
     thread = threading.Thread(
         target=server.serve_forever, kwargs={"poll_interval": STOP_POLL_SECONDS}, name="fecproxy-metrics", daemon=True
     )
