@@ -7,6 +7,7 @@ import base64
 import hashlib
 import io
 import json
+import math
 import os
 import re
 import subprocess
@@ -191,6 +192,18 @@ def test_rate_window_follows_a_change_of_traffic():
 def test_without_an_estimate_the_page_says_why_there_is_no_plan():
     source = status.StatusSource(build_registry(_Daemon(estimate=None))[0], clock=_Clock())
     assert source.document()["plan"] == {"recommended": None, "note": "no link estimate yet: no block has arrived from the peer"}
+
+
+def test_an_estimate_without_a_burst_yet_is_valid_json_and_planned_as_isolated_losses():
+    daemon, clock, calls = _Daemon(estimate=(0.0, math.nan)), _Clock(), []
+    source = status.StatusSource(build_registry(daemon)[0], clock=clock, planner=lambda *a: calls.append(a) or {})
+    clock.now += 5
+    daemon.decoder.stats.source_received += 500
+    registry_app = status.status_app(source.registry, make_wsgi_app(source.registry))
+    document = json.loads(_call(registry_app, "/status.json")[2])  # NaN is not JSON: sent as null
+    assert document["samples"]["fecproxy_link_mean_burst_packets"] is None
+    source.document()
+    assert calls == [(0.0, 1.0, 300.0)]  # first read: 1500 source datagrams in the 5 s since start
 
 
 @pytest.mark.slow

@@ -248,13 +248,13 @@
     const last = reads.length - 1;
     const f = last >= 1 ? figures(reads[last], reads[Math.max(0, last - KPI_READS)]) : null;
     if (!f) return;
-    const span = `last ${f.seconds.toFixed(0)} s`;
+    const span = `last ${Math.max(1, Math.round(f.seconds))} s`;
     show("kpi-link-loss", percent(f.linkLoss), f.linkLoss, lossTone(f.linkLoss));
     $("kpi-link-loss-sub").textContent = `${count(f.lost)} of ${count(f.expected)} source packets, ${span}`;
     show("kpi-residual-loss", percent(f.residualLoss), f.residualLoss, lossTone(f.residualLoss));
-    $("kpi-residual-loss-sub").textContent = `${count(f.unrecovered)} datagrams not rebuilt, ${span}`;
+    $("kpi-residual-loss-sub").textContent = `${count(f.unrecovered)} not rebuilt, ${span}`;
     show("kpi-recovered", perSecond(f.recovered, f.seconds), f.recovered / f.seconds, "");
-    $("kpi-recovered-sub").textContent = `${count(f.recovered)} datagrams rebuilt, ${span}`;
+    $("kpi-recovered-sub").textContent = `${count(f.recovered)} rebuilt, ${span}`;
     show("kpi-overhead", percent(f.overheadPackets), f.overheadPackets, "");
     $("kpi-overhead-sub").textContent = `packets; ${percent(f.overheadBytes)} in bytes`;
     show("kpi-delay", ms(f.p50), f.p50, "");
