@@ -270,16 +270,20 @@ def test_status_page_in_headless_chromium_shows_the_daemons_metrics(pairs, tmp_p
         frozen = browser.evaluate(REFRESHES)
         browser.wait_for(f"{REFRESHES} >= {frozen + 2}", REFRESH_TIMEOUT_S)
         shown = browser.evaluate(READ_PAGE)
-        metrics = pair.receiver.metrics()
+        metrics, info = pair.receiver.metrics(), pair.receiver.info()
         shots = [browser.screenshot(place / "status-page.png") for place in artifact_dir(tmp_path)]
         errors = list(browser.errors)
+        # The daemon goes away: the page says so within a refresh or two and keeps what it drew.
+        assert pair.receiver.terminate() == 0
+        browser.wait_for("document.getElementById('conn').className === 'pill bad'", REFRESH_TIMEOUT_S)
+        down = browser.evaluate("[document.getElementById('conn').textContent, document.querySelectorAll('#chart-loss path').length]")
     print(f"status page screenshot: {', '.join(map(str, shots))} ({time.monotonic() - began:.1f} s in the browser)")
 
     assert errors == [], errors
+    assert down[0].startswith("no answer from the daemon") and down[1] == shown["chartLines"], down
     assert shown["connection"] == "pill ok"
     assert shown["chartLines"] >= 1  # the loss chart drew the traffic
     assert shown["role"] == "receiver"
-    info = pair.receiver.info()
     assert shown["k"] == [info["k"], info["k"]] and shown["m"] == [info["m"], info["m"]]
     # Every counter the page shows equals the scrape, both as data and as the text a person reads.
     by_key = {status.sample_key(name, dict(labels)): value for (name, labels), value in metrics.items()}
