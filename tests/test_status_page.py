@@ -189,6 +189,20 @@ def test_rate_window_follows_a_change_of_traffic():
     assert rate == pytest.approx(10.0)
 
 
+def test_a_failing_planner_costs_the_recommendation_only():
+    daemon, clock = _Daemon(), _Clock()
+
+    def broken(*inputs):
+        raise ZeroDivisionError("bug")
+
+    source = status.StatusSource(build_registry(daemon)[0], clock=clock, planner=broken)
+    clock.now += 5
+    daemon.decoder.stats.source_received += 500
+    document = source.document()
+    assert document["plan"]["recommended"] is None and "ZeroDivisionError: bug" in document["plan"]["note"]
+    assert document["samples"]["fecproxy_datagrams_recovered_total"] == 48
+
+
 def test_without_an_estimate_the_page_says_why_there_is_no_plan():
     source = status.StatusSource(build_registry(_Daemon(estimate=None))[0], clock=_Clock())
     assert source.document()["plan"] == {"recommended": None, "note": "no link estimate yet: no block has arrived from the peer"}

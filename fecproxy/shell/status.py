@@ -14,6 +14,7 @@ wraps (prometheus-client's), so /metrics is unchanged.
 from __future__ import annotations
 
 import json
+import logging
 import math
 import threading
 import time
@@ -52,6 +53,8 @@ PLAN_INPUT_DIGITS = 2
 #: Bound on the reads kept for the rate window: an hour of one browser polling, or a few dozen
 #: browsers at once for a minute; past it the window only gets shorter.
 MAX_WINDOW_READS = 3600
+
+log = logging.getLogger("fecproxy.shell.status")
 
 LOSS_GAUGE = "fecproxy_link_loss_ratio"
 BURST_GAUGE = "fecproxy_link_mean_burst_packets"
@@ -154,7 +157,12 @@ class StatusSource:
             burst = 1.0  # loss measured but no burst yet: only with nothing lost, where any burst fits
         key = (round_significant(loss), round_significant(burst), round_significant(rate))
         if self._plan is None or (key != self._plan_key and now - self._plan_at >= PLAN_MIN_INTERVAL_S):
-            self._plan, self._plan_key, self._plan_at = self.planner(*key), key, now
+            try:
+                self._plan = self.planner(*key)
+            except Exception as error:  # a planner bug costs the recommendation, never the page
+                log.error("status_plan_failed", exc_info=True)
+                self._plan = {"recommended": None, "note": f"the planner failed: {type(error).__name__}: {error}"}
+            self._plan_key, self._plan_at = key, now
         return {**self._plan, "computed_s_ago": now - self._plan_at}
 
     def document(self) -> dict:
@@ -187,7 +195,6 @@ def _json_safe(value):
 def status_app(registry: CollectorRegistry, other: Callable) -> Callable:
     """WSGI app: ``/`` the page, ``/status.json`` its data, anything else ``other`` (/metrics)."""
     source = StatusSource(registry)
-    page = status_page.load()
 
     def app(environ: dict, start_response: Callable) -> Iterable[bytes]:
         path = environ.get("PATH_INFO", "/")
@@ -200,6 +207,11 @@ def status_app(registry: CollectorRegistry, other: Callable) -> Callable:
             body = json.dumps(_json_safe(source.document()), allow_nan=False).encode()
             headers = [("Content-Type", "application/json"), ("Cache-Control", "no-store")]
         else:
+            try:
+                page = status_page.load()  # read once, at the first request: /metrics never depends on it
+            except (OSError, RuntimeError) as error:
+                start_response("500 Internal Server Error", [("Content-Type", "text/plain; charset=utf-8")])
+                return [f"status page files missing or damaged in this installation: {error}\n".encode()]
             body = page.html.encode()
             headers = [("Content-Type", "text/html; charset=utf-8"), ("Cache-Control", "no-store"),
                        ("Content-Security-Policy", page.content_security_policy),
