@@ -110,6 +110,18 @@ def test_routes_page_json_and_everything_else_to_prometheus():
     assert _call(app, "/", "HEAD")[2] == b""
 
 
+def test_missing_page_files_cost_the_page_but_never_metrics(monkeypatch):
+    def missing():
+        raise FileNotFoundError("page.html")
+
+    monkeypatch.setattr(status.status_page, "load", missing)
+    registry, _ = build_registry(_Daemon())
+    app = status.status_app(registry, make_wsgi_app(registry))
+    code, _, body = _call(app, "/")
+    assert code.startswith("500") and b"status page files missing" in body
+    assert _call(app, "/metrics")[0].startswith("200") and _call(app, "/status.json")[0].startswith("200")
+
+
 def test_page_is_self_contained_and_its_policy_admits_exactly_its_own_script_and_style():
     page = status_page.load()
     html = page.html
