@@ -177,7 +177,7 @@ def test_summary_puts_without_and_with_fec_side_by_side():
 def test_live_view_redraws_in_place_on_a_terminal_and_prints_plain_lines_otherwise():
     snapshot = render.LiveSnapshot(
         elapsed=1.0, rate=31, link_packets=100, link_lost=8, source_sent=70, source_lost=6, recovered=6,
-        unrecovered=0, delay_p50=0.0006, rebuilt_p50=0.4, acks=2,
+        unrecovered=0, pending=3, delay_p50=0.0006, rebuilt_p50=0.4, acks=2,
     )
 
     class Terminal(io.StringIO):
@@ -191,6 +191,7 @@ def test_live_view_redraws_in_place_on_a_terminal_and_prints_plain_lines_otherwi
     lines = len(render.format_live(snapshot))
     assert terminal.getvalue().count(f"\x1b[{lines}F") == 1  # cursor back up before the redraw
     assert "link lost 8.00 % of packets, 6 of 70 datagrams" in terminal.getvalue()
+    assert "pending 3 (sent, not yet delivered nor given up)" in terminal.getvalue()
 
     plain = io.StringIO()
     view = render.LiveView(plain, enabled=True)
@@ -202,6 +203,53 @@ def test_live_view_redraws_in_place_on_a_terminal_and_prints_plain_lines_otherwi
     silent = io.StringIO()
     render.LiveView(silent, enabled=False).show(snapshot)
     assert silent.getvalue() == ""
+
+
+def test_pending_counts_datagrams_neither_delivered_nor_given_up():
+    assert render.pending(sent=70, delivered=60, unrecovered=4) == 6
+    assert render.pending(sent=70, delivered=70, unrecovered=0) == 0
+    # The counters are read at slightly different moments: never a negative count.
+    assert render.pending(sent=70, delivered=69, unrecovered=3) == 0
+
+
+def test_readme_states_the_live_view_intervals_the_code_uses():
+    readme = " ".join((REPO / "README.md").read_text(encoding="utf-8").split())
+    section = readme[readme.index("### What the demo shows") :]
+    section = section[: section.index("## Caution")]
+    from fecproxy.commands import demo
+
+    assert demo.LIVE_INTERVAL_S == 1.0 and "redrawn once a second in a terminal" in section
+    assert f"a plain line every {render.PLAIN_INTERVAL_S:g} s when the output is not a terminal" in section
+
+
+def test_no_loss_and_burst_one_are_described_in_words_that_fit():
+    clean = render.format_summary(
+        _result(channel=GilbertElliott.no_loss(), link_source_lost=0, delivered=600, link_lost=0, rebuilt_delays=[],
+                receiver_lost=0, receiver_recovered=0, receiver_unrecovered=0)
+    )
+    assert "burst" not in clean and "lossy" not in clean and "scatter" not in clean
+    assert "loses no packets" in clean and "0 of 600 (0 %)" in clean
+    header = render.format_header(
+        render.DemoOptions(loss=0.0), GilbertElliott.no_loss(), sender=("127.0.0.1", 1), relay=("127.0.0.1", 2),
+        receiver=("127.0.0.1", 3), sink=("127.0.0.1", 4), metrics_text="off",
+    )
+    assert "lossy" not in header and "burst" not in header and "loses no packets" in header
+
+    isolated = GilbertElliott.from_loss_burst(0.08, 1)
+    text = render.describe_link(isolated)
+    assert text.startswith("loses 8.00 % of packets, never two in a row") and "bursts" not in text
+    summary = render.format_summary(_result(channel=isolated))
+    assert "bursts" not in summary and "1 packets" not in summary
+    assert "few losses, so measured losses scatter" in summary
+    assert "mean burst 3 packets" in render.format_summary(_result())
+    # An exact prediction far below 0.1 % keeps its significant digits instead of "0.000 %".
+    assert render.fmt_percent(2.1e-6) == "0.00021 %" and render.fmt_percent(4.2e-8) == "4.2e-06 %"
+
+
+def test_summary_names_no_endpoint_that_closed_with_the_run():
+    text = render.format_summary(_result())
+    assert "/metrics" not in text and "http://" not in text
+    assert "receiver daemon's own counters at the end: lost 48, recovered 45, unrecovered 3" in text
 
 
 # -- the link tap, with the real encoder and emulated link, no sockets --------------------------

@@ -14,9 +14,12 @@ import sys
 import urllib.error
 import urllib.request
 
-from fecproxy.linkmodel.loss_models import ChannelConfigError, GilbertElliott, channel_from_figures
+from fecproxy.linkmodel.loss_models import ChannelConfigError, GilbertElliott, channel_from_estimate, channel_from_figures
 from fecproxy.linkmodel.planner import (
     DEFAULT_K_VALUES,
+    DEFAULT_LATENCY_BUDGET_S,
+    DEFAULT_MAX_OVERHEAD,
+    DEFAULT_TARGET,
     DEFAULT_SHORT_BLOCK_RULE,
     SHORT_BLOCK_RULES,
     Candidate,
@@ -39,11 +42,9 @@ LINK_BURST_GAUGE = "fecproxy_link_mean_burst_packets"
 MAX_METRICS_PAGE_BYTES = 1 << 20
 #: Seconds to wait for the metrics page: a receiver on the same LAN answers in milliseconds.
 DEFAULT_METRICS_TIMEOUT = 5.0
-#: Defaults for a small interactive or telemetry flow; common practice, no source.  Users with
-#: other needs say so on the command line.
-DEFAULT_LATENCY_MS = 500.0
-DEFAULT_MAX_OVERHEAD = 0.5
-DEFAULT_TARGET = 1e-3
+#: Defaults for a small interactive or telemetry flow (the planner's, shared with the daemon's
+#: status page); users with other needs say so on the command line.
+DEFAULT_LATENCY_MS = DEFAULT_LATENCY_BUDGET_S * 1000.0
 
 CONVENTION = (
     "Loss model convention (Gilbert 1960; Elliott 1963): a two-state Markov chain advances once per "
@@ -216,12 +217,7 @@ def channel_from_args(args: argparse.Namespace) -> GilbertElliott:
     if args.from_metrics:
         if args.loss is not None or args.burst is not None or any(v is not None for v in four.values()):
             raise PlanError("--from-metrics replaces --loss/--burst/--ge-*: give one or the other")
-        loss, burst = link_from_metrics(args.from_metrics, args.metrics_select, args.metrics_timeout)
-        if loss == 0.0:
-            return GilbertElliott.no_loss()
-        # A receiver's estimate may sit just under the conversion's limits (burst < 1 on a nearly
-        # clean link); clamp to the smallest burst the loss allows rather than refuse.
-        return GilbertElliott.from_loss_burst(loss, max(burst, 1.0, loss / (1.0 - loss)))
+        return channel_from_estimate(*link_from_metrics(args.from_metrics, args.metrics_select, args.metrics_timeout))
     if args.loss is None and args.burst is None and all(v is None for v in four.values()):
         raise PlanError("describe the link: --loss (and --burst), or --ge-p/--ge-r, or --from-metrics URL")
     return channel_from_figures(loss=args.loss, burst=args.burst, **four)

@@ -193,6 +193,18 @@ def channel_from_figures(
     return GilbertElliott.from_loss_burst(loss, burst)
 
 
+def channel_from_estimate(loss: float, burst: float) -> GilbertElliott:
+    """The simple Gilbert channel of a receiver's online estimate (average loss, mean burst).
+
+    An estimate may sit just under the conversion's limits (burst < 1 on a nearly clean link):
+    it is clamped to the smallest burst the loss allows rather than refused.  Raises
+    ChannelConfigError for a loss of 1 (a dead link has no code).
+    """
+    if loss == 0.0:
+        return GilbertElliott.no_loss()
+    return GilbertElliott.from_loss_burst(loss, max(burst, 1.0, loss / (1.0 - loss)))
+
+
 # -- channels (stateful, seeded) ------------------------------------------------------------------
 
 

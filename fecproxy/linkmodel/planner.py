@@ -43,6 +43,14 @@ DEFAULT_K_VALUES = (1, 2, 3, 4, 5, 6, 8, 10, 12, 16, 20, 24, 32, 40, 48, 64, 96,
 #: The sender's default short-block rule (config ``fec.short_block_repair``), so a plan made without
 #: saying otherwise describes a sender run with its defaults.
 DEFAULT_SHORT_BLOCK_RULE = DEFAULT_SHORT_BLOCK_REPAIR.value
+#: Budgets assumed when the operator states none (``fecproxy plan`` and the daemon's status page
+#: share them, so both recommend the same code for the same link): half a second of recovery wait
+#: suits telemetry and interactive control, half again as much airtime is what a licensed data
+#: radio can usually spare, and 1 in 1000 lost is the residual loss our alerts treat as a problem
+#: (common practice, no source).
+DEFAULT_LATENCY_BUDGET_S = 0.5
+DEFAULT_MAX_OVERHEAD = 0.5
+DEFAULT_TARGET = 1e-3
 #: Relative slack when comparing overheads and spans to budgets, so that m/k = 0.25 exactly
 #: meets a budget of 0.25 despite binary floating point.
 _BUDGET_SLACK = 1e-9

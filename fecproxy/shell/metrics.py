@@ -19,6 +19,7 @@ from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, InfoM
 
 from fecproxy import __version__
 from fecproxy.protocol.events import BlockOutcome, DropReason
+from fecproxy.shell.status import status_app
 
 if TYPE_CHECKING:
     from fecproxy.protocol.decoder import DecoderStats
@@ -178,8 +179,10 @@ def serve(registry: CollectorRegistry, host: str, port: int) -> MetricsServer:
     start theirs here.  Raises OSError when the address cannot be resolved or bound.
     """
     family = socket.getaddrinfo(host, port, type=socket.SOCK_STREAM, flags=socket.AI_PASSIVE)[0][0]
+    # `/` and `/status.json` are the status page; every other path is prometheus-client's.
+    app = status_app(registry, make_wsgi_app(registry))
     server_class = type("MetricsHTTPServer", (_ThreadingServer,), {"address_family": family})
-    server = make_server(host, port, make_wsgi_app(registry), server_class, handler_class=_QuietHandler)
+    server = make_server(host, port, app, server_class, handler_class=_QuietHandler)
     thread = threading.Thread(
         target=server.serve_forever, kwargs={"poll_interval": STOP_POLL_SECONDS}, name="fecproxy-metrics", daemon=True
     )

@@ -46,7 +46,15 @@ from fecproxy.commands.demo.options import (
     build_configs,
     check_options,
 )
-from fecproxy.commands.demo.render import DemoResult, LiveSnapshot, LiveView, format_header, format_summary, percentile
+from fecproxy.commands.demo.render import (
+    DemoResult,
+    LiveSnapshot,
+    LiveView,
+    format_header,
+    format_summary,
+    pending,
+    percentile,
+)
 from fecproxy.commands.demo.tap import LinkTap
 from fecproxy.commands.demo.traffic import DEFAULT_TELEMETRY_RATE, STREAM_CAMERA, Sink, Station
 from fecproxy.config import MAX_HOLD_MS, ConfigError
@@ -67,16 +75,20 @@ def _start_metrics(registry, port: int) -> tuple[object | None, str]:
 
     try:
         server = serve(registry, LOOPBACK, port)
-        return server.stop, f"http://{LOOPBACK}:{server.port}/metrics"
+        return server.stop, _endpoints(server.port)
     except OSError as error:
         busy = f"port {port}: {error.strerror or error}"
     if port != 0:
         try:
             server = serve(registry, LOOPBACK, 0)
-            return server.stop, f"http://{LOOPBACK}:{server.port}/metrics ({busy}, so a free port was taken)"
+            return server.stop, f"{_endpoints(server.port)} ({busy}, so a free port was taken)"
         except OSError as error:
             busy += f"; any free port: {error.strerror or error}"
     return None, f"off ({busy})"
+
+
+def _endpoints(port: int) -> str:
+    return f"http://{LOOPBACK}:{port}/metrics, status page http://{LOOPBACK}:{port}/ (while the demo runs)"
 
 
 async def run_demo(options: DemoOptions, out=None) -> DemoResult:
@@ -185,6 +197,7 @@ async def _live_loop(live: LiveView, station: Station, sink: Sink, tap: LinkTap,
                 source_lost=tap.source_lost,
                 recovered=len(sink.rebuilt_delays),
                 unrecovered=receiver.decoder.stats.unrecovered,
+                pending=pending(station.sent, sink.delivered, receiver.decoder.stats.unrecovered),
                 delay_p50=percentile(recent, 50),
                 rebuilt_p50=percentile(sink.rebuilt_delays, 50),
                 acks=station.acks,

@@ -48,11 +48,14 @@ def predicted_residual(channel: GilbertElliott, blocks: Counter) -> float:
 
 
 def describe_link(channel: GilbertElliott) -> str:
-    """The relay's loss in words, for the header and the summary."""
+    """The relay's loss in words, for the header and the summary.  A mean burst of 1 is no burst
+    at all (losses never touch), so it is said so rather than as "bursts of 1"."""
     if channel.average_loss == 0:
         return "loses no packets"
     if channel.is_memoryless:
         return f"loses {fmt_percent(channel.average_loss)} of packets independently"
+    if channel.mean_burst <= 1 + 1e-9:
+        return f"loses {fmt_percent(channel.average_loss)} of packets, never two in a row (Gilbert–Elliott, mean burst 1)"
     return (
         f"loses {fmt_percent(channel.average_loss)} of packets in bursts "
         f"(Gilbert–Elliott, mean burst {channel.mean_burst:.3g} packets)"
@@ -64,11 +67,13 @@ def ratio(part: float, whole: float) -> float:
 
 
 def fmt_percent(value: float) -> str:
+    """Two decimals from 0.1 % up; below that two significant digits, so a small but real figure
+    (an exact prediction of 2e-6) never reads as "0.000 %"."""
     if math.isnan(value):
         return "–"
     if value == 0:
         return "0 %"
-    return f"{value * 100:.2f} %" if value >= 0.001 else f"{value * 100:.3f} %"
+    return f"{value * 100:.2f} %" if value >= 0.001 else f"{value * 100:.2g} %"
 
 
 def fmt_ms(seconds: float) -> str:
@@ -85,6 +90,12 @@ def fmt_bytes(count: float) -> str:
     return f"{count:.0f} B"
 
 
+def pending(sent: int, delivered: int, unrecovered: int) -> int:
+    """Datagrams sent that neither reached the sink nor were given up by the receiver yet: in
+    flight, or lost on the link and waiting for their block's repair packets."""
+    return max(0, sent - delivered - unrecovered)
+
+
 @dataclass(frozen=True)
 class LiveSnapshot:
     """What the live view shows, gathered once a second."""
@@ -97,6 +108,7 @@ class LiveSnapshot:
     source_lost: int  # source packets lost on the link
     recovered: int  # datagrams the sink got although the link lost their source packet
     unrecovered: int  # receiver's count of datagrams given up for good
+    pending: int  # sent, not yet at the sink and not yet given up: in flight or awaiting repair
     delay_p50: float  # one-way delay of datagrams that arrived in the last interval
     rebuilt_p50: float  # send → delivery of rebuilt datagrams so far
     acks: int
@@ -107,7 +119,8 @@ def format_live(s: LiveSnapshot) -> list[str]:
         f"t = {s.elapsed:5.1f} s   {s.rate:5.0f} datagrams/s at the sink   acks back {s.acks}",
         f"link lost {fmt_percent(ratio(s.link_lost, s.link_packets))} of packets, "
         f"{s.source_lost} of {s.source_sent} datagrams   recovered {s.recovered}   "
-        f"residual loss {fmt_percent(ratio(s.unrecovered, s.source_sent))} ({s.unrecovered})",
+        f"residual loss {fmt_percent(ratio(s.unrecovered, s.source_sent))} ({s.unrecovered})   "
+        f"pending {s.pending} (sent, not yet delivered nor given up)",
         f"one-way delay p50 {fmt_ms(s.delay_p50)}   rebuilt datagrams p50 {fmt_ms(s.rebuilt_p50)}",
     ]
 
@@ -174,6 +187,7 @@ def format_summary(r: DemoResult) -> str:
     else:
         delay = "– (nothing needed rebuilding)"
     blocks = sum(r.blocks.values())
+    lossy = r.channel.average_loss > 0
     lines = [
         f"Summary after {r.seconds:.1f} s{' (ended early)' if r.interrupted else ''}: seed {r.seed}; "
         f"the link and the traffic are invented demo figures.",
@@ -212,11 +226,15 @@ def format_summary(r: DemoResult) -> str:
         f"configured: {describe_link(r.channel)}",
         f"  intact datagrams' one-way delay: p50 {fmt_ms(percentile(r.intact_delays, 50))}, "
         f"p99 {fmt_ms(percentile(r.intact_delays, 99))}",
-        f"  acknowledgements back through the pair (over the same lossy radio): {r.acks_received} of {r.acks_sent}",
-        f"  receiver counters (also on /metrics): lost {r.receiver_lost}, recovered {r.receiver_recovered}, "
+        f"  acknowledgements back through the pair (over the same {'lossy ' if lossy else ''}radio): "
+        f"{r.acks_received} of {r.acks_sent}",
+        # Its metrics endpoint closed with the run: the figures are given here, not a URL.
+        f"  the receiver daemon's own counters at the end: lost {r.receiver_lost}, recovered {r.receiver_recovered}, "
         f"unrecovered {r.receiver_unrecovered}; duplicates at the sink {r.duplicates}",
-        "  A short run sees few bursts, so measured losses scatter around the prediction.",
     ]
+    if lossy:
+        events = "bursts" if r.channel.mean_burst > 1 + 1e-9 else "losses"
+        lines.append(f"  A short run sees few {events}, so measured losses scatter around the prediction.")
     return "\n".join(lines)
 
 
@@ -258,7 +276,7 @@ def format_header(
     rows = [
         "fecproxy demo",
         *textwrap.wrap(story, HEADER_WIDTH, initial_indent="  ", subsequent_indent="  "),
-        f"  station → sender {format_sockaddr(sender)} → lossy relay {format_sockaddr(relay)} "
+        f"  station → sender {format_sockaddr(sender)} → {'lossy ' if channel.average_loss else ''}relay {format_sockaddr(relay)} "
         f"→ receiver {format_sockaddr(receiver)} → sink {format_sockaddr(sink)}",
         "  (the sink's acknowledgements travel back the same way)",
         f"  FEC: k={options.k} source + m={options.m} repair packets per block; blocks close after {options.flush_ms} ms",

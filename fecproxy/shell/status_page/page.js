@@ -1,0 +1,306 @@
+"use strict";
+// Polls status.json, keeps five minutes of reads, and draws the figures and SVG charts.
+// Rates are differences between reads (a counter that went down means the daemon restarted:
+// its new value is the increase), as `fecproxy watch` computes them.
+(() => {
+  const HISTORY_READS = 301;       // five minutes of one-second reads, plus the first
+  const KPI_READS = 5;             // the figure cards cover the last few reads
+  const FETCH_TIMEOUT_MS = 3000;   // a healthy daemon answers in milliseconds
+  const CHART = { w: 420, h: 200, left: 50, right: 8, top: 10, bottom: 24 };  // the SVGs' viewBox
+  const DROPS = "fecproxy_packets_dropped_total";
+  const DELAY_BUCKET = "fecproxy_recovery_delay_seconds_bucket";
+  const TOTALS = [
+    ["source packets sent", "fecproxy_source_packets_sent_total"],
+    ["repair packets sent", "fecproxy_repair_packets_sent_total"],
+    ["source bytes sent", "fecproxy_source_bytes_sent_total"],
+    ["repair bytes sent", "fecproxy_repair_bytes_sent_total"],
+    ["blocks sent (short)", "fecproxy_blocks_sent_total", "fecproxy_short_blocks_sent_total"],
+    ["source packets received", 'fecproxy_link_packets_received_total{kind="source"}'],
+    ["repair packets received", 'fecproxy_link_packets_received_total{kind="repair"}'],
+    ["source packets lost on the link", "fecproxy_source_packets_lost_total"],
+    ["datagrams recovered", "fecproxy_datagrams_recovered_total"],
+    ["datagrams unrecovered", "fecproxy_datagrams_unrecovered_total"],
+    ["datagrams delivered", "fecproxy_datagrams_delivered_total"],
+    ["flows", "fecproxy_flows"],
+    ["send errors", "fecproxy_send_errors_total"],
+  ];
+
+  const $ = (id) => document.getElementById(id);
+  const reads = [];   // {t: daemon uptime in s, s: samples}
+  const points = [];  // one per read after the first: the interval's figures
+  let refreshS = 1;
+
+  // ---------------------------------------------------------------- arithmetic
+  const get = (s, key) => s[key] ?? 0;
+  function delta(now, before, key) {
+    const value = get(now, key);
+    if (!before) return value;
+    const previous = get(before, key);
+    return value >= previous ? value - previous : value;
+  }
+  const ratio = (a, b) => (b > 0 ? a / b : null);
+  const labelled = (name, label) => new RegExp("^" + name + "\\{" + label + '="([^"]*)"\\}$');
+  function keysOf(s, name, label) {
+    const pattern = labelled(name, label);
+    return Object.keys(s).map((key) => [key, (key.match(pattern) || [])[1]]).filter(([, v]) => v !== undefined);
+  }
+  // Prometheus' histogram_quantile: linear within a bucket; the highest finite bound above it.
+  function quantile(q, buckets) {
+    buckets.sort((a, b) => a[0] - b[0]);
+    if (!buckets.length || buckets[buckets.length - 1][1] <= 0) return null;
+    const rank = q * buckets[buckets.length - 1][1];
+    let lowerBound = 0, lowerCount = 0;
+    for (const [bound, count] of buckets) {
+      if (count >= rank) {
+        if (!isFinite(bound)) return lowerBound;
+        if (count === lowerCount) return bound;
+        return lowerBound + (bound - lowerBound) * (rank - lowerCount) / (count - lowerCount);
+      }
+      lowerBound = bound; lowerCount = count;
+    }
+    return null;
+  }
+  function figures(now, before) {
+    const d = (key) => delta(now.s, before && before.s, key);
+    const seconds = before ? now.t - before.t : null;
+    const lost = d("fecproxy_source_packets_lost_total");
+    const expected = lost + d('fecproxy_link_packets_received_total{kind="source"}');
+    const buckets = keysOf(now.s, DELAY_BUCKET, "le").map(([key, le]) => [le === "+Inf" ? Infinity : parseFloat(le), d(key)]);
+    const drops = {};
+    for (const [key, reason] of keysOf(now.s, DROPS, "reason")) drops[reason] = d(key);
+    return {
+      t: now.t, seconds, lost, expected,
+      linkLoss: ratio(lost, expected),
+      unrecovered: d("fecproxy_datagrams_unrecovered_total"),
+      residualLoss: ratio(d("fecproxy_datagrams_unrecovered_total"), expected),
+      recovered: d("fecproxy_datagrams_recovered_total"),
+      overheadPackets: ratio(d("fecproxy_repair_packets_sent_total"), d("fecproxy_source_packets_sent_total")),
+      overheadBytes: ratio(d("fecproxy_repair_bytes_sent_total"), d("fecproxy_source_bytes_sent_total")),
+      p50: quantile(0.5, buckets.map((b) => b.slice())), p99: quantile(0.99, buckets.map((b) => b.slice())),
+      drops, dropTotal: Object.values(drops).reduce((a, b) => a + b, 0),
+    };
+  }
+
+  // ---------------------------------------------------------------- formatting
+  const count = (v) => Math.round(v).toLocaleString("en-US");
+  function percent(v) {
+    if (v === null || v === undefined) return "–";
+    if (v === 0) return "0 %";
+    return (v * 100).toFixed(v >= 0.01 ? 2 : 3) + " %";
+  }
+  const perSecond = (v, seconds) => (seconds ? (v / seconds).toFixed(1) + "/s" : "–");
+  const ms = (v) => (v === null ? "–" : (v * 1000).toFixed(v >= 0.1 ? 0 : 1) + " ms");
+  function duration(s) {
+    const d = Math.floor(s / 86400), h = Math.floor(s / 3600) % 24, m = Math.floor(s / 60) % 60;
+    return d ? `${d} d ${h} h` : h ? `${h} h ${m} min` : m ? `${m} min ${Math.floor(s % 60)} s` : `${Math.floor(s)} s`;
+  }
+  function show(id, text, value, tone) {
+    const el = $(id);
+    el.textContent = text;
+    el.dataset.value = value === null || value === undefined ? "" : String(value);
+    if (tone !== undefined) el.className = "big " + tone;
+  }
+  const lossTone = (v) => (v === null ? "" : v > 0.01 ? "bad" : v > 0.001 ? "warn" : "good");
+
+  // ---------------------------------------------------------------- charts (SVG)
+  const SVG = "http://www.w3.org/2000/svg";
+  function node(name, attrs, text) {
+    const el = document.createElementNS(SVG, name);
+    for (const [key, value] of Object.entries(attrs)) el.setAttribute(key, value);
+    if (text !== undefined) el.textContent = text;
+    return el;
+  }
+  function niceMax(v) {
+    if (!(v > 0)) return 1;
+    const step = Math.pow(10, Math.floor(Math.log10(v)));
+    for (const f of [1, 2, 2.5, 5, 10]) if (f * step >= v) return f * step;
+    return 10 * step;
+  }
+  // series: [{name, color, values: [[t, v|null], ...]}]; format: tick label of a value
+  function drawChart(id, legendName, series, format, step) {
+    const svg = $(id), c = CHART;
+    svg.replaceChildren();
+    const legend = document.querySelector(`.legend[data-chart="${legendName}"]`);
+    legend.replaceChildren(...series.map((s) => {
+      const item = document.createElement("span");
+      const swatch = document.createElement("span");
+      swatch.className = "sw c" + s.color;
+      item.append(swatch, s.name);
+      return item;
+    }));
+    const now = reads.length ? reads[reads.length - 1].t : 0;
+    const span = Math.max(60, Math.min(300, now - (reads.length ? reads[0].t : 0)));
+    const x = (t) => c.left + (c.w - c.left - c.right) * (1 - (now - t) / span);
+    let top = 0;
+    for (const s of series) for (const [, v] of s.values) if (v !== null && v > top) top = v;
+    top = niceMax(top * 1.05);
+    const y = (v) => c.h - c.bottom - (c.h - c.top - c.bottom) * (v / top);
+    for (let i = 0; i <= 4; i++) {
+      const v = (top * i) / 4;
+      svg.append(node("line", { class: i ? "grid" : "axis", x1: c.left, x2: c.w - c.right, y1: y(v), y2: y(v) }));
+      svg.append(node("text", { x: c.left - 6, y: y(v) + 4, "text-anchor": "end" }, format(v)));
+    }
+    const ticks = span >= 240 ? 60 : 30;
+    for (let ago = 0; ago <= span + 1e-9; ago += ticks) {
+      const xt = x(now - ago);
+      svg.append(node("text", { x: xt, y: c.h - 8, "text-anchor": ago === 0 ? "end" : "middle" },
+        ago === 0 ? "now" : ago % 60 === 0 ? `−${ago / 60} min` : `−${ago} s`));
+    }
+    let drawn = false;
+    for (const s of series) {
+      let d = "", open = false, last = null;
+      for (const [t, v] of s.values) {
+        if (now - t > span || v === null) { open = false; continue; }
+        if (step && open && last !== null) d += `L${x(t).toFixed(1)},${y(last).toFixed(1)}`;
+        d += `${open ? "L" : "M"}${x(t).toFixed(1)},${y(v).toFixed(1)}`;
+        open = true; last = v;
+      }
+      if (d) { svg.append(node("path", { class: "line c" + s.color, d })); drawn = true; }
+    }
+    if (!drawn) {
+      svg.append(node("text", { class: "empty", x: (c.left + c.w) / 2, y: c.h / 2, "text-anchor": "middle" },
+        reads.length < 2 ? "collecting…" : "no data in this window"));
+    }
+  }
+  const short = (v) => String(+v.toPrecision(3));  // 3 significant digits, no trailing zeros
+  const pct = (v) => short(v * 100) + " %";
+  const num = (v) => (v >= 1000 ? short(v / 1000) + " k" : short(v));
+  const msTick = (v) => short(v * 1000) + " ms";
+  const perS = (p, key) => (p.seconds ? p[key] / p.seconds : null);
+
+  function drawCharts() {
+    const series = (name, color, fn) => ({ name, color, values: points.map((p) => [p.t, fn(p)]) });
+    drawChart("chart-loss", "loss", [
+      series("link loss", 0, (p) => p.linkLoss),
+      series("residual loss", 1, (p) => p.residualLoss),
+    ], pct);
+    drawChart("chart-recovered", "recovered", [series("recovered/s", 2, (p) => perS(p, "recovered"))], num);
+    drawChart("chart-overhead", "overhead", [
+      series("packets", 3, (p) => p.overheadPackets),
+      series("bytes", 4, (p) => p.overheadBytes),
+    ], pct);
+    drawChart("chart-delay", "delay", [series("p50", 1, (p) => p.p50), series("p99", 5, (p) => p.p99)], msTick);
+    const reasons = [...new Set(points.flatMap((p) => Object.keys(p.drops).filter((r) => p.drops[r] > 0)))].sort();
+    drawChart("chart-drops", "drops", reasons.length
+      ? reasons.map((r, i) => series(r, [5, 6, 3, 4, 0, 1, 2, 7][i % 8], (p) => (p.seconds ? (p.drops[r] || 0) / p.seconds : null)))
+      : [series("none", 7, (p) => (p.seconds ? p.dropTotal / p.seconds : null))], num);
+    const code = (key) => (r) => { const v = parseFloat(r.info[key]); return isFinite(v) ? v : null; };
+    drawChart("chart-code", "code", [
+      { name: "k", color: 1, values: reads.map((r) => [r.t, code("k")(r)]) },
+      { name: "m", color: 0, values: reads.map((r) => [r.t, code("m")(r)]) },
+    ], num, true);
+  }
+
+  // ---------------------------------------------------------------- panels
+  function row(label, key, value, extra) {
+    const tr = document.createElement("tr");
+    const name = document.createElement("td");
+    name.textContent = label;
+    const cell = document.createElement("td");
+    cell.className = "num";
+    cell.dataset.metric = key;
+    cell.dataset.value = String(value);
+    cell.textContent = count(value) + (extra || "");
+    tr.className = value ? "" : "zero";
+    tr.append(name, cell);
+    return tr;
+  }
+  function drawTotals(s) {
+    $("totals").tBodies[0].replaceChildren(...TOTALS.filter(([, key]) => key in s).map(([label, key, inner]) =>
+      row(label, key, s[key], inner && inner in s ? ` (${count(s[inner])})` : "")));
+    const drops = keysOf(s, DROPS, "reason").sort((a, b) => (s[b[0]] - s[a[0]]) || a[1].localeCompare(b[1]));
+    $("drops").tBodies[0].replaceChildren(...drops.map(([key, reason]) => row(reason, key, s[key])));
+  }
+  function drawEstimate(doc) {
+    const s = doc.samples, loss = s.fecproxy_link_loss_ratio, burst = s.fecproxy_link_mean_burst_packets;
+    const have = loss !== undefined && loss !== null;
+    $("estimate-loss").textContent = have ? percent(loss) : "– (no block received from the peer yet)";
+    $("estimate-loss").dataset.value = have ? String(loss) : "";
+    $("estimate-burst").textContent = have && burst !== null && burst !== undefined ? burst.toFixed(2) + " packets" : "–";
+    $("estimate-burst").dataset.value = have && burst !== null && burst !== undefined ? String(burst) : "";
+    const rate = doc.source_rate;
+    $("estimate-rate").textContent = rate === null ? "–" : rate.toFixed(1) + " datagrams/s from the peer";
+    $("estimate-rate").dataset.value = rate === null ? "" : String(rate);
+    const plan = doc.plan || {}, box = $("plan"), best = plan.recommended;
+    box.replaceChildren();
+    if (best) {
+      const code = document.createElement("span");
+      code.className = "code";
+      code.id = "plan-code";
+      code.dataset.k = best.k; code.dataset.m = best.m;
+      code.textContent = `k=${best.k} m=${best.m}`;
+      const short = best.k_effective < best.k ? ` (blocks close short: k'=${best.k_effective} m'=${best.m_effective})` : "";
+      box.append(code, `overhead ${best.overhead.toFixed(3)}, residual loss ${best.residual_loss.toPrecision(3)}, ` +
+        `block span ${best.block_span_ms.toFixed(0)} ms${short}`);
+    } else {
+      const note = document.createElement("span");
+      note.className = "muted";
+      note.textContent = plan.note || "–";
+      box.append(note);
+    }
+    $("plan-command").textContent = plan.command ? "$ " + plan.command : "";
+    const age = plan.computed_s_ago >= 1 ? `, planned ${Math.round(plan.computed_s_ago)} s ago` : "";
+    $("plan-budgets").textContent = plan.command
+      ? `Budgets: recovery wait ≤ ${plan.latency_budget_ms} ms, overhead ≤ ${plan.max_overhead}, residual loss ≤ ${plan.target}; ` +
+        `inputs rounded to two digits${age}. Compare with the peer's fec.block_size and fec.repair.` : "";
+  }
+  function drawKpis() {
+    const last = reads.length - 1;
+    const f = last >= 1 ? figures(reads[last], reads[Math.max(0, last - KPI_READS)]) : null;
+    if (!f) return;
+    const span = `last ${Math.max(1, Math.round(f.seconds))} s`;
+    show("kpi-link-loss", percent(f.linkLoss), f.linkLoss, lossTone(f.linkLoss));
+    $("kpi-link-loss-sub").textContent = `${count(f.lost)} of ${count(f.expected)} source packets, ${span}`;
+    show("kpi-residual-loss", percent(f.residualLoss), f.residualLoss, lossTone(f.residualLoss));
+    $("kpi-residual-loss-sub").textContent = `${count(f.unrecovered)} not rebuilt, ${span}`;
+    show("kpi-recovered", perSecond(f.recovered, f.seconds), f.recovered / f.seconds, "");
+    $("kpi-recovered-sub").textContent = `${count(f.recovered)} rebuilt, ${span}`;
+    show("kpi-overhead", percent(f.overheadPackets), f.overheadPackets, "");
+    $("kpi-overhead-sub").textContent = `packets; ${percent(f.overheadBytes)} in bytes`;
+    show("kpi-delay", ms(f.p50), f.p50, "");
+    $("kpi-delay-sub").textContent = `p99 ${ms(f.p99)}`;
+    show("kpi-drops", perSecond(f.dropTotal, f.seconds), f.dropTotal / f.seconds, f.dropTotal ? "warn" : "");
+    const top = Object.entries(f.drops).filter(([, v]) => v > 0).sort((a, b) => b[1] - a[1]).map(([r, v]) => `${r} ${count(v)}`);
+    $("kpi-drops-sub").textContent = top.length ? top.join(", ") : `none, ${span}`;
+  }
+  function connection(state, text) {
+    const pill = $("conn");
+    pill.className = "pill " + state;
+    pill.textContent = text;
+  }
+
+  // ---------------------------------------------------------------- polling
+  async function poll() {
+    const abort = new AbortController();
+    const timer = setTimeout(() => abort.abort(), FETCH_TIMEOUT_MS);
+    try {
+      const response = await fetch("status.json", { cache: "no-store", signal: abort.signal });
+      if (!response.ok) throw new Error(`HTTP ${response.status}`);
+      const doc = await response.json();
+      refreshS = doc.refresh_s || refreshS;
+      const read = { t: doc.uptime_s, s: doc.samples, info: doc.info || {} };
+      const previous = reads[reads.length - 1];
+      if (previous && read.t < previous.t) { reads.length = 0; points.length = 0; }  // daemon restarted
+      if (previous && read.t >= previous.t && reads.length) points.push(figures(read, reads[reads.length - 1]));
+      reads.push(read);
+      while (reads.length > HISTORY_READS) reads.shift();
+      while (points.length > HISTORY_READS - 1) points.shift();
+      $("role").textContent = read.info.role || "?";
+      $("version").textContent = read.info.version || "?";
+      for (const key of ["k", "m"]) { $("code-" + key).textContent = read.info[key] || "?"; $("code-" + key).dataset.value = read.info[key] || ""; }
+      $("uptime").textContent = duration(doc.uptime_s);
+      drawKpis();
+      drawCharts();
+      drawTotals(read.s);
+      drawEstimate(doc);
+      connection("ok", "live · " + new Date().toLocaleTimeString("en-GB"));
+      document.body.dataset.refreshes = String(Number(document.body.dataset.refreshes) + 1);
+    } catch (error) {
+      connection("bad", "no answer from the daemon: " + (error.name === "AbortError" ? "timed out" : error.message) + " · retrying");
+    } finally {
+      clearTimeout(timer);
+      setTimeout(poll, refreshS * 1000);
+    }
+  }
+  poll();
+})();
