@@ -478,6 +478,8 @@ def test_effective_has_every_key_in_yaml_nesting():
         "short_block_repair": "proportional",
         "allow_repair_above_source": False,
         "adapt": None,
+        "interleave": 1,
+        "size_classes": [256],
     }
     assert effective["reports"] == {"interval_ms": 1000}
     assert effective["forward"] is None and effective["metrics"] == {"listen": None}

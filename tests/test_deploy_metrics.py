@@ -50,6 +50,8 @@ class _Daemon:
             "delivered": 0, "repair_unneeded": 0, "blocks": {}})()
         self.role = "sender"
         self.block_shape = (encoder.settings.block_size, encoder.settings.repair)
+        self.interleave = encoder.settings.interleave
+        self.size_class_names = encoder.settings.class_names
         self.reloads = {"applied": 0, "rejected": 0}
 
     def drop_counts(self):

@@ -100,7 +100,7 @@ def test_repair_of_a_batched_block_matches_galois():
     vandermonde = field([[alpha ** (i * j) for j in range(n)] for i in range(k)])
     generator = np.linalg.inv(vandermonde[:, :k]) @ vandermonde
     rng = random.Random(11)
-    enc = BlockEncoder(EncoderSettings(block_size=k, repair=m, max_datagram=40), SESSION)
+    enc = BlockEncoder(EncoderSettings(block_size=k, repair=m, max_datagram=40, allow_repair_above_source=True), SESSION)
     batch = [(rng.randbytes(rng.randint(0, 40)), rng.randint(0, 255)) for _ in range(3 * k)]
     packets = enc.send_batch(batch, 0.0)
     assert len(packets) == 3 * (k + m)
@@ -176,7 +176,8 @@ def test_timer_closes_a_short_block_left_open_by_a_batch():
 )
 def test_decoder_rebuilds_every_batched_block_that_lost_at_most_m(k, m, seed, drop_seed):
     rng = random.Random(seed)
-    settings_ = EncoderSettings(block_size=k, repair=m, max_datagram=120)
+    # Repair above source is allowed here: this checks recovery, not the RFC 6363 §8.2 byte cap.
+    settings_ = EncoderSettings(block_size=k, repair=m, max_datagram=120, allow_repair_above_source=True)
     enc = BlockEncoder(settings_, SESSION)
     sent = [(rng.randbytes(rng.randint(0, 120)), rng.randint(0, 255)) for _ in range(5 * k)]
     packets = enc.send_batch(sent[: 2 * k + 1], 0.0) + enc.send_batch(sent[2 * k + 1 :], 0.001)

@@ -93,6 +93,8 @@ class StandInDaemon:
 
     role = "receiver"
     block_shape = (8, 2)
+    interleave = 1
+    size_class_names = ("le256", "gt256")
     reloads = {"applied": 1, "rejected": 0}
 
     def __init__(self):
@@ -125,7 +127,7 @@ def test_collector_reads_only_the_daemon_view_and_serve_exposes_it():
     assert "fecproxy_datagrams_recovered_total 3.0" in text
     assert 'fecproxy_packets_dropped_total{reason="late"} 2.0' in text
     assert all(f'reason="{reason}"' in text for reason in DropReason)
-    assert 'fecproxy_info{k="8",m="2",role="receiver"' in text
+    assert 'fecproxy_info{interleave="1",k="8",m="2",role="receiver",size_classes="le256,gt256"' in text
     assert "fecproxy_link_loss_ratio 0.05" in text
 
 

@@ -37,6 +37,8 @@ class _Daemon:
         self.encoder_stats = EncoderStats(source_packets=900, repair_packets=300, source_bytes=90_000,
                                           repair_bytes=31_000, blocks=75, short_blocks=2)
         self.block_shape = (12, 4)
+        self.interleave = 1
+        self.size_class_names = ("le256", "gt256")
         self.decoder_stats = DecoderStats(source_received=950, repair_received=310, lost=50, recovered=48,
                                           unrecovered=2, delivered=998, blocks={"complete": 40, "recovered": 30})
         self.role = "receiver"
@@ -92,7 +94,8 @@ def test_status_json_holds_exactly_what_metrics_exposes():
     assert code.startswith("200") and headers["Content-Type"] == "application/json"
     document = json.loads(body)
     assert document["samples"] == _exposition(registry)
-    assert document["info"] == {"version": document["info"]["version"], "role": "receiver", "k": "12", "m": "4"}
+    assert document["info"] == {"version": document["info"]["version"], "role": "receiver", "k": "12", "m": "4",
+                                "interleave": "1", "size_classes": "le256,gt256"}
     assert document["samples"]['fecproxy_packets_dropped_total{reason="late"}'] == 3
     assert document["samples"]["fecproxy_link_loss_ratio"] == 0.05
     assert document["refresh_s"] == status.REFRESH_S

@@ -39,6 +39,11 @@ MAX_ENCODING_SYMBOLS = wire.MAX_K
 DEFAULT_BLOCK_SIZE = _encoder.DEFAULT_BLOCK_SIZE
 DEFAULT_REPAIR = _encoder.DEFAULT_REPAIR
 DEFAULT_FLUSH_MS = round(_encoder.DEFAULT_FLUSH_INTERVAL * 1000)
+#: Interleave depth and size classes: the encoder owns their defaults, bounds and reasons.
+DEFAULT_INTERLEAVE = _encoder.DEFAULT_INTERLEAVE
+MAX_INTERLEAVE = _encoder.MAX_INTERLEAVE
+DEFAULT_SIZE_CLASSES = _encoder.DEFAULT_SIZE_CLASSES
+MAX_SIZE_BOUNDARIES = _encoder.MAX_SIZE_BOUNDARIES
 #: A block held open for more than a minute protects nothing in time for any real-time use, and
 #: keeps memory busy; beyond that the setting is surely a unit mistake (seconds for ms).
 MAX_FLUSH_MS = 60_000
@@ -191,6 +196,8 @@ class FecSection:
     short_block_repair: ShortBlockRepair = DEFAULT_SHORT_BLOCK_REPAIR
     allow_repair_above_source: bool = False
     adapt: AdaptSection | None = None  # None = m stays fixed at repair
+    interleave: int = DEFAULT_INTERLEAVE  # D: open blocks per size class, fed in turn
+    size_classes: tuple[int, ...] = DEFAULT_SIZE_CLASSES  # boundaries in bytes; () = one class
 
     @property
     def flush_seconds(self) -> float:
@@ -319,6 +326,8 @@ def _plain(value):
         return str(value)
     if isinstance(value, StrEnum):
         return value.value
+    if isinstance(value, tuple):
+        return [_plain(item) for item in value]
     return value
 
 
@@ -437,6 +446,27 @@ class _Number:
         return number
 
 
+class _SizeBoundaries:
+    """fec.size_classes: a list of increasing byte counts (an empty list = one class)."""
+
+    expected = (
+        f"a list of at most {MAX_SIZE_BOUNDARIES} increasing byte counts 1..{MAX_DATAGRAM_BYTES_LIMIT}, "
+        f"e.g. [256] or [] for one class"
+    )
+
+    def __call__(self, value):
+        if not isinstance(value, list):
+            raise _Bad(f"is {kind_of(value)}; expected {self.expected}")
+        if len(value) > MAX_SIZE_BOUNDARIES:
+            raise _Bad(f"has {len(value)} boundaries; expected {self.expected}")
+        for item in value:
+            if isinstance(item, bool) or not isinstance(item, int) or not 1 <= item <= MAX_DATAGRAM_BYTES_LIMIT:
+                raise _Bad(f"holds {show_value(item)}; expected {self.expected}")
+        if any(a >= b for a, b in zip(value, value[1:])):
+            raise _Bad(f"is not increasing; expected {self.expected}")
+        return tuple(value)
+
+
 def _looks_numeric(text: str) -> bool:
     try:
         float(text)
@@ -543,6 +573,8 @@ _SECTIONS: dict[str, tuple[type, dict[str, Callable]]] = {
             "short_block_repair": _Choice(ShortBlockRepair, "short-block rule"),
             "allow_repair_above_source": _Boolean(),
             "adapt": _ADAPT,
+            "interleave": _Integer(1, MAX_INTERLEAVE, f"an integer 1..{MAX_INTERLEAVE} (1 = no interleaving)"),
+            "size_classes": _SizeBoundaries(),
         },
     ),
     "decoder": (

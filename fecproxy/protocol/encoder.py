@@ -1,18 +1,37 @@
 """Sans-IO block encoder: datagrams and ``now`` in, link packets and the next deadline out.
 
 The sender frames each application datagram as a source packet and returns it at once, so an
-undamaged link adds no delay.  The datagram is also copied into the open block as the RFC 6363 §4
-source symbol (flow ‖ length ‖ data ‖ padding).  The block closes when it holds k datagrams or when
+undamaged link adds no delay.  The datagram is also copied into an open block as the RFC 6363 §4
+source symbol (flow ‖ length ‖ data ‖ padding).  A block closes when it holds k datagrams or when
 its flush deadline (arrival of its first datagram + flush interval) passes; closing computes the
 repair packets (RFC 5510 §8.2 code with the block's actual k).
+
+Several blocks are open at once, one per (size class, lane):
+
+* Size classes (``size_classes``, boundaries in bytes): a datagram goes to the blocks of its class,
+  so a 20-byte record is never padded to the length of a 1400-byte image slice (repair symbols are
+  as long as the block's longest datagram).
+* Interleaving (``interleave`` = D lanes per class): consecutive datagrams of a class go to its D
+  open blocks in turn, so a run of up to D·m lost link packets costs each block at most m (the
+  property RFC 8627 §1.1.3 and RFC 6683 §2.1 state for parity codes).  Source packets still leave
+  at once; only repair waits, and a block spans about D times as many link packets.
+
+Each block has its own SBN (numbers are taken consecutively as blocks open), its own flush
+deadline and its own k' when closed early.  "previous k" in a source packet is the k of block
+SBN − 1 if that block has closed by the time the packet is sent, else 0 (with one open block at a
+time this is always the block before; see DEVELOPERS.md "Wire format").
+
+RFC 6363 §8.2 in bytes: unless ``allow_repair_above_source``, a block's repair count is cut so
+that its repair symbols (m'·symbol length) do not exceed its source symbols' content (the
+unpadded prefix + datagram of each); for a block of equal datagrams this is exactly m ≤ k.  The
+blocks so cut are counted (``stats.repair_capped``).
 
 A shell that reads datagrams in batches calls ``send_batch``: every block that fills during the
 batch is closed at once (numbered, counted), but its repair computation waits until the end of
 the call, where all such blocks of one shape are encoded by a single codec call on their symbols
 laid side by side.  Each byte position is its own codeword (RFC 5510 §8.2), so the repair bytes
 are exactly those of one call per block; only the codec's per-call overhead is shared.  The link
-order stays that of ``send`` (a block's repair right after its last source packet): receivers and
-tools may count on link packet i of a block-aligned stream being ESI i mod n.
+order stays that of ``send`` (a block's repair right after its last source packet).
 
 A datagram longer than ``max_datagram`` is refused the same way by ``send`` and ``send_batch``:
 counted as an ``oversize`` drop in ``stats.dropped`` and skipped (no packet, no place in the
@@ -21,6 +40,7 @@ block), so one bad datagram never costs the rest of a batch and a daemon needs n
 
 from __future__ import annotations
 
+from bisect import bisect_left
 from collections.abc import Iterable
 from dataclasses import dataclass, field
 
@@ -41,6 +61,20 @@ DEFAULT_REPAIR = 4
 #: recovery delay of sparse traffic at the scale of one voice frame (RFC 3551 §4.5 makes 20 ms
 #: the default audio packetisation interval; from memory).
 DEFAULT_FLUSH_INTERVAL = 0.020
+#: One lane: no interleaving unless asked for, since a lane multiplies the time a block spans.
+DEFAULT_INTERLEAVE = 1
+#: 16 lanes spread a burst of up to 16·m packets; more would keep 16+ blocks (each a k × symbol
+#: buffer, ≈ 22 KB at k = 16 and 1400 bytes) open per class and stretch a block over 16·k link
+#: packets, past the receiver's default hold time at modest rates.  Our own bound, no source.
+MAX_INTERLEAVE = 16
+#: One boundary at 256 bytes: telemetry records, control messages and 20 ms voice frames
+#: (160 bytes of G.711 + 12 of RTP header, RFC 3551 §4.5.14; from memory) fall at or below it,
+#: bulk data sliced to the path MTU (≈ 1200–1400 bytes) above, so the usual mix is split where it
+#: matters while within a class a datagram is padded at most to the class's longest.  Our choice.
+DEFAULT_SIZE_CLASSES: tuple[int, ...] = (256,)
+#: At most 4 boundaries (5 classes): each class keeps D blocks open and is a label value of the
+#: per-class metrics, which must stay a small fixed set (Prometheus naming guide).
+MAX_SIZE_BOUNDARIES = 4
 #: Full blocks whose repair ``send_batch`` computes in one codec call, symbols side by side.
 #: Measured on this project's 2-core machine with (16, 1208)-byte blocks, k=16, m=4, µs per
 #: block: 50–60 alone, 36 for 2, 30 for 4, 25 for 8, 25–29 for 12 to 32: past ~8 blocks the
@@ -52,6 +86,15 @@ MAX_BLOCKS_PER_ENCODE = 8
 MAX_BYTES_PER_ENCODE = 160 * 1024
 
 
+def size_class_names(boundaries: Iterable[int]) -> tuple[str, ...]:
+    """Label values of the classes the boundaries make: ``le<b>`` for each, ``gt<last>`` above
+    (one class, ``all``, without boundaries)."""
+    bounds = tuple(boundaries)
+    if not bounds:
+        return ("all",)
+    return tuple(f"le{b}" for b in bounds) + (f"gt{bounds[-1]}",)
+
+
 @dataclass(frozen=True)
 class EncoderSettings:
     """What shapes a block.  Validated here because the encoder trusts it afterwards."""
@@ -61,6 +104,9 @@ class EncoderSettings:
     flush_interval: float = DEFAULT_FLUSH_INTERVAL  # seconds
     max_datagram: int = wire.DEFAULT_MAX_DATAGRAM
     short_block_repair: str = DEFAULT_SHORT_BLOCK_REPAIR
+    interleave: int = DEFAULT_INTERLEAVE  # D: open blocks per size class, fed in turn
+    size_classes: tuple[int, ...] = DEFAULT_SIZE_CLASSES  # boundaries in bytes, increasing
+    allow_repair_above_source: bool = False  # RFC 6363 §8.2 in bytes is enforced unless set
 
     def __post_init__(self) -> None:
         if not 1 <= self.block_size <= wire.MAX_K:
@@ -73,10 +119,49 @@ class EncoderSettings:
             raise ValueError(f"max_datagram {self.max_datagram} outside 1..{wire.MAX_DATAGRAM_LIMIT}")
         if self.short_block_repair not in SHORT_BLOCK_RULES:
             raise ValueError(f"short_block_repair {self.short_block_repair!r} not one of {SHORT_BLOCK_RULES}")
+        if not 1 <= self.interleave <= MAX_INTERLEAVE:
+            raise ValueError(f"interleave {self.interleave} outside 1..{MAX_INTERLEAVE}")
+        bounds = tuple(self.size_classes)
+        object.__setattr__(self, "size_classes", bounds)
+        if len(bounds) > MAX_SIZE_BOUNDARIES:
+            raise ValueError(f"size_classes has {len(bounds)} boundaries; at most {MAX_SIZE_BOUNDARIES}")
+        if any(not isinstance(b, int) or b < 1 for b in bounds) or any(a >= b for a, b in zip(bounds, bounds[1:])):
+            raise ValueError(f"size_classes {list(bounds)} must be increasing positive byte counts")
 
     def repair_for(self, k_actual: int) -> int:
-        """Repair packets for a block of k_actual datagrams (see fecproxy.protocol.repair_rule)."""
+        """Repair packets for a block of k_actual datagrams (see fecproxy.protocol.repair_rule),
+        before the RFC 6363 §8.2 byte cap, which depends on the block's datagrams."""
         return repair_count(self.block_size, self.repair, k_actual, self.short_block_repair)
+
+    @property
+    def class_names(self) -> tuple[str, ...]:
+        return size_class_names(self.size_classes)
+
+    def class_of(self, size: int) -> int:
+        """Index of the size class of a datagram of ``size`` bytes."""
+        return bisect_left(self.size_classes, size)
+
+    def class_max_datagram(self, index: int) -> int:
+        """The longest datagram a block of class ``index`` can hold."""
+        bounds = self.size_classes
+        return min(bounds[index], self.max_datagram) if index < len(bounds) else self.max_datagram
+
+
+def repair_byte_cap(m: int, content_bytes: int, symbol_len: int) -> int:
+    """RFC 6363 §8.2 in bytes: the largest m' ≤ m with m'·symbol_len ≤ content_bytes, where
+    content_bytes is the block's source symbols unpadded (Σ prefix + datagram)."""
+    return min(m, content_bytes // symbol_len) if symbol_len else 0
+
+
+@dataclass
+class ClassStats:
+    """What one size class cost on the link (headers included)."""
+
+    source_packets: int = 0
+    repair_packets: int = 0
+    source_bytes: int = 0
+    repair_bytes: int = 0
+    blocks: int = 0
 
 
 @dataclass
@@ -87,16 +172,36 @@ class EncoderStats:
     short_blocks: int = 0
     source_bytes: int = 0  # source packets' bytes on the link, headers included
     repair_bytes: int = 0  # repair packets' bytes on the link, headers included
+    repair_capped: int = 0  # blocks whose repair count the RFC 6363 §8.2 byte rule cut
     dropped: dict[str, int] = field(default_factory=dict)
+    classes: dict[str, ClassStats] = field(default_factory=dict)  # by size-class name
+
+    def for_class(self, name: str) -> ClassStats:
+        stats = self.classes.get(name)
+        if stats is None:
+            stats = self.classes[name] = ClassStats()
+        return stats
 
 
-class _FullBlock:
-    """A block closed by ``send_batch`` whose repair symbols are still to be computed."""
+class _Block:
+    """An open block, then (closed by ``send_batch``) one whose repair is still to be computed."""
 
-    __slots__ = ("storage", "symbols", "sbn", "k", "m", "length", "packets")
+    __slots__ = (
+        "storage", "symbols", "width", "sbn", "base", "key", "class_name", "settings", "count", "symbol_len",
+        "content", "deadline", "previous_k", "k", "m", "length", "packets",
+    )
 
-    def __init__(self, storage: memoryview, symbols: np.ndarray, sbn: int, k: int, m: int, length: int):
-        self.storage, self.symbols, self.sbn, self.k, self.m, self.length = storage, symbols, sbn, k, m, length
+    def __init__(self, storage: memoryview, symbols: np.ndarray, sbn: int, key: int, class_name: str,
+                 settings: EncoderSettings, deadline: float, previous_k: int):
+        self.storage, self.symbols, self.width = storage, symbols, symbols.shape[1]
+        self.sbn, self.base, self.key, self.class_name = sbn, sbn << wire.ESI_BITS, key, class_name
+        self.settings = settings
+        self.count = 0  # datagrams in the block
+        self.symbol_len = 0  # prefix + longest datagram so far
+        self.content = 0  # Σ prefix + datagram: the RFC 6363 §8.2 byte budget for repair
+        self.deadline = deadline
+        self.previous_k = previous_k  # k of block SBN − 1 once that has closed, else 0
+        self.k = self.m = self.length = 0  # set when the block closes
         self.packets: list[bytes] = []  # its repair packets, once computed
 
 
@@ -108,14 +213,13 @@ class BlockEncoder:
             raise ValueError(f"session {session} does not fit 32 bits")
         self.session = session
         self.stats = EncoderStats()
-        self._sbn = first_sbn % wire.SBN_MODULUS
+        self._next_sbn = first_sbn % wire.SBN_MODULUS
         self._settings = settings
-        self._pending: EncoderSettings | None = None
-        self._allocate(settings)
-        self._count = 0  # datagrams in the open block
-        self._previous_k = 0  # k of the block before the open one; 0 = none yet (a new session)
-        self._symbol_len = 0
-        self._deadline: float | None = None
+        self._open: dict[int, _Block] = {}  # by key = class · MAX_INTERLEAVE + lane, blocks still fed
+        self._by_sbn: dict[int, _Block] = {}  # every open block, also those a new layout no longer feeds
+        self._lanes: dict[int, int] = {}  # per class: the lane of its next datagram
+        self._carry: tuple[int, int] | None = None  # (SBN, k) of a closed block whose successor is not open yet
+        self._spare: dict[tuple[int, int], list[tuple[memoryview, np.ndarray]]] = {}  # zeroed buffers by shape
 
     @property
     def settings(self) -> EncoderSettings:
@@ -123,62 +227,50 @@ class BlockEncoder:
 
     @property
     def sbn(self) -> int:
-        """Number of the open (or next) source block."""
-        return self._sbn
+        """Number of the oldest open block, or of the next block when none is open."""
+        return next(iter(self._by_sbn)) if self._by_sbn else self._next_sbn
 
     def update(self, settings: EncoderSettings) -> None:
-        """New k/m/flush apply from the next block; the open one keeps the shape it started with."""
-        if self._count == 0:
-            self._settings = settings
-            self._allocate(settings)
-        else:
-            self._pending = settings
+        """New settings apply from the next block; open blocks keep the shape they started with.
 
-    def _allocate(self, settings: EncoderSettings) -> None:
-        width = wire.SYMBOL_PREFIX_BYTES + settings.max_datagram
-        width += -width % 8  # whole uint64 words for the codec
-        self._width = width
-        self._spare: list[tuple[memoryview, np.ndarray]] = []  # zeroed buffers of this shape
-        self._storage, self._symbols = self._new_buffer()
+        If the size classes or the interleave depth change, the open blocks get no more
+        datagrams and close at their flush deadline.  A block too narrow for a datagram (a larger
+        max datagram) is closed early before it."""
+        old, self._settings = self._settings, settings
+        if (old.size_classes, old.interleave) != (settings.size_classes, settings.interleave):
+            self._open.clear()
+            self._lanes.clear()
 
-    def _new_buffer(self) -> tuple[memoryview, np.ndarray]:
+    def _buffer(self, rows: int, width: int) -> tuple[memoryview, np.ndarray]:
         # One bytearray, seen by the codec as a (k, width) array without a copy: the per-datagram
         # copy is then a plain memoryview slice assignment, not numpy calls on a row.
-        if self._spare:
-            return self._spare.pop()
-        storage = memoryview(bytearray(self._settings.block_size * self._width))
-        return storage, np.frombuffer(storage, dtype=np.uint8).reshape(self._settings.block_size, self._width)
+        spare = self._spare.get((rows, width))
+        if spare:
+            return spare.pop()
+        storage = memoryview(bytearray(rows * width))
+        return storage, np.frombuffer(storage, dtype=np.uint8).reshape(rows, width)
+
+    def _open_block(self, key: int, index: int, now: float) -> _Block:
+        settings = self._settings
+        width = wire.SYMBOL_PREFIX_BYTES + settings.class_max_datagram(index)
+        width += -width % 8  # whole uint64 words for the codec
+        storage, symbols = self._buffer(settings.block_size, width)
+        sbn = self._next_sbn
+        self._next_sbn = (sbn + 1) % wire.SBN_MODULUS
+        carry = self._carry
+        previous_k = carry[1] if carry is not None and (carry[0] + 1) % wire.SBN_MODULUS == sbn else 0
+        self._carry = None
+        block = _Block(storage, symbols, sbn, key, settings.class_names[index], settings, now + settings.flush_interval, previous_k)
+        self._open[key] = block
+        self._by_sbn[sbn] = block
+        return block
 
     def send(self, datagram: bytes, flow: int, now: float) -> list[bytes]:
         """Frame one application datagram; returns the packets to put on the link now.
 
         An oversize datagram returns no packet and is counted in ``stats.dropped``.
         """
-        settings = self._settings
-        size = len(datagram)
-        if size > settings.max_datagram:
-            self._count_drop(DropReason.OVERSIZE, 1)
-            return []
-        index = self._count
-        if index == 0:
-            self._deadline = now + settings.flush_interval
-        start = index * self._width
-        storage = self._storage
-        storage[start : start + wire.SYMBOL_PREFIX_BYTES] = wire.SYMBOL_PREFIX.pack(flow, size)
-        storage[start + wire.SYMBOL_PREFIX_BYTES : start + wire.SYMBOL_PREFIX_BYTES + size] = datagram
-        if size + wire.SYMBOL_PREFIX_BYTES > self._symbol_len:
-            self._symbol_len = size + wire.SYMBOL_PREFIX_BYTES
-        self._count = index + 1
-        full = self._count == settings.block_size
-        header = wire.pack_source_header(
-            wire.FLAG_END if full else 0, self.session, (self._sbn << wire.ESI_BITS) | index, flow, self._previous_k
-        )
-        out = [header + datagram]
-        self.stats.source_packets += 1
-        self.stats.source_bytes += len(out[0])
-        if full:
-            out.extend(self._close())
-        return out
+        return self.send_batch(((datagram, flow),), now)
 
     def send_batch(self, items: Iterable[tuple[bytes, int]], now: float) -> list[bytes]:
         """Frame a batch of ``(datagram, flow)`` that arrived together at ``now``.
@@ -190,56 +282,80 @@ class BlockEncoder:
         as in ``send``; the rest of the batch goes on.
         """
         settings = self._settings
-        block_size, max_datagram, width = settings.block_size, settings.max_datagram, self._width
+        max_datagram, depth, bounds = settings.max_datagram, settings.interleave, settings.size_classes
+        single_bound = bounds[0] if len(bounds) == 1 else None
         session, pack_source, pack_prefix = self.session, wire.pack_source_header, wire.SYMBOL_PREFIX.pack_into
-        prefix, esi_bits, flag_end = wire.SYMBOL_PREFIX_BYTES, wire.ESI_BITS, wire.FLAG_END
-        count, sbn, storage, symbol_len = self._count, self._sbn, self._storage, self._symbol_len
-        payload_base = sbn << esi_bits  # the block's FEC Payload ID word; its ESI is or-ed in
-        previous_k = self._previous_k
+        prefix, flag_end = wire.SYMBOL_PREFIX_BYTES, wire.FLAG_END
+        blocks, lanes = self._open, self._lanes
         sources: list[bytes] = []
         pieces = [sources]  # source runs, each full block's (still empty) repair list between them
-        deferred: list[_FullBlock] = []
-        sent = oversize = sent_bytes = 0
+        deferred: list[_Block] = []
+        sent_by_class: dict[int, list[int]] = {}  # class -> [datagrams, their bytes]
+        oversize = 0
         try:
             for datagram, flow in items:
                 size = len(datagram)
                 if size > max_datagram:
                     oversize += 1
                     continue
-                start = count * width + prefix
+                if single_bound is not None:
+                    index = 0 if size <= single_bound else 1
+                else:
+                    index = bisect_left(bounds, size)
+                if depth == 1:
+                    key = index * MAX_INTERLEAVE
+                else:
+                    lane = lanes.get(index, 0)
+                    lanes[index] = (lane + 1) % depth
+                    key = index * MAX_INTERLEAVE + lane
+                block = blocks.get(key)
+                if block is None:
+                    block = self._open_block(key, index, now)
+                elif size + prefix > block.width:  # opened before max_datagram grew: close it early
+                    del blocks[key]
+                    self._retire(block)
+                    deferred.append(block)
+                    sources = []
+                    pieces += (block.packets, sources)
+                    block = self._open_block(key, index, now)
+                count = block.count
+                start = count * block.width + prefix
+                storage = block.storage
                 pack_prefix(storage, start - prefix, flow, size)
                 storage[start : start + size] = datagram
-                if count == 0:
-                    self._deadline = now + settings.flush_interval
-                if size + prefix > symbol_len:
-                    symbol_len = size + prefix
+                if size + prefix > block.symbol_len:
+                    block.symbol_len = size + prefix
+                block.content += size + prefix
                 count += 1
-                sent += 1
-                sent_bytes += size
-                if count < block_size:
-                    sources.append(pack_source(0, session, payload_base | (count - 1), flow, previous_k) + datagram)
+                block.count = count
+                tally = sent_by_class.get(index)
+                if tally is None:
+                    tally = sent_by_class[index] = [0, 0]
+                tally[0] += 1
+                tally[1] += size
+                if count < block.settings.block_size:
+                    sources.append(pack_source(0, session, block.base | (count - 1), flow, block.previous_k) + datagram)
                     continue
-                sources.append(pack_source(flag_end, session, payload_base | (count - 1), flow, previous_k) + datagram)
-                self._count, self._symbol_len = count, symbol_len
-                block = self._set_aside()
-                settings = self._settings  # a pending update applies from the next block on
-                block_size, max_datagram, width = settings.block_size, settings.max_datagram, self._width
-                count, sbn, storage, symbol_len = 0, self._sbn, self._storage, 0
-                payload_base = sbn << esi_bits
-                previous_k = self._previous_k
+                sources.append(pack_source(flag_end, session, block.base | (count - 1), flow, block.previous_k) + datagram)
+                del blocks[key]
+                self._retire(block)
                 deferred.append(block)
                 sources = []
                 pieces += (block.packets, sources)
-                if len(deferred) == MAX_BLOCKS_PER_ENCODE:
+                if len(deferred) >= MAX_BLOCKS_PER_ENCODE:
                     self._encode(deferred)
                     deferred = []
         finally:
-            # Even if a bad item raises midway, the block state stays true to the buffer: the
+            # Even if a bad item raises midway, the block state stays true to the buffers: the
             # datagrams copied in are counted (their source packets are lost with the exception,
             # so a receiver sees them as link loss and the repair still matches).
-            self._count, self._symbol_len = count, symbol_len
-            self.stats.source_packets += sent
-            self.stats.source_bytes += sent_bytes + sent * wire.SOURCE_HEADER_BYTES
+            stats, names, header = self.stats, settings.class_names, wire.SOURCE_HEADER_BYTES
+            for index, (sent, sent_bytes) in sent_by_class.items():
+                stats.source_packets += sent
+                stats.source_bytes += sent_bytes + sent * header
+                per_class = stats.for_class(names[index])
+                per_class.source_packets += sent
+                per_class.source_bytes += sent_bytes + sent * header
             if oversize:
                 self._count_drop(DropReason.OVERSIZE, oversize)
         if deferred:
@@ -248,21 +364,45 @@ class BlockEncoder:
             return sources
         return [data for piece in pieces for data in piece]
 
-    def _set_aside(self) -> _FullBlock:
-        """Close the full open block without encoding it: it keeps its buffer until encoded."""
-        k = self._count
-        block = _FullBlock(self._storage, self._symbols, self._sbn, k, self._settings.repair_for(k), self._symbol_len)
-        self._storage, self._symbols = self._new_buffer() if self._pending is None else (None, None)
-        self._advance(k)
-        return block
+    def _retire(self, block: _Block) -> None:
+        """Close a block's books (k, m after the §8.2 byte cap, counters, previous k for its
+        successor); its repair is computed by the caller, from its buffer."""
+        k = block.count
+        settings = block.settings
+        m = settings.repair_for(k)
+        length = block.symbol_len
+        stats = self.stats
+        if not settings.allow_repair_above_source:
+            capped = repair_byte_cap(m, block.content, length)
+            if capped < m:
+                m = capped
+                stats.repair_capped += 1
+        block.k, block.m, block.length = k, m, length
+        repair_bytes = m * (wire.REPAIR_HEADER_BYTES + length)
+        stats.repair_packets += m
+        stats.repair_bytes += repair_bytes
+        stats.blocks += 1
+        if k < settings.block_size:
+            stats.short_blocks += 1
+        per_class = stats.for_class(block.class_name)
+        per_class.repair_packets += m
+        per_class.repair_bytes += repair_bytes
+        per_class.blocks += 1
+        del self._by_sbn[block.sbn]
+        successor_sbn = (block.sbn + 1) % wire.SBN_MODULUS
+        successor = self._by_sbn.get(successor_sbn)
+        if successor is not None:
+            successor.previous_k = k  # its packets from now on tell the receiver this block's k
+        elif successor_sbn == self._next_sbn:
+            self._carry = (block.sbn, k)
 
-    def _encode(self, blocks: list[_FullBlock]) -> None:
+    def _encode(self, blocks: list[_Block]) -> None:
         """Fill each set-aside block's ``packets`` with its repair packets: one codec call per
         run of blocks of equal (k, m), within MAX_BYTES_PER_ENCODE; then recycle the buffers."""
         # k ≤ MAX_K and ESI = k + j ≤ k + m − 1 ≤ MAX_ESI hold by EncoderSettings' checks, so the
         # header is packed unchecked (what wire.encode_repair does after validating them).
-        session, pack_repair, esi_bits = self.session, wire.pack_repair_header, wire.ESI_BITS
-        run: list[_FullBlock] = []
+        session, pack_repair = self.session, wire.pack_repair_header
+        run: list[_Block] = []
         run_bytes = 0
         for position, block in enumerate(blocks):
             run.append(block)
@@ -295,61 +435,48 @@ class BlockEncoder:
                     parts = [(b, repair, o) for b, o in zip(run, offsets)]
                 for b, repair, o in parts:
                     end = o + b.length
-                    base = b.sbn << esi_bits
+                    base = b.base
                     b.packets.extend(pack_repair(session, base | (k + j), k) + repair[j, o:end].data for j in range(m))
-            shape = (self._settings.block_size, self._width)
             for b in run:
-                b.symbols[:k, : b.length] = 0  # padding of a later block must be zeros again
-                if b.symbols.shape == shape and len(self._spare) < MAX_BLOCKS_PER_ENCODE:
-                    self._spare.append((b.storage, b.symbols))
+                self._recycle(b)
             run, run_bytes = [], 0
 
+    def _recycle(self, block: _Block) -> None:
+        block.symbols[: block.k, : block.length] = 0  # padding of a later block must be zeros again
+        spare = self._spare.setdefault(block.symbols.shape, [])
+        if len(spare) < MAX_BLOCKS_PER_ENCODE:
+            spare.append((block.storage, block.symbols))
+
     def next_deadline(self) -> float | None:
-        """When the open block must be flushed; None when no block is open."""
-        return self._deadline
+        """When the next open block must be flushed; None when no block is open."""
+        if not self._by_sbn:
+            return None
+        return min(block.deadline for block in self._by_sbn.values())
 
     def on_timer(self, now: float) -> list[bytes]:
-        if self._deadline is not None and now >= self._deadline:
-            return self._close()
-        return []
+        """Close every block whose flush deadline has passed, oldest SBN first."""
+        due = [block for block in self._by_sbn.values() if block.deadline <= now]
+        out: list[bytes] = []
+        for block in due:
+            out.extend(self._close(block))
+        return out
 
     def close(self) -> list[bytes]:
-        """Shutdown: close the open block now, so its datagrams get their repair packets.
+        """Shutdown: close every open block now, so its datagrams get their repair packets.
 
         The encoder stays usable; the next datagram opens a new block.
         """
-        return self._close() if self._count else []
+        out: list[bytes] = []
+        for block in list(self._by_sbn.values()):
+            out.extend(self._close(block))
+        return out
 
     def _count_drop(self, reason: DropReason, count: int) -> None:
         self.stats.dropped[reason] = self.stats.dropped.get(reason, 0) + count
 
-    def _close(self) -> list[bytes]:
-        k = self._count
-        m = self._settings.repair_for(k)
-        length = self._symbol_len
-        out: list[bytes] = []
-        if m:
-            repair = block_code(k, k + m).encode(self._symbols[:k, :length])
-            # Unchecked header, as in _encode: EncoderSettings bounds k and k + m.
-            base, session, pack_repair = self._sbn << wire.ESI_BITS, self.session, wire.pack_repair_header
-            out = [pack_repair(session, base | (k + j), k) + repair[j].data for j in range(m)]
-        self._symbols[:k, :length] = 0  # padding of the next block must be zeros again
-        self._advance(k)
-        return out
-
-    def _advance(self, k: int) -> None:
-        """Count the block just closed (k datagrams) and open the next one."""
-        settings = self._settings
-        self.stats.repair_packets += settings.repair_for(k)
-        self.stats.repair_bytes += settings.repair_for(k) * (wire.REPAIR_HEADER_BYTES + self._symbol_len)
-        self.stats.blocks += 1
-        if k < settings.block_size:
-            self.stats.short_blocks += 1
-        self._sbn = (self._sbn + 1) % wire.SBN_MODULUS
-        self._previous_k = k
-        self._count = 0
-        self._symbol_len = 0
-        self._deadline = None
-        if self._pending is not None:
-            self._settings, self._pending = self._pending, None
-            self._allocate(self._settings)
+    def _close(self, block: _Block) -> list[bytes]:
+        if self._open.get(block.key) is block:
+            del self._open[block.key]
+        self._retire(block)
+        self._encode([block])
+        return block.packets

@@ -117,6 +117,14 @@ class Daemon:
         return settings.block_size, settings.repair
 
     @property
+    def interleave(self) -> int:
+        return self.encoder.settings.interleave
+
+    @property
+    def size_class_names(self) -> tuple[str, ...]:
+        return self.encoder.settings.class_names
+
+    @property
     def reloads(self) -> dict[str, int]:
         """SIGHUP reloads by result, "applied" and "rejected" (a copy)."""
         return dict(self._reloads)

@@ -45,6 +45,14 @@ class DaemonView(Protocol):
         """(k, m) of the blocks being sent now (a reload changes them)."""
 
     @property
+    def interleave(self) -> int:
+        """D, the open blocks per size class of the blocks being sent now."""
+
+    @property
+    def size_class_names(self) -> tuple[str, ...]:
+        """The label values of the size classes in use (class names from fec.size_classes)."""
+
+    @property
     def reloads(self) -> Mapping[str, int]:
         """SIGHUP reloads by result: "applied", "rejected"."""
 
@@ -85,6 +93,23 @@ class DaemonCollector:
         yield counter("fecproxy_repair_bytes_sent", "Bytes of repair packets sent on the link, headers included.", enc.repair_bytes)
         yield counter("fecproxy_blocks_sent", "Source blocks closed and protected.", enc.blocks)
         yield counter("fecproxy_short_blocks_sent", "Blocks closed by the flush timer before reaching k.", enc.short_blocks)
+        yield counter(
+            "fecproxy_blocks_repair_capped",
+            "Blocks whose repair count was cut so repair bytes stay at or below source bytes (RFC 6363 §8.2).",
+            enc.repair_capped,
+        )
+        # Per size class, beside the unlabelled totals (which rules and dashboards use): the label
+        # values are the class names made from fec.size_classes, a small fixed set.
+        for name, doc in (
+            ("source_packets", "Source packets sent on the link, by datagram size class."),
+            ("repair_packets", "Repair packets sent on the link, by datagram size class."),
+            ("source_bytes", "Bytes of source packets sent on the link, headers included, by size class."),
+            ("repair_bytes", "Bytes of repair packets sent on the link, headers included, by size class."),
+        ):
+            family = CounterMetricFamily(f"fecproxy_class_{name}_sent", doc, labels=["class"])
+            for class_name in d.size_class_names:
+                family.add_metric([class_name], getattr(enc.classes.get(class_name), name, 0))
+            yield family
         received = CounterMetricFamily("fecproxy_link_packets_received", "Valid FEC packets received from the link.", labels=["kind"])
         received.add_metric(["source"], dec.source_received)
         received.add_metric(["repair"], dec.repair_received)
@@ -122,7 +147,13 @@ class DaemonCollector:
             )
         k, m = d.block_shape
         info = InfoMetricFamily("fecproxy", "Build and FEC parameters of this daemon.")
-        info.add_metric([], {"version": __version__, "role": d.role, "k": str(k), "m": str(m)})
+        info.add_metric(
+            [],
+            {
+                "version": __version__, "role": d.role, "k": str(k), "m": str(m),
+                "interleave": str(d.interleave), "size_classes": ",".join(d.size_class_names),
+            },
+        )
         yield info
 
 

@@ -36,6 +36,9 @@ def encoder_settings(config: Config) -> EncoderSettings:
         flush_interval=fec.flush_seconds,
         max_datagram=fec.max_datagram_bytes,
         short_block_repair=str(fec.short_block_repair),
+        interleave=fec.interleave,
+        size_classes=fec.size_classes,
+        allow_repair_above_source=fec.allow_repair_above_source,
     )
 
 
