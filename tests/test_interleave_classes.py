@@ -68,11 +68,26 @@ def test_each_open_block_keeps_its_own_flush_deadline():
     enc.send(b"a" * 50, 1, 1.000)  # lane 0 opens: deadline 1.020
     enc.send(b"b" * 50, 1, 1.010)  # lane 1 opens: deadline 1.030
     assert enc.next_deadline() == pytest.approx(1.02)
-    first = enc.on_timer(1.02)
-    assert [wire.parse(p, max_datagram=1400).sbn for p in first] == [0]
+    # Block 0 closes at 1.020, but its repair waits for the other block of its round, then the
+    # two blocks' repair packets go interleaved.
+    assert enc.on_timer(1.02) == [] and enc.stats.short_blocks == 1
     assert enc.next_deadline() == pytest.approx(1.03)
-    assert [wire.parse(p, max_datagram=1400).sbn for p in enc.on_timer(1.03)] == [1]
+    assert [wire.parse(p, max_datagram=1400).sbn for p in enc.on_timer(1.03)] == [0, 1]
     assert enc.stats.short_blocks == 2
+
+
+def test_repair_of_a_round_sits_d_packets_apart_like_its_sources():
+    # Steady traffic: every block's packets, source and repair, are exactly D link positions
+    # apart, the layout the planner models with the D-step transition matrix.
+    k, m, depth = 6, 3, 4
+    enc = BlockEncoder(EncoderSettings(block_size=k, repair=m, interleave=depth), SESSION)
+    packets = send_all(enc, stream(random.Random(3), 3 * k * depth, (100, 100)))
+    positions: dict[int, list[int]] = {}
+    for i, p in enumerate(packets):
+        positions.setdefault(wire.parse(p, max_datagram=1400).sbn, []).append(i)
+    for where in positions.values():
+        assert len(where) == k + m
+        assert {b - a for a, b in zip(where, where[1:])} == {depth}
 
 
 def test_previous_k_tells_a_whole_lost_block_to_the_receiver_with_interleaving():

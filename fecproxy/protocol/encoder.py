@@ -188,7 +188,7 @@ class _Block:
 
     __slots__ = (
         "storage", "symbols", "width", "sbn", "base", "key", "class_name", "settings", "count", "symbol_len",
-        "content", "deadline", "previous_k", "k", "m", "length", "packets",
+        "content", "deadline", "previous_k", "k", "m", "length", "packets", "group", "lane",
     )
 
     def __init__(self, storage: memoryview, symbols: np.ndarray, sbn: int, key: int, class_name: str,
@@ -203,6 +203,30 @@ class _Block:
         self.previous_k = previous_k  # k of block SBN − 1 once that has closed, else 0
         self.k = self.m = self.length = 0  # set when the block closes
         self.packets: list[bytes] = []  # its repair packets, once computed
+        self.group: _Group | None = None
+        self.lane = 0
+
+
+class _Group:
+    """Blocks of one size class opened across its lanes in one round.  Their repair packets are
+    held until the last of them closes, then sent interleaved (repair j of each block in SBN order,
+    then j + 1): a block's repair packets then sit D link packets apart, as its source packets do,
+    so a burst of up to D·m packets costs each block at most m, repair included."""
+
+    __slots__ = ("blocks", "lanes", "open", "released")
+
+    def __init__(self) -> None:
+        self.blocks: list[_Block] = []
+        self.lanes: set[int] = set()
+        self.open = 0  # members not yet closed
+        self.released = False
+
+    def interleaved(self) -> list[bytes]:
+        lists = [block.packets for block in self.blocks if block.packets]
+        if len(lists) <= 1:
+            return lists[0] if lists else []
+        longest = max(len(packets) for packets in lists)
+        return [packets[j] for j in range(longest) for packets in lists if j < len(packets)]
 
 
 class BlockEncoder:
@@ -220,6 +244,7 @@ class BlockEncoder:
         self._lanes: dict[int, int] = {}  # per class: the lane of its next datagram
         self._carry: tuple[int, int] | None = None  # (SBN, k) of a closed block whose successor is not open yet
         self._spare: dict[tuple[int, int], list[tuple[memoryview, np.ndarray]]] = {}  # zeroed buffers by shape
+        self._groups: dict[int, _Group] = {}  # per class: the round its lanes are joining
 
     @property
     def settings(self) -> EncoderSettings:
@@ -240,6 +265,7 @@ class BlockEncoder:
         if (old.size_classes, old.interleave) != (settings.size_classes, settings.interleave):
             self._open.clear()
             self._lanes.clear()
+            self._groups.clear()
 
     def _buffer(self, rows: int, width: int) -> tuple[memoryview, np.ndarray]:
         # One bytearray, seen by the codec as a (k, width) array without a copy: the per-datagram
@@ -250,7 +276,7 @@ class BlockEncoder:
         storage = memoryview(bytearray(rows * width))
         return storage, np.frombuffer(storage, dtype=np.uint8).reshape(rows, width)
 
-    def _open_block(self, key: int, index: int, now: float) -> _Block:
+    def _open_block(self, key: int, index: int, now: float, lane: int = 0) -> _Block:
         settings = self._settings
         width = wire.SYMBOL_PREFIX_BYTES + settings.class_max_datagram(index)
         width += -width % 8  # whole uint64 words for the codec
@@ -263,6 +289,16 @@ class BlockEncoder:
         block = _Block(storage, symbols, sbn, key, settings.class_names[index], settings, now + settings.flush_interval, previous_k)
         self._open[key] = block
         self._by_sbn[sbn] = block
+        # A lane joins its class's current round unless it already has a block there or the
+        # round's first block has closed (which bounds how long a round's repair waits: at most
+        # the first block's flush deadline plus one flush interval).
+        group = self._groups.get(index)
+        if group is None or lane in group.lanes or group.blocks[0].k:
+            group = self._groups[index] = _Group()
+        group.blocks.append(block)
+        group.lanes.add(lane)
+        group.open += 1
+        block.group, block.lane = group, lane
         return block
 
     def send(self, datagram: bytes, flow: int, now: float) -> list[bytes]:
@@ -304,20 +340,21 @@ class BlockEncoder:
                     index = bisect_left(bounds, size)
                 if depth == 1:
                     key = index * MAX_INTERLEAVE
+                    lane = 0
                 else:
                     lane = lanes.get(index, 0)
                     lanes[index] = (lane + 1) % depth
                     key = index * MAX_INTERLEAVE + lane
                 block = blocks.get(key)
                 if block is None:
-                    block = self._open_block(key, index, now)
+                    block = self._open_block(key, index, now, lane)
                 elif size + prefix > block.width:  # opened before max_datagram grew: close it early
                     del blocks[key]
-                    self._retire(block)
                     deferred.append(block)
-                    sources = []
-                    pieces += (block.packets, sources)
-                    block = self._open_block(key, index, now)
+                    if self._retire(block):
+                        sources = []
+                        pieces += (block.group, sources)
+                    block = self._open_block(key, index, now, lane)
                 count = block.count
                 start = count * block.width + prefix
                 storage = block.storage
@@ -338,10 +375,10 @@ class BlockEncoder:
                     continue
                 sources.append(pack_source(flag_end, session, block.base | (count - 1), flow, block.previous_k) + datagram)
                 del blocks[key]
-                self._retire(block)
                 deferred.append(block)
-                sources = []
-                pieces += (block.packets, sources)
+                if self._retire(block):
+                    sources = []
+                    pieces += (block.group, sources)
                 if len(deferred) >= MAX_BLOCKS_PER_ENCODE:
                     self._encode(deferred)
                     deferred = []
@@ -362,11 +399,15 @@ class BlockEncoder:
             self._encode(deferred)
         if len(pieces) == 1:
             return sources
-        return [data for piece in pieces for data in piece]
+        out: list[bytes] = []
+        for piece in pieces:
+            out += piece if type(piece) is list else piece.interleaved()
+        return out
 
-    def _retire(self, block: _Block) -> None:
+    def _retire(self, block: _Block) -> bool:
         """Close a block's books (k, m after the §8.2 byte cap, counters, previous k for its
-        successor); its repair is computed by the caller, from its buffer."""
+        successor); its repair is computed by the caller, from its buffer.  True when this was
+        the last open block of its round: the round's repair packets are due now."""
         k = block.count
         settings = block.settings
         m = settings.repair_for(k)
@@ -395,6 +436,12 @@ class BlockEncoder:
             successor.previous_k = k  # its packets from now on tell the receiver this block's k
         elif successor_sbn == self._next_sbn:
             self._carry = (block.sbn, k)
+        group = block.group
+        group.open -= 1
+        if group.open:
+            return False
+        group.released = True
+        return True
 
     def _encode(self, blocks: list[_Block]) -> None:
         """Fill each set-aside block's ``packets`` with its repair packets: one codec call per
@@ -455,28 +502,26 @@ class BlockEncoder:
 
     def on_timer(self, now: float) -> list[bytes]:
         """Close every block whose flush deadline has passed, oldest SBN first."""
-        due = [block for block in self._by_sbn.values() if block.deadline <= now]
-        out: list[bytes] = []
-        for block in due:
-            out.extend(self._close(block))
-        return out
+        return self._close_all([block for block in self._by_sbn.values() if block.deadline <= now])
 
     def close(self) -> list[bytes]:
         """Shutdown: close every open block now, so its datagrams get their repair packets.
 
         The encoder stays usable; the next datagram opens a new block.
         """
-        out: list[bytes] = []
-        for block in list(self._by_sbn.values()):
-            out.extend(self._close(block))
-        return out
+        return self._close_all(list(self._by_sbn.values()))
 
     def _count_drop(self, reason: DropReason, count: int) -> None:
         self.stats.dropped[reason] = self.stats.dropped.get(reason, 0) + count
 
-    def _close(self, block: _Block) -> list[bytes]:
-        if self._open.get(block.key) is block:
-            del self._open[block.key]
-        self._retire(block)
-        self._encode([block])
-        return block.packets
+    def _close_all(self, blocks: list[_Block]) -> list[bytes]:
+        """Close these blocks early; returns the repair packets of the rounds this completes."""
+        out: list[bytes] = []
+        for block in blocks:
+            if self._open.get(block.key) is block:
+                del self._open[block.key]
+            done = self._retire(block)
+            self._encode([block])
+            if done:
+                out += block.group.interleaved()
+        return out
