@@ -21,6 +21,7 @@ from fecproxy.linkmodel.planner import (
     DEFAULT_MAX_OVERHEAD,
     DEFAULT_TARGET,
     DEFAULT_SHORT_BLOCK_RULE,
+    SENDER_MAX_INTERLEAVE,
     SHORT_BLOCK_RULES,
     Candidate,
     Plan,
@@ -38,6 +39,8 @@ from fecproxy.linkmodel.planner import (
 #: datagrams it saw or missed); ``--from-metrics`` reads these two.
 LINK_LOSS_GAUGE = "fecproxy_link_loss_ratio"
 LINK_BURST_GAUGE = "fecproxy_link_mean_burst_packets"
+#: The info metric whose labels tell the running block shape (k, m, interleave).
+INFO_METRIC = "fecproxy_info"
 #: A metrics page is a few kB; 1 MiB is far above any real page and bounds what we read.
 MAX_METRICS_PAGE_BYTES = 1 << 20
 #: Seconds to wait for the metrics page: a receiver on the same LAN answers in milliseconds.
@@ -59,6 +62,10 @@ EPILOG = (
     "When the rate cannot fill a block within the flush time, the sender closes it with k' < k "
     "datagrams and m' repair packets by its short-block rule (proportional: m' = ceil(m·k'/k), at least 1; "
     "full: m' = m); the figures are those of (k', m'), and the overhead budget applies to m'/k'. "
+    "With --mean-bytes and --max-bytes (the datagram sizes of the flow, or of one fec.size_classes class) "
+    "the byte overhead m'·(repair header + 3 + max)/(k'·(source header + mean)) is shown and can be "
+    "budgeted (--max-byte-overhead), and m' is cut as the sender cuts it to keep repair bytes at or below "
+    f"source bytes (RFC 6363 §8.2). Interleave depths go up to the sender's fec.interleave limit, {SENDER_MAX_INTERLEAVE}. "
     "Exit status: 0 with a recommendation (or in evaluation mode), 1 when no candidate meets the "
     "target within the budgets, 2 on bad input."
 )
@@ -70,7 +77,10 @@ class MetricsError(PlanError):
 
 #: Options without a default: absent from the namespace until given (argparse.SUPPRESS keeps
 #: "(default: None)" out of --help); :func:`_fill_unset` puts None back before use.
-_UNSET_OPTIONS = ("loss", "burst", "ge_p", "ge_r", "ge_loss_good", "ge_loss_bad", "from_metrics", "rate", "flush_ms", "k", "m")
+_UNSET_OPTIONS = (
+    "loss", "burst", "ge_p", "ge_r", "ge_loss_good", "ge_loss_bad", "from_metrics", "rate", "flush_ms", "k", "m",
+    "mean_bytes", "max_bytes", "max_byte_overhead",
+)
 
 
 def _fill_unset(args: argparse.Namespace) -> argparse.Namespace:
@@ -122,6 +132,11 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     )
     need.add_argument("--max-overhead", type=float, default=DEFAULT_MAX_OVERHEAD, help="largest m'/k' on the link (≤ 1, RFC 6363 §8.2)")
     need.add_argument("--target", type=float, default=DEFAULT_TARGET, help="residual datagram loss to reach")
+    need.add_argument("--mean-bytes", type=float, help="mean datagram size in bytes (with --max-bytes: byte overhead is modelled)")
+    need.add_argument("--max-bytes", type=int, help="longest datagram in bytes: every repair packet is this long plus headers")
+    need.add_argument(
+        "--max-byte-overhead", type=float, help="largest repair bytes / source bytes on the link (≤ 1, RFC 6363 §8.2); needs the sizes"
+    )
 
     codes = parser.add_argument_group("codes")
     codes.add_argument(
@@ -129,7 +144,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         default=",".join(str(k) for k in DEFAULT_K_VALUES),
         help="source block sizes to consider: a list such as 4,8,16 or ranges such as 8-24",
     )
-    codes.add_argument("--interleave", default="1", help="interleave depths D to consider, e.g. 1,2,4")
+    codes.add_argument(
+        "--interleave", default="1", help=f"interleave depths D to consider (the sender's fec.interleave, 1..{SENDER_MAX_INTERLEAVE}), e.g. 1,2,4"
+    )
     codes.add_argument("--k", type=int, help="evaluation mode: source packets per block of the one code to evaluate")
     codes.add_argument("--m", type=int, help="evaluation mode: repair packets per block of the one code to evaluate")
     parser.add_argument("--json", action="store_true", default=False, help="print JSON instead of a table")
@@ -181,8 +198,25 @@ def _pick(samples, name: str, select: dict[str, str]) -> float:
     return found[0][1]
 
 
+def running_code(samples, select: dict[str, str]) -> dict[str, int] | None:
+    """k, m and interleave of the daemon whose page this is, from its info metric; None if absent."""
+    found = [labels for n, labels, _ in samples if n == INFO_METRIC and all(labels.get(k) == v for k, v in select.items() if k in labels)]
+    if len(found) != 1:
+        return None
+    try:
+        return {key: int(found[0].get(key, "1")) for key in ("k", "m", "interleave")}
+    except ValueError:
+        return None
+
+
 def link_from_metrics(url: str, select: list[str], timeout: float = DEFAULT_METRICS_TIMEOUT) -> tuple[float, float]:
     """(average loss, mean burst) as a running receiver estimates them."""
+    loss, burst, _ = read_metrics(url, select, timeout)
+    return loss, burst
+
+
+def read_metrics(url: str, select: list[str], timeout: float = DEFAULT_METRICS_TIMEOUT) -> tuple[float, float, dict | None]:
+    """(average loss, mean burst, running code or None) from a running receiver's page."""
     wanted: dict[str, str] = {}
     for item in select:
         key, sep, value = item.partition("=")
@@ -209,7 +243,7 @@ def link_from_metrics(url: str, select: list[str], timeout: float = DEFAULT_METR
     if not math.isfinite(burst):
         # Loss measured but no burst yet: only possible with nothing lost, where any burst fits.
         burst = 1.0
-    return loss, burst
+    return loss, burst, running_code(samples, wanted)
 
 
 def channel_from_args(args: argparse.Namespace) -> GilbertElliott:
@@ -217,7 +251,8 @@ def channel_from_args(args: argparse.Namespace) -> GilbertElliott:
     if args.from_metrics:
         if args.loss is not None or args.burst is not None or any(v is not None for v in four.values()):
             raise PlanError("--from-metrics replaces --loss/--burst/--ge-*: give one or the other")
-        return channel_from_estimate(*link_from_metrics(args.from_metrics, args.metrics_select, args.metrics_timeout))
+        loss, burst, args.running = read_metrics(args.from_metrics, args.metrics_select, args.metrics_timeout)
+        return channel_from_estimate(loss, burst)
     if args.loss is None and args.burst is None and all(v is None for v in four.values()):
         raise PlanError("describe the link: --loss (and --burst), or --ge-p/--ge-r, or --from-metrics URL")
     return channel_from_figures(loss=args.loss, burst=args.burst, **four)
@@ -240,11 +275,15 @@ def _channel_dict(channel: GilbertElliott) -> dict:
 def _verdict(c: Candidate) -> str:
     if c.acceptable:
         return "ok"
-    misses = [name for name, ok in (("residual", c.meets_target), ("latency", c.within_latency), ("overhead", c.within_overhead)) if not ok]
+    checks = (
+        ("residual", c.meets_target), ("latency", c.within_latency), ("overhead", c.within_overhead),
+        ("bytes", c.within_byte_overhead),
+    )
+    misses = [name for name, ok in checks if not ok]
     return "misses " + ",".join(misses)
 
 
-def format_table(result: Plan) -> str:
+def format_table(result: Plan, running: dict | None = None) -> str:
     """The plan as a table.  Columns k' and m' (the block the sender really sends at this rate)
     appear only when some row's blocks are closed short by the flush timer."""
     req = result.request
@@ -255,15 +294,21 @@ def format_table(result: Plan) -> str:
         f"flush {req.flush_time * 1000:g} ms, max overhead {req.max_overhead:g}, target residual loss {req.target:g}",
         "",
     ]
+    if req.bytes_modelled:
+        budget = "" if req.max_byte_overhead is None else f", max byte overhead {req.max_byte_overhead:g}"
+        lines.insert(2, f"datagrams: mean {req.mean_bytes:g} bytes, longest {req.max_bytes} (repair symbols are that long){budget}")
     effective_head = " " + "k'".rjust(4) + " " + "m'".rjust(4) if short else ""
+    bytes_head = f" {'bytes_ovh':>9}" if req.bytes_modelled else ""
     lines.append(
-        f"{'':1} {'k':>4} {'m':>4}{effective_head} {'D':>3} {'overhead':>8} {'block_fail':>10} {'residual':>10} {'span_ms':>8}  verdict"
+        f"{'':1} {'k':>4} {'m':>4}{effective_head} {'D':>3} {'overhead':>8}{bytes_head} {'block_fail':>10} {'residual':>10} "
+        f"{'span_ms':>8}  verdict"
     )
     for c in result.candidates:
         mark = "*" if c is result.recommended else " "
         effective = f" {c.k_effective:>4} {c.m_effective:>4}" if short else ""
+        byte_cell = f" {c.byte_overhead:>9.3f}" if req.bytes_modelled else ""
         lines.append(
-            f"{mark} {c.k:>4} {c.m:>4}{effective} {c.depth:>3} {c.overhead:>8.3f} {c.block_failure:>10.3g} "
+            f"{mark} {c.k:>4} {c.m:>4}{effective} {c.depth:>3} {c.overhead:>8.3f}{byte_cell} {c.block_failure:>10.3g} "
             f"{c.residual_loss:>10.3g} {c.span * 1000:>8.1f}  {_verdict(c)}"
         )
     lines.append("")
@@ -274,12 +319,16 @@ def format_table(result: Plan) -> str:
             f"recommended (*): k={best.k} m={best.m} interleave D={best.depth}{sent} — overhead {best.overhead:.3f}, "
             f"residual loss {best.residual_loss:.3g}, block span {best.span * 1000:.1f} ms"
         )
+        keys = ", ".join(f"{key}: {value}" for key, value in best.config_keys().items())
+        lines.append(f"sender config: {keys}, fec.flush_ms: {req.flush_time * 1000:g}")
     else:
         lowest = min(result.candidates, key=lambda c: c.residual_loss)
         lines.append(
             f"no candidate meets residual loss {req.target:g} within the budgets; the lowest is {lowest.residual_loss:.3g} "
             f"at k={lowest.k} m={lowest.m} D={lowest.depth} — allow more overhead, latency or interleaving"
         )
+    if running:
+        lines.append(f"running now (from the metrics page): k={running['k']} m={running['m']} interleave D={running['interleave']}")
     lines.append("(each row: the fewest repair packets meeting the target for that k and D, else the most the overhead budget allows)")
     caps = {d: effective_k(max(req.k_values), req.rate, req.flush_time, d) for d in req.depths}
     capped = {d: cap for d, cap in caps.items() if any(k > cap for k in req.k_values)}
@@ -303,6 +352,8 @@ def _evaluate_one(args: argparse.Namespace, channel: GilbertElliott, depths: tup
     if len(depths) != 1:
         raise PlanError("evaluation mode evaluates one code: give a single --interleave depth")
     depth = depths[0]
+    if depth > SENDER_MAX_INTERLEAVE:
+        raise PlanError(f"interleave depth {depth} is more than the sender supports (fec.interleave ≤ {SENDER_MAX_INTERLEAVE})")
     flush = None
     if args.rate is not None:
         flush = (args.flush_ms if args.flush_ms is not None else args.latency_ms) / 1000.0
@@ -360,6 +411,9 @@ def main(args: argparse.Namespace) -> int:
             depths=depths,
             flush=None if args.flush_ms is None else args.flush_ms / 1000.0,
             short_block_repair=args.short_block_repair,
+            mean_bytes=args.mean_bytes,
+            max_bytes=args.max_bytes,
+            max_byte_overhead=args.max_byte_overhead,
         )
         result = plan(request)
     except (PlanError, ChannelConfigError) as exc:
@@ -378,12 +432,16 @@ def main(args: argparse.Namespace) -> int:
                     "target": request.target,
                     "candidates": [c.as_dict() for c in result.candidates],
                     "recommended": None if result.recommended is None else result.recommended.as_dict(),
+                    "mean_bytes": request.mean_bytes,
+                    "max_bytes": request.max_bytes,
+                    "max_byte_overhead": request.max_byte_overhead,
+                    "running": getattr(args, "running", None),
                 },
                 indent=2,
             )
         )
     else:
-        print(format_table(result))
+        print(format_table(result, running=getattr(args, "running", None)))
     return 0 if result.recommended is not None else 1
 
 

@@ -13,6 +13,12 @@ candidate codes in a fraction of a second.
   repair packets separately.  The chain starts in its stationary distribution.
 * Interleaving depth D: a block's packets sit D positions apart on the link, so the recursion steps
   with the D-step transition matrix T^D.
+  The sender lays blocks out that way (fec.interleave: D lanes per size class, a round's repair
+  packets interleaved too), and supports D up to :data:`SENDER_MAX_INTERLEAVE`; a plan offers no
+  deeper interleaving than that.
+* Bytes: repair packets are as long as the block's longest datagram, so with datagram sizes given
+  (mean, max) the byte overhead m'·(repair header + prefix + max) / k'·(source header + mean) is
+  reported and budgeted, and m' is cut as the sender's RFC 6363 §8.2 byte rule cuts it.
 * Short blocks: when the datagram rate cannot fill k datagrams before the sender's flush timer, a
   block closes with k' < k datagrams and gets m' repair packets by the sender's own short-block
   rule (:func:`fecproxy.repair_rule.repair_count`, the function the encoder calls), so the code
@@ -31,6 +37,8 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from fecproxy.linkmodel.loss_models import GilbertElliott
+from fecproxy.protocol import wire
+from fecproxy.protocol.encoder import MAX_INTERLEAVE, repair_byte_cap
 from fecproxy.protocol.repair_rule import DEFAULT_SHORT_BLOCK_REPAIR, SHORT_BLOCK_RULES, repair_count
 
 #: RFC 5510 §8.2: with GF(2^8) a block has at most 255 encoding symbols (source + repair).
@@ -51,6 +59,8 @@ DEFAULT_SHORT_BLOCK_RULE = DEFAULT_SHORT_BLOCK_REPAIR.value
 DEFAULT_LATENCY_BUDGET_S = 0.5
 DEFAULT_MAX_OVERHEAD = 0.5
 DEFAULT_TARGET = 1e-3
+#: The deepest interleaving the sender can apply (fec.interleave); the planner offers no more.
+SENDER_MAX_INTERLEAVE = MAX_INTERLEAVE
 #: Relative slack when comparing overheads and spans to budgets, so that m/k = 0.25 exactly
 #: meets a budget of 0.25 despite binary floating point.
 _BUDGET_SLACK = 1e-9
@@ -225,6 +235,9 @@ class PlanRequest:
     depths: tuple[int, ...] = (1,)
     flush: float | None = None  # seconds the sender keeps a block open; None = the latency budget
     short_block_repair: str = DEFAULT_SHORT_BLOCK_RULE  # the sender's fec.short_block_repair
+    mean_bytes: float | None = None  # mean datagram size of the flow (its size class); None = bytes not modelled
+    max_bytes: int | None = None  # longest datagram of the flow: the length of every repair symbol
+    max_byte_overhead: float | None = None  # repair bytes / source bytes on the link; None = no byte budget
 
     def __post_init__(self) -> None:
         if not (math.isfinite(self.rate) and self.rate > 0):
@@ -248,6 +261,26 @@ class PlanRequest:
                 )
         for depth in self.depths:
             _check_code(1, 0, depth)
+            if depth > SENDER_MAX_INTERLEAVE:
+                raise PlanError(
+                    f"interleave depth {depth} is more than the sender supports (fec.interleave ≤ {SENDER_MAX_INTERLEAVE})"
+                )
+        if (self.mean_bytes is None) != (self.max_bytes is None):
+            raise PlanError("datagram sizes need both the mean and the longest size")
+        if self.mean_bytes is not None:
+            if not (math.isfinite(self.mean_bytes) and 0 <= self.mean_bytes <= self.max_bytes <= wire.MAX_DATAGRAM_LIMIT):
+                raise PlanError(
+                    f"datagram sizes must satisfy 0 ≤ mean ≤ max ≤ {wire.MAX_DATAGRAM_LIMIT} bytes, "
+                    f"got mean {self.mean_bytes!r} and max {self.max_bytes!r}"
+                )
+        if self.max_byte_overhead is not None:
+            if self.mean_bytes is None:
+                raise PlanError("a byte overhead budget needs the datagram sizes (mean and max bytes)")
+            if not (0 <= self.max_byte_overhead <= MAX_OVERHEAD):
+                raise PlanError(
+                    f"max byte overhead must be in [0, {MAX_OVERHEAD:g}] (RFC 6363 §8.2: repair bytes never above "
+                    f"the source bytes), got {self.max_byte_overhead!r}"
+                )
         if self.flush is not None and not (math.isfinite(self.flush) and self.flush > 0):
             raise PlanError(f"flush time must be > 0 seconds, got {self.flush!r}")
         if self.short_block_repair not in SHORT_BLOCK_RULES:
@@ -258,6 +291,26 @@ class PlanRequest:
     @property
     def flush_time(self) -> float:
         return self.latency_budget if self.flush is None else self.flush
+
+    @property
+    def bytes_modelled(self) -> bool:
+        return self.mean_bytes is not None
+
+    def byte_capped(self, k_effective: int, m_effective: int) -> int:
+        """m' as the sender's RFC 6363 §8.2 byte rule leaves it for a block of mean-sized
+        datagrams with one of the longest (the symbol length); unchanged without sizes."""
+        if self.mean_bytes is None:
+            return m_effective
+        prefix = wire.SYMBOL_PREFIX_BYTES
+        content = int(k_effective * (prefix + self.mean_bytes))
+        return repair_byte_cap(m_effective, content, prefix + self.max_bytes)
+
+    def byte_overhead(self, k_effective: int, m_effective: int) -> float | None:
+        """Repair bytes per source byte on the link, headers included; None without sizes."""
+        if self.mean_bytes is None:
+            return None
+        repair = m_effective * (wire.REPAIR_HEADER_BYTES + wire.SYMBOL_PREFIX_BYTES + self.max_bytes)
+        return repair / (k_effective * (wire.SOURCE_HEADER_BYTES + self.mean_bytes))
 
 
 @dataclass(frozen=True)
@@ -276,6 +329,8 @@ class Candidate:
     meets_target: bool
     within_latency: bool
     within_overhead: bool
+    byte_overhead: float | None = None  # repair bytes / source bytes, when datagram sizes are given
+    within_byte_overhead: bool = True
 
     @property
     def overhead(self) -> float:
@@ -289,7 +344,11 @@ class Candidate:
 
     @property
     def acceptable(self) -> bool:
-        return self.meets_target and self.within_latency and self.within_overhead
+        return self.meets_target and self.within_latency and self.within_overhead and self.within_byte_overhead
+
+    def config_keys(self) -> dict[str, int]:
+        """The sender's config keys that apply this row (fec.*)."""
+        return {"fec.block_size": self.k, "fec.repair": self.m, "fec.interleave": self.depth}
 
     def as_dict(self) -> dict:
         return {
@@ -305,7 +364,10 @@ class Candidate:
             "meets_target": self.meets_target,
             "within_latency": self.within_latency,
             "within_overhead": self.within_overhead,
+            "byte_overhead": self.byte_overhead,
+            "within_byte_overhead": self.within_byte_overhead,
             "acceptable": self.acceptable,
+            "config": self.config_keys(),
         }
 
 
@@ -324,6 +386,8 @@ def _cost(c: Candidate) -> tuple:
 def make_candidate(request: PlanRequest, k: int, m: int, figures: CodeFigures) -> Candidate:
     """A plan row for configured (k, m) whose effective code (k', m') has ``figures``."""
     span = block_span(k, figures.k, request.rate, request.flush_time, figures.depth)
+    byte_overhead = request.byte_overhead(figures.k, figures.m)
+    budget = request.max_byte_overhead
     return Candidate(
         k=k,
         k_effective=figures.k,
@@ -336,6 +400,8 @@ def make_candidate(request: PlanRequest, k: int, m: int, figures: CodeFigures) -
         meets_target=figures.residual_loss <= request.target,
         within_latency=span <= request.latency_budget * (1 + _BUDGET_SLACK),
         within_overhead=figures.overhead <= request.max_overhead + _BUDGET_SLACK,
+        byte_overhead=byte_overhead,
+        within_byte_overhead=budget is None or byte_overhead is None or byte_overhead <= budget + _BUDGET_SLACK,
     )
 
 
@@ -355,8 +421,12 @@ def plan(request: PlanRequest) -> Plan:
         for k in request.k_values:
             k_eff = effective_k(k, request.rate, request.flush_time, depth)
             max_m = min(math.floor(k * request.max_overhead + _BUDGET_SLACK), MAX_BLOCK_PACKETS - k)
-            m_eff = {m: repair_count(k, m, k_eff, rule) for m in range(max_m + 1)}
+            m_eff = {m: request.byte_capped(k_eff, repair_count(k, m, k_eff, rule)) for m in range(max_m + 1)}
             in_budget = [m for m in range(max_m + 1) if m_eff[m] <= k_eff * request.max_overhead + _BUDGET_SLACK]
+            if request.max_byte_overhead is not None:
+                in_budget = [
+                    m for m in in_budget if request.byte_overhead(k_eff, m_eff[m]) <= request.max_byte_overhead + _BUDGET_SLACK
+                ] or [0]
             options = evaluate_repair_range(request.channel, k_eff, max(m_eff[m] for m in in_budget), depth)
             chosen = next((m for m in in_budget if options[m_eff[m]].residual_loss <= request.target), in_budget[-1])
             figures = options[m_eff[chosen]]
