@@ -208,3 +208,51 @@ def test_prometheus_text_parser():
     samples = parse_prometheus_text('a_b{x="1",y="q\\"}"} 3.5\n# c\nbad line\nz NaN\nw 2 1700000000\n')
     assert samples[0] == ("a_b", {"x": "1", "y": 'q\\"}'}, 3.5)
     assert math.isnan(samples[1][2]) and samples[2] == ("w", {}, 2.0)
+
+
+# -- interleave limit, bytes, config keys ------------------------------------------------------------
+
+
+def test_plan_offers_no_interleave_deeper_than_the_sender_supports(capsys):
+    from fecproxy.protocol.encoder import MAX_INTERLEAVE
+
+    code, _, err = run_plan(capsys, "--loss", "0.05", "--burst", "4", "--rate", "500", "--interleave", f"1,{MAX_INTERLEAVE + 1}")
+    assert code == 2 and "fec.interleave" in err
+    code, _, err = run_plan(capsys, "--loss", "0.05", "--k", "8", "--m", "2", "--interleave", f"{MAX_INTERLEAVE + 1}")
+    assert code == 2 and "fec.interleave" in err
+
+
+def test_recommendation_names_the_sender_config_keys(capsys):
+    code, out, _ = run_plan(capsys, "--loss", "0.05", "--burst", "3", "--rate", "2000", "--interleave", "1,4", "--max-overhead", "0.5")
+    assert code == 0
+    line = next(x for x in out.splitlines() if x.startswith("sender config:"))
+    assert "fec.block_size:" in line and "fec.repair:" in line and "fec.interleave:" in line and "fec.flush_ms:" in line
+    code, out, _ = run_plan(capsys, "--loss", "0.05", "--burst", "3", "--rate", "2000", "--interleave", "1,4", "--json")
+    best = json.loads(out)["recommended"]
+    assert best["config"] == {"fec.block_size": best["k"], "fec.repair": best["m"], "fec.interleave": best["depth"]}
+
+
+def test_byte_overhead_budget_and_the_senders_byte_cut(capsys):
+    # Mean 100 bytes, longest 1200: a repair packet is ~10 source packets' bytes.  Byte overhead
+    # m'·(12 + 3 + 1200)/(k'·(12 + 100)); the sender's §8.2 byte rule allows m' ≤ k'·103/1203.
+    args = ("--loss", "0.02", "--rate", "1000", "--k-values", "16,32", "--mean-bytes", "100", "--max-bytes", "1200", "--json")
+    code, out, _ = run_plan(capsys, *args)
+    rows = json.loads(out)["candidates"]
+    for row in rows:
+        assert row["byte_overhead"] == pytest.approx(row["m_effective"] * 1215 / (row["k_effective"] * 112))
+        assert row["m_effective"] <= row["k_effective"] * 103 // 1203
+    code, out, _ = run_plan(capsys, *args, "--max-byte-overhead", "0.5")
+    for row in json.loads(out)["candidates"]:
+        assert row["byte_overhead"] <= 0.5 + 1e-9
+    code, _, err = run_plan(capsys, "--loss", "0.02", "--rate", "1000", "--max-byte-overhead", "0.5")
+    assert code == 2 and "sizes" in err
+
+
+INFO_PAGE = CANNED_PAGE.replace("fecproxy_other_total 12", 'fecproxy_info{interleave="4",k="16",m="4",role="receiver",version="x"} 1.0')
+
+
+@pytest.mark.parametrize("metrics_url", [INFO_PAGE], indirect=True)
+def test_from_metrics_shows_the_running_code(capsys, metrics_url):
+    code, out, err = run_plan(capsys, "--from-metrics", metrics_url, "--metrics-select", "direction=forward", "--rate", "500")
+    assert code in (0, 1), err
+    assert "running now (from the metrics page): k=16 m=4 interleave D=4" in out
