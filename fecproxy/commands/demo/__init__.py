@@ -161,8 +161,12 @@ async def run_demo(options: DemoOptions, out=None) -> DemoResult:
                 await receiver.stop()
                 blocks = tap.finish()
                 receiver_stats = receiver.decoder.stats
+                classes = {
+                    name: (c.source_bytes, c.repair_bytes, c.source_packets, c.repair_packets)
+                    for name, c in sender.encoder.stats.classes.items()
+                }
                 return _result(
-                    options, channel, ran_for, station, sink, tap, blocks, receiver_stats, stop_early.is_set()
+                    options, channel, ran_for, station, sink, tap, blocks, receiver_stats, stop_early.is_set(), classes
                 )
             finally:
                 if stop_metrics is not None:
@@ -217,7 +221,7 @@ async def _settle(station: Station, sink: Sink, options: DemoOptions, stop_early
             await trio.sleep(SETTLE_POLL_S)
 
 
-def _result(options, channel, ran_for, station, sink, tap, blocks, receiver_stats, interrupted) -> DemoResult:
+def _result(options, channel, ran_for, station, sink, tap, blocks, receiver_stats, interrupted, classes) -> DemoResult:
     seen_camera = sink.seen[STREAM_CAMERA]
     complete = without = 0
     for seqs in station.image_chunks.values():
@@ -254,6 +258,7 @@ def _result(options, channel, ran_for, station, sink, tap, blocks, receiver_stat
         receiver_unrecovered=receiver_stats.unrecovered,
         blocks=blocks,
         interrupted=interrupted,
+        classes=classes,
     )
 
 

@@ -158,6 +158,9 @@ class DemoResult:
     receiver_recovered: int
     receiver_unrecovered: int
     blocks: Counter = field(default_factory=Counter)
+    #: Per size class of the sender (name → (source bytes, repair bytes, source packets, repair
+    #: packets) on the link): small telemetry is not padded to image-sized repair symbols.
+    classes: dict = field(default_factory=dict)
     interrupted: bool = False
 
     @property
@@ -215,6 +218,16 @@ def format_summary(r: DemoResult) -> str:
             f"{fmt_bytes(on_air)} (+{fmt_percent(ratio(on_air - r.app_bytes, r.app_bytes))}: "
             f"repair {fmt_bytes(r.repair_wire_bytes)}, headers {fmt_bytes(r.source_wire_bytes - r.app_bytes)})",
         ),
+        *[
+            row(
+                f"  size class {name}" if index else f"by size class: {name}",
+                "",
+                f"repair {fmt_bytes(repair_bytes)} for source {fmt_bytes(source_bytes)} "
+                f"(+{fmt_percent(ratio(repair_bytes, source_bytes))} bytes, +{fmt_percent(ratio(repair_packets, source_packets))} packets)",
+            )
+            for index, (name, (source_bytes, repair_bytes, source_packets, repair_packets)) in enumerate(r.classes.items())
+            if source_packets
+        ],
         row("delay of rebuilt datagrams", "–", delay),
         row(
             "planner's prediction",
