@@ -62,6 +62,8 @@ def test_output_fills_in_defaults(capsys, tmp_path):
         "short_block_repair": "proportional",
         "allow_repair_above_source": False,
         "adapt": None,
+        "interleave": 1,
+        "size_classes": [256],
     }
     assert effective["link"] == {"bind": "127.0.0.1:0", "peer": "127.0.0.1:7000"}
     assert effective["forward"] is None and effective["metrics"] == {"listen": None}

@@ -376,7 +376,7 @@ def _run_to_exit(config_path: Path, timeout: float = STARTUP_TIMEOUT) -> subproc
 
 
 def test_invalid_config_exits_2_with_the_message(tmp_path):
-    document = receiver_config((LOOPBACK, 9), block_size=10, repair=20)
+    document = receiver_config((LOOPBACK, 9), block_size=10, repair=20, allow_repair_above_source=False)
     document["fec"]["flsh_ms"] = 5
     path = write_config(tmp_path / "bad.yaml", document)
     result = _run_to_exit(path)

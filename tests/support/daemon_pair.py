@@ -268,12 +268,19 @@ def write_config(path: Path, document: dict) -> Path:
     return path
 
 
+#: One size class and no RFC 6363 §8.2 byte cut: these tests read the link as one stream of
+#: block-aligned packets (link packet i is ESI i mod n of block i // n) whatever the datagram
+#: sizes, so every block must carry its m repair packets (tests/test_interleave_classes.py covers
+#: the classes and the byte cut).
+ONE_CLASS = {"size_classes": [], "allow_repair_above_source": True}
+
+
 def sender_config(peer: tuple[str, int], **fec) -> dict:
     return {
         "role": "sender",
         "listen": f"{LOOPBACK}:0",
         "link": {"bind": f"{LOOPBACK}:0", "peer": f"{peer[0]}:{peer[1]}"},
-        "fec": {"block_size": 16, "repair": 4, "flush_ms": 20, **fec},
+        "fec": {"block_size": 16, "repair": 4, "flush_ms": 20, **ONE_CLASS, **fec},
         "metrics": {"listen": f"{LOOPBACK}:0"},
         "log": {"level": "info", "format": "text"},
     }
@@ -284,7 +291,7 @@ def receiver_config(forward: tuple[str, int], **fec) -> dict:
         "role": "receiver",
         "forward": f"{forward[0]}:{forward[1]}",
         "link": {"bind": f"{LOOPBACK}:0"},
-        "fec": {"block_size": 16, "repair": 4, "flush_ms": 20, **fec},
+        "fec": {"block_size": 16, "repair": 4, "flush_ms": 20, **ONE_CLASS, **fec},
         "metrics": {"listen": f"{LOOPBACK}:0"},
         "log": {"level": "info", "format": "text"},
     }
