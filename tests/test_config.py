@@ -719,3 +719,21 @@ def test_rule_agrees_with_the_encoder():
 def test_repair_for_rejects_impossible_block_sizes(k_actual):
     with pytest.raises(ValueError, match="k_actual must be an integer 1..16"):
         FecSection().repair_for(k_actual)
+
+
+def test_interleave_and_size_classes():
+    config = parse_config(edited(SENDER, fec__interleave=4, fec__size_classes=[64, 512]))
+    assert (config.fec.interleave, config.fec.size_classes) == (4, (64, 512))
+    assert parse_config(edited(SENDER, fec__size_classes=[])).fec.size_classes == ()
+    assert parse_config(config.effective()) == config
+    for bad, path in (
+        (dict(fec__interleave=0), "fec.interleave"),
+        (dict(fec__interleave=cfg.MAX_INTERLEAVE + 1), "fec.interleave"),
+        (dict(fec__size_classes=[512, 64]), "fec.size_classes"),
+        (dict(fec__size_classes=[0]), "fec.size_classes"),
+        (dict(fec__size_classes=256), "fec.size_classes"),
+        (dict(fec__size_classes=[1, 2, 3, 4, 5]), "fec.size_classes"),
+        (dict(fec__size_classes=[True]), "fec.size_classes"),
+    ):
+        messages = errors_of(edited(SENDER, **bad))
+        assert len(messages) == 1 and path in messages[0], messages
