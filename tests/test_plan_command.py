@@ -234,13 +234,17 @@ def test_recommendation_names_the_sender_config_keys(capsys):
 
 def test_byte_overhead_budget_and_the_senders_byte_cut(capsys):
     # Mean 100 bytes, longest 1200: a repair packet is ~10 source packets' bytes.  Byte overhead
-    # m'·(12 + 3 + 1200)/(k'·(12 + 100)); the sender's §8.2 byte rule allows m' ≤ k'·103/1203.
+    # m'·(R + P + 1200)/(k'·(S + 100)) with R, S the repair and source headers and P the symbol
+    # prefix; the sender's §8.2 byte rule allows m' ≤ k'·(P + 100)/(P + 1200).
+    from fecproxy.protocol import wire
+
+    head_r, head_s, prefix = wire.REPAIR_HEADER_BYTES, wire.SOURCE_HEADER_BYTES, wire.SYMBOL_PREFIX_BYTES
     args = ("--loss", "0.02", "--rate", "1000", "--k-values", "16,32", "--mean-bytes", "100", "--max-bytes", "1200", "--json")
     code, out, _ = run_plan(capsys, *args)
     rows = json.loads(out)["candidates"]
     for row in rows:
-        assert row["byte_overhead"] == pytest.approx(row["m_effective"] * 1215 / (row["k_effective"] * 112))
-        assert row["m_effective"] <= row["k_effective"] * 103 // 1203
+        assert row["byte_overhead"] == pytest.approx(row["m_effective"] * (head_r + prefix + 1200) / (row["k_effective"] * (head_s + 100)))
+        assert row["m_effective"] <= row["k_effective"] * (prefix + 100) // (prefix + 1200)
     code, out, _ = run_plan(capsys, *args, "--max-byte-overhead", "0.5")
     for row in json.loads(out)["candidates"]:
         assert row["byte_overhead"] <= 0.5 + 1e-9
