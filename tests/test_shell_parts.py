@@ -7,6 +7,7 @@ Sockets only on 127.0.0.1; no timing assertions.
 from __future__ import annotations
 
 import logging
+import math
 import socket
 import sys
 import urllib.request
@@ -112,6 +113,8 @@ class StandInDaemon:
     def loss_estimate(self):
         return (0.05, 2.0)
 
+    received_code = (16, 4)
+
 
 def test_collector_reads_only_the_daemon_view_and_serve_exposes_it():
     registry, _ = build_registry(StandInDaemon())
@@ -127,6 +130,20 @@ def test_collector_reads_only_the_daemon_view_and_serve_exposes_it():
     assert all(f'reason="{reason}"' in text for reason in DropReason)
     assert 'fecproxy_info{k="8",m="2",role="receiver"' in text
     assert "fecproxy_link_loss_ratio 0.05" in text
+    assert "fecproxy_received_code_k 16.0" in text and "fecproxy_received_code_m 4.0" in text
+    assert "_created" not in text  # no creation-time series beside the counters and the histogram
+
+
+def test_link_and_code_gauges_are_present_as_nan_before_traffic():
+    """An idle daemon exposes its estimate and the peer's code as NaN, not by their absence."""
+    idle = StandInDaemon()
+    idle.loss_estimate = lambda: None
+    idle.received_code = (None, None)
+    registry, _ = build_registry(idle)
+    values = {sample.name: sample.value for family in registry.collect() for sample in family.samples}
+    for name in ("fecproxy_link_loss_ratio", "fecproxy_link_mean_burst_packets",
+                 "fecproxy_received_code_k", "fecproxy_received_code_m"):
+        assert math.isnan(values[name]), name
 
 
 # ------------------------------------------------------------------------------ reload

@@ -140,6 +140,12 @@ class Daemon:
     def flow_count(self) -> int:
         return len(self.flows)
 
+    @property
+    def received_code(self) -> tuple[int | None, int | None]:
+        """(k, m) of the peer's code as seen in its repair packets; (None, None) before any."""
+        code = self.decoder.received_code
+        return code.k, code.m
+
     def loss_estimate(self) -> tuple[float, float] | None:
         estimate = self.estimator.estimate()
         if estimate.samples == 0:

@@ -1,0 +1,53 @@
+"""The code the peer sends with, as its repair packets show it: k and m of the blocks received.
+
+A receiver is never told the peer's configured k and m; it sees them in repair packets (each
+carries its block's k, and its ESI k..k+m−1).  An operator comparing the two sides needs that
+figure, so the decoder keeps it here, at O(1) per repair packet.
+
+What is kept: the code of the largest block among the recent ones.  Blocks the peer's flush timer
+closed early carry a shortened k' (and m' = ceil(m·k'/k)); at low rates they alternate with full
+blocks, and showing whichever came last would flicker.  So a smaller block replaces the figure
+only once the figure is CODE_WINDOW_BLOCKS blocks old (the peer then sends nothing larger, e.g.
+after a reload); a block of equal or larger k replaces it at once (so a change of m is followed).
+m is the highest repair ESI seen in that block − k + 1: a lower bound if its last repair packets
+were lost.
+"""
+
+from __future__ import annotations
+
+from fecproxy.protocol.wire import SBN_MODULUS
+
+#: Blocks after which a smaller block's code replaces the figure: long enough to span several
+#: flush-closed blocks between full ones, short enough (a few seconds at telemetry rates) to follow
+#: a peer whose k was lowered (common practice, no source).
+CODE_WINDOW_BLOCKS = 64
+
+
+class ReceivedCode:
+    """``k`` and ``m`` of the peer's code as seen in repair packets; None before any."""
+
+    __slots__ = ("k", "m", "_sbn")
+
+    def __init__(self) -> None:
+        self.reset()
+
+    def reset(self) -> None:
+        """A new peer session: what the old one sent says nothing about the new one."""
+        self.k: int | None = None
+        self.m: int | None = None
+        self._sbn: int | None = None
+
+    def note(self, sbn: int, k: int, esi: int) -> None:
+        """A repair packet of block ``sbn`` with ``k`` source symbols and ESI ``esi`` (≥ k)."""
+        m = esi - k + 1
+        if sbn == self._sbn:
+            if k == self.k and m > self.m:
+                self.m = m
+            return
+        if self._sbn is not None:
+            ahead = (sbn - self._sbn) % SBN_MODULUS
+            if ahead >= SBN_MODULUS // 2:
+                return  # an older block arriving late
+            if k < self.k and ahead <= CODE_WINDOW_BLOCKS:
+                return  # a short block among full ones
+        self.k, self.m, self._sbn = k, m, sbn
