@@ -26,15 +26,17 @@ def test_short_blocks_among_full_ones_do_not_flicker_the_figure():
     code.note(1, 16, 19)
     code.note(2, 3, 3)  # a block the peer's flush timer closed with k'=3, m'=1
     assert (code.k, code.m) == (16, 4)
-    code.note(3, 16, 17)  # a full block with fewer repair packets (m lowered): followed at once
-    assert (code.k, code.m) == (16, 2)
+    code.note(3, 16, 17)  # a full block whose last repair packets were lost (or are still coming)
+    assert (code.k, code.m) == (16, 4)
 
 
 def test_a_smaller_code_is_taken_once_the_larger_figure_is_old():
     code = ReceivedCode()
     code.note(1, 16, 19)
-    code.note(1 + CODE_WINDOW_BLOCKS + 1, 8, 9)
+    code.note(1 + CODE_WINDOW_BLOCKS + 1, 8, 9)  # the peer lowered k
     assert (code.k, code.m) == (8, 2)
+    code.note(1 + 2 * CODE_WINDOW_BLOCKS + 2, 8, 8)  # ... and later m
+    assert (code.k, code.m) == (8, 1)
 
 
 def test_late_blocks_and_wraparound():
@@ -42,8 +44,8 @@ def test_late_blocks_and_wraparound():
     code.note(SBN_MODULUS - 1, 16, 19)
     code.note(SBN_MODULUS - 2, 4, 4)  # older block, late
     assert (code.k, code.m) == (16, 4)
-    code.note(0, 16, 16)  # the next block after the wrap
-    assert (code.k, code.m) == (16, 1)
+    code.note(0, 16, 20)  # the next block after the wrap, with one more repair packet
+    assert (code.k, code.m) == (16, 5)
 
 
 def test_decoder_reports_the_encoders_code():

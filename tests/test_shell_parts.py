@@ -165,6 +165,17 @@ def test_reload_takes_tunables_and_keeps_what_needs_a_restart():
     assert all(getattr(kept, key) == getattr(running, key) for key in RESTART_KEYS)
 
 
+def test_reload_reports_log_and_flow_table_size_as_needing_a_restart():
+    """Logging is set up once and the flow table built at its size once: a reload says so, and
+    the running config keeps showing what is in force."""
+    running = parse_config_text(SENDER.format(k=16))
+    new = parse_config_text(SENDER.format(k=16) + "log: {level: debug}\nflows: {max: 100, idle_timeout_s: 60}\n")
+    assert needs_restart(running, new) == ["log", "flows.max"]
+    kept = keep_fixed(running, new)
+    assert kept.log == running.log and kept.flows.max == running.flows.max
+    assert kept.flows.idle_timeout_s == 60  # applied
+
+
 def test_reload_without_a_config_file_is_rejected_with_a_reason(tmp_path):
     with pytest.raises(ReloadRejected, match="without a config file"):
         read_new_config(None)

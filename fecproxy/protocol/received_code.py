@@ -4,13 +4,13 @@ A receiver is never told the peer's configured k and m; it sees them in repair p
 carries its block's k, and its ESI k..k+m−1).  An operator comparing the two sides needs that
 figure, so the decoder keeps it here, at O(1) per repair packet.
 
-What is kept: the code of the largest block among the recent ones.  Blocks the peer's flush timer
-closed early carry a shortened k' (and m' = ceil(m·k'/k)); at low rates they alternate with full
-blocks, and showing whichever came last would flicker.  So a smaller block replaces the figure
-only once the figure is CODE_WINDOW_BLOCKS blocks old (the peer then sends nothing larger, e.g.
-after a reload); a block of equal or larger k replaces it at once (so a change of m is followed).
-m is the highest repair ESI seen in that block − k + 1: a lower bound if its last repair packets
-were lost.
+What is kept: the largest code among the recent blocks.  Blocks the peer's flush timer closed
+early carry a shortened k' (and m' = ceil(m·k'/k)), and a block whose last repair packets were
+lost shows too small an m; at low rates or on a lossy link those alternate with full blocks, and
+showing whichever came last would flicker.  So a block with a larger k, or the same k and at
+least the same m, replaces the figure at once; a smaller one only once the figure is
+CODE_WINDOW_BLOCKS blocks old (the peer then sends nothing larger, e.g. after it lowered k or m).
+m is the highest repair ESI seen in the block − k + 1.
 """
 
 from __future__ import annotations
@@ -48,6 +48,6 @@ class ReceivedCode:
             ahead = (sbn - self._sbn) % SBN_MODULUS
             if ahead >= SBN_MODULUS // 2:
                 return  # an older block arriving late
-            if k < self.k and ahead <= CODE_WINDOW_BLOCKS:
-                return  # a short block among full ones
+            if (k, m) < (self.k, self.m) and ahead <= CODE_WINDOW_BLOCKS:
+                return  # a short block, or a block whose last repair packets are lost or still to come
         self.k, self.m, self._sbn = k, m, sbn
