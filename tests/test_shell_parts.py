@@ -181,3 +181,35 @@ def test_reload_without_a_config_file_is_rejected_with_a_reason(tmp_path):
         read_new_config(None)
     with pytest.raises(ReloadRejected, match="cannot read"):
         read_new_config(tmp_path / "missing.yaml")
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="reads net.core.rmem_max (Linux)")
+def test_a_buffer_the_kernel_caps_is_reported_with_the_sysctl_to_raise(monkeypatch):
+    rmem_max = int(Path("/proc/sys/net/core/rmem_max").read_text())
+    monkeypatch.setattr(udp, "_reported_caps", set())
+    stream = StringIO()
+    logs.setup_logging("info", "text", stream)
+    try:
+        sock = udp.open_udp_socket(LOOPBACK, 0, receive_buffer=2 * rmem_max, purpose="link.bind")
+        try:
+            assert udp.granted_buffer(sock, "receive") == rmem_max  # socket(7): capped at rmem_max
+        finally:
+            sock.close()
+        udp.open_udp_socket(LOOPBACK, 0, receive_buffer=2 * rmem_max).close()  # reported once only
+    finally:
+        logs.setup_logging()
+    lines = [line for line in stream.getvalue().splitlines() if "socket_buffer_capped" in line]
+    assert len(lines) == 1
+    line = lines[0]
+    assert "level=warning" in line and "socket=link.bind" in line and "key=sockets.receive_buffer_bytes" in line
+    assert f"asked={2 * rmem_max}" in line and f"granted={rmem_max}" in line and "net.core.rmem_max" in line
+
+
+def test_a_buffer_within_the_cap_is_granted_in_full_and_not_reported(monkeypatch):
+    monkeypatch.setattr(udp, "_reported_caps", set())
+    sock = udp.open_udp_socket(LOOPBACK, 0, receive_buffer=65536, send_buffer=65536)
+    try:
+        assert udp.granted_buffer(sock, "receive") == 65536 and udp.granted_buffer(sock, "send") == 65536
+    finally:
+        sock.close()
+    assert not udp._reported_caps

@@ -161,7 +161,7 @@ class Daemon:
         metrics = None
         key, address = "link.bind", cfg.link.bind
         try:
-            self._link_sock = open_udp_socket(cfg.link.bind.host, cfg.link.bind.port, **buffers)
+            self._link_sock = open_udp_socket(cfg.link.bind.host, cfg.link.bind.port, **buffers, purpose="link.bind")
             self._link_writer = DatagramWriter(self._link_sock)
             self.link_address = self._link_sock.getsockname()
             if cfg.link.peer is not None:
@@ -169,7 +169,7 @@ class Daemon:
                 self.peer = resolve(cfg.link.peer.host, cfg.link.peer.port, self._link_sock.family)
             if cfg.role == "sender":
                 key, address = "listen", cfg.listen
-                self._app_sock = open_udp_socket(cfg.listen.host, cfg.listen.port, **buffers)
+                self._app_sock = open_udp_socket(cfg.listen.host, cfg.listen.port, **buffers, purpose="listen")
                 self._app_writer = DatagramWriter(self._app_sock)
                 self.listen_address = self._app_sock.getsockname()
             else:
