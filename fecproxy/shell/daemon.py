@@ -96,6 +96,7 @@ class Daemon:
         self.peer: tuple | None = None
         self.link_address: tuple | None = None
         self.listen_address: tuple | None = None
+        self._logged_code: tuple[int | None, int | None] = (None, None)  # the peer's code last logged
 
     # ------------------------------------------------------------ what metrics reads (DaemonView)
     @property
@@ -214,6 +215,10 @@ class Daemon:
                     nursery.start_soon(self._client_loop)
                 if signals is not None:
                     nursery.start_soon(self._signal_loop, signals)
+                if cfg.log.stats_interval_s:
+                    nursery.start_soon(self._stats_loop, cfg.log.stats_interval_s)
+                # k and m: the code this side sends with (on a receiver, its replies); the code it
+                # decodes is the peer's, known from its first repair packets (a "peer_code" line).
                 log_event(
                     log, logging.INFO, "started", version=__version__, role=str(cfg.role),
                     link=format_sockaddr(self.link_address),
@@ -221,6 +226,8 @@ class Daemon:
                     listen=format_sockaddr(self.listen_address),
                     forward=str(cfg.forward) if cfg.forward else "-",
                     k=cfg.fec.block_size, m=cfg.fec.repair, flush_ms=cfg.fec.flush_ms,
+                    sends="datagrams" if cfg.role == "sender" else "replies",
+                    decoding="peer's code unknown until traffic",
                     session=f"{self.session:08x}", metrics=self.metrics_port or "off",
                 )
                 task_status.started(self)
@@ -331,6 +338,9 @@ class Daemon:
                     self.peer = address
             await self._deliver(deliveries, now)
             self._reschedule()
+            code = self.decoder.received_code
+            if code.k != self._logged_code[0] or code.m != self._logged_code[1]:
+                self._log_peer_code(code.k, code.m)
 
     async def _timer_loop(self) -> None:
         while True:
@@ -381,6 +391,40 @@ class Daemon:
         self._reschedule()
         return True
 
+    def _log_peer_code(self, k: int | None, m: int | None) -> None:
+        """The code the peer sends with, as its repair packets show it: INFO the first time it is
+        known (per peer session), DEBUG when it changes later (an adapting peer changes m often)."""
+        first = self._logged_code[0] is None
+        self._logged_code = (k, m)
+        if k is not None:
+            log_event(log, logging.INFO if first else logging.DEBUG, "peer_code", k=k, m=m,
+                      detail="decoding the peer's blocks (k from its repair packets, m = highest repair ESI - k + 1)")
+
+    async def _stats_loop(self, interval: float) -> None:
+        """One INFO line every ``interval`` seconds with the counters since the previous line, so
+        a long run shows it is alive and what the link did without a metrics endpoint."""
+        previous = self._stats_snapshot()
+        while True:
+            await trio.sleep(interval)
+            now = self._stats_snapshot()
+            delta = {key: now[key] - previous[key] for key in now}
+            previous = now
+            expected = delta["lost"] + delta["received_source"]
+            log_event(
+                log, logging.INFO, "stats", interval_s=interval,
+                datagrams_in=delta["datagrams_in"], datagrams_out=delta["delivered"],
+                link_packets_in=delta["received_source"] + delta["received_repair"],
+                link_packets_out=delta["source_sent"] + delta["repair_sent"],
+                link_loss=f"{delta['lost'] / expected:.4f}" if expected else "-",
+                residual_loss=f"{delta['unrecovered'] / expected:.4f}" if expected else "-",
+                recovered=delta["recovered"], dropped=delta["dropped"], flows=len(self.flows),
+            )
+
+    def _stats_snapshot(self) -> dict[str, int]:
+        counts = self.summary()
+        counts["datagrams_in"] = self.encoder.stats.source_packets  # one source packet per datagram taken in
+        return counts
+
     def _next_deadline(self) -> float:
         deadlines = [d for d in (self.encoder.next_deadline(), self.decoder.next_deadline(), self.flows.next_deadline()) if d is not None]
         return min(deadlines) if deadlines else math.inf
@@ -412,6 +456,7 @@ class Daemon:
         elif kind is Dropped:
             log_event(log, logging.DEBUG, "dropped", reason=event.reason, detail=event.detail)
         elif kind is SessionStarted:
+            self._logged_code = (None, None)  # a new peer session: its code is logged afresh
             log_event(log, logging.INFO, "peer_session", session=f"{event.session:08x}",
                       previous=f"{event.previous:08x}" if event.previous is not None else "-")
 
