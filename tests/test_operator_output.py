@@ -15,6 +15,10 @@ import time
 import urllib.request
 from pathlib import Path
 
+import pytest
+
+from fecproxy import cli
+from fecproxy.commands import EXIT_CANNOT_START, EXIT_INVALID, EXIT_MEANINGS, EXIT_UNREADABLE
 from support.daemon_pair import drain, send_paced
 from support.processes import Child, fecproxy, run_to_exit
 
@@ -98,3 +102,26 @@ def test_every_family_the_impairment_relay_exposes_is_in_the_readme_table():
     finally:
         relay.stop()
         far.close()
+
+
+def _help(capsys, *argv: str) -> str:
+    with pytest.raises(SystemExit) as exited:
+        cli.main([*argv, "--help"])
+    assert exited.value.code == 0
+    return capsys.readouterr().out
+
+
+@pytest.mark.parametrize("argv", [[], *([name] for name in cli.COMMANDS), ["bench", "codec"], ["bench", "pipeline"]])
+def test_help_speaks_to_users_not_to_the_source_tree(capsys, argv):
+    text = _help(capsys, *argv)
+    assert not re.search(r"fecproxy\.[a-z]|\.py\b|:mod:|\bmodule\b", text), text
+    assert "(default: None)" not in text and "(default: False)" not in text, text
+
+
+def test_check_and_run_document_the_same_exit_statuses(capsys):
+    check, run = _help(capsys, "check"), _help(capsys, "run")
+    for status in (EXIT_UNREADABLE, EXIT_INVALID):
+        meaning = f"{status} = {EXIT_MEANINGS[status]}"
+        assert meaning in " ".join(check.split()) and meaning in " ".join(run.split())
+    assert f"{EXIT_CANNOT_START} = " in run
+    assert f"| {EXIT_CANNOT_START} |" in README and f"| {EXIT_UNREADABLE} |" in README

@@ -64,7 +64,7 @@ class SocketOpenError(OSError):
     def __init__(self, key: str, address, error: OSError):
         reason = error.strerror or str(error)
         super().__init__(error.errno, f"{key} {address}: {reason}")
-        self.key, self.address = key, address
+        self.key, self.address, self.reason = key, address, reason
 
     def __str__(self) -> str:
         return self.strerror
