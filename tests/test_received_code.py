@@ -55,3 +55,14 @@ def test_decoder_reports_the_encoders_code():
     for packet in packets:
         decoder.receive(packet, 0.0)
     assert (decoder.received_code.k, decoder.received_code.m) == (8, 3)
+
+
+def test_settled_is_the_figure_once_a_later_block_began():
+    code = ReceivedCode()
+    code.note(1, 16, 16)
+    assert code.settled is None  # block 1 may have more repair packets to come
+    code.note(1, 16, 19)
+    code.note(2, 16, 16)
+    assert code.settled == (16, 4) and (code.k, code.m) == (16, 4)
+    code.reset()
+    assert code.settled is None

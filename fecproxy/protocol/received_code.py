@@ -11,6 +11,10 @@ showing whichever came last would flicker.  So a block with a larger k, or the s
 least the same m, replaces the figure at once; a smaller one only once the figure is
 CODE_WINDOW_BLOCKS blocks old (the peer then sends nothing larger, e.g. after it lowered k or m).
 m is the highest repair ESI seen in the block − k + 1.
+
+``settled`` is the figure as it stood when a later block's repair packets began: by then every
+repair packet of the figure's block has had its turn, so a log line taken from it never shows
+an m still growing (the first repair packet of a block alone says m ≥ 1).
 """
 
 from __future__ import annotations
@@ -26,7 +30,7 @@ CODE_WINDOW_BLOCKS = 64
 class ReceivedCode:
     """``k`` and ``m`` of the peer's code as seen in repair packets; None before any."""
 
-    __slots__ = ("k", "m", "_sbn")
+    __slots__ = ("k", "m", "settled", "_sbn")
 
     def __init__(self) -> None:
         self.reset()
@@ -35,6 +39,7 @@ class ReceivedCode:
         """A new peer session: what the old one sent says nothing about the new one."""
         self.k: int | None = None
         self.m: int | None = None
+        self.settled: tuple[int, int] | None = None
         self._sbn: int | None = None
 
     def note(self, sbn: int, k: int, esi: int) -> None:
@@ -48,6 +53,7 @@ class ReceivedCode:
             ahead = (sbn - self._sbn) % SBN_MODULUS
             if ahead >= SBN_MODULUS // 2:
                 return  # an older block arriving late
+            self.settled = (self.k, self.m)
             if (k, m) < (self.k, self.m) and ahead <= CODE_WINDOW_BLOCKS:
                 return  # a short block, or a block whose last repair packets are lost or still to come
         self.k, self.m, self._sbn = k, m, sbn

@@ -96,7 +96,7 @@ class Daemon:
         self.peer: tuple | None = None
         self.link_address: tuple | None = None
         self.listen_address: tuple | None = None
-        self._logged_code: tuple[int | None, int | None] = (None, None)  # the peer's code last logged
+        self._logged_code: tuple[int, int] | None = None  # the peer's code last logged
 
     # ------------------------------------------------------------ what metrics reads (DaemonView)
     @property
@@ -338,9 +338,9 @@ class Daemon:
                     self.peer = address
             await self._deliver(deliveries, now)
             self._reschedule()
-            code = self.decoder.received_code
-            if code.k != self._logged_code[0] or code.m != self._logged_code[1]:
-                self._log_peer_code(code.k, code.m)
+            settled = self.decoder.received_code.settled
+            if settled is not None and settled != self._logged_code:
+                self._log_peer_code(*settled)
 
     async def _timer_loop(self) -> None:
         while True:
@@ -391,14 +391,14 @@ class Daemon:
         self._reschedule()
         return True
 
-    def _log_peer_code(self, k: int | None, m: int | None) -> None:
-        """The code the peer sends with, as its repair packets show it: INFO the first time it is
-        known (per peer session), DEBUG when it changes later (an adapting peer changes m often)."""
-        first = self._logged_code[0] is None
+    def _log_peer_code(self, k: int, m: int) -> None:
+        """The code the peer sends with, as its repair packets show it (settled: a later block has
+        begun): INFO the first time per peer session, DEBUG when it changes later (an adapting
+        peer changes m often)."""
+        first = self._logged_code is None
         self._logged_code = (k, m)
-        if k is not None:
-            log_event(log, logging.INFO if first else logging.DEBUG, "peer_code", k=k, m=m,
-                      detail="decoding the peer's blocks (k from its repair packets, m = highest repair ESI - k + 1)")
+        log_event(log, logging.INFO if first else logging.DEBUG, "peer_code", k=k, m=m,
+                  detail="decoding the peer's blocks (k from its repair packets, m = highest repair ESI - k + 1)")
 
     async def _stats_loop(self, interval: float) -> None:
         """One INFO line every ``interval`` seconds with the counters since the previous line, so
@@ -415,8 +415,9 @@ class Daemon:
                 datagrams_in=delta["datagrams_in"], datagrams_out=delta["delivered"],
                 link_packets_in=delta["received_source"] + delta["received_repair"],
                 link_packets_out=delta["source_sent"] + delta["repair_sent"],
-                link_loss=f"{delta['lost'] / expected:.4f}" if expected else "-",
-                residual_loss=f"{delta['unrecovered'] / expected:.4f}" if expected else "-",
+                # Ratios of the interval's source datagrams; "-" when the peer sent none.
+                link_loss=round(delta["lost"] / expected, 6) if expected else "-",
+                residual_loss=round(delta["unrecovered"] / expected, 6) if expected else "-",
                 recovered=delta["recovered"], dropped=delta["dropped"], flows=len(self.flows),
             )
 
@@ -456,7 +457,7 @@ class Daemon:
         elif kind is Dropped:
             log_event(log, logging.DEBUG, "dropped", reason=event.reason, detail=event.detail)
         elif kind is SessionStarted:
-            self._logged_code = (None, None)  # a new peer session: its code is logged afresh
+            self._logged_code = None  # a new peer session: its code is logged afresh
             log_event(log, logging.INFO, "peer_session", session=f"{event.session:08x}",
                       previous=f"{event.previous:08x}" if event.previous is not None else "-")
 
