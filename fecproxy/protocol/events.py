@@ -93,6 +93,17 @@ class SessionStarted(Event):
     previous: int | None
 
 
+@dataclass(frozen=True, slots=True)
+class ControlReceived(Event):
+    """A control packet for the shell to route (its body is a loss report,
+    :mod:`fecproxy.protocol.loss_report`).  ``session`` is the header's session: for a loss report
+    the session being reported on, i.e. the session of the *receiving* side's own encoder, which
+    the decoder does not know; the shell checks it."""
+
+    session: int
+    body: bytes
+
+
 def _delivery_maker():
     """Delivery(flow, data) for a datagram that came directly, built by filling its slots.
 
