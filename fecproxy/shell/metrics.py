@@ -18,12 +18,18 @@ from prometheus_client import CollectorRegistry, Histogram, make_wsgi_app
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, InfoMetricFamily
 
 from fecproxy import __version__
+from fecproxy.linkmodel.adaptation import DECISION_REASONS, DOWN, IGNORE_REASONS, UP
 from fecproxy.protocol.events import BlockOutcome, DropReason
 from fecproxy.shell.status import status_app
 
 if TYPE_CHECKING:
     from fecproxy.protocol.decoder import DecoderStats
     from fecproxy.protocol.encoder import EncoderStats
+    from fecproxy.shell.reports import Feedback
+
+#: Why a well-formed loss report gave no decision (the labels of fecproxy_reports_ignored_total):
+#: on another session than our encoder's (reports.OTHER_SESSION), or the controller's reasons.
+REPORT_IGNORE_REASONS = ("other_session", *IGNORE_REASONS)
 
 
 class DaemonView(Protocol):
@@ -56,6 +62,10 @@ class DaemonView(Protocol):
 
     def loss_estimate(self) -> tuple[float, float] | None:
         """(average loss, mean burst) of the link, or None before any sample."""
+
+    @property
+    def feedback(self) -> Feedback:
+        """Loss reports sent and received, and the adaptation of the direction we send."""
 
 
 #: From 1 ms (a fast LAN hop) to 2 s (well past any hold time we would configure).
@@ -120,10 +130,45 @@ class DaemonCollector:
             yield GaugeMetricFamily(
                 "fecproxy_link_mean_burst_packets", "Estimated mean length of loss bursts, in packets.", value=estimate[1]
             )
+        yield from _feedback_metrics(d.feedback, d.block_shape)
         k, m = d.block_shape
         info = InfoMetricFamily("fecproxy", "Build and FEC parameters of this daemon.")
         info.add_metric([], {"version": __version__, "role": d.role, "k": str(k), "m": str(m)})
         yield info
+
+
+def _feedback_metrics(feedback: Feedback, shape: tuple[int, int]) -> Iterable:
+    """The code in use and the loss-report loop.  ``direction="send"`` is the link direction this
+    daemon encodes (its peer exports the other one the same way); a fixed label set, so a pair's
+    two scrapes line up."""
+    k, m = shape
+    for name, doc, value in (
+        ("fecproxy_code_source_symbols", "Source datagrams per full block (k) of the code in use.", k),
+        ("fecproxy_code_repair_symbols", "Repair packets per full block (m) of the code in use.", m),
+        ("fecproxy_code_interleave_depth", "Blocks interleaved on the link (D; 1 = none).", feedback.depth),
+    ):
+        gauge = GaugeMetricFamily(name, doc, labels=["direction"])
+        gauge.add_metric(["send"], value)
+        yield gauge
+    stats = feedback.stats
+    yield CounterMetricFamily("fecproxy_reports_sent", "Loss reports sent to the peer.", value=stats.sent)
+    yield CounterMetricFamily("fecproxy_reports_received", "Loss reports received on our own session.", value=stats.received)
+    ignored = CounterMetricFamily("fecproxy_reports_ignored", "Loss reports that gave no decision, by reason.", labels=["reason"])
+    counts = feedback.ignored()
+    for reason in REPORT_IGNORE_REASONS:
+        ignored.add_metric([reason], counts.get(reason, 0))
+    yield ignored
+    adaptations = CounterMetricFamily(
+        "fecproxy_adaptations", "Changes of m (or D) made from loss reports, by direction and reason.", labels=["direction", "reason"]
+    )
+    decisions = feedback.decisions()
+    for direction in (UP, DOWN):
+        for reason in DECISION_REASONS:
+            adaptations.add_metric([direction, reason], decisions.get((direction, reason), 0))
+    yield adaptations
+    yield GaugeMetricFamily(
+        "fecproxy_reports_stale", "1 while no loss report came for 5 intervals and m is held; else 0.", value=int(feedback.stale)
+    )
 
 
 def build_registry(daemon: DaemonView) -> tuple[CollectorRegistry, Histogram]:
