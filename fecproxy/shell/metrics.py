@@ -7,6 +7,7 @@ prefix ``fecproxy_``, base units, counters end in ``_total``, labels only from s
 
 from __future__ import annotations
 
+import math
 import socket
 import threading
 from collections.abc import Iterable, Mapping
@@ -14,13 +15,18 @@ from socketserver import ThreadingMixIn
 from typing import TYPE_CHECKING, Protocol
 from wsgiref.simple_server import WSGIRequestHandler, WSGIServer, make_server
 
-from prometheus_client import CollectorRegistry, Histogram, make_wsgi_app
+from prometheus_client import CollectorRegistry, Histogram, disable_created_metrics, make_wsgi_app
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, InfoMetricFamily
 
 from fecproxy import __version__
 from fecproxy.linkmodel.adaptation import DECISION_REASONS, DOWN, IGNORE_REASONS, UP
 from fecproxy.protocol.events import BlockOutcome, DropReason
 from fecproxy.shell.status import status_app
+
+# prometheus-client adds a `<name>_created` series (the creation time) to every counter and
+# histogram it owns; Prometheus does not need them and they double the series an operator sees
+# (and the README table would not list them).  Process-wide, as the library offers it.
+disable_created_metrics()
 
 if TYPE_CHECKING:
     from fecproxy.protocol.decoder import DecoderStats
@@ -62,6 +68,10 @@ class DaemonView(Protocol):
 
     def loss_estimate(self) -> tuple[float, float] | None:
         """(average loss, mean burst) of the link, or None before any sample."""
+
+    @property
+    def received_code(self) -> tuple[int | None, int | None]:
+        """(k, m) of the peer's code as its repair packets show them; None before any."""
 
     @property
     def feedback(self) -> Feedback:
@@ -122,33 +132,59 @@ class DaemonCollector:
             reloads.add_metric([result], d.reloads.get(result, 0))
         yield reloads
         yield GaugeMetricFamily("fecproxy_flows", "Application flows in the flow table.", value=d.flow_count())
-        estimate = d.loss_estimate()
-        if estimate is not None:
-            yield GaugeMetricFamily(
-                "fecproxy_link_loss_ratio", "Estimated link loss of source packets (0-1), sliding window.", value=estimate[0]
-            )
-            yield GaugeMetricFamily(
-                "fecproxy_link_mean_burst_packets", "Estimated mean length of loss bursts, in packets.", value=estimate[1]
-            )
-        yield from _feedback_metrics(d.feedback, d.block_shape)
+        # Present from the start, NaN until the peer's first block is in (no traffic measured
+        # yet), so a dashboard or `fecproxy plan --from-metrics` can tell "idle" from "down".
+        loss, burst = d.loss_estimate() or (math.nan, math.nan)
+        yield GaugeMetricFamily(
+            "fecproxy_link_loss_ratio",
+            "Estimated loss of the peer's source packets on the link into this daemon (0-1), sliding window; "
+            "NaN until the first block from the peer.",
+            value=loss,
+        )
+        yield GaugeMetricFamily(
+            "fecproxy_link_mean_burst_packets",
+            "Estimated mean length of loss bursts on the link into this daemon, in packets; NaN until the first block from the peer.",
+            value=burst,
+        )
+        received_k, received_m = d.received_code
+        yield GaugeMetricFamily(
+            "fecproxy_received_code_k",
+            "k of the code this daemon decodes (the peer's block size, from its repair packets); NaN until one arrives.",
+            value=math.nan if received_k is None else received_k,
+        )
+        yield GaugeMetricFamily(
+            "fecproxy_received_code_m",
+            "m of the code this daemon decodes (highest repair ESI seen - k + 1, a lower bound if the last "
+            "repair packets were lost); NaN until a repair packet arrives.",
+            value=math.nan if received_m is None else received_m,
+        )
+        yield from _feedback_metrics(d.feedback, d.block_shape, d.received_code)
         k, m = d.block_shape
-        info = InfoMetricFamily("fecproxy", "Build and FEC parameters of this daemon.")
+        info = InfoMetricFamily(
+            "fecproxy",
+            "Build of this daemon, its role and the code it sends with (k, m; on a receiver: its replies). "
+            "The code it decodes: fecproxy_received_code_k and fecproxy_received_code_m.",
+        )
         info.add_metric([], {"version": __version__, "role": d.role, "k": str(k), "m": str(m)})
         yield info
 
 
-def _feedback_metrics(feedback: Feedback, shape: tuple[int, int]) -> Iterable:
-    """The code in use and the loss-report loop.  ``direction="send"`` is the link direction this
-    daemon encodes (its peer exports the other one the same way); a fixed label set, so a pair's
-    two scrapes line up."""
+def _feedback_metrics(feedback: Feedback, shape: tuple[int, int], received: tuple[int | None, int | None]) -> Iterable:
+    """The code per link direction and the loss-report loop.  ``direction="send"``: the code this
+    daemon encodes with now (m moves with fec.adapt); ``"receive"``: the peer's code as its repair
+    packets show it (the same figures as fecproxy_received_code_k/_m; NaN until known; D is not on
+    the wire, so it has no "receive" series).  A fixed label set, so a pair's two scrapes line up."""
     k, m = shape
-    for name, doc, value in (
-        ("fecproxy_code_source_symbols", "Source datagrams per full block (k) of the code in use.", k),
-        ("fecproxy_code_repair_symbols", "Repair packets per full block (m) of the code in use.", m),
-        ("fecproxy_code_interleave_depth", "Blocks interleaved on the link (D; 1 = none).", feedback.depth),
+    received_k, received_m = (math.nan if value is None else value for value in received)
+    for name, doc, sent, seen in (
+        ("fecproxy_code_source_symbols", "Source datagrams per full block (k) of the code, per link direction.", k, received_k),
+        ("fecproxy_code_repair_symbols", "Repair packets per full block (m) of the code, per link direction.", m, received_m),
+        ("fecproxy_code_interleave_depth", "Blocks interleaved on the link (D; 1 = none) this daemon sends.", feedback.depth, None),
     ):
         gauge = GaugeMetricFamily(name, doc, labels=["direction"])
-        gauge.add_metric(["send"], value)
+        gauge.add_metric(["send"], sent)
+        if seen is not None:
+            gauge.add_metric(["receive"], seen)
         yield gauge
     stats = feedback.stats
     yield CounterMetricFamily("fecproxy_reports_sent", "Loss reports sent to the peer.", value=stats.sent)
