@@ -22,7 +22,7 @@ def link_packets(k: int, m: int, datagrams: list[tuple[bytes, int]], session: in
     for i, (data, flow) in enumerate(datagrams):
         packets += encoder.send(data, flow, 0.001 * i)
     # A loss report about the other direction travels on the same link (ControlReceived).
-    packets.append(encoder.control(bytes(56), session=session ^ 0xFFFF))
+    packets.append(encoder.control(bytes(56)))
     return packets + encoder.close()
 
 

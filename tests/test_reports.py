@@ -47,8 +47,16 @@ def report(sequence, received, lost, epoch=7):
                       source_lost=lost, unrecovered=0)
 
 
-def control(fb, body, session=None):
-    return ControlReceived(fb.encoder.session if session is None else session, body)
+PEER = 0xABCD
+
+
+def control(fb, body, session=PEER):
+    return ControlReceived(session, body)
+
+
+def follow_peer(fb):
+    """The decoder adopts the peer's session from one of its source packets."""
+    fb.decoder.receive(BlockEncoder(EncoderSettings(block_size=4, repair=1), PEER).send(b"x", 0, 0.0)[0], 0.0)
 
 
 def test_a_report_tells_the_decoder_counts_under_the_reported_session():
@@ -64,7 +72,7 @@ def test_a_report_tells_the_decoder_counts_under_the_reported_session():
                 fb.observe_block(event.arrived_mask, event.span)
     [packet] = fb.on_timer(0.5)
     header = COMMON_HEADER.unpack_from(packet)
-    assert header[2] == 0xABCD  # the session reported on: the peer's, not ours
+    assert header[2] == fb.encoder.session  # a packet of ours, like all we send
     sent = parse_report(packet[COMMON_HEADER.size :])
     stats = fb.decoder.stats
     assert (sent.sequence, sent.interval_ms, sent.source_received, sent.repair_received) == (1, 250, 7, 2)
@@ -78,13 +86,16 @@ def test_a_report_tells_the_decoder_counts_under_the_reported_session():
 def test_reports_on_another_session_are_ignored_and_bad_bodies_dropped():
     fb = feedback(config())
     assert fb.on_control(control(fb, encode_report(report(1, 100, 0)), session=0x1234), 0.1) is None
-    assert fb.ignored() == {OTHER_SESSION: 1} and fb.stats.received == 0
+    assert fb.stats.received == 1  # no peer session followed yet (a one-way sender): taken
+    follow_peer(fb)
+    assert fb.on_control(control(fb, encode_report(report(2, 100, 0)), session=0x1234), 0.1) is None
+    assert fb.ignored() == {OTHER_SESSION: 1} and fb.stats.received == 1
     drop = fb.on_control(control(fb, b"\x01" + bytes(10)), 0.1)
     assert drop.reason == DropReason.MALFORMED
     drop = fb.on_control(control(fb, b"\x09" + bytes(55)), 0.1)
     assert drop.reason == DropReason.UNSUPPORTED
-    assert fb.on_control(control(fb, encode_report(report(1, 100, 0))), 0.1) is None
-    assert fb.stats.received == 1
+    assert fb.on_control(control(fb, encode_report(report(3, 100, 0))), 0.1) is None
+    assert fb.stats.received == 2
 
 
 def test_a_side_that_sends_nothing_adapts_nothing_and_is_never_stale():

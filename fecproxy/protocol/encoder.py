@@ -151,11 +151,10 @@ class BlockEncoder:
         storage = memoryview(bytearray(self._settings.block_size * self._width))
         return storage, np.frombuffer(storage, dtype=np.uint8).reshape(self._settings.block_size, self._width)
 
-    def control(self, body: bytes, *, session: int | None = None) -> bytes:
-        """A control packet carrying ``body`` (a loss report), built here so that whatever the
-        encoder does to every packet it returns applies to it too.  ``session`` is the session
-        the packet concerns: a loss report names the *peer's* sender session it reports on."""
-        return wire.encode_control(self.session if session is None else session, body)
+    def control(self, body: bytes) -> bytes:
+        """A control packet of this session carrying ``body`` (a loss report), built here so that
+        whatever the encoder does to every packet it returns applies to it too."""
+        return wire.encode_control(self.session, body)
 
     def take_longest_datagram(self) -> int:
         """The longest datagram of the blocks closed since the last call (0 if none): it sizes

@@ -96,9 +96,10 @@ class SessionStarted(Event):
 @dataclass(frozen=True, slots=True)
 class ControlReceived(Event):
     """A control packet for the shell to route (its body is a loss report,
-    :mod:`fecproxy.protocol.loss_report`).  ``session`` is the header's session: for a loss report
-    the session being reported on, i.e. the session of the *receiving* side's own encoder, which
-    the decoder does not know; the shell checks it."""
+    :mod:`fecproxy.protocol.loss_report`).  ``session`` is the header's session: the sending
+    side's own sender session, like every packet it sends (one sequence space and replay window
+    per session when packets are authenticated); the shell checks it against the session it
+    decodes."""
 
     session: int
     body: bytes

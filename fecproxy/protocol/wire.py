@@ -18,7 +18,8 @@ SBN and ESI are the FEC Payload ID of RFC 6865 §5.1 for m = 8 (24 + 8 bits).  T
   the application datagram exactly as sent.
 * repair (type 1): the block's k (16 bits, RFC 6865 §5.1), then one repair symbol.
 * control (type 2): the body of a receiver's loss report (:mod:`fecproxy.protocol.loss_report`);
-  the header's session is the session reported on, its SBN and ESI are 0 and it has no flags.
+  the header's session is the sending side's own (as on all its packets), its SBN and ESI are 0
+  and it has no flags.
 
 Repair symbols cover, per source datagram, the RFC 6363 §4 / RFC 6865 §4 source symbol
 "flow id (1 byte) ‖ length (2 bytes) ‖ datagram ‖ zero padding" up to the block's symbol size;

@@ -45,8 +45,9 @@ from fecproxy.shell.logs import log_event
 #: Common practice, no source.
 REPORT_ESTIMATE_WINDOW = 1000
 #: Why a well-formed report led to no decision: the labels of ``fecproxy_reports_ignored_total``.
-#: ``other_session`` is a report on a session that is not our encoder's current one (about a run
-#: of ours before a restart, or forged); the others are the controller's (adaptation.IGNORE_REASONS).
+#: ``other_session`` is a report whose header session is not the peer session our decoder follows
+#: (sent by a run of the peer before it restarted, or forged); the others are the controller's
+#: (adaptation.IGNORE_REASONS).
 OTHER_SESSION = "other_session"
 
 
@@ -253,8 +254,7 @@ class Feedback:
         if report is None:
             return []
         self.stats.sent += 1
-        # The header names the session reported on: the peer's sender session, which it checks.
-        return [self.encoder.control(encode_report(report), session=self.decoder.session)]
+        return [self.encoder.control(encode_report(report))]
 
     # -- reports from the peer -------------------------------------------------------------------
 
@@ -268,7 +268,12 @@ class Feedback:
             report = parse_report(event.body)
         except PacketError as error:
             return Dropped(error.reason, str(error))
-        if event.session != self.encoder.session:
+        followed = self.decoder.session
+        if followed is not None and event.session != followed:
+            # From a run of the peer we no longer decode (sent before it restarted), or forged.
+            # A report about an earlier run of *ours* needs no check: our restart starts a new
+            # controller, which takes counter differences from the first report it accepts, and
+            # the link the report describes is the same link.
             self.stats.ignored[OTHER_SESSION] = self.stats.ignored.get(OTHER_SESSION, 0) + 1
             return None
         self.stats.received += 1
