@@ -171,6 +171,7 @@ class EncoderStats:
     blocks: int = 0
     short_blocks: int = 0
     source_bytes: int = 0  # source packets' bytes on the link, headers included
+    datagram_bytes: int = 0  # the application datagrams' own bytes (the adaptation's byte cap)
     repair_bytes: int = 0  # repair packets' bytes on the link, headers included
     repair_capped: int = 0  # blocks whose repair count the RFC 6363 §8.2 byte rule cut
     dropped: dict[str, int] = field(default_factory=dict)
@@ -245,9 +246,16 @@ class BlockEncoder:
         self._carry: tuple[int, int] | None = None  # (SBN, k) of a closed block whose successor is not open yet
         self._spare: dict[tuple[int, int], list[tuple[memoryview, np.ndarray]]] = {}  # zeroed buffers by shape
         self._groups: dict[int, _Group] = {}  # per class: the round its lanes are joining
+        self._longest = 0  # longest datagram in blocks closed since take_longest_datagram()
+        self._newest: _Block | None = None  # the block opened last
 
     @property
     def settings(self) -> EncoderSettings:
+        """The shape of the blocks being sent now: the newest open block's settings, or those the
+        next block will take when none is open (an update applies from the next block)."""
+        newest = self._newest
+        if newest is not None and self._by_sbn.get(newest.sbn) is newest:
+            return newest.settings
         return self._settings
 
     @property
@@ -289,6 +297,7 @@ class BlockEncoder:
         block = _Block(storage, symbols, sbn, key, settings.class_names[index], settings, now + settings.flush_interval, previous_k)
         self._open[key] = block
         self._by_sbn[sbn] = block
+        self._newest = block
         # A lane joins its class's current round unless it already has a block there or the
         # round's first block has closed (which bounds how long a round's repair waits: at most
         # the first block's flush deadline plus one flush interval).
@@ -300,6 +309,17 @@ class BlockEncoder:
         group.open += 1
         block.group, block.lane = group, lane
         return block
+
+    def control(self, body: bytes) -> bytes:
+        """A control packet of this session carrying ``body`` (a loss report), built here so that
+        whatever the encoder does to every packet it returns applies to it too."""
+        return wire.encode_control(self.session, body)
+
+    def take_longest_datagram(self) -> int:
+        """The longest datagram of the blocks closed since the last call (0 if none): it sizes
+        their repair symbols, so the adaptation's byte cap uses it per report interval."""
+        longest, self._longest = self._longest, 0
+        return longest
 
     def send(self, datagram: bytes, flow: int, now: float) -> list[bytes]:
         """Frame one application datagram; returns the packets to put on the link now.
@@ -390,6 +410,7 @@ class BlockEncoder:
             for index, (sent, sent_bytes) in sent_by_class.items():
                 stats.source_packets += sent
                 stats.source_bytes += sent_bytes + sent * header
+                stats.datagram_bytes += sent_bytes
                 per_class = stats.for_class(names[index])
                 per_class.source_packets += sent
                 per_class.source_bytes += sent_bytes + sent * header
@@ -423,6 +444,8 @@ class BlockEncoder:
         stats.repair_packets += m
         stats.repair_bytes += repair_bytes
         stats.blocks += 1
+        if length - wire.SYMBOL_PREFIX_BYTES > self._longest:
+            self._longest = length - wire.SYMBOL_PREFIX_BYTES
         if k < settings.block_size:
             stats.short_blocks += 1
         per_class = stats.for_class(block.class_name)
