@@ -141,7 +141,7 @@ def test_defaults_agree_with_the_cores():
 def test_default_datagram_fits_an_ethernet_frame_with_tag_room():
     # RFC 894: Ethernet MTU 1500; RFC 791: IPv4 header ≥ 20 bytes; RFC 768: UDP header 8 bytes.
     ip_udp = 20 + 8
-    repair_packet = 12 + 3 + cfg.DEFAULT_MAX_DATAGRAM_BYTES + cfg.AUTH_TAG_RESERVE_BYTES
+    repair_packet = 12 + 5 + cfg.DEFAULT_MAX_DATAGRAM_BYTES + cfg.AUTH_TAG_RESERVE_BYTES
     assert repair_packet + ip_udp <= 1500
     # HMAC-SHA-256 output is 32 bytes (RFC 6234 §1: SHA-256 digest is 256 bits).
     assert cfg.AUTH_TAG_RESERVE_BYTES == 256 // 8
