@@ -54,6 +54,9 @@ class DaemonView(Protocol):
 
     def flow_count(self) -> int: ...
 
+    def flows_evicted(self) -> int:
+        """Flows recycled for a new client while still within their timeout."""
+
     def loss_estimate(self) -> tuple[float, float] | None:
         """(average loss, mean burst) of the link, or None before any sample."""
 
@@ -112,6 +115,9 @@ class DaemonCollector:
             reloads.add_metric([result], d.reloads.get(result, 0))
         yield reloads
         yield GaugeMetricFamily("fecproxy_flows", "Application flows in the flow table.", value=d.flow_count())
+        yield counter(
+            "fecproxy_flows_evicted", "Flows recycled for a new client before their timeout (table full).", d.flows_evicted()
+        )
         estimate = d.loss_estimate()
         if estimate is not None:
             yield GaugeMetricFamily(

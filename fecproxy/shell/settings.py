@@ -1,7 +1,8 @@
 """A daemon's core settings from its config, at start and on a SIGHUP reload.
 
 The cores can take new FEC, decoder and flow-timeout settings between blocks, so a reload applies
-those without dropping a flow.  What is bound to sockets or to the process's shape (role,
+those without dropping a flow (flow timeouts and the protected interval included; the table's size
+needs a restart).  What is bound to sockets or to the process's shape (role,
 addresses, metrics endpoint, socket buffers) cannot change under a running daemon: a reload
 reports such a change and keeps the running values until a restart.
 """
@@ -14,10 +15,14 @@ from pathlib import Path
 from fecproxy.config import Config, ConfigError, load_config
 from fecproxy.protocol.decoder import DecoderSettings
 from fecproxy.protocol.encoder import EncoderSettings
+from fecproxy.protocol.flows import ClientFlowTable, PeerFlowTable
 
 #: Config sections a reload cannot apply (they need new sockets or another role): a change to
 #: one is reported, and the running value is kept.
 RESTART_KEYS = ("role", "listen", "forward", "link", "metrics", "sockets")
+#: Single keys of otherwise reloadable sections that need a restart: the flow table's size is
+#: fixed when it is built (and sizes the receiver's file-descriptor budget at start).
+RESTART_SUBKEYS = (("flows", "max"),)
 
 
 class ReloadRejected(Exception):
@@ -47,8 +52,26 @@ def decoder_settings(config: Config) -> DecoderSettings:
     )
 
 
-def flow_idle_timeout(config: Config) -> float:
-    return float(config.flows.idle_timeout_s)
+def flow_table(config: Config) -> ClientFlowTable | PeerFlowTable:
+    """The sender's table of client addresses, or the receiver's table of the peer's flow ids."""
+    flows = config.flows
+    timeouts = dict(
+        first_exchange_timeout=float(flows.first_exchange_timeout_s),
+        idle_timeout=float(flows.idle_timeout_s),
+        protect=float(flows.protect_s),
+    )
+    if config.role == "sender":
+        return ClientFlowTable(flows.max, **timeouts)
+    return PeerFlowTable(flows.max, **timeouts)
+
+
+def apply_flow_timeouts(table: ClientFlowTable | PeerFlowTable, config: Config) -> None:
+    """A reload's new timeouts and protected interval; they apply from the next check on.  The
+    table's size (``flows.max``) needs a restart: it sizes the receiver's descriptor budget."""
+    flows = config.flows
+    table.first_exchange_timeout = float(flows.first_exchange_timeout_s)
+    table.idle_timeout = float(flows.idle_timeout_s)
+    table.protect = float(flows.protect_s)
 
 
 def read_new_config(path: str | Path | None) -> Config:
@@ -62,14 +85,23 @@ def read_new_config(path: str | Path | None) -> Config:
 
 
 def needs_restart(running: Config, new: Config) -> list[str]:
-    """The RESTART_KEYS sections that differ between the running config and the new one."""
-    return [key for key in RESTART_KEYS if getattr(new, key) != getattr(running, key)]
+    """The RESTART_KEYS sections and RESTART_SUBKEYS keys that differ between the running config
+    and the new one."""
+    changed = [key for key in RESTART_KEYS if getattr(new, key) != getattr(running, key)]
+    for section, key in RESTART_SUBKEYS:
+        if getattr(getattr(new, section), key) != getattr(getattr(running, section), key):
+            changed.append(f"{section}.{key}")
+    return changed
 
 
 def keep_fixed(running: Config, new: Config) -> Config:
     """The running config after a reload: the new tunables, the running sockets and addresses.
 
-    The flow table keeps the size it was built with (``flows.max``) and logging keeps its start
-    setup (``log``), although the returned config shows the new values of both.
+    The RESTART_SUBKEYS keep their running values too (the flow table its size).  Logging keeps
+    its start setup (``log``), although the returned config shows the new values.
     """
-    return dataclasses.replace(new, **{key: getattr(running, key) for key in RESTART_KEYS})
+    kept = dataclasses.replace(new, **{key: getattr(running, key) for key in RESTART_KEYS})
+    for section, key in RESTART_SUBKEYS:
+        value = getattr(getattr(running, section), key)
+        kept = dataclasses.replace(kept, **{section: dataclasses.replace(getattr(kept, section), **{key: value})})
+    return kept
