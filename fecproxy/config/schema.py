@@ -1,7 +1,7 @@
 """The daemon's YAML configuration: read once, validated in full, then a frozen typed object.
 
-Following aioquic's configuration object, everything is checked here and nowhere else: the daemon
-receives a :class:`Config` whose values it can trust.  Validation never stops at the first fault:
+Everything is checked here and nowhere else, once: the daemon receives a :class:`Config` whose
+values it can trust and checks none of them again.  Validation never stops at the first fault:
 every message is collected, each naming the file, the key path, the bad value and what is
 expected, and they are raised together as one :class:`ConfigError`.
 

@@ -58,7 +58,7 @@ from fecproxy.commands.bench.search import (  # noqa: F401  (re-exported: the pi
 )
 from fecproxy.linkmodel.planner import evaluate
 
-#: The block shape under test (the issue's k=16, m=4; also the config defaults).
+#: The block shape under test: k=16, m=4, the config defaults.
 BLOCK_SIZE = 16
 REPAIR = 4
 #: After the generator's last datagram, how long the sink keeps counting: queued datagrams in
@@ -73,7 +73,8 @@ DEFAULT_SEARCH_BUDGET_S = 85.0
 DEFAULT_START_RATE = 20_000.0
 #: Above this the search stops stepping up (a sanity bound far beyond 2 cores of Python).
 DEFAULT_MAX_RATE = 400_000.0
-#: "A moderate rate" for delay trials: a tenth of what the issue asks the pair to carry.
+#: A moderate rate for delay trials, far below the pair's limit, so queues stay short and the
+#: figures show the pair's own delay rather than congestion.
 DEFAULT_DELAY_RATE = 5_000.0
 DEFAULT_DELAY_SECONDS = 2.0
 #: Seed of the impaired link's loss pattern: the same losses every run.
