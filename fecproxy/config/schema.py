@@ -101,6 +101,12 @@ DEFAULT_SOCKET_BUFFER_BYTES = 4 * 1024 * 1024
 #: value that cannot overflow is INT_MAX // 2.
 MAX_SOCKET_BUFFER_BYTES = (2**31 - 1) // 2
 
+#: log.stats_interval_s: one stats line a minute shows a quiet daemon is alive and what the link
+#: did, at 1440 lines a day (a journal keeps that for months); common practice, no source.
+DEFAULT_STATS_INTERVAL_S = 60
+#: A day: beyond that a periodic line tells nothing a restart would not.
+MAX_STATS_INTERVAL_S = 86_400
+
 #: fec.adapt.target_residual: one datagram in a thousand left unrecovered, ten times under the
 #: ~1 % loss that voice and video codecs conceal well (from memory; common practice, no source).
 DEFAULT_TARGET_RESIDUAL = 1e-3
@@ -238,6 +244,7 @@ class SocketsSection:
 class LogSection:
     level: LogLevel = LogLevel.INFO
     format: LogFormat = LogFormat.TEXT
+    stats_interval_s: int = DEFAULT_STATS_INTERVAL_S  # 0 = no periodic stats line
 
 
 @dataclass(frozen=True)
@@ -572,7 +579,16 @@ _SECTIONS: dict[str, tuple[type, dict[str, Callable]]] = {
             "send_buffer_bytes": _Integer(0, MAX_SOCKET_BUFFER_BYTES, f"an integer 0..{MAX_SOCKET_BUFFER_BYTES} (0 = OS default)"),
         },
     ),
-    "log": (LogSection, {"level": _Choice(LogLevel, "log level"), "format": _Choice(LogFormat, "log format")}),
+    "log": (
+        LogSection,
+        {
+            "level": _Choice(LogLevel, "log level"),
+            "format": _Choice(LogFormat, "log format"),
+            "stats_interval_s": _Integer(
+                0, MAX_STATS_INTERVAL_S, f"an integer number of seconds 0..{MAX_STATS_INTERVAL_S} (0 = no stats lines)"
+            ),
+        },
+    ),
     "metrics": (MetricsSection, {"listen": _ADDRESS_TO_BIND}),
     "reports": (
         ReportsSection,

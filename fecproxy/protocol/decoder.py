@@ -60,6 +60,7 @@ from fecproxy.protocol.events import (
     SessionStarted,
     direct_delivery,
 )
+from fecproxy.protocol.received_code import ReceivedCode
 
 #: How long an incomplete block waits for more packets.  Must exceed the sender's flush interval
 #: plus the link's delay spread; 500 ms covers a geostationary hop's jitter with room to spare
@@ -142,6 +143,7 @@ class BlockDecoder:
     def __init__(self, settings: DecoderSettings = DecoderSettings()):
         self.settings = settings
         self.stats = DecoderStats()
+        self.received_code = ReceivedCode()  # the peer's k and m as its repair packets show them
         self.state = SessionState.NO_SESSION
         self.session: int | None = None  # the adopted session
         self._retired: deque[int] = deque(maxlen=RETIRED_SESSIONS)
@@ -208,6 +210,7 @@ class BlockDecoder:
                     self._last_seen = now
                     self.stats.repair_received += 1
                     self.stats.repair_unneeded += 1  # normal: the block completed before its repair came
+                    self.received_code.note(sbn, k, payload_id & wire.ESI_MASK)
                     return [], True
         return self._receive_general(data, now)
 
@@ -236,6 +239,7 @@ class BlockDecoder:
             self.stats.source_received += 1
         else:
             self.stats.repair_received += 1
+            self.received_code.note(pkt.sbn, pkt.k, pkt.esi)
         self._admit(pkt, now, events)
         return events, True
 
@@ -358,6 +362,7 @@ class BlockDecoder:
         self._finished.clear()
         self._highest = None
         self._first_sbn = None
+        self.received_code.reset()
         events.append(SessionStarted(session, previous))
         return events
 
