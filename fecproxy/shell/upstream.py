@@ -44,7 +44,11 @@ ReplyHandler = Callable[[list[tuple[bytes, int]], float], Awaitable[None]]
 
 
 class _Upstream:
-    """One flow's socket towards the application server, and the scope of its reader task."""
+    """One flow's socket towards the application server, and the scope of its reader task.
+
+    The reader task owns the socket and closes it as it ends: closing it from another task could
+    catch the reader already woken for a datagram, which would then read a closed descriptor.
+    """
 
     __slots__ = ("sock", "writer", "scope")
 
@@ -52,9 +56,8 @@ class _Upstream:
         self.sock, self.writer, self.scope = sock, writer, scope
 
     def close(self) -> None:
+        """End the reader task; it closes the socket at its next checkpoint."""
         self.scope.cancel()
-        trio.lowlevel.notify_closing(self.sock)
-        self.sock.close()
 
 
 class Upstreams:
@@ -143,19 +146,24 @@ class Upstreams:
             log_event(log, logging.DEBUG, "flow_closed", flow=f"{ended.flow:06x}", reason=ended.reason)
 
     def close_all(self) -> None:
+        """The daemon ended (its nursery is done): close every socket still open."""
         for entry in self._by_flow.values():
-            entry.close()
+            entry.scope.cancel()
+            entry.sock.close()
         self._by_flow.clear()
 
     async def _read_replies(self, flow: int, upstream: _Upstream) -> None:
         """Replies from the application server on this flow's socket -> the reply handler."""
-        with upstream.scope:
-            reader = DatagramReader(upstream.sock, batch=REPLY_BATCH, coalesce=True)
-            while True:
-                batch = await reader.read_batch()
-                now = trio.current_time()
-                # Once per batch: every datagram shares this `now`.
-                if not self.flows.reply(flow, now):
-                    self.drops[DropReason.UNKNOWN_FLOW] += len(batch)
-                    continue
-                await self.on_replies([(data, flow) for data, _ in batch], now)
+        try:
+            with upstream.scope:
+                reader = DatagramReader(upstream.sock, batch=REPLY_BATCH, coalesce=True)
+                while True:
+                    batch = await reader.read_batch()
+                    now = trio.current_time()
+                    # Once per batch: every datagram shares this `now`.
+                    if not self.flows.reply(flow, now):
+                        self.drops[DropReason.UNKNOWN_FLOW] += len(batch)
+                        continue
+                    await self.on_replies([(data, flow) for data, _ in batch], now)
+        finally:
+            upstream.sock.close()
