@@ -53,6 +53,7 @@ from fecproxy.protocol import wire
 from fecproxy.protocol.events import (
     BlockOutcome,
     BlockReport,
+    ControlReceived,
     Delivery,
     DropReason,
     Dropped,
@@ -112,6 +113,7 @@ class DecoderSettings:
 class DecoderStats:
     source_received: int = 0
     repair_received: int = 0
+    control_received: int = 0  # well-formed control packets handed on (ControlReceived)
     repair_unneeded: int = 0
     delivered: int = 0
     recovered: int = 0
@@ -222,7 +224,10 @@ class BlockDecoder:
         except wire.PacketError as error:
             return [self._drop(error.reason, str(error))], False
         if isinstance(pkt, wire.ControlPacket):
-            return [self._drop(DropReason.UNSUPPORTED, "control packets are not handled by this version")], False
+            # Not a packet of the peer's sender session: its session is ours (the one reported
+            # on), so it neither touches the session state nor teaches the shell its peer.
+            self.stats.control_received += 1
+            return [ControlReceived(pkt.session, pkt.body)], False
         events: list[Event] = []
         if pkt.session != self.session:
             if pkt.session in self._retired:
@@ -297,6 +302,12 @@ class BlockDecoder:
         else:
             self._add_repair(block, pkt, events)
         self._try_finish(block, now, events)
+
+    @property
+    def highest_sbn(self) -> int | None:
+        """The newest source block number seen of the adopted session (None before any);
+        a loss report carries it."""
+        return self._highest
 
     def next_deadline(self) -> float | None:
         if not self._open:

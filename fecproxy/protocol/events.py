@@ -94,6 +94,18 @@ class SessionStarted(Event):
     previous: int | None
 
 
+@dataclass(frozen=True, slots=True)
+class ControlReceived(Event):
+    """A control packet for the shell to route (its body is a loss report,
+    :mod:`fecproxy.protocol.loss_report`).  ``session`` is the header's session: the sending
+    side's own sender session, like every packet it sends (one sequence space and replay window
+    per session when packets are authenticated); the shell checks it against the session it
+    decodes."""
+
+    session: int
+    body: bytes
+
+
 def _delivery_maker():
     """Delivery(flow, data) for a datagram that came directly, built by filling its slots.
 

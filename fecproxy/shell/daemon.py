@@ -31,12 +31,13 @@ from fecproxy.config import Config
 from fecproxy.config.addresses import format_sockaddr
 from fecproxy.linkmodel.estimator import LossEstimator
 from fecproxy.protocol.decoder import BlockDecoder, DecoderStats
-from fecproxy.protocol.events import BlockReport, Delivery, DropReason, Dropped, SessionStarted
+from fecproxy.protocol.events import BlockReport, ControlReceived, Delivery, DropReason, Dropped, SessionStarted
 from fecproxy.protocol.encoder import BlockEncoder, EncoderStats
 from fecproxy.protocol.flows import ClientFlowTable, PeerFlowTable
 from fecproxy.shell.fdlimit import ensure_open_files, files_needed
 from fecproxy.shell.logs import log_event, log_exception
 from fecproxy.shell.metrics import MetricsServer, build_registry, serve
+from fecproxy.shell.reports import Feedback
 from fecproxy.shell.settings import (
     ReloadRejected,
     decoder_settings,
@@ -83,6 +84,8 @@ class Daemon:
         self.encoder = BlockEncoder(encoder_settings(config), self.session)
         self.decoder = BlockDecoder(decoder_settings(config))
         self.estimator = LossEstimator(window=LOSS_ESTIMATE_WINDOW)
+        # Loss reports on the direction we decode; adaptation of the one we encode (fec.adapt).
+        self.feedback = Feedback(self.encoder, self.decoder, log)
         #: Sender: client addresses -> flow ids; receiver: the peer's flow ids -> conversations.
         self.flows: ClientFlowTable | PeerFlowTable = flow_table(config)
         self._reloads: dict[str, int] = {"applied": 0, "rejected": 0}
@@ -225,6 +228,7 @@ class Daemon:
         cfg = self.config
         self._check_open_files()
         metrics = self._open_sockets()
+        self.feedback.configure(cfg, encoder_settings(cfg), trio.current_time())
         try:
             async with trio.open_nursery() as nursery:
                 self._nursery = nursery
@@ -246,7 +250,8 @@ class Daemon:
                     peer=format_sockaddr(self.peer) if self.peer else "learned",
                     listen=format_sockaddr(self.listen_address),
                     forward=str(cfg.forward) if cfg.forward else "-",
-                    k=cfg.fec.block_size, m=cfg.fec.repair, flush_ms=cfg.fec.flush_ms,
+                    k=cfg.fec.block_size, m=self.encoder.settings.repair, flush_ms=cfg.fec.flush_ms,
+                    adapt="on" if self.feedback.adapting else "off", reports_ms=cfg.reports.interval_ms,
                     sends="datagrams" if cfg.role == "sender" else "replies",
                     decoding="peer's code unknown until traffic",
                     session=f"{self.session:08x}", metrics=self.metrics_port or "off",
@@ -350,6 +355,7 @@ class Daemon:
                     elif kind is BlockReport and not event.lost and event.span:
                         # A block with nothing lost is one run of arrivals, a segment of its own.
                         estimator.observe_block(event.arrived_mask, event.span)
+                        self.feedback.observe_block(event.arrived_mask, event.span)
                     elif kind is SessionStarted and event.previous is not None and self.upstreams is not None:
                         # A restarted sender numbers its flows afresh: what came before belongs
                         # to the old conversations, which all end now.
@@ -381,6 +387,7 @@ class Daemon:
             now = trio.current_time()
             await self._send_to_peer(self.encoder.on_timer(now))
             self._handle_events(self.decoder.on_timer(now), now)
+            await self._send_to_peer(self.feedback.on_timer(now))
             expired = self.flows.expire(now)
             if self.upstreams is not None:
                 self.upstreams.close_ended(expired)
@@ -412,12 +419,12 @@ class Daemon:
         fixed = needs_restart(self.config, new)
         if fixed:
             log_event(log, logging.WARNING, "reload_needs_restart", keys=",".join(fixed))
-        self.encoder.update(encoder_settings(new))
+        self.feedback.configure(new, encoder_settings(new), trio.current_time())
         self.decoder.settings = decoder_settings(new)
         apply_flow_timeouts(self.flows, new)
         self.config = keep_fixed(self.config, new)
         self._reloads["applied"] += 1
-        log_event(log, logging.INFO, "reloaded", k=new.fec.block_size, m=new.fec.repair, flush_ms=new.fec.flush_ms)
+        log_event(log, logging.INFO, "reloaded", k=new.fec.block_size, m=self.encoder.settings.repair, flush_ms=new.fec.flush_ms)
         self._reschedule()
         return True
 
@@ -457,7 +464,8 @@ class Daemon:
         return counts
 
     def _next_deadline(self) -> float:
-        deadlines = [d for d in (self.encoder.next_deadline(), self.decoder.next_deadline(), self.flows.next_deadline()) if d is not None]
+        cores = (self.encoder.next_deadline(), self.decoder.next_deadline(), self.flows.next_deadline(), *self.feedback.deadlines())
+        deadlines = [d for d in cores if d is not None]
         return min(deadlines) if deadlines else math.inf
 
     def _reschedule(self) -> None:
@@ -482,10 +490,16 @@ class Daemon:
             # One segment per block: repair positions sit between blocks on the link, so chaining
             # blocks would bias the burst estimate (see linkmodel.estimator.LossEstimator).
             self.estimator.observe_block(event.arrived_mask, event.span)
+            self.feedback.observe_block(event.arrived_mask, event.span)
             if event.unrecovered:
                 log_event(log, logging.DEBUG, "block_unrecovered", sbn=event.sbn, k=event.k, lost=event.lost, outcome=event.outcome)
         elif kind is Dropped:
             log_event(log, logging.DEBUG, "dropped", reason=event.reason, detail=event.detail)
+        elif kind is ControlReceived:
+            drop = self.feedback.on_control(event, now)
+            if drop is not None:
+                self._drops[drop.reason] += 1
+                self._handle_event(drop, now)
         elif kind is SessionStarted:
             self._logged_code = None  # a new peer session: its code is logged afresh
             log_event(log, logging.INFO, "peer_session", session=f"{event.session:08x}",
