@@ -211,3 +211,19 @@ def test_a_new_layout_leaves_open_blocks_to_their_deadline():
     out = enc.send(b"b" * 40, 1, 0.001)
     assert wire.parse(out[0], max_datagram=1400).sbn == 1  # a new block; block 0 gets no more datagrams
     assert [wire.parse(p, max_datagram=1400).sbn for p in enc.on_timer(0.02)] == [0]
+
+
+def test_a_bad_item_that_opened_a_block_leaves_nothing_to_flush():
+    # A flow id outside 24 bits is a caller bug and raises; if it had just opened a block, that
+    # empty block is forgotten at its deadline (no packet of it went out), and traffic goes on.
+    import struct
+
+    enc = BlockEncoder(EncoderSettings(block_size=2, repair=1), SESSION)
+    with pytest.raises(struct.error):
+        enc.send_batch([(b"a" * 30, 1), (b"b" * 30, 1), (b"bad", 1 << 24)], 0.0)  # block 0 full, block 1 opened
+    assert enc.next_deadline() is not None
+    assert enc.on_timer(1.0) == [] and enc.next_deadline() is None
+    assert enc.stats.blocks == 1
+    packets = enc.send_batch([(b"d" * 30, 1), (b"e" * 30, 1)], 1.0) + enc.close()
+    dec, got = decode(packets)
+    assert got == [(1, b"d" * 30), (1, b"e" * 30)]

@@ -5,7 +5,7 @@ any k packets of a block are in hand, its missing datagrams are rebuilt and deli
 once.  A block that can no longer complete is expired after the hold time and reported, so the
 shell can count loss on the link (before recovery) apart from loss after it (RFC 6363 §6).
 Memory is bounded: at most ``max_open_blocks`` blocks, each holding at most 255 packets of at most
-``max_datagram`` + 3 bytes, a bounded memory of finished block numbers, and at most
+``max_datagram`` + 5 bytes, a bounded memory of finished block numbers, and at most
 SESSION_CONFIRM_PACKETS − 1 packets of a candidate session.
 
 ``receive`` returns the events and whether the packet was a valid packet of the adopted session:
@@ -69,7 +69,7 @@ from fecproxy.protocol.received_code import ReceivedCode
 DEFAULT_HOLD_TIME = 0.5
 #: Open blocks kept at once; the oldest is evicted (and counted) beyond this.  256 blocks of
 #: k=16 is 4096 datagrams in flight, ~80 ms at 50 000 datagrams/s; memory is at most
-#: 256 × (k + m) × (max_datagram + 3) bytes, ~7 MiB for k=16, m=4, 1400 bytes.
+#: 256 × (k + m) × (max_datagram + 5) bytes, ~7 MiB for k=16, m=4, 1400 bytes.
 DEFAULT_MAX_OPEN_BLOCKS = 256
 #: Finished block numbers remembered, so their late packets are recognised rather than reopened.
 FINISHED_MEMORY_FACTOR = 4
@@ -82,7 +82,7 @@ RETIRED_SESSIONS = 4
 #: source datagrams are still delivered, and its packets are replayed into the new session's blocks.
 SESSION_CONFIRM_PACKETS = 8
 
-#: The fast path peeks a packet's fixed header (12 bytes for both kinds).
+#: The fast path peeks a packet's fixed header (14 bytes for source, 12 for repair packets).
 _LEADING_BYTES = max(wire.SOURCE_HEADER_BYTES, wire.REPAIR_HEADER_BYTES)
 
 
@@ -171,7 +171,7 @@ class BlockDecoder:
         if size >= _LEADING_BYTES:
             type_byte = data[0]
             if type_byte == wire.SOURCE_TYPE_BYTE:
-                _, flags, session, payload_id, flow, previous_k = wire.peek_source(data)
+                _, flags, session, payload_id, flow_word = wire.peek_source(data)
                 if (
                     session == self.session
                     and not flags & ~wire.FLAG_END
@@ -188,10 +188,13 @@ class BlockDecoder:
                         if block is None:
                             events.append(self._behind(sbn, repair=False))
                             return events, True
+                    previous_k = flow_word & wire.PREVIOUS_K_MASK
                     if previous_k and not block.told_previous:
                         block.told_previous = True
                         self._learn_previous_k(sbn, previous_k, now, events)
-                    self._add_source_fields(block, sbn, esi, flow, bool(flags), bytes(data[wire.SOURCE_HEADER_BYTES:]), events)
+                    self._add_source_fields(
+                        block, sbn, esi, flow_word >> wire.FLOW_SHIFT, bool(flags), bytes(data[wire.SOURCE_HEADER_BYTES:]), events
+                    )
                     self._try_finish(block, now, events)
                     return events, True
             elif type_byte == wire.REPAIR_TYPE_BYTE:
@@ -478,13 +481,12 @@ class BlockDecoder:
         indices = sorted(block.sources) + repair_indices
         symbols = np.zeros((len(indices), length), dtype=np.uint8)
         row = 0
+        prefix = wire.SYMBOL_PREFIX_BYTES
         for esi in sorted(block.sources):
             flow, data = block.sources[esi]
             size = len(data)
-            symbols[row, 0] = flow
-            symbols[row, 1] = size >> 8
-            symbols[row, 2] = size & 0xFF
-            symbols[row, 3 : 3 + size] = np.frombuffer(data, dtype=np.uint8)
+            symbols[row, :prefix] = np.frombuffer(wire.pack_symbol_prefix(flow, size), dtype=np.uint8)
+            symbols[row, prefix : prefix + size] = np.frombuffer(data, dtype=np.uint8)
             row += 1
         for esi in repair_indices:
             symbols[row] = np.frombuffer(block.repairs[esi], dtype=np.uint8)
@@ -497,16 +499,16 @@ class BlockDecoder:
         events: list[Event] = []
         for esi in sorted(rebuilt):
             symbol = rebuilt[esi]
-            size = (int(symbol[1]) << 8) | int(symbol[2])
-            if size + wire.SYMBOL_PREFIX_BYTES > length:
+            flow, size = wire.unpack_symbol_prefix(symbol[:prefix].tobytes())
+            if size + prefix > length:
                 events.append(self._drop(DropReason.INCONSISTENT, f"rebuilt datagram {block.sbn}/{esi} claims {size} bytes"))
                 continue
-            data = symbol[3 : 3 + size].tobytes()
-            block.sources[esi] = (int(symbol[0]), data)
+            data = symbol[prefix : prefix + size].tobytes()
+            block.sources[esi] = (flow, data)
             block.rebuilt += 1
             self.stats.delivered += 1
             self.stats.recovered += 1
-            events.append(Delivery(int(symbol[0]), data, recovered=True, delay=delay))
+            events.append(Delivery(flow, data, recovered=True, delay=delay))
         return events
 
     def _finish(self, block: _Block, outcome: BlockOutcome) -> BlockReport:

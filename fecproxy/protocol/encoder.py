@@ -302,7 +302,7 @@ class BlockEncoder:
         # round's first block has closed (which bounds how long a round's repair waits: at most
         # the first block's flush deadline plus one flush interval).
         group = self._groups.get(index)
-        if group is None or lane in group.lanes or group.blocks[0].k:
+        if group is None or not group.blocks or lane in group.lanes or group.blocks[0].k:
             group = self._groups[index] = _Group()
         group.blocks.append(block)
         group.lanes.add(lane)
@@ -324,6 +324,7 @@ class BlockEncoder:
     def send(self, datagram: bytes, flow: int, now: float) -> list[bytes]:
         """Frame one application datagram; returns the packets to put on the link now.
 
+        ``flow`` is the packed 24-bit flow id (slot << 8 | generation), trusted as such.
         An oversize datagram returns no packet and is counted in ``stats.dropped``.
         """
         return self.send_batch(((datagram, flow),), now)
@@ -378,7 +379,7 @@ class BlockEncoder:
                 count = block.count
                 start = count * block.width + prefix
                 storage = block.storage
-                pack_prefix(storage, start - prefix, flow, size)
+                pack_prefix(storage, start - prefix, flow >> 8, flow & 0xFF, size)  # slot, generation, length
                 storage[start : start + size] = datagram
                 if size + prefix > block.symbol_len:
                     block.symbol_len = size + prefix
@@ -391,9 +392,9 @@ class BlockEncoder:
                 tally[0] += 1
                 tally[1] += size
                 if count < block.settings.block_size:
-                    sources.append(pack_source(0, session, block.base | (count - 1), flow, block.previous_k) + datagram)
+                    sources.append(pack_source(0, session, block.base | (count - 1), flow << 8 | block.previous_k) + datagram)
                     continue
-                sources.append(pack_source(flag_end, session, block.base | (count - 1), flow, block.previous_k) + datagram)
+                sources.append(pack_source(flag_end, session, block.base | (count - 1), flow << 8 | block.previous_k) + datagram)
                 del blocks[key]
                 deferred.append(block)
                 if self._retire(block):
@@ -537,12 +538,24 @@ class BlockEncoder:
     def _count_drop(self, reason: DropReason, count: int) -> None:
         self.stats.dropped[reason] = self.stats.dropped.get(reason, 0) + count
 
+    def _abandon(self, block: _Block) -> None:
+        """Forget an empty block: no packet of it went out, so there is nothing to send."""
+        del self._by_sbn[block.sbn]
+        group = block.group
+        group.blocks.remove(block)
+        group.lanes.discard(block.lane)
+        group.open -= 1
+        self._recycle(block)
+
     def _close_all(self, blocks: list[_Block]) -> list[bytes]:
         """Close these blocks early; returns the repair packets of the rounds this completes."""
         out: list[bytes] = []
         for block in blocks:
             if self._open.get(block.key) is block:
                 del self._open[block.key]
+            if not block.count:  # opened by a batch item that then raised (a caller bug): nothing to protect
+                self._abandon(block)
+                continue
             done = self._retire(block)
             self._encode([block])
             if done:
