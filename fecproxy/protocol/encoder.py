@@ -189,7 +189,7 @@ class _Block:
 
     __slots__ = (
         "storage", "symbols", "width", "sbn", "base", "key", "class_name", "settings", "count", "symbol_len",
-        "content", "deadline", "previous_k", "k", "m", "length", "packets", "group", "lane",
+        "content", "deadline", "previous_k", "k", "m", "length", "packets", "group", "lane", "limit",
     )
 
     def __init__(self, storage: memoryview, symbols: np.ndarray, sbn: int, key: int, class_name: str,
@@ -197,6 +197,7 @@ class _Block:
         self.storage, self.symbols, self.width = storage, symbols, symbols.shape[1]
         self.sbn, self.base, self.key, self.class_name = sbn, sbn << wire.ESI_BITS, key, class_name
         self.settings = settings
+        self.limit = settings.block_size  # k: the block closes full at this many datagrams
         self.count = 0  # datagrams in the block
         self.symbol_len = 0  # prefix + longest datagram so far
         self.content = 0  # Σ prefix + datagram: the RFC 6363 §8.2 byte budget for repair
@@ -347,8 +348,15 @@ class BlockEncoder:
         sources: list[bytes] = []
         pieces = [sources]  # source runs, each full block's (still empty) repair list between them
         deferred: list[_Block] = []
-        sent_by_class: dict[int, list[int]] = {}  # class -> [datagrams, their bytes]
+        classes = len(bounds) + 1
+        sent_count, sent_size = [0] * classes, [0] * classes  # per class: datagrams, their bytes
         oversize = 0
+        # The current block's fields live in locals while datagrams go to it (with one class and
+        # D = 1, every datagram of a batch): written back before another block is touched.
+        cur: _Block | None = None
+        cur_key = -1
+        count = width = symbol_len = content = limit = base = previous_k = 0
+        storage = None
         try:
             for datagram, flow in items:
                 size = len(datagram)
@@ -366,40 +374,43 @@ class BlockEncoder:
                     lane = lanes.get(index, 0)
                     lanes[index] = (lane + 1) % depth
                     key = index * MAX_INTERLEAVE + lane
-                block = blocks.get(key)
-                if block is None:
-                    block = self._open_block(key, index, now, lane)
-                elif size + prefix > block.width:  # opened before max_datagram grew: close it early
-                    del blocks[key]
-                    deferred.append(block)
-                    if self._retire(block):
-                        sources = []
-                        pieces += (block.group, sources)
-                    block = self._open_block(key, index, now, lane)
-                count = block.count
-                start = count * block.width + prefix
-                storage = block.storage
+                symbol = size + prefix
+                if key != cur_key or symbol > width:
+                    if cur is not None:
+                        cur.count, cur.symbol_len, cur.content = count, symbol_len, content
+                    block = blocks.get(key)
+                    if block is None:
+                        block = self._open_block(key, index, now, lane)
+                    elif symbol > block.width:  # opened before max_datagram grew: close it early
+                        del blocks[key]
+                        deferred.append(block)
+                        if self._retire(block):
+                            sources = []
+                            pieces += (block.group, sources)
+                        block = self._open_block(key, index, now, lane)
+                    cur, cur_key = block, key
+                    count, width, storage, symbol_len = block.count, block.width, block.storage, block.symbol_len
+                    content, limit, base, previous_k = block.content, block.limit, block.base, block.previous_k
+                start = count * width + prefix
                 pack_prefix(storage, start - prefix, flow >> 8, flow & 0xFF, size)  # slot, generation, length
                 storage[start : start + size] = datagram
-                if size + prefix > block.symbol_len:
-                    block.symbol_len = size + prefix
-                block.content += size + prefix
+                if symbol > symbol_len:
+                    symbol_len = symbol
+                content += symbol
                 count += 1
-                block.count = count
-                tally = sent_by_class.get(index)
-                if tally is None:
-                    tally = sent_by_class[index] = [0, 0]
-                tally[0] += 1
-                tally[1] += size
-                if count < block.settings.block_size:
-                    sources.append(pack_source(0, session, block.base | (count - 1), flow << 8 | block.previous_k) + datagram)
+                sent_count[index] += 1
+                sent_size[index] += size
+                if count < limit:
+                    sources.append(pack_source(0, session, base | (count - 1), flow << 8 | previous_k) + datagram)
                     continue
-                sources.append(pack_source(flag_end, session, block.base | (count - 1), flow << 8 | block.previous_k) + datagram)
+                sources.append(pack_source(flag_end, session, base | (count - 1), flow << 8 | previous_k) + datagram)
+                cur.count, cur.symbol_len, cur.content = count, symbol_len, content
                 del blocks[key]
-                deferred.append(block)
-                if self._retire(block):
+                deferred.append(cur)
+                if self._retire(cur):
                     sources = []
-                    pieces += (block.group, sources)
+                    pieces += (cur.group, sources)
+                cur, cur_key, width = None, -1, 0
                 if len(deferred) >= MAX_BLOCKS_PER_ENCODE:
                     self._encode(deferred)
                     deferred = []
@@ -407,8 +418,12 @@ class BlockEncoder:
             # Even if a bad item raises midway, the block state stays true to the buffers: the
             # datagrams copied in are counted (their source packets are lost with the exception,
             # so a receiver sees them as link loss and the repair still matches).
+            if cur is not None:
+                cur.count, cur.symbol_len, cur.content = count, symbol_len, content
             stats, names, header = self.stats, settings.class_names, wire.SOURCE_HEADER_BYTES
-            for index, (sent, sent_bytes) in sent_by_class.items():
+            for index, sent, sent_bytes in zip(range(classes), sent_count, sent_size):
+                if not sent:
+                    continue
                 stats.source_packets += sent
                 stats.source_bytes += sent_bytes + sent * header
                 stats.datagram_bytes += sent_bytes
