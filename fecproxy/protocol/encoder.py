@@ -43,6 +43,7 @@ from __future__ import annotations
 from bisect import bisect_left
 from collections.abc import Iterable
 from dataclasses import dataclass, field
+from functools import cached_property
 
 import numpy as np
 
@@ -133,7 +134,7 @@ class EncoderSettings:
         before the RFC 6363 §8.2 byte cap, which depends on the block's datagrams."""
         return repair_count(self.block_size, self.repair, k_actual, self.short_block_repair)
 
-    @property
+    @cached_property
     def class_names(self) -> tuple[str, ...]:
         return size_class_names(self.size_classes)
 
@@ -299,6 +300,9 @@ class BlockEncoder:
         self._open[key] = block
         self._by_sbn[sbn] = block
         self._newest = block
+        block.lane = lane
+        if settings.interleave == 1:
+            return block  # no rounds: each block's repair goes out as it closes
         # A lane joins its class's current round unless it already has a block there or the
         # round's first block has closed (which bounds how long a round's repair waits: at most
         # the first block's flush deadline plus one flush interval).
@@ -308,7 +312,7 @@ class BlockEncoder:
         group.blocks.append(block)
         group.lanes.add(lane)
         group.open += 1
-        block.group, block.lane = group, lane
+        block.group = group
         return block
 
     def control(self, body: bytes) -> bytes:
@@ -386,7 +390,7 @@ class BlockEncoder:
                         deferred.append(block)
                         if self._retire(block):
                             sources = []
-                            pieces += (block.group, sources)
+                            pieces += (block.group or block.packets, sources)
                         block = self._open_block(key, index, now, lane)
                     cur, cur_key = block, key
                     count, width, storage, symbol_len = block.count, block.width, block.storage, block.symbol_len
@@ -409,7 +413,7 @@ class BlockEncoder:
                 deferred.append(cur)
                 if self._retire(cur):
                     sources = []
-                    pieces += (cur.group, sources)
+                    pieces += (cur.group or cur.packets, sources)
                 cur, cur_key, width = None, -1, 0
                 if len(deferred) >= MAX_BLOCKS_PER_ENCODE:
                     self._encode(deferred)
@@ -476,6 +480,8 @@ class BlockEncoder:
         elif successor_sbn == self._next_sbn:
             self._carry = (block.sbn, k)
         group = block.group
+        if group is None:
+            return True
         group.open -= 1
         if group.open:
             return False
@@ -557,9 +563,10 @@ class BlockEncoder:
         """Forget an empty block: no packet of it went out, so there is nothing to send."""
         del self._by_sbn[block.sbn]
         group = block.group
-        group.blocks.remove(block)
-        group.lanes.discard(block.lane)
-        group.open -= 1
+        if group is not None:
+            group.blocks.remove(block)
+            group.lanes.discard(block.lane)
+            group.open -= 1
         self._recycle(block)
 
     def _close_all(self, blocks: list[_Block]) -> list[bytes]:
@@ -574,5 +581,5 @@ class BlockEncoder:
             done = self._retire(block)
             self._encode([block])
             if done:
-                out += block.group.interleaved()
+                out += block.group.interleaved() if block.group is not None else block.packets
         return out
