@@ -66,7 +66,7 @@ FLAG_AUTH = wire.FLAG_AUTH
 #: Proposed: bit 6 says the body is encrypted.  Kept visible so that a pair with ``encrypt`` set
 #: on one side only is told exactly that, not just "bad tag".  To be added to wire.py when the
 #: trailer is wired in.
-FLAG_ENCRYPTED = 0x40
+FLAG_ENCRYPTED = wire.FLAG_ENCRYPTED
 _AUTH_FLAGS = FLAG_AUTH | FLAG_ENCRYPTED
 
 HEADER_BYTES = wire.COMMON_HEADER.size  # 10

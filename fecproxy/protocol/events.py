@@ -32,6 +32,11 @@ class DropReason(StrEnum):
     NO_PEER = "no_peer"  # receiver has no peer address yet to send replies to
     UNREACHABLE = "unreachable"  # receiver could not open a socket towards forward
     INTERNAL_ERROR = "internal_error"  # a bug in fecproxy: logged with a traceback, cost one packet
+    AUTH = "auth"  # no tag, wrong key, wrong mode or a tag that does not match (auth.key_file set)
+    REPLAY = "replay"  # an authentic packet seen before, or too old for the replay window
+    SESSION_LIMIT = "session_limit"  # a new sender session while every session slot is live
+    MEMORY_LIMIT = "memory_limit"  # the decoder's byte budget is full of its own block
+    DECODE_LIMIT = "decode_limit"  # a rebuild waits: decoder.max_rebuilds_per_s reached
 
 
 class BlockOutcome(StrEnum):
@@ -83,6 +88,7 @@ class Dropped(Event):
 
     reason: DropReason
     detail: str
+    error: Exception | None = None  # the auth/replay error, for the shell's rate-limited notice
 
 
 @dataclass(frozen=True, slots=True)
@@ -91,6 +97,15 @@ class SessionStarted(Event):
 
     session: int
     previous: int | None
+
+
+@dataclass(frozen=True, slots=True)
+class ControlReceived(Event):
+    """A control packet (e.g. a loss report) of a live session, authentic when keyed; ``body``
+    is everything after the common header, for the shell to route."""
+
+    session: int
+    body: bytes
 
 
 def _delivery_maker():

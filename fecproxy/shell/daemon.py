@@ -318,7 +318,9 @@ class Daemon:
                     else:
                         valid = valid and kind is not Dropped
                         self._handle_event(event, now)
-                # The peer is learnt only from a valid packet of the adopted session that dropped nothing.
+                # The peer is learnt only from a valid packet of the replied-to session (see
+                # protocol.decoder: it changes only once it has been quiet for the hold time) that
+                # dropped nothing: a stranger's packets of a session of its own never move it.
                 if learn and in_session and valid and address != self.peer:
                     if self.peer is not None:
                         log_event(log, logging.INFO, "peer_changed", old=format_sockaddr(self.peer), new=format_sockaddr(address))
