@@ -17,6 +17,10 @@ tools may count on link packet i of a block-aligned stream being ESI i mod n.
 A datagram longer than ``max_datagram`` is refused the same way by ``send`` and ``send_batch``:
 counted as an ``oversize`` drop in ``stats.dropped`` and skipped (no packet, no place in the
 block), so one bad datagram never costs the rest of a batch and a daemon needs no try/except.
+
+With a :class:`~fecproxy.protocol.auth.Sealer` (a key is configured), every packet the encoder
+returns — source, repair and control (``control``) — passes through ``_sealed``, the one place
+that protects outgoing packets, so no kind of packet can leave without its tag.
 """
 
 from __future__ import annotations
@@ -28,6 +32,7 @@ import numpy as np
 
 from fecproxy.coding.codec import block_code
 from fecproxy.protocol import wire
+from fecproxy.protocol.auth import Sealer
 from fecproxy.protocol.events import DropReason
 from fecproxy.protocol.repair_rule import DEFAULT_SHORT_BLOCK_REPAIR, SHORT_BLOCK_RULES, repair_count
 
@@ -103,10 +108,13 @@ class _FullBlock:
 class BlockEncoder:
     """One direction's encoder.  Not thread-safe; one per link direction."""
 
-    def __init__(self, settings: EncoderSettings, session: int, *, first_sbn: int = 0):
+    def __init__(self, settings: EncoderSettings, session: int, *, first_sbn: int = 0, sealer: Sealer | None = None):
         if not 0 <= session <= 0xFFFFFFFF:
             raise ValueError(f"session {session} does not fit 32 bits")
         self.session = session
+        #: Protects every packet returned (None: no key).  The shell swaps its key on a reload;
+        #: the sequence runs on.
+        self.sealer = sealer
         self.stats = EncoderStats()
         self._sbn = first_sbn % wire.SBN_MODULUS
         self._settings = settings
@@ -178,7 +186,20 @@ class BlockEncoder:
         self.stats.source_bytes += len(out[0])
         if full:
             out.extend(self._close())
-        return out
+        return self._sealed(out)
+
+    def control(self, body: bytes) -> bytes:
+        """A control packet of this session carrying ``body`` (e.g. a loss report), sealed like
+        every other packet."""
+        return self._sealed([wire.encode_control(self.session, body)])[0]
+
+    def _sealed(self, packets: list[bytes]) -> list[bytes]:
+        """The one place outgoing packets are protected (source, repair and control alike)."""
+        sealer = self.sealer
+        if sealer is None or not packets:
+            return packets
+        seal = sealer.seal
+        return [seal(packet) for packet in packets]
 
     def send_batch(self, items: Iterable[tuple[bytes, int]], now: float) -> list[bytes]:
         """Frame a batch of ``(datagram, flow)`` that arrived together at ``now``.
@@ -245,8 +266,8 @@ class BlockEncoder:
         if deferred:
             self._encode(deferred)
         if len(pieces) == 1:
-            return sources
-        return [data for piece in pieces for data in piece]
+            return self._sealed(sources)
+        return self._sealed([data for piece in pieces for data in piece])
 
     def _set_aside(self) -> _FullBlock:
         """Close the full open block without encoding it: it keeps its buffer until encoded."""
@@ -310,7 +331,7 @@ class BlockEncoder:
 
     def on_timer(self, now: float) -> list[bytes]:
         if self._deadline is not None and now >= self._deadline:
-            return self._close()
+            return self._sealed(self._close())
         return []
 
     def close(self) -> list[bytes]:
@@ -318,7 +339,7 @@ class BlockEncoder:
 
         The encoder stays usable; the next datagram opens a new block.
         """
-        return self._close() if self._count else []
+        return self._sealed(self._close()) if self._count else []
 
     def _count_drop(self, reason: DropReason, count: int) -> None:
         self.stats.dropped[reason] = self.stats.dropped.get(reason, 0) + count

@@ -163,6 +163,11 @@ def encode_source(
     return pack_source_header(FLAG_END if end else 0, session, (sbn << ESI_BITS) | esi, flow, previous_k) + data
 
 
+def encode_control(session: int, body: bytes) -> bytes:
+    """A control packet (type 2): the common header (no flags, payload id 0) and the body."""
+    return COMMON_HEADER.pack((VERSION << 4) | PacketType.CONTROL, 0, session, 0) + body
+
+
 def encode_repair(session: int, sbn: int, esi: int, k: int, symbol: bytes) -> bytes:
     if not (1 <= k <= MAX_K and k <= esi <= MAX_ESI):
         raise ValueError(f"repair ESI {esi} with k={k} is outside 1 ≤ k ≤ ESI ≤ {MAX_ESI}")
