@@ -30,15 +30,6 @@ def main(args: argparse.Namespace) -> int:
         for message in error.messages:
             print(message, file=sys.stderr)
         return 2
-    if config.auth.enabled:
-        # Until the daemon puts tags on packets, running would silently ignore the protection
-        # the config asks for: refuse instead.  Removed when the trailer is wired in.
-        print(
-            f"{args.config}: auth: this build checks key files but does not yet authenticate packets; "
-            f"remove the auth section to run without authentication",
-            file=sys.stderr,
-        )
-        return 2
     setup_logging(args.log_level or str(config.log.level), args.log_format or str(config.log.format))
     from fecproxy.shell.daemon import Daemon, SocketOpenError
 

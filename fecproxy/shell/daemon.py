@@ -30,8 +30,9 @@ from fecproxy import __version__
 from fecproxy.config import Config
 from fecproxy.config.addresses import format_sockaddr
 from fecproxy.linkmodel.estimator import LossEstimator
+from fecproxy.protocol import auth
 from fecproxy.protocol.decoder import BlockDecoder, DecoderStats
-from fecproxy.protocol.events import BlockReport, Delivery, DropReason, Dropped, SessionStarted
+from fecproxy.protocol.events import BlockReport, ControlReceived, Delivery, DropReason, Dropped, SessionStarted
 from fecproxy.protocol.encoder import BlockEncoder, EncoderStats
 from fecproxy.protocol.flows import FlowTable
 from fecproxy.shell.logs import log_event, log_exception
@@ -42,6 +43,7 @@ from fecproxy.shell.settings import (
     encoder_settings,
     flow_idle_timeout,
     keep_fixed,
+    keyring,
     needs_restart,
     read_new_config,
 )
@@ -78,8 +80,13 @@ class Daemon:
         self.config_path = config_path
         self.handle_signals = handle_signals
         self.session = secrets.randbits(32)
-        self.encoder = BlockEncoder(encoder_settings(config), self.session)
-        self.decoder = BlockDecoder(decoder_settings(config))
+        keys = keyring(config)
+        # A fresh random salt per start: with the random session it makes the encrypted mode's
+        # nonces unique across restarts (protocol.auth, "Nonce rule").
+        sealer = None if keys is None else auth.Sealer(keys.current, secrets.randbits(auth.SALT_BITS))
+        self.encoder = BlockEncoder(encoder_settings(config), self.session, sealer=sealer)
+        self.decoder = BlockDecoder(decoder_settings(config), keys)
+        self.auth_notice = auth.FailureNotice()
         self.estimator = LossEstimator(window=LOSS_ESTIMATE_WINDOW)
         self.flows: FlowTable = FlowTable(config.flows.max, flow_idle_timeout(config))
         self._reloads: dict[str, int] = {"applied": 0, "rejected": 0}
@@ -216,6 +223,7 @@ class Daemon:
                     forward=str(cfg.forward) if cfg.forward else "-",
                     k=cfg.fec.block_size, m=cfg.fec.repair, flush_ms=cfg.fec.flush_ms,
                     session=f"{self.session:08x}", metrics=self.metrics_port or "off",
+                    auth=repr(self.decoder.keyring) if self.decoder.keyring is not None else "off",
                 )
                 task_status.started(self)
         finally:
@@ -370,12 +378,28 @@ class Daemon:
             log_event(log, logging.WARNING, "reload_needs_restart", keys=",".join(fixed))
         self.encoder.update(encoder_settings(new))
         self.decoder.settings = decoder_settings(new)
+        self._apply_keys(new)
         self.flows.idle_timeout = flow_idle_timeout(new)
         self.config = keep_fixed(self.config, new)
         self._reloads["applied"] += 1
         log_event(log, logging.INFO, "reloaded", k=new.fec.block_size, m=new.fec.repair, flush_ms=new.fec.flush_ms)
         self._reschedule()
         return True
+
+    def _apply_keys(self, new: Config) -> None:
+        """New keys from the reloaded config: sent with from the next packet on, accepted at
+        once; the sequence runs on and every session keeps its replay window."""
+        keys = keyring(new)
+        changed = repr(keys) != repr(self.decoder.keyring)
+        self.decoder.keyring = keys
+        if keys is None:
+            self.encoder.sealer = None
+        elif self.encoder.sealer is None:
+            self.encoder.sealer = auth.Sealer(keys.current, secrets.randbits(auth.SALT_BITS))
+        else:
+            self.encoder.sealer.key = keys.current
+        if changed:
+            log_event(log, logging.INFO, "keys", auth=repr(keys) if keys is not None else "off")
 
     def _next_deadline(self) -> float:
         deadlines = [d for d in (self.encoder.next_deadline(), self.decoder.next_deadline(), self.flows.next_deadline()) if d is not None]
@@ -406,7 +430,16 @@ class Daemon:
             if event.unrecovered:
                 log_event(log, logging.DEBUG, "block_unrecovered", sbn=event.sbn, k=event.k, lost=event.lost, outcome=event.outcome)
         elif kind is Dropped:
-            log_event(log, logging.DEBUG, "dropped", reason=event.reason, detail=event.detail)
+            if event.reason is DropReason.AUTH and event.error is not None:
+                # One line per kind of failure per interval: a peer with the wrong key says so
+                # plainly, a flood of forgeries does not flood the log.
+                line = self.auth_notice.note(event.error, now)
+                if line is not None:
+                    log_event(log, logging.WARNING, "auth_failed", kind=event.error.kind, detail=line)
+            else:
+                log_event(log, logging.DEBUG, "dropped", reason=event.reason, detail=event.detail)
+        elif kind is ControlReceived:
+            log_event(log, logging.DEBUG, "control", session=f"{event.session:08x}", size=len(event.body))
         elif kind is SessionStarted:
             log_event(log, logging.INFO, "peer_session", session=f"{event.session:08x}",
                       previous=f"{event.previous:08x}" if event.previous is not None else "-")
