@@ -157,7 +157,7 @@ class _Session:
         self.id = session
         self.open: OrderedDict[int, _Block] = OrderedDict()
         self.finished: OrderedDict[int, None] = OrderedDict()
-        self.highest: int | None = None
+        self.highest: int | None = None  # the newest block that completed: the window's front
         self.first_sbn: int | None = None  # the first block this session showed us
         self.last_seen = now  # its last valid packet
         self.packets = 0  # valid packets so far
@@ -457,13 +457,8 @@ class BlockDecoder:
             return None
         if sess.highest is not None:
             behind = (sess.highest - sbn) % wire.SBN_MODULUS
-            if 0 < behind < wire.SBN_MODULUS // 2:
-                if behind > self._window():
-                    return None
-            else:
-                sess.highest = sbn
-        else:
-            sess.highest = sbn
+            if 0 < behind < wire.SBN_MODULUS // 2 and behind > self._window():
+                return None
         while self._open_count >= self.settings.max_open_blocks:
             if not self._evict_one(keep, events):
                 return None
@@ -651,6 +646,12 @@ class BlockDecoder:
         sess.finished[block.sbn] = None
         while len(sess.finished) > self._window():
             sess.finished.popitem(last=False)
+        if outcome is BlockOutcome.COMPLETE or outcome is BlockOutcome.RECOVERED:
+            # Only a block that completed moves the window: one packet with a damaged or forged
+            # block number (far ahead) must not make every real block look far behind.
+            highest = sess.highest
+            if highest is None or 0 < (block.sbn - highest) % wire.SBN_MODULUS < wire.SBN_MODULUS // 2:
+                sess.highest = block.sbn
         span = block.k if block.k is not None else block.max_esi + 1
         arrived = block.arrived.bit_count()
         lost = span - arrived
