@@ -156,7 +156,7 @@ class _Session:
     def __init__(self, session: int, now: float, window: ReplayWindow | None):
         self.id = session
         self.open: OrderedDict[int, _Block] = OrderedDict()
-        self.finished: OrderedDict[int, None] = OrderedDict()
+        self.finished: OrderedDict[int, int] = OrderedDict()  # SBN -> mask of datagrams delivered
         self.highest: int | None = None  # the newest block that completed: the window's front
         self.first_sbn: int | None = None  # the first block this session showed us
         self.last_seen = now  # its last valid packet
@@ -253,7 +253,7 @@ class BlockDecoder:
                     if block is None:
                         block = self._block_for(primary, sbn, now, events)
                         if block is None:
-                            events.append(self._behind(primary, sbn, repair=False))
+                            self._outside_block(primary, sbn, esi, flow, bytes(data[wire.SOURCE_HEADER_BYTES:]), events)
                             return events, True
                     if previous_k and not block.told_previous:
                         block.told_previous = True
@@ -377,8 +377,10 @@ class BlockDecoder:
         if block is None:
             if isinstance(pkt, wire.RepairPacket) and pkt.sbn in sess.finished:
                 self.stats.repair_unneeded += 1  # normal: a block complete before its repair arrived
+            elif isinstance(pkt, wire.SourcePacket):
+                self._outside_block(sess, pkt.sbn, pkt.esi, pkt.flow, pkt.data, events)
             else:
-                events.append(self._behind(sess, pkt.sbn, repair=isinstance(pkt, wire.RepairPacket)))
+                events.append(self._behind(sess, pkt.sbn, repair=True))
             return
         if isinstance(pkt, wire.SourcePacket):
             if pkt.previous_k and not block.told_previous:
@@ -498,6 +500,21 @@ class BlockDecoder:
     def _window(self) -> int:
         """How far behind the newest block a never-seen block may still be opened."""
         return self.settings.max_open_blocks * FINISHED_MEMORY_FACTOR
+
+    def _outside_block(self, sess: _Session, sbn: int, esi: int, flow: int, data: bytes, events: list[Event]) -> None:
+        """A source packet whose block is finished or too far behind to open.
+
+        A block that ended without all its datagrams (expired, evicted, superseded) remembers
+        which ones it delivered: a late one it never delivered is delivered now rather than
+        lost.  That also undoes the harm of a damaged or forged packet that opened a block ahead
+        of the real one and expired before the real packets came."""
+        delivered = sess.finished.get(sbn)
+        if delivered is not None and esi <= wire.MAX_ESI and not delivered >> esi & 1:
+            sess.finished[sbn] = delivered | 1 << esi
+            self.stats.delivered += 1
+            events.append(direct_delivery(flow, data))
+            return
+        events.append(self._behind(sess, sbn, repair=False))
 
     def _behind(self, sess: _Session, sbn: int, *, repair: bool) -> Dropped:
         """The drop for a packet whose block is finished or too far behind to open."""
@@ -643,7 +660,9 @@ class BlockDecoder:
         self._open_count -= 1
         sess.bytes -= block.bytes
         self._bytes -= block.bytes
-        sess.finished[block.sbn] = None
+        # What the block delivered, for late packets: all of it when complete or recovered (-1
+        # has every bit set), else the datagrams that arrived.
+        sess.finished[block.sbn] = -1 if outcome is BlockOutcome.COMPLETE or outcome is BlockOutcome.RECOVERED else block.arrived
         while len(sess.finished) > self._window():
             sess.finished.popitem(last=False)
         if outcome is BlockOutcome.COMPLETE or outcome is BlockOutcome.RECOVERED:
