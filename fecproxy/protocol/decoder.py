@@ -4,6 +4,8 @@ A source packet is delivered the moment it arrives (no added delay when nothing 
 any k packets of a block are in hand, its missing datagrams are rebuilt and delivered, each exactly
 once.  A block that can no longer complete is expired after the hold time and reported, so the
 shell can count loss on the link (before recovery) apart from loss after it (RFC 6363 §6).
+A finished block remembers which datagrams it delivered: a late source packet of a block that
+ended incomplete is still delivered if its datagram never was (and dropped as ``late`` if it was).
 
 ``receive`` returns the events and whether the packet was a valid packet of the *replied-to*
 session (below): the shell learns its peer's address only from those.
@@ -289,8 +291,8 @@ class BlockDecoder:
             session, _, sequence = auth.peek_trailer(data)
             live = self._sessions.get(session)
             window = live.window if live is not None else self._retired_windows.get(session)
-            if window is not None and not window.check(sequence).accepted:
-                verdict = window.check(sequence)
+            verdict = window.check(sequence) if window is not None else None
+            if verdict is not None and not verdict.accepted:
                 raise auth.ReplayedPacket(f"sequence {sequence} is {verdict.value.replace('_', ' ')} (highest {window.highest})", sequence)
             verified = auth.verify(data, self.keyring)
         except auth.AuthError as error:
