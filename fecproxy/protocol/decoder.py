@@ -550,7 +550,9 @@ class BlockDecoder:
         if self._bytes + cost > self.settings.max_memory_bytes and not self._make_room(cost, block, events):
             events.append(self._drop(DropReason.MEMORY_LIMIT, f"source {sbn}/{esi}: over max_memory_bytes"))
             return
-        self._hold(block, cost)
+        block.bytes += cost  # _hold, inlined: once per datagram
+        block.owner.bytes += cost
+        self._bytes += cost
         block.sources[esi] = (flow, data)
         block.arrived |= 1 << esi
         if esi > block.max_esi:
