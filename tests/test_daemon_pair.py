@@ -7,6 +7,7 @@ is ``support/daemon_pair.py``; the ``pairs`` fixture that starts and stops pairs
 
 from __future__ import annotations
 
+import json
 import math
 import random
 import signal
@@ -20,6 +21,7 @@ from pathlib import Path
 import pytest
 from scipy.stats import binom, hypergeom
 
+from fecproxy.commands import EXIT_CANNOT_START, EXIT_INVALID, EXIT_UNREADABLE
 from support.daemon_pair import (
     DRAIN_TIMEOUT,
     LOOPBACK,
@@ -386,11 +388,14 @@ def test_invalid_config_exits_2_with_the_message(tmp_path):
     assert "did you mean fec.flush_ms?" in result.stderr
     assert "Traceback" not in result.stderr
     missing = _run_to_exit(tmp_path / "absent.yaml")
-    assert missing.returncode == 2 and "cannot read" in missing.stderr
+    # The same status as `fecproxy check` for the same fault (fecproxy.commands.EXIT_UNREADABLE).
+    assert missing.returncode == EXIT_UNREADABLE == 1 and "cannot read" in missing.stderr
+    assert run_to_exit("check", str(tmp_path / "absent.yaml")).returncode == EXIT_UNREADABLE
+    assert run_to_exit("check", str(path)).returncode == EXIT_INVALID == result.returncode
 
 
 @pytest.mark.parametrize("busy_key", ["listen", "link.bind", "metrics.listen"])
-def test_busy_port_exits_1_with_a_clear_message(tmp_path, busy_key):
+def test_busy_port_exits_3_with_a_log_event_naming_the_key(tmp_path, busy_key):
     kind = socket.SOCK_STREAM if busy_key == "metrics.listen" else socket.SOCK_DGRAM
     with socket.socket(socket.AF_INET, kind) as holder:
         holder.bind((LOOPBACK, 0))
@@ -404,11 +409,16 @@ def test_busy_port_exits_1_with_a_clear_message(tmp_path, busy_key):
             document["link"]["bind"] = busy
         else:
             document["metrics"]["listen"] = busy
-        result = _run_to_exit(write_config(tmp_path / "busy.yaml", document))
-    assert result.returncode == 1, result.stderr
-    assert busy_key in result.stderr and busy in result.stderr
-    assert "in use" in result.stderr
+        path = write_config(tmp_path / "busy.yaml", document)
+        result = _run_to_exit(path)
+        as_json = run_to_exit("run", str(path), "--log-format", "json")
+    assert result.returncode == EXIT_CANNOT_START == 3, result.stderr
+    assert "event=cannot_start" in result.stderr and f"key={busy_key}" in result.stderr
+    assert busy in result.stderr and "in use" in result.stderr
     assert "Traceback" not in result.stderr
+    assert as_json.returncode == EXIT_CANNOT_START
+    event = json.loads(as_json.stderr.strip().splitlines()[-1])
+    assert (event["event"], event["key"], event["address"]) == ("cannot_start", busy_key, busy)
 
 
 # --------------------------------------------------------------------------------------------

@@ -64,6 +64,8 @@ class _Daemon:
     def loss_estimate(self):
         return None
 
+    received_code = (None, None)
+
 
 def test_metrics_export_the_byte_counters():
     encoder = BlockEncoder(EncoderSettings(block_size=4, repair=2), session=7)

@@ -7,6 +7,7 @@ Sockets only on 127.0.0.1; no timing assertions.
 from __future__ import annotations
 
 import logging
+import math
 import socket
 import sys
 import urllib.request
@@ -112,6 +113,8 @@ class StandInDaemon:
     def loss_estimate(self):
         return (0.05, 2.0)
 
+    received_code = (16, 4)
+
 
 def test_collector_reads_only_the_daemon_view_and_serve_exposes_it():
     registry, _ = build_registry(StandInDaemon())
@@ -127,6 +130,20 @@ def test_collector_reads_only_the_daemon_view_and_serve_exposes_it():
     assert all(f'reason="{reason}"' in text for reason in DropReason)
     assert 'fecproxy_info{k="8",m="2",role="receiver"' in text
     assert "fecproxy_link_loss_ratio 0.05" in text
+    assert "fecproxy_received_code_k 16.0" in text and "fecproxy_received_code_m 4.0" in text
+    assert "_created" not in text  # no creation-time series beside the counters and the histogram
+
+
+def test_link_and_code_gauges_are_present_as_nan_before_traffic():
+    """An idle daemon exposes its estimate and the peer's code as NaN, not by their absence."""
+    idle = StandInDaemon()
+    idle.loss_estimate = lambda: None
+    idle.received_code = (None, None)
+    registry, _ = build_registry(idle)
+    values = {sample.name: sample.value for family in registry.collect() for sample in family.samples}
+    for name in ("fecproxy_link_loss_ratio", "fecproxy_link_mean_burst_packets",
+                 "fecproxy_received_code_k", "fecproxy_received_code_m"):
+        assert math.isnan(values[name]), name
 
 
 # ------------------------------------------------------------------------------ reload
@@ -148,8 +165,51 @@ def test_reload_takes_tunables_and_keeps_what_needs_a_restart():
     assert all(getattr(kept, key) == getattr(running, key) for key in RESTART_KEYS)
 
 
+def test_reload_reports_log_and_flow_table_size_as_needing_a_restart():
+    """Logging is set up once and the flow table built at its size once: a reload says so, and
+    the running config keeps showing what is in force."""
+    running = parse_config_text(SENDER.format(k=16))
+    new = parse_config_text(SENDER.format(k=16) + "log: {level: debug}\nflows: {max: 100, idle_timeout_s: 60}\n")
+    assert needs_restart(running, new) == ["log", "flows.max"]
+    kept = keep_fixed(running, new)
+    assert kept.log == running.log and kept.flows.max == running.flows.max
+    assert kept.flows.idle_timeout_s == 60  # applied
+
+
 def test_reload_without_a_config_file_is_rejected_with_a_reason(tmp_path):
     with pytest.raises(ReloadRejected, match="without a config file"):
         read_new_config(None)
     with pytest.raises(ReloadRejected, match="cannot read"):
         read_new_config(tmp_path / "missing.yaml")
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="reads net.core.rmem_max (Linux)")
+def test_a_buffer_the_kernel_caps_is_reported_with_the_sysctl_to_raise(monkeypatch):
+    rmem_max = int(Path("/proc/sys/net/core/rmem_max").read_text())
+    monkeypatch.setattr(udp, "_reported_caps", set())
+    stream = StringIO()
+    logs.setup_logging("info", "text", stream)
+    try:
+        sock = udp.open_udp_socket(LOOPBACK, 0, receive_buffer=2 * rmem_max, purpose="link.bind")
+        try:
+            assert udp.granted_buffer(sock, "receive") == rmem_max  # socket(7): capped at rmem_max
+        finally:
+            sock.close()
+        udp.open_udp_socket(LOOPBACK, 0, receive_buffer=2 * rmem_max).close()  # reported once only
+    finally:
+        logs.setup_logging()
+    lines = [line for line in stream.getvalue().splitlines() if "socket_buffer_capped" in line]
+    assert len(lines) == 1
+    line = lines[0]
+    assert "level=warning" in line and "socket=link.bind" in line and "key=sockets.receive_buffer_bytes" in line
+    assert f"asked={2 * rmem_max}" in line and f"granted={rmem_max}" in line and "net.core.rmem_max" in line
+
+
+def test_a_buffer_within_the_cap_is_granted_in_full_and_not_reported(monkeypatch):
+    monkeypatch.setattr(udp, "_reported_caps", set())
+    sock = udp.open_udp_socket(LOOPBACK, 0, receive_buffer=65536, send_buffer=65536)
+    try:
+        assert udp.granted_buffer(sock, "receive") == 65536 and udp.granted_buffer(sock, "send") == 65536
+    finally:
+        sock.close()
+    assert not udp._reported_caps

@@ -55,6 +55,8 @@ class _Daemon:
     def loss_estimate(self):
         return self.estimate
 
+    received_code = (12, 4)
+
 
 def _call(app, path: str, method: str = "GET"):
     """One WSGI request: (status line, headers dict, body bytes)."""

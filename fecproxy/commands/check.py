@@ -3,8 +3,9 @@
 Run it before ``fecproxy run`` or before sending a running daemon SIGHUP: it reads the file
 exactly as the daemon does, so a config it accepts is one the daemon accepts.
 
-Exit status: 0 = valid (effective settings on stdout, as YAML with every default filled in);
-1 = the file cannot be read; 2 = invalid config (every fault on stderr, one per line).
+Exit status (fecproxy.commands, shared with ``run``): 0 = valid (effective settings on stdout, as
+YAML with every default filled in); 1 = the file cannot be read; 2 = invalid config (every fault
+on stderr, one per line).
 """
 
 from __future__ import annotations
@@ -14,18 +15,14 @@ import sys
 
 import yaml
 
+from fecproxy.commands import EXIT_INVALID, EXIT_OK, EXIT_UNREADABLE, exit_status_epilog
 from fecproxy.config import ConfigError, ConfigUnreadable, load_config
 
-EXIT_VALID = 0
-EXIT_UNREADABLE = 1
-EXIT_INVALID = 2
+EXIT_VALID = EXIT_OK
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
-    parser.epilog = (
-        f"exit status: {EXIT_VALID} = valid, {EXIT_UNREADABLE} = file cannot be read, "
-        f"{EXIT_INVALID} = invalid config (every fault is listed on stderr)"
-    )
+    parser.epilog = exit_status_epilog(EXIT_OK, EXIT_UNREADABLE, EXIT_INVALID)
     parser.add_argument("config", metavar="CONFIG.yaml", help="the YAML config file to validate")
     parser.add_argument(
         "-q",

@@ -1,21 +1,28 @@
 """``fecproxy run CONFIG.yaml``: one daemon in the foreground, logs on stderr.
 
-Exit status: 0 after SIGTERM/SIGINT, 2 for an invalid config, 1 when a socket cannot be opened.
+Exit status (fecproxy.commands, shared with ``check``): 0 after SIGTERM/SIGINT, 1 when the config
+file cannot be read, 2 for an invalid config, 3 when a configured address cannot be opened (a
+``cannot_start`` log event naming the config key).
 """
 
 from __future__ import annotations
 
 import argparse
+import logging
 import signal
 import sys
 
 import trio
 
-from fecproxy.config import ConfigError, load_config
-from fecproxy.shell.logs import setup_logging
+from fecproxy.commands import EXIT_CANNOT_START, EXIT_INVALID, EXIT_OK, EXIT_UNREADABLE, exit_status_epilog
+from fecproxy.config import ConfigError, ConfigUnreadable, load_config
+from fecproxy.shell.logs import log_event, setup_logging
+
+log = logging.getLogger("fecproxy.run")
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.epilog = exit_status_epilog(EXIT_OK, EXIT_UNREADABLE, EXIT_INVALID, EXIT_CANNOT_START)
     parser.add_argument("config", metavar="CONFIG.yaml", help="daemon configuration (see config/*.yaml)")
     parser.add_argument("--log-level", choices=["debug", "info", "warning", "error"], default=None,
                         help="override log.level from the config")
@@ -26,10 +33,14 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 def main(args: argparse.Namespace) -> int:
     try:
         config = load_config(args.config)
+    except ConfigUnreadable as error:
+        for message in error.messages:
+            print(message, file=sys.stderr)
+        return EXIT_UNREADABLE
     except ConfigError as error:
         for message in error.messages:
             print(message, file=sys.stderr)
-        return 2
+        return EXIT_INVALID
     setup_logging(args.log_level or str(config.log.level), args.log_format or str(config.log.format))
     from fecproxy.shell.daemon import Daemon, SocketOpenError
 
@@ -46,16 +57,18 @@ def main(args: argparse.Namespace) -> int:
         signal.signal(signal.SIGINT, on_stop_signal)
         trio.run(daemon.run)
     except SocketOpenError as error:
-        # Reads "CONFIG: cannot open listen 127.0.0.1:5000: Address already in use".
-        print(f"{args.config}: cannot open {error}", file=sys.stderr)
-        return 1
+        # A log event (so --log-format json carries it too), e.g. "event=cannot_start
+        # key=listen address=127.0.0.1:5000 error="Address already in use"".
+        log_event(log, logging.ERROR, "cannot_start", config=args.config, key=error.key, address=str(error.address),
+                  error=error.reason, exit_status=EXIT_CANNOT_START)
+        return EXIT_CANNOT_START
     except OSError as error:
-        print(f"{args.config}: socket error: {error}", file=sys.stderr)
-        return 1
+        log_event(log, logging.ERROR, "cannot_start", config=args.config, error=str(error), exit_status=EXIT_CANNOT_START)
+        return EXIT_CANNOT_START
     except KeyboardInterrupt:
         pass
     # Flushed and closed: a SIGTERM/SIGINT repeated while the interpreter winds down must not
     # turn this clean exit into death by signal (status -15).
     signal.signal(signal.SIGTERM, signal.SIG_IGN)
     signal.signal(signal.SIGINT, signal.SIG_IGN)
-    return 0
+    return EXIT_OK

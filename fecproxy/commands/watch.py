@@ -87,6 +87,7 @@ class Figures:
 
     role: str = "?"
     k: str = "?"
+    decoding: str = "unknown until traffic"  # the peer's code, from its repair packets
     m: str = "?"
     version: str = "?"
     seconds: float | None = None  # the span the rates cover; None = totals since start
@@ -136,7 +137,13 @@ def figures(now: Samples, before: Samples | None = None, seconds: float | None =
                 out.drops[reason] = count
     out.flows = _get(now, "fecproxy_flows")
     if ("fecproxy_link_loss_ratio", ()) in now:
-        out.estimate = (_get(now, "fecproxy_link_loss_ratio"), _get(now, "fecproxy_link_mean_burst_packets"))
+        loss, burst = _get(now, "fecproxy_link_loss_ratio"), _get(now, "fecproxy_link_mean_burst_packets")
+        if math.isfinite(loss):  # NaN: the daemon has not received a block from its peer yet
+            out.estimate = (loss, burst)
+    if ("fecproxy_received_code_k", ()) in now:
+        k, m = _get(now, "fecproxy_received_code_k"), _get(now, "fecproxy_received_code_m")
+        if math.isfinite(k):
+            out.decoding = f"k={k:.0f} m={m:.0f}" if math.isfinite(m) else f"k={k:.0f}"
     return out
 
 
@@ -159,7 +166,7 @@ def render_endpoint(url: str, view: Figures | str) -> list[str]:
     f = view
     span = f"last {f.seconds:.1f} s" if f.seconds else "since start"
     lines = [
-        f"{url}  role={f.role}  code k={f.k} m={f.m}  version {f.version}  ({span})",
+        f"{url}  role={f.role}  code k={f.k} m={f.m}  decoding {f.decoding}  version {f.version}  ({span})",
         f"  link loss (before recovery)  {_percent(f.link_loss):>12}   {f.lost:.0f} of {f.expected:.0f} source packets",
         f"  residual loss (after)        {_percent(f.residual_loss):>12}",
         f"  recovered                    {_per(f.recovered, f.seconds):>12}",
@@ -171,7 +178,7 @@ def render_endpoint(url: str, view: Figures | str) -> list[str]:
         + (", ".join(f"{reason} {_per(count, f.seconds)}" for reason, count in sorted(f.drops.items())) or "none"),
         f"  flows                        {f.flows:.0f}",
         "  online estimate              "
-        + ("— (not a receiving side yet)" if f.estimate is None
+        + ("— (no block received from the peer yet)" if f.estimate is None
            else f"loss {_percent(f.estimate[0])}, mean burst {f.estimate[1]:.2f} packets"),
     ]
     return lines

@@ -1,7 +1,7 @@
 """The daemon's YAML configuration: read once, validated in full, then a frozen typed object.
 
-Following aioquic's configuration object, everything is checked here and nowhere else: the daemon
-receives a :class:`Config` whose values it can trust.  Validation never stops at the first fault:
+Everything is checked here and nowhere else, once: the daemon receives a :class:`Config` whose
+values it can trust and checks none of them again.  Validation never stops at the first fault:
 every message is collected, each naming the file, the key path, the bad value and what is
 expected, and they are raised together as one :class:`ConfigError`.
 
@@ -108,6 +108,12 @@ DEFAULT_SOCKET_BUFFER_BYTES = 4 * 1024 * 1024
 #: SO_RCVBUF/SO_SNDBUF take a C int and Linux doubles the request (socket(7)), so the largest
 #: value that cannot overflow is INT_MAX // 2.
 MAX_SOCKET_BUFFER_BYTES = (2**31 - 1) // 2
+
+#: log.stats_interval_s: one stats line a minute shows a quiet daemon is alive and what the link
+#: did, at 1440 lines a day (a journal keeps that for months); common practice, no source.
+DEFAULT_STATS_INTERVAL_S = 60
+#: A day: beyond that a periodic line tells nothing a restart would not.
+MAX_STATS_INTERVAL_S = 86_400
 
 #: fec.adapt.target_residual: one datagram in a thousand left unrecovered, ten times under the
 #: ~1 % loss that voice and video codecs conceal well (from memory; common practice, no source).
@@ -248,6 +254,7 @@ class SocketsSection:
 class LogSection:
     level: LogLevel = LogLevel.INFO
     format: LogFormat = LogFormat.TEXT
+    stats_interval_s: int = DEFAULT_STATS_INTERVAL_S  # 0 = no periodic stats line
 
 
 @dataclass(frozen=True)
@@ -584,7 +591,16 @@ _SECTIONS: dict[str, tuple[type, dict[str, Callable]]] = {
             "send_buffer_bytes": _Integer(0, MAX_SOCKET_BUFFER_BYTES, f"an integer 0..{MAX_SOCKET_BUFFER_BYTES} (0 = OS default)"),
         },
     ),
-    "log": (LogSection, {"level": _Choice(LogLevel, "log level"), "format": _Choice(LogFormat, "log format")}),
+    "log": (
+        LogSection,
+        {
+            "level": _Choice(LogLevel, "log level"),
+            "format": _Choice(LogFormat, "log format"),
+            "stats_interval_s": _Integer(
+                0, MAX_STATS_INTERVAL_S, f"an integer number of seconds 0..{MAX_STATS_INTERVAL_S} (0 = no stats lines)"
+            ),
+        },
+    ),
     "metrics": (MetricsSection, {"listen": _ADDRESS_TO_BIND}),
     "reports": (
         ReportsSection,

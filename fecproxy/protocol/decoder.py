@@ -73,6 +73,7 @@ from fecproxy.protocol.events import (
     direct_delivery,
 )
 from fecproxy.protocol.replay import ReplayWindow
+from fecproxy.protocol.received_code import ReceivedCode
 
 #: How long an incomplete block waits for more packets.  Must exceed the sender's flush interval
 #: plus the link's delay spread; 500 ms covers a geostationary hop's jitter with room to spare
@@ -195,6 +196,7 @@ class BlockDecoder:
         self.stats = DecoderStats()
         self.session: int | None = None  # the replied-to session
         self._primary: _Session | None = None
+        self.received_code = ReceivedCode()  # the replied-to session's k and m as its repair packets show them
         self._sessions: dict[int, _Session] = {}
         self._retired_windows: OrderedDict[int, ReplayWindow] = OrderedDict()
         self._open_count = 0  # open blocks, all sessions
@@ -279,6 +281,7 @@ class BlockDecoder:
                     primary.packets += 1
                     self.stats.repair_received += 1
                     self.stats.repair_unneeded += 1  # normal: the block completed before its repair came
+                    self.received_code.note(sbn, k, payload_id & wire.ESI_MASK)
                     return [], True
         return self._receive_general(data, now)
 
@@ -333,6 +336,7 @@ class BlockDecoder:
         ):
             previous = self.session
             self._primary, self.session = sess, sess.id
+            self.received_code.reset()
             events.append(SessionStarted(sess.id, previous))
         if isinstance(pkt, wire.ControlPacket):
             events.append(ControlReceived(pkt.session, pkt.body))
@@ -341,6 +345,8 @@ class BlockDecoder:
                 self.stats.source_received += 1
             else:
                 self.stats.repair_received += 1
+                if sess is self._primary:  # the peer's code is the replied-to session's
+                    self.received_code.note(pkt.sbn, pkt.k, pkt.esi)
             self._admit(sess, pkt, now, events)
         return events, self._primary is sess
 

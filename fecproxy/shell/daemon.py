@@ -66,7 +66,7 @@ class SocketOpenError(OSError):
     def __init__(self, key: str, address, error: OSError):
         reason = error.strerror or str(error)
         super().__init__(error.errno, f"{key} {address}: {reason}")
-        self.key, self.address = key, address
+        self.key, self.address, self.reason = key, address, reason
 
     def __str__(self) -> str:
         return self.strerror
@@ -103,6 +103,7 @@ class Daemon:
         self.peer: tuple | None = None
         self.link_address: tuple | None = None
         self.listen_address: tuple | None = None
+        self._logged_code: tuple[int, int] | None = None  # the peer's code last logged
 
     # ------------------------------------------------------------ what metrics reads (DaemonView)
     @property
@@ -147,6 +148,12 @@ class Daemon:
     def flow_count(self) -> int:
         return len(self.flows)
 
+    @property
+    def received_code(self) -> tuple[int | None, int | None]:
+        """(k, m) of the peer's code as seen in its repair packets; (None, None) before any."""
+        code = self.decoder.received_code
+        return code.k, code.m
+
     def loss_estimate(self) -> tuple[float, float] | None:
         estimate = self.estimator.estimate()
         if estimate.samples == 0:
@@ -162,7 +169,7 @@ class Daemon:
         metrics = None
         key, address = "link.bind", cfg.link.bind
         try:
-            self._link_sock = open_udp_socket(cfg.link.bind.host, cfg.link.bind.port, **buffers)
+            self._link_sock = open_udp_socket(cfg.link.bind.host, cfg.link.bind.port, **buffers, purpose="link.bind")
             self._link_writer = DatagramWriter(self._link_sock)
             self.link_address = self._link_sock.getsockname()
             if cfg.link.peer is not None:
@@ -170,7 +177,7 @@ class Daemon:
                 self.peer = resolve(cfg.link.peer.host, cfg.link.peer.port, self._link_sock.family)
             if cfg.role == "sender":
                 key, address = "listen", cfg.listen
-                self._app_sock = open_udp_socket(cfg.listen.host, cfg.listen.port, **buffers)
+                self._app_sock = open_udp_socket(cfg.listen.host, cfg.listen.port, **buffers, purpose="listen")
                 self._app_writer = DatagramWriter(self._app_sock)
                 self.listen_address = self._app_sock.getsockname()
             else:
@@ -215,6 +222,10 @@ class Daemon:
                     nursery.start_soon(self._client_loop)
                 if signals is not None:
                     nursery.start_soon(self._signal_loop, signals)
+                if cfg.log.stats_interval_s:
+                    nursery.start_soon(self._stats_loop, cfg.log.stats_interval_s)
+                # k and m: the code this side sends with (on a receiver, its replies); the code it
+                # decodes is the peer's, known from its first repair packets (a "peer_code" line).
                 log_event(
                     log, logging.INFO, "started", version=__version__, role=str(cfg.role),
                     link=format_sockaddr(self.link_address),
@@ -222,6 +233,8 @@ class Daemon:
                     listen=format_sockaddr(self.listen_address),
                     forward=str(cfg.forward) if cfg.forward else "-",
                     k=cfg.fec.block_size, m=cfg.fec.repair, flush_ms=cfg.fec.flush_ms,
+                    sends="datagrams" if cfg.role == "sender" else "replies",
+                    decoding="peer's code unknown until traffic",
                     session=f"{self.session:08x}", metrics=self.metrics_port or "off",
                     auth=repr(self.decoder.keyring) if self.decoder.keyring is not None else "off",
                 )
@@ -335,6 +348,9 @@ class Daemon:
                     self.peer = address
             await self._deliver(deliveries, now)
             self._reschedule()
+            settled = self.decoder.received_code.settled
+            if settled is not None and settled != self._logged_code:
+                self._log_peer_code(*settled)
 
     async def _timer_loop(self) -> None:
         while True:
@@ -401,6 +417,41 @@ class Daemon:
         if changed:
             log_event(log, logging.INFO, "keys", auth=repr(keys) if keys is not None else "off")
 
+    def _log_peer_code(self, k: int, m: int) -> None:
+        """The code the peer sends with, as its repair packets show it (settled: a later block has
+        begun): INFO the first time per peer session, DEBUG when it changes later (an adapting
+        peer changes m often)."""
+        first = self._logged_code is None
+        self._logged_code = (k, m)
+        log_event(log, logging.INFO if first else logging.DEBUG, "peer_code", k=k, m=m,
+                  detail="decoding the peer's blocks (k from its repair packets, m = highest repair ESI - k + 1)")
+
+    async def _stats_loop(self, interval: float) -> None:
+        """One INFO line every ``interval`` seconds with the counters since the previous line, so
+        a long run shows it is alive and what the link did without a metrics endpoint."""
+        previous = self._stats_snapshot()
+        while True:
+            await trio.sleep(interval)
+            now = self._stats_snapshot()
+            delta = {key: now[key] - previous[key] for key in now}
+            previous = now
+            expected = delta["lost"] + delta["received_source"]
+            log_event(
+                log, logging.INFO, "stats", interval_s=interval,
+                datagrams_in=delta["datagrams_in"], datagrams_out=delta["delivered"],
+                link_packets_in=delta["received_source"] + delta["received_repair"],
+                link_packets_out=delta["source_sent"] + delta["repair_sent"],
+                # Ratios of the interval's source datagrams; "-" when the peer sent none.
+                link_loss=round(delta["lost"] / expected, 6) if expected else "-",
+                residual_loss=round(delta["unrecovered"] / expected, 6) if expected else "-",
+                recovered=delta["recovered"], dropped=delta["dropped"], flows=len(self.flows),
+            )
+
+    def _stats_snapshot(self) -> dict[str, int]:
+        counts = self.summary()
+        counts["datagrams_in"] = self.encoder.stats.source_packets  # one source packet per datagram taken in
+        return counts
+
     def _next_deadline(self) -> float:
         deadlines = [d for d in (self.encoder.next_deadline(), self.decoder.next_deadline(), self.flows.next_deadline()) if d is not None]
         return min(deadlines) if deadlines else math.inf
@@ -441,6 +492,7 @@ class Daemon:
         elif kind is ControlReceived:
             log_event(log, logging.DEBUG, "control", session=f"{event.session:08x}", size=len(event.body))
         elif kind is SessionStarted:
+            self._logged_code = None  # a new peer session: its code is logged afresh
             log_event(log, logging.INFO, "peer_session", session=f"{event.session:08x}",
                       previous=f"{event.previous:08x}" if event.previous is not None else "-")
 

@@ -7,6 +7,7 @@ prefix ``fecproxy_``, base units, counters end in ``_total``, labels only from s
 
 from __future__ import annotations
 
+import math
 import socket
 import threading
 from collections.abc import Iterable, Mapping
@@ -14,12 +15,17 @@ from socketserver import ThreadingMixIn
 from typing import TYPE_CHECKING, Protocol
 from wsgiref.simple_server import WSGIRequestHandler, WSGIServer, make_server
 
-from prometheus_client import CollectorRegistry, Histogram, make_wsgi_app
+from prometheus_client import CollectorRegistry, Histogram, disable_created_metrics, make_wsgi_app
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, InfoMetricFamily
 
 from fecproxy import __version__
 from fecproxy.protocol.events import BlockOutcome, DropReason
 from fecproxy.shell.status import status_app
+
+# prometheus-client adds a `<name>_created` series (the creation time) to every counter and
+# histogram it owns; Prometheus does not need them and they double the series an operator sees
+# (and the README table would not list them).  Process-wide, as the library offers it.
+disable_created_metrics()
 
 if TYPE_CHECKING:
     from fecproxy.protocol.decoder import DecoderStats
@@ -56,6 +62,10 @@ class DaemonView(Protocol):
 
     def loss_estimate(self) -> tuple[float, float] | None:
         """(average loss, mean burst) of the link, or None before any sample."""
+
+    @property
+    def received_code(self) -> tuple[int | None, int | None]:
+        """(k, m) of the peer's code as its repair packets show them; None before any."""
 
 
 #: From 1 ms (a fast LAN hop) to 2 s (well past any hold time we would configure).
@@ -112,16 +122,38 @@ class DaemonCollector:
             reloads.add_metric([result], d.reloads.get(result, 0))
         yield reloads
         yield GaugeMetricFamily("fecproxy_flows", "Application flows in the flow table.", value=d.flow_count())
-        estimate = d.loss_estimate()
-        if estimate is not None:
-            yield GaugeMetricFamily(
-                "fecproxy_link_loss_ratio", "Estimated link loss of source packets (0-1), sliding window.", value=estimate[0]
-            )
-            yield GaugeMetricFamily(
-                "fecproxy_link_mean_burst_packets", "Estimated mean length of loss bursts, in packets.", value=estimate[1]
-            )
+        # Present from the start, NaN until the peer's first block is in (no traffic measured
+        # yet), so a dashboard or `fecproxy plan --from-metrics` can tell "idle" from "down".
+        loss, burst = d.loss_estimate() or (math.nan, math.nan)
+        yield GaugeMetricFamily(
+            "fecproxy_link_loss_ratio",
+            "Estimated loss of the peer's source packets on the link into this daemon (0-1), sliding window; "
+            "NaN until the first block from the peer.",
+            value=loss,
+        )
+        yield GaugeMetricFamily(
+            "fecproxy_link_mean_burst_packets",
+            "Estimated mean length of loss bursts on the link into this daemon, in packets; NaN until the first block from the peer.",
+            value=burst,
+        )
+        received_k, received_m = d.received_code
+        yield GaugeMetricFamily(
+            "fecproxy_received_code_k",
+            "k of the code this daemon decodes (the peer's block size, from its repair packets); NaN until one arrives.",
+            value=math.nan if received_k is None else received_k,
+        )
+        yield GaugeMetricFamily(
+            "fecproxy_received_code_m",
+            "m of the code this daemon decodes (highest repair ESI seen - k + 1, a lower bound if the last "
+            "repair packets were lost); NaN until a repair packet arrives.",
+            value=math.nan if received_m is None else received_m,
+        )
         k, m = d.block_shape
-        info = InfoMetricFamily("fecproxy", "Build and FEC parameters of this daemon.")
+        info = InfoMetricFamily(
+            "fecproxy",
+            "Build of this daemon, its role and the code it sends with (k, m; on a receiver: its replies). "
+            "The code it decodes: fecproxy_received_code_k and fecproxy_received_code_m.",
+        )
         info.add_metric([], {"version": __version__, "role": d.role, "k": str(k), "m": str(m)})
         yield info
 

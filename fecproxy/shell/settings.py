@@ -2,8 +2,8 @@
 
 The cores can take new FEC, decoder and flow-timeout settings between blocks, so a reload applies
 those without dropping a flow.  What is bound to sockets or to the process's shape (role,
-addresses, metrics endpoint, socket buffers) cannot change under a running daemon: a reload
-reports such a change and keeps the running values until a restart.
+addresses, metrics endpoint, socket buffers, logging, the flow table's size) cannot change under
+a running daemon: a reload reports such a change and keeps the running values until a restart.
 """
 
 from __future__ import annotations
@@ -16,9 +16,12 @@ from fecproxy.protocol.auth import Keyring
 from fecproxy.protocol.decoder import DecoderSettings
 from fecproxy.protocol.encoder import EncoderSettings
 
-#: Config sections a reload cannot apply (they need new sockets or another role): a change to
-#: one is reported, and the running value is kept.
-RESTART_KEYS = ("role", "listen", "forward", "link", "metrics", "sockets")
+#: Config sections a reload cannot apply (they need new sockets or another role; logging is set
+#: up once by the command, whose --log-level/--log-format may override it): a change to one is
+#: reported, and the running value is kept.
+RESTART_KEYS = ("role", "listen", "forward", "link", "metrics", "sockets", "log")
+#: Single keys a reload cannot apply: the flow table is built at its size once.
+RESTART_FIELDS = ("flows.max",)
 
 
 class ReloadRejected(Exception):
@@ -72,15 +75,23 @@ def read_new_config(path: str | Path | None) -> Config:
         raise ReloadRejected("; ".join(error.messages)) from None
 
 
+def _field(config: Config, path: str):
+    section, key = path.split(".")
+    return getattr(getattr(config, section), key)
+
+
 def needs_restart(running: Config, new: Config) -> list[str]:
-    """The RESTART_KEYS sections that differ between the running config and the new one."""
-    return [key for key in RESTART_KEYS if getattr(new, key) != getattr(running, key)]
+    """The RESTART_KEYS sections and RESTART_FIELDS keys that differ between the running config
+    and the new one: what the reload leaves as it was."""
+    changed = [key for key in RESTART_KEYS if getattr(new, key) != getattr(running, key)]
+    return changed + [path for path in RESTART_FIELDS if _field(new, path) != _field(running, path)]
 
 
 def keep_fixed(running: Config, new: Config) -> Config:
-    """The running config after a reload: the new tunables, the running sockets and addresses.
-
-    The flow table keeps the size it was built with (``flows.max``) and logging keeps its start
-    setup (``log``), although the returned config shows the new values of both.
-    """
-    return dataclasses.replace(new, **{key: getattr(running, key) for key in RESTART_KEYS})
+    """The running config after a reload: the new tunables, the running sockets, addresses,
+    logging and flow-table size (what ``needs_restart`` reports), so it shows what is in force."""
+    kept = dataclasses.replace(new, **{key: getattr(running, key) for key in RESTART_KEYS})
+    for path in RESTART_FIELDS:
+        section, key = path.split(".")
+        kept = dataclasses.replace(kept, **{section: dataclasses.replace(getattr(kept, section), **{key: _field(running, path)})})
+    return kept

@@ -23,6 +23,7 @@ import errno
 import logging
 import socket
 import struct
+import sys
 import time
 
 import trio
@@ -61,16 +62,53 @@ MAX_UDP_PAYLOAD = 65535
 Address = tuple  # (host, port) or (host, port, flowinfo, scope_id)
 
 
-def open_udp_socket(host: str, port: int, *, receive_buffer: int = 0, send_buffer: int = 0) -> socket.socket:
-    """A bound, non-blocking UDP socket; family chosen from the address."""
+#: socket(7): Linux doubles the SO_RCVBUF/SO_SNDBUF value set (room for its bookkeeping) and
+#: getsockopt reports the doubled figure; other systems report what was set.
+BUFFER_REPORT_FACTOR = 2 if sys.platform.startswith("linux") else 1
+#: (option, config key, the Linux sysctl that caps an unprivileged request) per buffer.
+_BUFFERS = {
+    "receive": (socket.SO_RCVBUF, "sockets.receive_buffer_bytes", "net.core.rmem_max"),
+    "send": (socket.SO_SNDBUF, "sockets.send_buffer_bytes", "net.core.wmem_max"),
+}
+#: Buffer kinds already reported as capped: every socket of a daemon asks the same sizes, so
+#: one line per kind says it all (a receiver opens a socket per flow).
+_reported_caps: set[str] = set()
+
+
+def granted_buffer(sock: socket.socket, kind: str) -> int:
+    """The buffer the kernel actually gave (``kind`` "receive" or "send"), in the units asked."""
+    return sock.getsockopt(socket.SOL_SOCKET, _BUFFERS[kind][0]) // BUFFER_REPORT_FACTOR
+
+
+def _set_buffer(sock: socket.socket, kind: str, size: int, purpose: str) -> None:
+    """Ask for a buffer, read back what was granted, and say once when the kernel capped it."""
+    option, key, sysctl = _BUFFERS[kind]
+    sock.setsockopt(socket.SOL_SOCKET, option, size)
+    granted = granted_buffer(sock, kind)
+    if granted < size and kind not in _reported_caps:
+        _reported_caps.add(kind)
+        log_event(
+            log, logging.WARNING, "socket_buffer_capped", socket=purpose, key=key, asked=size, granted=granted,
+            fix=f"raise {sysctl} to at least {size} (sysctl -w {sysctl}={size}) or lower {key}",
+        )
+
+
+def open_udp_socket(
+    host: str, port: int, *, receive_buffer: int = 0, send_buffer: int = 0, purpose: str = "socket"
+) -> socket.socket:
+    """A bound, non-blocking UDP socket; family chosen from the address.
+
+    Buffer sizes of 0 keep the OS default; others are read back after setting, and a size the
+    kernel capped is logged once per kind (``purpose`` names the socket, e.g. its config key).
+    """
     infos = socket.getaddrinfo(host, port, type=socket.SOCK_DGRAM, flags=socket.AI_PASSIVE)
     family, _, _, _, sockaddr = infos[0]
     sock = socket.socket(family, socket.SOCK_DGRAM)
     try:
         if receive_buffer:
-            sock.setsockopt(socket.SOL_SOCKET, socket.SO_RCVBUF, receive_buffer)
+            _set_buffer(sock, "receive", receive_buffer, purpose)
         if send_buffer:
-            sock.setsockopt(socket.SOL_SOCKET, socket.SO_SNDBUF, send_buffer)
+            _set_buffer(sock, "send", send_buffer, purpose)
         sock.bind(sockaddr)
         sock.setblocking(False)
     except BaseException:

@@ -22,14 +22,14 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
             description="Encode and decode throughput in MB/s of source data; decode loses a fresh "
             "random pattern per block.  With zfec installed, zfec's figures are measured in the same "
             "run on the same blocks and the ratios printed.",
-            formatter_class=argparse.ArgumentDefaultsHelpFormatter,
+            formatter_class=parser.formatter_class,  # the CLI's: defaults shown only where they tell something
         )
     )
     pipeline.add_arguments(
         targets.add_parser(
             "pipeline",
             help="highest datagram rate through the daemon pair, clean or over an impaired link",
-            formatter_class=argparse.ArgumentDefaultsHelpFormatter,
+            formatter_class=parser.formatter_class,  # the CLI's: defaults shown only where they tell something
         )
     )
 

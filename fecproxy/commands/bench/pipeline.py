@@ -62,7 +62,7 @@ from fecproxy.commands.bench.search import (  # noqa: F401  (re-exported: the pi
 from fecproxy.linkmodel.planner import evaluate
 from fecproxy.protocol.keys import KEY_BYTES, format_key_text
 
-#: The block shape under test (the issue's k=16, m=4; also the config defaults).
+#: The block shape under test: k=16, m=4, the config defaults.
 BLOCK_SIZE = 16
 REPAIR = 4
 #: After the generator's last datagram, how long the sink keeps counting: queued datagrams in
@@ -77,7 +77,8 @@ DEFAULT_SEARCH_BUDGET_S = 85.0
 DEFAULT_START_RATE = 20_000.0
 #: Above this the search stops stepping up (a sanity bound far beyond 2 cores of Python).
 DEFAULT_MAX_RATE = 400_000.0
-#: "A moderate rate" for delay trials: a tenth of what the issue asks the pair to carry.
+#: A moderate rate for delay trials, far below the pair's limit, so queues stay short and the
+#: figures show the pair's own delay rather than congestion.
 DEFAULT_DELAY_RATE = 5_000.0
 DEFAULT_DELAY_SECONDS = 2.0
 #: Seed of the impaired link's loss pattern: the same losses every run.
@@ -318,11 +319,14 @@ def run_pipeline_bench(
         impairment = (link_loss, link_burst, seed)
         predicted = evaluate(link_channel(link_loss, link_burst), k, m).residual_loss
         pipelines += ["lossy", "relayed"]
+    say(f"starting the benchmark processes; then a rate search of up to {budget_seconds:g} s "
+        f"(trials of {trial_seconds:g} s, {', '.join(pipelines)} in turn) and delay trials")
     with _Bench(k, m, trial_seconds, impairment, predicted or 0.0, auth_mode) as bench:
         for pipeline in pipelines:  # warm-up: flows opened, sessions learned
             bench.run_trial(pipeline, min(start_rate, 2000.0), 0.2)
         searches = [RateSearch(pipeline, start_rate, max_rate) for pipeline in pipelines]
-        deadline = time.monotonic() + budget_seconds
+        began = time.monotonic()
+        deadline = began + budget_seconds
         while time.monotonic() < deadline:
             stepped = False
             for search in searches:
@@ -332,12 +336,14 @@ def run_pipeline_bench(
                 trial, _ = bench.run_trial(search.pipeline, rate, trial_seconds)
                 search.record(trial)
                 stepped = True
-                say(f"  {trial.pipeline:>5}: asked {trial.asked:>9,.0f}/s sent {trial.offered:>9,.0f}/s "
-                    f"loss {trial.loss:8.4%} {'pass' if trial.passed else 'FAIL'}")
+                say(f"  {time.monotonic() - began:5.0f}/{budget_seconds:g} s  {trial.pipeline:>7}: asked "
+                    f"{trial.asked:>9,.0f}/s sent {trial.offered:>9,.0f}/s loss {trial.loss:8.4%} "
+                    f"{'pass' if trial.passed else 'FAIL'}")
             if not stepped:
                 break
         for search in searches:
             search.stopped = search.stopped or "time budget"
+        say(f"rate search done; one-way delay trials at {delay_rate:,.0f}/s ({3 * delay_seconds:g} s)")
         delays = []
         for path in ("direct", "plain", "pair"):
             trial, values = bench.run_trial(path, delay_rate, delay_seconds, keep_delays=True)
@@ -419,7 +425,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--quick", action="store_true",
                         help="a few short trials at low rates (a smoke test, not a measurement)")
     parser.add_argument("--json", action="store_true", help="print the result as JSON instead of a table")
-    parser.add_argument("--verbose", action="store_true", help="print every trial as it ends (on stderr)")
+    parser.add_argument("--quiet", action="store_true",
+                        help="no progress lines on stderr (by default each trial is shown as it ends)")
 
 
 def main(args: argparse.Namespace) -> int:
@@ -439,7 +446,7 @@ def main(args: argparse.Namespace) -> int:
     if args.quick:
         settings.update(trial_seconds=0.2, budget_seconds=2.2, start_rate=1000.0, max_rate=2000.0,
                         delay_rate=1000.0, delay_seconds=0.2)
-    progress = (lambda line: print(line, file=sys.stderr, flush=True)) if args.verbose else None
+    progress = None if args.quiet else (lambda line: print(line, file=sys.stderr, flush=True))
     result = run_pipeline_bench(progress=progress, **settings)
     if args.json:
         print(json.dumps(result.as_dict(), indent=2))

@@ -16,8 +16,8 @@ from array import array
 
 from fecproxy.shell.udp import SOL_UDP, UDP_GRO, UDP_SEGMENT
 
-#: The datagram size the issue asks for: a typical media/telemetry payload that, with our
-#: 12-byte repair header and 3-byte symbol prefix, stays inside a 1500-byte Ethernet MTU.
+#: A typical media/telemetry payload that, with our repair header, symbol prefix and a room for
+#: an authentication trailer, stays inside a 1500-byte Ethernet MTU.
 DATAGRAM_BYTES = 1200
 #: Payload header: trial id, sequence number, send time in ns of CLOCK_MONOTONIC.
 PAYLOAD_HEADER = struct.Struct("=IIq")

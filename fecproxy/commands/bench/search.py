@@ -8,7 +8,7 @@ from __future__ import annotations
 import math
 from dataclasses import asdict, dataclass, field
 
-#: Loss a trial may show and still count as carried (the issue's "< 0.1 %").
+#: Loss a trial may show and still count as carried: below 0.1 %, the pair is "loss-free".
 LOSS_LIMIT = 0.001
 #: A trial whose generator reached less than this share of the asked rate is generator-bound:
 #: the machine cannot offer more, so the search stops there and says so.
