@@ -194,3 +194,16 @@ def test_a_refusing_forward_address_is_counted_logged_once_and_survived(pairs):
     assert pair.receiver.metric("fecproxy_send_errors_total") >= 5
     assert len(pair.receiver.events("send_failed")) == 1
     assert pair.receiver.proc.poll() is None
+
+
+def test_the_flood_benchmark_runs_and_prints_its_figures_against_the_targets(capsys):
+    # A smoke run (3 000 hostile packets): the figures themselves are the benchmark's, printed
+    # in the README from full runs; here only that it runs, keeps both daemons up and reports.
+    from fecproxy import cli
+
+    assert cli.main(["bench", "flood", "--auth", "mac", "--hostile", "3000"]) == 0
+    out = capsys.readouterr().out
+    assert "flood benchmark, auth mac: 3,000 hostile packets" in out
+    assert "daemons alive                           yes" in out
+    for figure in ("real datagrams delivered", "corrupted datagrams delivered", "receiver RSS growth"):
+        assert figure in out
