@@ -21,6 +21,8 @@ def link_packets(k: int, m: int, datagrams: list[tuple[bytes, int]], session: in
     packets: list[bytes] = []
     for i, (data, flow) in enumerate(datagrams):
         packets += encoder.send(data, flow, 0.001 * i)
+    # A loss report about the other direction travels on the same link (ControlReceived).
+    packets.append(encoder.control(bytes(56)))
     return packets + encoder.close()
 
 

@@ -3,13 +3,16 @@ the bytes of the packets it returns, one by one or in batches, and /metrics expo
 
 from __future__ import annotations
 
+import logging
 import random
 
 from prometheus_client import CollectorRegistry, generate_latest
 
 from fecproxy.protocol import wire
+from fecproxy.protocol.decoder import BlockDecoder
 from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
 from fecproxy.shell.metrics import DaemonCollector
+from fecproxy.shell.reports import Feedback
 
 
 def datagrams(count: int, seed: int) -> list[bytes]:
@@ -51,6 +54,7 @@ class _Daemon:
         self.role = "sender"
         self.block_shape = (encoder.settings.block_size, encoder.settings.repair)
         self.reloads = {"applied": 0, "rejected": 0}
+        self.feedback = Feedback(BlockEncoder(EncoderSettings(), 1), BlockDecoder(), logging.getLogger("test"))  # no reports yet
 
     def drop_counts(self):
         return {}

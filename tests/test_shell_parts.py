@@ -17,11 +17,12 @@ from pathlib import Path
 import pytest
 
 from fecproxy.config import parse_config_text
-from fecproxy.protocol.decoder import DecoderStats
-from fecproxy.protocol.encoder import EncoderStats
+from fecproxy.protocol.decoder import BlockDecoder, DecoderStats
+from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings, EncoderStats
 from fecproxy.shell import logs, udp
 from fecproxy.protocol.events import DropReason
 from fecproxy.shell.metrics import build_registry, serve
+from fecproxy.shell.reports import Feedback
 from fecproxy.shell.settings import RESTART_KEYS, keep_fixed, needs_restart, read_new_config, ReloadRejected
 
 LOOPBACK = "127.0.0.1"
@@ -100,6 +101,7 @@ class StandInDaemon:
         self.encoder_stats = EncoderStats()
         self.decoder_stats = DecoderStats()
         self.decoder_stats.recovered = 3
+        self.feedback = Feedback(BlockEncoder(EncoderSettings(), 1), BlockDecoder(), logging.getLogger("test"))  # no reports yet
 
     def drop_counts(self):
         return {"late": 2}

@@ -7,6 +7,7 @@ import base64
 import hashlib
 import io
 import json
+import logging
 import math
 import os
 import re
@@ -19,10 +20,11 @@ from types import SimpleNamespace
 import pytest
 from prometheus_client import generate_latest, make_wsgi_app
 
-from fecproxy.protocol.decoder import DecoderStats
-from fecproxy.protocol.encoder import EncoderStats
+from fecproxy.protocol.decoder import BlockDecoder, DecoderStats
+from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings, EncoderStats
 from fecproxy.shell import status, status_page
 from fecproxy.shell.metrics import build_registry
+from fecproxy.shell.reports import Feedback
 from support.browser import HeadlessChromium, artifact_dir, find_chromium
 from support.daemon_pair import drain, send_paced
 from support.lossy_relay import iid_loss
@@ -42,6 +44,7 @@ class _Daemon:
         self.role = "receiver"
         self.reloads = {"applied": 1, "rejected": 0}
         self.estimate = estimate
+        self.feedback = Feedback(BlockEncoder(EncoderSettings(), 1), BlockDecoder(), logging.getLogger("test"))  # no reports yet
 
     def drop_counts(self):
         return {"late": 3, "duplicate": 1}

@@ -211,6 +211,8 @@ class ImpairedLink:
         self.config = config
         self.header_bytes = header_bytes  # IP + UDP bytes the rate cap counts per datagram
         self.start = start  # the blackout schedule counts from here
+        self._seed = seed
+        self._changes = 0  # reconfigure() calls so far: each new channel gets a seed of its own
         self._rng = random.Random(f"{seed}:link")
         self._channel = make_channel(config.loss, f"{seed}:loss")
         self._estimator = LossEstimator()
@@ -224,6 +226,15 @@ class ImpairedLink:
         #: Optional observer called as ``on_air(datagram, lost)`` for every datagram that went on
         #: the air (after the modem buffer and blackouts), so a tool can see each packet's fate.
         self.on_air: Callable[[bytes, bool], None] | None = None
+
+    def reconfigure(self, config: LinkImpairment) -> None:
+        """Change how the link misbehaves from now on (a fade begins or ends), keeping what is
+        queued and in flight and every counter.  The new loss model starts in its stationary
+        state, drawn from a seed derived from the link's and the change's number, so a run stays
+        reproducible."""
+        self._changes += 1
+        self.config = config
+        self._channel = make_channel(config.loss, f"{self._seed}:loss:{self._changes}")
 
     # -- feeding ---------------------------------------------------------------------------------
 

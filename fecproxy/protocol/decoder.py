@@ -142,6 +142,7 @@ class DecoderSettings:
 class DecoderStats:
     source_received: int = 0
     repair_received: int = 0
+    control_received: int = 0  # well-formed control packets handed on (ControlReceived)
     repair_unneeded: int = 0
     delivered: int = 0
     recovered: int = 0
@@ -154,13 +155,14 @@ class DecoderStats:
 class _Session:
     """One sender session's block state."""
 
-    __slots__ = ("id", "open", "finished", "highest", "first_sbn", "last_seen", "packets", "window", "bytes")
+    __slots__ = ("id", "open", "finished", "highest", "newest", "first_sbn", "last_seen", "packets", "window", "bytes")
 
     def __init__(self, session: int, now: float, window: ReplayWindow | None):
         self.id = session
         self.open: OrderedDict[int, _Block] = OrderedDict()
         self.finished: OrderedDict[int, int] = OrderedDict()  # SBN -> mask of datagrams delivered
         self.highest: int | None = None  # the newest block that completed: the window's front
+        self.newest: int | None = None  # the newest block seen at all (for loss reports)
         self.first_sbn: int | None = None  # the first block this session showed us
         self.last_seen = now  # its last valid packet
         self.packets = 0  # valid packets so far
@@ -321,6 +323,11 @@ class BlockDecoder:
             pkt = wire.parse(data, max_datagram=self.settings.max_datagram)
         except wire.PacketError as error:
             return [self._drop(error.reason, str(error))], False
+        if isinstance(pkt, wire.ControlPacket):
+            # Not a packet of the peer's sender session: its session is ours (the one reported
+            # on), so it neither touches the session state nor teaches the shell its peer.
+            self.stats.control_received += 1
+            return [ControlReceived(pkt.session, pkt.body)], False
         events: list[Event] = []
         sess = self._sessions.get(pkt.session)
         if sess is None:
@@ -338,16 +345,13 @@ class BlockDecoder:
             self._primary, self.session = sess, sess.id
             self.received_code.reset()
             events.append(SessionStarted(sess.id, previous))
-        if isinstance(pkt, wire.ControlPacket):
-            events.append(ControlReceived(pkt.session, pkt.body))
+        if isinstance(pkt, wire.SourcePacket):
+            self.stats.source_received += 1
         else:
-            if isinstance(pkt, wire.SourcePacket):
-                self.stats.source_received += 1
-            else:
-                self.stats.repair_received += 1
-                if sess is self._primary:  # the peer's code is the replied-to session's
-                    self.received_code.note(pkt.sbn, pkt.k, pkt.esi)
-            self._admit(sess, pkt, now, events)
+            self.stats.repair_received += 1
+            if sess is self._primary:  # the peer's code is the replied-to session's
+                self.received_code.note(pkt.sbn, pkt.k, pkt.esi)
+        self._admit(sess, pkt, now, events)
         return events, self._primary is sess
 
     def _add_session(self, session: int, now: float, events: list[Event]) -> _Session | None:
@@ -398,6 +402,12 @@ class BlockDecoder:
         else:
             self._add_repair(block, pkt, events)
         self._try_finish(block, now, events)
+
+    @property
+    def highest_sbn(self) -> int | None:
+        """The newest source block number seen of the replied-to session (None before any);
+        a loss report carries it."""
+        return self._primary.newest if self._primary is not None else None
 
     def next_deadline(self) -> float | None:
         hold = self.settings.hold_time
@@ -469,6 +479,9 @@ class BlockDecoder:
             behind = (sess.highest - sbn) % wire.SBN_MODULUS
             if 0 < behind < wire.SBN_MODULUS // 2 and behind > self._window():
                 return None
+        newest = sess.newest
+        if newest is None or 0 < (sbn - newest) % wire.SBN_MODULUS < wire.SBN_MODULUS // 2:
+            sess.newest = sbn
         while self._open_count >= self.settings.max_open_blocks:
             if not self._evict_one(keep, events):
                 return None

@@ -91,6 +91,7 @@ class EncoderStats:
     blocks: int = 0
     short_blocks: int = 0
     source_bytes: int = 0  # source packets' bytes on the link, headers included
+    datagram_bytes: int = 0  # the application datagrams' own bytes (the adaptation's byte cap)
     repair_bytes: int = 0  # repair packets' bytes on the link, headers included
     dropped: dict[str, int] = field(default_factory=dict)
 
@@ -124,6 +125,7 @@ class BlockEncoder:
         self._previous_k = 0  # k of the block before the open one; 0 = none yet (a new session)
         self._symbol_len = 0
         self._deadline: float | None = None
+        self._longest = 0  # longest datagram in blocks closed since take_longest_datagram()
 
     @property
     def settings(self) -> EncoderSettings:
@@ -157,6 +159,12 @@ class BlockEncoder:
         storage = memoryview(bytearray(self._settings.block_size * self._width))
         return storage, np.frombuffer(storage, dtype=np.uint8).reshape(self._settings.block_size, self._width)
 
+    def take_longest_datagram(self) -> int:
+        """The longest datagram of the blocks closed since the last call (0 if none): it sizes
+        their repair symbols, so the adaptation's byte cap uses it per report interval."""
+        longest, self._longest = self._longest, 0
+        return longest
+
     def send(self, datagram: bytes, flow: int, now: float) -> list[bytes]:
         """Frame one application datagram; returns the packets to put on the link now.
 
@@ -184,6 +192,7 @@ class BlockEncoder:
         out = [header + datagram]
         self.stats.source_packets += 1
         self.stats.source_bytes += len(out[0])
+        self.stats.datagram_bytes += size
         if full:
             out.extend(self._close())
         return self._sealed(out)
@@ -261,6 +270,7 @@ class BlockEncoder:
             self._count, self._symbol_len = count, symbol_len
             self.stats.source_packets += sent
             self.stats.source_bytes += sent_bytes + sent * wire.SOURCE_HEADER_BYTES
+            self.stats.datagram_bytes += sent_bytes
             if oversize:
                 self._count_drop(DropReason.OVERSIZE, oversize)
         if deferred:
@@ -364,6 +374,8 @@ class BlockEncoder:
         self.stats.repair_packets += settings.repair_for(k)
         self.stats.repair_bytes += settings.repair_for(k) * (wire.REPAIR_HEADER_BYTES + self._symbol_len)
         self.stats.blocks += 1
+        if self._symbol_len - wire.SYMBOL_PREFIX_BYTES > self._longest:
+            self._longest = self._symbol_len - wire.SYMBOL_PREFIX_BYTES
         if k < settings.block_size:
             self.stats.short_blocks += 1
         self._sbn = (self._sbn + 1) % wire.SBN_MODULUS

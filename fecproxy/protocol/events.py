@@ -101,8 +101,11 @@ class SessionStarted(Event):
 
 @dataclass(frozen=True, slots=True)
 class ControlReceived(Event):
-    """A control packet (e.g. a loss report) of a live session, authentic when keyed; ``body``
-    is everything after the common header, for the shell to route."""
+    """A control packet for the shell to route (its body is a loss report,
+    :mod:`fecproxy.protocol.loss_report`).  ``session`` is the header's session: the sending
+    side's own sender session, like every packet it sends (one sequence space and replay window
+    per session when packets are authenticated); the shell checks it against the session it
+    decodes."""
 
     session: int
     body: bytes

@@ -17,7 +17,9 @@ SBN and ESI are the FEC Payload ID of RFC 6865 §5.1 for m = 8 (24 + 8 bits).  T
 * source (type 0): flow id (8 bits), the previous block's k (8 bits; 0 = none or not known), then
   the application datagram exactly as sent.
 * repair (type 1): the block's k (16 bits, RFC 6865 §5.1), then one repair symbol.
-* control (type 2): reserved for the receiver's loss reports; body not yet defined.
+* control (type 2): the body of a receiver's loss report (:mod:`fecproxy.protocol.loss_report`);
+  the header's session is the sending side's own (as on all its packets), its SBN and ESI are 0
+  and it has no flags.
 
 Repair symbols cover, per source datagram, the RFC 6363 §4 / RFC 6865 §4 source symbol
 "flow id (1 byte) ‖ length (2 bytes) ‖ datagram ‖ zero padding" up to the block's symbol size;
@@ -87,6 +89,8 @@ class PacketType(IntEnum):
 #: The first byte (version and type) of the packets this version sends.
 SOURCE_TYPE_BYTE = (VERSION << 4) | PacketType.SOURCE
 REPAIR_TYPE_BYTE = (VERSION << 4) | PacketType.REPAIR
+CONTROL_TYPE_BYTE = (VERSION << 4) | PacketType.CONTROL
+CONTROL_HEADER_BYTES = COMMON_HEADER.size  # 10: a control packet is the common header and its body
 
 # Hot-path packers and peekers: the layout above, for the encoder's and decoder's per-packet work
 # (a ``partial`` of a Struct method adds ~30 ns per call, a Python function ~120 ns).  They trust
@@ -163,15 +167,17 @@ def encode_source(
     return pack_source_header(FLAG_END if end else 0, session, (sbn << ESI_BITS) | esi, flow, previous_k) + data
 
 
-def encode_control(session: int, body: bytes) -> bytes:
-    """A control packet (type 2): the common header (no flags, payload id 0) and the body."""
-    return COMMON_HEADER.pack((VERSION << 4) | PacketType.CONTROL, 0, session, 0) + body
-
-
 def encode_repair(session: int, sbn: int, esi: int, k: int, symbol: bytes) -> bytes:
     if not (1 <= k <= MAX_K and k <= esi <= MAX_ESI):
         raise ValueError(f"repair ESI {esi} with k={k} is outside 1 ≤ k ≤ ESI ≤ {MAX_ESI}")
     return pack_repair_header(session, (sbn << ESI_BITS) | esi, k) + symbol
+
+
+def encode_control(session: int, body: bytes) -> bytes:
+    """A control packet: the common header (no flags, SBN and ESI 0) and ``body``."""
+    if not 0 <= session <= 0xFFFFFFFF:
+        raise ValueError(f"session {session} does not fit 32 bits")
+    return COMMON_HEADER.pack(CONTROL_TYPE_BYTE, 0, session, 0) + body
 
 
 def parse(packet: bytes, *, max_datagram: int) -> Packet:
@@ -223,5 +229,9 @@ def parse(packet: bytes, *, max_datagram: int) -> Packet:
             )
         return RepairPacket(session, sbn, esi, k, bytes(packet[REPAIR_HEADER_BYTES:]))
     if kind == PacketType.CONTROL:
+        if flags:
+            raise InvalidField(f"control packet with flags 0x{flags:02x}")
+        if sbn_esi:
+            raise InvalidField(f"control packet with SBN {sbn} and ESI {esi}; expected 0")
         return ControlPacket(session, bytes(packet[COMMON_HEADER.size:]))
     raise UnsupportedPacket(f"packet type {kind} is not defined")

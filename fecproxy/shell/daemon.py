@@ -37,6 +37,7 @@ from fecproxy.protocol.encoder import BlockEncoder, EncoderStats
 from fecproxy.protocol.flows import FlowTable
 from fecproxy.shell.logs import log_event, log_exception
 from fecproxy.shell.metrics import MetricsServer, build_registry, serve
+from fecproxy.shell.reports import Feedback
 from fecproxy.shell.settings import (
     ReloadRejected,
     decoder_settings,
@@ -88,6 +89,8 @@ class Daemon:
         self.decoder = BlockDecoder(decoder_settings(config), keys)
         self.auth_notice = auth.FailureNotice()
         self.estimator = LossEstimator(window=LOSS_ESTIMATE_WINDOW)
+        # Loss reports on the direction we decode; adaptation of the one we encode (fec.adapt).
+        self.feedback = Feedback(self.encoder, self.decoder, log)
         self.flows: FlowTable = FlowTable(config.flows.max, flow_idle_timeout(config))
         self._reloads: dict[str, int] = {"applied": 0, "rejected": 0}
         self._drops: dict[DropReason, int] = defaultdict(int)
@@ -211,6 +214,7 @@ class Daemon:
     async def _run(self, signals, task_status) -> None:
         cfg = self.config
         metrics = self._open_sockets()
+        self.feedback.configure(cfg, encoder_settings(cfg), trio.current_time())
         try:
             async with trio.open_nursery() as nursery:
                 self._nursery = nursery
@@ -232,7 +236,8 @@ class Daemon:
                     peer=format_sockaddr(self.peer) if self.peer else "learned",
                     listen=format_sockaddr(self.listen_address),
                     forward=str(cfg.forward) if cfg.forward else "-",
-                    k=cfg.fec.block_size, m=cfg.fec.repair, flush_ms=cfg.fec.flush_ms,
+                    k=cfg.fec.block_size, m=self.encoder.settings.repair, flush_ms=cfg.fec.flush_ms,
+                    adapt="on" if self.feedback.adapting else "off", reports_ms=cfg.reports.interval_ms,
                     sends="datagrams" if cfg.role == "sender" else "replies",
                     decoding="peer's code unknown until traffic",
                     session=f"{self.session:08x}", metrics=self.metrics_port or "off",
@@ -336,6 +341,7 @@ class Daemon:
                     elif kind is BlockReport and not event.lost and event.span:
                         # A block with nothing lost is one run of arrivals, a segment of its own.
                         estimator.observe_block(event.arrived_mask, event.span)
+                        self.feedback.observe_block(event.arrived_mask, event.span)
                     else:
                         valid = valid and kind is not Dropped
                         self._handle_event(event, now)
@@ -362,6 +368,7 @@ class Daemon:
             now = trio.current_time()
             await self._send_to_peer(self.encoder.on_timer(now))
             self._handle_events(self.decoder.on_timer(now), now)
+            await self._send_to_peer(self.feedback.on_timer(now))
             for flow, _ in self.flows.expire(now):
                 if self.upstreams is not None:
                     self.upstreams.close(flow)
@@ -392,13 +399,13 @@ class Daemon:
         fixed = needs_restart(self.config, new)
         if fixed:
             log_event(log, logging.WARNING, "reload_needs_restart", keys=",".join(fixed))
-        self.encoder.update(encoder_settings(new))
+        self.feedback.configure(new, encoder_settings(new), trio.current_time())
         self.decoder.settings = decoder_settings(new)
         self._apply_keys(new)
         self.flows.idle_timeout = flow_idle_timeout(new)
         self.config = keep_fixed(self.config, new)
         self._reloads["applied"] += 1
-        log_event(log, logging.INFO, "reloaded", k=new.fec.block_size, m=new.fec.repair, flush_ms=new.fec.flush_ms)
+        log_event(log, logging.INFO, "reloaded", k=new.fec.block_size, m=self.encoder.settings.repair, flush_ms=new.fec.flush_ms)
         self._reschedule()
         return True
 
@@ -453,7 +460,8 @@ class Daemon:
         return counts
 
     def _next_deadline(self) -> float:
-        deadlines = [d for d in (self.encoder.next_deadline(), self.decoder.next_deadline(), self.flows.next_deadline()) if d is not None]
+        cores = (self.encoder.next_deadline(), self.decoder.next_deadline(), self.flows.next_deadline(), *self.feedback.deadlines())
+        deadlines = [d for d in cores if d is not None]
         return min(deadlines) if deadlines else math.inf
 
     def _reschedule(self) -> None:
@@ -478,6 +486,7 @@ class Daemon:
             # One segment per block: repair positions sit between blocks on the link, so chaining
             # blocks would bias the burst estimate (see linkmodel.estimator.LossEstimator).
             self.estimator.observe_block(event.arrived_mask, event.span)
+            self.feedback.observe_block(event.arrived_mask, event.span)
             if event.unrecovered:
                 log_event(log, logging.DEBUG, "block_unrecovered", sbn=event.sbn, k=event.k, lost=event.lost, outcome=event.outcome)
         elif kind is Dropped:
@@ -490,7 +499,10 @@ class Daemon:
             else:
                 log_event(log, logging.DEBUG, "dropped", reason=event.reason, detail=event.detail)
         elif kind is ControlReceived:
-            log_event(log, logging.DEBUG, "control", session=f"{event.session:08x}", size=len(event.body))
+            drop = self.feedback.on_control(event, now)
+            if drop is not None:
+                self._drops[drop.reason] += 1
+                self._handle_event(drop, now)
         elif kind is SessionStarted:
             self._logged_code = None  # a new peer session: its code is logged afresh
             log_event(log, logging.INFO, "peer_session", session=f"{event.session:08x}",

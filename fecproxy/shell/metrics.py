@@ -19,6 +19,7 @@ from prometheus_client import CollectorRegistry, Histogram, disable_created_metr
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, InfoMetricFamily
 
 from fecproxy import __version__
+from fecproxy.linkmodel.adaptation import DECISION_REASONS, DOWN, IGNORE_REASONS, UP
 from fecproxy.protocol.events import BlockOutcome, DropReason
 from fecproxy.shell.status import status_app
 
@@ -30,6 +31,11 @@ disable_created_metrics()
 if TYPE_CHECKING:
     from fecproxy.protocol.decoder import DecoderStats
     from fecproxy.protocol.encoder import EncoderStats
+    from fecproxy.shell.reports import Feedback
+
+#: Why a well-formed loss report gave no decision (the labels of fecproxy_reports_ignored_total):
+#: on another session than our encoder's (reports.OTHER_SESSION), or the controller's reasons.
+REPORT_IGNORE_REASONS = ("other_session", *IGNORE_REASONS)
 
 
 class DaemonView(Protocol):
@@ -66,6 +72,10 @@ class DaemonView(Protocol):
     @property
     def received_code(self) -> tuple[int | None, int | None]:
         """(k, m) of the peer's code as its repair packets show them; None before any."""
+
+    @property
+    def feedback(self) -> Feedback:
+        """Loss reports sent and received, and the adaptation of the direction we send."""
 
 
 #: From 1 ms (a fast LAN hop) to 2 s (well past any hold time we would configure).
@@ -148,6 +158,7 @@ class DaemonCollector:
             "repair packets were lost); NaN until a repair packet arrives.",
             value=math.nan if received_m is None else received_m,
         )
+        yield from _feedback_metrics(d.feedback, d.block_shape, d.received_code)
         k, m = d.block_shape
         info = InfoMetricFamily(
             "fecproxy",
@@ -156,6 +167,44 @@ class DaemonCollector:
         )
         info.add_metric([], {"version": __version__, "role": d.role, "k": str(k), "m": str(m)})
         yield info
+
+
+def _feedback_metrics(feedback: Feedback, shape: tuple[int, int], received: tuple[int | None, int | None]) -> Iterable:
+    """The code per link direction and the loss-report loop.  ``direction="send"``: the code this
+    daemon encodes with now (m moves with fec.adapt); ``"receive"``: the peer's code as its repair
+    packets show it (the same figures as fecproxy_received_code_k/_m; NaN until known; D is not on
+    the wire, so it has no "receive" series).  A fixed label set, so a pair's two scrapes line up."""
+    k, m = shape
+    received_k, received_m = (math.nan if value is None else value for value in received)
+    for name, doc, sent, seen in (
+        ("fecproxy_code_source_symbols", "Source datagrams per full block (k) of the code, per link direction.", k, received_k),
+        ("fecproxy_code_repair_symbols", "Repair packets per full block (m) of the code, per link direction.", m, received_m),
+        ("fecproxy_code_interleave_depth", "Blocks interleaved on the link (D; 1 = none) this daemon sends.", feedback.depth, None),
+    ):
+        gauge = GaugeMetricFamily(name, doc, labels=["direction"])
+        gauge.add_metric(["send"], sent)
+        if seen is not None:
+            gauge.add_metric(["receive"], seen)
+        yield gauge
+    stats = feedback.stats
+    yield CounterMetricFamily("fecproxy_reports_sent", "Loss reports sent to the peer.", value=stats.sent)
+    yield CounterMetricFamily("fecproxy_reports_received", "Loss reports received on our own session.", value=stats.received)
+    ignored = CounterMetricFamily("fecproxy_reports_ignored", "Loss reports that gave no decision, by reason.", labels=["reason"])
+    counts = feedback.ignored()
+    for reason in REPORT_IGNORE_REASONS:
+        ignored.add_metric([reason], counts.get(reason, 0))
+    yield ignored
+    adaptations = CounterMetricFamily(
+        "fecproxy_adaptations", "Changes of m (or D) made from loss reports, by direction and reason.", labels=["direction", "reason"]
+    )
+    decisions = feedback.decisions()
+    for direction in (UP, DOWN):
+        for reason in DECISION_REASONS:
+            adaptations.add_metric([direction, reason], decisions.get((direction, reason), 0))
+    yield adaptations
+    yield GaugeMetricFamily(
+        "fecproxy_reports_stale", "1 while no loss report came for 5 intervals and m is held; else 0.", value=int(feedback.stale)
+    )
 
 
 def build_registry(daemon: DaemonView) -> tuple[CollectorRegistry, Histogram]:

@@ -152,6 +152,14 @@ class UdpRelay:
             if wake.is_set():
                 self._wake[direction] = trio.Event()
 
+    def set_impairment(self, direction: str, impairment: LinkImpairment) -> None:
+        """Change one direction's impairment while the relay runs (see ImpairedLink.reconfigure):
+        a test or a demo can fade the link and bring it back, or cut the return path."""
+        if direction not in DIRECTIONS:
+            raise ValueError(f"direction must be one of {DIRECTIONS}, got {direction!r}")
+        self.links[direction].reconfigure(impairment)
+        self._wake[direction].set()
+
     # -- reporting ---------------------------------------------------------------------------------
 
     def stats(self) -> dict[str, LinkStats]:
