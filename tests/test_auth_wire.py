@@ -148,7 +148,7 @@ def test_two_key_rollover_loses_nothing():
     assert delivered == third and drops == ["replay"] * 3
 
 
-def test_control_packets_are_sealed_and_returned_for_a_live_session():
+def test_control_packets_are_sealed_verified_and_handed_on():
     encoder = sender()
     decoder = receiver()
     _, packets = stream(encoder, 1)
@@ -156,7 +156,8 @@ def test_control_packets_are_sealed_and_returned_for_a_live_session():
     control = encoder.control(b"\x01report")
     assert control[1] & wire.FLAG_AUTH
     events, in_session = decoder.receive(control, 1.0)
-    assert events == [ControlReceived(0x1234, b"\x01report")] and in_session
+    assert events == [ControlReceived(0x1234, b"\x01report")]
+    assert not in_session  # a control packet never teaches the shell its peer
     forged = wire.encode_control(0x1234, b"\x01forged")
     assert [e.reason for e in decoder.receive(forged, 1.0)[0]] == ["auth"]
 
