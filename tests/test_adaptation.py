@@ -217,7 +217,7 @@ def test_overhead_cap_is_never_exceeded_and_says_unreachable():
 
 def test_repair_bytes_stay_under_source_bytes():
     # RFC 6363 §8.2 counts bytes too: small datagrams with one long one in the block make each
-    # repair packet as long as the longest (12 + 3 + 1400 bytes) against 12 + 100 per source packet.
+    # repair packet as long as the longest (12 + 5 + 1400 bytes) against 14 + 100 per source packet.
     source = SourceProfile(rate=None, mean_datagram_bytes=100, longest_datagram_bytes=1400)
     controller = RedundancyController(policy(), initial_repair=4, now=0.0, source=source)
     receiver = FakeReceiver()
@@ -416,7 +416,9 @@ def test_never_above_the_caps(phases, overhead, min_repair, rate):
             continue
         assert choice.repair <= 6
         assert choice.m_effective <= overhead * choice.k_effective + 1e-9
-        assert choice.m_effective * (15 + 1000) <= overhead * choice.k_effective * (12 + 300) + 1e-6
+        assert choice.m_effective * (wire.REPAIR_HEADER_BYTES + wire.SYMBOL_PREFIX_BYTES + 1000) <= (
+            overhead * choice.k_effective * (wire.SOURCE_HEADER_BYTES + 300) + 1e-6
+        )
         for event in decisions(events):
             assert event.direction == (UP if event.choice > event.previous else DOWN)
 

@@ -24,8 +24,8 @@ NEW = keys.MasterKey(bytes.fromhex("22" * 32))
 STRANGER = keys.MasterKey(bytes.fromhex("33" * 32))
 SESSION = 0x0A0B0C0D
 SOURCE = wire.encode_source(SESSION, 0x000102, 3, 5, b"wx", end=True, previous_k=16)
-REPAIR = wire.encode_repair(SESSION, 0xFFFFFE, 6, 4, bytes.fromhex("1516177f"))
-CONTROL = bytes([0x12, 0]) + SESSION.to_bytes(4, "big") + bytes(4) + b"report"
+REPAIR = wire.encode_repair(SESSION, 0xFFFFFE, 6, 4, bytes.fromhex("0102000001 4d56a5"))  # a 5-byte prefix at least
+CONTROL = bytes([wire.VERSION << 4 | wire.PacketType.CONTROL, 0]) + SESSION.to_bytes(4, "big") + bytes(4) + b"report"
 
 MODES = [pytest.param(False, id="mac"), pytest.param(True, id="encrypted")]
 

@@ -141,7 +141,7 @@ def test_defaults_agree_with_the_cores():
 def test_default_datagram_fits_an_ethernet_frame_with_tag_room():
     # RFC 894: Ethernet MTU 1500; RFC 791: IPv4 header ≥ 20 bytes; RFC 768: UDP header 8 bytes.
     ip_udp = 20 + 8
-    repair_packet = 12 + 3 + cfg.DEFAULT_MAX_DATAGRAM_BYTES + cfg.AUTH_TAG_RESERVE_BYTES
+    repair_packet = 12 + 5 + cfg.DEFAULT_MAX_DATAGRAM_BYTES + cfg.AUTH_TAG_RESERVE_BYTES
     assert repair_packet + ip_udp <= 1500
     # HMAC-SHA-256 output is 32 bytes (RFC 6234 §1: SHA-256 digest is 256 bits).
     assert cfg.AUTH_TAG_RESERVE_BYTES == 256 // 8
@@ -150,9 +150,10 @@ def test_default_datagram_fits_an_ethernet_frame_with_tag_room():
 def test_largest_datagram_keeps_a_repair_packet_inside_one_udp_datagram():
     # RFC 791: total length is 16 bits (65535) including the 20-byte header; RFC 768: 8-byte header.
     assert cfg.MAX_UDP_PAYLOAD_BYTES == 65535 - 20 - 8
-    assert cfg.MAX_DATAGRAM_BYTES_LIMIT == 65507 - 12 - 3 - 32
-    parse_config(edited(SENDER, fec__max_datagram_bytes=65460))
-    assert "65461 is out of range" in errors_of(edited(SENDER, fec__max_datagram_bytes=65461))[0]
+    # Wire version 2: 12-byte repair header, 5-byte symbol prefix, 32 bytes kept for a tag.
+    assert cfg.MAX_DATAGRAM_BYTES_LIMIT == 65507 - 12 - 5 - 32
+    parse_config(edited(SENDER, fec__max_datagram_bytes=65458))
+    assert "65459 is out of range" in errors_of(edited(SENDER, fec__max_datagram_bytes=65459))[0]
 
 
 def test_block_limits_follow_rfc_5510():

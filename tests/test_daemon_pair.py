@@ -434,13 +434,13 @@ def test_malformed_and_forged_packets_are_counted_and_never_crash_the_receiver(p
     _, session, _, _ = parse_link_header(pair.relay.forward.packets[0][2])
     genuine_source = pair.relay.forward.packets[3][2]  # block 0 is finished by now
 
-    def header(kind: int, flags: int, sbn: int, esi: int, version: int = 1, sess: int = session) -> bytes:
+    def header(kind: int, flags: int, sbn: int, esi: int, version: int = 2, sess: int = session) -> bytes:
         return struct.pack(">BBII", (version << 4) | kind, flags, sess, (sbn << 8) | esi)
 
     hostile = {
         "malformed": [
             b"",  # empty datagram
-            b"\x10\x00\x00",  # shorter than the common header
+            b"\x20\x00\x00",  # shorter than the common header
             header(SOURCE, 0, 5, 0),  # source without its flow id and previous k
             header(REPAIR, 0, 5, 20) + b"\x00",  # repair without its k field
             header(REPAIR, 0, 5, 20) + struct.pack(">H", 0) + b"abc",  # k = 0
@@ -449,16 +449,17 @@ def test_malformed_and_forged_packets_are_counted_and_never_crash_the_receiver(p
             header(REPAIR, 0, 5, 20) + struct.pack(">H", 16) + b"a",  # symbol shorter than its prefix
         ],
         "unsupported": [
-            header(SOURCE, 0, 5, 0, version=2) + b"\x00data",  # a future version
+            header(SOURCE, 0, 5, 0, version=3) + b"\x00data",  # a future version
+            header(SOURCE, 0, 5, 0, version=1) + b"\x00\x00data",  # the one-byte flow id of version 1
             header(SOURCE, 0x40, 5, 0) + b"\x00data",  # undefined flag
             header(7, 0, 5, 0) + b"\x00data",  # undefined type
         ],
         "oversize": [
-            header(SOURCE, 0, 5, 0) + b"\x00\x00" + bytes(1401),  # above max_datagram_bytes 1400
-            header(REPAIR, 0, 5, 20) + struct.pack(">H", 16) + bytes(1404),
+            header(SOURCE, 0, 5, 0) + bytes(4) + bytes(1401),  # above max_datagram_bytes 1400
+            header(REPAIR, 0, 5, 20) + struct.pack(">H", 16) + bytes(1406),  # 5-byte prefix + 1401
         ],
         "late": [genuine_source],  # replay of a datagram of a finished block
-        "stale": [header(SOURCE, 0, (1 << 24) - 5000, 0) + b"\x00\x00old"],  # far behind the window
+        "stale": [header(SOURCE, 0, (1 << 24) - 5000, 0) + bytes(4) + b"old"],  # far behind the window
     }
     before = {reason: pair.receiver.metric("fecproxy_packets_dropped_total", reason=reason) for reason in hostile}
     with socket.socket(socket.AF_INET, socket.SOCK_DGRAM) as attacker:
@@ -470,7 +471,7 @@ def test_malformed_and_forged_packets_are_counted_and_never_crash_the_receiver(p
         rng = random.Random(11)
         for _ in range(300):  # random bytes of random lengths, bounded
             junk = rng.randbytes(rng.randrange(0, 1600))
-            if junk[:1] in (b"\x10", b"\x11") and junk[1:2] in (b"\x00", b"\x01"):
+            if junk[:1] in (b"\x20", b"\x21") and junk[1:2] in (b"\x00", b"\x01"):
                 continue  # could pass as a well-formed packet of a new session (see below)
             attacker.sendto(junk, pair.receiver.link_address)
 
@@ -503,7 +504,7 @@ def test_one_forged_packet_of_a_new_session_does_not_stop_the_genuine_stream(pai
     send_paced(client.send, 16, rate=1000)
     drain(pair, 16)
     _, session, _, _ = parse_link_header(pair.relay.forward.packets[0][2])
-    forged = struct.pack(">BBIIB", 0x10 | SOURCE, 0, session ^ 0xFFFFFFFF, 0, 0) + b"forged"
+    forged = struct.pack(">BBIII", 0x20 | SOURCE, 0, session ^ 0xFFFFFFFF, 0, 0) + b"forged"
     with socket.socket(socket.AF_INET, socket.SOCK_DGRAM) as attacker:
         attacker.bind((LOOPBACK, 0))
         attacker.sendto(forged, pair.receiver.link_address)

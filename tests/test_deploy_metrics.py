@@ -65,6 +65,9 @@ class _Daemon:
     def flow_count(self):
         return 0
 
+    def flows_evicted(self):
+        return 0
+
     def loss_estimate(self):
         return None
 

@@ -29,7 +29,11 @@ def unit_values(key: str) -> list[str]:
 def test_unit_runs_the_documented_entry_point_with_a_file_limit():
     assert all(line.startswith(INSTALLED_ENTRY_POINT + " ") for line in unit_values("ExecStart") + unit_values("ExecStartPre"))
     assert INSTALLED_ENTRY_POINT.rpartition("/bin/")[0] in (ROOT / "README.md").read_text()
-    assert int(unit_values("LimitNOFILE")[0]) >= 1024
+    # A receiver holds one socket per flow: the default flows.max plus the daemon's own reserve.
+    from fecproxy.config.schema import DEFAULT_MAX_FLOWS
+    from fecproxy.shell.fdlimit import files_needed
+
+    assert int(unit_values("LimitNOFILE")[0]) >= files_needed(DEFAULT_MAX_FLOWS, holds_flow_sockets=True)
     assert unit_values("User") == ["fecproxy"]
     assert unit_values("ExecReload") == ["/bin/kill -HUP $MAINPID"]
 

@@ -32,7 +32,7 @@ def weather_station_batches(rng, count, max_size):
         batch = []
         for _ in range(rng.randint(0, 70)):
             size = rng.choice([0, 1, rng.randint(2, 80), rng.randint(81, max_size), max_size])
-            batch.append((rng.randbytes(size), rng.choice([0, 1, 7, 255])))
+            batch.append((rng.randbytes(size), rng.choice([0, 1, 7, 255, 0x0100FF, 0xFFFFFF])))
         batches.append(batch)
     return batches
 
@@ -101,14 +101,15 @@ def test_repair_of_a_batched_block_matches_galois():
     generator = np.linalg.inv(vandermonde[:, :k]) @ vandermonde
     rng = random.Random(11)
     enc = BlockEncoder(EncoderSettings(block_size=k, repair=m, max_datagram=40), SESSION)
-    batch = [(rng.randbytes(rng.randint(0, 40)), rng.randint(0, 255)) for _ in range(3 * k)]
+    batch = [(rng.randbytes(rng.randint(0, 40)), rng.randint(0, 2**24 - 1)) for _ in range(3 * k)]
     packets = enc.send_batch(batch, 0.0)
     assert len(packets) == 3 * (k + m)
     for block in range(3):
         items = batch[block * k : (block + 1) * k]
-        length = 3 + max(len(data) for data, _ in items)
-        # RFC 6363 §4: flow id (1 byte) ‖ length (2 bytes, big-endian) ‖ data ‖ zero padding.
-        symbols = field(np.array([list(bytes([flow, len(data) >> 8, len(data) & 0xFF]) + data + bytes(length - 3 - len(data)))
+        length = 5 + max(len(data) for data, _ in items)
+        # RFC 6363 §4: flow id ‖ length (2 bytes, big-endian) ‖ data ‖ zero padding; our flow id
+        # is 3 bytes (slot ‖ generation, wire version 2).
+        symbols = field(np.array([list(flow.to_bytes(3, "big") + len(data).to_bytes(2, "big") + data + bytes(length - 5 - len(data)))
                                   for data, flow in items], dtype=np.uint8))
         expected = generator[:, k:].T @ symbols
         repairs = packets[block * (k + m) + k : (block + 1) * (k + m)]
@@ -195,11 +196,11 @@ def test_decoder_rebuilds_every_batched_block_that_lost_at_most_m(k, m, seed, dr
 
 
 def test_a_bad_item_midway_raises_and_leaves_the_block_consistent():
-    """A flow id outside one byte is a caller bug: the batch raises, but the datagrams already
+    """A flow id outside 24 bits is a caller bug: the batch raises, but the datagrams already
     copied in stay counted, so the block's repair still matches and the decoder rebuilds them."""
     enc = BlockEncoder(EncoderSettings(block_size=4, repair=2), SESSION)
     with pytest.raises(struct.error):
-        enc.send_batch([(b"first", 1), (b"second!", 1), (b"bad flow", 256)], 0.0)
+        enc.send_batch([(b"first", 1), (b"second!", 1), (b"bad flow", 1 << 24)], 0.0)
     packets = enc.send_batch([(b"third", 2), (b"4th", 2)], 0.001)
     assert len(packets) == 2 + 2  # two sources, then the block's two repair packets
     dec = BlockDecoder()

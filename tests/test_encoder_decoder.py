@@ -205,7 +205,7 @@ def test_oversize_datagram_is_counted_and_skipped_and_block_stays_intact():
 
 
 def test_packets_contradicting_the_block_are_dropped_not_trusted():
-    # Without authentication (not in wire version 1) the first consistent packet sets the block's shape;
+    # Without authentication the first consistent packet sets the block's shape;
     # anything contradicting it afterwards is dropped and counted, and decoding stays correct.
     datagrams, packets = make_block(4, 2)
     dec = BlockDecoder()
@@ -225,7 +225,7 @@ def test_packets_contradicting_the_block_are_dropped_not_trusted():
 
 def test_malformed_packets_are_counted_by_reason():
     dec = BlockDecoder()
-    events = feed(dec, [b"", b"\x20" + bytes(12), wire.encode_source(1, 0, 0, 0, bytes(2000))])
+    events = feed(dec, [b"", b"\x30" + bytes(13), wire.encode_source(1, 0, 0, 0, bytes(2000))])
     assert [e.reason for e in events] == ["malformed", "unsupported", "oversize"]
     assert dec.stats.dropped == {"malformed": 1, "unsupported": 1, "oversize": 1}
 
@@ -337,22 +337,23 @@ def test_a_duplicated_packet_of_a_new_session_is_delivered_once():
 def test_repair_packets_carry_rfc_symbols_of_the_rfc6363_framing():
     # Outside check: the repair payloads equal what galois computes for RFC 5510 §8.2
     # (GM = V_k^-1 · V over GF(2^8) on 0x11D, alpha = 2, §8.1) applied to the source symbols
-    # framed as RFC 6363 §4 / RFC 6865 §4 say: flow id (1) ‖ length (2, big-endian) ‖ data ‖ zeros.
+    # framed as RFC 6363 §4 / RFC 6865 §4 say, with our flow id widened to 3 bytes (wire version 2):
+    # flow id (3: slot ‖ generation) ‖ length (2, big-endian) ‖ data ‖ zeros.
     import galois
     import numpy as np
 
     field = galois.GF(2**8, irreducible_poly=0x11D)
     k, m = 3, 2
-    flows_and_data = [(7, b"wind 4.2"), (9, b"rain 0.0 mm"), (7, b"")]
+    flows_and_data = [(0x000107, b"wind 4.2"), (0xFFFE09, b"rain 0.0 mm"), (0x000107, b"")]
     enc = BlockEncoder(EncoderSettings(block_size=k, repair=m), session=1)
     link = []
     for flow, data in flows_and_data:
         link += enc.send(data, flow, now=0.0)
     repairs = [wire.parse(p, max_datagram=1400) for p in link[k:]]
-    length = 3 + max(len(d) for _, d in flows_and_data)
+    length = 5 + max(len(d) for _, d in flows_and_data)
     symbols = np.zeros((k, length), dtype=np.uint8)
     for row, (flow, data) in enumerate(flows_and_data):
-        framed = bytes([flow]) + len(data).to_bytes(2, "big") + data
+        framed = flow.to_bytes(3, "big") + len(data).to_bytes(2, "big") + data
         symbols[row, : len(framed)] = np.frombuffer(framed, dtype=np.uint8)
     vandermonde = field.Vandermonde(field.primitive_element, k, k + m)
     generator = np.linalg.inv(vandermonde[:, :k]) @ vandermonde

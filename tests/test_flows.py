@@ -16,11 +16,9 @@ from hypothesis.stateful import RuleBasedStateMachine, initialize, invariant, pr
 from fecproxy.protocol.flows import (
     FLOW_SLOTS,
     GENERATIONS,
-    ONE_BYTE_FLOW_IDS,
     ClientFlowTable,
     CloseReason,
     FlowClosed,
-    FlowTable,
     Opened,
     PeerFlowTable,
     Verdict,
@@ -53,11 +51,6 @@ def test_flow_id_packs_a_16_bit_slot_and_an_8_bit_generation():
     flow = flow_id(0xBEEF, 0x2A)
     assert flow == 0xBEEF2A and flow < 2**24
     assert (slot_of(flow), generation_of(flow)) == (0xBEEF, 0x2A)
-
-
-def test_version_1_flow_id_is_one_byte():
-    # RFC 6363 §4 / RFC 6865 §4: the flow id of the source symbol is one byte.
-    assert ONE_BYTE_FLOW_IDS == 2**8
 
 
 def test_generations_compare_as_serial_numbers():
@@ -326,95 +319,6 @@ def test_receiver_remove():
     assert table.remove(flow_id(4, 3)) is None
     assert table.remove(flow) == FlowClosed(flow, CloseReason.REMOVED)
     assert len(table) == 0
-
-
-# ------------------------------------------------------------------------------ version 1 interface
-
-
-def test_version_1_table_caps_ids_at_one_byte():
-    table = FlowTable(4096, 10.0)
-    assert table.max_flows == ONE_BYTE_FLOW_IDS
-    flows = [table.flow_for(("10.0.0.1", i), 0.0) for i in range(ONE_BYTE_FLOW_IDS + 1)]
-    assert flows[:ONE_BYTE_FLOW_IDS] == list(range(ONE_BYTE_FLOW_IDS))
-    assert flows[-1] is None
-
-
-@pytest.mark.parametrize("bad", [0, -1])
-def test_version_1_table_rejects_impossible_sizes(bad):
-    with pytest.raises(ValueError, match="max_flows"):
-        FlowTable(bad, 10.0)
-
-
-def test_version_1_table_refuses_when_full_and_reuses_freed_ids():
-    """No recycling: without a generation on the wire the far end could not tell a recycled id
-    from the old conversation."""
-    table = FlowTable(2, 10.0)
-    assert table.flow_for(CLIENT_A, 0.0) == 0
-    assert table.flow_for(CLIENT_B, 0.0) == 1
-    assert table.flow_for(CLIENT_C, 50.0) is None  # even with every flow idle past the timeout
-    assert table.flow_for(CLIENT_A, 0.0) == 0
-    table.remove(0)
-    assert table.flow_for(CLIENT_C, 0.0) == 0
-    assert table.key_for(0) == CLIENT_C and table.key_for(1) == CLIENT_B and table.key_for(7) is None
-
-
-def test_version_1_table_as_the_receiver_uses_it():
-    """The receiver keys flows by the sender's one-byte flow id itself."""
-    table = FlowTable(3, 10.0)
-    assert table.flow_for(200, 0.0, flow=200) == 200
-    assert table.flow_for(7, 0.0, flow=7) == 7
-    assert table.flow_for(200, 1.0, flow=200) == 200
-    assert table.flow_for(255, 0.0, flow=255) == 255
-    assert table.flow_for(9, 0.0, flow=9) is None  # three flows already
-    table.remove(7)
-    assert table.flow_for(9, 0.0, flow=9) == 9
-    assert table.key_for(9) == 9 and table.key_for(7) is None
-    assert table.flow_for(256, 0.0, flow=ONE_BYTE_FLOW_IDS) is None  # not a one-byte id
-    assert table.flow_for(-1, 0.0, flow=-1) is None
-    with pytest.raises(ValueError):
-        table.flow_for("other", 0.0, flow=9)
-    with pytest.raises(ValueError, match="either"):
-        table.flow_for(CLIENT_A, 0.0)
-
-
-def test_version_1_table_deadline_and_expiry_follow_the_least_recently_used_flow():
-    table = FlowTable(4, 10.0)
-    assert table.next_deadline() is None and table.expire(5.0) == [] and len(table) == 0
-    table.touch(3, 0.0)  # nothing yet: ignored
-    table.flow_for(CLIENT_A, 1.0)
-    table.flow_for(CLIENT_B, 2.0)
-    table.flow_for(CLIENT_C, 3.0)
-    assert table.next_deadline() == 11.0
-    table.touch(0, 4.0)  # A is busy again: B is now the oldest
-    table.touch(3, 4.0)  # unknown: ignored
-    assert table.next_deadline() == 12.0
-    assert table.expire(11.9) == []
-    assert table.expire(12.0) == [(1, CLIENT_B)]  # idle exactly the timeout: gone
-    assert table.next_deadline() == 13.0
-    assert table.expire(100.0) == [(2, CLIENT_C), (0, CLIENT_A)]
-    assert len(table) == 0 and table.next_deadline() is None
-    assert table.flow_for(CLIENT_B, 100.0) == 3  # the never-used id before the freed ones
-
-
-def test_version_1_table_takes_a_new_idle_timeout():
-    """A SIGHUP reload changes the timeout without touching the flows."""
-    table = FlowTable(2, 100.0)
-    table.idle_timeout = 50.0  # before any flow
-    table.flow_for(CLIENT_A, 0.0)
-    assert table.next_deadline() == 50.0
-    table.idle_timeout = 5.0
-    assert table.idle_timeout == 5.0 and table.next_deadline() == 5.0
-    assert table.expire(5.0) == [(0, CLIENT_A)]
-
-
-def test_version_1_receiver_expiry_and_remove_of_unknown_ids():
-    table = FlowTable(2, 10.0)
-    table.remove(3)  # nothing yet
-    table.flow_for(4, 0.0, flow=4)
-    table.remove(200)
-    table.remove(-1)
-    table.touch(4, 5.0)
-    assert table.expire(15.0) == [(4, 4)]
 
 
 # ------------------------------------------------------------------------------ model checks
@@ -763,3 +667,12 @@ TestPeerTable = PeerTableMachine.TestCase
 TestPeerTable.settings = _settings
 TestRoundTrip = RoundTripMachine.TestCase
 TestRoundTrip.settings = settings(max_examples=200, stateful_step_count=60, deadline=None)
+
+
+def test_the_flow_id_fills_the_wire_field():
+    # Wire format version 2 carries slot and generation as one 24-bit flow id.
+    from fecproxy.protocol import wire
+    from fecproxy.protocol.flows import GENERATION_BITS, SLOT_BITS
+
+    assert SLOT_BITS + GENERATION_BITS == wire.FLOW_ID_BITS
+    assert flow_id(FLOW_SLOTS - 1, GENERATIONS - 1) == wire.MAX_FLOW_IDS - 1

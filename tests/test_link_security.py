@@ -10,7 +10,6 @@ from __future__ import annotations
 import os
 import random
 import socket
-import struct
 import time
 
 import pytest
@@ -19,7 +18,6 @@ from fecproxy.protocol import auth, keys, wire
 from support.daemon_pair import (
     DRAIN_TIMEOUT,
     LOOPBACK,
-    SOURCE,
     DaemonProcess,
     drain,
     make_payload,
@@ -132,8 +130,8 @@ def test_a_stranger_flooding_a_made_up_session_changes_nothing_for_the_real_traf
         for round_ in range(20):  # 20 × 50 packets of one made-up session, interleaved with real traffic
             for esi in range(50):
                 # Flow 200: a flow the real client does not have, so no reply could reach it.
-                header = struct.pack(">BBIIBB", 0x10 | SOURCE, 0, made_up, (round_ << 8) | esi, 200, 0)
-                attacker.sendto(header + make_payload(98, round_ * 50 + esi), pair.receiver.link_address)
+                forged = wire.encode_source(made_up, round_, esi, 200 << 8, make_payload(98, round_ * 50 + esi))
+                attacker.sendto(forged, pair.receiver.link_address)
             send_paced(lambda i, r=round_: client.send(16 + r * 4 + i), 4, rate=1000)
         assert wait_until(lambda: sum(1 for item in pair.server.received if item[0] == 52) >= 96, DRAIN_TIMEOUT)
         real = sorted(item for item in pair.server.received if item[0] == 52)

@@ -112,6 +112,9 @@ class StandInDaemon:
     def flow_count(self):
         return 1
 
+    def flows_evicted(self):
+        return 0
+
     def loss_estimate(self):
         return (0.05, 2.0)
 
@@ -183,6 +186,49 @@ def test_reload_without_a_config_file_is_rejected_with_a_reason(tmp_path):
         read_new_config(None)
     with pytest.raises(ReloadRejected, match="cannot read"):
         read_new_config(tmp_path / "missing.yaml")
+
+
+def test_reload_applies_flow_timeouts_and_protect_but_flows_max_needs_a_restart():
+    from fecproxy.shell.settings import apply_flow_timeouts, flow_table
+
+    flows = "flows: {{max: {max}, idle_timeout_s: {idle}, first_exchange_timeout_s: 10, protect_s: {protect}}}\n"
+    running = parse_config_text(SENDER.format(k=16) + flows.format(max=100, idle=60, protect=2))
+    new = parse_config_text(SENDER.format(k=16) + flows.format(max=200, idle=90, protect=0))
+    assert needs_restart(running, new) == ["flows.max"]
+    kept = keep_fixed(running, new)
+    assert (kept.flows.max, kept.flows.idle_timeout_s, kept.flows.protect_s) == (100, 90, 0)
+    table = flow_table(running)
+    apply_flow_timeouts(table, kept)
+    assert (table.max_flows, table.idle_timeout, table.first_exchange_timeout, table.protect) == (100, 90.0, 10.0, 0.0)
+
+
+# ------------------------------------------------------------------------------ open-file limit
+
+
+def test_open_file_limit_is_raised_to_the_need_within_the_hard_limit():
+    import resource
+
+    from fecproxy.shell.fdlimit import FD_RESERVE, ensure_open_files, files_needed
+
+    assert files_needed(4096, holds_flow_sockets=True) == 4096 + FD_RESERVE
+    assert files_needed(4096, holds_flow_sockets=False) == FD_RESERVE
+    calls = []
+
+    def limits(soft, hard):
+        return dict(getrlimit=lambda which: (soft, hard), setrlimit=lambda which, value: calls.append(value))
+
+    assert ensure_open_files(500, **limits(1024, 4096)).raised_from is None and calls == []
+    raised = ensure_open_files(4160, **limits(1024, 524288))
+    assert (raised.soft, raised.raised_from, raised.enough) == (4160, 1024, True) and calls == [(4160, 524288)]
+    short = ensure_open_files(4160, **limits(1024, 2048))
+    assert (short.soft, short.enough, short.flows_that_fit) == (2048, False, 2048 - FD_RESERVE)
+    assert ensure_open_files(4160, **limits(1024, resource.RLIM_INFINITY)).soft == 4160
+
+    def refuse(which, value):
+        raise ValueError("not permitted")
+
+    kept = ensure_open_files(4160, getrlimit=lambda which: (1024, 8192), setrlimit=refuse)
+    assert (kept.soft, kept.raised_from, kept.enough) == (1024, None, False)
 
 
 @pytest.mark.skipif(not sys.platform.startswith("linux"), reason="reads net.core.rmem_max (Linux)")

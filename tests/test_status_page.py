@@ -55,6 +55,9 @@ class _Daemon:
     def flow_count(self):
         return 2
 
+    def flows_evicted(self):
+        return 0
+
     def loss_estimate(self):
         return self.estimate
 

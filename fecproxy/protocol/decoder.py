@@ -113,7 +113,7 @@ SESSION_CONFIRM_PACKETS = 8
 #: Replay windows of ended sessions kept (keyed mode): ~8 KiB each at the default window.
 RETIRED_WINDOWS = 16
 
-#: The fast path peeks a packet's fixed header (12 bytes for both kinds).
+#: The fast path peeks a packet's fixed header (14 bytes for source, 12 for repair packets).
 _LEADING_BYTES = max(wire.SOURCE_HEADER_BYTES, wire.REPAIR_HEADER_BYTES)
 
 
@@ -243,7 +243,7 @@ class BlockDecoder:
         if size >= _LEADING_BYTES and primary is not None:
             type_byte = data[0]
             if type_byte == wire.SOURCE_TYPE_BYTE:
-                _, flags, session, payload_id, flow, previous_k = wire.peek_source(data)
+                _, flags, session, payload_id, flow_word = wire.peek_source(data)
                 if (
                     session == primary.id
                     and not flags & ~wire.FLAG_END
@@ -259,12 +259,15 @@ class BlockDecoder:
                     if block is None:
                         block = self._block_for(primary, sbn, now, events)
                         if block is None:
-                            self._outside_block(primary, sbn, esi, flow, bytes(data[wire.SOURCE_HEADER_BYTES:]), events)
+                            self._outside_block(primary, sbn, esi, flow_word >> wire.FLOW_SHIFT, bytes(data[wire.SOURCE_HEADER_BYTES:]), events)
                             return events, True
+                    previous_k = flow_word & wire.PREVIOUS_K_MASK
                     if previous_k and not block.told_previous:
                         block.told_previous = True
                         self._learn_previous_k(primary, sbn, previous_k, now, events)
-                    self._add_source_fields(block, sbn, esi, flow, bool(flags), bytes(data[wire.SOURCE_HEADER_BYTES:]), events)
+                    self._add_source_fields(
+                        block, sbn, esi, flow_word >> wire.FLOW_SHIFT, bool(flags), bytes(data[wire.SOURCE_HEADER_BYTES:]), events
+                    )
                     self._try_finish(block, now, events)
                     return events, True
             elif type_byte == wire.REPAIR_TYPE_BYTE:
@@ -646,13 +649,12 @@ class BlockDecoder:
         indices = sorted(block.sources) + repair_indices
         symbols = np.zeros((len(indices), length), dtype=np.uint8)
         row = 0
+        prefix = wire.SYMBOL_PREFIX_BYTES
         for esi in sorted(block.sources):
             flow, data = block.sources[esi]
             size = len(data)
-            symbols[row, 0] = flow
-            symbols[row, 1] = size >> 8
-            symbols[row, 2] = size & 0xFF
-            symbols[row, 3 : 3 + size] = np.frombuffer(data, dtype=np.uint8)
+            symbols[row, :prefix] = np.frombuffer(wire.pack_symbol_prefix(flow, size), dtype=np.uint8)
+            symbols[row, prefix : prefix + size] = np.frombuffer(data, dtype=np.uint8)
             row += 1
         for esi in repair_indices:
             symbols[row] = np.frombuffer(block.repairs[esi], dtype=np.uint8)
@@ -665,16 +667,16 @@ class BlockDecoder:
         events: list[Event] = []
         for esi in sorted(rebuilt):
             symbol = rebuilt[esi]
-            size = (int(symbol[1]) << 8) | int(symbol[2])
-            if size + wire.SYMBOL_PREFIX_BYTES > length:
+            flow, size = wire.unpack_symbol_prefix(symbol[:prefix].tobytes())
+            if size + prefix > length:
                 events.append(self._drop(DropReason.INCONSISTENT, f"rebuilt datagram {block.sbn}/{esi} claims {size} bytes"))
                 continue
-            data = symbol[3 : 3 + size].tobytes()
-            block.sources[esi] = (int(symbol[0]), data)
+            data = symbol[prefix : prefix + size].tobytes()
+            block.sources[esi] = (flow, data)
             block.rebuilt += 1
             self.stats.delivered += 1
             self.stats.recovered += 1
-            events.append(Delivery(int(symbol[0]), data, recovered=True, delay=delay))
+            events.append(Delivery(flow, data, recovered=True, delay=delay))
         return events
 
     def _finish(self, block: _Block, outcome: BlockOutcome) -> BlockReport:

@@ -168,6 +168,7 @@ class BlockEncoder:
     def send(self, datagram: bytes, flow: int, now: float) -> list[bytes]:
         """Frame one application datagram; returns the packets to put on the link now.
 
+        ``flow`` is the packed 24-bit flow id (slot << 8 | generation), trusted as such.
         An oversize datagram returns no packet and is counted in ``stats.dropped``.
         """
         settings = self._settings
@@ -180,14 +181,17 @@ class BlockEncoder:
             self._deadline = now + settings.flush_interval
         start = index * self._width
         storage = self._storage
-        storage[start : start + wire.SYMBOL_PREFIX_BYTES] = wire.SYMBOL_PREFIX.pack(flow, size)
+        storage[start : start + wire.SYMBOL_PREFIX_BYTES] = wire.SYMBOL_PREFIX.pack(flow >> 8, flow & 0xFF, size)
         storage[start + wire.SYMBOL_PREFIX_BYTES : start + wire.SYMBOL_PREFIX_BYTES + size] = datagram
         if size + wire.SYMBOL_PREFIX_BYTES > self._symbol_len:
             self._symbol_len = size + wire.SYMBOL_PREFIX_BYTES
         self._count = index + 1
         full = self._count == settings.block_size
         header = wire.pack_source_header(
-            wire.FLAG_END if full else 0, self.session, (self._sbn << wire.ESI_BITS) | index, flow, self._previous_k
+            wire.FLAG_END if full else 0,
+            self.session,
+            (self._sbn << wire.ESI_BITS) | index,
+            flow << wire.FLOW_SHIFT | self._previous_k,
         )
         out = [header + datagram]
         self.stats.source_packets += 1
@@ -237,7 +241,7 @@ class BlockEncoder:
                     oversize += 1
                     continue
                 start = count * width + prefix
-                pack_prefix(storage, start - prefix, flow, size)
+                pack_prefix(storage, start - prefix, flow >> 8, flow & 0xFF, size)  # slot, generation, length
                 storage[start : start + size] = datagram
                 if count == 0:
                     self._deadline = now + settings.flush_interval
@@ -247,9 +251,9 @@ class BlockEncoder:
                 sent += 1
                 sent_bytes += size
                 if count < block_size:
-                    sources.append(pack_source(0, session, payload_base | (count - 1), flow, previous_k) + datagram)
+                    sources.append(pack_source(0, session, payload_base | (count - 1), flow << 8 | previous_k) + datagram)
                     continue
-                sources.append(pack_source(flag_end, session, payload_base | (count - 1), flow, previous_k) + datagram)
+                sources.append(pack_source(flag_end, session, payload_base | (count - 1), flow << 8 | previous_k) + datagram)
                 self._count, self._symbol_len = count, symbol_len
                 block = self._set_aside()
                 settings = self._settings  # a pending update applies from the next block on

@@ -4,7 +4,7 @@ The sender gives every application client address a flow; the receiver keeps, pe
 upstream socket it opened towards the application server, so replies find their way back.  Pure
 bookkeeping with ``now`` passed in: the shell owns the sockets.
 
-The rules (DEVELOPERS.md, "Flow identifiers (planned wire change)"):
+The rules (DEVELOPERS.md, "Flow identifiers"):
 
 * Directions.  A *request* travels from the side that opened the flow (the application client on
   the sender, the link on the receiver); a *reply* travels back.
@@ -35,14 +35,13 @@ from collections.abc import Hashable
 from dataclasses import dataclass
 from typing import Generic, TypeVar
 
-from fecproxy.protocol.wire import MAX_FLOW_IDS
-
 # --------------------------------------------------------------------------------------------
 # Flow identifiers
 # --------------------------------------------------------------------------------------------
 
-#: A slot is 16 bits in the planned wire format: thousands of concurrent clients, where the
-#: one-byte flow id of the RFC 6363 §4 source symbol stops at 256.
+#: A slot is 16 bits of the 24-bit flow id of wire format version 2 (fecproxy.protocol.wire):
+#: thousands of concurrent clients, where the one-byte flow id of the RFC 6363 §4 source symbol
+#: stops at 256.
 SLOT_BITS = 16
 FLOW_SLOTS = 1 << SLOT_BITS
 #: A generation is 8 bits: it tells a slot's new client from its previous one.  A receiver judges
@@ -52,9 +51,6 @@ GENERATION_BITS = 8
 GENERATIONS = 1 << GENERATION_BITS
 _GENERATION_MASK = GENERATIONS - 1
 _HALF_GENERATIONS = GENERATIONS // 2
-#: Wire format version 1 carries a one-byte flow id and no generation (RFC 6363 §4, RFC 6865 §4);
-#: the wire module owns that width.
-ONE_BYTE_FLOW_IDS = MAX_FLOW_IDS
 
 
 def flow_id(slot: int, generation: int) -> int:
@@ -441,104 +437,3 @@ class PeerFlowTable(_Tiers):
 
     def _release(self, slot: int, reason: CloseReason) -> FlowClosed:
         return FlowClosed(self._flow_at.pop(slot), reason)
-
-
-# --------------------------------------------------------------------------------------------
-# The interface of wire format version 1
-# --------------------------------------------------------------------------------------------
-
-
-class FlowTable(Generic[K]):
-    """One-byte flow ids without a generation, as wire format version 1 carries them.
-
-    Kept so the shell runs unchanged until the wire carries slot and generation; it behaves as
-    the table always did: at most 256 ids (a larger ``max_flows`` is capped), one idle timeout for
-    every flow, and a full table refuses new flows.  It must not recycle: without a generation the
-    far end would take a recycled id for the old conversation, and this interface has no way to
-    tell the shell to close an evicted flow's upstream socket.
-
-    Either mode, fixed by the first call: clients (``flow_for(address, now)``, the sender) or a
-    peer's ids (``flow_for(flow, now, flow=flow)``, the receiver).
-    """
-
-    def __init__(self, max_flows: int, idle_timeout: float):
-        if max_flows < 1:
-            raise ValueError(f"max_flows must be ≥ 1, got {max_flows}")
-        self.max_flows = min(max_flows, ONE_BYTE_FLOW_IDS)
-        self._idle_timeout = idle_timeout
-        self._table: ClientFlowTable | PeerFlowTable | None = None
-
-    @property
-    def idle_timeout(self) -> float:
-        return self._idle_timeout
-
-    @idle_timeout.setter
-    def idle_timeout(self, value: float) -> None:
-        self._idle_timeout = value
-        if self._table is not None:
-            self._table.idle_timeout = self._table.first_exchange_timeout = value
-
-    def __len__(self) -> int:
-        return 0 if self._table is None else len(self._table)
-
-    def _mode(self, kind: type) -> ClientFlowTable | PeerFlowTable:
-        if self._table is None:
-            timeouts = dict(first_exchange_timeout=self._idle_timeout, idle_timeout=self._idle_timeout, protect=0.0)
-            if kind is ClientFlowTable:
-                self._table = ClientFlowTable(self.max_flows, slots=self.max_flows, **timeouts)
-            else:
-                self._table = PeerFlowTable(self.max_flows, **timeouts)
-        elif type(self._table) is not kind:
-            raise ValueError("a FlowTable serves either clients or a peer's flow ids, not both")
-        return self._table
-
-    def flow_for(self, key: K, now: float, *, flow: int | None = None) -> int | None:
-        """The flow of ``key``, opened if new (the receiver passes the peer's id as key and flow).
-
-        None when the table is full or the id is not one byte: the caller counts ``flow_limit``.
-        """
-        if flow is None:
-            clients = self._mode(ClientFlowTable)
-            if clients.flow_of(key) is None and len(clients) >= self.max_flows:
-                return None
-            opened = clients.request(key, now)
-            return None if opened is None else opened >> GENERATION_BITS
-        if key != flow:
-            raise ValueError(f"with an explicit flow id the key is the id itself, got {key!r} for {flow}")
-        if not 0 <= flow < ONE_BYTE_FLOW_IDS:
-            return None
-        peer = self._mode(PeerFlowTable)
-        if peer.flow_in(flow) is None and len(peer) >= self.max_flows:
-            return None
-        peer.request(flow << GENERATION_BITS, now)
-        return flow
-
-    def key_for(self, flow: int) -> K | None:
-        table = self._table
-        if table is None or table.flow_in(flow) is None:
-            return None
-        if isinstance(table, PeerFlowTable):
-            return flow  # type: ignore[return-value]
-        return table.client_of(table.flow_in(flow))
-
-    def touch(self, flow: int, now: float) -> None:
-        if self._table is not None and self._table.flow_in(flow) is not None:
-            self._table._activity(flow, now, None)
-
-    def next_deadline(self) -> float | None:
-        return None if self._table is None else self._table.next_deadline()
-
-    def expire(self, now: float) -> list[tuple[int, K]]:
-        """Remove flows idle for the timeout; returns (flow, key) of each, oldest first."""
-        if self._table is None:
-            return []
-        return [(closed.slot, self._key_of(closed)) for closed in self._table.expire(now)]
-
-    def remove(self, flow: int) -> None:
-        if self._table is not None and 0 <= flow < FLOW_SLOTS:
-            current = self._table.flow_in(flow)
-            if current is not None:
-                self._table.remove(current)
-
-    def _key_of(self, closed: FlowClosed):
-        return closed.slot if isinstance(self._table, PeerFlowTable) else closed.client

@@ -34,7 +34,8 @@ from fecproxy.protocol import auth
 from fecproxy.protocol.decoder import BlockDecoder, DecoderStats
 from fecproxy.protocol.events import BlockReport, ControlReceived, Delivery, DropReason, Dropped, SessionStarted
 from fecproxy.protocol.encoder import BlockEncoder, EncoderStats
-from fecproxy.protocol.flows import FlowTable
+from fecproxy.protocol.flows import ClientFlowTable, PeerFlowTable
+from fecproxy.shell.fdlimit import ensure_open_files, files_needed
 from fecproxy.shell.logs import log_event, log_exception
 from fecproxy.shell.metrics import MetricsServer, build_registry, serve
 from fecproxy.shell.reports import Feedback
@@ -42,7 +43,8 @@ from fecproxy.shell.settings import (
     ReloadRejected,
     decoder_settings,
     encoder_settings,
-    flow_idle_timeout,
+    apply_flow_timeouts,
+    flow_table,
     keep_fixed,
     keyring,
     needs_restart,
@@ -91,7 +93,8 @@ class Daemon:
         self.estimator = LossEstimator(window=LOSS_ESTIMATE_WINDOW)
         # Loss reports on the direction we decode; adaptation of the one we encode (fec.adapt).
         self.feedback = Feedback(self.encoder, self.decoder, log)
-        self.flows: FlowTable = FlowTable(config.flows.max, flow_idle_timeout(config))
+        #: Sender: client addresses -> flow ids; receiver: the peer's flow ids -> conversations.
+        self.flows: ClientFlowTable | PeerFlowTable = flow_table(config)
         self._reloads: dict[str, int] = {"applied": 0, "rejected": 0}
         self._drops: dict[DropReason, int] = defaultdict(int)
         self.upstreams: Upstreams | None = None  # receiver only, from run() on
@@ -150,6 +153,9 @@ class Daemon:
 
     def flow_count(self) -> int:
         return len(self.flows)
+
+    def flows_evicted(self) -> int:
+        return self.flows.stats.evicted
 
     @property
     def received_code(self) -> tuple[int | None, int | None]:
@@ -211,8 +217,23 @@ class Daemon:
         with trio.open_signal_receiver(*HANDLED_SIGNALS) if self.handle_signals else nullcontext() as signals:
             await self._run(signals, task_status)
 
+    def _check_open_files(self) -> None:
+        """Raise the open-file limit if the flow table may need more; warn if it cannot."""
+        receiver = self.config.role == "receiver"
+        limit = ensure_open_files(files_needed(self.config.flows.max, holds_flow_sockets=receiver))
+        if limit.raised_from is not None:
+            log_event(log, logging.INFO, "open_files_raised", soft=limit.soft, was=limit.raised_from, hard=limit.hard)
+        if not limit.enough:
+            log_event(
+                log, logging.WARNING, "open_files_low", need=limit.need, soft=limit.soft, hard=limit.hard,
+                fix=f"LimitNOFILE={limit.need} in the systemd unit, or ulimit -n {limit.need} before starting",
+                effect=f"about {limit.flows_that_fit} of flows.max={self.config.flows.max} flows fit; "
+                "datagrams of new flows beyond that are dropped (reason no_socket)",
+            )
+
     async def _run(self, signals, task_status) -> None:
         cfg = self.config
+        self._check_open_files()
         metrics = self._open_sockets()
         self.feedback.configure(cfg, encoder_settings(cfg), trio.current_time())
         try:
@@ -277,7 +298,8 @@ class Daemon:
         """Sender: applications' datagrams -> flows -> encoder -> link."""
         reader = DatagramReader(self._app_sock, coalesce=True)
         flows = self.flows
-        unseen = object()  # a client not yet looked up in this batch (None = flow table full)
+        assert isinstance(flows, ClientFlowTable)
+        unseen = object()  # a client not yet looked up in this batch (None = every flow protected)
         while True:
             batch = await reader.read_batch()
             now = trio.current_time()
@@ -288,7 +310,7 @@ class Daemon:
             for data, address in batch:
                 flow = flow_of.get(address, unseen)
                 if flow is unseen:
-                    flow = flow_of[address] = flows.flow_for(address, now)
+                    flow = flow_of[address] = flows.request(address, now)
                 if flow is None:
                     self._drops[DropReason.FLOW_LIMIT] += 1
                     continue
@@ -342,6 +364,13 @@ class Daemon:
                         # A block with nothing lost is one run of arrivals, a segment of its own.
                         estimator.observe_block(event.arrived_mask, event.span)
                         self.feedback.observe_block(event.arrived_mask, event.span)
+                    elif kind is SessionStarted and event.previous is not None and self.upstreams is not None:
+                        # A restarted sender numbers its flows afresh: what came before belongs
+                        # to the old conversations, which all end now.
+                        await self._deliver(deliveries, now)
+                        deliveries = []
+                        self.upstreams.close_ended(self.flows.clear())
+                        self._handle_event(event, now)
                     else:
                         valid = valid and kind is not Dropped
                         self._handle_event(event, now)
@@ -369,10 +398,9 @@ class Daemon:
             await self._send_to_peer(self.encoder.on_timer(now))
             self._handle_events(self.decoder.on_timer(now), now)
             await self._send_to_peer(self.feedback.on_timer(now))
-            for flow, _ in self.flows.expire(now):
-                if self.upstreams is not None:
-                    self.upstreams.close(flow)
-                log_event(log, logging.DEBUG, "flow_expired", flow=flow)
+            expired = self.flows.expire(now)
+            if self.upstreams is not None:
+                self.upstreams.close_ended(expired)
 
     async def _signal_loop(self, signals) -> None:
         async for signum in signals:
@@ -387,8 +415,10 @@ class Daemon:
     def reload(self, config: Config | None = None) -> bool:
         """Apply new FEC, decoder and flow-timeout settings from the next block on; keep flows.
 
-        ``config`` defaults to the config file read again.  Settings that need new sockets
-        (settings.RESTART_KEYS) are reported and left as they are.
+        Flow timeouts and ``flows.protect_s`` apply at once; ``flows.max`` needs a restart.
+
+        ``config`` defaults to the config file read again.  Settings that need a restart
+        (settings.RESTART_KEYS, RESTART_FIELDS) are reported and left as they are.
         """
         try:
             new = config if config is not None else read_new_config(self.config_path)
@@ -402,7 +432,7 @@ class Daemon:
         self.feedback.configure(new, encoder_settings(new), trio.current_time())
         self.decoder.settings = decoder_settings(new)
         self._apply_keys(new)
-        self.flows.idle_timeout = flow_idle_timeout(new)
+        apply_flow_timeouts(self.flows, new)
         self.config = keep_fixed(self.config, new)
         self._reloads["applied"] += 1
         log_event(log, logging.INFO, "reloaded", k=new.fec.block_size, m=self.encoder.settings.repair, flush_ms=new.fec.flush_ms)
@@ -522,15 +552,14 @@ class Daemon:
                 datagrams.append(delivery.data)
         upstreams = self.upstreams
         for flow, datagrams in by_destination.items():
-            if upstreams is None:  # sender: back to the client of this flow
-                client = self.flows.key_for(flow)
+            if upstreams is None:  # sender: back to the client whose conversation this is now
+                client = self.flows.reply(flow, now)
                 if client is None:
                     self._drops[DropReason.UNKNOWN_FLOW] += len(datagrams)
                     continue
-                self.flows.touch(flow, now)
                 await self._app_writer.send(datagrams, client)
-            else:  # receiver: to the server, from this flow's own socket
-                writer = upstreams.writer_for(flow, now)
+            else:  # receiver: to the server, from this conversation's own socket
+                writer = upstreams.writer_for(flow, now, len(datagrams))
                 if writer is None:
-                    continue  # counted as flow_limit or unreachable
+                    continue  # counted in upstreams.drops
                 await writer.send(datagrams, upstreams.forward)

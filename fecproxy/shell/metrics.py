@@ -66,6 +66,9 @@ class DaemonView(Protocol):
 
     def flow_count(self) -> int: ...
 
+    def flows_evicted(self) -> int:
+        """Flows recycled for a new client while still within their timeout."""
+
     def loss_estimate(self) -> tuple[float, float] | None:
         """(average loss, mean burst) of the link, or None before any sample."""
 
@@ -132,6 +135,9 @@ class DaemonCollector:
             reloads.add_metric([result], d.reloads.get(result, 0))
         yield reloads
         yield GaugeMetricFamily("fecproxy_flows", "Application flows in the flow table.", value=d.flow_count())
+        yield counter(
+            "fecproxy_flows_evicted", "Flows recycled for a new client before their timeout (table full).", d.flows_evicted()
+        )
         # Present from the start, NaN until the peer's first block is in (no traffic measured
         # yet), so a dashboard or `fecproxy plan --from-metrics` can tell "idle" from "down".
         loss, burst = d.loss_estimate() or (math.nan, math.nan)

@@ -1,7 +1,7 @@
 """A daemon's core settings from its config, at start and on a SIGHUP reload.
 
-The cores can take new FEC, decoder and flow-timeout settings between blocks, so a reload applies
-those without dropping a flow.  What is bound to sockets or to the process's shape (role,
+The cores can take new FEC, decoder and flow settings between blocks, so a reload applies those
+without dropping a flow (flow timeouts and the protected interval included).  What is bound to sockets or to the process's shape (role,
 addresses, metrics endpoint, socket buffers, logging, the flow table's size) cannot change under
 a running daemon: a reload reports such a change and keeps the running values until a restart.
 """
@@ -15,6 +15,7 @@ from fecproxy.config import Config, ConfigError, load_config
 from fecproxy.protocol.auth import Keyring
 from fecproxy.protocol.decoder import DecoderSettings
 from fecproxy.protocol.encoder import EncoderSettings
+from fecproxy.protocol.flows import ClientFlowTable, PeerFlowTable
 
 #: Config sections a reload cannot apply (they need new sockets or another role; logging is set
 #: up once by the command, whose --log-level/--log-format may override it): a change to one is
@@ -61,8 +62,26 @@ def keyring(config: Config) -> Keyring | None:
     return Keyring(section.key, section.previous_key, encrypt=section.encrypt)
 
 
-def flow_idle_timeout(config: Config) -> float:
-    return float(config.flows.idle_timeout_s)
+def flow_table(config: Config) -> ClientFlowTable | PeerFlowTable:
+    """The sender's table of client addresses, or the receiver's table of the peer's flow ids."""
+    flows = config.flows
+    timeouts = dict(
+        first_exchange_timeout=float(flows.first_exchange_timeout_s),
+        idle_timeout=float(flows.idle_timeout_s),
+        protect=float(flows.protect_s),
+    )
+    if config.role == "sender":
+        return ClientFlowTable(flows.max, **timeouts)
+    return PeerFlowTable(flows.max, **timeouts)
+
+
+def apply_flow_timeouts(table: ClientFlowTable | PeerFlowTable, config: Config) -> None:
+    """A reload's new timeouts and protected interval; they apply from the next check on.  The
+    table's size (``flows.max``) needs a restart: it sizes the receiver's descriptor budget."""
+    flows = config.flows
+    table.first_exchange_timeout = float(flows.first_exchange_timeout_s)
+    table.idle_timeout = float(flows.idle_timeout_s)
+    table.protect = float(flows.protect_s)
 
 
 def read_new_config(path: str | Path | None) -> Config:
