@@ -327,8 +327,9 @@ class BlockDecoder:
         except wire.PacketError as error:
             return [self._drop(error.reason, str(error))], False
         if isinstance(pkt, wire.ControlPacket):
-            # Not a packet of the peer's sender session: its session is ours (the one reported
-            # on), so it neither touches the session state nor teaches the shell its peer.
+            # A control packet carries its sending side's own session (as every packet it sends,
+            # so sealing keeps one replay window and nonce prefix per session), but it is no
+            # data: it neither touches the session table nor teaches the shell its peer.
             self.stats.control_received += 1
             return [ControlReceived(pkt.session, pkt.body)], False
         events: list[Event] = []
