@@ -8,7 +8,7 @@ from __future__ import annotations
 import pytest
 
 from fecproxy.protocol import wire
-from fecproxy.protocol.decoder import BlockDecoder, SessionState
+from fecproxy.protocol.decoder import BlockDecoder
 from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
 from fecproxy.protocol.events import ControlReceived, DropReason, Dropped
 from fecproxy.protocol.loss_report import LossReport, encode_report, parse_report
@@ -33,7 +33,7 @@ def test_decoder_hands_control_bodies_on_and_keeps_its_session():
     events, in_session = decoder.receive(report, 0.1)
     assert events == [ControlReceived(0x2222, encode_report(REPORT))] and not in_session
     assert parse_report(events[0].body) == REPORT
-    assert (decoder.state, decoder.session, decoder.stats.control_received) == (SessionState.ADOPTED, 0x1111, 1)
+    assert (decoder.sessions, decoder.session, decoder.stats.control_received) == ((0x1111,), 0x1111, 1)
     assert decoder.stats.source_received == 1 and not decoder.stats.dropped
 
 

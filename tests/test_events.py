@@ -20,6 +20,7 @@ def test_label_strings_stay_exactly_as_exported():
     assert [reason.value for reason in DropReason] == [
         "malformed", "unsupported", "oversize", "stale", "late", "duplicate", "inconsistent",
         "flow_limit", "unknown_flow", "no_peer", "unreachable", "no_socket", "internal_error",
+        "auth", "replay", "session_limit", "memory_limit", "decode_limit",
     ]
     assert [outcome.value for outcome in BlockOutcome] == ["complete", "recovered", "expired", "evicted", "superseded"]
     assert DropReason.LATE == "late" and f"{DropReason.LATE}" == "late"

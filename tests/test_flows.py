@@ -20,6 +20,7 @@ from fecproxy.protocol.flows import (
     CloseReason,
     FlowClosed,
     Opened,
+    REPLACE_AFTER_PROTECT_FRACTION,
     PeerFlowTable,
     Verdict,
     flow_id,
@@ -247,11 +248,14 @@ def test_receiver_opens_a_conversation_per_slot_and_generation():
     assert table.request(first, 0.1) is Verdict.CURRENT
     assert table.reply(first, 0.2) is True
     second = flow_id(7, 1)
-    assert table.request(second, 1.0) == Opened(second, (FlowClosed(first, CloseReason.REPLACED),))
+    # While the first conversation is active, a newer generation is a damaged or forged id.
+    assert table.request(second, 0.3) is Verdict.STALE and table.flow_in(7) == first
+    later = 0.2 + PROTECT * REPLACE_AFTER_PROTECT_FRACTION  # quiet long enough: the sender recycled it
+    assert table.request(second, later) == Opened(second, (FlowClosed(first, CloseReason.REPLACED),))
     assert table.stats.replaced == 1 and len(table) == 1
     # A late datagram of the first client: dropped, never delivered on the new socket.
-    assert table.request(first, 1.1) is Verdict.STALE
-    assert table.reply(first, 1.2) is False  # the old socket's late reply
+    assert table.request(first, later + 0.1) is Verdict.STALE
+    assert table.reply(first, later + 0.2) is False  # the old socket's late reply
     assert table.flow_in(7) == second and first not in table and second in table
 
 
@@ -512,6 +516,9 @@ class PeerTableMachine(RuleBasedStateMachine, _TiersModel):
         if current is not None:
             if generation_of(current.flow) > generation:  # no wrap within 0..6
                 assert got is Verdict.STALE
+                return
+            if self.now - current.last < self.protect * REPLACE_AFTER_PROTECT_FRACTION:
+                assert got is Verdict.STALE  # the slot's conversation is still active
                 return
             closed = (FlowClosed(current.flow, CloseReason.REPLACED),)
             del self.flows[slot]

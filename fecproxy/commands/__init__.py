@@ -29,3 +29,22 @@ EXIT_MEANINGS = {
 def exit_status_epilog(*codes: int) -> str:
     """The ``--help`` epilog listing the statuses a command can return."""
     return "exit status: " + ", ".join(f"{code} = {EXIT_MEANINGS[code]}" for code in codes)
+
+
+def load_config_or_status(path: str):
+    """The config at ``path``, or the exit status after printing every fault on stderr: one
+    reading of a config file for ``check`` and ``run`` alike."""
+    import sys
+
+    from fecproxy.config import ConfigError, ConfigUnreadable, load_config
+
+    try:
+        return load_config(path)
+    except ConfigUnreadable as error:
+        print(*error.messages, sep="\n", file=sys.stderr)
+        return EXIT_UNREADABLE
+    except ConfigError as error:
+        print(*error.messages, sep="\n", file=sys.stderr)
+        count = len(error.messages)
+        print(f"{path}: invalid config ({count} error{'s' if count != 1 else ''})", file=sys.stderr)
+        return EXIT_INVALID

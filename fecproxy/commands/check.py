@@ -15,8 +15,7 @@ import sys
 
 import yaml
 
-from fecproxy.commands import EXIT_INVALID, EXIT_OK, EXIT_UNREADABLE, exit_status_epilog
-from fecproxy.config import ConfigError, ConfigUnreadable, load_config
+from fecproxy.commands import EXIT_INVALID, EXIT_OK, EXIT_UNREADABLE, exit_status_epilog, load_config_or_status
 
 EXIT_VALID = EXIT_OK
 
@@ -45,18 +44,9 @@ def render_effective(config, source: str) -> str:
 
 
 def main(args: argparse.Namespace) -> int:
-    try:
-        config = load_config(args.config)
-    except ConfigUnreadable as error:
-        for message in error.messages:
-            print(message, file=sys.stderr)
-        return EXIT_UNREADABLE
-    except ConfigError as error:
-        for message in error.messages:
-            print(message, file=sys.stderr)
-        count = len(error.messages)
-        print(f"{args.config}: invalid config ({count} error{'s' if count != 1 else ''})", file=sys.stderr)
-        return EXIT_INVALID
+    config = load_config_or_status(args.config)
+    if isinstance(config, int):
+        return config
     if not args.quiet:
         sys.stdout.write(render_effective(config, args.config))
     return EXIT_VALID

@@ -10,12 +10,10 @@ from __future__ import annotations
 import argparse
 import logging
 import signal
-import sys
 
 import trio
 
-from fecproxy.commands import EXIT_CANNOT_START, EXIT_INVALID, EXIT_OK, EXIT_UNREADABLE, exit_status_epilog
-from fecproxy.config import ConfigError, ConfigUnreadable, load_config
+from fecproxy.commands import EXIT_CANNOT_START, EXIT_INVALID, EXIT_OK, EXIT_UNREADABLE, exit_status_epilog, load_config_or_status
 from fecproxy.shell.logs import log_event, setup_logging
 
 log = logging.getLogger("fecproxy.run")
@@ -31,25 +29,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 
 
 def main(args: argparse.Namespace) -> int:
-    try:
-        config = load_config(args.config)
-    except ConfigUnreadable as error:
-        for message in error.messages:
-            print(message, file=sys.stderr)
-        return EXIT_UNREADABLE
-    except ConfigError as error:
-        for message in error.messages:
-            print(message, file=sys.stderr)
-        return EXIT_INVALID
-    if config.auth.enabled:
-        # Until the daemon puts tags on packets, running would silently ignore the protection
-        # the config asks for: refuse instead.  Removed when the trailer is wired in.
-        print(
-            f"{args.config}: auth: this build checks key files but does not yet authenticate packets; "
-            f"remove the auth section to run without authentication",
-            file=sys.stderr,
-        )
-        return EXIT_INVALID
+    config = load_config_or_status(args.config)
+    if isinstance(config, int):
+        return config
     setup_logging(args.log_level or str(config.log.level), args.log_format or str(config.log.format))
     from fecproxy.shell.daemon import Daemon, SocketOpenError
 

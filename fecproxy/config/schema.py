@@ -69,6 +69,14 @@ DEFAULT_MAX_OPEN_BLOCKS = _decoder.DEFAULT_MAX_OPEN_BLOCKS
 #: Worst case 65536 × 255 × 1403 bytes would be ~23 GiB; this cap stops a typo, the operator
 #: still has to size memory for what they choose.
 MAX_OPEN_BLOCKS_LIMIT = 65_536
+#: The decoder owns its byte budget, its floor and their reasons (decoder.DEFAULT_MAX_MEMORY_BYTES).
+DEFAULT_MAX_MEMORY_BYTES = _decoder.DEFAULT_MAX_MEMORY_BYTES
+MIN_MEMORY_BYTES = _decoder.MIN_MEMORY_BYTES
+#: 64 GiB: far above any machine this runs on; stops a typo, not a choice.
+MAX_MEMORY_BYTES_LIMIT = 64 * 1024**3
+#: A million rebuilds a second is far above what one core can do (~50 µs each): the cap stops a
+#: typo; null (the default) means no cap.
+MAX_REBUILDS_PER_S_LIMIT = 1_000_000
 
 #: Flow ids are a 16-bit slot and an 8-bit generation (protocol.flows, planned wire format).
 #: Half the slot space: free slots are handed out least recently freed first, so with at most
@@ -227,6 +235,8 @@ class FecSection:
 class DecoderSection:
     hold_ms: int = DEFAULT_HOLD_MS
     max_open_blocks: int = DEFAULT_MAX_OPEN_BLOCKS
+    max_memory_bytes: int = DEFAULT_MAX_MEMORY_BYTES  # everything held for the peer (README "Bounds")
+    max_rebuilds_per_s: int | None = None  # decode-work cap; None = no cap
 
     @property
     def hold_seconds(self) -> float:
@@ -589,6 +599,8 @@ _SECTIONS: dict[str, tuple[type, dict[str, Callable]]] = {
         {
             "hold_ms": _Integer(1, MAX_HOLD_MS, f"an integer number of milliseconds 1..{MAX_HOLD_MS}"),
             "max_open_blocks": _Integer(1, MAX_OPEN_BLOCKS_LIMIT),
+            "max_memory_bytes": _Integer(MIN_MEMORY_BYTES, MAX_MEMORY_BYTES_LIMIT),
+            "max_rebuilds_per_s": _Integer(1, MAX_REBUILDS_PER_S_LIMIT, f"an integer 1..{MAX_REBUILDS_PER_S_LIMIT}, or null for no cap"),
         },
     ),
     "flows": (
@@ -634,7 +646,10 @@ _SECTIONS: dict[str, tuple[type, dict[str, Callable]]] = {
 }
 
 #: Keys whose absence (or null) means "not set" rather than "take a default".
-_OPTIONAL = {"listen", "forward", "link.peer", "metrics.listen", "fec.adapt", "auth.key_file", "auth.previous_key_file"}
+_OPTIONAL = {
+    "listen", "forward", "link.peer", "metrics.listen", "fec.adapt", "auth.key_file", "auth.previous_key_file",
+    "decoder.max_rebuilds_per_s",
+}
 #: The optional package behind auth.encrypt, and how to get it.
 CRYPTO_PACKAGE = "cryptography"
 CRYPTO_INSTALL_HINT = "pip install 'fecproxy[crypto]'"

@@ -46,7 +46,7 @@ counter would make this certain but needs writable state on every site; a fresh 
 
 The sans-IO contract: :func:`verify` reads only the fixed 10-byte header and the trailer, computes
 the tag, and compares it in constant time (``hmac.compare_digest``) before anything else is parsed,
-allocated for the packet or changed in any state; it returns the packet as version 1 without the
+allocated for the packet or changed in any state; it returns the plain packet without the
 trailer and with the AUTH/ENC flags cleared, ready for :func:`fecproxy.protocol.wire.parse`.
 :func:`open_packet` adds the replay check (query before the tag, update after it).
 """
@@ -61,12 +61,12 @@ from typing import NamedTuple
 from fecproxy.protocol import keys, wire
 from fecproxy.protocol.replay import SEQUENCE_LIMIT, ReplayWindow
 
-#: The AUTH flag of the common header (bit 7, reserved by version 1 for this).
+#: The AUTH flag of the common header (bit 7).
 FLAG_AUTH = wire.FLAG_AUTH
 #: Proposed: bit 6 says the body is encrypted.  Kept visible so that a pair with ``encrypt`` set
 #: on one side only is told exactly that, not just "bad tag".  To be added to wire.py when the
 #: trailer is wired in.
-FLAG_ENCRYPTED = 0x40
+FLAG_ENCRYPTED = wire.FLAG_ENCRYPTED
 _AUTH_FLAGS = FLAG_AUTH | FLAG_ENCRYPTED
 
 HEADER_BYTES = wire.COMMON_HEADER.size  # 10
@@ -169,7 +169,7 @@ class Keyring:
 
 
 class Verified(NamedTuple):
-    """An authentic packet: ``packet`` is the version-1 packet for ``wire.parse``.
+    """An authentic packet: ``packet`` is the plain packet for ``wire.parse``.
 
     A named tuple rather than a frozen dataclass: it is built once per packet on the hot path.
     """
@@ -190,7 +190,7 @@ def first_sequence(salt: int) -> int:
 
 
 def protect(packet: bytes, key: PacketKey, sequence: int) -> bytes:
-    """A version-1 packet -> the same packet with AUTH (and ENC) set, trailer appended."""
+    """A plain packet -> the same packet with AUTH (and ENC) set, trailer appended."""
     if len(packet) < HEADER_BYTES:
         raise ValueError(f"a packet of {len(packet)} bytes has no {HEADER_BYTES}-byte header")
     if not 0 <= sequence < SEQUENCE_LIMIT:
@@ -247,7 +247,7 @@ def _require_tag_flag(packet: bytes) -> None:
 
 
 def verify(packet: bytes, keyring: Keyring) -> Verified:
-    """Check a packet's tag (and decrypt it); return the version-1 packet or raise AuthError."""
+    """Check a packet's tag (and decrypt it); return the plain packet or raise AuthError."""
     _require_tag_flag(packet)
     session, key_id, sequence = peek_trailer(packet)
     flags = packet[1]

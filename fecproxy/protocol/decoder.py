@@ -4,52 +4,63 @@ A source packet is delivered the moment it arrives (no added delay when nothing 
 any k packets of a block are in hand, its missing datagrams are rebuilt and delivered, each exactly
 once.  A block that can no longer complete is expired after the hold time and reported, so the
 shell can count loss on the link (before recovery) apart from loss after it (RFC 6363 §6).
-Memory is bounded: at most ``max_open_blocks`` blocks, each holding at most 255 packets of at most
-``max_datagram`` + 5 bytes, a bounded memory of finished block numbers, and at most
-SESSION_CONFIRM_PACKETS − 1 packets of a candidate session.
+A finished block remembers which datagrams it delivered: a late source packet of a block that
+ended incomplete is still delivered if its datagram never was (and dropped as ``late`` if it was).
 
-``receive`` returns the events and whether the packet was a valid packet of the adopted session:
-the shell learns its peer's address only from those.
+``receive`` returns the events and whether the packet was a valid packet of the *replied-to*
+session (below): the shell learns its peer's address only from those.
+
+Authentication
+--------------
+With a :class:`~fecproxy.protocol.auth.Keyring`, the first thing ``receive`` does is check the
+packet's tag (:mod:`fecproxy.protocol.auth`): the replay window of the packet's session is
+queried, the tag computed (or the body decrypted), and only then the window updated (RFC 4303
+§3.4.3).  Nothing beyond the fixed header is parsed, nothing allocated from its fields and no
+state changed before the tag passes; failures are dropped as ``auth`` or ``replay``.
 
 Sender sessions
 ---------------
 Every packet carries the sender's 32-bit session value, new at each sender start.  The decoder
-follows one *adopted* session; what a valid packet of session s does depends on the state (A is
-the adopted session, C the candidate, "quiet" means A sent no valid packet for ``hold_time``,
-"confirmed" means SESSION_CONFIRM_PACKETS − 1 distinct packets of C are held already)::
+keeps a small table of *live* sessions (at most MAX_SESSIONS), each with its own open and finished
+blocks, so a packet of one session never disturbs another's blocks:
 
-    state       packet's session   condition      action                              next state
-    ----------  -----------------  -------------  ----------------------------------  ----------
-    NO_SESSION  any                -              adopt s                             ADOPTED
-    ADOPTED     A                  -              admit to its block                  ADOPTED
-    ADOPTED     retired            -              drop "stale"                        ADOPTED
-    ADOPTED     other              A quiet        adopt s (A retired)                 ADOPTED
-    ADOPTED     other              otherwise      hold s's packet as candidate        CANDIDATE
-    CANDIDATE   A                  -              admit to its block                  CANDIDATE
-    CANDIDATE   retired            -              drop "stale"                        CANDIDATE
-    CANDIDATE   C                  A quiet or     adopt C (A retired), replay the     ADOPTED
-                                   confirmed      held packets into C's blocks
-    CANDIDATE   C                  otherwise      hold (drop "duplicate" if held)     CANDIDATE
-    CANDIDATE   other              A quiet        adopt s (A retired, C's packets     ADOPTED
-                                                  discarded)
-    CANDIDATE   other              otherwise      s replaces C as candidate           CANDIDATE
+* a valid packet of a session not in the table adds it at once (its source datagrams are
+  delivered at once); when the table is full, the least recently active session that may be
+  evicted goes (a session that is quiet — no valid packet for the hold time — or that is not the
+  replied-to one and has sent fewer than SESSION_CONFIRM_PACKETS valid packets); when none may,
+  the packet is dropped as ``session_limit``.  A session still sending valid packets is never
+  retired by another;
+* a session other than the replied-to one ages out when it has been quiet for the hold time and
+  has no open block; its state goes with it;
+* the **replied-to session** is the one whose sender the shell answers (and learns its peer
+  address from): the first session seen, then, once it has been quiet for the hold time, the
+  next *established* session (SESSION_CONFIRM_PACKETS valid packets) to send.  Changing it emits
+  SessionStarted.  A stranger's packets of a made-up session therefore never move the peer
+  address while the real sender is sending, and a restarted sender takes over within the hold
+  time of its predecessor falling silent.
 
-Adopting a session finishes the old one's open blocks as "superseded" and emits SessionStarted.
-A held candidate packet's datagram is delivered at once (it needs no block state) and is not
-delivered again when replayed.  A candidate stays until adopted or replaced: packets of A do not
-clear it.
+With a key, each session has its own replay window.  A session's window outlives it: the windows
+of the last RETIRED_WINDOWS sessions that aged out are kept, so a recorded packet of a session
+that ended is still a replay (and a paused sender that resumes keeps its window).  A recording
+of a session older than that is accepted as a new session once; the sequence numbers carry no
+order across sender starts (their start is random), so nothing in the packet tells it apart.
+
+Memory is bounded: open blocks across all sessions (``max_open_blocks``; the session holding
+the most gives up its oldest), bytes held across all sessions (``max_memory_bytes``, the same
+rule), the finished-block memory of each session, and MAX_SESSIONS sessions.  Decode work can be
+capped (``max_rebuilds_per_s``): a block that could be rebuilt while the cap is reached waits
+(still taking source packets) and is counted once as ``decode_limit``.
 """
 
 from __future__ import annotations
 
-from collections import OrderedDict, deque
+from collections import OrderedDict
 from dataclasses import dataclass, field
-from enum import Enum
 
 import numpy as np
 
 from fecproxy.coding.codec import BlockCode, block_code
-from fecproxy.protocol import wire
+from fecproxy.protocol import auth, wire
 from fecproxy.protocol.events import (
     BlockOutcome,
     BlockReport,
@@ -61,37 +72,49 @@ from fecproxy.protocol.events import (
     SessionStarted,
     direct_delivery,
 )
+from fecproxy.protocol.replay import ReplayWindow
 from fecproxy.protocol.received_code import ReceivedCode
 
 #: How long an incomplete block waits for more packets.  Must exceed the sender's flush interval
 #: plus the link's delay spread; 500 ms covers a geostationary hop's jitter with room to spare
 #: (common practice, no source).
 DEFAULT_HOLD_TIME = 0.5
-#: Open blocks kept at once; the oldest is evicted (and counted) beyond this.  256 blocks of
-#: k=16 is 4096 datagrams in flight, ~80 ms at 50 000 datagrams/s; memory is at most
-#: 256 × (k + m) × (max_datagram + 5) bytes, ~7 MiB for k=16, m=4, 1400 bytes.
+#: Open blocks kept at once, all sessions together; beyond this the session holding the most
+#: gives up its oldest (counted as evicted).  256 blocks of k=16 is 4096 datagrams in flight,
+#: ~80 ms at 50 000 datagrams/s.
 DEFAULT_MAX_OPEN_BLOCKS = 256
-#: Finished block numbers remembered, so their late packets are recognised rather than reopened.
+#: Bytes the decoder may hold for its peer: packets of open blocks (payload + PACKET_OVERHEAD_BYTES
+#: each).  256 open blocks of k=16, m=4 at 1400 bytes hold ≈ 256 × 20 × 1.5 kB ≈ 7.6 MB: 16 MiB
+#: leaves room for that full load while keeping a flood's worst case small (README "Bounds").
+DEFAULT_MAX_MEMORY_BYTES = 16 * 1024 * 1024
+#: The smallest budget: one block of 255 packets of the largest datagram must fit (~16.7 MB would be
+#: the absolute worst; a budget this small only makes sense with small datagrams).
+MIN_MEMORY_BYTES = 64 * 1024
+#: What one held packet costs beyond its payload: the bytes object's header (33 bytes in
+#: CPython), its dict slot and tuple (~100 bytes), rounded up (measured with sys.getsizeof).
+PACKET_OVERHEAD_BYTES = 160
+#: What an open block costs before any packet (the _Block object, its dicts, its OrderedDict slot).
+BLOCK_OVERHEAD_BYTES = 1024
+#: No cap on rebuilds by default: on the development machine a k=16 rebuild costs ~50–100 µs, so
+#: real traffic never needs a cap; set one where a forger could flood repair packets (no key).
+DEFAULT_MAX_REBUILDS_PER_S: float | None = None
+#: Finished block numbers remembered per session, so their late packets are recognised rather
+#: than reopened.
 FINISHED_MEMORY_FACTOR = 4
-#: Earlier sender sessions remembered, so stragglers from before a restart are dropped as stale.
-RETIRED_SESSIONS = 4
-#: Packets of a new session needed before it replaces a session that is still sending.  One stray
-#: packet with a random session value must not retire the live one (without authentication a
-#: determined forger still can; RFC 6363 §9).  A restarted sender is adopted at once when the old
-#: session has been quiet for the hold time, or after this many packets otherwise; until then its
-#: source datagrams are still delivered, and its packets are replayed into the new session's blocks.
+#: Live sender sessions tracked at once.  One is the normal case, two during a sender restart
+#: (the old one's stragglers, the new one); the rest is room for a stranger's sessions without
+#: touching the real one.  Each costs its blocks (within the shared budgets) and a replay window.
+MAX_SESSIONS = 4
+#: Valid packets a session must have sent before it may become the replied-to session in place
+#: of a quiet one, and before it is safe from eviction by a newcomer.  One stray packet with a
+#: random session value (a bit flip, a forgery) must never take the replies; a real sender sends
+#: this many within its first block.
 SESSION_CONFIRM_PACKETS = 8
+#: Replay windows of ended sessions kept (keyed mode): ~8 KiB each at the default window.
+RETIRED_WINDOWS = 16
 
 #: The fast path peeks a packet's fixed header (14 bytes for source, 12 for repair packets).
 _LEADING_BYTES = max(wire.SOURCE_HEADER_BYTES, wire.REPAIR_HEADER_BYTES)
-
-
-class SessionState(Enum):
-    """Where the decoder stands with the sender's sessions (transition table in the module doc)."""
-
-    NO_SESSION = "no_session"  # no valid packet yet
-    ADOPTED = "adopted"  # following one session
-    CANDIDATE = "candidate"  # following one session, holding another's packets until confirmed
 
 
 @dataclass(frozen=True)
@@ -99,6 +122,8 @@ class DecoderSettings:
     hold_time: float = DEFAULT_HOLD_TIME
     max_open_blocks: int = DEFAULT_MAX_OPEN_BLOCKS
     max_datagram: int = wire.DEFAULT_MAX_DATAGRAM
+    max_memory_bytes: int = DEFAULT_MAX_MEMORY_BYTES
+    max_rebuilds_per_s: float | None = DEFAULT_MAX_REBUILDS_PER_S
 
     def __post_init__(self) -> None:
         if not self.hold_time > 0:
@@ -107,6 +132,10 @@ class DecoderSettings:
             raise ValueError(f"max_open_blocks must be ≥ 1, got {self.max_open_blocks}")
         if not 1 <= self.max_datagram <= wire.MAX_DATAGRAM_LIMIT:
             raise ValueError(f"max_datagram {self.max_datagram} outside 1..{wire.MAX_DATAGRAM_LIMIT}")
+        if self.max_memory_bytes < MIN_MEMORY_BYTES:
+            raise ValueError(f"max_memory_bytes must be ≥ {MIN_MEMORY_BYTES}, got {self.max_memory_bytes}")
+        if self.max_rebuilds_per_s is not None and not self.max_rebuilds_per_s > 0:
+            raise ValueError(f"max_rebuilds_per_s must be positive, got {self.max_rebuilds_per_s}")
 
 
 @dataclass
@@ -123,10 +152,28 @@ class DecoderStats:
     dropped: dict[str, int] = field(default_factory=dict)
 
 
-class _Block:
-    __slots__ = ("sbn", "first_seen", "k", "sources", "repairs", "symbol_len", "max_esi", "arrived", "rebuilt", "told_previous")
+class _Session:
+    """One sender session's block state."""
 
-    def __init__(self, sbn: int, now: float):
+    __slots__ = ("id", "open", "finished", "highest", "newest", "first_sbn", "last_seen", "packets", "window", "bytes")
+
+    def __init__(self, session: int, now: float, window: ReplayWindow | None):
+        self.id = session
+        self.open: OrderedDict[int, _Block] = OrderedDict()
+        self.finished: OrderedDict[int, int] = OrderedDict()  # SBN -> mask of datagrams delivered
+        self.highest: int | None = None  # the newest block that completed: the window's front
+        self.newest: int | None = None  # the newest block seen at all (for loss reports)
+        self.first_sbn: int | None = None  # the first block this session showed us
+        self.last_seen = now  # its last valid packet
+        self.packets = 0  # valid packets so far
+        self.window = window  # keyed mode: its replay window
+        self.bytes = 0  # held in its open blocks
+
+
+class _Block:
+    __slots__ = ("sbn", "first_seen", "k", "sources", "repairs", "symbol_len", "max_esi", "arrived", "rebuilt", "told_previous", "owner", "bytes", "deferred")
+
+    def __init__(self, sbn: int, now: float, owner: _Session):
         self.sbn = sbn
         self.first_seen = now
         self.k: int | None = None
@@ -137,61 +184,87 @@ class _Block:
         self.arrived = 0  # bit i: source i came directly
         self.rebuilt = 0
         self.told_previous = False  # a source packet has told the previous block's k
+        self.owner = owner
+        self.bytes = 0  # what _hold counted for it
+        self.deferred = False  # a rebuild waited for the decode-work cap (counted once)
 
 
 class BlockDecoder:
     """One direction's decoder.  Feed ``receive``; call ``on_timer`` at ``next_deadline``."""
 
-    def __init__(self, settings: DecoderSettings = DecoderSettings()):
+    def __init__(self, settings: DecoderSettings = DecoderSettings(), keyring: auth.Keyring | None = None):
         self.settings = settings
+        self.keyring = keyring  # replaced on a key reload; the sessions' windows stay
         self.stats = DecoderStats()
-        self.received_code = ReceivedCode()  # the peer's k and m as its repair packets show them
-        self.state = SessionState.NO_SESSION
-        self.session: int | None = None  # the adopted session
-        self._retired: deque[int] = deque(maxlen=RETIRED_SESSIONS)
-        self._open: OrderedDict[int, _Block] = OrderedDict()
-        self._finished: OrderedDict[int, None] = OrderedDict()
-        self._highest: int | None = None
-        self._first_sbn: int | None = None  # the first block this session showed us
-        self._last_seen = float("-inf")  # when the adopted session last sent a valid packet
-        self._candidate: int | None = None
-        self._candidate_packets: list[wire.SourcePacket | wire.RepairPacket] = []
+        self.session: int | None = None  # the replied-to session
+        self._primary: _Session | None = None
+        self.received_code = ReceivedCode()  # the replied-to session's k and m as its repair packets show them
+        self._sessions: dict[int, _Session] = {}
+        self._retired_windows: OrderedDict[int, ReplayWindow] = OrderedDict()
+        self._open_count = 0  # open blocks, all sessions
+        self._bytes = 0  # bytes held, all sessions
+        self._tokens = 0.0  # decode-work bucket (rebuilds)
+        self._tokens_at: float | None = None
+        #: The latest packet's authentication result: the key id and whether the previous key
+        #: was used (for the shell's rollover notice); None when unkeyed or not authentic.
+        self.last_verified: auth.Verified | None = None
+
+    @property
+    def sessions(self) -> tuple[int, ...]:
+        """The live sessions, replied-to one included."""
+        return tuple(self._sessions)
+
+    @property
+    def held_bytes(self) -> int:
+        """Bytes held in open blocks, all sessions (what ``max_memory_bytes`` bounds)."""
+        return self._bytes
+
+    @property
+    def open_blocks(self) -> int:
+        return self._open_count
 
     # ------------------------------------------------------------------ feeding
     def receive(self, data: bytes, now: float) -> tuple[list[Event], bool]:
         """Take one link packet.  Returns its events, and True when it was a valid packet of the
-        adopted session (possibly adopted by this very packet): the only packets whose source
+        replied-to session (possibly made so by this very packet): the only packets whose source
         address the shell may take as its peer's."""
-        # Fast path for the two packets a clean link brings: a source packet of the adopted
+        if self.keyring is not None:
+            verified = self._authenticate(data, now)
+            if type(verified) is not auth.Verified:
+                return [verified], False
+            data = verified.packet
+        # Fast path for the two packets a clean link brings: a source packet of the replied-to
         # session, and such a repair packet of a block already finished.  The same checks in the
         # same order as wire.parse + _receive_general, with the same outcome, minus the packet
         # object (tests/test_decoder_paths.py compares the two); anything else (another session,
         # a bad field, a repair packet still needed) takes the general path.
         size = len(data)
-        if size >= _LEADING_BYTES:
+        primary = self._primary
+        if size >= _LEADING_BYTES and primary is not None:
             type_byte = data[0]
             if type_byte == wire.SOURCE_TYPE_BYTE:
                 _, flags, session, payload_id, flow_word = wire.peek_source(data)
                 if (
-                    session == self.session
+                    session == primary.id
                     and not flags & ~wire.FLAG_END
                     and payload_id & wire.ESI_MASK <= wire.MAX_ESI
                     and size - wire.SOURCE_HEADER_BYTES <= self.settings.max_datagram
                 ):
-                    self._last_seen = now
+                    primary.last_seen = now
+                    primary.packets += 1
                     self.stats.source_received += 1
                     sbn, esi = payload_id >> wire.ESI_BITS, payload_id & wire.ESI_MASK
                     events: list[Event] = []
-                    block = self._open.get(sbn)
+                    block = primary.open.get(sbn)
                     if block is None:
-                        block = self._block_for(sbn, now, events)
+                        block = self._block_for(primary, sbn, now, events)
                         if block is None:
-                            events.append(self._behind(sbn, repair=False))
+                            self._outside_block(primary, sbn, esi, flow_word >> wire.FLOW_SHIFT, bytes(data[wire.SOURCE_HEADER_BYTES:]), events)
                             return events, True
                     previous_k = flow_word & wire.PREVIOUS_K_MASK
                     if previous_k and not block.told_previous:
                         block.told_previous = True
-                        self._learn_previous_k(sbn, previous_k, now, events)
+                        self._learn_previous_k(primary, sbn, previous_k, now, events)
                     self._add_source_fields(
                         block, sbn, esi, flow_word >> wire.FLOW_SHIFT, bool(flags), bytes(data[wire.SOURCE_HEADER_BYTES:]), events
                     )
@@ -202,19 +275,49 @@ class BlockDecoder:
                 symbol_size = size - wire.REPAIR_HEADER_BYTES
                 sbn = payload_id >> wire.ESI_BITS
                 if (
-                    session == self.session
+                    session == primary.id
                     and not flags
                     and 1 <= k <= payload_id & wire.ESI_MASK <= wire.MAX_ESI
                     and wire.SYMBOL_PREFIX_BYTES <= symbol_size <= self.settings.max_datagram + wire.SYMBOL_PREFIX_BYTES
-                    and sbn not in self._open
-                    and sbn in self._finished
+                    and sbn not in primary.open
+                    and sbn in primary.finished
                 ):
-                    self._last_seen = now
+                    primary.last_seen = now
+                    primary.packets += 1
                     self.stats.repair_received += 1
                     self.stats.repair_unneeded += 1  # normal: the block completed before its repair came
                     self.received_code.note(sbn, k, payload_id & wire.ESI_MASK)
                     return [], True
         return self._receive_general(data, now)
+
+    def _authenticate(self, data: bytes, now: float) -> auth.Verified | Dropped:
+        """Replay query, tag check, window update (auth.open_packet's order), with the window of
+        the packet's session: a live one's, a retired one's, or none yet for a new session."""
+        self.last_verified = None
+        try:
+            auth._require_tag_flag(data)
+            session, _, sequence = auth.peek_trailer(data)
+            live = self._sessions.get(session)
+            window = live.window if live is not None else self._retired_windows.get(session)
+            verdict = window.check(sequence) if window is not None else None
+            if verdict is not None and not verdict.accepted:
+                raise auth.ReplayedPacket(f"sequence {sequence} is {verdict.value.replace('_', ' ')} (highest {window.highest})", sequence)
+            verified = auth.verify(data, self.keyring)
+        except auth.AuthError as error:
+            return self._drop(DropReason.AUTH, str(error), error)
+        except auth.ReplayedPacket as error:
+            return self._drop(DropReason.REPLAY, str(error), error)
+        if window is None:
+            window = ReplayWindow()  # made only now that the packet proved authentic
+            if live is not None:
+                live.window = window
+            else:  # a new session: _add_session takes it from here
+                self._retired_windows[session] = window
+                while len(self._retired_windows) > RETIRED_WINDOWS:
+                    self._retired_windows.popitem(last=False)
+        window.commit(sequence)
+        self.last_verified = verified
+        return verified
 
     def _receive_general(self, data: bytes, now: float) -> tuple[list[Event], bool]:
         """``receive`` without its fast path: complete on its own (the fast path only saves the
@@ -224,106 +327,111 @@ class BlockDecoder:
         except wire.PacketError as error:
             return [self._drop(error.reason, str(error))], False
         if isinstance(pkt, wire.ControlPacket):
-            # Not a packet of the peer's sender session: its session is ours (the one reported
-            # on), so it neither touches the session state nor teaches the shell its peer.
+            # A control packet carries its sending side's own session (as every packet it sends,
+            # so sealing keeps one replay window and nonce prefix per session), but it is no
+            # data: it neither touches the session table nor teaches the shell its peer.
             self.stats.control_received += 1
             return [ControlReceived(pkt.session, pkt.body)], False
         events: list[Event] = []
-        if pkt.session != self.session:
-            if pkt.session in self._retired:
-                return [self._drop(DropReason.STALE, f"packet from retired session {pkt.session:#010x}")], False
-            if not self._may_adopt(pkt, now):
-                return self._hold_candidate(pkt), False
-            replay = self._candidate_packets if self._candidate == pkt.session else []
-            self._candidate, self._candidate_packets = None, []
-            events.extend(self._start_session(pkt.session))
-            for earlier in replay:
-                self._admit(earlier, now, events, replayed=True)
-        self._last_seen = now
+        sess = self._sessions.get(pkt.session)
+        if sess is None:
+            sess = self._add_session(pkt.session, now, events)
+            if sess is None:
+                return events, False
+        sess.last_seen = now
+        sess.packets += 1
+        primary = self._primary
+        if primary is not sess and (
+            primary is None
+            or (now - primary.last_seen >= self.settings.hold_time and sess.packets >= SESSION_CONFIRM_PACKETS)
+        ):
+            previous = self.session
+            self._primary, self.session = sess, sess.id
+            self.received_code.reset()
+            events.append(SessionStarted(sess.id, previous))
         if isinstance(pkt, wire.SourcePacket):
             self.stats.source_received += 1
         else:
             self.stats.repair_received += 1
-            self.received_code.note(pkt.sbn, pkt.k, pkt.esi)
-        self._admit(pkt, now, events)
-        return events, True
+            if sess is self._primary:  # the peer's code is the replied-to session's
+                self.received_code.note(pkt.sbn, pkt.k, pkt.esi)
+        self._admit(sess, pkt, now, events)
+        return events, self._primary is sess
 
-    def _may_adopt(self, pkt: wire.SourcePacket | wire.RepairPacket, now: float) -> bool:
-        """Whether a packet of another session adopts it (the "condition" column of the table)."""
-        state = self.state
-        if state is SessionState.NO_SESSION or now - self._last_seen >= self.settings.hold_time:
-            return True  # nothing adopted yet, or the adopted session is quiet
-        return (
-            state is SessionState.CANDIDATE
-            and self._candidate == pkt.session
-            and len(self._candidate_packets) + 1 >= SESSION_CONFIRM_PACKETS
-        )
+    def _add_session(self, session: int, now: float, events: list[Event]) -> _Session | None:
+        """A valid packet of a session not in the table: make room if a session may go."""
+        hold = self.settings.hold_time
+        if len(self._sessions) >= MAX_SESSIONS:
+            evictable = [
+                s for s in self._sessions.values()
+                if now - s.last_seen >= hold or (s is not self._primary and s.packets < SESSION_CONFIRM_PACKETS)
+            ]
+            if not evictable:
+                events.append(self._drop(DropReason.SESSION_LIMIT, f"session {session:#010x}: {MAX_SESSIONS} live sessions already"))
+                return None
+            self._end_session(min(evictable, key=lambda s: s.last_seen), events)
+        window = self._retired_windows.pop(session, None) if self.keyring is not None else None
+        sess = _Session(session, now, window)
+        self._sessions[session] = sess
+        return sess
 
-    def _hold_candidate(self, pkt: wire.SourcePacket | wire.RepairPacket) -> list[Event]:
-        """A packet of a not-yet-adopted session: deliver its datagram (it needs no block state),
-        keep the packet to replay if the session is adopted."""
-        if self._candidate != pkt.session:
-            self._candidate, self._candidate_packets = pkt.session, []
-            self.state = SessionState.CANDIDATE
-        if any(held.sbn == pkt.sbn and held.esi == pkt.esi for held in self._candidate_packets):
-            return [self._drop(DropReason.DUPLICATE, f"packet {pkt.sbn}/{pkt.esi} of a new session seen before")]
-        self._candidate_packets.append(pkt)
-        if isinstance(pkt, wire.RepairPacket):
-            self.stats.repair_received += 1
-            return []
-        self.stats.source_received += 1
-        self.stats.delivered += 1
-        return [Delivery(pkt.flow, pkt.data)]
+    def _end_session(self, sess: _Session, events: list[Event]) -> None:
+        """Forget a session: its open blocks are reported as superseded; its window is kept."""
+        for block in list(sess.open.values()):
+            events.append(self._finish(block, BlockOutcome.SUPERSEDED))
+        del self._sessions[sess.id]
+        if sess.window is not None:
+            self._retired_windows[sess.id] = sess.window
+            while len(self._retired_windows) > RETIRED_WINDOWS:
+                self._retired_windows.popitem(last=False)
+        if sess is self._primary:
+            self._primary = None  # the session stays named in self.session until another is chosen
 
-    def _admit(self, pkt: wire.SourcePacket | wire.RepairPacket, now: float, events: list[Event], *, replayed: bool = False) -> None:
+    def _admit(self, sess: _Session, pkt: wire.SourcePacket | wire.RepairPacket, now: float, events: list[Event]) -> None:
         """Add a packet to its block (opening it if new) and finish the block if it can."""
-        block = self._block_for(pkt.sbn, now, events)
+        block = self._block_for(sess, pkt.sbn, now, events)
         if block is None:
-            if isinstance(pkt, wire.RepairPacket) and pkt.sbn in self._finished:
+            if isinstance(pkt, wire.RepairPacket) and pkt.sbn in sess.finished:
                 self.stats.repair_unneeded += 1  # normal: a block complete before its repair arrived
-            elif not replayed:
-                events.append(self._behind(pkt.sbn, repair=isinstance(pkt, wire.RepairPacket)))
-            return
-        if isinstance(pkt, wire.SourcePacket) and pkt.previous_k and not block.told_previous:
-            block.told_previous = True
-            self._learn_previous_k(pkt.sbn, pkt.previous_k, now, events)
-        if isinstance(pkt, wire.SourcePacket):
-            if replayed:
-                # Delivered while its session was a candidate: record it, don't deliver it again.
-                added: list[Event] = []
-                self._add_source_fields(block, pkt.sbn, pkt.esi, pkt.flow, pkt.end, pkt.data, added)
-                for event in added:
-                    if type(event) is Delivery:
-                        self.stats.delivered -= 1
-                    else:
-                        events.append(event)
+            elif isinstance(pkt, wire.SourcePacket):
+                self._outside_block(sess, pkt.sbn, pkt.esi, pkt.flow, pkt.data, events)
             else:
-                self._add_source_fields(block, pkt.sbn, pkt.esi, pkt.flow, pkt.end, pkt.data, events)
+                events.append(self._behind(sess, pkt.sbn, repair=True))
+            return
+        if isinstance(pkt, wire.SourcePacket):
+            if pkt.previous_k and not block.told_previous:
+                block.told_previous = True
+                self._learn_previous_k(sess, pkt.sbn, pkt.previous_k, now, events)
+            self._add_source_fields(block, pkt.sbn, pkt.esi, pkt.flow, pkt.end, pkt.data, events)
         else:
             self._add_repair(block, pkt, events)
         self._try_finish(block, now, events)
 
     @property
     def highest_sbn(self) -> int | None:
-        """The newest source block number seen of the adopted session (None before any);
+        """The newest source block number seen of the replied-to session (None before any);
         a loss report carries it."""
-        return self._highest
+        return self._primary.newest if self._primary is not None else None
 
     def next_deadline(self) -> float | None:
-        if not self._open:
-            return None
-        oldest = next(iter(self._open.values()))
-        return oldest.first_seen + self.settings.hold_time
+        hold = self.settings.hold_time
+        deadlines = [next(iter(s.open.values())).first_seen + hold for s in self._sessions.values() if s.open]
+        deadlines += [s.last_seen + hold for s in self._sessions.values() if s is not self._primary and not s.open]
+        return min(deadlines) if deadlines else None
 
     def on_timer(self, now: float) -> list[Event]:
-        """Expire blocks whose hold time has passed; they can no longer be completed in time."""
+        """Expire blocks whose hold time has passed (they can no longer be completed in time), and
+        forget sessions other than the replied-to one that have been quiet for the hold time."""
         events: list[Event] = []
         hold = self.settings.hold_time
-        while self._open:
-            block = next(iter(self._open.values()))
-            if block.first_seen + hold > now:
-                break
-            events.append(self._finish(block, BlockOutcome.EXPIRED))
+        for sess in list(self._sessions.values()):
+            while sess.open:
+                block = next(iter(sess.open.values()))
+                if block.first_seen + hold > now:
+                    break
+                events.append(self._finish(block, BlockOutcome.EXPIRED))
+            if sess is not self._primary and not sess.open and now - sess.last_seen >= hold:
+                self._end_session(sess, events)
         return events
 
     def close(self) -> list[Event]:
@@ -331,14 +439,14 @@ class BlockDecoder:
 
         The decoder stays usable; later packets open new blocks.
         """
-        return [self._finish(block, BlockOutcome.EXPIRED) for block in list(self._open.values())]
+        return [self._finish(block, BlockOutcome.EXPIRED) for sess in list(self._sessions.values()) for block in list(sess.open.values())]
 
     # ------------------------------------------------------------------ internals
-    def _drop(self, reason: DropReason, detail: str) -> Dropped:
+    def _drop(self, reason: DropReason, detail: str, error: Exception | None = None) -> Dropped:
         self.stats.dropped[reason] = self.stats.dropped.get(reason, 0) + 1
-        return Dropped(reason, detail)
+        return Dropped(reason, detail, error)
 
-    def _learn_previous_k(self, sbn: int, k: int, now: float, events: list[Event]) -> None:
+    def _learn_previous_k(self, sess: _Session, sbn: int, k: int, now: float, events: list[Event]) -> None:
         """A source packet of a newly seen block told the size of the block before it.
 
         That block may still be open without a known k (its tail and all its repair packets
@@ -348,65 +456,94 @@ class BlockDecoder:
         they were sent before this receiver was listening.
         """
         previous = (sbn - 1) % wire.SBN_MODULUS
-        block = self._open.get(previous)
+        block = sess.open.get(previous)
         if block is not None:
             if block.k is None and k > block.max_esi:
                 block.k = k
                 self._try_finish(block, now, events)
             return
-        if previous in self._finished:
+        if previous in sess.finished:
             return
-        after_first = (previous - self._first_sbn) % wire.SBN_MODULUS
+        after_first = (previous - sess.first_sbn) % wire.SBN_MODULUS
         if not 0 < after_first < wire.SBN_MODULUS // 2:
             return
-        block = self._block_for(previous, now, events)
+        block = self._block_for(sess, previous, now, events, keep=sess.open.get(sbn))
         if block is not None:
             block.k = k
 
-    def _start_session(self, session: int) -> list[Event]:
-        events: list[Event] = [self._finish(block, BlockOutcome.SUPERSEDED) for block in list(self._open.values())]
-        previous = self.session
-        if previous is not None:
-            self._retired.append(previous)
-        self.session = session
-        self.state = SessionState.ADOPTED
-        self._finished.clear()
-        self._highest = None
-        self._first_sbn = None
-        self.received_code.reset()
-        events.append(SessionStarted(session, previous))
-        return events
-
-    def _block_for(self, sbn: int, now: float, events: list[Event]) -> _Block | None:
-        block = self._open.get(sbn)
+    def _block_for(self, sess: _Session, sbn: int, now: float, events: list[Event], keep: _Block | None = None) -> _Block | None:
+        """The open block ``sbn`` of ``sess``, opened if new and within the window (making room
+        under both budgets, never by evicting ``keep``); None if finished or too far behind."""
+        block = sess.open.get(sbn)
         if block is not None:
             return block
-        if sbn in self._finished:
+        if sbn in sess.finished:
             return None
-        if self._highest is not None:
-            behind = (self._highest - sbn) % wire.SBN_MODULUS
-            if 0 < behind < wire.SBN_MODULUS // 2:
-                if behind > self._window():
-                    return None
-            else:
-                self._highest = sbn
-        else:
-            self._highest = sbn
-        while len(self._open) >= self.settings.max_open_blocks:
-            events.append(self._finish(next(iter(self._open.values())), BlockOutcome.EVICTED))
-        block = _Block(sbn, now)
-        if self._first_sbn is None:
-            self._first_sbn = sbn
-        self._open[sbn] = block
+        if sess.highest is not None:
+            behind = (sess.highest - sbn) % wire.SBN_MODULUS
+            if 0 < behind < wire.SBN_MODULUS // 2 and behind > self._window():
+                return None
+        newest = sess.newest
+        if newest is None or 0 < (sbn - newest) % wire.SBN_MODULUS < wire.SBN_MODULUS // 2:
+            sess.newest = sbn
+        while self._open_count >= self.settings.max_open_blocks:
+            if not self._evict_one(keep, events):
+                return None
+        if not self._make_room(BLOCK_OVERHEAD_BYTES, keep, events):
+            return None
+        block = _Block(sbn, now, sess)
+        if sess.first_sbn is None:
+            sess.first_sbn = sbn
+        sess.open[sbn] = block
+        self._open_count += 1
+        self._hold(block, BLOCK_OVERHEAD_BYTES)
         return block
+
+    def _hold(self, block: _Block, size: int) -> None:
+        block.bytes += size
+        block.owner.bytes += size
+        self._bytes += size
+
+    def _evict_one(self, keep: _Block | None, events: list[Event]) -> bool:
+        """Evict the oldest open block of the session holding the most bytes (never ``keep``):
+        each session's share of the budget is defended against the others.  False if none."""
+        for sess in sorted(self._sessions.values(), key=lambda s: s.bytes, reverse=True):
+            for block in sess.open.values():
+                if block is not keep:
+                    events.append(self._finish(block, BlockOutcome.EVICTED))
+                    return True
+        return False
+
+    def _make_room(self, size: int, keep: _Block | None, events: list[Event]) -> bool:
+        """Evict blocks until ``size`` more bytes fit the budget; False if they cannot."""
+        budget = self.settings.max_memory_bytes
+        while self._bytes + size > budget:
+            if not self._evict_one(keep, events):
+                return False
+        return True
 
     def _window(self) -> int:
         """How far behind the newest block a never-seen block may still be opened."""
         return self.settings.max_open_blocks * FINISHED_MEMORY_FACTOR
 
-    def _behind(self, sbn: int, *, repair: bool) -> Dropped:
+    def _outside_block(self, sess: _Session, sbn: int, esi: int, flow: int, data: bytes, events: list[Event]) -> None:
+        """A source packet whose block is finished or too far behind to open.
+
+        A block that ended without all its datagrams (expired, evicted, superseded) remembers
+        which ones it delivered: a late one it never delivered is delivered now rather than
+        lost.  That also undoes the harm of a damaged or forged packet that opened a block ahead
+        of the real one and expired before the real packets came."""
+        delivered = sess.finished.get(sbn)
+        if delivered is not None and esi <= wire.MAX_ESI and not delivered >> esi & 1:
+            sess.finished[sbn] = delivered | 1 << esi
+            self.stats.delivered += 1
+            events.append(direct_delivery(flow, data))
+            return
+        events.append(self._behind(sess, sbn, repair=False))
+
+    def _behind(self, sess: _Session, sbn: int, *, repair: bool) -> Dropped:
         """The drop for a packet whose block is finished or too far behind to open."""
-        if sbn in self._finished and not repair:
+        if sbn in sess.finished and not repair:
             return self._drop(DropReason.LATE, f"source packet for finished block {sbn}")
         return self._drop(DropReason.STALE, f"block {sbn} is behind the window")
 
@@ -432,6 +569,13 @@ class BlockDecoder:
                 events.append(self._drop(DropReason.INCONSISTENT, f"END at ESI {esi} below ESI {block.max_esi} seen"))
                 return
             block.k = esi + 1
+        cost = len(data) + PACKET_OVERHEAD_BYTES
+        if self._bytes + cost > self.settings.max_memory_bytes and not self._make_room(cost, block, events):
+            events.append(self._drop(DropReason.MEMORY_LIMIT, f"source {sbn}/{esi}: over max_memory_bytes"))
+            return
+        block.bytes += cost  # _hold, inlined: once per datagram
+        block.owner.bytes += cost
+        self._bytes += cost
         block.sources[esi] = (flow, data)
         block.arrived |= 1 << esi
         if esi > block.max_esi:
@@ -457,6 +601,11 @@ class BlockDecoder:
         if longest + wire.SYMBOL_PREFIX_BYTES > size:
             events.append(self._drop(DropReason.INCONSISTENT, f"repair symbol of {size} bytes shorter than a source datagram"))
             return
+        cost = size + PACKET_OVERHEAD_BYTES
+        if self._bytes + cost > self.settings.max_memory_bytes and not self._make_room(cost, block, events):
+            events.append(self._drop(DropReason.MEMORY_LIMIT, f"repair {pkt.sbn}/{pkt.esi}: over max_memory_bytes"))
+            return
+        self._hold(block, cost)
         block.k = pkt.k
         block.symbol_len = size
         block.repairs[pkt.esi] = pkt.symbol
@@ -469,8 +618,28 @@ class BlockDecoder:
         if have >= k:
             events.append(self._finish(block, BlockOutcome.COMPLETE))
         elif have + len(block.repairs) >= k:
+            if not self._may_rebuild(now):
+                if not block.deferred:
+                    block.deferred = True
+                    events.append(self._drop(DropReason.DECODE_LIMIT, f"block {block.sbn}: rebuild waits, over max_rebuilds_per_s"))
+                return
             events.extend(self._rebuild(block, now))
             events.append(self._finish(block, BlockOutcome.RECOVERED))
+
+    def _may_rebuild(self, now: float) -> bool:
+        """Token bucket of ``max_rebuilds_per_s``, one second deep; takes a token if it can."""
+        rate = self.settings.max_rebuilds_per_s
+        if rate is None:
+            return True
+        if self._tokens_at is None:
+            self._tokens = rate
+        else:
+            self._tokens = min(rate, self._tokens + (now - self._tokens_at) * rate)
+        self._tokens_at = now
+        if self._tokens < 1:
+            return False
+        self._tokens -= 1
+        return True
 
     def _rebuild(self, block: _Block, now: float) -> list[Event]:
         k = block.k
@@ -512,10 +681,22 @@ class BlockDecoder:
         return events
 
     def _finish(self, block: _Block, outcome: BlockOutcome) -> BlockReport:
-        del self._open[block.sbn]
-        self._finished[block.sbn] = None
-        while len(self._finished) > self._window():
-            self._finished.popitem(last=False)
+        sess = block.owner
+        del sess.open[block.sbn]
+        self._open_count -= 1
+        sess.bytes -= block.bytes
+        self._bytes -= block.bytes
+        # What the block delivered, for late packets: all of it when complete or recovered (-1
+        # has every bit set), else the datagrams that arrived.
+        sess.finished[block.sbn] = -1 if outcome is BlockOutcome.COMPLETE or outcome is BlockOutcome.RECOVERED else block.arrived
+        while len(sess.finished) > self._window():
+            sess.finished.popitem(last=False)
+        if outcome is BlockOutcome.COMPLETE or outcome is BlockOutcome.RECOVERED:
+            # Only a block that completed moves the window: one packet with a damaged or forged
+            # block number (far ahead) must not make every real block look far behind.
+            highest = sess.highest
+            if highest is None or 0 < (block.sbn - highest) % wire.SBN_MODULUS < wire.SBN_MODULUS // 2:
+                sess.highest = block.sbn
         span = block.k if block.k is not None else block.max_esi + 1
         arrived = block.arrived.bit_count()
         lost = span - arrived

@@ -36,6 +36,10 @@ order stays that of ``send`` (a block's repair right after its last source packe
 A datagram longer than ``max_datagram`` is refused the same way by ``send`` and ``send_batch``:
 counted as an ``oversize`` drop in ``stats.dropped`` and skipped (no packet, no place in the
 block), so one bad datagram never costs the rest of a batch and a daemon needs no try/except.
+
+With a :class:`~fecproxy.protocol.auth.Sealer` (a key is configured), every packet the encoder
+returns — source, repair and control (``control``) — passes through ``_sealed``, the one place
+that protects outgoing packets, so no kind of packet can leave without its tag.
 """
 
 from __future__ import annotations
@@ -49,6 +53,7 @@ import numpy as np
 
 from fecproxy.coding.codec import block_code
 from fecproxy.protocol import wire
+from fecproxy.protocol.auth import Sealer
 from fecproxy.protocol.events import DropReason
 from fecproxy.protocol.repair_rule import DEFAULT_SHORT_BLOCK_REPAIR, SHORT_BLOCK_RULES, repair_count
 
@@ -235,10 +240,13 @@ class _Group:
 class BlockEncoder:
     """One direction's encoder.  Not thread-safe; one per link direction."""
 
-    def __init__(self, settings: EncoderSettings, session: int, *, first_sbn: int = 0):
+    def __init__(self, settings: EncoderSettings, session: int, *, first_sbn: int = 0, sealer: Sealer | None = None):
         if not 0 <= session <= 0xFFFFFFFF:
             raise ValueError(f"session {session} does not fit 32 bits")
         self.session = session
+        #: Protects every packet returned (None: no key).  The shell swaps its key on a reload;
+        #: the sequence runs on.
+        self.sealer = sealer
         self.stats = EncoderStats()
         self._next_sbn = first_sbn % wire.SBN_MODULUS
         self._settings = settings
@@ -316,9 +324,17 @@ class BlockEncoder:
         return block
 
     def control(self, body: bytes) -> bytes:
-        """A control packet of this session carrying ``body`` (a loss report), built here so that
-        whatever the encoder does to every packet it returns applies to it too."""
-        return wire.encode_control(self.session, body)
+        """A control packet of this session carrying ``body`` (e.g. a loss report), sealed like
+        every other packet."""
+        return self._sealed([wire.encode_control(self.session, body)])[0]
+
+    def _sealed(self, packets: list[bytes]) -> list[bytes]:
+        """The one place outgoing packets are protected (source, repair and control alike)."""
+        sealer = self.sealer
+        if sealer is None or not packets:
+            return packets
+        seal = sealer.seal
+        return [seal(packet) for packet in packets]
 
     def take_longest_datagram(self) -> int:
         """The longest datagram of the blocks closed since the last call (0 if none): it sizes
@@ -439,11 +455,11 @@ class BlockEncoder:
         if deferred:
             self._encode(deferred)
         if len(pieces) == 1:
-            return sources
+            return self._sealed(sources)
         out: list[bytes] = []
         for piece in pieces:
             out += piece if type(piece) is list else piece.interleaved()
-        return out
+        return self._sealed(out)
 
     def _retire(self, block: _Block) -> bool:
         """Close a block's books (k, m after the §8.2 byte cap, counters, previous k for its
@@ -547,14 +563,14 @@ class BlockEncoder:
 
     def on_timer(self, now: float) -> list[bytes]:
         """Close every block whose flush deadline has passed, oldest SBN first."""
-        return self._close_all([block for block in self._by_sbn.values() if block.deadline <= now])
+        return self._sealed(self._close_all([block for block in self._by_sbn.values() if block.deadline <= now]))
 
     def close(self) -> list[bytes]:
         """Shutdown: close every open block now, so its datagrams get their repair packets.
 
         The encoder stays usable; the next datagram opens a new block.
         """
-        return self._close_all(list(self._by_sbn.values()))
+        return self._sealed(self._close_all(list(self._by_sbn.values())))
 
     def _count_drop(self, reason: DropReason, count: int) -> None:
         self.stats.dropped[reason] = self.stats.dropped.get(reason, 0) + count

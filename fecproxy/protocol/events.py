@@ -33,6 +33,11 @@ class DropReason(StrEnum):
     UNREACHABLE = "unreachable"  # receiver could not open a socket towards forward
     NO_SOCKET = "no_socket"  # receiver could not create a flow's socket (file-descriptor limit, memory)
     INTERNAL_ERROR = "internal_error"  # a bug in fecproxy: logged with a traceback, cost one packet
+    AUTH = "auth"  # no tag, wrong key, wrong mode or a tag that does not match (auth.key_file set)
+    REPLAY = "replay"  # an authentic packet seen before, or too old for the replay window
+    SESSION_LIMIT = "session_limit"  # a new sender session while every session slot is live
+    MEMORY_LIMIT = "memory_limit"  # the decoder's byte budget is full of its own block
+    DECODE_LIMIT = "decode_limit"  # a rebuild waits: decoder.max_rebuilds_per_s reached
 
 
 class BlockOutcome(StrEnum):
@@ -84,6 +89,7 @@ class Dropped(Event):
 
     reason: DropReason
     detail: str
+    error: Exception | None = None  # the auth/replay error, for the shell's rate-limited notice
 
 
 @dataclass(frozen=True, slots=True)

@@ -375,6 +375,14 @@ class ClientFlowTable(_Tiers, Generic[K]):
         return FlowClosed(flow, reason, client)
 
 
+#: The receiver takes a newer generation on a slot only when the slot's conversation has been
+#: quiet here for this share of ``protect``: the sender recycles only conversations quiet for
+#: ``protect`` by its own clock, and the receiver sees that quiet start up to one link delay
+#: late; half of the default 2 s leaves a full second for delay spread (common practice, no
+#: source).  ``protect`` 0 (the sender recycles anything) turns the check off.
+REPLACE_AFTER_PROTECT_FRACTION = 0.5
+
+
 class PeerFlowTable(_Tiers):
     """Receiver: the sender's flow ids -> the conversation each slot holds now.
 
@@ -397,6 +405,11 @@ class PeerFlowTable(_Tiers):
             return Verdict.CURRENT
         if current is not None:
             if not is_newer_generation(flow & _GENERATION_MASK, current & _GENERATION_MASK):
+                return Verdict.STALE
+            if now - self._last[slot] < self.protect * REPLACE_AFTER_PROTECT_FRACTION:
+                # The sender gives a slot to a new client only once its conversation has been
+                # quiet for `protect`: a newer generation on a conversation still active here is
+                # a damaged or forged flow id, and must not end the real conversation.
                 return Verdict.STALE
             closed: tuple[FlowClosed, ...] = (self._end(slot, CloseReason.REPLACED),)
         elif len(self._flow_at) >= self.max_flows:

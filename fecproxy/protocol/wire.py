@@ -87,7 +87,8 @@ AUTH_TAG_RESERVE_BYTES = 32
 DEFAULT_MAX_DATAGRAM = 1400
 
 FLAG_END = 0x01  # source: last datagram of a block filled to its configured k
-FLAG_AUTH = 0x80  # reserved: an authentication tag follows (not in version 1)
+FLAG_AUTH = 0x80  # an authentication trailer follows (fecproxy.protocol.auth); removed before parse
+FLAG_ENCRYPTED = 0x40  # with FLAG_AUTH: the body is encrypted (auth.encrypt)
 _KNOWN_FLAGS = FLAG_END
 
 

@@ -30,6 +30,7 @@ from fecproxy import __version__
 from fecproxy.config import Config
 from fecproxy.config.addresses import format_sockaddr
 from fecproxy.linkmodel.estimator import LossEstimator
+from fecproxy.protocol import auth
 from fecproxy.protocol.decoder import BlockDecoder, DecoderStats
 from fecproxy.protocol.events import BlockReport, ControlReceived, Delivery, DropReason, Dropped, SessionStarted
 from fecproxy.protocol.encoder import BlockEncoder, EncoderStats
@@ -45,6 +46,7 @@ from fecproxy.shell.settings import (
     apply_flow_timeouts,
     flow_table,
     keep_fixed,
+    keyring,
     needs_restart,
     read_new_config,
 )
@@ -81,8 +83,13 @@ class Daemon:
         self.config_path = config_path
         self.handle_signals = handle_signals
         self.session = secrets.randbits(32)
-        self.encoder = BlockEncoder(encoder_settings(config), self.session)
-        self.decoder = BlockDecoder(decoder_settings(config))
+        keys = keyring(config)
+        # A fresh random salt per start: with the random session it makes the encrypted mode's
+        # nonces unique across restarts (protocol.auth, "Nonce rule").
+        sealer = None if keys is None else auth.Sealer(keys.current, secrets.randbits(auth.SALT_BITS))
+        self.encoder = BlockEncoder(encoder_settings(config), self.session, sealer=sealer)
+        self.decoder = BlockDecoder(decoder_settings(config), keys)
+        self.auth_notice = auth.FailureNotice()
         self.estimator = LossEstimator(window=LOSS_ESTIMATE_WINDOW)
         # Loss reports on the direction we decode; adaptation of the one we encode (fec.adapt).
         self.feedback = Feedback(self.encoder, self.decoder, log)
@@ -263,6 +270,7 @@ class Daemon:
                     sends="datagrams" if cfg.role == "sender" else "replies",
                     decoding="peer's code unknown until traffic",
                     session=f"{self.session:08x}", metrics=self.metrics_port or "off",
+                    auth=repr(self.decoder.keyring) if self.decoder.keyring is not None else "off",
                 )
                 task_status.started(self)
         finally:
@@ -374,7 +382,9 @@ class Daemon:
                     else:
                         valid = valid and kind is not Dropped
                         self._handle_event(event, now)
-                # The peer is learnt only from a valid packet of the adopted session that dropped nothing.
+                # The peer is learnt only from a valid packet of the replied-to session (see
+                # protocol.decoder: it changes only once it has been quiet for the hold time) that
+                # dropped nothing: a stranger's packets of a session of its own never move it.
                 if learn and in_session and valid and address != self.peer:
                     if self.peer is not None:
                         log_event(log, logging.INFO, "peer_changed", old=format_sockaddr(self.peer), new=format_sockaddr(address))
@@ -429,12 +439,28 @@ class Daemon:
             log_event(log, logging.WARNING, "reload_needs_restart", keys=",".join(fixed))
         self.feedback.configure(new, encoder_settings(new), trio.current_time())
         self.decoder.settings = decoder_settings(new)
+        self._apply_keys(new)
         apply_flow_timeouts(self.flows, new)
         self.config = keep_fixed(self.config, new)
         self._reloads["applied"] += 1
         log_event(log, logging.INFO, "reloaded", k=new.fec.block_size, m=self.encoder.settings.repair, flush_ms=new.fec.flush_ms)
         self._reschedule()
         return True
+
+    def _apply_keys(self, new: Config) -> None:
+        """New keys from the reloaded config: sent with from the next packet on, accepted at
+        once; the sequence runs on and every session keeps its replay window."""
+        keys = keyring(new)
+        changed = repr(keys) != repr(self.decoder.keyring)
+        self.decoder.keyring = keys
+        if keys is None:
+            self.encoder.sealer = None
+        elif self.encoder.sealer is None:
+            self.encoder.sealer = auth.Sealer(keys.current, secrets.randbits(auth.SALT_BITS))
+        else:
+            self.encoder.sealer.key = keys.current
+        if changed:
+            log_event(log, logging.INFO, "keys", auth=repr(keys) if keys is not None else "off")
 
     def _log_peer_code(self, k: int, m: int) -> None:
         """The code the peer sends with, as its repair packets show it (settled: a later block has
@@ -502,7 +528,14 @@ class Daemon:
             if event.unrecovered:
                 log_event(log, logging.DEBUG, "block_unrecovered", sbn=event.sbn, k=event.k, lost=event.lost, outcome=event.outcome)
         elif kind is Dropped:
-            log_event(log, logging.DEBUG, "dropped", reason=event.reason, detail=event.detail)
+            if event.reason is DropReason.AUTH and event.error is not None:
+                # One line per kind of failure per interval: a peer with the wrong key says so
+                # plainly, a flood of forgeries does not flood the log.
+                line = self.auth_notice.note(event.error, now)
+                if line is not None:
+                    log_event(log, logging.WARNING, "auth_failed", kind=event.error.kind, detail=line)
+            else:
+                log_event(log, logging.DEBUG, "dropped", reason=event.reason, detail=event.detail)
         elif kind is ControlReceived:
             drop = self.feedback.on_control(event, now)
             if drop is not None:

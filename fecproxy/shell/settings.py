@@ -12,6 +12,7 @@ import dataclasses
 from pathlib import Path
 
 from fecproxy.config import Config, ConfigError, load_config
+from fecproxy.protocol.auth import Keyring
 from fecproxy.protocol.decoder import DecoderSettings
 from fecproxy.protocol.encoder import EncoderSettings
 from fecproxy.protocol.flows import ClientFlowTable, PeerFlowTable
@@ -51,7 +52,17 @@ def decoder_settings(config: Config) -> DecoderSettings:
         hold_time=config.decoder.hold_seconds,
         max_open_blocks=config.decoder.max_open_blocks,
         max_datagram=config.fec.max_datagram_bytes,
+        max_memory_bytes=config.decoder.max_memory_bytes,
+        max_rebuilds_per_s=config.decoder.max_rebuilds_per_s,
     )
+
+
+def keyring(config: Config) -> Keyring | None:
+    """The keys the config names (already read and checked by load_config), or None."""
+    section = config.auth
+    if not section.enabled or section.key is None:
+        return None
+    return Keyring(section.key, section.previous_key, encrypt=section.encrypt)
 
 
 def flow_table(config: Config) -> ClientFlowTable | PeerFlowTable:

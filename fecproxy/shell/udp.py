@@ -24,6 +24,7 @@ import logging
 import socket
 import struct
 import sys
+import time
 
 import trio
 
@@ -222,6 +223,30 @@ class DatagramReader:
                 append((piece, address))
 
 
+#: Seconds between two log lines about failed sends to one address (e.g. the forward address
+#: answering ICMP port-unreachable): one line a minute says it without flooding the journal; the
+#: fecproxy_send_errors counter carries the rate.
+SEND_ERROR_LOG_INTERVAL_S = 60.0
+#: Addresses remembered for that rate limit; beyond this the memory starts afresh.
+_SEND_ERROR_MEMORY = 1024
+_send_error_logged: dict[str, tuple[float, int]] = {}
+
+
+def _note_send_error(address: Address, error: OSError) -> None:
+    """A WARNING line per address at most once per SEND_ERROR_LOG_INTERVAL_S, with the count of
+    failures not logged since; each failure is counted by the writer either way."""
+    shown = format_sockaddr(address)
+    now = time.monotonic()
+    last, suppressed = _send_error_logged.get(shown, (None, 0))
+    if last is not None and now - last < SEND_ERROR_LOG_INTERVAL_S:
+        _send_error_logged[shown] = (last, suppressed + 1)
+        return
+    if len(_send_error_logged) >= _SEND_ERROR_MEMORY:
+        _send_error_logged.clear()
+    _send_error_logged[shown] = (now, 0)
+    log_event(log, logging.WARNING, "send_failed", address=shown, error=str(error), more_since_last=suppressed)
+
+
 class DatagramWriter:
     """Sends lists of packets to one address, grouping equal sizes into GSO sends."""
 
@@ -258,7 +283,7 @@ class DatagramWriter:
             except OSError as error:
                 # Unreachable peer, refused port, no route: UDP is best effort; count and go on.
                 self.send_errors += 1
-                log_event(log, logging.DEBUG, "send_error", address=format_sockaddr(address), error=str(error))
+                _note_send_error(address, error)
                 return
 
     async def _send_gso(self, packets: list[bytes], address: Address) -> None:
@@ -300,5 +325,5 @@ class DatagramWriter:
                         DatagramWriter.gso_supported = False
                     return False
                 self.send_errors += 1
-                log_event(log, logging.DEBUG, "send_error", address=format_sockaddr(address), error=str(error))
+                _note_send_error(address, error)
                 return True

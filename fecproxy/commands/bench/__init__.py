@@ -2,14 +2,15 @@
 
 ``bench codec`` (module :mod:`.codec`) times the Reed–Solomon codec beside zfec;
 ``bench pipeline`` (module :mod:`.pipeline`) searches the highest datagram rate the daemon pair
-carries.  This module only builds the argument parser and dispatches.
+carries; ``bench flood`` (module :mod:`.flood`) floods a pair's receiver while real traffic
+flows and prints what got through.  This module only builds the argument parser and dispatches.
 """
 
 from __future__ import annotations
 
 import argparse
 
-from fecproxy.commands.bench import codec, pipeline
+from fecproxy.commands.bench import codec, flood, pipeline
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
@@ -32,8 +33,18 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         )
     )
 
+    flood.add_arguments(
+        targets.add_parser(
+            "flood",
+            help="real traffic through a pair while the receiver's link port is flooded; figures vs targets",
+            formatter_class=argparse.ArgumentDefaultsHelpFormatter,
+        )
+    )
+
 
 def main(args: argparse.Namespace) -> int:
+    if args.bench_target == "flood":
+        return flood.main(args)
     if args.bench_target == "pipeline":
         return int(pipeline.main(args) or 0)
     return codec.main(args)

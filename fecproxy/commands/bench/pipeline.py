@@ -31,9 +31,12 @@ import json
 import math
 import multiprocessing
 import os
+import secrets
 import sys
+import tempfile
 import time
 from array import array
+from pathlib import Path
 
 from fecproxy.commands.bench.processes import (
     DATAGRAM_BYTES,
@@ -57,6 +60,7 @@ from fecproxy.commands.bench.search import (  # noqa: F401  (re-exported: the pi
     format_result,
 )
 from fecproxy.linkmodel.planner import evaluate
+from fecproxy.protocol.keys import KEY_BYTES, format_key_text
 
 #: The block shape under test: k=16, m=4, the config defaults.
 BLOCK_SIZE = 16
@@ -91,8 +95,12 @@ class _Bench:
     """Owns the child processes; every one is stopped (by its own handle) on exit."""
 
     def __init__(self, k: int, m: int, trial_seconds: float, impairment: tuple | None = None,
-                 predicted_residual: float = 0.0):
+                 predicted_residual: float = 0.0, auth_mode: str = "off"):
         self.k, self.m, self.trial_seconds = k, m, trial_seconds
+        self.auth_mode = auth_mode  # off, mac or encrypt: the pairs' auth section
+        self.key_dir = tempfile.TemporaryDirectory(prefix="fecproxy-bench-") if auth_mode != "off" else None
+        if self.key_dir is not None:
+            write_bench_key(Path(self.key_dir.name) / BENCH_KEY_FILE)
         self.impairment = impairment  # (loss, burst, seed) of the lossy pair's link, or None
         self.predicted_residual = predicted_residual
         self.context = multiprocessing.get_context("spawn")
@@ -139,6 +147,8 @@ class _Bench:
             process.close()
         for conn in self.connections:
             conn.close()
+        if self.key_dir is not None:
+            self.key_dir.cleanup()
 
     def _start(self, role: str, target, *args):
         parent, child = self.context.Pipe()
@@ -154,10 +164,11 @@ class _Bench:
         """Start a receiver and a sender (with a lossy link relay between them when impaired);
         return the sender's application address."""
         fec = {"block_size": self.k, "repair": self.m}
+        extra = auth_section(self.auth_mode)
         receiver_link, _ = self._daemon(f"{prefix}receiver", {
             "role": "receiver", "forward": _text(forward),
             "link": {"bind": "127.0.0.1:0"}, "fec": fec,
-            "sockets": _socket_section(), "log": {"level": "warning"},
+            "sockets": _socket_section(), "log": {"level": "warning"}, **extra,
         })
         peer = receiver_link
         if impairment is not None:
@@ -165,12 +176,13 @@ class _Bench:
         _, sender_listen = self._daemon(f"{prefix}sender", {
             "role": "sender", "listen": "127.0.0.1:0",
             "link": {"bind": "127.0.0.1:0", "peer": _text(peer)}, "fec": fec,
-            "sockets": _socket_section(), "log": {"level": "warning"},
+            "sockets": _socket_section(), "log": {"level": "warning"}, **extra,
         })
         return sender_listen
 
     def _daemon(self, role: str, document: dict) -> tuple:
-        return self._reply(self._start(role, daemon_main, document))
+        key_dir = self.key_dir.name if self.key_dir is not None else None
+        return self._reply(self._start(role, daemon_main, document, key_dir))
 
     def _cpu_seconds(self) -> dict[str, float]:
         return {role: _process_cpu_seconds(pid) for role, pid in self.pids.items()}
@@ -245,6 +257,25 @@ def _process_cpu_seconds(pid: int) -> float | None:
 _CLOCK_TICKS = os.sysconf("SC_CLK_TCK") if hasattr(os, "sysconf") else 100
 
 
+#: The benchmark's key file, written fresh (mode 0600) in a temporary directory per run.
+BENCH_KEY_FILE = "bench.key"
+AUTH_MODES = ("off", "mac", "encrypt")
+
+
+def write_bench_key(path: Path) -> None:
+    """A fresh random key file, owner-only, as ``fecproxy keygen`` would make it."""
+    descriptor = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+    with os.fdopen(descriptor, "w") as file:
+        file.write(format_key_text(secrets.token_bytes(KEY_BYTES)))
+
+
+def auth_section(mode: str) -> dict:
+    """The config's auth section for a benchmark mode: off, mac (tags) or encrypt."""
+    if mode == "off":
+        return {}
+    return {"auth": {"key_file": BENCH_KEY_FILE, "encrypt": mode == "encrypt"}}
+
+
 def _text(address: tuple) -> str:
     return f"{address[0]}:{address[1]}"
 
@@ -272,6 +303,7 @@ def run_pipeline_bench(
     link_loss: float | None = None,
     link_burst: float | None = None,
     seed: int = DEFAULT_SEED,
+    auth_mode: str = "off",
     progress=None,
 ) -> PipelineResult:
     """Start every process, search the pipelines' rates in alternation, then measure delay.
@@ -289,7 +321,7 @@ def run_pipeline_bench(
         pipelines += ["lossy", "relayed"]
     say(f"starting the benchmark processes; then a rate search of up to {budget_seconds:g} s "
         f"(trials of {trial_seconds:g} s, {', '.join(pipelines)} in turn) and delay trials")
-    with _Bench(k, m, trial_seconds, impairment, predicted or 0.0) as bench:
+    with _Bench(k, m, trial_seconds, impairment, predicted or 0.0, auth_mode) as bench:
         for pipeline in pipelines:  # warm-up: flows opened, sessions learned
             bench.run_trial(pipeline, min(start_rate, 2000.0), 0.2)
         searches = [RateSearch(pipeline, start_rate, max_rate) for pipeline in pipelines]
@@ -388,6 +420,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--burst", type=_burst, default=None,
                         help="mean loss burst length in packets for --loss (Gilbert model); default i.i.d.")
     parser.add_argument("--seed", type=int, default=DEFAULT_SEED, help="seed of the impaired link's losses")
+    parser.add_argument("--auth", choices=AUTH_MODES, default="off",
+                        help="the pairs' packet protection: none, tags (mac) or tags with encryption")
     parser.add_argument("--quick", action="store_true",
                         help="a few short trials at low rates (a smoke test, not a measurement)")
     parser.add_argument("--json", action="store_true", help="print the result as JSON instead of a table")
@@ -404,6 +438,7 @@ def main(args: argparse.Namespace) -> int:
         k=args.block_size, m=args.repair, trial_seconds=args.trial_seconds, budget_seconds=args.budget_seconds,
         start_rate=args.start_rate, max_rate=args.max_rate, delay_rate=args.delay_rate,
         delay_seconds=args.delay_seconds, link_loss=args.loss, link_burst=args.burst, seed=args.seed,
+        auth_mode=args.auth,
     )
     if args.burst is not None and args.loss is None:
         print("fecproxy bench pipeline: --burst needs --loss", file=sys.stderr)

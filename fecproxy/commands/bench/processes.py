@@ -198,17 +198,23 @@ def relay_main(conn, forward: tuple, impairment: tuple | None = None) -> None:
         pass
 
 
-def daemon_main(conn, document: dict) -> None:
-    """One fecproxy daemon from a config document; reports (link, listen) addresses."""
+def daemon_main(conn, document: dict, key_dir: str | None = None) -> None:
+    """One fecproxy daemon from a config document (key files, if any, relative to ``key_dir``);
+    reports (link, listen) addresses."""
     import logging
+    from pathlib import Path
 
     import trio
 
     from fecproxy.config import parse_config
+    from fecproxy.config.loading import load_keys
     from fecproxy.shell.daemon import Daemon
 
     logging.basicConfig(level=logging.WARNING, stream=sys.stderr)
-    daemon = Daemon(parse_config(document, "<bench pipeline>"), handle_signals=True)
+    config = parse_config(document, "<bench>")
+    if key_dir is not None:
+        config = load_keys(config, "<bench>", Path(key_dir))
+    daemon = Daemon(config, handle_signals=True)
 
     async def run() -> None:
         async with trio.open_nursery() as nursery:
