@@ -22,7 +22,6 @@ Checked:
 from __future__ import annotations
 
 import logging
-import math
 import struct
 
 import pytest

@@ -24,7 +24,7 @@ import pytest
 from scipy.stats import binom
 
 from fecproxy.linkmodel import planner
-from support.daemon_pair import LOOPBACK, Pair, check_payload, make_payload
+from support.daemon_pair import Pair, check_payload, make_payload
 from support.lossy_relay import iid_loss
 
 pytestmark = pytest.mark.slow

@@ -11,7 +11,6 @@ from __future__ import annotations
 import math
 import re
 import socket
-import time
 import urllib.request
 from pathlib import Path
 

@@ -15,7 +15,6 @@ import subprocess
 import sys
 import time
 from pathlib import Path
-from types import SimpleNamespace
 
 import pytest
 from prometheus_client import generate_latest, make_wsgi_app

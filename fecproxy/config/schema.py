@@ -24,7 +24,19 @@ from fecproxy.protocol import decoder as _decoder, encoder as _encoder, wire
 from fecproxy.protocol.flows import FLOW_SLOTS
 from fecproxy.protocol.keys import MasterKey
 from fecproxy.protocol.repair_rule import DEFAULT_SHORT_BLOCK_REPAIR, ShortBlockRepair, repair_count
-from fecproxy.config.addresses import Address, AddressError, parse_address
+from fecproxy.config.addresses import Address
+from fecproxy.config.checkers import (
+    AddressField,
+    Bad,
+    BadKeys,
+    Boolean,
+    Choice,
+    FilePath,
+    Integer,
+    NestedMapping,
+    Number,
+    SizeBoundaries,
+)
 from fecproxy.config.messages import closest, key_text, kind_of, or_list, show_value
 
 # --------------------------------------------------------------------------------------------
@@ -365,194 +377,26 @@ def _suggest(name: str, section: str | None) -> str:
     return f"valid keys here are {', '.join(local)}"
 
 
-# --------------------------------------------------------------------------------------------
-# Checkers: one per kind of value.  Each returns the parsed value or raises _Bad with the text
-# that follows the shown value in the message ("is out of range; expected ...").
-# --------------------------------------------------------------------------------------------
-
-
-class _Bad(Exception):
-    pass
-
-
-class _Integer:
-    def __init__(self, low: int, high: int, expected: str | None = None):
-        self.low, self.high = low, high
-        self.expected = expected or f"an integer {low}..{high}"
-
-    def __call__(self, value):
-        if isinstance(value, bool) or not isinstance(value, int):
-            raise _Bad(f"is {kind_of(value)}; expected {self.expected}")
-        if not self.low <= value <= self.high:
-            raise _Bad(f"is out of range; expected {self.expected}")
-        return value
-
-
-class _Boolean:
-    expected = "true or false"
-
-    def __call__(self, value):
-        if not isinstance(value, bool):
-            raise _Bad(f"is {kind_of(value)}; expected {self.expected}")
-        return value
-
-
-class _Choice:
-    def __init__(self, enum: type[StrEnum], what: str):
-        self.enum, self.what = enum, what
-        self.expected = or_list([member.value for member in enum])
-
-    def __call__(self, value):
-        if not isinstance(value, str):
-            raise _Bad(f"is {kind_of(value)}; expected {self.expected}")
-        try:
-            return self.enum(value)
-        except ValueError:
-            pass
-        hint = closest(value, [member.value for member in self.enum])
-        suggestion = f" (did you mean {hint}?)" if hint else ""
-        raise _Bad(f"is not a valid {self.what}; expected {self.expected}{suggestion}")
-
-
-class _AddressField:
-    def __init__(self, bindable: bool):
-        self.bindable = bindable
-        if bindable:
-            self.expected = "HOST:PORT with port 0..65535 (0 = any free port), e.g. 127.0.0.1:5000 or [::1]:5000"
-        else:
-            self.expected = "HOST:PORT of a destination with port 1..65535, e.g. 192.0.2.10:7000 or [2001:db8::10]:7000"
-
-    def __call__(self, value):
-        if not isinstance(value, str):
-            raise _Bad(f"is {kind_of(value)}; expected {self.expected}")
-        try:
-            return parse_address(value, allow_port_zero=self.bindable, allow_unspecified=self.bindable)
-        except AddressError as error:
-            raise _Bad(f"{error}; expected {self.expected}") from None
-
-
-class _FilePath:
-    expected = "the path of a key file, e.g. /etc/fecproxy/link.key (made by `fecproxy keygen PATH`)"
-
-    def __call__(self, value):
-        if not isinstance(value, str):
-            raise _Bad(f"is {kind_of(value)}; expected {self.expected}")
-        if not value.strip() or "\0" in value:
-            raise _Bad(f"is not a usable path; expected {self.expected}")
-        return value
-
-
-class _Number:
-    """A real number in a range; YAML ints are accepted, booleans and strings are not."""
-
-    def __init__(self, low: float, high: float, *, low_open: bool = False, high_open: bool = False, expected: str):
-        self.low, self.high, self.low_open, self.high_open = low, high, low_open, high_open
-        self.expected = expected
-
-    def __call__(self, value):
-        if isinstance(value, bool) or not isinstance(value, (int, float)):
-            hint = ""
-            if isinstance(value, str) and _looks_numeric(value):
-                hint = " (YAML reads a number like 1e-3 as text: write 0.001 or 1.0e-3)"
-            raise _Bad(f"is {kind_of(value)}; expected {self.expected}{hint}")
-        number = float(value)
-        above = number > self.low if self.low_open else number >= self.low
-        below = number < self.high if self.high_open else number <= self.high
-        if not (above and below):  # NaN fails both
-            raise _Bad(f"is out of range; expected {self.expected}")
-        return number
-
-
-class _SizeBoundaries:
-    """fec.size_classes: a list of increasing byte counts (an empty list = one class)."""
-
-    expected = (
-        f"a list of at most {MAX_SIZE_BOUNDARIES} increasing byte counts 1..{MAX_DATAGRAM_BYTES_LIMIT}, "
-        f"e.g. [256] or [] for one class"
-    )
-
-    def __call__(self, value):
-        if not isinstance(value, list):
-            raise _Bad(f"is {kind_of(value)}; expected {self.expected}")
-        if len(value) > MAX_SIZE_BOUNDARIES:
-            raise _Bad(f"has {len(value)} boundaries; expected {self.expected}")
-        for item in value:
-            if isinstance(item, bool) or not isinstance(item, int) or not 1 <= item <= MAX_DATAGRAM_BYTES_LIMIT:
-                raise _Bad(f"holds {show_value(item)}; expected {self.expected}")
-        if any(a >= b for a, b in zip(value, value[1:])):
-            raise _Bad(f"is not increasing; expected {self.expected}")
-        return tuple(value)
-
-
-def _looks_numeric(text: str) -> bool:
-    try:
-        float(text)
-    except ValueError:
-        return False
-    return True
-
-
-class _BadKeys(Exception):
-    """Faults inside a nested mapping: (key, text) pairs, each reported under its own path."""
-
-    def __init__(self, faults: list[tuple[str, str]]):
-        self.faults = faults
-
-
-class _Mapping:
-    """A nested mapping of settings (like fec.adapt); missing keys take the dataclass defaults."""
-
-    def __init__(self, cls: type, keys: dict[str, Callable], what: str):
-        self.cls, self.keys, self.what = cls, keys, what
-        self.expected = f"a mapping of {what} settings ({', '.join(keys)})"
-
-    def __call__(self, value):
-        if not isinstance(value, Mapping):
-            raise _Bad(f"is {kind_of(value)}; expected {self.expected}")
-        faults: list[tuple[str, str]] = []
-        parsed = {}
-        for key, raw in value.items():
-            name = key_text(key)
-            check = self.keys.get(name)
-            if check is None:
-                near = closest(name, list(self.keys))
-                faults.append((name, f"unknown key; {f'did you mean {near}?' if near else 'valid keys here are ' + ', '.join(self.keys)}"))
-            elif raw is None and name in _NULLABLE_NESTED:
-                parsed[name] = None
-            elif raw is None:
-                faults.append((name, f"has no value (null); expected {check.expected}"))
-            else:
-                try:
-                    parsed[name] = check(raw)
-                except _Bad as bad:
-                    faults.append((name, f"{show_value(raw)} {bad}"))
-        if faults:
-            raise _BadKeys(faults)
-        return self.cls(**parsed)
-
-
-#: Nested keys where null means "not set" (the default applies).
-_NULLABLE_NESTED = {"max_repair"}
-
-_ADAPT = _Mapping(
+_ADAPT = NestedMapping(
     AdaptSection,
     {
-        "target_residual": _Number(0, 1, low_open=True, high_open=True, expected="a number 0 < x < 1, e.g. 0.001"),
-        "min_repair": _Integer(0, MAX_ENCODING_SYMBOLS - 1, f"an integer 0..{MAX_ENCODING_SYMBOLS - 1} with min_repair ≤ max_repair"),
-        "max_repair": _Integer(
+        "target_residual": Number(0, 1, low_open=True, high_open=True, expected="a number 0 < x < 1, e.g. 0.001"),
+        "min_repair": Integer(0, MAX_ENCODING_SYMBOLS - 1, f"an integer 0..{MAX_ENCODING_SYMBOLS - 1} with min_repair ≤ max_repair"),
+        "max_repair": Integer(
             0,
             MAX_ENCODING_SYMBOLS - 1,
             f"an integer 0..{MAX_ENCODING_SYMBOLS - 1} with block_size + max_repair ≤ {MAX_ENCODING_SYMBOLS}, or null",
         ),
-        "max_overhead": _Number(
+        "max_overhead": Number(
             0, MAX_ENCODING_SYMBOLS, low_open=True, expected="a number 0 < x ≤ 1 (above 1 only with fec.allow_repair_above_source)"
         ),
     },
     "fec.adapt",
+    nullable=frozenset({"max_repair"}),  # null = no ceiling beyond n ≤ 255 and max_overhead
 )
 
-_ADDRESS_TO_BIND = _AddressField(bindable=True)
-_DESTINATION = _AddressField(bindable=False)
+_ADDRESS_TO_BIND = AddressField(bindable=True)
+_DESTINATION = AddressField(bindable=False)
 
 # --------------------------------------------------------------------------------------------
 # The schema table: YAML key -> checker, with defaults taken from the dataclasses above.
@@ -561,7 +405,7 @@ _DESTINATION = _AddressField(bindable=False)
 TOP_LEVEL_KEYS = ("role", "listen", "forward", "link", "fec", "decoder", "flows", "sockets", "log", "metrics", "reports", "auth")
 
 _TOP_SCALARS: dict[str, Callable] = {
-    "role": _Choice(Role, "role"),
+    "role": Choice(Role, "role"),
     "listen": _ADDRESS_TO_BIND,
     "forward": _DESTINATION,
 }
@@ -571,47 +415,47 @@ _SECTIONS: dict[str, tuple[type, dict[str, Callable]]] = {
     "fec": (
         FecSection,
         {
-            "block_size": _Integer(
+            "block_size": Integer(
                 1,
                 MAX_ENCODING_SYMBOLS,
                 f"an integer 1..{MAX_ENCODING_SYMBOLS} with block_size + repair ≤ {MAX_ENCODING_SYMBOLS}",
             ),
-            "repair": _Integer(
+            "repair": Integer(
                 0,
                 MAX_ENCODING_SYMBOLS - 1,
                 f"an integer 0..{MAX_ENCODING_SYMBOLS - 1} with block_size + repair ≤ {MAX_ENCODING_SYMBOLS}",
             ),
-            "flush_ms": _Integer(1, MAX_FLUSH_MS, f"an integer number of milliseconds 1..{MAX_FLUSH_MS}"),
-            "max_datagram_bytes": _Integer(
+            "flush_ms": Integer(1, MAX_FLUSH_MS, f"an integer number of milliseconds 1..{MAX_FLUSH_MS}"),
+            "max_datagram_bytes": Integer(
                 1,
                 MAX_DATAGRAM_BYTES_LIMIT,
                 f"an integer 1..{MAX_DATAGRAM_BYTES_LIMIT} (a repair packet must fit one UDP datagram)",
             ),
-            "short_block_repair": _Choice(ShortBlockRepair, "short-block rule"),
-            "allow_repair_above_source": _Boolean(),
+            "short_block_repair": Choice(ShortBlockRepair, "short-block rule"),
+            "allow_repair_above_source": Boolean(),
             "adapt": _ADAPT,
-            "interleave": _Integer(1, MAX_INTERLEAVE, f"an integer 1..{MAX_INTERLEAVE} (1 = no interleaving)"),
-            "size_classes": _SizeBoundaries(),
+            "interleave": Integer(1, MAX_INTERLEAVE, f"an integer 1..{MAX_INTERLEAVE} (1 = no interleaving)"),
+            "size_classes": SizeBoundaries(MAX_SIZE_BOUNDARIES, MAX_DATAGRAM_BYTES_LIMIT),
         },
     ),
     "decoder": (
         DecoderSection,
         {
-            "hold_ms": _Integer(1, MAX_HOLD_MS, f"an integer number of milliseconds 1..{MAX_HOLD_MS}"),
-            "max_open_blocks": _Integer(1, MAX_OPEN_BLOCKS_LIMIT),
-            "max_memory_bytes": _Integer(MIN_MEMORY_BYTES, MAX_MEMORY_BYTES_LIMIT),
-            "max_rebuilds_per_s": _Integer(1, MAX_REBUILDS_PER_S_LIMIT, f"an integer 1..{MAX_REBUILDS_PER_S_LIMIT}, or null for no cap"),
+            "hold_ms": Integer(1, MAX_HOLD_MS, f"an integer number of milliseconds 1..{MAX_HOLD_MS}"),
+            "max_open_blocks": Integer(1, MAX_OPEN_BLOCKS_LIMIT),
+            "max_memory_bytes": Integer(MIN_MEMORY_BYTES, MAX_MEMORY_BYTES_LIMIT),
+            "max_rebuilds_per_s": Integer(1, MAX_REBUILDS_PER_S_LIMIT, f"an integer 1..{MAX_REBUILDS_PER_S_LIMIT}, or null for no cap"),
         },
     ),
     "flows": (
         FlowsSection,
         {
-            "max": _Integer(1, MAX_FLOWS_LIMIT, f"an integer 1..{MAX_FLOWS_LIMIT} (half the 16-bit flow slot space)"),
-            "idle_timeout_s": _Integer(1, MAX_FLOW_IDLE_TIMEOUT_S, f"an integer number of seconds 1..{MAX_FLOW_IDLE_TIMEOUT_S}"),
-            "first_exchange_timeout_s": _Integer(
+            "max": Integer(1, MAX_FLOWS_LIMIT, f"an integer 1..{MAX_FLOWS_LIMIT} (half the 16-bit flow slot space)"),
+            "idle_timeout_s": Integer(1, MAX_FLOW_IDLE_TIMEOUT_S, f"an integer number of seconds 1..{MAX_FLOW_IDLE_TIMEOUT_S}"),
+            "first_exchange_timeout_s": Integer(
                 1, MAX_FLOW_IDLE_TIMEOUT_S, f"an integer number of seconds 1..{MAX_FLOW_IDLE_TIMEOUT_S}"
             ),
-            "protect_s": _Integer(
+            "protect_s": Integer(
                 0, MAX_FLOW_PROTECT_S, f"an integer number of seconds 0..{MAX_FLOW_PROTECT_S} (0 = never refuse)"
             ),
         },
@@ -619,16 +463,16 @@ _SECTIONS: dict[str, tuple[type, dict[str, Callable]]] = {
     "sockets": (
         SocketsSection,
         {
-            "receive_buffer_bytes": _Integer(0, MAX_SOCKET_BUFFER_BYTES, f"an integer 0..{MAX_SOCKET_BUFFER_BYTES} (0 = OS default)"),
-            "send_buffer_bytes": _Integer(0, MAX_SOCKET_BUFFER_BYTES, f"an integer 0..{MAX_SOCKET_BUFFER_BYTES} (0 = OS default)"),
+            "receive_buffer_bytes": Integer(0, MAX_SOCKET_BUFFER_BYTES, f"an integer 0..{MAX_SOCKET_BUFFER_BYTES} (0 = OS default)"),
+            "send_buffer_bytes": Integer(0, MAX_SOCKET_BUFFER_BYTES, f"an integer 0..{MAX_SOCKET_BUFFER_BYTES} (0 = OS default)"),
         },
     ),
     "log": (
         LogSection,
         {
-            "level": _Choice(LogLevel, "log level"),
-            "format": _Choice(LogFormat, "log format"),
-            "stats_interval_s": _Integer(
+            "level": Choice(LogLevel, "log level"),
+            "format": Choice(LogFormat, "log format"),
+            "stats_interval_s": Integer(
                 0, MAX_STATS_INTERVAL_S, f"an integer number of seconds 0..{MAX_STATS_INTERVAL_S} (0 = no stats lines)"
             ),
         },
@@ -637,12 +481,12 @@ _SECTIONS: dict[str, tuple[type, dict[str, Callable]]] = {
     "reports": (
         ReportsSection,
         {
-            "interval_ms": _Integer(
+            "interval_ms": Integer(
                 0, MAX_REPORT_INTERVAL_MS, f"an integer number of milliseconds 0..{MAX_REPORT_INTERVAL_MS} (0 = no reports)"
             ),
         },
     ),
-    "auth": (AuthSection, {"key_file": _FilePath(), "previous_key_file": _FilePath(), "encrypt": _Boolean()}),
+    "auth": (AuthSection, {"key_file": FilePath(), "previous_key_file": FilePath(), "encrypt": Boolean()}),
 }
 
 #: Keys whose absence (or null) means "not set" rather than "take a default".
@@ -738,9 +582,9 @@ class _Parser:
             return
         try:
             self.values[path] = check(raw)
-        except _Bad as bad:
+        except Bad as bad:
             self.error(path, f"{show_value(raw)} {bad}")
-        except _BadKeys as bad:
+        except BadKeys as bad:
             for key, text in bad.faults:
                 self.error(f"{path}.{key}", text)
             self.bad.add(path)
