@@ -252,11 +252,18 @@ def test_byte_overhead_budget_and_the_senders_byte_cut(capsys):
     assert code == 2 and "sizes" in err
 
 
-INFO_PAGE = CANNED_PAGE.replace("fecproxy_other_total 12", 'fecproxy_info{interleave="4",k="16",m="4",role="receiver",version="x"} 1.0')
+# A receiver's page: its info labels are the code it sends replies with (k=8 m=2), the
+# received-code gauges the sender's code it decodes (k=16 m=4) — the one the estimate concerns.
+INFO_PAGE = CANNED_PAGE.replace(
+    "fecproxy_other_total 12",
+    'fecproxy_info{interleave="1",k="8",m="2",role="receiver",version="x"} 1.0\n'
+    "fecproxy_received_code_k 16.0\nfecproxy_received_code_m 4.0",
+)
 
 
 @pytest.mark.parametrize("metrics_url", [INFO_PAGE], indirect=True)
 def test_from_metrics_shows_the_running_code(capsys, metrics_url):
     code, out, err = run_plan(capsys, "--from-metrics", metrics_url, "--metrics-select", "direction=forward", "--rate", "500")
     assert code in (0, 1), err
-    assert "running now (from the metrics page): k=16 m=4 interleave D=4" in out
+    assert "arriving now (the peer's code as the metrics page's daemon decodes it): k=16 m=4" in out
+    assert "or let the sender choose m from its loss reports:" in out and "fec.adapt: {target_residual: 0.001" in out

@@ -39,8 +39,9 @@ from fecproxy.linkmodel.planner import (
 #: datagrams it saw or missed); ``--from-metrics`` reads these two.
 LINK_LOSS_GAUGE = "fecproxy_link_loss_ratio"
 LINK_BURST_GAUGE = "fecproxy_link_mean_burst_packets"
-#: The info metric whose labels tell the running block shape (k, m, interleave).
-INFO_METRIC = "fecproxy_info"
+#: The gauges that tell the code arriving on the measured link (the peer's k and m as decoded).
+RECEIVED_K_GAUGE = "fecproxy_received_code_k"
+RECEIVED_M_GAUGE = "fecproxy_received_code_m"
 #: A metrics page is a few kB; 1 MiB is far above any real page and bounds what we read.
 MAX_METRICS_PAGE_BYTES = 1 << 20
 #: Seconds to wait for the metrics page: a receiver on the same LAN answers in milliseconds.
@@ -199,14 +200,18 @@ def _pick(samples, name: str, select: dict[str, str]) -> float:
 
 
 def running_code(samples, select: dict[str, str]) -> dict[str, int] | None:
-    """k, m and interleave of the daemon whose page this is, from its info metric; None if absent."""
-    found = [labels for n, labels, _ in samples if n == INFO_METRIC and all(labels.get(k) == v for k, v in select.items() if k in labels)]
-    if len(found) != 1:
-        return None
-    try:
-        return {key: int(found[0].get(key, "1")) for key in ("k", "m", "interleave")}
-    except ValueError:
-        return None
+    """The code arriving on the measured link: the peer's k and m as this daemon decodes them
+    (``fecproxy_received_code_k``/``_m``); None while unknown (no repair packet yet) or absent.
+
+    The page's ``fecproxy_info`` labels are not used: they are the code this daemon *sends* with,
+    on the other direction, while the link estimate describes the direction it receives."""
+    figures = {}
+    for key, name in (("k", RECEIVED_K_GAUGE), ("m", RECEIVED_M_GAUGE)):
+        found = [v for n, labels, v in samples if n == name and all(labels.get(a) == b for a, b in select.items() if a in labels)]
+        if len(found) != 1 or not math.isfinite(found[0]):
+            return None
+        figures[key] = int(found[0])
+    return figures
 
 
 def link_from_metrics(url: str, select: list[str], timeout: float = DEFAULT_METRICS_TIMEOUT) -> tuple[float, float]:
@@ -321,6 +326,11 @@ def format_table(result: Plan, running: dict | None = None) -> str:
         )
         keys = ", ".join(f"{key}: {value}" for key, value in best.config_keys().items())
         lines.append(f"sender config: {keys}, fec.flush_ms: {req.flush_time * 1000:g}")
+        # The same aim, for a sender that follows the link itself (fec.adapt, from loss reports).
+        lines.append(
+            f"or let the sender choose m from its loss reports: fec.block_size: {best.k}, fec.interleave: {best.depth}, "
+            f"fec.flush_ms: {req.flush_time * 1000:g}, fec.adapt: {{target_residual: {req.target:g}, max_overhead: {req.max_overhead:g}}}"
+        )
     else:
         lowest = min(result.candidates, key=lambda c: c.residual_loss)
         lines.append(
@@ -328,7 +338,10 @@ def format_table(result: Plan, running: dict | None = None) -> str:
             f"at k={lowest.k} m={lowest.m} D={lowest.depth} — allow more overhead, latency or interleaving"
         )
     if running:
-        lines.append(f"running now (from the metrics page): k={running['k']} m={running['m']} interleave D={running['interleave']}")
+        lines.append(
+            f"arriving now (the peer's code as the metrics page's daemon decodes it): k={running['k']} m={running['m']}"
+            " (interleave depth is not on the wire)"
+        )
     lines.append("(each row: the fewest repair packets meeting the target for that k and D, else the most the overhead budget allows)")
     caps = {d: effective_k(max(req.k_values), req.rate, req.flush_time, d) for d in req.depths}
     capped = {d: cap for d, cap in caps.items() if any(k > cap for k in req.k_values)}
