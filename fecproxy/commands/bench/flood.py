@@ -31,6 +31,7 @@ from pathlib import Path
 from fecproxy.commands.bench.pipeline import AUTH_MODES, BENCH_KEY_FILE, auth_section, write_bench_key
 from fecproxy.commands.bench.processes import daemon_main
 from fecproxy.protocol import wire
+from fecproxy.commands.bench.options import positive
 
 #: 10^6 hostile packets at ~12 000/s: the flood measured against the unprotected pair before.
 DEFAULT_HOSTILE = 1_000_000
@@ -297,24 +298,11 @@ def format_figures(figures: dict) -> str:
     return "\n".join(lines)
 
 
-def _positive(kind):
-    def parse(text: str):
-        try:
-            value = kind(text)
-        except ValueError:
-            raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
-        if not value > 0:
-            raise argparse.ArgumentTypeError(f"must be positive, got {text!r}")
-        return value
-
-    return parse
-
-
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--auth", choices=AUTH_MODES, default="off", help="the pair's packet protection")
-    parser.add_argument("--hostile", type=_positive(int), default=DEFAULT_HOSTILE, help="hostile packets to send")
-    parser.add_argument("--hostile-rate", type=_positive(float), default=DEFAULT_HOSTILE_RATE, help="hostile packets per second")
-    parser.add_argument("--real-rate", type=_positive(float), default=DEFAULT_REAL_RATE, help="real datagrams per second")
+    parser.add_argument("--hostile", type=positive(int), default=DEFAULT_HOSTILE, help="hostile packets to send")
+    parser.add_argument("--hostile-rate", type=positive(float), default=DEFAULT_HOSTILE_RATE, help="hostile packets per second")
+    parser.add_argument("--real-rate", type=positive(float), default=DEFAULT_REAL_RATE, help="real datagrams per second")
     parser.add_argument("--seed", type=int, default=6363, help="seed of the hostile packets")
     parser.add_argument("--quick", action="store_true", help="20 000 hostile packets (a smoke run, not the measurement)")
 

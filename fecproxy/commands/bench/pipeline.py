@@ -61,6 +61,7 @@ from fecproxy.commands.bench.search import (  # noqa: F401  (re-exported: the pi
 )
 from fecproxy.linkmodel.planner import evaluate
 from fecproxy.protocol.keys import KEY_BYTES, format_key_text
+from fecproxy.commands.bench.options import positive
 
 #: The block shape under test: k=16, m=4, the config defaults.
 BLOCK_SIZE = 16
@@ -362,19 +363,6 @@ def run_pipeline_bench(
     return result
 
 
-def _positive(kind):
-    def parse(text: str):
-        try:
-            value = kind(text)
-        except ValueError:
-            raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
-        if not value > 0:
-            raise argparse.ArgumentTypeError(f"must be positive, got {text!r}")
-        return value
-
-    return parse
-
-
 def _probability(text: str) -> float:
     try:
         value = float(text)
@@ -400,19 +388,19 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         "Highest rate of 1200-byte datagrams with < 0.1 % loss through two plain relays and through "
         "a fecproxy pair on loopback, side by side, and the one-way delay the pair adds."
     )
-    parser.add_argument("--trial-seconds", type=_positive(float), default=DEFAULT_TRIAL_SECONDS,
+    parser.add_argument("--trial-seconds", type=positive(float), default=DEFAULT_TRIAL_SECONDS,
                         help="length of each rate trial")
-    parser.add_argument("--budget-seconds", type=_positive(float), default=DEFAULT_SEARCH_BUDGET_S,
+    parser.add_argument("--budget-seconds", type=positive(float), default=DEFAULT_SEARCH_BUDGET_S,
                         help="time for the rate search of both pipelines together")
-    parser.add_argument("--start-rate", type=_positive(float), default=DEFAULT_START_RATE,
+    parser.add_argument("--start-rate", type=positive(float), default=DEFAULT_START_RATE,
                         help="first rate tried (datagrams/s)")
-    parser.add_argument("--max-rate", type=_positive(float), default=DEFAULT_MAX_RATE,
+    parser.add_argument("--max-rate", type=positive(float), default=DEFAULT_MAX_RATE,
                         help="the search does not step above this rate (datagrams/s)")
-    parser.add_argument("--delay-rate", type=_positive(float), default=DEFAULT_DELAY_RATE,
+    parser.add_argument("--delay-rate", type=positive(float), default=DEFAULT_DELAY_RATE,
                         help="rate of the one-way delay trials (datagrams/s)")
-    parser.add_argument("--delay-seconds", type=_positive(float), default=DEFAULT_DELAY_SECONDS,
+    parser.add_argument("--delay-seconds", type=positive(float), default=DEFAULT_DELAY_SECONDS,
                         help="length of each delay trial")
-    parser.add_argument("--block-size", type=_positive(int), default=BLOCK_SIZE, help="k of the fecproxy pair")
+    parser.add_argument("--block-size", type=positive(int), default=BLOCK_SIZE, help="k of the fecproxy pair")
     parser.add_argument("--repair", type=int, default=REPAIR, help="m of the fecproxy pair")
     parser.add_argument("--loss", type=_probability, default=None,
                         help="also search a pair whose link loses this share of packets (e.g. 0.05), "
