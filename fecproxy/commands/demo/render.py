@@ -220,12 +220,12 @@ def format_summary(r: DemoResult) -> str:
         ),
         *[
             row(
-                f"  size class {name}" if index else f"by size class: {name}",
+                f"  size class {name}",  # a sub-row of "bytes on the link"
                 "",
                 f"repair {fmt_bytes(repair_bytes)} for source {fmt_bytes(source_bytes)} "
                 f"(+{fmt_percent(ratio(repair_bytes, source_bytes))} bytes, +{fmt_percent(ratio(repair_packets, source_packets))} packets)",
             )
-            for index, (name, (source_bytes, repair_bytes, source_packets, repair_packets)) in enumerate(r.classes.items())
+            for name, (source_bytes, repair_bytes, source_packets, repair_packets) in r.classes.items()
             if source_packets
         ],
         row("delay of rebuilt datagrams", "–", delay),
