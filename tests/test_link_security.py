@@ -105,7 +105,7 @@ def test_a_keyed_pair_refuses_forged_flipped_truncated_replayed_and_wrong_key_pa
             attacker.recv(65535)
 
 
-def test_mismatched_keys_say_so_once_in_the_receivers_log(pairs, tmp_path):
+def test_mismatched_keys_say_so_once_in_both_logs(pairs, tmp_path):
     pair = pairs(**keyed(tmp_path, sender_key=KEY_A, receiver_key=KEY_B))
     client = pair.client(stream=51)
     send_paced(client.send, 40, rate=1000)
@@ -116,6 +116,11 @@ def test_mismatched_keys_say_so_once_in_the_receivers_log(pairs, tmp_path):
     assert wait_until(lambda: dropped(pair.receiver, "auth") >= 80, DRAIN_TIMEOUT, interval=0.1)
     assert len(pair.receiver.events("auth_failed")) == 1  # once per interval, not per packet
     assert pair.server.received == []
+    # The receiver's key check (sealed with its key) makes the sender say the same.
+    line = pair.sender.wait_event("auth_failed", DRAIN_TIMEOUT)
+    assert line["kind"] == "unknown_key" and "different key files" in line["detail"]
+    assert len(pair.sender.events("auth_failed")) == 1
+    assert KEY_A[:16] not in pair.sender.log() and KEY_B[:16] not in pair.sender.log()
 
 
 def test_a_stranger_flooding_a_made_up_session_changes_nothing_for_the_real_traffic(pairs):

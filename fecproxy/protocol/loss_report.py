@@ -55,6 +55,13 @@ from fecproxy.protocol.wire import PacketError, UnsupportedPacket
 
 #: The body's first byte: which control message this is.  Other kinds are "unsupported".
 KIND_LOSS_REPORT = 1
+#: A key check: no content.  A keyed daemon whose packets from the peer fail with a key the peer
+#: does not share (or with encryption on one side only) sends one, sealed with its own key, at most
+#: once per log interval, so the peer fails on it too and says so in its own log: a pair with
+#: mismatched keys then reports it in both logs even though no loss report can flow.  A peer
+#: whose key does match verifies it and ignores it.
+KIND_KEY_CHECK = 2
+KEY_CHECK_BODY = bytes([KIND_KEY_CHECK])
 
 FLAG_HIGHEST_SBN = 0x01  # the receiver has seen a block: ``highest_sbn`` is meaningful
 FLAG_ESTIMATE = 0x02  # the receiver has an estimate: loss, burst and samples are meaningful

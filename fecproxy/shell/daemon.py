@@ -35,6 +35,7 @@ from fecproxy.protocol.decoder import BlockDecoder, DecoderStats
 from fecproxy.protocol.events import BlockReport, ControlReceived, Delivery, DropReason, Dropped, SessionStarted
 from fecproxy.protocol.encoder import BlockEncoder, EncoderStats
 from fecproxy.protocol.flows import ClientFlowTable, PeerFlowTable
+from fecproxy.protocol.loss_report import KEY_CHECK_BODY
 from fecproxy.shell.fdlimit import ensure_open_files, files_needed
 from fecproxy.shell.logs import log_event, log_exception
 from fecproxy.shell.metrics import MetricsServer, build_registry, serve
@@ -52,6 +53,10 @@ from fecproxy.shell.settings import (
 )
 from fecproxy.shell.udp import DatagramReader, DatagramWriter, open_udp_socket, resolve
 from fecproxy.shell.upstream import Upstreams
+
+#: Authentication failures that mean the two sides' keys or encryption modes differ (not a forgery
+#: of ours): each logged line also sends the peer a key check.
+KEY_FAULT_KINDS = frozenset({"unknown_key", "mode_mismatch"})
 
 log = logging.getLogger("fecproxy.shell.daemon")
 
@@ -90,6 +95,7 @@ class Daemon:
         self.encoder = BlockEncoder(encoder_settings(config), self.session, sealer=sealer)
         self.decoder = BlockDecoder(decoder_settings(config), keys)
         self.auth_notice = auth.FailureNotice()
+        self._key_check_due = False  # a key fault was logged: tell the peer too (see _send_key_check)
         self.estimator = LossEstimator(window=LOSS_ESTIMATE_WINDOW)
         # Loss reports on the direction we decode; adaptation of the one we encode (fec.adapt).
         self.feedback = Feedback(self.encoder, self.decoder, log)
@@ -382,6 +388,8 @@ class Daemon:
                     else:
                         valid = valid and kind is not Dropped
                         self._handle_event(event, now)
+                if self._key_check_due:
+                    await self._send_key_check(address)
                 # The peer is learnt only from a valid packet of the replied-to session (see
                 # protocol.decoder: it changes only once it has been quiet for the hold time) that
                 # dropped nothing: a stranger's packets of a session of its own never move it.
@@ -394,6 +402,16 @@ class Daemon:
             settled = self.decoder.received_code.settled
             if settled is not None and settled != self._logged_code:
                 self._log_peer_code(*settled)
+
+    async def _send_key_check(self, source) -> None:
+        """After logging that the peer's packets carry a key (or encryption mode) we do not share,
+        send it one key check sealed with ours (at most once per log interval, as the log line),
+        so its log says the same: to the configured or learned peer, else to the packet's source
+        (one small packet a minute cannot amplify a forged source into anything)."""
+        self._key_check_due = False
+        if self.encoder.sealer is None:
+            return
+        await self._link_writer.send([self.encoder.control(KEY_CHECK_BODY)], self.peer or source)
 
     async def _timer_loop(self) -> None:
         while True:
@@ -534,6 +552,7 @@ class Daemon:
                 line = self.auth_notice.note(event.error, now)
                 if line is not None:
                     log_event(log, logging.WARNING, "auth_failed", kind=event.error.kind, detail=line)
+                    self._key_check_due = event.error.kind in KEY_FAULT_KINDS
             else:
                 log_event(log, logging.DEBUG, "dropped", reason=event.reason, detail=event.detail)
         elif kind is ControlReceived:

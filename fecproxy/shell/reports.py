@@ -34,7 +34,7 @@ from fecproxy.linkmodel.estimator import LossEstimator
 from fecproxy.protocol.decoder import BlockDecoder
 from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
 from fecproxy.protocol.events import ControlReceived, Dropped
-from fecproxy.protocol.loss_report import LossReport, encode_report, parse_report
+from fecproxy.protocol.loss_report import KEY_CHECK_BODY, LossReport, encode_report, parse_report
 from fecproxy.protocol.wire import PacketError
 from fecproxy.shell.logs import log_event
 
@@ -265,6 +265,8 @@ class Feedback:
 
     def on_control(self, event: ControlReceived, now: float) -> Dropped | None:
         """A control packet from the peer; a body that fails parsing is returned as a drop."""
+        if event.body == KEY_CHECK_BODY:
+            return None  # the peer's key check verified: our keys agree (see loss_report)
         try:
             report = parse_report(event.body)
         except PacketError as error:
