@@ -33,6 +33,7 @@ import pytest
 import yaml
 
 from support.lossy_relay import iid_loss
+from support.processes import end_process
 from support.daemon_pair import LOOPBACK, SOURCE, Pair, drain, parse_link_header, send_paced, wait_until
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -164,12 +165,7 @@ class Prometheus:
             return []
 
     def close(self) -> None:
-        self.proc.terminate()
-        try:
-            self.proc.wait(timeout=10)
-        except subprocess.TimeoutExpired:
-            self.proc.kill()
-            self.proc.wait(timeout=5)
+        end_process(self.proc)
         self.log.close()
 
 

@@ -21,6 +21,7 @@ import urllib.request
 from pathlib import Path
 
 from websockets.sync.client import connect
+from support.processes import end_process
 
 #: Debian's package name for the browser (``.ci/run`` installs it).
 CHROMIUM_NAMES = ("chromium", "chromium-browser")
@@ -165,13 +166,7 @@ class HeadlessChromium:
             except Exception:  # already gone: the process is ended below either way
                 pass
         self._exit.close()
-        if self.proc.poll() is None:
-            self.proc.terminate()
-        try:
-            self.proc.wait(timeout=10)
-        except subprocess.TimeoutExpired:
-            self.proc.kill()
-            self.proc.wait(timeout=5)
+        end_process(self.proc)
         self.log.close()
         shutil.rmtree(self.profile, ignore_errors=True)
 

@@ -105,3 +105,14 @@ def read_line_starting(stream, prefix: str, deadline: float) -> str:
         if line.startswith(prefix):
             return line.strip()
     raise AssertionError(f"no line starting with {prefix!r}")
+
+
+def end_process(proc: subprocess.Popen) -> None:
+    """Ask a helper process (a browser, a Prometheus) to end, and kill it if it does not, bounded."""
+    if proc.poll() is None:
+        proc.terminate()
+    try:
+        proc.wait(timeout=10)
+    except subprocess.TimeoutExpired:
+        proc.kill()
+        proc.wait(timeout=5)
