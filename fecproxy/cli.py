@@ -19,7 +19,10 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "demo": ("fecproxy.commands.demo", "run a sender, a lossy link and a receiver on loopback and show what FEC saves"),
     "impair": ("fecproxy.commands.impair", "relay UDP between two addresses through an emulated lossy link"),
     "plan": ("fecproxy.commands.plan", "choose k, m and interleaving for a link from its loss and burst figures"),
-    "watch": ("fecproxy.commands.watch", "show a pair's loss, recovery, overhead and code from their metrics URLs, once a second"),
+    "watch": (
+        "fecproxy.commands.watch",
+        "show a pair's loss, recovery, overhead and code from their metrics URLs, once a second",
+    ),
     "bench": ("fecproxy.commands.bench", "measure codec and pipeline speed against a baseline run side by side"),
     "keygen": ("fecproxy.commands.keygen", "write a new pre-shared link key file (mode 0600) for auth.key_file"),
 }

@@ -12,7 +12,8 @@ import math
 
 import numpy as np
 import pytest
-from hypothesis import given, settings, strategies as st
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy.stats import binom
 
 from fecproxy.linkmodel import planner
@@ -393,7 +394,11 @@ def test_policy_validation(changes, fragment):
 
 @settings(max_examples=60, deadline=None)
 @given(
-    st.lists(st.tuples(st.sampled_from([0.0, 0.01, 0.05, 0.1, 0.3]), st.sampled_from([1.0, 2.0, 5.0])), min_size=1, max_size=12),
+    st.lists(
+        st.tuples(st.sampled_from([0.0, 0.01, 0.05, 0.1, 0.3]), st.sampled_from([1.0, 2.0, 5.0])),
+        min_size=1,
+        max_size=12,
+    ),
     st.sampled_from([0.25, 0.5, 1.0]),
     st.integers(0, 3),
     st.sampled_from([None, 50.0, 400.0]),
@@ -402,7 +407,9 @@ def test_never_above_the_caps(phases, overhead, min_repair, rate):
     k = 8
     ceiling = int(k * overhead)
     controller = RedundancyController(
-        policy(block_size=k, max_repair=6, max_overhead=overhead, min_repair=min(min_repair, ceiling), flush_interval=0.02),
+        policy(
+            block_size=k, max_repair=6, max_overhead=overhead, min_repair=min(min_repair, ceiling), flush_interval=0.02
+        ),
         initial_repair=2,
         now=0.0,
         source=SourceProfile(rate=rate, mean_datagram_bytes=300, longest_datagram_bytes=1000),

@@ -115,9 +115,13 @@ async def test_sender_follows_a_fading_link_and_holds_without_reports(caplog):
         receiver = await nursery.start(Daemon(configs(sink.getsockname()), handle_signals=False).run)
         relay = await nursery.start(
             run_relay,
-            RelayConfig(listen=(LOOPBACK, 0), to=receiver.link_address[:2], forward=LinkImpairment(loss=CALM), seed="hill-top"),
+            RelayConfig(
+                listen=(LOOPBACK, 0), to=receiver.link_address[:2], forward=LinkImpairment(loss=CALM), seed="hill-top"
+            ),
         )
-        sender = await nursery.start(Daemon(configs(sink.getsockname(), relay.listen_address[:2]), handle_signals=False).run)
+        sender = await nursery.start(
+            Daemon(configs(sink.getsockname(), relay.listen_address[:2]), handle_signals=False).run
+        )
         start = trio.current_time()
         sequence = 0
 
@@ -200,8 +204,10 @@ async def test_sender_follows_a_fading_link_and_holds_without_reports(caplog):
         # least c with P[Binomial(n, p) ≤ c] ≥ x.
         bound = binom.ppf(QUANTILE, blocks, block_failure)
         residual = (unrec1 - unrec0) / max(1, expected1 - expected0)
-        print(f"{phase}: m {sorted(set(steady_ms))}, {blocks} blocks, {failed} failed (bound {bound:.0f}, predicted "
-              f"{blocks * block_failure:.2f}); residual {residual:.2e}, predicted {predicted_residual:.2e}, target {TARGET:g}")
+        print(
+            f"{phase}: m {sorted(set(steady_ms))}, {blocks} blocks, {failed} failed (bound {bound:.0f}, predicted "
+            f"{blocks * block_failure:.2f}); residual {residual:.2e}, predicted {predicted_residual:.2e}, target {TARGET:g}"
+        )
         assert failed <= bound, (phase, failed, bound)
 
     # Return path cut: m held, the gauge set, one log line.

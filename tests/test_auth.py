@@ -171,7 +171,7 @@ def test_truncated_and_extended_packets_are_rejected(encrypt):
     for size in range(len(protected)):
         error = reject(protected[:size], keyring)
         assert error.kind in {"truncated", "bad_tag", "unknown_key", "no_tag", "mode_mismatch"}
-    assert reject(protected[:auth.MIN_PROTECTED_BYTES - 1], keyring).kind == "truncated"
+    assert reject(protected[: auth.MIN_PROTECTED_BYTES - 1], keyring).kind == "truncated"
     assert reject(protected + b"\0", keyring).kind in {"bad_tag", "unknown_key"}
 
 
@@ -353,8 +353,12 @@ def test_print_cost_per_packet(capsys):
     rows["HMAC-SHA-256 protect"] = rate(lambda: auth.protect(packet, mac_ring.current, 1))
     rows["HMAC-SHA-256 verify"] = rate(lambda: auth.verify(protected, mac_ring))
     blake_key = keys.mac_key(OLD)
-    rows["keyed BLAKE2b-128 tag (alternative)"] = rate(lambda: hashlib.blake2b(packet, key=blake_key, digest_size=16).digest())
-    rows["keyed BLAKE2s-128 tag (alternative)"] = rate(lambda: hashlib.blake2s(packet, key=blake_key, digest_size=16).digest())
+    rows["keyed BLAKE2b-128 tag (alternative)"] = rate(
+        lambda: hashlib.blake2b(packet, key=blake_key, digest_size=16).digest()
+    )
+    rows["keyed BLAKE2s-128 tag (alternative)"] = rate(
+        lambda: hashlib.blake2s(packet, key=blake_key, digest_size=16).digest()
+    )
     try:
         aead_ring = auth.Keyring(OLD, encrypt=True)
     except RuntimeError:
@@ -365,7 +369,9 @@ def test_print_cost_per_packet(capsys):
         rows["ChaCha20-Poly1305 verify"] = rate(lambda: auth.verify(sealed, aead_ring))
     window = ReplayWindow()
     counter = iter(range(10**9))
-    rows["replay check + commit"] = rate(lambda: window.commit(next(counter)) if window.check(0).accepted or True else None)
+    rows["replay check + commit"] = rate(
+        lambda: window.commit(next(counter)) if window.check(0).accepted or True else None
+    )
     baseline = rows["baseline: wire.parse"]
     with capsys.disabled():
         print("\nper 1200-byte packet, best of 5 rounds:")

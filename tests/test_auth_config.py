@@ -11,8 +11,7 @@ import yaml
 
 from fecproxy import cli
 from fecproxy.commands.check import EXIT_INVALID, EXIT_VALID
-from fecproxy.config import ConfigError, load_config, parse_config_text
-from fecproxy.config import schema
+from fecproxy.config import ConfigError, load_config, parse_config_text, schema
 from fecproxy.protocol.keys import MasterKey
 
 KEY_A = "a1" * 32
@@ -93,7 +92,12 @@ def test_a_key_file_others_can_read_is_refused_with_chmod(tmp_path, mode, capsys
 
 @pytest.mark.parametrize(
     "text, fragment",
-    [("", "empty"), (KEY_A[:-1], "63 hexadecimal digits"), (KEY_A[:-1] + "g", "not a hexadecimal digit"), ("é" * 32, "not a hexadecimal digit")],
+    [
+        ("", "empty"),
+        (KEY_A[:-1], "63 hexadecimal digits"),
+        (KEY_A[:-1] + "g", "not a hexadecimal digit"),
+        ("é" * 32, "not a hexadecimal digit"),
+    ],
 )
 def test_a_malformed_key_file_is_refused_without_echoing_it(tmp_path, text, fragment):
     key = write_key(tmp_path / "link.key", text)
@@ -133,7 +137,9 @@ def test_both_key_files_are_checked_and_reported_together(tmp_path):
 def test_the_same_key_twice_is_refused(tmp_path):
     write_key(tmp_path / "link.key", KEY_A)
     write_key(tmp_path / "copy.key", KEY_A.upper())
-    assert "same key as auth.key_file" in errors_of(write_config(tmp_path, "key_file: link.key\nprevious_key_file: copy.key\n"))
+    assert "same key as auth.key_file" in errors_of(
+        write_config(tmp_path, "key_file: link.key\nprevious_key_file: copy.key\n")
+    )
     with pytest.raises(ConfigError, match="same file as auth.key_file"):
         parse_config_text(BASE + "auth:\n  key_file: a.key\n  previous_key_file: a.key\n")
 
@@ -141,9 +147,9 @@ def test_the_same_key_twice_is_refused(tmp_path):
 @pytest.mark.parametrize(
     "auth, fragment",
     [
-        ("previous_key_file: old.key", "auth.previous_key_file: \"old.key\" is set without auth.key_file"),
+        ("previous_key_file: old.key", 'auth.previous_key_file: "old.key" is set without auth.key_file'),
         ("encrypt: true", "auth.encrypt: true needs auth.key_file"),
-        ("encrypt: yes please", "auth.encrypt: \"yes please\" is a string; expected true or false"),
+        ("encrypt: yes please", 'auth.encrypt: "yes please" is a string; expected true or false'),
         ("key_file: 5", "auth.key_file: 5 is an integer; expected the path of a key file"),
         ("key_file: ''", "is not a usable path"),
         ("key: " + KEY_A, "auth.key: unknown key; valid keys here are key_file"),

@@ -11,8 +11,8 @@ import multiprocessing
 
 import pytest
 
-from fecproxy.commands.bench import pipeline as bench_pipeline
 from fecproxy.cli import main
+from fecproxy.commands.bench import pipeline as bench_pipeline
 
 
 @pytest.mark.slow
@@ -72,9 +72,21 @@ def test_impaired_trials_pass_within_the_predicted_residual_loss():
 def test_report_names_the_impaired_link_and_the_ratio_to_the_clean_link():
     trials = [bench_pipeline.Trial("pair", 1e4, 1e4, 100, 100, 0), bench_pipeline.Trial("lossy", 8e3, 8e3, 100, 100, 0)]
     result = bench_pipeline.PipelineResult(
-        datagram_bytes=1200, k=16, m=4, trial_seconds=1.0, plain_rate=2e4, pair_rate=1e4,
-        plain_stopped="converged", pair_stopped="converged", delays=[], trials=trials,
-        link_loss=0.05, link_burst=None, predicted_residual=6.6e-4, lossy_rate=8e3, lossy_stopped="converged",
+        datagram_bytes=1200,
+        k=16,
+        m=4,
+        trial_seconds=1.0,
+        plain_rate=2e4,
+        pair_rate=1e4,
+        plain_stopped="converged",
+        pair_stopped="converged",
+        delays=[],
+        trials=trials,
+        link_loss=0.05,
+        link_burst=None,
+        predicted_residual=6.6e-4,
+        lossy_rate=8e3,
+        lossy_stopped="converged",
     )
     text = bench_pipeline.format_result(result)
     assert "5.0% link loss" in text and "i.i.d." in text and "0.80" in text

@@ -7,11 +7,11 @@ from pathlib import Path
 
 import pytest
 import yaml
+from support.processes import run_to_exit
 
 from fecproxy import cli
 from fecproxy.commands.check import EXIT_INVALID, EXIT_UNREADABLE, EXIT_VALID
 from fecproxy.config import parse_config, parse_config_text
-from support.processes import run_to_exit
 
 ROOT = Path(__file__).resolve().parents[1]
 EXAMPLES = ROOT / "config"
@@ -68,7 +68,18 @@ def test_output_fills_in_defaults(capsys, tmp_path):
     assert effective["link"] == {"bind": "127.0.0.1:0", "peer": "127.0.0.1:7000"}
     assert effective["forward"] is None and effective["metrics"] == {"listen": None}
     assert list(effective) == [
-        "role", "listen", "forward", "link", "fec", "decoder", "flows", "sockets", "log", "metrics", "reports", "auth"
+        "role",
+        "listen",
+        "forward",
+        "link",
+        "fec",
+        "decoder",
+        "flows",
+        "sockets",
+        "log",
+        "metrics",
+        "reports",
+        "auth",
     ]
     assert effective["reports"] == {"interval_ms": 1000}
 
@@ -81,15 +92,31 @@ def test_quiet_prints_nothing_when_valid(capsys, tmp_path):
 
 BAD_FILES = [
     # (id, file text, fragments expected on stderr)
-    ("k + m above 255", GOOD_SENDER.replace("block_size: 8", "block_size: 300"),
-     ["bad.yaml: fec.block_size: 300 is out of range; expected an integer 1..255 with block_size + repair ≤ 255"]),
-    ("typo in a key", GOOD_SENDER.replace("repair: 2", "repiar: 2"),
-     ["bad.yaml: fec.repiar: unknown key; did you mean fec.repair?"]),
-    ("m above k", GOOD_SENDER.replace("repair: 2", "repair: 9"),
-     ["bad.yaml: fec.repair: 9 is above fec.block_size 8", "RFC 6363 §8.2"]),
-    ("receiver keys on a sender", GOOD_SENDER + "forward: 127.0.0.1:6000\n",
-     ['bad.yaml: forward: "127.0.0.1:6000" is set but role is sender']),
-    ("bad port", GOOD_SENDER.replace("127.0.0.1:5000", "127.0.0.1:99999"), ['bad.yaml: listen: "127.0.0.1:99999" has port 99999, out of range 0..65535']),
+    (
+        "k + m above 255",
+        GOOD_SENDER.replace("block_size: 8", "block_size: 300"),
+        ["bad.yaml: fec.block_size: 300 is out of range; expected an integer 1..255 with block_size + repair ≤ 255"],
+    ),
+    (
+        "typo in a key",
+        GOOD_SENDER.replace("repair: 2", "repiar: 2"),
+        ["bad.yaml: fec.repiar: unknown key; did you mean fec.repair?"],
+    ),
+    (
+        "m above k",
+        GOOD_SENDER.replace("repair: 2", "repair: 9"),
+        ["bad.yaml: fec.repair: 9 is above fec.block_size 8", "RFC 6363 §8.2"],
+    ),
+    (
+        "receiver keys on a sender",
+        GOOD_SENDER + "forward: 127.0.0.1:6000\n",
+        ['bad.yaml: forward: "127.0.0.1:6000" is set but role is sender'],
+    ),
+    (
+        "bad port",
+        GOOD_SENDER.replace("127.0.0.1:5000", "127.0.0.1:99999"),
+        ['bad.yaml: listen: "127.0.0.1:99999" has port 99999, out of range 0..65535'],
+    ),
     ("YAML syntax", GOOD_SENDER + "  - oops\n", ["bad.yaml: line 9, column 3: YAML syntax error"]),
     ("not a mapping", "- role: sender\n", ["bad.yaml: the document is a list; expected a mapping"]),
     ("empty", "", ["bad.yaml: the document is empty"]),

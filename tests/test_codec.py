@@ -19,10 +19,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from fecproxy import cli
-
-from fecproxy.coding import codec
-
-from fecproxy.coding import gf256
+from fecproxy.coding import codec, gf256
 from fecproxy.coding.codec import BlockCode, CodecError, NotEnoughSymbols
 
 
@@ -48,7 +45,9 @@ def test_design_notes_vector():
     assert [bytes(row).hex() for row in repair] == ["1516177f", "424140d8", "484b4aaf"]
 
 
-@pytest.mark.parametrize("k, n", [(1, 1), (1, 5), (4, 7), (10, 10), (16, 20), (64, 80), (100, 255), (200, 255), (255, 255)])
+@pytest.mark.parametrize(
+    "k, n", [(1, 1), (1, 5), (4, 7), (10, 10), (16, 20), (64, 80), (100, 255), (200, 255), (255, 255)]
+)
 def test_generator_matches_galois_vandermonde(GF, k, n):
     # RFC 5510 §8.2: V[i][j] = alpha^(i·j) (k×n), GM = V_k^-1 · V with V_k the first k columns;
     # galois.FieldArray.Vandermonde(a, rows, cols) builds V[i][j] = a^(i·j).
@@ -257,7 +256,7 @@ def test_inverse_cache_is_reused_and_bounded(monkeypatch):
 DECODE_SHAPES = [(16, 4), (64, 16), (200, 55), (5, 3), (100, 155)]
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def galois_repair_matrix(k: int, n: int) -> np.ndarray:
     # RFC 5510 §8.2: GM = V_k^-1 · V with V[i][j] = alpha^(i·j); repair symbol j ≥ k is column j
     # of GM applied to the source.  Built with galois on the RFC 5510 §8.1 field (0x11D).
@@ -361,5 +360,3 @@ def test_bench_codec_json():
 def test_bench_rejects_bad_shape():
     with pytest.raises(SystemExit), contextlib.redirect_stderr(io.StringIO()):
         cli.main(["bench", "codec", "--shape", "200,56,1200"])
-
-

@@ -12,7 +12,8 @@ from pathlib import Path
 
 import pytest
 import yaml
-from hypothesis import given, settings, strategies as st
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from fecproxy import config as cfg
 from fecproxy.config import (
@@ -111,7 +112,9 @@ def test_example_files_are_valid(name):
 
 def test_null_sections_and_optional_keys_mean_not_set():
     # "metrics:" with its only line commented out reads as null: metrics disabled, not an error.
-    config = parse_config_text("role: receiver\nforward: 127.0.0.1:6000\nlink:\n  bind: 127.0.0.1:7000\n  peer:\nmetrics:\n")
+    config = parse_config_text(
+        "role: receiver\nforward: 127.0.0.1:6000\nlink:\n  bind: 127.0.0.1:7000\n  peer:\nmetrics:\n"
+    )
     assert config.link.peer is None and not config.metrics.enabled
 
 
@@ -186,7 +189,9 @@ def test_flow_limit_is_half_the_16_bit_slot_space():
 def test_flow_timeouts_and_protection_are_independent_keys():
     """The first-exchange timeout may exceed idle_timeout_s (the smaller applies), and 0
     protection is allowed (always evict, never refuse)."""
-    config = parse_config(edited(SENDER, flows__idle_timeout_s=1, flows__first_exchange_timeout_s=600, flows__protect_s=0))
+    config = parse_config(
+        edited(SENDER, flows__idle_timeout_s=1, flows__first_exchange_timeout_s=600, flows__protect_s=0)
+    )
     assert (config.flows.idle_timeout_s, config.flows.first_exchange_timeout_s, config.flows.protect_s) == (1, 600, 0)
 
 
@@ -200,32 +205,67 @@ def test_socket_buffer_limit_cannot_overflow_the_doubled_int():
 
 BAD_CONFIGS = [
     # (id, document, fragments that must all appear in one message)
-    ("block_size too big", edited(SENDER, fec__block_size=300),
-     ["test.yaml: fec.block_size: 300 is out of range; expected an integer 1..255 with block_size + repair ≤ 255"]),
+    (
+        "block_size too big",
+        edited(SENDER, fec__block_size=300),
+        ["test.yaml: fec.block_size: 300 is out of range; expected an integer 1..255 with block_size + repair ≤ 255"],
+    ),
     ("block_size zero", edited(SENDER, fec__block_size=0), ["fec.block_size: 0 is out of range"]),
     ("repair negative", edited(SENDER, fec__repair=-1), ["fec.repair: -1 is out of range", "0..254"]),
-    ("bool is not an int", edited(SENDER, fec__block_size=True),
-     ["fec.block_size: true is a boolean; expected an integer"]),
-    ("string is not an int", edited(SENDER, fec__flush_ms="20"),
-     ['fec.flush_ms: "20" is a string; expected an integer number of milliseconds 1..60000']),
+    (
+        "bool is not an int",
+        edited(SENDER, fec__block_size=True),
+        ["fec.block_size: true is a boolean; expected an integer"],
+    ),
+    (
+        "string is not an int",
+        edited(SENDER, fec__flush_ms="20"),
+        ['fec.flush_ms: "20" is a string; expected an integer number of milliseconds 1..60000'],
+    ),
     ("float is not an int", edited(SENDER, fec__flush_ms=20.0), ["fec.flush_ms: 20.0 is a floating-point number"]),
     ("flush zero", edited(SENDER, fec__flush_ms=0), ["fec.flush_ms: 0 is out of range"]),
     ("flush a minute and more", edited(SENDER, fec__flush_ms=60001), ["fec.flush_ms: 60001 is out of range"]),
     ("null value for a default key", edited(SENDER, fec__repair=None), ["fec.repair: has no value (null)"]),
-    ("k + m above 255", edited(SENDER, fec__block_size=200, fec__repair=100, fec__allow_repair_above_source=True),
-     ["fec.repair: 100 is too large", "≤ 255", "repair ≤ 55"]),
+    (
+        "k + m above 255",
+        edited(SENDER, fec__block_size=200, fec__repair=100, fec__allow_repair_above_source=True),
+        ["fec.repair: 100 is too large", "≤ 255", "repair ≤ 55"],
+    ),
     ("m above k", edited(SENDER, fec__block_size=2, fec__repair=3), ["fec.repair: 3 is above fec.block_size 2"]),
-    ("allow flag not a bool", edited(SENDER, fec__allow_repair_above_source="yes please"),
-     ['fec.allow_repair_above_source: "yes please" is a string; expected true or false']),
-    ("short-block rule typo", edited(SENDER, fec__short_block_repair="proportion"),
-     ['fec.short_block_repair: "proportion" is not a valid short-block rule; expected proportional or full',
-      "did you mean proportional?"]),
-    ("unknown key in a section", edited(SENDER, fec__blocksize=16),
-     ["test.yaml: fec.blocksize: unknown key; did you mean fec.block_size?"]),
-    ("unknown key, wrong case", edited(SENDER, fec__Flush_MS=16), ["fec.Flush_MS: unknown key; did you mean fec.flush_ms?"]),
-    ("section key at the top", edited(SENDER, block_size=16), ["block_size: unknown key; did you mean fec.block_size?"]),
+    (
+        "allow flag not a bool",
+        edited(SENDER, fec__allow_repair_above_source="yes please"),
+        ['fec.allow_repair_above_source: "yes please" is a string; expected true or false'],
+    ),
+    (
+        "short-block rule typo",
+        edited(SENDER, fec__short_block_repair="proportion"),
+        [
+            'fec.short_block_repair: "proportion" is not a valid short-block rule; expected proportional or full',
+            "did you mean proportional?",
+        ],
+    ),
+    (
+        "unknown key in a section",
+        edited(SENDER, fec__blocksize=16),
+        ["test.yaml: fec.blocksize: unknown key; did you mean fec.block_size?"],
+    ),
+    (
+        "unknown key, wrong case",
+        edited(SENDER, fec__Flush_MS=16),
+        ["fec.Flush_MS: unknown key; did you mean fec.flush_ms?"],
+    ),
+    (
+        "section key at the top",
+        edited(SENDER, block_size=16),
+        ["block_size: unknown key; did you mean fec.block_size?"],
+    ),
     ("unknown top key", edited(SENDER, roll="sender"), ["roll: unknown key; did you mean role?"]),
-    ("unknown key, nothing close", edited(SENDER, log__zzz=1), ["log.zzz: unknown key; valid keys here are level, format"]),
+    (
+        "unknown key, nothing close",
+        edited(SENDER, log__zzz=1),
+        ["log.zzz: unknown key; valid keys here are level, format"],
+    ),
     ("non-string key", {**SENDER, 7: "x"}, ["7: unknown key"]),
     ("section not a mapping", edited(SENDER, fec=16), ["fec: 16 is an integer; expected a mapping of fec settings"]),
     ("role missing", edited(SENDER, role=DELETE), ["role: missing; expected sender or receiver"]),
@@ -233,77 +273,172 @@ BAD_CONFIGS = [
     ("role wrong case", edited(SENDER, role="Sender"), ["did you mean sender?"]),
     ("sender without listen", edited(SENDER, listen=DELETE), ["listen: missing; a sender needs"]),
     ("sender without peer", edited(SENDER, link__peer=DELETE), ["link.peer: missing; a sender needs"]),
-    ("sender with forward", edited(SENDER, forward="127.0.0.1:6000"),
-     ['forward: "127.0.0.1:6000" is set but role is sender', "remove it"]),
+    (
+        "sender with forward",
+        edited(SENDER, forward="127.0.0.1:6000"),
+        ['forward: "127.0.0.1:6000" is set but role is sender', "remove it"],
+    ),
     ("receiver without forward", edited(RECEIVER, forward=DELETE), ["forward: missing; a receiver needs"]),
     ("receiver with listen", edited(RECEIVER, listen="127.0.0.1:5000"), ["listen: ", "is set but role is receiver"]),
     ("link missing", edited(SENDER, link=DELETE), ["link.bind: missing; expected HOST:PORT"]),
     ("bind missing", edited(SENDER, link__bind=DELETE), ["link.bind: missing"]),
     ("address without port", edited(SENDER, link__peer="192.0.2.10"), ['link.peer: "192.0.2.10" has no port']),
-    ("address port too big", edited(SENDER, listen="127.0.0.1:65536"), ["listen:", "has port 65536, out of range 0..65535"]),
+    (
+        "address port too big",
+        edited(SENDER, listen="127.0.0.1:65536"),
+        ["listen:", "has port 65536, out of range 0..65535"],
+    ),
     ("peer port zero", edited(SENDER, link__peer="127.0.0.1:0"), ["link.peer:", "has port 0, out of range 1..65535"]),
     ("forward port zero", edited(RECEIVER, forward="127.0.0.1:0"), ["forward:", "out of range 1..65535"]),
     ("port not a number", edited(SENDER, listen="127.0.0.1:http"), ['has port "http", which is not a number']),
     ("bad IPv4", edited(SENDER, link__peer="192.0.2.300:7000"), ["has 192.0.2.300, which is not a valid IPv4 address"]),
-    ("IPv6 without brackets", edited(SENDER, link__peer="2001:db8::1:7000"),
-     ["without brackets; write it as [2001:db8::1]:7000"]),
+    (
+        "IPv6 without brackets",
+        edited(SENDER, link__peer="2001:db8::1:7000"),
+        ["without brackets; write it as [2001:db8::1]:7000"],
+    ),
     ("bad IPv6 in brackets", edited(SENDER, link__peer="[2001:db8::zz]:7000"), ["which is not an IPv6 address"]),
-    ("bad hostname", edited(SENDER, link__peer="relay_1.example:7000"),
-     ['has "relay_1.example", which is neither an IP address nor a valid host name']),
-    ("huge value is clipped", edited(SENDER, link__peer="[" + "f" * 10_000 + "]:1"), ["…], which is not an IPv6 address"]),
-    ("address not a string", edited(SENDER, listen=5000),
-     ["listen: 5000 is an integer; expected HOST:PORT"]),
+    (
+        "bad hostname",
+        edited(SENDER, link__peer="relay_1.example:7000"),
+        ['has "relay_1.example", which is neither an IP address nor a valid host name'],
+    ),
+    (
+        "huge value is clipped",
+        edited(SENDER, link__peer="[" + "f" * 10_000 + "]:1"),
+        ["…], which is not an IPv6 address"],
+    ),
+    ("address not a string", edited(SENDER, listen=5000), ["listen: 5000 is an integer; expected HOST:PORT"]),
     ("unspecified destination", edited(SENDER, link__peer="0.0.0.0:7000"), ["unspecified host 0.0.0.0"]),
-    ("listen and bind on one port", edited(SENDER, listen="0.0.0.0:7001"),
-     ['listen: "0.0.0.0:7001" uses the same UDP port as link.bind "127.0.0.1:7001"']),
+    (
+        "listen and bind on one port",
+        edited(SENDER, listen="0.0.0.0:7001"),
+        ['listen: "0.0.0.0:7001" uses the same UDP port as link.bind "127.0.0.1:7001"'],
+    ),
     ("peer is ourselves", edited(SENDER, link__peer="127.0.0.1:7001"), ["link.peer:", "is this proxy's own link.bind"]),
-    ("forward is ourselves", edited(RECEIVER, link__bind="0.0.0.0:6000"), ["forward:", "is this proxy's own link.bind"]),
+    (
+        "forward is ourselves",
+        edited(RECEIVER, link__bind="0.0.0.0:6000"),
+        ["forward:", "is this proxy's own link.bind"],
+    ),
     ("metrics listen bad", edited(SENDER, metrics__listen="localhost"), ['metrics.listen: "localhost" has no port']),
     ("hold zero", edited(SENDER, decoder__hold_ms=0), ["decoder.hold_ms: 0 is out of range"]),
     ("open blocks zero", edited(SENDER, decoder__max_open_blocks=0), ["decoder.max_open_blocks: 0 is out of range"]),
     ("flows zero", edited(SENDER, flows__max=0), ["flows.max: 0 is out of range", "half the 16-bit flow slot space"]),
-    ("first exchange zero", edited(SENDER, flows__first_exchange_timeout_s=0),
-     ["flows.first_exchange_timeout_s: 0 is out of range; expected an integer number of seconds 1..86400"]),
-    ("protect negative", edited(SENDER, flows__protect_s=-1),
-     ["flows.protect_s: -1 is out of range; expected an integer number of seconds 0..86400 (0 = never refuse)"]),
+    (
+        "first exchange zero",
+        edited(SENDER, flows__first_exchange_timeout_s=0),
+        ["flows.first_exchange_timeout_s: 0 is out of range; expected an integer number of seconds 1..86400"],
+    ),
+    (
+        "protect negative",
+        edited(SENDER, flows__protect_s=-1),
+        ["flows.protect_s: -1 is out of range; expected an integer number of seconds 0..86400 (0 = never refuse)"],
+    ),
     ("protect fraction", edited(SENDER, flows__protect_s=1.5), ["flows.protect_s: 1.5 is a"]),
-    ("first exchange misspelt", edited(SENDER, flows__first_exchange_timeout=30),
-     ["flows.first_exchange_timeout: unknown key; did you mean flows.first_exchange_timeout_s?"]),
+    (
+        "first exchange misspelt",
+        edited(SENDER, flows__first_exchange_timeout=30),
+        ["flows.first_exchange_timeout: unknown key; did you mean flows.first_exchange_timeout_s?"],
+    ),
     ("idle timeout huge", edited(SENDER, flows__idle_timeout_s=86401), ["flows.idle_timeout_s: 86401 is out of range"]),
-    ("buffer negative", edited(SENDER, sockets__send_buffer_bytes=-1), ["sockets.send_buffer_bytes: -1 is out of range"]),
+    (
+        "buffer negative",
+        edited(SENDER, sockets__send_buffer_bytes=-1),
+        ["sockets.send_buffer_bytes: -1 is out of range"],
+    ),
     ("buffer with unit", edited(SENDER, sockets__receive_buffer_bytes="4MiB"), ['"4MiB" is a string']),
-    ("log level", edited(SENDER, log__level="verbose"),
-     ['log.level: "verbose" is not a valid log level; expected debug, info, warning or error']),
-    ("log format", edited(SENDER, log__format="xml"), ['log.format: "xml" is not a valid log format; expected text or json']),
+    (
+        "log level",
+        edited(SENDER, log__level="verbose"),
+        ['log.level: "verbose" is not a valid log level; expected debug, info, warning or error'],
+    ),
+    (
+        "log format",
+        edited(SENDER, log__format="xml"),
+        ['log.format: "xml" is not a valid log format; expected text or json'],
+    ),
     ("long value is shortened", edited(SENDER, log__level="x" * 500), ["…"]),
     ("list where a scalar goes", edited(SENDER, fec__repair=[1, 2]), ["fec.repair: […] is a list"]),
-    ("adapt not a mapping", edited(SENDER, fec__adapt=True), ["fec.adapt: true is a boolean; expected a mapping of fec.adapt settings"]),
-    ("adapt unknown key", edited(SENDER, fec__adapt={"target_residal": 0.01}),
-     ["fec.adapt.target_residal: unknown key; did you mean target_residual?"]),
-    ("adapt target zero", edited(SENDER, fec__adapt={"target_residual": 0}),
-     ["fec.adapt.target_residual: 0 is out of range; expected a number 0 < x < 1"]),
-    ("adapt target one", edited(SENDER, fec__adapt={"target_residual": 1.0}), ["fec.adapt.target_residual: 1.0 is out of range"]),
-    ("adapt target as YAML 1.1 text", edited(SENDER, fec__adapt={"target_residual": "1e-3"}),
-     ['fec.adapt.target_residual: "1e-3" is a string', "write 0.001 or 1.0e-3"]),
-    ("adapt target NaN", edited(SENDER, fec__adapt={"target_residual": math.nan}), ["fec.adapt.target_residual: ", "out of range"]),
-    ("adapt min above max", edited(SENDER, fec__adapt={"min_repair": 5, "max_repair": 3}),
-     ["fec.adapt.min_repair: 5 is above fec.adapt.max_repair 3; expected min_repair ≤ max_repair"]),
-    ("adapt k + max_repair above 255", edited(SENDER, fec__block_size=200, fec__adapt={"max_repair": 60}),
-     ["fec.adapt.max_repair: 60 is too large with fec.block_size 200", "RFC 5510 §8.2", "max_repair ≤ 55"]),
-    ("adapt overhead above source rate", edited(SENDER, fec__adapt={"max_overhead": 1.5}),
-     ["fec.adapt.max_overhead: 1.5 is above 1", "RFC 6363 §8.2", "fec.allow_repair_above_source: true"]),
-    ("adapt overhead zero", edited(SENDER, fec__adapt={"max_overhead": 0}), ["fec.adapt.max_overhead: 0 is out of range"]),
-    ("adapt min_repair beyond the overhead cap", edited(SENDER, fec__block_size=8, fec__adapt={"min_repair": 3, "max_overhead": 0.25}),
-     ["fec.adapt.min_repair: 3 is above the 2 repair packets that fec.adapt.max_overhead 0.25 allows with fec.block_size 8"]),
+    (
+        "adapt not a mapping",
+        edited(SENDER, fec__adapt=True),
+        ["fec.adapt: true is a boolean; expected a mapping of fec.adapt settings"],
+    ),
+    (
+        "adapt unknown key",
+        edited(SENDER, fec__adapt={"target_residal": 0.01}),
+        ["fec.adapt.target_residal: unknown key; did you mean target_residual?"],
+    ),
+    (
+        "adapt target zero",
+        edited(SENDER, fec__adapt={"target_residual": 0}),
+        ["fec.adapt.target_residual: 0 is out of range; expected a number 0 < x < 1"],
+    ),
+    (
+        "adapt target one",
+        edited(SENDER, fec__adapt={"target_residual": 1.0}),
+        ["fec.adapt.target_residual: 1.0 is out of range"],
+    ),
+    (
+        "adapt target as YAML 1.1 text",
+        edited(SENDER, fec__adapt={"target_residual": "1e-3"}),
+        ['fec.adapt.target_residual: "1e-3" is a string', "write 0.001 or 1.0e-3"],
+    ),
+    (
+        "adapt target NaN",
+        edited(SENDER, fec__adapt={"target_residual": math.nan}),
+        ["fec.adapt.target_residual: ", "out of range"],
+    ),
+    (
+        "adapt min above max",
+        edited(SENDER, fec__adapt={"min_repair": 5, "max_repair": 3}),
+        ["fec.adapt.min_repair: 5 is above fec.adapt.max_repair 3; expected min_repair ≤ max_repair"],
+    ),
+    (
+        "adapt k + max_repair above 255",
+        edited(SENDER, fec__block_size=200, fec__adapt={"max_repair": 60}),
+        ["fec.adapt.max_repair: 60 is too large with fec.block_size 200", "RFC 5510 §8.2", "max_repair ≤ 55"],
+    ),
+    (
+        "adapt overhead above source rate",
+        edited(SENDER, fec__adapt={"max_overhead": 1.5}),
+        ["fec.adapt.max_overhead: 1.5 is above 1", "RFC 6363 §8.2", "fec.allow_repair_above_source: true"],
+    ),
+    (
+        "adapt overhead zero",
+        edited(SENDER, fec__adapt={"max_overhead": 0}),
+        ["fec.adapt.max_overhead: 0 is out of range"],
+    ),
+    (
+        "adapt min_repair beyond the overhead cap",
+        edited(SENDER, fec__block_size=8, fec__adapt={"min_repair": 3, "max_overhead": 0.25}),
+        [
+            "fec.adapt.min_repair: 3 is above the 2 repair packets that fec.adapt.max_overhead 0.25 allows with fec.block_size 8"
+        ],
+    ),
     ("adapt null key", edited(SENDER, fec__adapt={"min_repair": None}), ["fec.adapt.min_repair: has no value (null)"]),
-    ("adapt without reports", edited(SENDER, fec__adapt={}, reports__interval_ms=0),
-     ["fec.adapt: is set but reports.interval_ms is 0", "adaptation needs loss reports"]),
-    ("report interval negative", edited(SENDER, reports__interval_ms=-1), ["reports.interval_ms: -1 is out of range", "0 = no reports"]),
-    ("report interval above a minute", edited(RECEIVER, reports__interval_ms=60_001), ["reports.interval_ms: 60001 is out of range"]),
+    (
+        "adapt without reports",
+        edited(SENDER, fec__adapt={}, reports__interval_ms=0),
+        ["fec.adapt: is set but reports.interval_ms is 0", "adaptation needs loss reports"],
+    ),
+    (
+        "report interval negative",
+        edited(SENDER, reports__interval_ms=-1),
+        ["reports.interval_ms: -1 is out of range", "0 = no reports"],
+    ),
+    (
+        "report interval above a minute",
+        edited(RECEIVER, reports__interval_ms=60_001),
+        ["reports.interval_ms: 60001 is out of range"],
+    ),
 ]
 
 
-@pytest.mark.parametrize("document, fragments", [case[1:] for case in BAD_CONFIGS], ids=[case[0] for case in BAD_CONFIGS])
+@pytest.mark.parametrize(
+    "document, fragments", [case[1:] for case in BAD_CONFIGS], ids=[case[0] for case in BAD_CONFIGS]
+)
 def test_bad_config_is_reported(document, fragments):
     messages = errors_of(document)
     assert any(all(fragment in message for fragment in fragments) for message in messages), messages
@@ -408,7 +543,9 @@ def test_unclosed_quote_is_a_syntax_error():
 
 def test_duplicate_keys_are_reported_with_the_others():
     # PyYAML would silently keep the last value; a config must not.
-    text = "role: sender\nrole: receiver\nforward: 127.0.0.1:6000\nlink:\n  bind: 127.0.0.1:7000\n  bind: 127.0.0.1:7002\n"
+    text = (
+        "role: sender\nrole: receiver\nforward: 127.0.0.1:6000\nlink:\n  bind: 127.0.0.1:7000\n  bind: 127.0.0.1:7002\n"
+    )
     with pytest.raises(ConfigError) as caught:
         parse_config_text(text, "d.yaml")
     messages = caught.value.messages
@@ -469,7 +606,18 @@ def test_deep_nesting_does_not_crash():
 def test_effective_has_every_key_in_yaml_nesting():
     effective = parse_config(SENDER).effective()
     assert list(effective) == [
-        "role", "listen", "forward", "link", "fec", "decoder", "flows", "sockets", "log", "metrics", "reports", "auth"
+        "role",
+        "listen",
+        "forward",
+        "link",
+        "fec",
+        "decoder",
+        "flows",
+        "sockets",
+        "log",
+        "metrics",
+        "reports",
+        "auth",
     ]
     assert effective["fec"] == {
         "block_size": 16,
@@ -558,9 +706,13 @@ _scalars = st.one_of(
     st.none(), st.booleans(), st.integers(-(2**70), 2**70), st.floats(allow_nan=True), st.text(max_size=30)
 )
 _keys = st.one_of(
-    st.sampled_from(cfg.schema.ALL_KEY_PATHS + ["bind", "peer", "block_size", "listen"]), st.text(max_size=12), st.integers()
+    st.sampled_from(cfg.schema.ALL_KEY_PATHS + ["bind", "peer", "block_size", "listen"]),
+    st.text(max_size=12),
+    st.integers(),
 )
-_yamlish = st.recursive(_scalars, lambda inner: st.lists(inner, max_size=4) | st.dictionaries(_keys, inner, max_size=5), max_leaves=25)
+_yamlish = st.recursive(
+    _scalars, lambda inner: st.lists(inner, max_size=4) | st.dictionaries(_keys, inner, max_size=5), max_leaves=25
+)
 
 
 @settings(max_examples=300, deadline=None)

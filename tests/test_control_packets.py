@@ -10,10 +10,12 @@ import pytest
 from fecproxy.protocol import wire
 from fecproxy.protocol.decoder import BlockDecoder
 from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
-from fecproxy.protocol.events import ControlReceived, DropReason, Dropped
+from fecproxy.protocol.events import ControlReceived, Dropped, DropReason
 from fecproxy.protocol.loss_report import LossReport, encode_report, parse_report
 
-REPORT = LossReport(epoch=0xFFFFFFFF, sequence=1, interval_ms=250, source_received=0, repair_received=0, source_lost=0, unrecovered=0)
+REPORT = LossReport(
+    epoch=0xFFFFFFFF, sequence=1, interval_ms=250, source_received=0, repair_received=0, source_lost=0, unrecovered=0
+)
 
 
 def test_control_packet_bytes():

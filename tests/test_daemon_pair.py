@@ -20,8 +20,6 @@ from pathlib import Path
 
 import pytest
 from scipy.stats import binom, hypergeom
-
-from fecproxy.commands import EXIT_CANNOT_START, EXIT_INVALID, EXIT_UNREADABLE
 from support.daemon_pair import (
     DRAIN_TIMEOUT,
     LOOPBACK,
@@ -39,6 +37,8 @@ from support.daemon_pair import (
 from support.lossy_relay import drop_indices, iid_loss
 from support.processes import run_to_exit
 
+from fecproxy.commands import EXIT_CANNOT_START, EXIT_INVALID, EXIT_UNREADABLE
+
 #: Exit bound required of a daemon after SIGTERM: "exit 0 within a second".
 SIGTERM_EXIT_SECONDS = 1.0
 #: A flush interval far longer than any test's traffic burst: blocks close only when full, so
@@ -48,8 +48,6 @@ NEVER_FLUSH_MS = 30_000
 # --------------------------------------------------------------------------------------------
 # Reading the link
 # --------------------------------------------------------------------------------------------
-
-
 
 
 def exact_residual(packets, k: int, m: int) -> tuple[int, int]:
@@ -198,8 +196,11 @@ def test_replies_reach_the_right_client(pairs):
     blocks = clients_count * per_client // k
     rng = random.Random(5)
     back_losses = {b * (k + m) + position for b in range(blocks) for position in rng.sample(range(k + m), 2)}
-    pair = pairs(echo=True, receiver_fec={"block_size": k, "repair": m, "flush_ms": NEVER_FLUSH_MS},
-                 back=drop_indices(back_losses))
+    pair = pairs(
+        echo=True,
+        receiver_fec={"block_size": k, "repair": m, "flush_ms": NEVER_FLUSH_MS},
+        back=drop_indices(back_losses),
+    )
     clients = [pair.client(stream=10 + i) for i in range(clients_count)]
 
     def send(i: int) -> None:
@@ -233,8 +234,11 @@ def test_empty_and_largest_datagrams_are_rebuilt_exactly_and_oversize_is_counted
     (RFC 6363 §4: the length travels inside the source symbol); one byte more is dropped and
     counted at the sender, and takes no place in a block."""
     k, m = 4, 2
-    pair = pairs(sender_fec={"block_size": k, "repair": m, "flush_ms": NEVER_FLUSH_MS},
-                 forward=drop_indices({0, 1, 6 + 0, 6 + 1}), record=True)
+    pair = pairs(
+        sender_fec={"block_size": k, "repair": m, "flush_ms": NEVER_FLUSH_MS},
+        forward=drop_indices({0, 1, 6 + 0, 6 + 1}),
+        record=True,
+    )
     # Losses: block 0 its empty and its largest datagram, block 1 its largest and one empty.
     blocks = [[b"", b"\x00" * 1400, b"a", b"\xff" * 700], [b"z" * 1400, b"", b"", b"q"]]
     client = pair.client(stream=50)
@@ -484,7 +488,9 @@ def test_malformed_and_forged_packets_are_counted_and_never_crash_the_receiver(p
 
         assert wait_until(counted, DRAIN_TIMEOUT, interval=0.1), pair.receiver.metrics()
         for reason, packets in hostile.items():
-            assert pair.receiver.metric("fecproxy_packets_dropped_total", reason=reason) - before[reason] >= 3 * len(packets)
+            assert pair.receiver.metric("fecproxy_packets_dropped_total", reason=reason) - before[reason] >= 3 * len(
+                packets
+            )
         assert pair.server.corrupted == 0
         assert pair.receiver.proc.poll() is None
         # Nothing hostile changed the learned peer: the pair still works both ways.

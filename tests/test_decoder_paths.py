@@ -66,7 +66,12 @@ def test_fast_and_general_paths_agree(k, m, first, second, steps, max_datagram, 
             assert fast.on_timer(now) == general.on_timer(now)
         assert fast.receive(data, now) == general.receive(data, now)
         assert fast.stats == general.stats
-        assert (fast.sessions, fast.session, fast.held_bytes, fast.open_blocks) == (general.sessions, general.session, general.held_bytes, general.open_blocks)
+        assert (fast.sessions, fast.session, fast.held_bytes, fast.open_blocks) == (
+            general.sessions,
+            general.session,
+            general.held_bytes,
+            general.open_blocks,
+        )
         assert fast.next_deadline() == general.next_deadline()
     assert fast.close() == general.close()
     assert fast.stats == general.stats

@@ -20,11 +20,11 @@ from scipy.stats import binom
 
 from fecproxy.commands.demo import render, traffic
 from fecproxy.commands.demo.tap import LinkTap
-from fecproxy.linkmodel.loss_models import GilbertElliott
-from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
 from fecproxy.linkmodel.impairment import ImpairedLink, LinkImpairment
+from fecproxy.linkmodel.loss_models import GilbertElliott
 from fecproxy.linkmodel.planner import evaluate
 from fecproxy.protocol import wire
+from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
 
 REPO = Path(__file__).resolve().parent.parent
 ROW = re.compile(r"datagrams lost\s+(\d+) of (\d+) \(([\d.]+) %\)\s+(\d+) of (\d+) \(([\d.]+) %\)")
@@ -128,7 +128,9 @@ def test_predicted_residual_weights_blocks_by_their_datagrams():
     def iid(k, m):
         return p * binom.sf(m - 1, k + m - 1, p)
 
-    expected = sum(k * count * iid(k, m) for (k, m), count in blocks.items()) / sum(k * c for (k, _), c in blocks.items())
+    expected = sum(k * count * iid(k, m) for (k, m), count in blocks.items()) / sum(
+        k * c for (k, _), c in blocks.items()
+    )
     assert render.predicted_residual(channel, blocks) == pytest.approx(expected, rel=1e-9)
     bursty = GilbertElliott.from_loss_burst(0.08, 3)
     assert render.predicted_residual(bursty, Counter({(32, 16): 4})) == evaluate(bursty, 32, 16).residual_loss
@@ -141,8 +143,14 @@ def test_formatting_helpers():
     assert render.fmt_percent(0.00042) == "0.042 %"
     assert render.fmt_percent(0) == "0 %"
     assert render.fmt_percent(math.nan) == "–"
-    assert render.fmt_ms(0.5123) == "512 ms" and render.fmt_ms(0.00123) == "1.2 ms" and render.fmt_ms(0.0004) == "0.40 ms"
-    assert render.fmt_bytes(512) == "512 B" and render.fmt_bytes(61_500) == "61.5 kB" and render.fmt_bytes(3.1e6) == "3.1 MB"
+    assert (
+        render.fmt_ms(0.5123) == "512 ms" and render.fmt_ms(0.00123) == "1.2 ms" and render.fmt_ms(0.0004) == "0.40 ms"
+    )
+    assert (
+        render.fmt_bytes(512) == "512 B"
+        and render.fmt_bytes(61_500) == "61.5 kB"
+        and render.fmt_bytes(3.1e6) == "3.1 MB"
+    )
     assert "no packets" in render.describe_link(GilbertElliott.no_loss())
     assert "independently" in render.describe_link(GilbertElliott.bernoulli(0.05))
     assert "mean burst 3 packets" in render.describe_link(GilbertElliott.from_loss_burst(0.08, 3))
@@ -150,12 +158,35 @@ def test_formatting_helpers():
 
 def _result(**changes) -> render.DemoResult:
     fields = dict(
-        seconds=20.0, seed=1, k=32, m=16, flush_ms=1000, channel=GilbertElliott.from_loss_burst(0.08, 3),
-        sent=600, app_bytes=320_000, delivered=597, corrupted=0, duplicates=0, link_source_lost=48,
-        source_packets=600, repair_packets=300, source_wire_bytes=326_600, repair_wire_bytes=250_000,
-        link_packets=900, link_lost=70, rebuilt_delays=[0.1, 0.5, 0.9], intact_delays=[0.0006] * 10,
-        images_sent=4, images_complete=4, images_complete_without_fec=1, acks_sent=80, acks_received=79,
-        receiver_lost=48, receiver_recovered=45, receiver_unrecovered=3, blocks=Counter({(20, 10): 20, (32, 16): 6}),
+        seconds=20.0,
+        seed=1,
+        k=32,
+        m=16,
+        flush_ms=1000,
+        channel=GilbertElliott.from_loss_burst(0.08, 3),
+        sent=600,
+        app_bytes=320_000,
+        delivered=597,
+        corrupted=0,
+        duplicates=0,
+        link_source_lost=48,
+        source_packets=600,
+        repair_packets=300,
+        source_wire_bytes=326_600,
+        repair_wire_bytes=250_000,
+        link_packets=900,
+        link_lost=70,
+        rebuilt_delays=[0.1, 0.5, 0.9],
+        intact_delays=[0.0006] * 10,
+        images_sent=4,
+        images_complete=4,
+        images_complete_without_fec=1,
+        acks_sent=80,
+        acks_received=79,
+        receiver_lost=48,
+        receiver_recovered=45,
+        receiver_unrecovered=3,
+        blocks=Counter({(20, 10): 20, (32, 16): 6}),
     )
     fields.update(changes)
     return render.DemoResult(**fields)
@@ -176,8 +207,18 @@ def test_summary_puts_without_and_with_fec_side_by_side():
 
 def test_live_view_redraws_in_place_on_a_terminal_and_prints_plain_lines_otherwise():
     snapshot = render.LiveSnapshot(
-        elapsed=1.0, rate=31, link_packets=100, link_lost=8, source_sent=70, source_lost=6, recovered=6,
-        unrecovered=0, pending=3, delay_p50=0.0006, rebuilt_p50=0.4, acks=2,
+        elapsed=1.0,
+        rate=31,
+        link_packets=100,
+        link_lost=8,
+        source_sent=70,
+        source_lost=6,
+        recovered=6,
+        unrecovered=0,
+        pending=3,
+        delay_p50=0.0006,
+        rebuilt_p50=0.4,
+        acks=2,
     )
 
     class Terminal(io.StringIO):
@@ -224,14 +265,27 @@ def test_readme_states_the_live_view_intervals_the_code_uses():
 
 def test_no_loss_and_burst_one_are_described_in_words_that_fit():
     clean = render.format_summary(
-        _result(channel=GilbertElliott.no_loss(), link_source_lost=0, delivered=600, link_lost=0, rebuilt_delays=[],
-                receiver_lost=0, receiver_recovered=0, receiver_unrecovered=0)
+        _result(
+            channel=GilbertElliott.no_loss(),
+            link_source_lost=0,
+            delivered=600,
+            link_lost=0,
+            rebuilt_delays=[],
+            receiver_lost=0,
+            receiver_recovered=0,
+            receiver_unrecovered=0,
+        )
     )
     assert "burst" not in clean and "lossy" not in clean and "scatter" not in clean
     assert "loses no packets" in clean and "0 of 600 (0 %)" in clean
     header = render.format_header(
-        render.DemoOptions(loss=0.0), GilbertElliott.no_loss(), sender=("127.0.0.1", 1), relay=("127.0.0.1", 2),
-        receiver=("127.0.0.1", 3), sink=("127.0.0.1", 4), metrics_text="off",
+        render.DemoOptions(loss=0.0),
+        GilbertElliott.no_loss(),
+        sender=("127.0.0.1", 1),
+        relay=("127.0.0.1", 2),
+        receiver=("127.0.0.1", 3),
+        sink=("127.0.0.1", 4),
+        metrics_text="off",
     )
     assert "lossy" not in header and "burst" not in header and "loses no packets" in header
 
@@ -281,7 +335,9 @@ def test_link_tap_counts_packets_blocks_and_which_datagrams_the_link_lost():
     assert sum(k * n for (k, _), n in blocks.items()) == 100
     assert all(m == settings.repair_for(k) for k, m in blocks)
     arrived = {
-        traffic.peek_id(data[wire.SOURCE_HEADER_BYTES :]) for data in delivered if data[0] & 0x0F == wire.PacketType.SOURCE
+        traffic.peek_id(data[wire.SOURCE_HEADER_BYTES :])
+        for data in delivered
+        if data[0] & 0x0F == wire.PacketType.SOURCE
     }
     assert tap.lost_ids == {(traffic.STREAM_TELEMETRY, seq) for seq in range(100)} - arrived
     assert tap.source_lost == len(tap.lost_ids)

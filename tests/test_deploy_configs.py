@@ -48,15 +48,19 @@ def plan_command(path: Path) -> list[str]:
     return shlex.split(found.group(1))
 
 
-@pytest.mark.parametrize("path", [p for p in CONFIGS if yaml.safe_load(p.read_text())["role"] == "sender"],
-                         ids=lambda path: path.name)
+@pytest.mark.parametrize(
+    "path", [p for p in CONFIGS if yaml.safe_load(p.read_text())["role"] == "sender"], ids=lambda path: path.name
+)
 def test_sender_code_meets_its_stated_traffic_and_link(capsys, path):
     argv = plan_command(path)
     options = dict(zip(argv[::2], argv[1::2]))
     fec = yaml.safe_load(path.read_text())["fec"]
     # The quoted command describes this file's code ...
     assert (int(options["--k"]), int(options["--m"]), float(options["--flush-ms"])) == (
-        fec["block_size"], fec["repair"], fec["flush_ms"])
+        fec["block_size"],
+        fec["repair"],
+        fec["flush_ms"],
+    )
     assert float(options["--rate"]) == STATION_RATE
     # ... and the planner rates it as meeting the target within the overhead budget.
     assert cli.main(["plan", *argv, "--json"]) == 0
@@ -67,12 +71,18 @@ def test_sender_code_meets_its_stated_traffic_and_link(capsys, path):
 
 def test_traffic_figures_agree_with_the_demo_and_readme():
     # The demo's weather station: telemetry plus camera stills cut into chunks.
-    demo_rate = traffic.DEFAULT_TELEMETRY_RATE + traffic.CAMERA_IMAGE_BYTES / traffic.CAMERA_CHUNK_BYTES / traffic.CAMERA_INTERVAL_S
+    demo_rate = (
+        traffic.DEFAULT_TELEMETRY_RATE
+        + traffic.CAMERA_IMAGE_BYTES / traffic.CAMERA_CHUNK_BYTES / traffic.CAMERA_INTERVAL_S
+    )
     assert demo_rate == STATION_RATE
     assert f"{traffic.DEFAULT_TELEMETRY_RATE:g} readings a second" in README
     assert f"{STATION_RATE} datagrams a second" in README
     sender = (ROOT / "config" / "sender.yaml").read_text()
-    assert f"{traffic.DEFAULT_TELEMETRY_RATE:g} readings a second" in sender and f"{STATION_RATE} datagrams a second" in sender
+    assert (
+        f"{traffic.DEFAULT_TELEMETRY_RATE:g} readings a second" in sender
+        and f"{STATION_RATE} datagrams a second" in sender
+    )
 
 
 def test_metrics_port_agrees_everywhere():

@@ -48,15 +48,28 @@ class _Daemon:
 
     def __init__(self, encoder):
         self.encoder_stats = encoder.stats
-        self.decoder_stats = type("S", (), {
-            "source_received": 0, "repair_received": 0, "lost": 0, "recovered": 0, "unrecovered": 0,
-            "delivered": 0, "repair_unneeded": 0, "blocks": {}})()
+        self.decoder_stats = type(
+            "S",
+            (),
+            {
+                "source_received": 0,
+                "repair_received": 0,
+                "lost": 0,
+                "recovered": 0,
+                "unrecovered": 0,
+                "delivered": 0,
+                "repair_unneeded": 0,
+                "blocks": {},
+            },
+        )()
         self.role = "sender"
         self.block_shape = (encoder.settings.block_size, encoder.settings.repair)
         self.interleave = encoder.settings.interleave
         self.size_class_names = encoder.settings.class_names
         self.reloads = {"applied": 0, "rejected": 0}
-        self.feedback = Feedback(BlockEncoder(EncoderSettings(), 1), BlockDecoder(), logging.getLogger("test"))  # no reports yet
+        self.feedback = Feedback(
+            BlockEncoder(EncoderSettings(), 1), BlockDecoder(), logging.getLogger("test")
+        )  # no reports yet
 
     def drop_counts(self):
         return {}

@@ -31,10 +31,9 @@ from pathlib import Path
 
 import pytest
 import yaml
-
+from support.daemon_pair import LOOPBACK, SOURCE, Pair, drain, parse_link_header, send_paced, wait_until
 from support.lossy_relay import iid_loss
 from support.processes import end_process
-from support.daemon_pair import LOOPBACK, SOURCE, Pair, drain, parse_link_header, send_paced, wait_until
 
 ROOT = Path(__file__).resolve().parent.parent
 PROMETHEUS_DIR = ROOT / "deploy" / "prometheus"
@@ -68,8 +67,13 @@ def test_promtool_accepts_config_and_rules():
     promtool = require("promtool")
     checks = [
         [promtool, "check", "config", str(PROMETHEUS_DIR / "prometheus.yml")],
-        [promtool, "check", "rules", *map(str, sorted(PROMETHEUS_DIR.glob("*.rules.yml"))),
-         *map(str, sorted(PROMETHEUS_DIR.glob("*.alerts.yml")))],
+        [
+            promtool,
+            "check",
+            "rules",
+            *map(str, sorted(PROMETHEUS_DIR.glob("*.rules.yml"))),
+            *map(str, sorted(PROMETHEUS_DIR.glob("*.alerts.yml"))),
+        ],
     ]
     for command in checks:
         result = subprocess.run(command, capture_output=True, text=True, timeout=60)
@@ -110,9 +114,19 @@ def test_grafana_dashboard_and_provisioning_are_well_formed():
         assert panel["datasource"]["uid"] in uids and panel["targets"]
         assert all(target["datasource"]["uid"] in uids and target["expr"] for target in panel["targets"])
     exprs = " ".join(t["expr"] for panel in dashboard["panels"] for t in panel["targets"])
-    for needed in ("source_packets_lost_per_expected", "datagrams_unrecovered_per_expected", "datagrams_recovered",
-                   "repair_packets_sent_per", "repair_bytes_sent_per", "histogram_quantile", "packets_dropped",
-                   "fecproxy_flows", "fecproxy_link_loss_ratio", "fecproxy_link_mean_burst_packets", "fecproxy_info"):
+    for needed in (
+        "source_packets_lost_per_expected",
+        "datagrams_unrecovered_per_expected",
+        "datagrams_recovered",
+        "repair_packets_sent_per",
+        "repair_bytes_sent_per",
+        "histogram_quantile",
+        "packets_dropped",
+        "fecproxy_flows",
+        "fecproxy_link_loss_ratio",
+        "fecproxy_link_mean_burst_packets",
+        "fecproxy_info",
+    ):
         assert needed in exprs, needed
 
 
@@ -140,9 +154,15 @@ class Prometheus:
         self.port = free_port()
         self.log = open(tmp_path / "prometheus.log", "w")
         self.proc = subprocess.Popen(
-            [binary, f"--config.file={config}", f"--storage.tsdb.path={tmp_path / 'tsdb'}",
-             f"--web.listen-address={LOOPBACK}:{self.port}"],
-            stdin=subprocess.DEVNULL, stdout=self.log, stderr=subprocess.STDOUT,
+            [
+                binary,
+                f"--config.file={config}",
+                f"--storage.tsdb.path={tmp_path / 'tsdb'}",
+                f"--web.listen-address={LOOPBACK}:{self.port}",
+            ],
+            stdin=subprocess.DEVNULL,
+            stdout=self.log,
+            stderr=subprocess.STDOUT,
         )
         self.log_path = tmp_path / "prometheus.log"
 
@@ -176,16 +196,22 @@ def by_side(result: list[dict]) -> dict[str, float]:
 @pytest.mark.slow
 def test_dashboard_rules_and_alerts_return_data_from_a_real_pair(tmp_path):
     binary = require("prometheus")
-    pair = Pair(tmp_path, forward=iid_loss(LINK_LOSS, SEED), record=True, echo=True,
-                sender_fec={"block_size": 8, "repair": 2, "flush_ms": 20},
-                receiver_fec={"block_size": 8, "repair": 2, "flush_ms": 20})
+    pair = Pair(
+        tmp_path,
+        forward=iid_loss(LINK_LOSS, SEED),
+        record=True,
+        echo=True,
+        sender_fec={"block_size": 8, "repair": 2, "flush_ms": 20},
+        receiver_fec={"block_size": 8, "repair": 2, "flush_ms": 20},
+    )
     prometheus = None
     try:
         ports = {"sender": int(pair.sender.started["metrics"]), "receiver": int(pair.receiver.started["metrics"])}
         prometheus = Prometheus(binary, scrape_config_for(ports, tmp_path), tmp_path)
         # Traffic starts only once both daemons were scraped (every counter still 0): see above.
-        ready = wait_until(lambda: len(prometheus.try_query('up{job="fecproxy"} == 1')) == 2,
-                           PROMETHEUS_READY_TIMEOUT, interval=0.2)
+        ready = wait_until(
+            lambda: len(prometheus.try_query('up{job="fecproxy"} == 1')) == 2, PROMETHEUS_READY_TIMEOUT, interval=0.2
+        )
         assert ready, "Prometheus did not scrape both daemons:\n" + prometheus.log_path.read_text()[-3000:]
         client = pair.client(1)
         send_paced(client.send, DATAGRAMS, RATE)
@@ -194,15 +220,24 @@ def test_dashboard_rules_and_alerts_return_data_from_a_real_pair(tmp_path):
         final = {side: daemon.metrics() for side, daemon in (("sender", pair.sender), ("receiver", pair.receiver))}
         # Two more scrapes and rule evaluations after the counters stopped moving.
         scraped = time.time()
-        wait_until(lambda: all(float(s["value"][0]) > scraped + 2.5 for s in
-                               prometheus.try_query("instance:fecproxy_source_packets_lost_per_expected:ratio_rate5m")),
-                   10.0, interval=0.2)
+        wait_until(
+            lambda: all(
+                float(s["value"][0]) > scraped + 2.5
+                for s in prometheus.try_query("instance:fecproxy_source_packets_lost_per_expected:ratio_rate5m")
+            ),
+            10.0,
+            interval=0.2,
+        )
 
         # Every rule is loaded and evaluates without error.
         groups = prometheus.api("rules")["groups"]
         rules = [rule for group in groups for rule in group["rules"]]
-        shipped = sum(len(group["rules"]) for path in PROMETHEUS_DIR.glob("*.yml") if path.name != "prometheus.yml"
-                      for group in yaml.safe_load(path.read_text())["groups"])
+        shipped = sum(
+            len(group["rules"])
+            for path in PROMETHEUS_DIR.glob("*.yml")
+            if path.name != "prometheus.yml"
+            for group in yaml.safe_load(path.read_text())["groups"]
+        )
         assert len(rules) == shipped
         for rule in rules:
             assert rule["health"] == "ok", (rule["name"], rule.get("lastError"))
@@ -213,8 +248,11 @@ def test_dashboard_rules_and_alerts_return_data_from_a_real_pair(tmp_path):
                 assert prometheus.query(rule["name"]), f"recording rule {rule['name']} has no data"
 
         # Every alert expression has data once its comparisons return 0/1 instead of filtering.
-        auth_counted = any(labels == (("reason", "auth"),) for name, labels in final["receiver"]
-                           if name == "fecproxy_packets_dropped_total")
+        auth_counted = any(
+            labels == (("reason", "auth"),)
+            for name, labels in final["receiver"]
+            if name == "fecproxy_packets_dropped_total"
+        )
         for rule in rules:
             if rule["type"] != "alerting":
                 continue
@@ -234,8 +272,9 @@ def test_dashboard_rules_and_alerts_return_data_from_a_real_pair(tmp_path):
                 assert prometheus.query(target["expr"]), f"panel {panel['title']!r}: {target['expr']} has no data"
 
         # The loss panel agrees with the relay: source packets it dropped / source packets sent.
-        dropped_sources = sum(1 for _, dropped, data in pair.relay.forward.packets
-                              if dropped and parse_link_header(data)[0] == SOURCE)
+        dropped_sources = sum(
+            1 for _, dropped, data in pair.relay.forward.packets if dropped and parse_link_header(data)[0] == SOURCE
+        )
         all_sources = sum(1 for _, _, data in pair.relay.forward.packets if parse_link_header(data)[0] == SOURCE)
         link = by_side(prometheus.query("instance:fecproxy_source_packets_lost_per_expected:ratio_rate5m"))
         residual = by_side(prometheus.query("instance:fecproxy_datagrams_unrecovered_per_expected:ratio_rate5m"))
@@ -243,8 +282,10 @@ def test_dashboard_rules_and_alerts_return_data_from_a_real_pair(tmp_path):
         lost = receiver[("fecproxy_source_packets_lost_total", ())]
         arrived = receiver[("fecproxy_link_packets_received_total", (("kind", "source"),))]
         unrecovered = receiver[("fecproxy_datagrams_unrecovered_total", ())]
-        print(f"relay dropped {dropped_sources}/{all_sources} source packets; panel link loss {link['receiver']:.5f}, "
-              f"residual {residual['receiver']:.5f}")
+        print(
+            f"relay dropped {dropped_sources}/{all_sources} source packets; panel link loss {link['receiver']:.5f}, "
+            f"residual {residual['receiver']:.5f}"
+        )
         assert lost <= dropped_sources and dropped_sources - lost <= 2 * 8  # at most a trailing block unseen
         assert link["receiver"] == pytest.approx(dropped_sources / all_sources, abs=0.005)
         assert link["receiver"] == pytest.approx(lost / (lost + arrived), rel=1e-6)

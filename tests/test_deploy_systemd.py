@@ -27,7 +27,9 @@ def unit_values(key: str) -> list[str]:
 
 
 def test_unit_runs_the_documented_entry_point_with_a_file_limit():
-    assert all(line.startswith(INSTALLED_ENTRY_POINT + " ") for line in unit_values("ExecStart") + unit_values("ExecStartPre"))
+    assert all(
+        line.startswith(INSTALLED_ENTRY_POINT + " ") for line in unit_values("ExecStart") + unit_values("ExecStartPre")
+    )
     assert INSTALLED_ENTRY_POINT.rpartition("/bin/")[0] in (ROOT / "README.md").read_text()
     # A receiver holds one socket per flow: the default flows.max plus the daemon's own reserve.
     from fecproxy.config.schema import DEFAULT_MAX_FLOWS
@@ -55,8 +57,9 @@ def installed_unit(tmp_path):
 
 
 def test_systemd_analyze_verify(installed_unit):
-    result = subprocess.run(["systemd-analyze", "verify", str(installed_unit)],
-                            capture_output=True, text=True, timeout=60)
+    result = subprocess.run(
+        ["systemd-analyze", "verify", str(installed_unit)], capture_output=True, text=True, timeout=60
+    )
     # verify exits 0 even for ignored lines; those are printed naming our file.
     complaints = [line for line in (result.stdout + result.stderr).splitlines() if str(installed_unit.parent) in line]
     assert result.returncode == 0 and complaints == [], result.stdout + result.stderr
@@ -65,7 +68,9 @@ def test_systemd_analyze_verify(installed_unit):
 def test_systemd_analyze_security(installed_unit):
     result = subprocess.run(
         ["systemd-analyze", "security", "--offline=true", f"--threshold={MAX_EXPOSURE_X10}", str(installed_unit)],
-        capture_output=True, text=True, timeout=60,
+        capture_output=True,
+        text=True,
+        timeout=60,
     )
     if "--offline" in result.stderr and "unrecognized" in result.stderr:
         pytest.skip("this systemd-analyze cannot assess a unit file offline (systemd < 250)")

@@ -12,14 +12,15 @@ import struct
 import galois
 import numpy as np
 import pytest
-from hypothesis import given, settings, strategies as st
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
-from fecproxy.protocol import encoder as encoder_module
 from fecproxy.coding import codec as codec_module
+from fecproxy.protocol import encoder as encoder_module
 from fecproxy.protocol import wire
 from fecproxy.protocol.decoder import BlockDecoder
-from fecproxy.protocol.events import Delivery
 from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
+from fecproxy.protocol.events import Delivery
 
 SESSION = 0x5EA7_0001
 
@@ -100,7 +101,9 @@ def test_repair_of_a_batched_block_matches_galois():
     vandermonde = field([[alpha ** (i * j) for j in range(n)] for i in range(k)])
     generator = np.linalg.inv(vandermonde[:, :k]) @ vandermonde
     rng = random.Random(11)
-    enc = BlockEncoder(EncoderSettings(block_size=k, repair=m, max_datagram=40, allow_repair_above_source=True), SESSION)
+    enc = BlockEncoder(
+        EncoderSettings(block_size=k, repair=m, max_datagram=40, allow_repair_above_source=True), SESSION
+    )
     batch = [(rng.randbytes(rng.randint(0, 40)), rng.randint(0, 2**24 - 1)) for _ in range(3 * k)]
     packets = enc.send_batch(batch, 0.0)
     assert len(packets) == 3 * (k + m)
@@ -109,8 +112,15 @@ def test_repair_of_a_batched_block_matches_galois():
         length = 5 + max(len(data) for data, _ in items)
         # RFC 6363 §4: flow id ‖ length (2 bytes, big-endian) ‖ data ‖ zero padding; our flow id
         # is 3 bytes (slot ‖ generation, wire version 2).
-        symbols = field(np.array([list(flow.to_bytes(3, "big") + len(data).to_bytes(2, "big") + data + bytes(length - 5 - len(data)))
-                                  for data, flow in items], dtype=np.uint8))
+        symbols = field(
+            np.array(
+                [
+                    list(flow.to_bytes(3, "big") + len(data).to_bytes(2, "big") + data + bytes(length - 5 - len(data)))
+                    for data, flow in items
+                ],
+                dtype=np.uint8,
+            )
+        )
         expected = generator[:, k:].T @ symbols
         repairs = packets[block * (k + m) + k : (block + 1) * (k + m)]
         for j, data in enumerate(repairs):

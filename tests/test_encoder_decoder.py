@@ -4,7 +4,8 @@ import itertools
 import random
 
 import pytest
-from hypothesis import given, settings, strategies as st
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from fecproxy.protocol import wire
 from fecproxy.protocol.decoder import BlockDecoder, DecoderSettings
@@ -15,7 +16,11 @@ from fecproxy.protocol.events import BlockReport, Delivery, Dropped, SessionStar
 def make_block(k, m, sizes=None, *, session=1, seed=0, first_sbn=0):
     """Encode one full block of k datagrams; return (datagrams with flows, link packets)."""
     rng = random.Random(seed)
-    enc = BlockEncoder(EncoderSettings(block_size=k, repair=m, flush_interval=0.05, allow_repair_above_source=True), session, first_sbn=first_sbn)
+    enc = BlockEncoder(
+        EncoderSettings(block_size=k, repair=m, flush_interval=0.05, allow_repair_above_source=True),
+        session,
+        first_sbn=first_sbn,
+    )
     datagrams = []
     packets = []
     for i in range(k):

@@ -6,8 +6,8 @@ from fecproxy.protocol.events import (
     BlockOutcome,
     BlockReport,
     Delivery,
-    DropReason,
     Dropped,
+    DropReason,
     Event,
     SessionStarted,
     direct_delivery,
@@ -18,16 +18,37 @@ def test_label_strings_stay_exactly_as_exported():
     # The Prometheus label values of fecproxy_packets_dropped{reason} and
     # fecproxy_blocks_received{outcome}: alert rules and dashboards depend on them.
     assert [reason.value for reason in DropReason] == [
-        "malformed", "unsupported", "oversize", "stale", "late", "duplicate", "inconsistent",
-        "flow_limit", "unknown_flow", "no_peer", "unreachable", "no_socket", "internal_error",
-        "auth", "replay", "session_limit", "memory_limit", "decode_limit",
+        "malformed",
+        "unsupported",
+        "oversize",
+        "stale",
+        "late",
+        "duplicate",
+        "inconsistent",
+        "flow_limit",
+        "unknown_flow",
+        "no_peer",
+        "unreachable",
+        "no_socket",
+        "internal_error",
+        "auth",
+        "replay",
+        "session_limit",
+        "memory_limit",
+        "decode_limit",
     ]
     assert [outcome.value for outcome in BlockOutcome] == ["complete", "recovered", "expired", "evicted", "superseded"]
     assert DropReason.LATE == "late" and f"{DropReason.LATE}" == "late"
 
 
 def test_packet_errors_name_their_reason_from_the_enum():
-    for error in (wire.PacketError, wire.TruncatedPacket, wire.InvalidField, wire.UnsupportedPacket, wire.OversizePacket):
+    for error in (
+        wire.PacketError,
+        wire.TruncatedPacket,
+        wire.InvalidField,
+        wire.UnsupportedPacket,
+        wire.OversizePacket,
+    ):
         assert isinstance(error.reason, DropReason)
 
 

@@ -16,11 +16,11 @@ from hypothesis.stateful import RuleBasedStateMachine, initialize, invariant, pr
 from fecproxy.protocol.flows import (
     FLOW_SLOTS,
     GENERATIONS,
+    REPLACE_AFTER_PROTECT_FRACTION,
     ClientFlowTable,
     CloseReason,
     FlowClosed,
     Opened,
-    REPLACE_AFTER_PROTECT_FRACTION,
     PeerFlowTable,
     Verdict,
     flow_id,
@@ -369,7 +369,11 @@ class _TiersModel:
         return min((self.deadline(f) for f in self.flows.values()), default=None)
 
     def due_in_order(self):
-        due = [(self.deadline(f), _TIER_RANK[f.tier], f.seq, k) for k, f in self.flows.items() if self.deadline(f) <= self.now]
+        due = [
+            (self.deadline(f), _TIER_RANK[f.tier], f.seq, k)
+            for k, f in self.flows.items()
+            if self.deadline(f) <= self.now
+        ]
         return [k for *_, k in sorted(due)]
 
     def victim(self):
@@ -407,7 +411,9 @@ class ClientTableMachine(RuleBasedStateMachine, _TiersModel):
     def start(self, max_flows, spare_slots, short, long, protect):
         self.setup_model(max_flows, short, long, protect)
         slots = max_flows + spare_slots
-        self.table = ClientFlowTable(max_flows, first_exchange_timeout=short, idle_timeout=long, protect=protect, slots=slots)
+        self.table = ClientFlowTable(
+            max_flows, first_exchange_timeout=short, idle_timeout=long, protect=protect, slots=slots
+        )
         self.free = list(range(slots))
         self.next_generation = [0] * slots
         self.handed_out = []  # every flow id ever given, to send late replies with

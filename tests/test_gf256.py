@@ -7,9 +7,9 @@ also checked against a plain MUL-table product written here.
 
 from __future__ import annotations
 
-import numpy as np
 import importlib
 
+import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
@@ -161,8 +161,17 @@ def test_multiplier_rejects_bad_shapes():
 
 
 @settings(max_examples=60, deadline=None)
-@given(st.integers(1, 5), st.integers(0, 6), st.integers(0, 9), st.integers(0, 40), st.sampled_from([None, 2, 4]), st.integers(0, 2**32 - 1))
-def test_block_diagonal_multiplier_equals_one_reference_product_per_block(blocks, rows, inner, length, digit_bits, seed):
+@given(
+    st.integers(1, 5),
+    st.integers(0, 6),
+    st.integers(0, 9),
+    st.integers(0, 40),
+    st.sampled_from([None, 2, 4]),
+    st.integers(0, 2**32 - 1),
+)
+def test_block_diagonal_multiplier_equals_one_reference_product_per_block(
+    blocks, rows, inner, length, digit_bits, seed
+):
     # Each block's rows come from its own data rows only: the same as B separate products.
     rng = np.random.default_rng(seed)
     coefficients = rng.integers(0, 256, size=(blocks, rows, inner), dtype=np.uint8)

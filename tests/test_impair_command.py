@@ -14,13 +14,13 @@ import urllib.request
 
 import pytest
 import trio
+from support.processes import read_line_starting
 
 from fecproxy import cli
-from fecproxy.linkmodel.loss_models import GilbertElliott
 from fecproxy.commands.impair import config_from_args, parse_address
-from fecproxy.shell.relay import RelayConfig, run_relay
 from fecproxy.linkmodel.impairment import Blackout, ImpairmentConfigError, LinkImpairment
-from support.processes import read_line_starting
+from fecproxy.linkmodel.loss_models import GilbertElliott
+from fecproxy.shell.relay import RelayConfig, run_relay
 
 LOOPBACK = "127.0.0.1"
 TIMEOUT = 10.0  # seconds: generous upper bound for a shared 2-core machine
@@ -34,15 +34,43 @@ def parse(*argv):
 
 
 def test_return_direction_inherits_then_overrides():
-    config = config_from_args(parse("--loss", "0.1", "--burst", "3", "--delay-ms", "40", "--rate-kbps", "64", "--reorder"))
+    config = config_from_args(
+        parse("--loss", "0.1", "--burst", "3", "--delay-ms", "40", "--rate-kbps", "64", "--reorder")
+    )
     assert config.back == config.forward
     assert config.forward.loss == GilbertElliott.from_loss_burst(0.1, 3)
     assert config.forward.delay == pytest.approx(0.04) and config.forward.rate_bps == 64_000
     config = config_from_args(
-        parse("--loss", "0.1", "--burst", "3", "--delay-ms", "40", "--reorder", "--return-loss", "0", "--return-delay-ms", "5", "--no-return-reorder")
+        parse(
+            "--loss",
+            "0.1",
+            "--burst",
+            "3",
+            "--delay-ms",
+            "40",
+            "--reorder",
+            "--return-loss",
+            "0",
+            "--return-delay-ms",
+            "5",
+            "--no-return-reorder",
+        )
     )
     assert config.back.loss.average_loss == 0 and config.back.delay == pytest.approx(0.005) and not config.back.reorder
-    config = config_from_args(parse("--ge-p", "0.01", "--ge-r", "0.2", "--ge-loss-bad", "0.8", "--blackout", "3s/60s", "--return-blackout", "none"))
+    config = config_from_args(
+        parse(
+            "--ge-p",
+            "0.01",
+            "--ge-r",
+            "0.2",
+            "--ge-loss-bad",
+            "0.8",
+            "--blackout",
+            "3s/60s",
+            "--return-blackout",
+            "none",
+        )
+    )
     assert config.forward.loss == GilbertElliott(0.01, 0.2, 0.0, 0.8)
     assert config.forward.blackout == Blackout(3.0, 60.0) and config.back.blackout is None
 
@@ -75,17 +103,26 @@ def test_bind_failure_exits_2(capsys):
     taken = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
     taken.bind((LOOPBACK, 0))
     try:
-        code = cli.main(["impair", "--listen", f"{LOOPBACK}:{taken.getsockname()[1]}", "--to", "127.0.0.1:9", "--seconds", "1"])
+        code = cli.main(
+            ["impair", "--listen", f"{LOOPBACK}:{taken.getsockname()[1]}", "--to", "127.0.0.1:9", "--seconds", "1"]
+        )
     finally:
         taken.close()
     assert code == 2 and "cannot bind" in capsys.readouterr().err
 
 
 def test_timed_run_prints_summary(capsys):
-    assert cli.main(["impair", "--listen", "127.0.0.1:0", "--to", "127.0.0.1:9", "--seconds", "0.2", "--loss", "0.05"]) == 0
+    assert (
+        cli.main(["impair", "--listen", "127.0.0.1:0", "--to", "127.0.0.1:9", "--seconds", "0.2", "--loss", "0.05"])
+        == 0
+    )
     out = capsys.readouterr().out
     assert "listening on 127.0.0.1:" in out
-    assert "forward: submitted 0" in out and "return: submitted 0" in out and "no traffic went on the air, nothing measured" in out
+    assert (
+        "forward: submitted 0" in out
+        and "return: submitted 0" in out
+        and "no traffic went on the air, nothing measured" in out
+    )
 
 
 def test_help_states_the_convention(capsys):
@@ -107,8 +144,22 @@ def test_command_relays_serves_metrics_and_summarises_on_sigterm():
     client.bind((LOOPBACK, 0))
     client.settimeout(TIMEOUT)
     proc = subprocess.Popen(
-        [sys.executable, "-m", "fecproxy", "impair", "--listen", f"{LOOPBACK}:0", "--to", f"{LOOPBACK}:{server.getsockname()[1]}",
-         "--metrics", f"{LOOPBACK}:0", "--seconds", "60", "--delay-ms", "2"],
+        [
+            sys.executable,
+            "-m",
+            "fecproxy",
+            "impair",
+            "--listen",
+            f"{LOOPBACK}:0",
+            "--to",
+            f"{LOOPBACK}:{server.getsockname()[1]}",
+            "--metrics",
+            f"{LOOPBACK}:0",
+            "--seconds",
+            "60",
+            "--delay-ms",
+            "2",
+        ],
         stdout=subprocess.PIPE,
         stderr=subprocess.PIPE,
         text=True,
@@ -152,7 +203,19 @@ def test_no_traffic_prints_no_nan_and_progress_lines(capsys):
 
 
 def test_jitter_above_delay_is_explained(capsys):
-    argv = ["impair", "--listen", "127.0.0.1:0", "--to", "127.0.0.1:9", "--seconds", "0.1", "--delay-ms", "5", "--jitter-ms", "20"]
+    argv = [
+        "impair",
+        "--listen",
+        "127.0.0.1:0",
+        "--to",
+        "127.0.0.1:9",
+        "--seconds",
+        "0.1",
+        "--delay-ms",
+        "5",
+        "--jitter-ms",
+        "20",
+    ]
     assert cli.main(argv) == 0
     assert "jitter above the delay is cut at 0 ms" in capsys.readouterr().out
 

@@ -8,7 +8,6 @@ import numpy as np
 import pytest
 
 from fecproxy.linkmodel import impairment
-from fecproxy.linkmodel.loss_models import GilbertElliott
 from fecproxy.linkmodel.impairment import (
     IPV4_UDP_HEADER_BYTES,
     IPV6_UDP_HEADER_BYTES,
@@ -18,6 +17,7 @@ from fecproxy.linkmodel.impairment import (
     LinkImpairment,
     parse_duration,
 )
+from fecproxy.linkmodel.loss_models import GilbertElliott
 
 SIGMAS = 4.0
 

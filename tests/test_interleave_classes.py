@@ -5,7 +5,8 @@ station's 18–24-byte telemetry records mixed with 1150–1200-byte camera-stil
 import random
 
 import pytest
-from hypothesis import given, settings, strategies as st
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from fecproxy.protocol import wire
 from fecproxy.protocol.decoder import BlockDecoder
@@ -141,9 +142,15 @@ def test_mixed_traffic_byte_overhead_per_class_is_close_to_m_over_k():
     for name, (low, high) in {"le256": (18, 24), "gt256": (1150, 1200)}.items():
         stats = enc.stats.classes[name]
         ratio = stats.repair_bytes / stats.source_bytes
-        assert m / k * (head_r + prefix + low) / (head_s + high) <= ratio <= m / k * (head_r + prefix + high) / (head_s + low)
+        assert (
+            m / k * (head_r + prefix + low) / (head_s + high)
+            <= ratio
+            <= m / k * (head_r + prefix + high) / (head_s + low)
+        )
     # One class for all: the telemetry blocks would pay for image-sized repair symbols.
-    single = BlockEncoder(EncoderSettings(block_size=k, repair=m, size_classes=(), allow_repair_above_source=True), SESSION)
+    single = BlockEncoder(
+        EncoderSettings(block_size=k, repair=m, size_classes=(), allow_repair_above_source=True), SESSION
+    )
     send_all(single, items)
     assert single.stats.repair_bytes / single.stats.source_bytes > 1.5 * enc.stats.repair_bytes / enc.stats.source_bytes
 
@@ -159,7 +166,9 @@ def test_repair_bytes_never_exceed_source_bytes_unless_allowed():
     assert len(repairs) == content // (1400 + wire.SYMBOL_PREFIX_BYTES) == 1
     assert capped.stats.repair_capped == 1
     assert capped.stats.repair_bytes <= capped.stats.source_bytes
-    allowed = BlockEncoder(EncoderSettings(block_size=16, repair=4, size_classes=(), allow_repair_above_source=True), SESSION)
+    allowed = BlockEncoder(
+        EncoderSettings(block_size=16, repair=4, size_classes=(), allow_repair_above_source=True), SESSION
+    )
     assert sum(not is_source(p) for p in send_all(allowed, items)) == 4
     assert allowed.stats.repair_capped == 0
     # The capped block still recovers what its one repair packet can.
@@ -176,7 +185,9 @@ def test_repair_bytes_never_exceed_source_bytes_unless_allowed():
     bounds=st.sampled_from([(), (64,), (32, 256)]),
 )
 def test_no_block_sends_more_repair_symbol_bytes_than_source_content(sizes, k, m, depth, bounds):
-    enc = BlockEncoder(EncoderSettings(block_size=k, repair=m, interleave=depth, size_classes=bounds, max_datagram=600), SESSION)
+    enc = BlockEncoder(
+        EncoderSettings(block_size=k, repair=m, interleave=depth, size_classes=bounds, max_datagram=600), SESSION
+    )
     packets = send_all(enc, [(bytes(size), 1) for size in sizes])
     blocks: dict[int, list] = {}
     for p in packets:
@@ -198,8 +209,13 @@ def test_byte_cap_and_class_names():
 
 
 def test_settings_refuse_bad_depths_and_boundaries():
-    for bad in (dict(interleave=0), dict(interleave=17), dict(size_classes=(256, 256)), dict(size_classes=(0,)),
-                dict(size_classes=(1, 2, 3, 4, 5))):
+    for bad in (
+        dict(interleave=0),
+        dict(interleave=17),
+        dict(size_classes=(256, 256)),
+        dict(size_classes=(0,)),
+        dict(size_classes=(1, 2, 3, 4, 5)),
+    ):
         with pytest.raises(ValueError):
             EncoderSettings(**bad)
 

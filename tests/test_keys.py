@@ -54,7 +54,13 @@ def test_owner_only_modes_pass(mode):
 
 @pytest.mark.parametrize(
     "mode, who",
-    [(0o640, "its group"), (0o604, "other users"), (0o644, "its group and other users"), (0o620, "its group"), (0o602, "other users")],
+    [
+        (0o640, "its group"),
+        (0o604, "other users"),
+        (0o644, "its group and other users"),
+        (0o620, "its group"),
+        (0o602, "other users"),
+    ],
 )
 def test_modes_open_to_others_are_refused_with_chmod(mode, who):
     with pytest.raises(keys.KeyFileError) as caught:

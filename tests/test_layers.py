@@ -195,10 +195,12 @@ def test_checker_fails_on_a_cycle(layered):
 
 
 def test_checker_sees_type_checking_imports_and_sibling_commands(layered):
-    graph = layered({
-        "commands/demo.py": "from typing import TYPE_CHECKING\nif TYPE_CHECKING:\n    from pkg.commands.impair import R\n",
-        "commands/impair.py": "R = 1\n",
-    })
+    graph = layered(
+        {
+            "commands/demo.py": "from typing import TYPE_CHECKING\nif TYPE_CHECKING:\n    from pkg.commands.impair import R\n",
+            "commands/impair.py": "R = 1\n",
+        }
+    )
     assert violations(graph) == ["pkg.commands.demo imports another command's module pkg.commands.impair"]
 
 

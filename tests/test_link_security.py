@@ -13,8 +13,6 @@ import socket
 import time
 
 import pytest
-
-from fecproxy.protocol import auth, keys, wire
 from support.daemon_pair import (
     DRAIN_TIMEOUT,
     LOOPBACK,
@@ -25,6 +23,8 @@ from support.daemon_pair import (
     send_paced,
     wait_until,
 )
+
+from fecproxy.protocol import auth, keys, wire
 
 pytestmark = pytest.mark.slow
 
@@ -85,6 +85,7 @@ def test_a_keyed_pair_refuses_forged_flipped_truncated_replayed_and_wrong_key_pa
         attacker.bind((LOOPBACK, 0))
         for data in forged + replays:
             attacker.sendto(data, pair.receiver.link_address)
+
         # A damaged packet whose sequence field now reads as old fails at the replay query,
         # which comes before the tag check (RFC 4303 §3.4.3): either way it is refused.
         def refused() -> tuple[float, float]:

@@ -98,7 +98,9 @@ def test_multi_step_matrix_matches_matrix_power(steps):
     # numpy.linalg.matrix_power as oracle for the closed form of T^D.
     params = GilbertElliott(p=0.03, r=0.25, loss_good=0.0, loss_bad=0.9)
     one = params.transition_matrix(1)
-    np.testing.assert_allclose(params.transition_matrix(steps), np.linalg.matrix_power(one, steps), rtol=1e-12, atol=1e-15)
+    np.testing.assert_allclose(
+        params.transition_matrix(steps), np.linalg.matrix_power(one, steps), rtol=1e-12, atol=1e-15
+    )
 
 
 @pytest.mark.parametrize(

@@ -4,7 +4,8 @@
 import math
 
 import pytest
-from hypothesis import given, strategies as st
+from hypothesis import given
+from hypothesis import strategies as st
 from scipy.stats import binom
 
 from fecproxy.protocol import wire
@@ -64,6 +65,7 @@ def test_loss_fixed_point_is_finer_than_rtcp_fraction_lost():
     # RFC 3550 §6.4.1: "fraction lost" is lost/expected as an 8-bit fixed-point number (× 256),
     # so 1.2 % and 1.4 % loss both read 3/256 ...
     assert int(0.012 * 256) == int(0.014 * 256) == 3
+
     # ... yet they need different codes: with k = 16 and a 10^-6 target, m = 4 and m = 5 (residual
     # p·P[Binomial(n−1, p) ≥ m]; scipy.stats.binom as outside oracle).
     def least_m(p):

@@ -22,10 +22,10 @@ from collections import deque
 
 import pytest
 from scipy.stats import binom
-
-from fecproxy.linkmodel import planner
 from support.daemon_pair import Pair, check_payload, make_payload
 from support.lossy_relay import iid_loss
+
+from fecproxy.linkmodel import planner
 
 pytestmark = pytest.mark.slow
 
@@ -164,15 +164,22 @@ ALPHA = 1e-4
 def test_answer_rate_through_a_lossy_link_matches_the_planner_and_nobody_is_refused(tmp_path):
     extra = flows_config() | {"decoder": LOSSY_DECODER}
     pair = Pair(
-        tmp_path, echo=True, sender_fec=LOSSY_FEC, receiver_fec=LOSSY_FEC,
-        forward=iid_loss(LOSS, seed=6363), back=iid_loss(LOSS, seed=6865),
-        sender_extra=extra, receiver_extra=extra,
+        tmp_path,
+        echo=True,
+        sender_fec=LOSSY_FEC,
+        receiver_fec=LOSSY_FEC,
+        forward=iid_loss(LOSS, seed=6363),
+        back=iid_loss(LOSS, seed=6865),
+        sender_extra=extra,
+        receiver_extra=extra,
     )
     try:
         answered, misrouted = run_clients(pair.sender.listen_address, CLIENTS, CLIENT_RATE)
         counters = flow_counters(pair)
-        blocks = {name: (d.metric("fecproxy_blocks_sent_total"), d.metric("fecproxy_short_blocks_sent_total"))
-                  for name, d in (("sender", pair.sender), ("receiver", pair.receiver))}
+        blocks = {
+            name: (d.metric("fecproxy_blocks_sent_total"), d.metric("fecproxy_short_blocks_sent_total"))
+            for name, d in (("sender", pair.sender), ("receiver", pair.receiver))
+        }
     finally:
         pair.close()
     assert misrouted == 0

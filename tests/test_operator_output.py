@@ -15,11 +15,11 @@ import urllib.request
 from pathlib import Path
 
 import pytest
+from support.daemon_pair import drain, send_paced
+from support.processes import Child, fecproxy, run_to_exit
 
 from fecproxy import cli
 from fecproxy.commands import EXIT_CANNOT_START, EXIT_INVALID, EXIT_MEANINGS, EXIT_UNREADABLE
-from support.daemon_pair import drain, send_paced
-from support.processes import Child, fecproxy, run_to_exit
 
 README = (Path(__file__).resolve().parent.parent / "README.md").read_text()
 LOOPBACK = "127.0.0.1"
@@ -67,8 +67,17 @@ def test_every_family_a_daemon_pair_exposes_is_in_the_readme_table(pairs):
     assert pair.receiver.started["sends"] == "replies"
     # ... and the sender logs a stats line each second with the counters since the last one.
     stats = pair.sender.wait_event("stats", 10)
-    for field in ("datagrams_in", "datagrams_out", "link_packets_in", "link_packets_out", "link_loss",
-                  "residual_loss", "recovered", "dropped", "flows"):
+    for field in (
+        "datagrams_in",
+        "datagrams_out",
+        "link_packets_in",
+        "link_packets_out",
+        "link_loss",
+        "residual_loss",
+        "recovered",
+        "dropped",
+        "flows",
+    ):
         assert field in stats, field
     lines = pair.sender.events("stats")
     assert sum(int(line["datagrams_in"]) for line in lines) <= 192
@@ -77,8 +86,12 @@ def test_every_family_a_daemon_pair_exposes_is_in_the_readme_table(pairs):
 def test_an_idle_receiver_exposes_its_estimate_as_nan_and_plan_says_no_traffic(pairs):
     pair = pairs()
     receiver = pair.receiver
-    for name in ("fecproxy_link_loss_ratio", "fecproxy_link_mean_burst_packets",
-                 "fecproxy_received_code_k", "fecproxy_received_code_m"):
+    for name in (
+        "fecproxy_link_loss_ratio",
+        "fecproxy_link_mean_burst_packets",
+        "fecproxy_received_code_k",
+        "fecproxy_received_code_m",
+    ):
         assert math.isnan(receiver.metric(name)), name
     url = f"http://{LOOPBACK}:{receiver.started['metrics']}/metrics"
     done = run_to_exit("plan", "--from-metrics", url, "--rate", "30")
@@ -90,8 +103,19 @@ def test_an_idle_receiver_exposes_its_estimate_as_nan_and_plan_says_no_traffic(p
 def test_every_family_the_impairment_relay_exposes_is_in_the_readme_table():
     far = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
     far.bind((LOOPBACK, 0))
-    relay = Child(fecproxy("impair", "--listen", f"{LOOPBACK}:0", "--to", f"{LOOPBACK}:{far.getsockname()[1]}",
-                           "--metrics", f"{LOOPBACK}:0", "--seconds", "30"))
+    relay = Child(
+        fecproxy(
+            "impair",
+            "--listen",
+            f"{LOOPBACK}:0",
+            "--to",
+            f"{LOOPBACK}:{far.getsockname()[1]}",
+            "--metrics",
+            f"{LOOPBACK}:0",
+            "--seconds",
+            "30",
+        )
+    )
     try:
         url = relay.wait_for(r"^metrics: (\S+)").group(1)
         families, page = _families(url)

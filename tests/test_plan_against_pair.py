@@ -25,11 +25,11 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from support.processes import LOOPBACK, Child, fecproxy, run_json, scrape
+from support.receiver_view import invisible_share  # closed form, checked in test_receiver_loss_estimate.py
 
 from fecproxy.linkmodel.loss_models import GilbertElliott
 from fecproxy.linkmodel.planner import block_loss_distribution, evaluate
-from support.processes import LOOPBACK, Child, fecproxy, run_json, scrape
-from support.receiver_view import invisible_share  # closed form, checked in test_receiver_loss_estimate.py
 
 RATE = 800.0  # datagrams per second offered by the generator
 LINK_LOSS, LINK_BURST = 0.08, 2.0  # the emulated radio: 8 % loss in bursts of 2 on average
@@ -43,8 +43,15 @@ pytestmark = pytest.mark.slow
 
 
 def run_link(
-    tmp_path: Path, k: int, m: int, datagrams: int, *, flush_ms: int = 100, interleave: int = 1,
-    loss: float = LINK_LOSS, burst: float = LINK_BURST,
+    tmp_path: Path,
+    k: int,
+    m: int,
+    datagrams: int,
+    *,
+    flush_ms: int = 100,
+    interleave: int = 1,
+    loss: float = LINK_LOSS,
+    burst: float = LINK_BURST,
 ) -> dict:
     """Carry ``datagrams`` numbered datagrams at RATE through the pair and the emulated link.
 
@@ -63,7 +70,7 @@ def run_link(
         while not stop_sink.is_set():
             try:
                 data = sink.recv(2048)
-            except (TimeoutError, socket.timeout):
+            except TimeoutError:
                 continue
             except OSError:
                 return
@@ -90,9 +97,23 @@ def run_link(
 
         impair = Child(
             fecproxy(
-                "impair", "--listen", f"{LOOPBACK}:0", "--to", receiver_link, "--loss", str(loss),
-                "--burst", str(burst), "--return-loss", "0", "--seed", str(SEED), "--seconds", "120",
-                "--metrics", f"{LOOPBACK}:0",
+                "impair",
+                "--listen",
+                f"{LOOPBACK}:0",
+                "--to",
+                receiver_link,
+                "--loss",
+                str(loss),
+                "--burst",
+                str(burst),
+                "--return-loss",
+                "0",
+                "--seed",
+                str(SEED),
+                "--seconds",
+                "120",
+                "--metrics",
+                f"{LOOPBACK}:0",
             )
         )
         children.append(impair)
@@ -177,8 +198,11 @@ def test_no_loss_outside_the_emulated_link(baseline):
     # Every packet the relay delivered reached the receiver's decoder, and nothing was duplicated:
     # the only losses are the emulated ones, so the comparison with the plan is fair.
     impair, receiver, sender = baseline["impair"], baseline["receiver"], baseline["sender"]
-    delivered = impair['fecproxy_impair_datagrams_delivered_total{direction=forward}']
-    got = receiver["fecproxy_link_packets_received_total{kind=source}"] + receiver["fecproxy_link_packets_received_total{kind=repair}"]
+    delivered = impair["fecproxy_impair_datagrams_delivered_total{direction=forward}"]
+    got = (
+        receiver["fecproxy_link_packets_received_total{kind=source}"]
+        + receiver["fecproxy_link_packets_received_total{kind=repair}"]
+    )
     assert got == delivered
     on_air = sender["fecproxy_source_packets_sent_total"] + sender["fecproxy_repair_packets_sent_total"]
     assert impair["fecproxy_impair_datagrams_submitted_total{direction=forward}"] == on_air
@@ -187,7 +211,9 @@ def test_no_loss_outside_the_emulated_link(baseline):
 
 
 def test_residual_loss_matches_the_plan(baseline, capsys):
-    predicted = run_json("plan", "--k", str(K), "--m", str(M), "--loss", str(LINK_LOSS), "--burst", str(LINK_BURST), "--json")
+    predicted = run_json(
+        "plan", "--k", str(K), "--m", str(M), "--loss", str(LINK_LOSS), "--burst", str(LINK_BURST), "--json"
+    )
     assert predicted["residual_loss"] == evaluate(LINK, K, M).residual_loss
     sent = baseline["sent"]
     blocks = sent // K
@@ -223,8 +249,10 @@ def test_plan_from_metrics_reads_the_link(baseline, capsys):
     loss_se = math.sqrt(LINK.stationary_bad * (1 - LINK.stationary_bad) * (1 + lam) / (1 - lam) / samples)
     burst_se = math.sqrt(LINK.r * (1 - LINK.r) / (samples * LINK_LOSS * (K - 1) / K)) / LINK.r**2
     with capsys.disabled():
-        print(f"\n[link e2e] --from-metrics: loss {loss:.4f} (configured {LINK_LOSS}, SE {loss_se:.4f}), "
-              f"mean burst {burst:.3f} (configured {LINK_BURST}, SE {burst_se:.3f})")
+        print(
+            f"\n[link e2e] --from-metrics: loss {loss:.4f} (configured {LINK_LOSS}, SE {loss_se:.4f}), "
+            f"mean burst {burst:.3f} (configured {LINK_BURST}, SE {burst_se:.3f})"
+        )
     assert abs(loss - LINK_LOSS) < Z * loss_se + 0.10 * LINK_LOSS
     assert abs(burst - LINK_BURST) < Z * burst_se + 0.15 * LINK_BURST
     # ... and the planner turned them into a channel and a plan.
@@ -236,8 +264,20 @@ def test_recommendation_is_confirmed_by_the_pair(tmp_path, capsys):
     # 16, residual loss 1 %.  Run the pair with the recommended code and measure.
     target = 0.01
     plan = run_json(
-        "plan", "--loss", str(LINK_LOSS), "--burst", str(LINK_BURST), "--rate", str(RATE), "--latency-ms", "100",
-        "--k-values", "4-16", "--target", str(target), "--json",
+        "plan",
+        "--loss",
+        str(LINK_LOSS),
+        "--burst",
+        str(LINK_BURST),
+        "--rate",
+        str(RATE),
+        "--latency-ms",
+        "100",
+        "--k-values",
+        "4-16",
+        "--target",
+        str(target),
+        "--json",
     )
     best = plan["recommended"]
     assert best is not None and best["k_effective"] == best["k"]  # blocks fill at this rate
@@ -249,8 +289,10 @@ def test_recommendation_is_confirmed_by_the_pair(tmp_path, capsys):
         sd = residual_sd(LINK, k, m, sent // k)
         at_sink = 1 - result["received"] / sent
         with capsys.disabled():
-            print(f"\n[link e2e] recommended k={k} m={m} (overhead {best['overhead']:.3f}): plan {best['residual_loss']:.4f} "
-                  f"± {sd:.4f}, sink {at_sink:.4f}, target {target}")
+            print(
+                f"\n[link e2e] recommended k={k} m={m} (overhead {best['overhead']:.3f}): plan {best['residual_loss']:.4f} "
+                f"± {sd:.4f}, sink {at_sink:.4f}, target {target}"
+            )
         assert abs(at_sink - best["residual_loss"]) < Z * sd
         # At or below the target within the same tolerance (one-sided).
         assert at_sink <= target + Z * sd
@@ -279,8 +321,18 @@ def test_interleaved_pair_matches_the_plan(tmp_path, capsys, depth):
     """
     k, m = 8, 2
     predicted = run_json(
-        "plan", "--k", str(k), "--m", str(m), "--loss", str(BURSTY_LOSS), "--burst", str(BURSTY_BURST),
-        "--interleave", str(depth), "--json",
+        "plan",
+        "--k",
+        str(k),
+        "--m",
+        str(m),
+        "--loss",
+        str(BURSTY_LOSS),
+        "--burst",
+        str(BURSTY_BURST),
+        "--interleave",
+        str(depth),
+        "--json",
     )
     assert predicted["residual_loss"] == evaluate(BURSTY, k, m, depth).residual_loss
     datagrams = 6400  # 8 s at RATE; at 800/s a block of D·k datagrams fills in D·10 ms < flush
@@ -290,8 +342,10 @@ def test_interleaved_pair_matches_the_plan(tmp_path, capsys, depth):
         sd = math.sqrt(depth) * residual_sd_at(BURSTY, k, m, depth, sent // k)
         at_sink = 1 - result["received"] / sent
         with capsys.disabled():
-            print(f"\n[link e2e] D={depth} k={k} m={m} on {BURSTY_LOSS:.0%}/burst {BURSTY_BURST:g}: plan "
-                  f"{predicted['residual_loss']:.4f} ± {sd:.4f} (sd bound), sink {at_sink:.4f}")
+            print(
+                f"\n[link e2e] D={depth} k={k} m={m} on {BURSTY_LOSS:.0%}/burst {BURSTY_BURST:g}: plan "
+                f"{predicted['residual_loss']:.4f} ± {sd:.4f} (sd bound), sink {at_sink:.4f}"
+            )
         assert result["sender"]["fecproxy_short_blocks_sent_total"] <= depth  # blocks filled: the planned code
         assert abs(at_sink - predicted["residual_loss"]) < Z * sd
     finally:

@@ -18,7 +18,6 @@ from fecproxy.commands.plan import parse_prometheus_text
 from fecproxy.linkmodel.loss_models import GilbertElliott
 from fecproxy.linkmodel.planner import evaluate
 
-
 # -- the command ---------------------------------------------------------------------------------------
 
 
@@ -47,7 +46,9 @@ def test_evaluation_mode_independent_loss_matches_scipy(capsys):
 
 
 def test_evaluation_mode_text_and_short_block(capsys):
-    code, out, _ = run_plan(capsys, "--k", "32", "--m", "8", "--ge-p", "0.01", "--ge-r", "0.3", "--rate", "10", "--latency-ms", "1000")
+    code, out, _ = run_plan(
+        capsys, "--k", "32", "--m", "8", "--ge-p", "0.01", "--ge-r", "0.3", "--rate", "10", "--latency-ms", "1000"
+    )
     assert code == 0
     assert "effective k 10" in out and "residual datagram loss" in out
 
@@ -55,7 +56,21 @@ def test_evaluation_mode_text_and_short_block(capsys):
 def test_plan_table(capsys):
     # Demo scenario (invented): a hill-top radio relay carrying a weather station's telemetry at
     # 40 datagrams/s, 3 % loss in fades of about 2 packets, 0.8 s of latency allowed.
-    code, out, _ = run_plan(capsys, "--loss", "0.03", "--burst", "2", "--rate", "40", "--latency-ms", "800", "--interleave", "1,2,4", "--target", "1e-3")
+    code, out, _ = run_plan(
+        capsys,
+        "--loss",
+        "0.03",
+        "--burst",
+        "2",
+        "--rate",
+        "40",
+        "--latency-ms",
+        "800",
+        "--interleave",
+        "1,2,4",
+        "--target",
+        "1e-3",
+    )
     assert code == 0
     assert "recommended (*)" in out
     assert sum(1 for line in out.splitlines() if line.startswith("*")) == 1
@@ -63,13 +78,30 @@ def test_plan_table(capsys):
 
 
 def test_plan_table_shows_effective_code_for_short_blocks(capsys):
-    argv = ["--loss", "0.03", "--burst", "2", "--rate", "14", "--latency-ms", "800", "--flush-ms", "500", "--target", "1e-2", "--max-overhead", "0.6"]
+    argv = [
+        "--loss",
+        "0.03",
+        "--burst",
+        "2",
+        "--rate",
+        "14",
+        "--latency-ms",
+        "800",
+        "--flush-ms",
+        "500",
+        "--target",
+        "1e-2",
+        "--max-overhead",
+        "0.6",
+    ]
     code, out, _ = run_plan(capsys, *argv)
     assert code == 0
     assert "k'" in out and "m'" in out and "proportional short-block rule" in out
     assert "blocks close short at this rate: k'=7" in out
     # Enough rate to fill every block: no k'/m' columns.
-    code, out, _ = run_plan(capsys, "--loss", "0.03", "--burst", "2", "--rate", "1000", "--latency-ms", "50", "--k-values", "4-16")
+    code, out, _ = run_plan(
+        capsys, "--loss", "0.03", "--burst", "2", "--rate", "1000", "--latency-ms", "50", "--k-values", "4-16"
+    )
     assert "k'" not in out
 
 
@@ -90,14 +122,32 @@ def test_short_block_rule_option(capsys):
 
 
 def test_plan_json(capsys):
-    code, out, _ = run_plan(capsys, "--loss", "0.03", "--burst", "2", "--rate", "40", "--latency-ms", "800", "--interleave", "1,2", "--json")
+    code, out, _ = run_plan(
+        capsys, "--loss", "0.03", "--burst", "2", "--rate", "40", "--latency-ms", "800", "--interleave", "1,2", "--json"
+    )
     data = json.loads(out)
     assert code == 0 and data["recommended"]["acceptable"]
-    assert {"k", "m", "depth", "overhead", "block_failure", "residual_loss", "block_span_ms"} <= set(data["candidates"][0])
+    assert {"k", "m", "depth", "overhead", "block_failure", "residual_loss", "block_span_ms"} <= set(
+        data["candidates"][0]
+    )
 
 
 def test_plan_reports_no_solution_with_exit_1(capsys):
-    code, out, _ = run_plan(capsys, "--loss", "0.3", "--burst", "10", "--rate", "50", "--latency-ms", "100", "--max-overhead", "0.2", "--target", "1e-6")
+    code, out, _ = run_plan(
+        capsys,
+        "--loss",
+        "0.3",
+        "--burst",
+        "10",
+        "--rate",
+        "50",
+        "--latency-ms",
+        "100",
+        "--max-overhead",
+        "0.2",
+        "--target",
+        "1e-6",
+    )
     assert code == 1 and "no candidate meets" in out
 
 
@@ -180,7 +230,18 @@ def metrics_url(request):
 
 
 def test_from_metrics(capsys, metrics_url):
-    code, out, err = run_plan(capsys, "--from-metrics", metrics_url, "--metrics-select", "direction=forward", "--k", "16", "--m", "4", "--json")
+    code, out, err = run_plan(
+        capsys,
+        "--from-metrics",
+        metrics_url,
+        "--metrics-select",
+        "direction=forward",
+        "--k",
+        "16",
+        "--m",
+        "4",
+        "--json",
+    )
     assert code == 0, err
     data = json.loads(out)
     assert data["channel"]["average_loss"] == pytest.approx(0.04)
@@ -200,7 +261,9 @@ def test_from_metrics_before_any_traffic_says_so(capsys, metrics_url):
 
 
 def test_from_metrics_unreachable(capsys):
-    code, _, err = run_plan(capsys, "--from-metrics", "http://127.0.0.1:9/metrics", "--rate", "20", "--metrics-timeout", "2")
+    code, _, err = run_plan(
+        capsys, "--from-metrics", "http://127.0.0.1:9/metrics", "--rate", "20", "--metrics-timeout", "2"
+    )
     assert code == 2 and "cannot fetch" in err
 
 
@@ -216,14 +279,18 @@ def test_prometheus_text_parser():
 def test_plan_offers_no_interleave_deeper_than_the_sender_supports(capsys):
     from fecproxy.protocol.encoder import MAX_INTERLEAVE
 
-    code, _, err = run_plan(capsys, "--loss", "0.05", "--burst", "4", "--rate", "500", "--interleave", f"1,{MAX_INTERLEAVE + 1}")
+    code, _, err = run_plan(
+        capsys, "--loss", "0.05", "--burst", "4", "--rate", "500", "--interleave", f"1,{MAX_INTERLEAVE + 1}"
+    )
     assert code == 2 and "fec.interleave" in err
     code, _, err = run_plan(capsys, "--loss", "0.05", "--k", "8", "--m", "2", "--interleave", f"{MAX_INTERLEAVE + 1}")
     assert code == 2 and "fec.interleave" in err
 
 
 def test_recommendation_names_the_sender_config_keys(capsys):
-    code, out, _ = run_plan(capsys, "--loss", "0.05", "--burst", "3", "--rate", "2000", "--interleave", "1,4", "--max-overhead", "0.5")
+    code, out, _ = run_plan(
+        capsys, "--loss", "0.05", "--burst", "3", "--rate", "2000", "--interleave", "1,4", "--max-overhead", "0.5"
+    )
     assert code == 0
     line = next(x for x in out.splitlines() if x.startswith("sender config:"))
     assert "fec.block_size:" in line and "fec.repair:" in line and "fec.interleave:" in line and "fec.flush_ms:" in line
@@ -239,11 +306,25 @@ def test_byte_overhead_budget_and_the_senders_byte_cut(capsys):
     from fecproxy.protocol import wire
 
     head_r, head_s, prefix = wire.REPAIR_HEADER_BYTES, wire.SOURCE_HEADER_BYTES, wire.SYMBOL_PREFIX_BYTES
-    args = ("--loss", "0.02", "--rate", "1000", "--k-values", "16,32", "--mean-bytes", "100", "--max-bytes", "1200", "--json")
+    args = (
+        "--loss",
+        "0.02",
+        "--rate",
+        "1000",
+        "--k-values",
+        "16,32",
+        "--mean-bytes",
+        "100",
+        "--max-bytes",
+        "1200",
+        "--json",
+    )
     code, out, _ = run_plan(capsys, *args)
     rows = json.loads(out)["candidates"]
     for row in rows:
-        assert row["byte_overhead"] == pytest.approx(row["m_effective"] * (head_r + prefix + 1200) / (row["k_effective"] * (head_s + 100)))
+        assert row["byte_overhead"] == pytest.approx(
+            row["m_effective"] * (head_r + prefix + 1200) / (row["k_effective"] * (head_s + 100))
+        )
         assert row["m_effective"] <= row["k_effective"] * (prefix + 100) // (prefix + 1200)
     code, out, _ = run_plan(capsys, *args, "--max-byte-overhead", "0.5")
     for row in json.loads(out)["candidates"]:
@@ -263,7 +344,9 @@ INFO_PAGE = CANNED_PAGE.replace(
 
 @pytest.mark.parametrize("metrics_url", [INFO_PAGE], indirect=True)
 def test_from_metrics_shows_the_running_code(capsys, metrics_url):
-    code, out, err = run_plan(capsys, "--from-metrics", metrics_url, "--metrics-select", "direction=forward", "--rate", "500")
+    code, out, err = run_plan(
+        capsys, "--from-metrics", metrics_url, "--metrics-select", "direction=forward", "--rate", "500"
+    )
     assert code in (0, 1), err
     assert "arriving now (the peer's code as the metrics page's daemon decodes it): k=16 m=4" in out
     assert "or let the sender choose m from its loss reports:" in out and "fec.adapt: {target_residual: 0.001" in out

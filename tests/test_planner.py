@@ -12,15 +12,13 @@ import pytest
 from scipy.stats import binom
 
 from fecproxy.linkmodel.loss_models import GilbertElliott, GilbertElliottChannel
-from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
-from fecproxy.protocol.wire import RepairPacket, SourcePacket, parse
 from fecproxy.linkmodel.planner import (
     MAX_BLOCK_PACKETS,
+    PlanError,
+    PlanRequest,
     block_loss_distribution,
     block_span,
     effective_code,
-    PlanError,
-    PlanRequest,
     effective_k,
     evaluate,
     evaluate_repair_range,
@@ -29,6 +27,8 @@ from fecproxy.linkmodel.planner import (
     parse_int_list,
     plan,
 )
+from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
+from fecproxy.protocol.wire import RepairPacket, SourcePacket, parse
 
 CODES = [(1, 1), (4, 1), (8, 2), (16, 4), (10, 5), (32, 8), (64, 16), (200, 55)]
 LOSSES = [0.001, 0.01, 0.05, 0.2, 0.5]
@@ -219,8 +219,14 @@ def test_plan_prices_short_blocks_by_the_rule():
     # of its effective code, and its overhead is what the link carries, m'/k'.
     for rule in ("proportional", "full"):
         request = PlanRequest(
-            channel=GilbertElliott.from_loss_burst(0.03, 2), rate=14, latency_budget=0.8, flush=0.5,
-            max_overhead=0.6, target=1e-2, k_values=(4, 8, 16, 32), short_block_repair=rule,
+            channel=GilbertElliott.from_loss_burst(0.03, 2),
+            rate=14,
+            latency_budget=0.8,
+            flush=0.5,
+            max_overhead=0.6,
+            target=1e-2,
+            k_values=(4, 8, 16, 32),
+            short_block_repair=rule,
         )
         result = plan(request)
         for c in result.candidates:
@@ -266,13 +272,17 @@ def test_plan_recommends_the_cheapest_acceptable():
 
 
 def test_plan_without_a_solution():
-    request = PlanRequest(channel=GilbertElliott.from_loss_burst(0.3, 10), rate=50, latency_budget=0.1, max_overhead=0.2, target=1e-6)
+    request = PlanRequest(
+        channel=GilbertElliott.from_loss_burst(0.3, 10), rate=50, latency_budget=0.1, max_overhead=0.2, target=1e-6
+    )
     result = plan(request)
     assert result.recommended is None and result.candidates
 
 
 def test_plan_needs_no_fec_on_a_clean_link():
-    request = PlanRequest(channel=GilbertElliott.bernoulli(1e-5), rate=50, latency_budget=0.2, max_overhead=0.5, target=1e-3)
+    request = PlanRequest(
+        channel=GilbertElliott.bernoulli(1e-5), rate=50, latency_budget=0.2, max_overhead=0.5, target=1e-3
+    )
     assert plan(request).recommended.m == 0
 
 

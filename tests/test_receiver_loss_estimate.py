@@ -33,14 +33,14 @@ import math
 
 import numpy as np
 import pytest
+from support.receiver_view import chained_burst_limit, invisible_share, visible_limits
 
 from fecproxy.linkmodel.estimator import LossEstimator
 from fecproxy.linkmodel.loss_models import GilbertElliott, GilbertElliottChannel
 from fecproxy.protocol.decoder import BlockDecoder, DecoderSettings
-from fecproxy.protocol.events import BlockReport
 from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
+from fecproxy.protocol.events import BlockReport
 from fecproxy.protocol.wire import parse
-from support.receiver_view import chained_burst_limit, invisible_share, visible_limits
 
 Z = 4.0  # standard errors allowed
 
@@ -51,7 +51,9 @@ Z = 4.0  # standard errors allowed
 @pytest.mark.parametrize("k,m,loss,burst", [(8, 2, 0.05, 2.0), (6, 3, 0.08, 4.0), (4, 1, 0.1, 3.0), (12, 4, 0.02, 1.5)])
 def test_invisible_share_closed_form_equals_enumeration(k, m, loss, burst):
     channel = GilbertElliott.from_loss_burst(loss, burst)
-    assert invisible_share(channel, k, m) == pytest.approx(visible_limits(channel, k, m, decoder_view=True)["invisible"], rel=1e-9)
+    assert invisible_share(channel, k, m) == pytest.approx(
+        visible_limits(channel, k, m, decoder_view=True)["invisible"], rel=1e-9
+    )
 
 
 def loss_se(channel: GilbertElliott, samples: int) -> float:
@@ -72,7 +74,9 @@ def run_pair(channel: GilbertElliott, k: int, m: int, datagrams: int, seed: str)
     """Encoder → channel → decoder with a fake clock (1 ms per datagram); every BlockReport and
     the true loss flag of every source position."""
     link = GilbertElliottChannel(channel, seed=seed)
-    encoder = BlockEncoder(EncoderSettings(block_size=k, repair=m, flush_interval=10.0, max_datagram=32), session=0x5EED)
+    encoder = BlockEncoder(
+        EncoderSettings(block_size=k, repair=m, flush_interval=10.0, max_datagram=32), session=0x5EED
+    )
     decoder = BlockDecoder(DecoderSettings(hold_time=0.5, max_datagram=32))
     reports: list[BlockReport] = []
     truth: list[bool] = []
@@ -158,7 +162,9 @@ def test_estimator_fed_block_reports_recovers_the_link(k, m, loss, burst, datagr
     # share of lost positions left unseen.
     unseen_share = missing / truth.size
     assert abs(estimate.average_loss - loss) < Z * loss_se(channel, estimate.samples) + unseen_share
-    assert abs(estimate.mean_burst - burst) < Z * burst_se(channel, estimate.lost * (k - 1) // k) + burst * missing / max(1, estimate.lost)
+    assert abs(estimate.mean_burst - burst) < Z * burst_se(
+        channel, estimate.lost * (k - 1) // k
+    ) + burst * missing / max(1, estimate.lost)
 
 
 @pytest.mark.parametrize("k,m,loss,burst", [(8, 2, 0.05, 2.0), (16, 4, 0.05, 2.0), (4, 1, 0.1, 3.0)])

@@ -11,9 +11,9 @@ import socket
 import pytest
 import trio
 
+from fecproxy.commands.impair import format_summary
 from fecproxy.linkmodel.impairment import Blackout, LinkImpairment
 from fecproxy.linkmodel.loss_models import GilbertElliott
-from fecproxy.commands.impair import format_summary
 from fecproxy.shell.relay import RelayConfig, run_relay
 
 LOOPBACK = "127.0.0.1"
@@ -37,7 +37,9 @@ async def echo_server(sock, *, task_status=trio.TASK_STATUS_IGNORED):
 async def start_pair(nursery, forward=LinkImpairment(), back=None, seed=1):
     server = await udp_socket()
     await nursery.start(echo_server, server)
-    config = RelayConfig(listen=(LOOPBACK, 0), to=server.getsockname(), forward=forward, back=back or forward, seed=seed)
+    config = RelayConfig(
+        listen=(LOOPBACK, 0), to=server.getsockname(), forward=forward, back=back or forward, seed=seed
+    )
     relay = await nursery.start(run_relay, config)
     return relay, server
 

@@ -28,8 +28,13 @@ def config(adapt=True, interval_ms=1000):
     if adapt:
         fec["adapt"] = {}
     return parse_config(
-        {"role": "sender", "listen": "127.0.0.1:0", "link": {"bind": "127.0.0.1:0", "peer": "127.0.0.1:9"}, "fec": fec,
-         "reports": {"interval_ms": interval_ms}},
+        {
+            "role": "sender",
+            "listen": "127.0.0.1:0",
+            "link": {"bind": "127.0.0.1:0", "peer": "127.0.0.1:9"},
+            "fec": fec,
+            "reports": {"interval_ms": interval_ms},
+        },
         "test",
     )
 
@@ -43,8 +48,15 @@ def feedback(cfg, session=0x5E55):
 
 
 def report(sequence, received, lost, epoch=7):
-    return LossReport(epoch=epoch, sequence=sequence, interval_ms=1000, source_received=received, repair_received=0,
-                      source_lost=lost, unrecovered=0)
+    return LossReport(
+        epoch=epoch,
+        sequence=sequence,
+        interval_ms=1000,
+        source_received=received,
+        repair_received=0,
+        source_lost=lost,
+        unrecovered=0,
+    )
 
 
 PEER = 0xABCD
@@ -76,7 +88,9 @@ def test_a_report_tells_the_decoder_counts_under_the_reported_session():
     sent = parse_report(packet[COMMON_HEADER.size :])
     stats = fb.decoder.stats
     assert (sent.sequence, sent.interval_ms, sent.source_received, sent.repair_received) == (1, 250, 7, 2)
-    assert (sent.source_lost, sent.unrecovered) == (stats.lost, stats.unrecovered) == (1, 0)  # RFC 6363 §6: before / after
+    assert (
+        (sent.source_lost, sent.unrecovered) == (stats.lost, stats.unrecovered) == (1, 0)
+    )  # RFC 6363 §6: before / after
     assert sent.highest_sbn == 1 and sent.estimate_samples == 8 and sent.loss_estimate == pytest.approx(1 / 8, abs=1e-4)
     assert fb.on_timer(0.6) == []  # next one at 0.75
     [again] = fb.on_timer(0.75)

@@ -19,11 +19,11 @@ import pytest
 from fecproxy.config import parse_config_text
 from fecproxy.protocol.decoder import BlockDecoder, DecoderStats
 from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings, EncoderStats
-from fecproxy.shell import logs, udp
 from fecproxy.protocol.events import DropReason
+from fecproxy.shell import logs, udp
 from fecproxy.shell.metrics import build_registry, serve
 from fecproxy.shell.reports import Feedback
-from fecproxy.shell.settings import RESTART_KEYS, keep_fixed, needs_restart, read_new_config, ReloadRejected
+from fecproxy.shell.settings import RESTART_KEYS, ReloadRejected, keep_fixed, needs_restart, read_new_config
 
 LOOPBACK = "127.0.0.1"
 
@@ -103,7 +103,9 @@ class StandInDaemon:
         self.encoder_stats = EncoderStats()
         self.decoder_stats = DecoderStats()
         self.decoder_stats.recovered = 3
-        self.feedback = Feedback(BlockEncoder(EncoderSettings(), 1), BlockDecoder(), logging.getLogger("test"))  # no reports yet
+        self.feedback = Feedback(
+            BlockEncoder(EncoderSettings(), 1), BlockDecoder(), logging.getLogger("test")
+        )  # no reports yet
 
     def drop_counts(self):
         return {"late": 2}
@@ -148,8 +150,12 @@ def test_link_and_code_gauges_are_present_as_nan_before_traffic():
     idle.received_code = (None, None)
     registry, _ = build_registry(idle)
     values = {sample.name: sample.value for family in registry.collect() for sample in family.samples}
-    for name in ("fecproxy_link_loss_ratio", "fecproxy_link_mean_burst_packets",
-                 "fecproxy_received_code_k", "fecproxy_received_code_m"):
+    for name in (
+        "fecproxy_link_loss_ratio",
+        "fecproxy_link_mean_burst_packets",
+        "fecproxy_received_code_k",
+        "fecproxy_received_code_m",
+    ):
         assert math.isnan(values[name]), name
 
 

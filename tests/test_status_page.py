@@ -18,15 +18,15 @@ from pathlib import Path
 
 import pytest
 from prometheus_client import generate_latest, make_wsgi_app
+from support.browser import HeadlessChromium, artifact_dir, find_chromium
+from support.daemon_pair import drain, send_paced
+from support.lossy_relay import iid_loss
 
 from fecproxy.protocol.decoder import BlockDecoder, DecoderStats
 from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings, EncoderStats
 from fecproxy.shell import status, status_page
 from fecproxy.shell.metrics import build_registry
 from fecproxy.shell.reports import Feedback
-from support.browser import HeadlessChromium, artifact_dir, find_chromium
-from support.daemon_pair import drain, send_paced
-from support.lossy_relay import iid_loss
 
 REPO = Path(__file__).resolve().parent.parent
 
@@ -35,17 +35,27 @@ class _Daemon:
     """What the collector reads, with counters a test sets (the daemon's DaemonView)."""
 
     def __init__(self, estimate=(0.05, 2.0)):
-        self.encoder_stats = EncoderStats(source_packets=900, repair_packets=300, source_bytes=90_000,
-                                          repair_bytes=31_000, blocks=75, short_blocks=2)
+        self.encoder_stats = EncoderStats(
+            source_packets=900, repair_packets=300, source_bytes=90_000, repair_bytes=31_000, blocks=75, short_blocks=2
+        )
         self.block_shape = (12, 4)
         self.interleave = 1
         self.size_class_names = ("le256", "gt256")
-        self.decoder_stats = DecoderStats(source_received=950, repair_received=310, lost=50, recovered=48,
-                                          unrecovered=2, delivered=998, blocks={"complete": 40, "recovered": 30})
+        self.decoder_stats = DecoderStats(
+            source_received=950,
+            repair_received=310,
+            lost=50,
+            recovered=48,
+            unrecovered=2,
+            delivered=998,
+            blocks={"complete": 40, "recovered": 30},
+        )
         self.role = "receiver"
         self.reloads = {"applied": 1, "rejected": 0}
         self.estimate = estimate
-        self.feedback = Feedback(BlockEncoder(EncoderSettings(), 1), BlockDecoder(), logging.getLogger("test"))  # no reports yet
+        self.feedback = Feedback(
+            BlockEncoder(EncoderSettings(), 1), BlockDecoder(), logging.getLogger("test")
+        )  # no reports yet
 
     def drop_counts(self):
         return {"late": 3, "duplicate": 1}
@@ -72,8 +82,16 @@ def _call(app, path: str, method: str = "GET"):
     def start_response(status_line, headers):
         captured["status"], captured["headers"] = status_line, dict(headers)
 
-    environ = {"PATH_INFO": path, "REQUEST_METHOD": method, "QUERY_STRING": "", "SERVER_NAME": "127.0.0.1",
-               "SERVER_PORT": "0", "wsgi.input": io.BytesIO(), "wsgi.url_scheme": "http", "SERVER_PROTOCOL": "HTTP/1.1"}
+    environ = {
+        "PATH_INFO": path,
+        "REQUEST_METHOD": method,
+        "QUERY_STRING": "",
+        "SERVER_NAME": "127.0.0.1",
+        "SERVER_PORT": "0",
+        "wsgi.input": io.BytesIO(),
+        "wsgi.url_scheme": "http",
+        "SERVER_PROTOCOL": "HTTP/1.1",
+    }
     body = b"".join(app(environ, start_response))
     return captured["status"], captured["headers"], body
 
@@ -101,8 +119,14 @@ def test_status_json_holds_exactly_what_metrics_exposes():
     assert code.startswith("200") and headers["Content-Type"] == "application/json"
     document = json.loads(body)
     assert document["samples"] == _exposition(registry)
-    assert document["info"] == {"version": document["info"]["version"], "role": "receiver", "k": "12", "m": "4",
-                                "interleave": "1", "size_classes": "le256,gt256"}
+    assert document["info"] == {
+        "version": document["info"]["version"],
+        "role": "receiver",
+        "k": "12",
+        "m": "4",
+        "interleave": "1",
+        "size_classes": "le256,gt256",
+    }
     assert document["samples"]['fecproxy_packets_dropped_total{reason="late"}'] == 3
     assert document["samples"]["fecproxy_link_loss_ratio"] == 0.05
     assert document["refresh_s"] == status.REFRESH_S
@@ -137,7 +161,9 @@ def test_page_is_self_contained_and_its_policy_admits_exactly_its_own_script_and
     html = page.html
     # No CDN, no second request: nothing is loaded from elsewhere.
     assert not re.search(r"<(script|link|img|iframe)[^>]+(src|href)=", html)
-    assert "//" not in re.sub(r'(href="[^"]*"|<script>.*?</script>)', "", html, flags=re.S).replace("http://www.w3.org", "")
+    assert "//" not in re.sub(r'(href="[^"]*"|<script>.*?</script>)', "", html, flags=re.S).replace(
+        "http://www.w3.org", ""
+    )
     style = re.search(r"<style>(.*?)</style>", html, re.S).group(1)
     script = re.search(r"<script>(.*?)</script>", html, re.S).group(1)
 
@@ -158,7 +184,9 @@ def test_page_files_ship_with_the_package():
     folder = Path(status_page.__file__).parent
     data_files = sorted(p.name for p in folder.iterdir() if p.is_file() and p.suffix != ".py")
     assert {"page.html", "page.css", "page.js"} <= set(data_files)
-    patterns = tomllib.loads((REPO / "pyproject.toml").read_text())["tool"]["setuptools"]["package-data"]["fecproxy.shell.status_page"]
+    patterns = tomllib.loads((REPO / "pyproject.toml").read_text())["tool"]["setuptools"]["package-data"][
+        "fecproxy.shell.status_page"
+    ]
     assert all(any(fnmatch.fnmatch(name, pattern) for pattern in patterns) for name in data_files)
 
 
@@ -227,7 +255,10 @@ def test_a_failing_planner_costs_the_recommendation_only():
 
 def test_without_an_estimate_the_page_says_why_there_is_no_plan():
     source = status.StatusSource(build_registry(_Daemon(estimate=None))[0], clock=_Clock())
-    assert source.document()["plan"] == {"recommended": None, "note": "no link estimate yet: no block has arrived from the peer"}
+    assert source.document()["plan"] == {
+        "recommended": None,
+        "note": "no link estimate yet: no block has arrived from the peer",
+    }
 
 
 def test_an_estimate_without_a_burst_yet_is_valid_json_and_planned_as_isolated_losses():
@@ -247,7 +278,9 @@ def test_recommendation_is_what_fecproxy_plan_prints_for_the_same_command():
     for loss, burst, rate in ((0.03, 2.0, 30.0), (0.2, 6.0, 30.0), (0.0, 1.0, 50.0)):
         page = status.recommend(loss, burst, rate)
         command = page["command"].split()[1:]
-        completed = subprocess.run([sys.executable, "-m", "fecproxy", *command, "--json"], capture_output=True, text=True, timeout=60)
+        completed = subprocess.run(
+            [sys.executable, "-m", "fecproxy", *command, "--json"], capture_output=True, text=True, timeout=60
+        )
         assert completed.returncode in (0, 1), completed.stderr
         assert json.loads(completed.stdout)["recommended"] == page["recommended"], (command, page)
 
@@ -312,7 +345,9 @@ def test_status_page_in_headless_chromium_shows_the_daemons_metrics(pairs, tmp_p
         # The daemon goes away: the page says so within a refresh or two and keeps what it drew.
         assert pair.receiver.terminate() == 0
         browser.wait_for("document.getElementById('conn').className === 'pill bad'", REFRESH_TIMEOUT_S)
-        down = browser.evaluate("[document.getElementById('conn').textContent, document.querySelectorAll('#chart-loss path').length]")
+        down = browser.evaluate(
+            "[document.getElementById('conn').textContent, document.querySelectorAll('#chart-loss path').length]"
+        )
     print(f"status page screenshot: {', '.join(map(str, shots))} ({time.monotonic() - began:.1f} s in the browser)")
 
     assert errors == [], errors
@@ -323,10 +358,15 @@ def test_status_page_in_headless_chromium_shows_the_daemons_metrics(pairs, tmp_p
     assert shown["k"] == [info["k"], info["k"]] and shown["m"] == [info["m"], info["m"]]
     # Every counter the page shows equals the scrape, both as data and as the text a person reads.
     by_key = {status.sample_key(name, dict(labels)): value for (name, labels), value in metrics.items()}
-    must_show = ["fecproxy_source_packets_lost_total", "fecproxy_datagrams_recovered_total",
-                 "fecproxy_datagrams_unrecovered_total", "fecproxy_datagrams_delivered_total",
-                 'fecproxy_link_packets_received_total{kind="source"}', 'fecproxy_link_packets_received_total{kind="repair"}',
-                 "fecproxy_flows"] + [key for key in by_key if key.startswith("fecproxy_packets_dropped_total{")]
+    must_show = [
+        "fecproxy_source_packets_lost_total",
+        "fecproxy_datagrams_recovered_total",
+        "fecproxy_datagrams_unrecovered_total",
+        "fecproxy_datagrams_delivered_total",
+        'fecproxy_link_packets_received_total{kind="source"}',
+        'fecproxy_link_packets_received_total{kind="repair"}',
+        "fecproxy_flows",
+    ] + [key for key in by_key if key.startswith("fecproxy_packets_dropped_total{")]
     assert set(must_show) <= set(shown["cells"]), set(must_show) - set(shown["cells"])
     for key, (value, text) in shown["cells"].items():
         assert float(value) == by_key[key], key
@@ -340,7 +380,9 @@ def test_status_page_in_headless_chromium_shows_the_daemons_metrics(pairs, tmp_p
     command = shown["command"].removeprefix("$ ").split()
     # (Its inputs may be those of an estimate a few seconds old: plans are cached, status.PLAN_MIN_INTERVAL_S.)
     assert command[:2] == ["fecproxy", "plan"] and "--loss" in command and "--rate" in command
-    completed = subprocess.run([sys.executable, "-m", "fecproxy", *command[1:], "--json"], capture_output=True, text=True, timeout=60)
+    completed = subprocess.run(
+        [sys.executable, "-m", "fecproxy", *command[1:], "--json"], capture_output=True, text=True, timeout=60
+    )
     recommended = json.loads(completed.stdout)["recommended"]
     if recommended is None:
         assert shown["plan"] is None and "no code meets" in shown["planText"]

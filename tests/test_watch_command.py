@@ -69,11 +69,17 @@ def test_totals_frame_shows_every_dashboard_figure():
 
 def test_rates_between_two_reads_and_a_down_endpoint():
     before = parse_metrics(SNAPSHOT)
-    later = parse_metrics(SNAPSHOT.replace("fecproxy_datagrams_recovered_total 48.0", "fecproxy_datagrams_recovered_total 68.0")
-                          .replace('kind="source"} 950.0', 'kind="source"} 1130.0')
-                          .replace("fecproxy_source_packets_lost_total 50.0", "fecproxy_source_packets_lost_total 70.0"))
-    text = render([("sender", "ConnectionRefusedError: [Errno 111] Connection refused"),
-                   ("receiver", figures(later, before, 2.0))])
+    later = parse_metrics(
+        SNAPSHOT.replace("fecproxy_datagrams_recovered_total 48.0", "fecproxy_datagrams_recovered_total 68.0")
+        .replace('kind="source"} 950.0', 'kind="source"} 1130.0')
+        .replace("fecproxy_source_packets_lost_total 50.0", "fecproxy_source_packets_lost_total 70.0")
+    )
+    text = render(
+        [
+            ("sender", "ConnectionRefusedError: [Errno 111] Connection refused"),
+            ("receiver", figures(later, before, 2.0)),
+        ]
+    )
     assert "sender\n  DOWN: ConnectionRefusedError" in text
     assert re.search(r"link loss \(before recovery\)\s+10\.000 %\s+20 of 200", text)
     assert re.search(r"recovered\s+10\.0/s", text)
@@ -130,7 +136,10 @@ def test_whole_process_two_frames_with_one_endpoint_down(snapshot_server):
     down = f"127.0.0.1:{closed_port()}"
     result = subprocess.run(
         [sys.executable, "-m", "fecproxy", "watch", snapshot_server, down, "--count", "2", "--interval", "0.1"],
-        capture_output=True, text=True, timeout=60, stdin=subprocess.DEVNULL,
+        capture_output=True,
+        text=True,
+        timeout=60,
+        stdin=subprocess.DEVNULL,
     )
     assert result.returncode == 0, result.stderr
     out = result.stdout
@@ -143,7 +152,10 @@ def test_whole_process_two_frames_with_one_endpoint_down(snapshot_server):
 def test_once_with_every_endpoint_down_exits_1():
     result = subprocess.run(
         [sys.executable, "-m", "fecproxy", "watch", f"127.0.0.1:{closed_port()}", "--once"],
-        capture_output=True, text=True, timeout=60, stdin=subprocess.DEVNULL,
+        capture_output=True,
+        text=True,
+        timeout=60,
+        stdin=subprocess.DEVNULL,
     )
     assert result.returncode == 1
     assert "DOWN: " in result.stdout

@@ -1,7 +1,8 @@
 """Wire format: hex vectors (our own format, documented in DEVELOPERS.md) and validation."""
 
 import pytest
-from hypothesis import given, strategies as st
+from hypothesis import given
+from hypothesis import strategies as st
 
 from fecproxy.protocol import wire
 from fecproxy.protocol.wire import (
@@ -62,7 +63,11 @@ def test_repair_vector_is_what_the_encoder_sends_and_galois_computes():
     field = galois.GF(2**8, irreducible_poly=0x11D)
     vandermonde = field.Vandermonde(field.primitive_element, 2, 3)
     generator = np.linalg.inv(vandermonde[:, :2]) @ vandermonde
-    sources = field(np.array([list(bytes.fromhex("010205 0002") + b"wx\0"), list(bytes.fromhex("010206 0003") + b"abc")], dtype=np.uint8))
+    sources = field(
+        np.array(
+            [list(bytes.fromhex("010205 0002") + b"wx\0"), list(bytes.fromhex("010206 0003") + b"abc")], dtype=np.uint8
+        )
+    )
     assert np.asarray(generator[:, 2:].T @ sources, dtype=np.uint8).tobytes() == REPAIR_SYMBOL
     encoder = BlockEncoder(EncoderSettings(block_size=2, repair=1), 0x0A0B0C0D, first_sbn=0xFFFFFE)
     packets = encoder.send(b"wx", 0x010205, 0.0) + encoder.send(b"abc", 0x010206, 0.0)

@@ -66,7 +66,9 @@ def _as_symbols(symbols, count: int | None, what: str) -> np.ndarray:
         try:
             rows = list(symbols)
         except TypeError:
-            raise CodecError(f"{what} must be a 2-D uint8 array or a sequence of bytes, got {type(symbols).__name__}") from None
+            raise CodecError(
+                f"{what} must be a 2-D uint8 array or a sequence of bytes, got {type(symbols).__name__}"
+            ) from None
         array = _stack(rows, what)
     if count is not None and array.shape[0] != count:
         raise CodecError(f"{what} must have {count} symbols, got {array.shape[0]}")

@@ -246,7 +246,7 @@ class Multiplier:
         self._index = index.reshape(self.inner, self.digits * self.rows)
 
     @classmethod
-    def block_diagonal(cls, coefficients: np.ndarray, digit_bits: int | None = None) -> "Multiplier":
+    def block_diagonal(cls, coefficients: np.ndarray, digit_bits: int | None = None) -> Multiplier:
         """One multiplier for B independent (rows × inner) products: ``coefficients`` is (B, rows,
         inner); the data is the B blocks' rows stacked, (B·inner, L); the result is (B·rows, L),
         block b's rows from block b's data only.
@@ -341,7 +341,9 @@ class Multiplier:
                 joined = out[None]
             else:
                 joined = scratch[target * half : target * half + size].reshape(high.shape)
-            _mul_power_of_two(high, step, joined, scratch[:size].reshape(high.shape), scratch[half : half + size].reshape(high.shape))
+            _mul_power_of_two(
+                high, step, joined, scratch[:size].reshape(high.shape), scratch[half : half + size].reshape(high.shape)
+            )
             joined ^= low
             digits, step, target = joined, step * 2, 5 - target  # alternate regions 2 and 3
 

@@ -16,11 +16,18 @@ import sys
 
 import trio
 
-from fecproxy.linkmodel.loss_models import ChannelConfigError, channel_from_figures
-from fecproxy.linkmodel.impairment import Blackout, ImpairmentConfigError, LinkImpairment
 from fecproxy.config import addresses as config_addresses
 from fecproxy.config.addresses import format_sockaddr
-from fecproxy.shell.relay import DEFAULT_SEED, SHELL_DROP_REASONS, RelayConfig, RelayError, UdpRelay, start_metrics_server
+from fecproxy.linkmodel.impairment import Blackout, ImpairmentConfigError, LinkImpairment
+from fecproxy.linkmodel.loss_models import ChannelConfigError, channel_from_figures
+from fecproxy.shell.relay import (
+    DEFAULT_SEED,
+    SHELL_DROP_REASONS,
+    RelayConfig,
+    RelayError,
+    UdpRelay,
+    start_metrics_server,
+)
 
 #: A progress line every 10 s: often enough to see a blackout or a rate cap bite, rare enough
 #: to leave the terminal readable for hours (common practice, no source).
@@ -121,15 +128,55 @@ _LOSS_SUFFIXES = ("loss", "burst", "ge-p", "ge-r", "ge-loss-good", "ge-loss-bad"
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.epilog = EPILOG
-    parser.add_argument("--listen", required=True, default=argparse.SUPPRESS, metavar="HOST:PORT", help="address to receive on; point the sender proxy's link.peer here")
-    parser.add_argument("--to", required=True, default=argparse.SUPPRESS, metavar="HOST:PORT", help="address to relay to (the receiver proxy)")
-    parser.add_argument("--bind-out", metavar="HOST:PORT", default=argparse.SUPPRESS, help="local address of the socket toward --to (default: any)")
-    parser.add_argument("--seed", type=int, default=DEFAULT_SEED, help="seed for every random choice; same seed and traffic, same losses")
-    parser.add_argument("--seconds", type=float, default=argparse.SUPPRESS, help="stop after this many seconds (default: run until SIGINT/SIGTERM)")
-    parser.add_argument("--interval", type=float, default=DEFAULT_PROGRESS_INTERVAL_S, metavar="SECONDS",
-                        help="print a progress line this often while running; 0 = only the summary at exit")
-    parser.add_argument("--metrics", metavar="HOST:PORT", default=argparse.SUPPRESS, help="serve Prometheus metrics (fecproxy_impair_*) at http://HOST:PORT/metrics")
-    for prefix, title in (("", "forward direction (and return, unless overridden)"), ("return-", "return direction overrides")):
+    parser.add_argument(
+        "--listen",
+        required=True,
+        default=argparse.SUPPRESS,
+        metavar="HOST:PORT",
+        help="address to receive on; point the sender proxy's link.peer here",
+    )
+    parser.add_argument(
+        "--to",
+        required=True,
+        default=argparse.SUPPRESS,
+        metavar="HOST:PORT",
+        help="address to relay to (the receiver proxy)",
+    )
+    parser.add_argument(
+        "--bind-out",
+        metavar="HOST:PORT",
+        default=argparse.SUPPRESS,
+        help="local address of the socket toward --to (default: any)",
+    )
+    parser.add_argument(
+        "--seed",
+        type=int,
+        default=DEFAULT_SEED,
+        help="seed for every random choice; same seed and traffic, same losses",
+    )
+    parser.add_argument(
+        "--seconds",
+        type=float,
+        default=argparse.SUPPRESS,
+        help="stop after this many seconds (default: run until SIGINT/SIGTERM)",
+    )
+    parser.add_argument(
+        "--interval",
+        type=float,
+        default=DEFAULT_PROGRESS_INTERVAL_S,
+        metavar="SECONDS",
+        help="print a progress line this often while running; 0 = only the summary at exit",
+    )
+    parser.add_argument(
+        "--metrics",
+        metavar="HOST:PORT",
+        default=argparse.SUPPRESS,
+        help="serve Prometheus metrics (fecproxy_impair_*) at http://HOST:PORT/metrics",
+    )
+    for prefix, title in (
+        ("", "forward direction (and return, unless overridden)"),
+        ("return-", "return direction overrides"),
+    ):
         group = parser.add_argument_group(title)
         for suffix, kind, metavar, text in _LINK_OPTIONS:
             if prefix:
@@ -139,7 +186,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
             f"--{prefix}reorder",
             action=argparse.BooleanOptionalAction,
             default=argparse.SUPPRESS,
-            help="return direction: --reorder (default: as --reorder)" if prefix
+            help="return direction: --reorder (default: as --reorder)"
+            if prefix
             else "let jitter reorder datagrams (default: off, a later datagram waits for an earlier one)",
         )
 
@@ -161,7 +209,11 @@ def _link_from_args(args: argparse.Namespace, prefix: str, base: LinkImpairment 
         try:
             loss = channel_from_figures(**loss_given)
         except ChannelConfigError as exc:
-            where = "return direction (--return-* loss options replace the forward ones as a set)" if prefix else "forward direction"
+            where = (
+                "return direction (--return-* loss options replace the forward ones as a set)"
+                if prefix
+                else "forward direction"
+            )
             raise ChannelConfigError(f"{where}: {exc}") from None
     else:
         loss = fallback.loss
@@ -174,8 +226,12 @@ def _link_from_args(args: argparse.Namespace, prefix: str, base: LinkImpairment 
     blackout_text = _option(args, prefix, "blackout")
     return LinkImpairment(
         loss=loss,
-        delay=fallback.delay if _option(args, prefix, "delay-ms") is None else _option(args, prefix, "delay-ms") / 1000.0,
-        jitter=fallback.jitter if _option(args, prefix, "jitter-ms") is None else _option(args, prefix, "jitter-ms") / 1000.0,
+        delay=fallback.delay
+        if _option(args, prefix, "delay-ms") is None
+        else _option(args, prefix, "delay-ms") / 1000.0,
+        jitter=fallback.jitter
+        if _option(args, prefix, "jitter-ms") is None
+        else _option(args, prefix, "jitter-ms") / 1000.0,
         reorder=bool(pick("reorder", fallback.reorder)),
         duplicate=pick("duplicate", fallback.duplicate),
         rate_bps=fallback.rate_bps if rate_kbps is None else (rate_kbps * 1000.0 or None),
@@ -199,7 +255,9 @@ def config_from_args(args: argparse.Namespace) -> RelayConfig:
     )
 
 
-async def _serve(config: RelayConfig, seconds: float | None, metrics: tuple[str, int] | None, interval: float = 0.0) -> int:
+async def _serve(
+    config: RelayConfig, seconds: float | None, metrics: tuple[str, int] | None, interval: float = 0.0
+) -> int:
     relay = UdpRelay(config)
     server = None
     failures: list[BaseException] = []
@@ -207,7 +265,10 @@ async def _serve(config: RelayConfig, seconds: float | None, metrics: tuple[str,
         try:
             async with trio.open_nursery() as nursery:
                 await nursery.start(relay.run)
-                print(f"fecproxy impair: listening on {format_sockaddr(relay.listen_address)}, relaying to {format_sockaddr(config.to)}", flush=True)
+                print(
+                    f"fecproxy impair: listening on {format_sockaddr(relay.listen_address)}, relaying to {format_sockaddr(config.to)}",
+                    flush=True,
+                )
                 print(f"forward: {config.forward.describe()}", flush=True)
                 print(f"return: {config.back.describe()}", flush=True)
                 if metrics is not None:

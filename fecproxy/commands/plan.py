@@ -14,13 +14,18 @@ import sys
 import urllib.error
 import urllib.request
 
-from fecproxy.linkmodel.loss_models import ChannelConfigError, GilbertElliott, channel_from_estimate, channel_from_figures
+from fecproxy.linkmodel.loss_models import (
+    ChannelConfigError,
+    GilbertElliott,
+    channel_from_estimate,
+    channel_from_figures,
+)
 from fecproxy.linkmodel.planner import (
     DEFAULT_K_VALUES,
     DEFAULT_LATENCY_BUDGET_S,
     DEFAULT_MAX_OVERHEAD,
-    DEFAULT_TARGET,
     DEFAULT_SHORT_BLOCK_RULE,
+    DEFAULT_TARGET,
     SENDER_MAX_INTERLEAVE,
     SHORT_BLOCK_RULES,
     Candidate,
@@ -79,8 +84,20 @@ class MetricsError(PlanError):
 #: Options without a default: absent from the namespace until given (argparse.SUPPRESS keeps
 #: "(default: None)" out of --help); :func:`_fill_unset` puts None back before use.
 _UNSET_OPTIONS = (
-    "loss", "burst", "ge_p", "ge_r", "ge_loss_good", "ge_loss_bad", "from_metrics", "rate", "flush_ms", "k", "m",
-    "mean_bytes", "max_bytes", "max_byte_overhead",
+    "loss",
+    "burst",
+    "ge_p",
+    "ge_r",
+    "ge_loss_good",
+    "ge_loss_bad",
+    "from_metrics",
+    "rate",
+    "flush_ms",
+    "k",
+    "m",
+    "mean_bytes",
+    "max_bytes",
+    "max_byte_overhead",
 )
 
 
@@ -113,11 +130,15 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         default=[],
         help="with --from-metrics: keep only samples carrying this label (repeatable)",
     )
-    link.add_argument("--metrics-timeout", type=float, default=DEFAULT_METRICS_TIMEOUT, help="seconds to wait for the metrics page")
+    link.add_argument(
+        "--metrics-timeout", type=float, default=DEFAULT_METRICS_TIMEOUT, help="seconds to wait for the metrics page"
+    )
 
     need = parser.add_argument_group("traffic and budgets")
     need.add_argument("--rate", type=float, help="datagrams per second the sender sees (required to plan)")
-    need.add_argument("--latency-ms", type=float, default=DEFAULT_LATENCY_MS, help="longest wait a recovered datagram may have")
+    need.add_argument(
+        "--latency-ms", type=float, default=DEFAULT_LATENCY_MS, help="longest wait a recovered datagram may have"
+    )
     need.add_argument(
         "--flush-ms",
         type=float,
@@ -131,12 +152,23 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         help="the sender's fec.short_block_repair: repair packets of a block the flush timer closes short "
         "(proportional: ceil(m·k'/k), at least 1; full: m)",
     )
-    need.add_argument("--max-overhead", type=float, default=DEFAULT_MAX_OVERHEAD, help="largest m'/k' on the link (≤ 1, RFC 6363 §8.2)")
-    need.add_argument("--target", type=float, default=DEFAULT_TARGET, help="residual datagram loss to reach")
-    need.add_argument("--mean-bytes", type=float, help="mean datagram size in bytes (with --max-bytes: byte overhead is modelled)")
-    need.add_argument("--max-bytes", type=int, help="longest datagram in bytes: every repair packet is this long plus headers")
     need.add_argument(
-        "--max-byte-overhead", type=float, help="largest repair bytes / source bytes on the link (≤ 1, RFC 6363 §8.2); needs the sizes"
+        "--max-overhead",
+        type=float,
+        default=DEFAULT_MAX_OVERHEAD,
+        help="largest m'/k' on the link (≤ 1, RFC 6363 §8.2)",
+    )
+    need.add_argument("--target", type=float, default=DEFAULT_TARGET, help="residual datagram loss to reach")
+    need.add_argument(
+        "--mean-bytes", type=float, help="mean datagram size in bytes (with --max-bytes: byte overhead is modelled)"
+    )
+    need.add_argument(
+        "--max-bytes", type=int, help="longest datagram in bytes: every repair packet is this long plus headers"
+    )
+    need.add_argument(
+        "--max-byte-overhead",
+        type=float,
+        help="largest repair bytes / source bytes on the link (≤ 1, RFC 6363 §8.2); needs the sizes",
     )
 
     codes = parser.add_argument_group("codes")
@@ -146,7 +178,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         help="source block sizes to consider: a list such as 4,8,16 or ranges such as 8-24",
     )
     codes.add_argument(
-        "--interleave", default="1", help=f"interleave depths D to consider (the sender's fec.interleave, 1..{SENDER_MAX_INTERLEAVE}), e.g. 1,2,4"
+        "--interleave",
+        default="1",
+        help=f"interleave depths D to consider (the sender's fec.interleave, 1..{SENDER_MAX_INTERLEAVE}), e.g. 1,2,4",
     )
     codes.add_argument("--k", type=int, help="evaluation mode: source packets per block of the one code to evaluate")
     codes.add_argument("--m", type=int, help="evaluation mode: repair packets per block of the one code to evaluate")
@@ -187,15 +221,22 @@ def parse_prometheus_text(page: str) -> list[tuple[str, dict[str, str], float]]:
 
 
 def _pick(samples, name: str, select: dict[str, str]) -> float:
-    found = [(labels, value) for n, labels, value in samples if n == name and all(labels.get(k) == v for k, v in select.items())]
+    found = [
+        (labels, value)
+        for n, labels, value in samples
+        if n == name and all(labels.get(k) == v for k, v in select.items())
+    ]
     if not found:
         raise MetricsError(
-            f"the metrics page has no {name}" + (f" with {select}" if select else "")
+            f"the metrics page has no {name}"
+            + (f" with {select}" if select else "")
             + "; is this the metrics page of a fecproxy daemon that receives from the link?"
         )
     if len(found) > 1:
         sets = "; ".join(",".join(f"{k}={v}" for k, v in sorted(labels.items())) or "(none)" for labels, _ in found)
-        raise MetricsError(f"{len(found)} samples of {name} (labels: {sets}); choose one with --metrics-select LABEL=VALUE")
+        raise MetricsError(
+            f"{len(found)} samples of {name} (labels: {sets}); choose one with --metrics-select LABEL=VALUE"
+        )
     return found[0][1]
 
 
@@ -207,7 +248,11 @@ def running_code(samples, select: dict[str, str]) -> dict[str, int] | None:
     on the other direction, while the link estimate describes the direction it receives."""
     figures = {}
     for key, name in (("k", RECEIVED_K_GAUGE), ("m", RECEIVED_M_GAUGE)):
-        found = [v for n, labels, v in samples if n == name and all(labels.get(a) == b for a, b in select.items() if a in labels)]
+        found = [
+            v
+            for n, labels, v in samples
+            if n == name and all(labels.get(a) == b for a, b in select.items() if a in labels)
+        ]
         if len(found) != 1 or not math.isfinite(found[0]):
             return None
         figures[key] = int(found[0])
@@ -220,7 +265,9 @@ def link_from_metrics(url: str, select: list[str], timeout: float = DEFAULT_METR
     return loss, burst
 
 
-def read_metrics(url: str, select: list[str], timeout: float = DEFAULT_METRICS_TIMEOUT) -> tuple[float, float, dict | None]:
+def read_metrics(
+    url: str, select: list[str], timeout: float = DEFAULT_METRICS_TIMEOUT
+) -> tuple[float, float, dict | None]:
     """(average loss, mean burst, running code or None) from a running receiver's page."""
     wanted: dict[str, str] = {}
     for item in select:
@@ -281,7 +328,9 @@ def _verdict(c: Candidate) -> str:
     if c.acceptable:
         return "ok"
     checks = (
-        ("residual", c.meets_target), ("latency", c.within_latency), ("overhead", c.within_overhead),
+        ("residual", c.meets_target),
+        ("latency", c.within_latency),
+        ("overhead", c.within_overhead),
         ("bytes", c.within_byte_overhead),
     )
     misses = [name for name, ok in checks if not ok]
@@ -301,7 +350,10 @@ def format_table(result: Plan, running: dict | None = None) -> str:
     ]
     if req.bytes_modelled:
         budget = "" if req.max_byte_overhead is None else f", max byte overhead {req.max_byte_overhead:g}"
-        lines.insert(2, f"datagrams: mean {req.mean_bytes:g} bytes, longest {req.max_bytes} (repair symbols are that long){budget}")
+        lines.insert(
+            2,
+            f"datagrams: mean {req.mean_bytes:g} bytes, longest {req.max_bytes} (repair symbols are that long){budget}",
+        )
     effective_head = " " + "k'".rjust(4) + " " + "m'".rjust(4) if short else ""
     bytes_head = f" {'bytes_ovh':>9}" if req.bytes_modelled else ""
     lines.append(
@@ -342,7 +394,9 @@ def format_table(result: Plan, running: dict | None = None) -> str:
             f"arriving now (the peer's code as the metrics page's daemon decodes it): k={running['k']} m={running['m']}"
             " (interleave depth is not on the wire)"
         )
-    lines.append("(each row: the fewest repair packets meeting the target for that k and D, else the most the overhead budget allows)")
+    lines.append(
+        "(each row: the fewest repair packets meeting the target for that k and D, else the most the overhead budget allows)"
+    )
     caps = {d: effective_k(max(req.k_values), req.rate, req.flush_time, d) for d in req.depths}
     capped = {d: cap for d, cap in caps.items() if any(k > cap for k in req.k_values)}
     if capped:
@@ -366,7 +420,9 @@ def _evaluate_one(args: argparse.Namespace, channel: GilbertElliott, depths: tup
         raise PlanError("evaluation mode evaluates one code: give a single --interleave depth")
     depth = depths[0]
     if depth > SENDER_MAX_INTERLEAVE:
-        raise PlanError(f"interleave depth {depth} is more than the sender supports (fec.interleave ≤ {SENDER_MAX_INTERLEAVE})")
+        raise PlanError(
+            f"interleave depth {depth} is more than the sender supports (fec.interleave ≤ {SENDER_MAX_INTERLEAVE})"
+        )
     flush = None
     if args.rate is not None:
         flush = (args.flush_ms if args.flush_ms is not None else args.latency_ms) / 1000.0

@@ -13,7 +13,14 @@ import signal
 
 import trio
 
-from fecproxy.commands import EXIT_CANNOT_START, EXIT_INVALID, EXIT_OK, EXIT_UNREADABLE, exit_status_epilog, load_config_or_status
+from fecproxy.commands import (
+    EXIT_CANNOT_START,
+    EXIT_INVALID,
+    EXIT_OK,
+    EXIT_UNREADABLE,
+    exit_status_epilog,
+    load_config_or_status,
+)
 from fecproxy.shell.logs import log_event, setup_logging
 
 log = logging.getLogger("fecproxy.run")
@@ -22,10 +29,18 @@ log = logging.getLogger("fecproxy.run")
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.epilog = exit_status_epilog(EXIT_OK, EXIT_UNREADABLE, EXIT_INVALID, EXIT_CANNOT_START)
     parser.add_argument("config", metavar="CONFIG.yaml", help="daemon configuration (see config/*.yaml)")
-    parser.add_argument("--log-level", choices=["debug", "info", "warning", "error"], default=None,
-                        help="override log.level from the config")
-    parser.add_argument("--log-format", choices=["text", "json"], default=None,
-                        help="override log.format from the config (text = key=value lines)")
+    parser.add_argument(
+        "--log-level",
+        choices=["debug", "info", "warning", "error"],
+        default=None,
+        help="override log.level from the config",
+    )
+    parser.add_argument(
+        "--log-format",
+        choices=["text", "json"],
+        default=None,
+        help="override log.format from the config (text = key=value lines)",
+    )
 
 
 def main(args: argparse.Namespace) -> int:
@@ -50,11 +65,21 @@ def main(args: argparse.Namespace) -> int:
     except SocketOpenError as error:
         # A log event (so --log-format json carries it too), e.g. "event=cannot_start
         # key=listen address=127.0.0.1:5000 error="Address already in use"".
-        log_event(log, logging.ERROR, "cannot_start", config=args.config, key=error.key, address=str(error.address),
-                  error=error.reason, exit_status=EXIT_CANNOT_START)
+        log_event(
+            log,
+            logging.ERROR,
+            "cannot_start",
+            config=args.config,
+            key=error.key,
+            address=str(error.address),
+            error=error.reason,
+            exit_status=EXIT_CANNOT_START,
+        )
         return EXIT_CANNOT_START
     except OSError as error:
-        log_event(log, logging.ERROR, "cannot_start", config=args.config, error=str(error), exit_status=EXIT_CANNOT_START)
+        log_event(
+            log, logging.ERROR, "cannot_start", config=args.config, error=str(error), exit_status=EXIT_CANNOT_START
+        )
         return EXIT_CANNOT_START
     except KeyboardInterrupt:
         pass

@@ -118,7 +118,8 @@ def figures(now: Samples, before: Samples | None = None, seconds: float | None =
     out.residual_loss = _ratio(_delta(now, before, "fecproxy_datagrams_unrecovered_total"), lost + arrived)
     out.recovered = _delta(now, before, "fecproxy_datagrams_recovered_total")
     out.repair_packet_overhead = _ratio(
-        _delta(now, before, "fecproxy_repair_packets_sent_total"), _delta(now, before, "fecproxy_source_packets_sent_total")
+        _delta(now, before, "fecproxy_repair_packets_sent_total"),
+        _delta(now, before, "fecproxy_source_packets_sent_total"),
     )
     out.repair_byte_overhead = _ratio(
         _delta(now, before, "fecproxy_repair_bytes_sent_total"), _delta(now, before, "fecproxy_source_bytes_sent_total")
@@ -178,8 +179,11 @@ def render_endpoint(url: str, view: Figures | str) -> list[str]:
         + (", ".join(f"{reason} {_per(count, f.seconds)}" for reason, count in sorted(f.drops.items())) or "none"),
         f"  flows                        {f.flows:.0f}",
         "  online estimate              "
-        + ("— (no block received from the peer yet)" if f.estimate is None
-           else f"loss {_percent(f.estimate[0])}, mean burst {f.estimate[1]:.2f} packets"),
+        + (
+            "— (no block received from the peer yet)"
+            if f.estimate is None
+            else f"loss {_percent(f.estimate[0])}, mean burst {f.estimate[1]:.2f} packets"
+        ),
     ]
     return lines
 
@@ -212,8 +216,12 @@ def _error_text(error: Exception) -> str:
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("urls", nargs="+", metavar="URL",
-                        help="metrics endpoint of a daemon (host:port or http://host:port/metrics); give the sender's and the receiver's")
+    parser.add_argument(
+        "urls",
+        nargs="+",
+        metavar="URL",
+        help="metrics endpoint of a daemon (host:port or http://host:port/metrics); give the sender's and the receiver's",
+    )
     parser.add_argument("--interval", type=float, default=DEFAULT_INTERVAL_S, help="seconds between frames")
     parser.add_argument("--count", type=int, default=None, help="stop after this many frames (default: until Ctrl-C)")
     parser.add_argument("--once", action="store_true", help="print one frame of totals since start and exit")

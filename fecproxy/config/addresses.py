@@ -88,7 +88,9 @@ def parse_address(text: str, *, allow_port_zero: bool = False, allow_unspecified
         if not sep:
             raise AddressError("has no port")
         if ":" in host:
-            raise AddressError(f"looks like an IPv6 address without brackets; write it as [{clip(host)}]:{clip(port_text)}")
+            raise AddressError(
+                f"looks like an IPv6 address without brackets; write it as [{clip(host)}]:{clip(port_text)}"
+            )
         if not host:
             raise AddressError("has no host before the colon")
         if _LOOKS_NUMERIC.fullmatch(host):

@@ -14,7 +14,6 @@ from fecproxy.config.addresses import AddressError, parse_address
 from fecproxy.config.messages import closest, key_text, kind_of, or_list, show_value
 
 
-
 class Bad(Exception):
     pass
 
@@ -112,7 +111,9 @@ class SizeBoundaries:
 
     def __init__(self, max_count: int, max_bytes: int):
         self.max_count, self.max_bytes = max_count, max_bytes
-        self.expected = f"a list of at most {max_count} increasing byte counts 1..{max_bytes}, e.g. [256] or [] for one class"
+        self.expected = (
+            f"a list of at most {max_count} increasing byte counts 1..{max_bytes}, e.g. [256] or [] for one class"
+        )
 
     def __call__(self, value):
         if not isinstance(value, list):
@@ -160,7 +161,12 @@ class NestedMapping:
             check = self.keys.get(name)
             if check is None:
                 near = closest(name, list(self.keys))
-                faults.append((name, f"unknown key; {f'did you mean {near}?' if near else 'valid keys here are ' + ', '.join(self.keys)}"))
+                faults.append(
+                    (
+                        name,
+                        f"unknown key; {f'did you mean {near}?' if near else 'valid keys here are ' + ', '.join(self.keys)}",
+                    )
+                )
             elif raw is None and name in self.nullable:
                 parsed[name] = None
             elif raw is None:

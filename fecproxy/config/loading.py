@@ -117,7 +117,9 @@ def read_key_file(path: Path) -> MasterKey:
     try:
         descriptor = os.open(path, os.O_RDONLY | getattr(os, "O_CLOEXEC", 0) | getattr(os, "O_NONBLOCK", 0))
     except FileNotFoundError:
-        raise KeyFileError(f"{shown}: no such key file; create one with `fecproxy keygen {shown}` and copy it to the peer") from None
+        raise KeyFileError(
+            f"{shown}: no such key file; create one with `fecproxy keygen {shown}` and copy it to the peer"
+        ) from None
     except OSError as error:
         raise KeyFileError(
             f"{shown}: cannot read the key file ({error.strerror or error}); make it readable by the user fecproxy runs as, "
@@ -131,7 +133,9 @@ def read_key_file(path: Path) -> MasterKey:
     finally:
         os.close(descriptor)
     if len(data) > MAX_KEY_FILE_BYTES:
-        raise KeyFileError(f"{shown}: larger than {MAX_KEY_FILE_BYTES} bytes, so not a key file; expected 64 hexadecimal digits")
+        raise KeyFileError(
+            f"{shown}: larger than {MAX_KEY_FILE_BYTES} bytes, so not a key file; expected 64 hexadecimal digits"
+        )
     return parse_key_text(data.decode("ascii", errors="replace"), shown)
 
 

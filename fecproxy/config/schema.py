@@ -20,10 +20,6 @@ from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from enum import StrEnum
 
-from fecproxy.protocol import decoder as _decoder, encoder as _encoder, wire
-from fecproxy.protocol.flows import FLOW_SLOTS
-from fecproxy.protocol.keys import MasterKey
-from fecproxy.protocol.repair_rule import DEFAULT_SHORT_BLOCK_REPAIR, ShortBlockRepair, repair_count
 from fecproxy.config.addresses import Address
 from fecproxy.config.checkers import (
     AddressField,
@@ -38,6 +34,12 @@ from fecproxy.config.checkers import (
     SizeBoundaries,
 )
 from fecproxy.config.messages import closest, key_text, kind_of, or_list, show_value
+from fecproxy.protocol import decoder as _decoder
+from fecproxy.protocol import encoder as _encoder
+from fecproxy.protocol import wire
+from fecproxy.protocol.flows import FLOW_SLOTS
+from fecproxy.protocol.keys import MasterKey
+from fecproxy.protocol.repair_rule import DEFAULT_SHORT_BLOCK_REPAIR, ShortBlockRepair, repair_count
 
 # --------------------------------------------------------------------------------------------
 # Limits and defaults.  Each is named, with the reason for its value.
@@ -149,7 +151,6 @@ DEFAULT_REPORT_INTERVAL_MS = 1000
 #: A report period above a minute cannot follow a link; it also keeps the value inside the report's
 #: 16-bit interval field (fecproxy.protocol.loss_report.MAX_INTERVAL_MS).
 MAX_REPORT_INTERVAL_MS = 60_000
-
 
 
 # --------------------------------------------------------------------------------------------
@@ -381,14 +382,19 @@ _ADAPT = NestedMapping(
     AdaptSection,
     {
         "target_residual": Number(0, 1, low_open=True, high_open=True, expected="a number 0 < x < 1, e.g. 0.001"),
-        "min_repair": Integer(0, MAX_ENCODING_SYMBOLS - 1, f"an integer 0..{MAX_ENCODING_SYMBOLS - 1} with min_repair ≤ max_repair"),
+        "min_repair": Integer(
+            0, MAX_ENCODING_SYMBOLS - 1, f"an integer 0..{MAX_ENCODING_SYMBOLS - 1} with min_repair ≤ max_repair"
+        ),
         "max_repair": Integer(
             0,
             MAX_ENCODING_SYMBOLS - 1,
             f"an integer 0..{MAX_ENCODING_SYMBOLS - 1} with block_size + max_repair ≤ {MAX_ENCODING_SYMBOLS}, or null",
         ),
         "max_overhead": Number(
-            0, MAX_ENCODING_SYMBOLS, low_open=True, expected="a number 0 < x ≤ 1 (above 1 only with fec.allow_repair_above_source)"
+            0,
+            MAX_ENCODING_SYMBOLS,
+            low_open=True,
+            expected="a number 0 < x ≤ 1 (above 1 only with fec.allow_repair_above_source)",
         ),
     },
     "fec.adapt",
@@ -402,7 +408,20 @@ _DESTINATION = AddressField(bindable=False)
 # The schema table: YAML key -> checker, with defaults taken from the dataclasses above.
 # --------------------------------------------------------------------------------------------
 
-TOP_LEVEL_KEYS = ("role", "listen", "forward", "link", "fec", "decoder", "flows", "sockets", "log", "metrics", "reports", "auth")
+TOP_LEVEL_KEYS = (
+    "role",
+    "listen",
+    "forward",
+    "link",
+    "fec",
+    "decoder",
+    "flows",
+    "sockets",
+    "log",
+    "metrics",
+    "reports",
+    "auth",
+)
 
 _TOP_SCALARS: dict[str, Callable] = {
     "role": Choice(Role, "role"),
@@ -444,14 +463,18 @@ _SECTIONS: dict[str, tuple[type, dict[str, Callable]]] = {
             "hold_ms": Integer(1, MAX_HOLD_MS, f"an integer number of milliseconds 1..{MAX_HOLD_MS}"),
             "max_open_blocks": Integer(1, MAX_OPEN_BLOCKS_LIMIT),
             "max_memory_bytes": Integer(MIN_MEMORY_BYTES, MAX_MEMORY_BYTES_LIMIT),
-            "max_rebuilds_per_s": Integer(1, MAX_REBUILDS_PER_S_LIMIT, f"an integer 1..{MAX_REBUILDS_PER_S_LIMIT}, or null for no cap"),
+            "max_rebuilds_per_s": Integer(
+                1, MAX_REBUILDS_PER_S_LIMIT, f"an integer 1..{MAX_REBUILDS_PER_S_LIMIT}, or null for no cap"
+            ),
         },
     ),
     "flows": (
         FlowsSection,
         {
             "max": Integer(1, MAX_FLOWS_LIMIT, f"an integer 1..{MAX_FLOWS_LIMIT} (half the 16-bit flow slot space)"),
-            "idle_timeout_s": Integer(1, MAX_FLOW_IDLE_TIMEOUT_S, f"an integer number of seconds 1..{MAX_FLOW_IDLE_TIMEOUT_S}"),
+            "idle_timeout_s": Integer(
+                1, MAX_FLOW_IDLE_TIMEOUT_S, f"an integer number of seconds 1..{MAX_FLOW_IDLE_TIMEOUT_S}"
+            ),
             "first_exchange_timeout_s": Integer(
                 1, MAX_FLOW_IDLE_TIMEOUT_S, f"an integer number of seconds 1..{MAX_FLOW_IDLE_TIMEOUT_S}"
             ),
@@ -463,8 +486,12 @@ _SECTIONS: dict[str, tuple[type, dict[str, Callable]]] = {
     "sockets": (
         SocketsSection,
         {
-            "receive_buffer_bytes": Integer(0, MAX_SOCKET_BUFFER_BYTES, f"an integer 0..{MAX_SOCKET_BUFFER_BYTES} (0 = OS default)"),
-            "send_buffer_bytes": Integer(0, MAX_SOCKET_BUFFER_BYTES, f"an integer 0..{MAX_SOCKET_BUFFER_BYTES} (0 = OS default)"),
+            "receive_buffer_bytes": Integer(
+                0, MAX_SOCKET_BUFFER_BYTES, f"an integer 0..{MAX_SOCKET_BUFFER_BYTES} (0 = OS default)"
+            ),
+            "send_buffer_bytes": Integer(
+                0, MAX_SOCKET_BUFFER_BYTES, f"an integer 0..{MAX_SOCKET_BUFFER_BYTES} (0 = OS default)"
+            ),
         },
     ),
     "log": (
@@ -482,7 +509,9 @@ _SECTIONS: dict[str, tuple[type, dict[str, Callable]]] = {
         ReportsSection,
         {
             "interval_ms": Integer(
-                0, MAX_REPORT_INTERVAL_MS, f"an integer number of milliseconds 0..{MAX_REPORT_INTERVAL_MS} (0 = no reports)"
+                0,
+                MAX_REPORT_INTERVAL_MS,
+                f"an integer number of milliseconds 0..{MAX_REPORT_INTERVAL_MS} (0 = no reports)",
             ),
         },
     ),
@@ -491,7 +520,13 @@ _SECTIONS: dict[str, tuple[type, dict[str, Callable]]] = {
 
 #: Keys whose absence (or null) means "not set" rather than "take a default".
 _OPTIONAL = {
-    "listen", "forward", "link.peer", "metrics.listen", "fec.adapt", "auth.key_file", "auth.previous_key_file",
+    "listen",
+    "forward",
+    "link.peer",
+    "metrics.listen",
+    "fec.adapt",
+    "auth.key_file",
+    "auth.previous_key_file",
     "decoder.max_rebuilds_per_s",
 }
 #: The optional package behind auth.encrypt, and how to get it.
@@ -552,10 +587,14 @@ class _Parser:
 
     def run(self, document) -> Config:
         if document is None:
-            raise ConfigError([f"{self.source}: the document is empty; expected a mapping with at least role and link.bind"])
+            raise ConfigError(
+                [f"{self.source}: the document is empty; expected a mapping with at least role and link.bind"]
+            )
         if not isinstance(document, Mapping):
             raise ConfigError(
-                [f"{self.source}: the document is {kind_of(document)}; expected a mapping of settings (key: value lines)"]
+                [
+                    f"{self.source}: the document is {kind_of(document)}; expected a mapping of settings (key: value lines)"
+                ]
             )
         for key, raw in document.items():
             name = key_text(key)
@@ -594,7 +633,9 @@ class _Parser:
             return  # "metrics:" with everything commented out is an empty section
         keys = _SECTIONS[name][1]
         if not isinstance(raw, Mapping):
-            self.error(name, f"{show_value(raw)} is {kind_of(raw)}; expected a mapping of {name} settings ({', '.join(keys)})")
+            self.error(
+                name, f"{show_value(raw)} is {kind_of(raw)}; expected a mapping of {name} settings ({', '.join(keys)})"
+            )
             return
         for key, value in raw.items():
             key_name = key_text(key)
@@ -679,7 +720,9 @@ class _Parser:
                 f"{adapt.max_overhead:g} is above 1; expected max_overhead ≤ 1 (RFC 6363 §8.2 keeps the repair rate "
                 f"at or below the source rate), or set fec.allow_repair_above_source: true",
             )
-        elif (adapt.max_repair is None or adapt.min_repair <= adapt.max_repair) and adapt.min_repair > adapt.repair_ceiling(k):
+        elif (
+            adapt.max_repair is None or adapt.min_repair <= adapt.max_repair
+        ) and adapt.min_repair > adapt.repair_ceiling(k):
             self.error(
                 "fec.adapt.min_repair",
                 f"{adapt.min_repair} is above the {adapt.repair_ceiling(k)} repair packets that fec.adapt.max_overhead "
@@ -723,7 +766,10 @@ class _Parser:
                     f"sends with) as well: previous_key_file is only the second key accepted during a rollover",
                 )
             if self.values.get("auth.encrypt") is True:
-                self.error("auth.encrypt", "true needs auth.key_file; expected a key file on both sides (`fecproxy keygen PATH`)")
+                self.error(
+                    "auth.encrypt",
+                    "true needs auth.key_file; expected a key file on both sides (`fecproxy keygen PATH`)",
+                )
         if key_file is not None and previous is not None and key_file == previous:
             self.error(
                 "auth.previous_key_file",
@@ -773,4 +819,3 @@ def parse_config(document: object, source: str = "<config>") -> Config:
     """Validate an already-loaded document (a mapping, as from YAML); raise ConfigError listing
     every fault.  Used by :func:`load_config`, by SIGHUP reloads and by tests."""
     return _Parser(source).run(document)
-

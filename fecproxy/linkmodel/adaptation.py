@@ -117,7 +117,9 @@ class AdaptPolicy:
         if not 0 <= self.min_repair <= self.max_repair:
             raise AdaptError(f"need 0 ≤ min_repair ≤ max_repair, got {self.min_repair}, {self.max_repair}")
         if k + self.max_repair > MAX_BLOCK_PACKETS:
-            raise AdaptError(f"block_size + max_repair = {k + self.max_repair} exceeds {MAX_BLOCK_PACKETS} (RFC 5510 §8.2)")
+            raise AdaptError(
+                f"block_size + max_repair = {k + self.max_repair} exceeds {MAX_BLOCK_PACKETS} (RFC 5510 §8.2)"
+            )
         ceiling = math.inf if self.allow_repair_above_source else 1.0
         if not 0.0 < self.max_overhead <= ceiling:
             raise AdaptError(

@@ -80,7 +80,7 @@ class Blackout:
         return (elapsed - self.offset) % self.period < self.duration
 
     @classmethod
-    def parse(cls, text: str) -> "Blackout | None":
+    def parse(cls, text: str) -> Blackout | None:
         """'3s/60s', '500ms/10s@2s', '3/60' (seconds), or 'none'."""
         text = text.strip().lower()
         if text in ("", "none", "off", "0"):
@@ -136,7 +136,9 @@ class LinkImpairment:
             if value is not None and not (math.isfinite(value) and value > 0):
                 raise ImpairmentConfigError(f"{name} must be > 0 (or unset for no cap), got {value!r}")
         if not (isinstance(self.queue_packets, int) and 1 <= self.queue_packets <= MAX_QUEUE_PACKETS):
-            raise ImpairmentConfigError(f"queue_packets must be an int in [1, {MAX_QUEUE_PACKETS}], got {self.queue_packets!r}")
+            raise ImpairmentConfigError(
+                f"queue_packets must be an int in [1, {MAX_QUEUE_PACKETS}], got {self.queue_packets!r}"
+            )
 
     @property
     def rate_capped(self) -> bool:
@@ -206,7 +208,12 @@ class ImpairedLink:
     """One direction of the emulated link.  Deterministic for a given seed and call sequence."""
 
     def __init__(
-        self, config: LinkImpairment, *, seed: int | str = 0, start: float = 0.0, header_bytes: int = IPV4_UDP_HEADER_BYTES
+        self,
+        config: LinkImpairment,
+        *,
+        seed: int | str = 0,
+        start: float = 0.0,
+        header_bytes: int = IPV4_UDP_HEADER_BYTES,
     ) -> None:
         self.config = config
         self.header_bytes = header_bytes  # IP + UDP bytes the rate cap counts per datagram

@@ -62,17 +62,19 @@ class GilbertElliott:
         for name in ("p", "r", "loss_good", "loss_bad"):
             object.__setattr__(self, name, _probability(name, getattr(self, name)))
         if self.p + self.r == 0.0:
-            raise ChannelConfigError("p + r must be > 0: with p = r = 0 the chain never moves and has no stationary state")
+            raise ChannelConfigError(
+                "p + r must be > 0: with p = r = 0 the chain never moves and has no stationary state"
+            )
 
     # -- constructors ---------------------------------------------------------------------------
 
     @classmethod
-    def no_loss(cls) -> "GilbertElliott":
+    def no_loss(cls) -> GilbertElliott:
         """A perfect link: the chain never leaves the good state, which loses nothing."""
         return cls(p=0.0, r=1.0)
 
     @classmethod
-    def bernoulli(cls, loss: float) -> "GilbertElliott":
+    def bernoulli(cls, loss: float) -> GilbertElliott:
         """Independent losses with probability ``loss``: the memoryless chain p = loss, r = 1 − loss."""
         loss = _probability("loss", loss)
         if loss == 1.0:
@@ -80,7 +82,7 @@ class GilbertElliott:
         return cls(p=loss, r=1.0 - loss)
 
     @classmethod
-    def from_loss_burst(cls, loss: float, burst: float) -> "GilbertElliott":
+    def from_loss_burst(cls, loss: float, burst: float) -> GilbertElliott:
         """Simple Gilbert channel with average loss P and mean burst B: r = 1/B, p = P/(B(1 − P)).
 
         B counts consecutive lost packets, so B ≥ 1; B = 1 means losses never touch (that is *not*
@@ -177,7 +179,9 @@ def channel_from_figures(
     friendly = loss is not None or burst is not None
     four = any(v is not None for v in (p, r, loss_good, loss_bad))
     if friendly and four:
-        raise ChannelConfigError("give either average loss (+ mean burst) or the Gilbert–Elliott p, r, loss_good, loss_bad, not both")
+        raise ChannelConfigError(
+            "give either average loss (+ mean burst) or the Gilbert–Elliott p, r, loss_good, loss_bad, not both"
+        )
     if four:
         if p is None or r is None:
             raise ChannelConfigError("the Gilbert–Elliott form needs both p and r")

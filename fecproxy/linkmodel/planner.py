@@ -268,7 +268,9 @@ class PlanRequest:
         if (self.mean_bytes is None) != (self.max_bytes is None):
             raise PlanError("datagram sizes need both the mean and the longest size")
         if self.mean_bytes is not None:
-            if not (math.isfinite(self.mean_bytes) and 0 <= self.mean_bytes <= self.max_bytes <= wire.MAX_DATAGRAM_LIMIT):
+            if not (
+                math.isfinite(self.mean_bytes) and 0 <= self.mean_bytes <= self.max_bytes <= wire.MAX_DATAGRAM_LIMIT
+            ):
                 raise PlanError(
                     f"datagram sizes must satisfy 0 ≤ mean ≤ max ≤ {wire.MAX_DATAGRAM_LIMIT} bytes, "
                     f"got mean {self.mean_bytes!r} and max {self.max_bytes!r}"
@@ -284,7 +286,9 @@ class PlanRequest:
         if self.flush is not None and not (math.isfinite(self.flush) and self.flush > 0):
             raise PlanError(f"flush time must be > 0 seconds, got {self.flush!r}")
         if self.short_block_repair not in SHORT_BLOCK_RULES:
-            raise PlanError(f"short-block rule must be one of {', '.join(SHORT_BLOCK_RULES)}, got {self.short_block_repair!r}")
+            raise PlanError(
+                f"short-block rule must be one of {', '.join(SHORT_BLOCK_RULES)}, got {self.short_block_repair!r}"
+            )
         object.__setattr__(self, "k_values", tuple(sorted(set(self.k_values))))
         object.__setattr__(self, "depths", tuple(sorted(set(self.depths))))
 
@@ -425,7 +429,9 @@ def plan(request: PlanRequest) -> Plan:
             in_budget = [m for m in range(max_m + 1) if m_eff[m] <= k_eff * request.max_overhead + _BUDGET_SLACK]
             if request.max_byte_overhead is not None:
                 in_budget = [
-                    m for m in in_budget if request.byte_overhead(k_eff, m_eff[m]) <= request.max_byte_overhead + _BUDGET_SLACK
+                    m
+                    for m in in_budget
+                    if request.byte_overhead(k_eff, m_eff[m]) <= request.max_byte_overhead + _BUDGET_SLACK
                 ] or [0]
             options = evaluate_repair_range(request.channel, k_eff, max(m_eff[m] for m in in_budget), depth)
             chosen = next((m for m in in_budget if options[m_eff[m]].residual_loss <= request.target), in_budget[-1])

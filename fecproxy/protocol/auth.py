@@ -233,7 +233,9 @@ def peek_trailer(packet: bytes) -> tuple[int, int, int]:
     """
     size = len(packet)
     if size < MIN_PROTECTED_BYTES:
-        raise AuthError("truncated", f"packet of {size} bytes is shorter than a header and a {TRAILER_BYTES}-byte tag trailer")
+        raise AuthError(
+            "truncated", f"packet of {size} bytes is shorter than a header and a {TRAILER_BYTES}-byte tag trailer"
+        )
     key_id, sequence = _TRAILER_HEAD.unpack_from(packet, size - TRAILER_BYTES)
     (session,) = _SESSION.unpack_from(packet, 2)
     return session, key_id, sequence
@@ -254,7 +256,11 @@ def verify(packet: bytes, keyring: Keyring) -> Verified:
     encrypted = bool(flags & FLAG_ENCRYPTED)
     if encrypted != keyring.encrypt:
         peer, here = ("encrypts", "does not") if encrypted else ("does not encrypt", "does")
-        raise AuthError("mode_mismatch", f"the peer {peer} (auth.encrypt) but this side {here}: set auth.encrypt alike on both sides (or the packet is forged)", key_id)
+        raise AuthError(
+            "mode_mismatch",
+            f"the peer {peer} (auth.encrypt) but this side {here}: set auth.encrypt alike on both sides (or the packet is forged)",
+            key_id,
+        )
     candidates = keyring.candidates(key_id)
     if not candidates:
         ours = ", ".join(f"0x{known:02x}" for known in keyring.key_ids)
@@ -276,7 +282,11 @@ def verify(packet: bytes, keyring: Keyring) -> Verified:
             if body is not None:
                 plain = packet[:1] + _FLAG_BYTES[flags & ~_AUTH_FLAGS] + packet[2:HEADER_BYTES] + body
                 return Verified(plain, key_id, sequence, session, key is not keyring.current)
-    raise AuthError("bad_tag", f"tag check failed for key id 0x{key_id:02x}: forged or damaged packet, or a different key with the same id", key_id)
+    raise AuthError(
+        "bad_tag",
+        f"tag check failed for key id 0x{key_id:02x}: forged or damaged packet, or a different key with the same id",
+        key_id,
+    )
 
 
 def _decrypt(key: PacketKey, packet: bytes, sequence: int) -> bytes | None:
@@ -301,7 +311,9 @@ def open_packet(packet: bytes, keyring: Keyring, window: ReplayWindow) -> Verifi
     _, _, sequence = peek_trailer(packet)
     verdict = window.check(sequence)
     if not verdict.accepted:
-        raise ReplayedPacket(f"sequence {sequence} is {verdict.value.replace('_', ' ')} (highest {window.highest})", sequence)
+        raise ReplayedPacket(
+            f"sequence {sequence} is {verdict.value.replace('_', ' ')} (highest {window.highest})", sequence
+        )
     verified = verify(packet, keyring)
     window.commit(sequence)
     return verified

@@ -66,14 +66,14 @@ from fecproxy.protocol.events import (
     BlockReport,
     ControlReceived,
     Delivery,
-    DropReason,
     Dropped,
+    DropReason,
     Event,
     SessionStarted,
     direct_delivery,
 )
-from fecproxy.protocol.replay import ReplayWindow
 from fecproxy.protocol.received_code import ReceivedCode
+from fecproxy.protocol.replay import ReplayWindow
 
 #: How long an incomplete block waits for more packets.  Must exceed the sender's flush interval
 #: plus the link's delay spread; 500 ms covers a geostationary hop's jitter with room to spare
@@ -171,7 +171,21 @@ class _Session:
 
 
 class _Block:
-    __slots__ = ("sbn", "first_seen", "k", "sources", "repairs", "symbol_len", "max_esi", "arrived", "rebuilt", "told_previous", "owner", "bytes", "deferred")
+    __slots__ = (
+        "sbn",
+        "first_seen",
+        "k",
+        "sources",
+        "repairs",
+        "symbol_len",
+        "max_esi",
+        "arrived",
+        "rebuilt",
+        "told_previous",
+        "owner",
+        "bytes",
+        "deferred",
+    )
 
     def __init__(self, sbn: int, now: float, owner: _Session):
         self.sbn = sbn
@@ -259,14 +273,27 @@ class BlockDecoder:
                     if block is None:
                         block = self._block_for(primary, sbn, now, events)
                         if block is None:
-                            self._outside_block(primary, sbn, esi, flow_word >> wire.FLOW_SHIFT, bytes(data[wire.SOURCE_HEADER_BYTES:]), events)
+                            self._outside_block(
+                                primary,
+                                sbn,
+                                esi,
+                                flow_word >> wire.FLOW_SHIFT,
+                                bytes(data[wire.SOURCE_HEADER_BYTES :]),
+                                events,
+                            )
                             return events, True
                     previous_k = flow_word & wire.PREVIOUS_K_MASK
                     if previous_k and not block.told_previous:
                         block.told_previous = True
                         self._learn_previous_k(primary, sbn, previous_k, now, events)
                     self._add_source_fields(
-                        block, sbn, esi, flow_word >> wire.FLOW_SHIFT, bool(flags), bytes(data[wire.SOURCE_HEADER_BYTES:]), events
+                        block,
+                        sbn,
+                        esi,
+                        flow_word >> wire.FLOW_SHIFT,
+                        bool(flags),
+                        bytes(data[wire.SOURCE_HEADER_BYTES :]),
+                        events,
                     )
                     self._try_finish(block, now, events)
                     return events, True
@@ -301,7 +328,9 @@ class BlockDecoder:
             window = live.window if live is not None else self._retired_windows.get(session)
             verdict = window.check(sequence) if window is not None else None
             if verdict is not None and not verdict.accepted:
-                raise auth.ReplayedPacket(f"sequence {sequence} is {verdict.value.replace('_', ' ')} (highest {window.highest})", sequence)
+                raise auth.ReplayedPacket(
+                    f"sequence {sequence} is {verdict.value.replace('_', ' ')} (highest {window.highest})", sequence
+                )
             verified = auth.verify(data, self.keyring)
         except auth.AuthError as error:
             return self._drop(DropReason.AUTH, str(error), error)
@@ -363,11 +392,16 @@ class BlockDecoder:
         hold = self.settings.hold_time
         if len(self._sessions) >= MAX_SESSIONS:
             evictable = [
-                s for s in self._sessions.values()
+                s
+                for s in self._sessions.values()
                 if now - s.last_seen >= hold or (s is not self._primary and s.packets < SESSION_CONFIRM_PACKETS)
             ]
             if not evictable:
-                events.append(self._drop(DropReason.SESSION_LIMIT, f"session {session:#010x}: {MAX_SESSIONS} live sessions already"))
+                events.append(
+                    self._drop(
+                        DropReason.SESSION_LIMIT, f"session {session:#010x}: {MAX_SESSIONS} live sessions already"
+                    )
+                )
                 return None
             self._end_session(min(evictable, key=lambda s: s.last_seen), events)
         window = self._retired_windows.pop(session, None) if self.keyring is not None else None
@@ -387,7 +421,9 @@ class BlockDecoder:
         if sess is self._primary:
             self._primary = None  # the session stays named in self.session until another is chosen
 
-    def _admit(self, sess: _Session, pkt: wire.SourcePacket | wire.RepairPacket, now: float, events: list[Event]) -> None:
+    def _admit(
+        self, sess: _Session, pkt: wire.SourcePacket | wire.RepairPacket, now: float, events: list[Event]
+    ) -> None:
         """Add a packet to its block (opening it if new) and finish the block if it can."""
         block = self._block_for(sess, pkt.sbn, now, events)
         if block is None:
@@ -439,7 +475,11 @@ class BlockDecoder:
 
         The decoder stays usable; later packets open new blocks.
         """
-        return [self._finish(block, BlockOutcome.EXPIRED) for sess in list(self._sessions.values()) for block in list(sess.open.values())]
+        return [
+            self._finish(block, BlockOutcome.EXPIRED)
+            for sess in list(self._sessions.values())
+            for block in list(sess.open.values())
+        ]
 
     # ------------------------------------------------------------------ internals
     def _drop(self, reason: DropReason, detail: str, error: Exception | None = None) -> Dropped:
@@ -471,7 +511,9 @@ class BlockDecoder:
         if block is not None:
             block.k = k
 
-    def _block_for(self, sess: _Session, sbn: int, now: float, events: list[Event], keep: _Block | None = None) -> _Block | None:
+    def _block_for(
+        self, sess: _Session, sbn: int, now: float, events: list[Event], keep: _Block | None = None
+    ) -> _Block | None:
         """The open block ``sbn`` of ``sess``, opened if new and within the window (making room
         under both budgets, never by evicting ``keep``); None if finished or too far behind."""
         block = sess.open.get(sbn)
@@ -588,18 +630,26 @@ class BlockDecoder:
             events.append(self._drop(DropReason.DUPLICATE, f"repair {pkt.sbn}/{pkt.esi} seen before"))
             return
         if block.k is not None and block.k != pkt.k:
-            events.append(self._drop(DropReason.INCONSISTENT, f"repair says k={pkt.k}, block {pkt.sbn} has k={block.k}"))
+            events.append(
+                self._drop(DropReason.INCONSISTENT, f"repair says k={pkt.k}, block {pkt.sbn} has k={block.k}")
+            )
             return
         if block.max_esi >= pkt.k:
-            events.append(self._drop(DropReason.INCONSISTENT, f"repair says k={pkt.k} but source ESI {block.max_esi} was seen"))
+            events.append(
+                self._drop(DropReason.INCONSISTENT, f"repair says k={pkt.k} but source ESI {block.max_esi} was seen")
+            )
             return
         size = len(pkt.symbol)
         if block.symbol_len is not None and block.symbol_len != size:
-            events.append(self._drop(DropReason.INCONSISTENT, f"repair symbol of {size} bytes, block uses {block.symbol_len}"))
+            events.append(
+                self._drop(DropReason.INCONSISTENT, f"repair symbol of {size} bytes, block uses {block.symbol_len}")
+            )
             return
         longest = max((len(data) for _, data in block.sources.values()), default=0)
         if longest + wire.SYMBOL_PREFIX_BYTES > size:
-            events.append(self._drop(DropReason.INCONSISTENT, f"repair symbol of {size} bytes shorter than a source datagram"))
+            events.append(
+                self._drop(DropReason.INCONSISTENT, f"repair symbol of {size} bytes shorter than a source datagram")
+            )
             return
         cost = size + PACKET_OVERHEAD_BYTES
         if self._bytes + cost > self.settings.max_memory_bytes and not self._make_room(cost, block, events):
@@ -621,7 +671,11 @@ class BlockDecoder:
             if not self._may_rebuild(now):
                 if not block.deferred:
                     block.deferred = True
-                    events.append(self._drop(DropReason.DECODE_LIMIT, f"block {block.sbn}: rebuild waits, over max_rebuilds_per_s"))
+                    events.append(
+                        self._drop(
+                            DropReason.DECODE_LIMIT, f"block {block.sbn}: rebuild waits, over max_rebuilds_per_s"
+                        )
+                    )
                 return
             events.extend(self._rebuild(block, now))
             events.append(self._finish(block, BlockOutcome.RECOVERED))
@@ -670,7 +724,9 @@ class BlockDecoder:
             symbol = rebuilt[esi]
             flow, size = wire.unpack_symbol_prefix(symbol[:prefix].tobytes())
             if size + prefix > length:
-                events.append(self._drop(DropReason.INCONSISTENT, f"rebuilt datagram {block.sbn}/{esi} claims {size} bytes"))
+                events.append(
+                    self._drop(DropReason.INCONSISTENT, f"rebuilt datagram {block.sbn}/{esi} claims {size} bytes")
+                )
                 continue
             data = symbol[prefix : prefix + size].tobytes()
             block.sources[esi] = (flow, data)
@@ -688,7 +744,9 @@ class BlockDecoder:
         self._bytes -= block.bytes
         # What the block delivered, for late packets: all of it when complete or recovered (-1
         # has every bit set), else the datagrams that arrived.
-        sess.finished[block.sbn] = -1 if outcome is BlockOutcome.COMPLETE or outcome is BlockOutcome.RECOVERED else block.arrived
+        sess.finished[block.sbn] = (
+            -1 if outcome is BlockOutcome.COMPLETE or outcome is BlockOutcome.RECOVERED else block.arrived
+        )
         while len(sess.finished) > self._window():
             sess.finished.popitem(last=False)
         if outcome is BlockOutcome.COMPLETE or outcome is BlockOutcome.RECOVERED:

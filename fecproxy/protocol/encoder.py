@@ -194,12 +194,39 @@ class _Block:
     """An open block, then (closed by ``send_batch``) one whose repair is still to be computed."""
 
     __slots__ = (
-        "storage", "symbols", "width", "sbn", "base", "key", "class_name", "settings", "count", "symbol_len",
-        "content", "deadline", "previous_k", "k", "m", "length", "packets", "group", "lane", "limit",
+        "storage",
+        "symbols",
+        "width",
+        "sbn",
+        "base",
+        "key",
+        "class_name",
+        "settings",
+        "count",
+        "symbol_len",
+        "content",
+        "deadline",
+        "previous_k",
+        "k",
+        "m",
+        "length",
+        "packets",
+        "group",
+        "lane",
+        "limit",
     )
 
-    def __init__(self, storage: memoryview, symbols: np.ndarray, sbn: int, key: int, class_name: str,
-                 settings: EncoderSettings, deadline: float, previous_k: int):
+    def __init__(
+        self,
+        storage: memoryview,
+        symbols: np.ndarray,
+        sbn: int,
+        key: int,
+        class_name: str,
+        settings: EncoderSettings,
+        deadline: float,
+        previous_k: int,
+    ):
         self.storage, self.symbols, self.width = storage, symbols, symbols.shape[1]
         self.sbn, self.base, self.key, self.class_name = sbn, sbn << wire.ESI_BITS, key, class_name
         self.settings = settings
@@ -304,7 +331,9 @@ class BlockEncoder:
         carry = self._carry
         previous_k = carry[1] if carry is not None and (carry[0] + 1) % wire.SBN_MODULUS == sbn else 0
         self._carry = None
-        block = _Block(storage, symbols, sbn, key, settings.class_names[index], settings, now + settings.flush_interval, previous_k)
+        block = _Block(
+            storage, symbols, sbn, key, settings.class_names[index], settings, now + settings.flush_interval, previous_k
+        )
         self._open[key] = block
         self._by_sbn[sbn] = block
         self._newest = block

@@ -28,7 +28,9 @@ class DropReason(StrEnum):
     DUPLICATE = "duplicate"  # packet already held
     INCONSISTENT = "inconsistent"  # contradicts what the block already holds (k, symbol size)
     FLOW_LIMIT = "flow_limit"  # flow table full
-    UNKNOWN_FLOW = "unknown_flow"  # a conversation that is over: reply for an ended flow, late datagram of an older generation
+    UNKNOWN_FLOW = (
+        "unknown_flow"  # a conversation that is over: reply for an ended flow, late datagram of an older generation
+    )
     NO_PEER = "no_peer"  # receiver has no peer address yet to send replies to
     UNREACHABLE = "unreachable"  # receiver could not open a socket towards forward
     NO_SOCKET = "no_socket"  # receiver could not create a flow's socket (file-descriptor limit, memory)

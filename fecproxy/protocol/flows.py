@@ -134,7 +134,9 @@ _AFTER_REQUEST = (_FIRST_REQUEST, _ESTABLISHED, _ESTABLISHED)
 _AFTER_REPLY = (_ANSWERED, _ANSWERED, _ESTABLISHED)
 
 
-def _check_settings(max_flows: int, limit: int, first_exchange_timeout: float, idle_timeout: float, protect: float) -> None:
+def _check_settings(
+    max_flows: int, limit: int, first_exchange_timeout: float, idle_timeout: float, protect: float
+) -> None:
     if not 1 <= max_flows <= limit:
         raise ValueError(f"max_flows must be 1..{limit}, got {max_flows}")
     if not first_exchange_timeout > 0 or not idle_timeout > 0:

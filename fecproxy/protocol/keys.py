@@ -113,7 +113,9 @@ def parse_key_text(text: str, source: str) -> MasterKey:
         raise KeyFileError(f"{source}: the key file is empty; {remedy}")
     bad = next((position for position, char in enumerate(digits) if char not in "0123456789abcdefABCDEF"), None)
     if bad is not None:
-        raise KeyFileError(f"{source}: the key holds a character that is not a hexadecimal digit (at digit {bad + 1}); {remedy}")
+        raise KeyFileError(
+            f"{source}: the key holds a character that is not a hexadecimal digit (at digit {bad + 1}); {remedy}"
+        )
     if len(digits) != KEY_HEX_DIGITS:
         raise KeyFileError(f"{source}: the key has {len(digits)} hexadecimal digits; {remedy}")
     return MasterKey(bytes.fromhex(digits))
@@ -142,4 +144,3 @@ def check_key_file_mode(st_mode: int, source: str) -> None:
 def key_fingerprint_text(master: MasterKey) -> str:
     """What may be shown of a key: its id (already on the wire in every packet)."""
     return f"key id 0x{master.key_id:02x}"
-

@@ -186,9 +186,21 @@ def parse_report(body: bytes) -> LossReport:
         raise UnsupportedReport(f"control message kind {body[0]} is not defined")
     if size != BODY_BYTES:
         raise ReportError(f"loss report of {size} bytes; expected exactly {BODY_BYTES}")
-    (_, flags, interval_ms, epoch, sequence, received, repaired, lost, unrecovered, loss_raw, burst_raw, samples, sbn_reserved) = (
-        BODY.unpack(body)
-    )
+    (
+        _,
+        flags,
+        interval_ms,
+        epoch,
+        sequence,
+        received,
+        repaired,
+        lost,
+        unrecovered,
+        loss_raw,
+        burst_raw,
+        samples,
+        sbn_reserved,
+    ) = BODY.unpack(body)
     if flags & ~_KNOWN_FLAGS:
         raise UnsupportedReport(f"loss report flags 0x{flags:02x} set bits this version does not define")
     if interval_ms == 0:

@@ -235,7 +235,12 @@ def parse(packet: bytes, *, max_datagram: int) -> Packet:
             raise OversizePacket(f"source datagram of {payload} bytes exceeds the limit of {max_datagram}")
         word = SOURCE_HEADER.unpack_from(packet)[4]
         return SourcePacket(
-            session, sbn, esi, word >> FLOW_SHIFT, bool(flags & FLAG_END), bytes(packet[SOURCE_HEADER_BYTES:]),
+            session,
+            sbn,
+            esi,
+            word >> FLOW_SHIFT,
+            bool(flags & FLAG_END),
+            bytes(packet[SOURCE_HEADER_BYTES:]),
             word & PREVIOUS_K_MASK,
         )
     if kind == PacketType.REPAIR:
@@ -263,5 +268,5 @@ def parse(packet: bytes, *, max_datagram: int) -> Packet:
             raise InvalidField(f"control packet with flags 0x{flags:02x}")
         if sbn_esi:
             raise InvalidField(f"control packet with SBN {sbn} and ESI {esi}; expected 0")
-        return ControlPacket(session, bytes(packet[COMMON_HEADER.size:]))
+        return ControlPacket(session, bytes(packet[COMMON_HEADER.size :]))
     raise UnsupportedPacket(f"packet type {kind} is not defined")

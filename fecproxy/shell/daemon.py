@@ -32,8 +32,8 @@ from fecproxy.config.addresses import format_sockaddr
 from fecproxy.linkmodel.estimator import LossEstimator
 from fecproxy.protocol import auth
 from fecproxy.protocol.decoder import BlockDecoder, DecoderStats
-from fecproxy.protocol.events import BlockReport, ControlReceived, Delivery, DropReason, Dropped, SessionStarted
 from fecproxy.protocol.encoder import BlockEncoder, EncoderStats
+from fecproxy.protocol.events import BlockReport, ControlReceived, Delivery, Dropped, DropReason, SessionStarted
 from fecproxy.protocol.flows import ClientFlowTable, PeerFlowTable
 from fecproxy.protocol.loss_report import KEY_CHECK_BODY
 from fecproxy.shell.fdlimit import ensure_open_files, files_needed
@@ -42,9 +42,9 @@ from fecproxy.shell.metrics import MetricsServer, build_registry, serve
 from fecproxy.shell.reports import Feedback
 from fecproxy.shell.settings import (
     ReloadRejected,
+    apply_flow_timeouts,
     decoder_settings,
     encoder_settings,
-    apply_flow_timeouts,
     flow_table,
     keep_fixed,
     keyring,
@@ -239,7 +239,12 @@ class Daemon:
             log_event(log, logging.INFO, "open_files_raised", soft=limit.soft, was=limit.raised_from, hard=limit.hard)
         if not limit.enough:
             log_event(
-                log, logging.WARNING, "open_files_low", need=limit.need, soft=limit.soft, hard=limit.hard,
+                log,
+                logging.WARNING,
+                "open_files_low",
+                need=limit.need,
+                soft=limit.soft,
+                hard=limit.hard,
                 fix=f"LimitNOFILE={limit.need} in the systemd unit, or ulimit -n {limit.need} before starting",
                 effect=f"about {limit.flows_that_fit} of flows.max={self.config.flows.max} flows fit; "
                 "datagrams of new flows beyond that are dropped (reason no_socket)",
@@ -266,16 +271,24 @@ class Daemon:
                 # k and m: the code this side sends with (on a receiver, its replies); the code it
                 # decodes is the peer's, known from its first repair packets (a "peer_code" line).
                 log_event(
-                    log, logging.INFO, "started", version=__version__, role=str(cfg.role),
+                    log,
+                    logging.INFO,
+                    "started",
+                    version=__version__,
+                    role=str(cfg.role),
                     link=format_sockaddr(self.link_address),
                     peer=format_sockaddr(self.peer) if self.peer else "learned",
                     listen=format_sockaddr(self.listen_address),
                     forward=str(cfg.forward) if cfg.forward else "-",
-                    k=cfg.fec.block_size, m=self.encoder.settings.repair, flush_ms=cfg.fec.flush_ms,
-                    adapt="on" if self.feedback.adapting else "off", reports_ms=cfg.reports.interval_ms,
+                    k=cfg.fec.block_size,
+                    m=self.encoder.settings.repair,
+                    flush_ms=cfg.fec.flush_ms,
+                    adapt="on" if self.feedback.adapting else "off",
+                    reports_ms=cfg.reports.interval_ms,
                     sends="datagrams" if cfg.role == "sender" else "replies",
                     decoding="peer's code unknown until traffic",
-                    session=f"{self.session:08x}", metrics=self.metrics_port or "off",
+                    session=f"{self.session:08x}",
+                    metrics=self.metrics_port or "off",
                     auth=repr(self.decoder.keyring) if self.decoder.keyring is not None else "off",
                 )
                 task_status.started(self)
@@ -301,9 +314,15 @@ class Daemon:
     def summary(self) -> dict[str, int]:
         enc, dec = self.encoder.stats, self.decoder.stats
         return dict(
-            source_sent=enc.source_packets, repair_sent=enc.repair_packets, blocks_sent=enc.blocks,
-            received_source=dec.source_received, received_repair=dec.repair_received,
-            lost=dec.lost, recovered=dec.recovered, unrecovered=dec.unrecovered, delivered=dec.delivered,
+            source_sent=enc.source_packets,
+            repair_sent=enc.repair_packets,
+            blocks_sent=enc.blocks,
+            received_source=dec.source_received,
+            received_repair=dec.repair_received,
+            lost=dec.lost,
+            recovered=dec.recovered,
+            unrecovered=dec.unrecovered,
+            delivered=dec.delivered,
             dropped=sum(self.drop_counts().values()),
         )
 
@@ -343,8 +362,14 @@ class Daemon:
             out = []
         dropped = encoder.stats.dropped.get(DropReason.OVERSIZE, 0) - oversize
         if dropped:
-            log_event(log, logging.DEBUG, "dropped", reason=DropReason.OVERSIZE, count=dropped,
-                      detail=f"datagrams over max_datagram {encoder.settings.max_datagram} bytes")
+            log_event(
+                log,
+                logging.DEBUG,
+                "dropped",
+                reason=DropReason.OVERSIZE,
+                count=dropped,
+                detail=f"datagrams over max_datagram {encoder.settings.max_datagram} bytes",
+            )
         await self._send_to_peer(out)
         self._reschedule()
 
@@ -395,7 +420,13 @@ class Daemon:
                 # dropped nothing: a stranger's packets of a session of its own never move it.
                 if learn and in_session and valid and address != self.peer:
                     if self.peer is not None:
-                        log_event(log, logging.INFO, "peer_changed", old=format_sockaddr(self.peer), new=format_sockaddr(address))
+                        log_event(
+                            log,
+                            logging.INFO,
+                            "peer_changed",
+                            old=format_sockaddr(self.peer),
+                            new=format_sockaddr(address),
+                        )
                     self.peer = address
             await self._deliver(deliveries, now)
             self._reschedule()
@@ -461,7 +492,14 @@ class Daemon:
         apply_flow_timeouts(self.flows, new)
         self.config = keep_fixed(self.config, new)
         self._reloads["applied"] += 1
-        log_event(log, logging.INFO, "reloaded", k=new.fec.block_size, m=self.encoder.settings.repair, flush_ms=new.fec.flush_ms)
+        log_event(
+            log,
+            logging.INFO,
+            "reloaded",
+            k=new.fec.block_size,
+            m=self.encoder.settings.repair,
+            flush_ms=new.fec.flush_ms,
+        )
         self._reschedule()
         return True
 
@@ -486,8 +524,14 @@ class Daemon:
         peer changes m often)."""
         first = self._logged_code is None
         self._logged_code = (k, m)
-        log_event(log, logging.INFO if first else logging.DEBUG, "peer_code", k=k, m=m,
-                  detail="decoding the peer's blocks (k from its repair packets, m = highest repair ESI - k + 1)")
+        log_event(
+            log,
+            logging.INFO if first else logging.DEBUG,
+            "peer_code",
+            k=k,
+            m=m,
+            detail="decoding the peer's blocks (k from its repair packets, m = highest repair ESI - k + 1)",
+        )
 
     async def _stats_loop(self, interval: float) -> None:
         """One INFO line every ``interval`` seconds with the counters since the previous line, so
@@ -500,14 +544,20 @@ class Daemon:
             previous = now
             expected = delta["lost"] + delta["received_source"]
             log_event(
-                log, logging.INFO, "stats", interval_s=interval,
-                datagrams_in=delta["datagrams_in"], datagrams_out=delta["delivered"],
+                log,
+                logging.INFO,
+                "stats",
+                interval_s=interval,
+                datagrams_in=delta["datagrams_in"],
+                datagrams_out=delta["delivered"],
                 link_packets_in=delta["received_source"] + delta["received_repair"],
                 link_packets_out=delta["source_sent"] + delta["repair_sent"],
                 # Ratios of the interval's source datagrams; "-" when the peer sent none.
                 link_loss=round(delta["lost"] / expected, 6) if expected else "-",
                 residual_loss=round(delta["unrecovered"] / expected, 6) if expected else "-",
-                recovered=delta["recovered"], dropped=delta["dropped"], flows=len(self.flows),
+                recovered=delta["recovered"],
+                dropped=delta["dropped"],
+                flows=len(self.flows),
             )
 
     def _stats_snapshot(self) -> dict[str, int]:
@@ -516,7 +566,12 @@ class Daemon:
         return counts
 
     def _next_deadline(self) -> float:
-        cores = (self.encoder.next_deadline(), self.decoder.next_deadline(), self.flows.next_deadline(), *self.feedback.deadlines())
+        cores = (
+            self.encoder.next_deadline(),
+            self.decoder.next_deadline(),
+            self.flows.next_deadline(),
+            *self.feedback.deadlines(),
+        )
         deadlines = [d for d in cores if d is not None]
         return min(deadlines) if deadlines else math.inf
 
@@ -544,7 +599,15 @@ class Daemon:
             self.estimator.observe_block(event.arrived_mask, event.span)
             self.feedback.observe_block(event.arrived_mask, event.span)
             if event.unrecovered:
-                log_event(log, logging.DEBUG, "block_unrecovered", sbn=event.sbn, k=event.k, lost=event.lost, outcome=event.outcome)
+                log_event(
+                    log,
+                    logging.DEBUG,
+                    "block_unrecovered",
+                    sbn=event.sbn,
+                    k=event.k,
+                    lost=event.lost,
+                    outcome=event.outcome,
+                )
         elif kind is Dropped:
             if event.reason is DropReason.AUTH and event.error is not None:
                 # One line per kind of failure per interval: a peer with the wrong key says so
@@ -562,8 +625,13 @@ class Daemon:
                 self._handle_event(drop, now)
         elif kind is SessionStarted:
             self._logged_code = None  # a new peer session: its code is logged afresh
-            log_event(log, logging.INFO, "peer_session", session=f"{event.session:08x}",
-                      previous=f"{event.previous:08x}" if event.previous is not None else "-")
+            log_event(
+                log,
+                logging.INFO,
+                "peer_session",
+                session=f"{event.session:08x}",
+                previous=f"{event.previous:08x}" if event.previous is not None else "-",
+            )
 
     async def _deliver(self, deliveries: list[Delivery], now: float) -> None:
         if not deliveries:

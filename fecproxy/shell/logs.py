@@ -37,7 +37,11 @@ def _quote(value: object) -> str:
 
 class KeyValueFormatter(logging.Formatter):
     def format(self, record: logging.LogRecord) -> str:
-        parts = [f"ts={_timestamp(record)}", f"level={record.levelname.lower()}", f"event={_quote(record.getMessage())}"]
+        parts = [
+            f"ts={_timestamp(record)}",
+            f"level={record.levelname.lower()}",
+            f"event={_quote(record.getMessage())}",
+        ]
         for key, value in getattr(record, "fields", {}).items():
             parts.append(f"{key}={_quote(value)}")
         if record.exc_info:
@@ -47,7 +51,11 @@ class KeyValueFormatter(logging.Formatter):
 
 class JsonFormatter(logging.Formatter):
     def format(self, record: logging.LogRecord) -> str:
-        entry: dict[str, object] = {"ts": _timestamp(record), "level": record.levelname.lower(), "event": record.getMessage()}
+        entry: dict[str, object] = {
+            "ts": _timestamp(record),
+            "level": record.levelname.lower(),
+            "event": record.getMessage(),
+        }
         for key, value in getattr(record, "fields", {}).items():
             entry[key] = value if isinstance(value, (int, float, bool, type(None))) else str(value)
         if record.exc_info:

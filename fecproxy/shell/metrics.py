@@ -112,10 +112,20 @@ class DaemonCollector:
 
         yield counter("fecproxy_source_packets_sent", "Source packets sent on the link.", enc.source_packets)
         yield counter("fecproxy_repair_packets_sent", "Repair packets sent on the link.", enc.repair_packets)
-        yield counter("fecproxy_source_bytes_sent", "Bytes of source packets sent on the link, headers included.", enc.source_bytes)
-        yield counter("fecproxy_repair_bytes_sent", "Bytes of repair packets sent on the link, headers included.", enc.repair_bytes)
+        yield counter(
+            "fecproxy_source_bytes_sent",
+            "Bytes of source packets sent on the link, headers included.",
+            enc.source_bytes,
+        )
+        yield counter(
+            "fecproxy_repair_bytes_sent",
+            "Bytes of repair packets sent on the link, headers included.",
+            enc.repair_bytes,
+        )
         yield counter("fecproxy_blocks_sent", "Source blocks closed and protected.", enc.blocks)
-        yield counter("fecproxy_short_blocks_sent", "Blocks closed by the flush timer before reaching k.", enc.short_blocks)
+        yield counter(
+            "fecproxy_short_blocks_sent", "Blocks closed by the flush timer before reaching k.", enc.short_blocks
+        )
         yield counter(
             "fecproxy_blocks_repair_capped",
             "Blocks whose repair count was cut so repair bytes stay at or below source bytes (RFC 6363 §8.2).",
@@ -133,23 +143,33 @@ class DaemonCollector:
             for class_name in d.size_class_names:
                 family.add_metric([class_name], getattr(enc.classes.get(class_name), name, 0))
             yield family
-        received = CounterMetricFamily("fecproxy_link_packets_received", "Valid FEC packets received from the link.", labels=["kind"])
+        received = CounterMetricFamily(
+            "fecproxy_link_packets_received", "Valid FEC packets received from the link.", labels=["kind"]
+        )
         received.add_metric(["source"], dec.source_received)
         received.add_metric(["repair"], dec.repair_received)
         yield received
-        yield counter("fecproxy_source_packets_lost", "Source datagrams missing on the link, before recovery.", dec.lost)
+        yield counter(
+            "fecproxy_source_packets_lost", "Source datagrams missing on the link, before recovery.", dec.lost
+        )
         yield counter("fecproxy_datagrams_recovered", "Lost datagrams rebuilt from repair packets.", dec.recovered)
         yield counter("fecproxy_datagrams_unrecovered", "Lost datagrams not rebuilt (residual loss).", dec.unrecovered)
         yield counter("fecproxy_datagrams_delivered", "Datagrams handed to the application side.", dec.delivered)
-        yield counter("fecproxy_repair_packets_unneeded", "Repair packets for blocks already complete.", dec.repair_unneeded)
-        blocks = CounterMetricFamily("fecproxy_blocks_received", "Received blocks by how they ended.", labels=["outcome"])
+        yield counter(
+            "fecproxy_repair_packets_unneeded", "Repair packets for blocks already complete.", dec.repair_unneeded
+        )
+        blocks = CounterMetricFamily(
+            "fecproxy_blocks_received", "Received blocks by how they ended.", labels=["outcome"]
+        )
         # Every block outcome and drop reason is exported (as 0 until it happens), so alert rules
         # and dashboards can rely on the series existing; the protocol core owns both lists
         # (fecproxy.protocol.events) and the label values are the members' strings.
         for outcome in BlockOutcome:
             blocks.add_metric([outcome.value], dec.blocks.get(outcome, 0))
         yield blocks
-        dropped = CounterMetricFamily("fecproxy_packets_dropped", "Packets and datagrams dropped, by reason.", labels=["reason"])
+        dropped = CounterMetricFamily(
+            "fecproxy_packets_dropped", "Packets and datagrams dropped, by reason.", labels=["reason"]
+        )
         totals = d.drop_counts()
         for reason in DropReason:
             dropped.add_metric([reason.value], totals.get(reason, 0))
@@ -161,7 +181,9 @@ class DaemonCollector:
         yield reloads
         yield GaugeMetricFamily("fecproxy_flows", "Application flows in the flow table.", value=d.flow_count())
         yield counter(
-            "fecproxy_flows_evicted", "Flows recycled for a new client before their timeout (table full).", d.flows_evicted()
+            "fecproxy_flows_evicted",
+            "Flows recycled for a new client before their timeout (table full).",
+            d.flows_evicted(),
         )
         # Present from the start, NaN until the peer's first block is in (no traffic measured
         # yet), so a dashboard or `fecproxy plan --from-metrics` can tell "idle" from "down".
@@ -199,8 +221,12 @@ class DaemonCollector:
         info.add_metric(
             [],
             {
-                "version": __version__, "role": d.role, "k": str(k), "m": str(m),
-                "interleave": str(d.interleave), "size_classes": ",".join(d.size_class_names),
+                "version": __version__,
+                "role": d.role,
+                "k": str(k),
+                "m": str(m),
+                "interleave": str(d.interleave),
+                "size_classes": ",".join(d.size_class_names),
             },
         )
         yield info
@@ -214,9 +240,24 @@ def _feedback_metrics(feedback: Feedback, shape: tuple[int, int], received: tupl
     k, m = shape
     received_k, received_m = (math.nan if value is None else value for value in received)
     for name, doc, sent, seen in (
-        ("fecproxy_code_source_symbols", "Source datagrams per full block (k) of the code, per link direction.", k, received_k),
-        ("fecproxy_code_repair_symbols", "Repair packets per full block (m) of the code, per link direction.", m, received_m),
-        ("fecproxy_code_interleave_depth", "Blocks interleaved on the link (D; 1 = none) this daemon sends.", feedback.depth, None),
+        (
+            "fecproxy_code_source_symbols",
+            "Source datagrams per full block (k) of the code, per link direction.",
+            k,
+            received_k,
+        ),
+        (
+            "fecproxy_code_repair_symbols",
+            "Repair packets per full block (m) of the code, per link direction.",
+            m,
+            received_m,
+        ),
+        (
+            "fecproxy_code_interleave_depth",
+            "Blocks interleaved on the link (D; 1 = none) this daemon sends.",
+            feedback.depth,
+            None,
+        ),
     ):
         gauge = GaugeMetricFamily(name, doc, labels=["direction"])
         gauge.add_metric(["send"], sent)
@@ -225,14 +266,20 @@ def _feedback_metrics(feedback: Feedback, shape: tuple[int, int], received: tupl
         yield gauge
     stats = feedback.stats
     yield CounterMetricFamily("fecproxy_reports_sent", "Loss reports sent to the peer.", value=stats.sent)
-    yield CounterMetricFamily("fecproxy_reports_received", "Loss reports received on our own session.", value=stats.received)
-    ignored = CounterMetricFamily("fecproxy_reports_ignored", "Loss reports that gave no decision, by reason.", labels=["reason"])
+    yield CounterMetricFamily(
+        "fecproxy_reports_received", "Loss reports received on our own session.", value=stats.received
+    )
+    ignored = CounterMetricFamily(
+        "fecproxy_reports_ignored", "Loss reports that gave no decision, by reason.", labels=["reason"]
+    )
     counts = feedback.ignored()
     for reason in REPORT_IGNORE_REASONS:
         ignored.add_metric([reason], counts.get(reason, 0))
     yield ignored
     adaptations = CounterMetricFamily(
-        "fecproxy_adaptations", "Changes of m (or D) made from loss reports, by direction and reason.", labels=["direction", "reason"]
+        "fecproxy_adaptations",
+        "Changes of m (or D) made from loss reports, by direction and reason.",
+        labels=["direction", "reason"],
     )
     decisions = feedback.decisions()
     for direction in (UP, DOWN):
@@ -240,7 +287,9 @@ def _feedback_metrics(feedback: Feedback, shape: tuple[int, int], received: tupl
             adaptations.add_metric([direction, reason], decisions.get((direction, reason), 0))
     yield adaptations
     yield GaugeMetricFamily(
-        "fecproxy_reports_stale", "1 while no loss report came for 5 intervals and m is held; else 0.", value=int(feedback.stale)
+        "fecproxy_reports_stale",
+        "1 while no loss report came for 5 intervals and m is held; else 0.",
+        value=int(feedback.stale),
     )
 
 

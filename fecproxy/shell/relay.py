@@ -22,7 +22,13 @@ from prometheus_client import CollectorRegistry
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
 
 from fecproxy.config.addresses import format_sockaddr
-from fecproxy.linkmodel.impairment import IPV4_UDP_HEADER_BYTES, IPV6_UDP_HEADER_BYTES, ImpairedLink, LinkImpairment, LinkStats
+from fecproxy.linkmodel.impairment import (
+    IPV4_UDP_HEADER_BYTES,
+    IPV6_UDP_HEADER_BYTES,
+    ImpairedLink,
+    LinkImpairment,
+    LinkStats,
+)
 from fecproxy.shell.metrics import MetricsServer, serve
 from fecproxy.shell.udp import MAX_UDP_PAYLOAD
 
@@ -90,7 +96,9 @@ class UdpRelay:
                     await out_sock.bind(config.bind_out)
                 await out_sock.connect(to_info[0][4])
             except OSError as exc:
-                raise RelayError(f"cannot bind {format_sockaddr(config.listen)} or reach {format_sockaddr(config.to)}: {exc}") from None
+                raise RelayError(
+                    f"cannot bind {format_sockaddr(config.listen)} or reach {format_sockaddr(config.to)}: {exc}"
+                ) from None
             self.listen_address = listen_sock.getsockname()
             self.out_address = out_sock.getsockname()
             start = trio.current_time()
@@ -100,8 +108,12 @@ class UdpRelay:
                 for direction, sock in (("forward", out_sock), ("return", listen_sock))
             }
             self.links = {
-                "forward": ImpairedLink(config.forward, seed=f"{config.seed}:forward", start=start, header_bytes=headers["forward"]),
-                "return": ImpairedLink(config.back, seed=f"{config.seed}:return", start=start, header_bytes=headers["return"]),
+                "forward": ImpairedLink(
+                    config.forward, seed=f"{config.seed}:forward", start=start, header_bytes=headers["forward"]
+                ),
+                "return": ImpairedLink(
+                    config.back, seed=f"{config.seed}:return", start=start, header_bytes=headers["return"]
+                ),
             }
             task_status.started(self)
             async with trio.open_nursery() as nursery:
@@ -185,16 +197,30 @@ class _RelayCollector:
     def collect(self):
         prefix = "fecproxy_impair_"
         counters = {
-            "submitted": CounterMetricFamily(prefix + "datagrams_submitted", "datagrams offered to the emulated link", labels=["direction"]),
-            "sent": CounterMetricFamily(prefix + "datagrams_sent", "datagrams put on the air (faced the loss model)", labels=["direction"]),
-            "delivered": CounterMetricFamily(prefix + "datagrams_delivered", "datagrams delivered, duplicates included", labels=["direction"]),
-            "duplicates": CounterMetricFamily(prefix + "datagrams_duplicated", "extra copies delivered", labels=["direction"]),
+            "submitted": CounterMetricFamily(
+                prefix + "datagrams_submitted", "datagrams offered to the emulated link", labels=["direction"]
+            ),
+            "sent": CounterMetricFamily(
+                prefix + "datagrams_sent", "datagrams put on the air (faced the loss model)", labels=["direction"]
+            ),
+            "delivered": CounterMetricFamily(
+                prefix + "datagrams_delivered", "datagrams delivered, duplicates included", labels=["direction"]
+            ),
+            "duplicates": CounterMetricFamily(
+                prefix + "datagrams_duplicated", "extra copies delivered", labels=["direction"]
+            ),
         }
-        dropped = CounterMetricFamily(prefix + "datagrams_dropped", "datagrams dropped, by reason", labels=["direction", "reason"])
+        dropped = CounterMetricFamily(
+            prefix + "datagrams_dropped", "datagrams dropped, by reason", labels=["direction", "reason"]
+        )
         loss = GaugeMetricFamily(prefix + "loss_ratio", "measured loss ratio of the loss model", labels=["direction"])
-        burst = GaugeMetricFamily(prefix + "mean_burst_packets", "measured mean run of consecutive losses", labels=["direction"])
+        burst = GaugeMetricFamily(
+            prefix + "mean_burst_packets", "measured mean run of consecutive losses", labels=["direction"]
+        )
         queued = GaugeMetricFamily(prefix + "queue_datagrams", "datagrams in the modem buffer", labels=["direction"])
-        in_flight = GaugeMetricFamily(prefix + "in_flight_datagrams", "datagrams delayed and not yet due", labels=["direction"])
+        in_flight = GaugeMetricFamily(
+            prefix + "in_flight_datagrams", "datagrams delayed and not yet due", labels=["direction"]
+        )
         for direction, stats in self.relay.stats().items():
             for name, family in counters.items():
                 family.add_metric([direction], getattr(stats, name))

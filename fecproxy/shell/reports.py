@@ -213,7 +213,9 @@ class Feedback:
         if self.adapter is None:
             previous = old.repair if old is not None else base.repair
             # The controller's own clamp (adaptation.RedundancyController), applied already now.
-            self._initial_repair = previous if policy is None else min(max(previous, policy.min_repair), policy.max_repair)
+            self._initial_repair = (
+                previous if policy is None else min(max(previous, policy.min_repair), policy.max_repair)
+            )
         self._policy = policy
         self._base = base
         self.encoder.update(self._settings())
@@ -292,14 +294,29 @@ class Feedback:
                 self.encoder.update(self._settings())
                 link, choice = event.link, event.choice
                 log_event(
-                    log, logging.INFO, "adapted", direction=event.direction, reason=event.reason,
-                    m_from=event.previous.repair, m=choice.repair, depth=choice.depth, k_effective=choice.k_effective,
-                    loss=f"{link.loss:.4f}", burst=f"{link.mean_burst:.2f}", basis=link.basis, samples=link.samples,
+                    log,
+                    logging.INFO,
+                    "adapted",
+                    direction=event.direction,
+                    reason=event.reason,
+                    m_from=event.previous.repair,
+                    m=choice.repair,
+                    depth=choice.depth,
+                    k_effective=choice.k_effective,
+                    loss=f"{link.loss:.4f}",
+                    burst=f"{link.mean_burst:.2f}",
+                    basis=link.basis,
+                    samples=link.samples,
                     predicted_residual=f"{choice.residual_loss:.2e}",
                 )
             elif isinstance(event, ReportsStale):
-                log_event(log, logging.WARNING, "loss_reports_stale", holding_m=self.adapter.repair,
-                          detail="no loss report from the peer for 5 intervals (return path down?): m is held")
+                log_event(
+                    log,
+                    logging.WARNING,
+                    "loss_reports_stale",
+                    holding_m=self.adapter.repair,
+                    detail="no loss report from the peer for 5 intervals (return path down?): m is held",
+                )
             elif isinstance(event, ReportsResumed):
                 log_event(log, logging.INFO, "loss_reports_resumed", m=self.adapter.repair)
 

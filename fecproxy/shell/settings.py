@@ -115,5 +115,7 @@ def keep_fixed(running: Config, new: Config) -> Config:
     kept = dataclasses.replace(new, **{key: getattr(running, key) for key in RESTART_KEYS})
     for path in RESTART_FIELDS:
         section, key = path.split(".")
-        kept = dataclasses.replace(kept, **{section: dataclasses.replace(getattr(kept, section), **{key: _field(running, path)})})
+        kept = dataclasses.replace(
+            kept, **{section: dataclasses.replace(getattr(kept, section), **{key: _field(running, path)})}
+        )
     return kept

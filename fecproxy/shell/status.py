@@ -103,19 +103,33 @@ def plan_command(loss: float, burst: float, rate: float) -> str:
 def recommend(loss: float, burst: float, rate: float) -> dict:
     """What ``fecproxy plan`` recommends (its default budgets) for this link and datagram rate."""
     command = plan_command(loss, burst, rate)
-    inputs = {"loss": loss, "burst": burst, "rate": rate, "command": command,
-              "latency_budget_ms": DEFAULT_LATENCY_BUDGET_S * 1000, "max_overhead": DEFAULT_MAX_OVERHEAD,
-              "target": DEFAULT_TARGET}
+    inputs = {
+        "loss": loss,
+        "burst": burst,
+        "rate": rate,
+        "command": command,
+        "latency_budget_ms": DEFAULT_LATENCY_BUDGET_S * 1000,
+        "max_overhead": DEFAULT_MAX_OVERHEAD,
+        "target": DEFAULT_TARGET,
+    }
     try:
-        result = plan(PlanRequest(channel=channel_from_estimate(loss, burst), rate=rate,
-                                  latency_budget=DEFAULT_LATENCY_BUDGET_S, max_overhead=DEFAULT_MAX_OVERHEAD,
-                                  target=DEFAULT_TARGET))
+        result = plan(
+            PlanRequest(
+                channel=channel_from_estimate(loss, burst),
+                rate=rate,
+                latency_budget=DEFAULT_LATENCY_BUDGET_S,
+                max_overhead=DEFAULT_MAX_OVERHEAD,
+                target=DEFAULT_TARGET,
+            )
+        )
     except (PlanError, ChannelConfigError) as error:
         return {**inputs, "recommended": None, "note": str(error)}
     if result.recommended is None:
         lowest = min(result.candidates, key=lambda c: c.residual_loss)
-        note = (f"no code meets residual loss {DEFAULT_TARGET:g} within {DEFAULT_LATENCY_BUDGET_S * 1000:g} ms and "
-                f"overhead {DEFAULT_MAX_OVERHEAD:g}; the lowest is {lowest.residual_loss:.3g} at k={lowest.k} m={lowest.m}")
+        note = (
+            f"no code meets residual loss {DEFAULT_TARGET:g} within {DEFAULT_LATENCY_BUDGET_S * 1000:g} ms and "
+            f"overhead {DEFAULT_MAX_OVERHEAD:g}; the lowest is {lowest.residual_loss:.3g} at k={lowest.k} m={lowest.m}"
+        )
         return {**inputs, "recommended": None, "note": note}
     return {**inputs, "recommended": result.recommended.as_dict(), "note": None}
 
@@ -123,8 +137,12 @@ def recommend(loss: float, burst: float, rate: float) -> dict:
 class StatusSource:
     """Builds ``/status.json`` from a daemon's registry; safe to call from several HTTP threads."""
 
-    def __init__(self, registry: CollectorRegistry, clock: Callable[[], float] = time.monotonic,
-                 planner: Callable[[float, float, float], dict] = recommend):
+    def __init__(
+        self,
+        registry: CollectorRegistry,
+        clock: Callable[[], float] = time.monotonic,
+        planner: Callable[[float, float, float], dict] = recommend,
+    ):
         self.registry = registry
         self.clock = clock
         self.planner = planner
@@ -213,9 +231,13 @@ def status_app(registry: CollectorRegistry, other: Callable) -> Callable:
                 start_response("500 Internal Server Error", [("Content-Type", "text/plain; charset=utf-8")])
                 return [f"status page files missing or damaged in this installation: {error}\n".encode()]
             body = page.html.encode()
-            headers = [("Content-Type", "text/html; charset=utf-8"), ("Cache-Control", "no-store"),
-                       ("Content-Security-Policy", page.content_security_policy),
-                       ("X-Content-Type-Options", "nosniff"), ("Referrer-Policy", "no-referrer")]
+            headers = [
+                ("Content-Type", "text/html; charset=utf-8"),
+                ("Cache-Control", "no-store"),
+                ("Content-Security-Policy", page.content_security_policy),
+                ("X-Content-Type-Options", "nosniff"),
+                ("Referrer-Policy", "no-referrer"),
+            ]
         start_response("200 OK", headers + [("Content-Length", str(len(body)))])
         return [] if environ.get("REQUEST_METHOD") == "HEAD" else [body]
 

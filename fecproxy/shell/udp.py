@@ -88,7 +88,13 @@ def _set_buffer(sock: socket.socket, kind: str, size: int, purpose: str) -> None
     if granted < size and kind not in _reported_caps:
         _reported_caps.add(kind)
         log_event(
-            log, logging.WARNING, "socket_buffer_capped", socket=purpose, key=key, asked=size, granted=granted,
+            log,
+            logging.WARNING,
+            "socket_buffer_capped",
+            socket=purpose,
+            key=key,
+            asked=size,
+            granted=granted,
             fix=f"raise {sysctl} to at least {size} (sysctl -w {sysctl}={size}) or lower {key}",
         )
 
@@ -166,7 +172,9 @@ class DatagramReader:
     (one read and one address conversion per burst instead of per datagram).
     """
 
-    def __init__(self, sock: socket.socket, batch: int = RECV_BATCH, size: int = MAX_UDP_PAYLOAD, *, coalesce: bool = False):
+    def __init__(
+        self, sock: socket.socket, batch: int = RECV_BATCH, size: int = MAX_UDP_PAYLOAD, *, coalesce: bool = False
+    ):
         self.sock = sock
         self.batch = batch
         self._view = memoryview(bytearray(size))

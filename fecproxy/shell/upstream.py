@@ -126,8 +126,16 @@ class Upstreams:
             if not self._failing:
                 self._failing = True
                 hint = "raise the open-file limit (LimitNOFILE= / ulimit -n) or lower flows.max" if no_socket else ""
-                log_event(log, logging.WARNING, "upstream_failed", forward=format_sockaddr(self.forward),
-                          error=str(error), reason=reason, flows=len(self._by_flow), hint=hint or "-")
+                log_event(
+                    log,
+                    logging.WARNING,
+                    "upstream_failed",
+                    forward=format_sockaddr(self.forward),
+                    error=str(error),
+                    reason=reason,
+                    flows=len(self._by_flow),
+                    hint=hint or "-",
+                )
             return None
         self._failing = False
         entry = _Upstream(sock, DatagramWriter(sock), trio.CancelScope())

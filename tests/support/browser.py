@@ -21,6 +21,7 @@ import urllib.request
 from pathlib import Path
 
 from websockets.sync.client import connect
+
 from support.processes import end_process
 
 #: Debian's package name for the browser (``.ci/run`` installs it).
@@ -34,9 +35,18 @@ MAX_MESSAGE_BYTES = 64 * 1024 * 1024
 #: Switches for a quiet, self-contained headless run: no GPU, no sandbox (tests may run as root),
 #: no network of its own (updates, sync, QUIC), no first-run UI.
 FLAGS = (
-    "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
-    "--disable-background-networking", "--disable-component-update", "--disable-sync",
-    "--disable-default-apps", "--no-default-browser-check", "--disable-extensions", "--mute-audio",
+    "--headless",
+    "--no-sandbox",
+    "--disable-gpu",
+    "--disable-quic",
+    "--no-first-run",
+    "--disable-background-networking",
+    "--disable-component-update",
+    "--disable-sync",
+    "--disable-default-apps",
+    "--no-default-browser-check",
+    "--disable-extensions",
+    "--mute-audio",
 )
 
 
@@ -60,9 +70,18 @@ class HeadlessChromium:
         # Chromium's chatter goes to a file, not a pipe nobody drains (a full pipe would stall it).
         self.log = tempfile.TemporaryFile(prefix="fecproxy-chromium-log-")
         self.proc = subprocess.Popen(
-            [executable, *FLAGS, f"--user-data-dir={self.profile}", "--remote-debugging-address=127.0.0.1",
-             "--remote-debugging-port=0", f"--window-size={width},{height}", "about:blank"],
-            stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, stderr=self.log,
+            [
+                executable,
+                *FLAGS,
+                f"--user-data-dir={self.profile}",
+                "--remote-debugging-address=127.0.0.1",
+                "--remote-debugging-port=0",
+                f"--window-size={width},{height}",
+                "about:blank",
+            ],
+            stdin=subprocess.DEVNULL,
+            stdout=subprocess.DEVNULL,
+            stderr=self.log,
         )
         self.width, self.height = width, height
         self.errors: list[str] = []  # uncaught exceptions, console errors and log errors (CSP)
@@ -79,8 +98,10 @@ class HeadlessChromium:
             )
             for domain in ("Page", "Runtime", "Log"):
                 self.send(f"{domain}.enable")
-            self.send("Emulation.setDeviceMetricsOverride",
-                      {"width": width, "height": height, "deviceScaleFactor": 1, "mobile": False})
+            self.send(
+                "Emulation.setDeviceMetricsOverride",
+                {"width": width, "height": height, "deviceScaleFactor": 1, "mobile": False},
+            )
         except BaseException:
             self.close()
             raise
@@ -92,7 +113,9 @@ class HeadlessChromium:
         while time.monotonic() < deadline:
             if self.proc.poll() is not None:
                 self.log.seek(0)
-                raise DevToolsError(f"chromium exited with {self.proc.returncode}: {self.log.read().decode(errors='replace')[-2000:]}")
+                raise DevToolsError(
+                    f"chromium exited with {self.proc.returncode}: {self.log.read().decode(errors='replace')[-2000:]}"
+                )
             if marker.exists():
                 lines = marker.read_text().splitlines()
                 if lines and lines[0].isdigit():
@@ -105,9 +128,13 @@ class HeadlessChromium:
         method, params = message.get("method"), message.get("params", {})
         if method == "Runtime.exceptionThrown":
             details = params.get("exceptionDetails", {})
-            self.errors.append("exception: " + json.dumps(details.get("exception", {}).get("description") or details.get("text")))
+            self.errors.append(
+                "exception: " + json.dumps(details.get("exception", {}).get("description") or details.get("text"))
+            )
         elif method == "Runtime.consoleAPICalled" and params.get("type") == "error":
-            self.errors.append("console.error: " + json.dumps([a.get("value", a.get("description")) for a in params.get("args", [])]))
+            self.errors.append(
+                "console.error: " + json.dumps([a.get("value", a.get("description")) for a in params.get("args", [])])
+            )
         elif method == "Log.entryAdded" and params.get("entry", {}).get("level") == "error":
             self.errors.append("log: " + params["entry"].get("text", ""))
 
@@ -152,8 +179,10 @@ class HeadlessChromium:
     def screenshot(self, path: Path) -> Path:
         """A PNG of the whole page (beyond the window when it is taller)."""
         height = int(self.evaluate("Math.ceil(document.documentElement.scrollHeight)") or self.height)
-        self.send("Emulation.setDeviceMetricsOverride",
-                  {"width": self.width, "height": max(height, self.height), "deviceScaleFactor": 1, "mobile": False})
+        self.send(
+            "Emulation.setDeviceMetricsOverride",
+            {"width": self.width, "height": max(height, self.height), "deviceScaleFactor": 1, "mobile": False},
+        )
         data = self.send("Page.captureScreenshot", {"format": "png"})["data"]
         path.write_bytes(base64.b64decode(data))
         return path
@@ -170,7 +199,7 @@ class HeadlessChromium:
         self.log.close()
         shutil.rmtree(self.profile, ignore_errors=True)
 
-    def __enter__(self) -> "HeadlessChromium":
+    def __enter__(self) -> HeadlessChromium:
         return self
 
     def __exit__(self, *exc) -> None:

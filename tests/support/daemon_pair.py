@@ -188,7 +188,10 @@ class DaemonProcess:
         self.config_path = config_path
         self.proc = subprocess.Popen(
             [sys.executable, "-m", "fecproxy", "run", str(config_path), "--log-format", "text"],
-            stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True,
+            stdin=subprocess.DEVNULL,
+            stdout=subprocess.DEVNULL,
+            stderr=subprocess.PIPE,
+            text=True,
         )
         self.lines: list[str] = []
         self._reader = threading.Thread(target=self._read, daemon=True)
@@ -300,8 +303,19 @@ def receiver_config(forward: tuple[str, int], **fec) -> dict:
 class Pair:
     """Application server, receiver, relay and sender, started in that order; closed in reverse."""
 
-    def __init__(self, tmp_path: Path, *, sender_fec=None, receiver_fec=None, forward=no_loss, back=no_loss,
-                 record=False, echo=False, sender_extra=None, receiver_extra=None):
+    def __init__(
+        self,
+        tmp_path: Path,
+        *,
+        sender_fec=None,
+        receiver_fec=None,
+        forward=no_loss,
+        back=no_loss,
+        record=False,
+        echo=False,
+        sender_extra=None,
+        receiver_extra=None,
+    ):
         self._closers = []
         try:
             self.server = AppServer(echo=echo)
@@ -357,7 +371,9 @@ def drain(pair: Pair, expected: int, timeout: float = DRAIN_TIMEOUT) -> None:
         if pair.server.count() >= expected:
             return True
         metrics = pair.receiver.metrics()
-        done = metrics[("fecproxy_datagrams_delivered_total", ())] + metrics[("fecproxy_datagrams_unrecovered_total", ())]
+        done = (
+            metrics[("fecproxy_datagrams_delivered_total", ())] + metrics[("fecproxy_datagrams_unrecovered_total", ())]
+        )
         return done >= expected and pair.server.count() >= metrics[("fecproxy_datagrams_delivered_total", ())]
 
     assert wait_until(settled, timeout, interval=0.1), (

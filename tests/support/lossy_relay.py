@@ -84,8 +84,9 @@ def _udp_socket(host: str) -> socket.socket:
 class LossyRelay:
     """Bidirectional relay in a background thread; use as a context manager."""
 
-    def __init__(self, *, forward: DropRule = no_loss, back: DropRule = no_loss, record: bool = False,
-                 host: str = "127.0.0.1"):
+    def __init__(
+        self, *, forward: DropRule = no_loss, back: DropRule = no_loss, record: bool = False, host: str = "127.0.0.1"
+    ):
         self.forward = Direction(forward, record)  # sender proxy -> receiver proxy
         self.back = Direction(back, record)  # receiver proxy -> sender proxy
         self._a = _udp_socket(host)
@@ -101,7 +102,7 @@ class LossyRelay:
         """Where the sender proxy's link.peer must point."""
         return self._a.getsockname()
 
-    def __enter__(self) -> "LossyRelay":
+    def __enter__(self) -> LossyRelay:
         self._thread.start()
         return self
 

@@ -15,8 +15,8 @@ too and labelled as such.
 from __future__ import annotations
 
 import argparse
-import json
 import itertools
+import json
 import time
 from collections.abc import Callable
 from dataclasses import asdict, dataclass
@@ -104,9 +104,7 @@ def _shape(text: str) -> tuple[int, int, int]:
     except ValueError:
         raise argparse.ArgumentTypeError(f"shape must be K,M,L (three integers), got {text!r}") from None
     if not (k >= 1 and m >= 0 and k + m <= MAX_ENCODING_SYMBOLS and length >= 1):
-        raise argparse.ArgumentTypeError(
-            f"need k ≥ 1, m ≥ 0, k + m ≤ {MAX_ENCODING_SYMBOLS} and L ≥ 1, got {text!r}"
-        )
+        raise argparse.ArgumentTypeError(f"need k ≥ 1, m ≥ 0, k + m ≤ {MAX_ENCODING_SYMBOLS} and L ≥ 1, got {text!r}")
     return k, m, length
 
 
@@ -269,7 +267,18 @@ def main(args: argparse.Namespace) -> int:
     shapes = args.shape or list(DEFAULT_SHAPES)
     figures = [measure_codec(k, m, length, args.seconds) for k, m, length in shapes]
     if args.json:
-        print(json.dumps({"seconds": args.seconds, "rounds": ROUNDS, "decode_patterns": "fresh per block", "pattern_pool": PATTERN_POOL, "shapes": [f.as_dict() for f in figures]}, indent=2))
+        print(
+            json.dumps(
+                {
+                    "seconds": args.seconds,
+                    "rounds": ROUNDS,
+                    "decode_patterns": "fresh per block",
+                    "pattern_pool": PATTERN_POOL,
+                    "shapes": [f.as_dict() for f in figures],
+                },
+                indent=2,
+            )
+        )
     else:
         print(format_table(figures, args.seconds))
     return 0

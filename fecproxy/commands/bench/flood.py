@@ -28,10 +28,10 @@ import threading
 import time
 from pathlib import Path
 
+from fecproxy.commands.bench.options import positive
 from fecproxy.commands.bench.pipeline import AUTH_MODES, BENCH_KEY_FILE, auth_section, write_bench_key
 from fecproxy.commands.bench.processes import daemon_main
 from fecproxy.protocol import wire
-from fecproxy.commands.bench.options import positive
 
 #: 10^6 hostile packets at ~12 000/s: the flood measured against the unprotected pair before.
 DEFAULT_HOSTILE = 1_000_000
@@ -213,17 +213,32 @@ class _Flood:
         threads = []
         try:
             dir_name = key_dir.name if key_dir is not None else None
-            receiver, (receiver_link, _) = self.start_daemon(context, {
-                "role": "receiver", "forward": "127.0.0.1:%d" % sink.getsockname()[1],
-                "link": {"bind": "127.0.0.1:0"}, "log": {"level": "error"}, **extra,
-            }, dir_name)
-            sender, (_, sender_listen) = self.start_daemon(context, {
-                "role": "sender", "listen": "127.0.0.1:0",
-                "link": {"bind": "127.0.0.1:0", "peer": "127.0.0.1:%d" % tap.getsockname()[1]},
-                "log": {"level": "error"}, **extra,
-            }, dir_name)
-            threads = [threading.Thread(target=self.sink, args=(sink,), daemon=True),
-                       threading.Thread(target=self.tap, args=(tap, tuple(receiver_link)), daemon=True)]
+            receiver, (receiver_link, _) = self.start_daemon(
+                context,
+                {
+                    "role": "receiver",
+                    "forward": "127.0.0.1:%d" % sink.getsockname()[1],
+                    "link": {"bind": "127.0.0.1:0"},
+                    "log": {"level": "error"},
+                    **extra,
+                },
+                dir_name,
+            )
+            sender, (_, sender_listen) = self.start_daemon(
+                context,
+                {
+                    "role": "sender",
+                    "listen": "127.0.0.1:0",
+                    "link": {"bind": "127.0.0.1:0", "peer": "127.0.0.1:%d" % tap.getsockname()[1]},
+                    "log": {"level": "error"},
+                    **extra,
+                },
+                dir_name,
+            )
+            threads = [
+                threading.Thread(target=self.sink, args=(sink,), daemon=True),
+                threading.Thread(target=self.tap, args=(tap, tuple(receiver_link)), daemon=True),
+            ]
             for thread in threads:
                 thread.start()
             time.sleep(0.5)
@@ -232,7 +247,9 @@ class _Flood:
             real_count = int(args.real_rate * flood_seconds)
             results: dict = {}
             attacker = threading.Thread(
-                target=lambda: results.setdefault("attack_s", self.attack(tuple(receiver_link), args.hostile, args.hostile_rate, args.seed)),
+                target=lambda: results.setdefault(
+                    "attack_s", self.attack(tuple(receiver_link), args.hostile, args.hostile_rate, args.seed)
+                ),
                 daemon=True,
             )
             attacker.start()
@@ -264,9 +281,16 @@ class _Flood:
             if key_dir is not None:
                 key_dir.cleanup()
         return dict(
-            auth=args.auth, hostile=self.hostile_sent, hostile_rate=self.hostile_sent / max(results.get("attack_s", 1e-9), 1e-9),
-            real_sent=real_count, delivered=len(self.received), corrupted=self.corrupted, duplicates=self.duplicates,
-            rss_before=rss_before, rss_after=rss_after, alive=alive,
+            auth=args.auth,
+            hostile=self.hostile_sent,
+            hostile_rate=self.hostile_sent / max(results.get("attack_s", 1e-9), 1e-9),
+            real_sent=real_count,
+            delivered=len(self.received),
+            corrupted=self.corrupted,
+            duplicates=self.duplicates,
+            rss_before=rss_before,
+            rss_after=rss_after,
+            alive=alive,
         )
 
 
@@ -301,10 +325,16 @@ def format_figures(figures: dict) -> str:
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--auth", choices=AUTH_MODES, default="off", help="the pair's packet protection")
     parser.add_argument("--hostile", type=positive(int), default=DEFAULT_HOSTILE, help="hostile packets to send")
-    parser.add_argument("--hostile-rate", type=positive(float), default=DEFAULT_HOSTILE_RATE, help="hostile packets per second")
-    parser.add_argument("--real-rate", type=positive(float), default=DEFAULT_REAL_RATE, help="real datagrams per second")
+    parser.add_argument(
+        "--hostile-rate", type=positive(float), default=DEFAULT_HOSTILE_RATE, help="hostile packets per second"
+    )
+    parser.add_argument(
+        "--real-rate", type=positive(float), default=DEFAULT_REAL_RATE, help="real datagrams per second"
+    )
     parser.add_argument("--seed", type=int, default=6363, help="seed of the hostile packets")
-    parser.add_argument("--quick", action="store_true", help="20 000 hostile packets (a smoke run, not the measurement)")
+    parser.add_argument(
+        "--quick", action="store_true", help="20 000 hostile packets (a smoke run, not the measurement)"
+    )
 
 
 def main(args: argparse.Namespace) -> int:
@@ -312,4 +342,3 @@ def main(args: argparse.Namespace) -> int:
         args.hostile = min(args.hostile, 20_000)
     print(format_figures(_Flood(args).run()))
     return 0
-

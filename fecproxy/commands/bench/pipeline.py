@@ -24,6 +24,7 @@ predicts for that channel, and the report gives its rate over the clean pair's, 
 This module starts the processes and runs the search; the pure search and the report live in
 :mod:`.search`, the child processes in :mod:`.processes`.
 """
+
 from __future__ import annotations
 
 import argparse
@@ -38,6 +39,7 @@ import time
 from array import array
 from pathlib import Path
 
+from fecproxy.commands.bench.options import positive
 from fecproxy.commands.bench.processes import (
     DATAGRAM_BYTES,
     SOCKET_BUFFER_BYTES,
@@ -49,7 +51,6 @@ from fecproxy.commands.bench.processes import (
 )
 from fecproxy.commands.bench.search import (  # noqa: F401  (re-exported: the pipeline's public names)
     GENERATOR_SHORTFALL,
-    residual_allowance,
     LOSS_LIMIT,
     SEARCH_PRECISION,
     STEP_UP,
@@ -58,10 +59,10 @@ from fecproxy.commands.bench.search import (  # noqa: F401  (re-exported: the pi
     RateSearch,
     Trial,
     format_result,
+    residual_allowance,
 )
 from fecproxy.linkmodel.planner import evaluate
 from fecproxy.protocol.keys import KEY_BYTES, format_key_text
-from fecproxy.commands.bench.options import positive
 
 #: The block shape under test: k=16, m=4, the config defaults.
 BLOCK_SIZE = 16
@@ -95,8 +96,15 @@ PROCESS_STOP_TIMEOUT_S = 3.0
 class _Bench:
     """Owns the child processes; every one is stopped (by its own handle) on exit."""
 
-    def __init__(self, k: int, m: int, trial_seconds: float, impairment: tuple | None = None,
-                 predicted_residual: float = 0.0, auth_mode: str = "off"):
+    def __init__(
+        self,
+        k: int,
+        m: int,
+        trial_seconds: float,
+        impairment: tuple | None = None,
+        predicted_residual: float = 0.0,
+        auth_mode: str = "off",
+    ):
         self.k, self.m, self.trial_seconds = k, m, trial_seconds
         self.auth_mode = auth_mode  # off, mac or encrypt: the pairs' auth section
         self.key_dir = tempfile.TemporaryDirectory(prefix="fecproxy-bench-") if auth_mode != "off" else None
@@ -110,7 +118,7 @@ class _Bench:
         self.pids: dict[str, int] = {}  # role -> process id, for CPU accounting
         self.trial_id = 0
 
-    def __enter__(self) -> "_Bench":
+    def __enter__(self) -> _Bench:
         try:
             self.generator = self._start("generator", generator_main)
             self.sink = self._start("sink", sink_main)
@@ -166,19 +174,33 @@ class _Bench:
         return the sender's application address."""
         fec = {"block_size": self.k, "repair": self.m}
         extra = auth_section(self.auth_mode)
-        receiver_link, _ = self._daemon(f"{prefix}receiver", {
-            "role": "receiver", "forward": _text(forward),
-            "link": {"bind": "127.0.0.1:0"}, "fec": fec,
-            "sockets": _socket_section(), "log": {"level": "warning"}, **extra,
-        })
+        receiver_link, _ = self._daemon(
+            f"{prefix}receiver",
+            {
+                "role": "receiver",
+                "forward": _text(forward),
+                "link": {"bind": "127.0.0.1:0"},
+                "fec": fec,
+                "sockets": _socket_section(),
+                "log": {"level": "warning"},
+                **extra,
+            },
+        )
         peer = receiver_link
         if impairment is not None:
             peer = self._reply(self._start(f"{prefix}link relay", relay_main, receiver_link, impairment))
-        _, sender_listen = self._daemon(f"{prefix}sender", {
-            "role": "sender", "listen": "127.0.0.1:0",
-            "link": {"bind": "127.0.0.1:0", "peer": _text(peer)}, "fec": fec,
-            "sockets": _socket_section(), "log": {"level": "warning"}, **extra,
-        })
+        _, sender_listen = self._daemon(
+            f"{prefix}sender",
+            {
+                "role": "sender",
+                "listen": "127.0.0.1:0",
+                "link": {"bind": "127.0.0.1:0", "peer": _text(peer)},
+                "fec": fec,
+                "sockets": _socket_section(),
+                "log": {"level": "warning"},
+                **extra,
+            },
+        )
         return sender_listen
 
     def _daemon(self, role: str, document: dict) -> tuple:
@@ -195,9 +217,13 @@ class _Bench:
         return conn.recv()
 
     def target(self, pipeline: str) -> tuple:
-        return {"plain": self.plain_address, "pair": self.pair_address, "direct": self.sink_address,
-                "lossy": getattr(self, "lossy_address", None),
-                "relayed": getattr(self, "relayed_address", None)}[pipeline]
+        return {
+            "plain": self.plain_address,
+            "pair": self.pair_address,
+            "direct": self.sink_address,
+            "lossy": getattr(self, "lossy_address", None),
+            "relayed": getattr(self, "relayed_address", None),
+        }[pipeline]
 
     def run_trial(self, pipeline: str, rate: float, seconds: float, keep_delays: bool = False):
         self.trial_id += 1
@@ -220,8 +246,16 @@ class _Bench:
         limit = LOSS_LIMIT
         if pipeline == "lossy":
             limit = residual_allowance(self.predicted_residual, sent, self.m)
-        trial = Trial(pipeline, rate, sent / elapsed if elapsed > 0 else rate, sent, counts["received"],
-                      counts["duplicates"], cpu_us, limit)
+        trial = Trial(
+            pipeline,
+            rate,
+            sent / elapsed if elapsed > 0 else rate,
+            sent,
+            counts["received"],
+            counts["duplicates"],
+            cpu_us,
+            limit,
+        )
         delays = array("q")
         if counts["delays"]:
             delays.frombytes(counts["delays"])
@@ -320,8 +354,10 @@ def run_pipeline_bench(
         impairment = (link_loss, link_burst, seed)
         predicted = evaluate(link_channel(link_loss, link_burst), k, m).residual_loss
         pipelines += ["lossy", "relayed"]
-    say(f"starting the benchmark processes; then a rate search of up to {budget_seconds:g} s "
-        f"(trials of {trial_seconds:g} s, {', '.join(pipelines)} in turn) and delay trials")
+    say(
+        f"starting the benchmark processes; then a rate search of up to {budget_seconds:g} s "
+        f"(trials of {trial_seconds:g} s, {', '.join(pipelines)} in turn) and delay trials"
+    )
     with _Bench(k, m, trial_seconds, impairment, predicted or 0.0, auth_mode) as bench:
         for pipeline in pipelines:  # warm-up: flows opened, sessions learned
             bench.run_trial(pipeline, min(start_rate, 2000.0), 0.2)
@@ -337,9 +373,11 @@ def run_pipeline_bench(
                 trial, _ = bench.run_trial(search.pipeline, rate, trial_seconds)
                 search.record(trial)
                 stepped = True
-                say(f"  {time.monotonic() - began:5.0f}/{budget_seconds:g} s  {trial.pipeline:>7}: asked "
+                say(
+                    f"  {time.monotonic() - began:5.0f}/{budget_seconds:g} s  {trial.pipeline:>7}: asked "
                     f"{trial.asked:>9,.0f}/s sent {trial.offered:>9,.0f}/s loss {trial.loss:8.4%} "
-                    f"{'pass' if trial.passed else 'FAIL'}")
+                    f"{'pass' if trial.passed else 'FAIL'}"
+                )
             if not stepped:
                 break
         for search in searches:
@@ -348,13 +386,23 @@ def run_pipeline_bench(
         delays = []
         for path in ("direct", "plain", "pair"):
             trial, values = bench.run_trial(path, delay_rate, delay_seconds, keep_delays=True)
-            delays.append(DelayFigures(path, trial.offered, len(values), trial.loss,
-                                       _percentile_us(values, 50), _percentile_us(values, 99)))
+            delays.append(
+                DelayFigures(
+                    path, trial.offered, len(values), trial.loss, _percentile_us(values, 50), _percentile_us(values, 99)
+                )
+            )
     plain, pair, *lossy = searches  # lossy: [] or [lossy, relayed]
     result = PipelineResult(
-        datagram_bytes=DATAGRAM_BYTES, k=k, m=m, trial_seconds=trial_seconds,
-        plain_rate=plain.best, pair_rate=pair.best, plain_stopped=plain.stopped, pair_stopped=pair.stopped,
-        delays=delays, trials=[trial for search in searches for trial in search.trials],
+        datagram_bytes=DATAGRAM_BYTES,
+        k=k,
+        m=m,
+        trial_seconds=trial_seconds,
+        plain_rate=plain.best,
+        pair_rate=pair.best,
+        plain_stopped=plain.stopped,
+        pair_stopped=pair.stopped,
+        delays=delays,
+        trials=[trial for search in searches for trial in search.trials],
     )
     if lossy:
         result.link_loss, result.link_burst, result.predicted_residual = link_loss, link_burst, predicted
@@ -388,52 +436,98 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         "Highest rate of 1200-byte datagrams with < 0.1 % loss through two plain relays and through "
         "a fecproxy pair on loopback, side by side, and the one-way delay the pair adds."
     )
-    parser.add_argument("--trial-seconds", type=positive(float), default=DEFAULT_TRIAL_SECONDS,
-                        help="length of each rate trial")
-    parser.add_argument("--budget-seconds", type=positive(float), default=DEFAULT_SEARCH_BUDGET_S,
-                        help="time for the rate search of both pipelines together")
-    parser.add_argument("--start-rate", type=positive(float), default=DEFAULT_START_RATE,
-                        help="first rate tried (datagrams/s)")
-    parser.add_argument("--max-rate", type=positive(float), default=DEFAULT_MAX_RATE,
-                        help="the search does not step above this rate (datagrams/s)")
-    parser.add_argument("--delay-rate", type=positive(float), default=DEFAULT_DELAY_RATE,
-                        help="rate of the one-way delay trials (datagrams/s)")
-    parser.add_argument("--delay-seconds", type=positive(float), default=DEFAULT_DELAY_SECONDS,
-                        help="length of each delay trial")
+    parser.add_argument(
+        "--trial-seconds", type=positive(float), default=DEFAULT_TRIAL_SECONDS, help="length of each rate trial"
+    )
+    parser.add_argument(
+        "--budget-seconds",
+        type=positive(float),
+        default=DEFAULT_SEARCH_BUDGET_S,
+        help="time for the rate search of both pipelines together",
+    )
+    parser.add_argument(
+        "--start-rate", type=positive(float), default=DEFAULT_START_RATE, help="first rate tried (datagrams/s)"
+    )
+    parser.add_argument(
+        "--max-rate",
+        type=positive(float),
+        default=DEFAULT_MAX_RATE,
+        help="the search does not step above this rate (datagrams/s)",
+    )
+    parser.add_argument(
+        "--delay-rate",
+        type=positive(float),
+        default=DEFAULT_DELAY_RATE,
+        help="rate of the one-way delay trials (datagrams/s)",
+    )
+    parser.add_argument(
+        "--delay-seconds", type=positive(float), default=DEFAULT_DELAY_SECONDS, help="length of each delay trial"
+    )
     parser.add_argument("--block-size", type=positive(int), default=BLOCK_SIZE, help="k of the fecproxy pair")
     parser.add_argument("--repair", type=int, default=REPAIR, help="m of the fecproxy pair")
-    parser.add_argument("--loss", type=_probability, default=None,
-                        help="also search a pair whose link loses this share of packets (e.g. 0.05), "
-                        "passing while residual loss stays within the planner's prediction")
-    parser.add_argument("--burst", type=_burst, default=None,
-                        help="mean loss burst length in packets for --loss (Gilbert model); default i.i.d.")
+    parser.add_argument(
+        "--loss",
+        type=_probability,
+        default=None,
+        help="also search a pair whose link loses this share of packets (e.g. 0.05), "
+        "passing while residual loss stays within the planner's prediction",
+    )
+    parser.add_argument(
+        "--burst",
+        type=_burst,
+        default=None,
+        help="mean loss burst length in packets for --loss (Gilbert model); default i.i.d.",
+    )
     parser.add_argument("--seed", type=int, default=DEFAULT_SEED, help="seed of the impaired link's losses")
-    parser.add_argument("--auth", choices=AUTH_MODES, default="off",
-                        help="the pairs' packet protection: none, tags (mac) or tags with encryption")
-    parser.add_argument("--quick", action="store_true",
-                        help="a few short trials at low rates (a smoke test, not a measurement)")
+    parser.add_argument(
+        "--auth",
+        choices=AUTH_MODES,
+        default="off",
+        help="the pairs' packet protection: none, tags (mac) or tags with encryption",
+    )
+    parser.add_argument(
+        "--quick", action="store_true", help="a few short trials at low rates (a smoke test, not a measurement)"
+    )
     parser.add_argument("--json", action="store_true", help="print the result as JSON instead of a table")
-    parser.add_argument("--quiet", action="store_true",
-                        help="no progress lines on stderr (by default each trial is shown as it ends)")
+    parser.add_argument(
+        "--quiet", action="store_true", help="no progress lines on stderr (by default each trial is shown as it ends)"
+    )
 
 
 def main(args: argparse.Namespace) -> int:
     if not (0 <= args.repair <= args.block_size and args.block_size + args.repair <= 255):
-        print(f"fecproxy bench pipeline: need 0 ≤ repair ≤ block-size and block-size + repair ≤ 255, "
-              f"got {args.block_size} and {args.repair}", file=sys.stderr)
+        print(
+            f"fecproxy bench pipeline: need 0 ≤ repair ≤ block-size and block-size + repair ≤ 255, "
+            f"got {args.block_size} and {args.repair}",
+            file=sys.stderr,
+        )
         return 2
     settings = dict(
-        k=args.block_size, m=args.repair, trial_seconds=args.trial_seconds, budget_seconds=args.budget_seconds,
-        start_rate=args.start_rate, max_rate=args.max_rate, delay_rate=args.delay_rate,
-        delay_seconds=args.delay_seconds, link_loss=args.loss, link_burst=args.burst, seed=args.seed,
+        k=args.block_size,
+        m=args.repair,
+        trial_seconds=args.trial_seconds,
+        budget_seconds=args.budget_seconds,
+        start_rate=args.start_rate,
+        max_rate=args.max_rate,
+        delay_rate=args.delay_rate,
+        delay_seconds=args.delay_seconds,
+        link_loss=args.loss,
+        link_burst=args.burst,
+        seed=args.seed,
         auth_mode=args.auth,
     )
     if args.burst is not None and args.loss is None:
         print("fecproxy bench pipeline: --burst needs --loss", file=sys.stderr)
         return 2
     if args.quick:
-        settings.update(trial_seconds=0.2, budget_seconds=2.2, start_rate=1000.0, max_rate=2000.0,
-                        delay_rate=1000.0, delay_seconds=0.2)
+        settings.update(
+            trial_seconds=0.2,
+            budget_seconds=2.2,
+            start_rate=1000.0,
+            max_rate=2000.0,
+            delay_rate=1000.0,
+            delay_seconds=0.2,
+        )
     progress = None if args.quiet else (lambda line: print(line, file=sys.stderr, flush=True))
     result = run_pipeline_bench(progress=progress, **settings)
     if args.json:

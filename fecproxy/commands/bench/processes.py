@@ -121,8 +121,14 @@ def sink_main(conn) -> None:
                 delays = array("q") if keep else None
                 conn.send("ok")
             else:
-                conn.send(dict(received=received, duplicates=duplicates, strays=strays,
-                               delays=delays.tobytes() if delays is not None else None))
+                conn.send(
+                    dict(
+                        received=received,
+                        duplicates=duplicates,
+                        strays=strays,
+                        delays=delays.tobytes() if delays is not None else None,
+                    )
+                )
                 trial = -1
             continue
         arrived = monotonic_ns()

@@ -210,25 +210,35 @@ def format_result(result: PipelineResult) -> str:
             f"+ {RESIDUAL_SIGMAS:g}σ sampling margin",
         ]
     for pipeline, title in (
-        ("plain", "plain relays"), ("pair", "fecproxy pair"), ("lossy", "pair, lossy link"),
+        ("plain", "plain relays"),
+        ("pair", "fecproxy pair"),
+        ("lossy", "pair, lossy link"),
         ("relayed", "pair, lossless relay"),
     ):
         best = result.best_trial(pipeline)
         if best is not None and best.cpu_us:
             parts = ", ".join(f"{role} {us:.1f}" for role, us in best.cpu_us.items())
-            lines.append(f"  CPU µs per datagram at {best.offered:,.0f}/s, {title}: {parts} "
-                         f"(total {sum(best.cpu_us.values()):.1f})")
+            lines.append(
+                f"  CPU µs per datagram at {best.offered:,.0f}/s, {title}: {parts} "
+                f"(total {sum(best.cpu_us.values()):.1f})"
+            )
     if result.delays:
-        lines.append(f"one-way delay at {result.delays[0].rate:,.0f} datagrams/s   "
-                     f"{'p50 µs':>8} {'p99 µs':>8} {'loss':>8} {'samples':>8}")
+        lines.append(
+            f"one-way delay at {result.delays[0].rate:,.0f} datagrams/s   "
+            f"{'p50 µs':>8} {'p99 µs':>8} {'loss':>8} {'samples':>8}"
+        )
         for d in result.delays:
             lines.append(f"  {d.path:<36} {d.p50_us:>8.1f} {d.p99_us:>8.1f} {d.loss:>8.3%} {d.samples:>8}")
         direct, plain, pair = result.delay("direct"), result.delay("plain"), result.delay("pair")
         if direct and pair:
-            lines.append(f"  {'added by the pair (pair − direct)':<36} "
-                         f"{pair.p50_us - direct.p50_us:>8.1f} {pair.p99_us - direct.p99_us:>8.1f}")
+            lines.append(
+                f"  {'added by the pair (pair − direct)':<36} "
+                f"{pair.p50_us - direct.p50_us:>8.1f} {pair.p99_us - direct.p99_us:>8.1f}"
+            )
         if plain and pair:
             # Two hops through any user-space relay cost wake-ups; this part is FEC's own.
-            lines.append(f"  {'of which FEC (pair − plain relays)':<36} "
-                         f"{pair.p50_us - plain.p50_us:>8.1f} {pair.p99_us - plain.p99_us:>8.1f}")
+            lines.append(
+                f"  {'of which FEC (pair − plain relays)':<36} "
+                f"{pair.p50_us - plain.p50_us:>8.1f} {pair.p99_us - plain.p99_us:>8.1f}"
+            )
     return "\n".join(lines)

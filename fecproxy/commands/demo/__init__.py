@@ -93,9 +93,9 @@ def _endpoints(port: int) -> str:
 
 async def run_demo(options: DemoOptions, out=None) -> DemoResult:
     """Wire everything up in one nursery, run for ``options.seconds``, wind down, return figures."""
+    from fecproxy.linkmodel.impairment import LinkImpairment
     from fecproxy.shell.daemon import Daemon
     from fecproxy.shell.relay import RelayConfig, run_relay
-    from fecproxy.linkmodel.impairment import LinkImpairment
 
     out = sys.stdout if out is None else out
     channel = check_options(options)
@@ -117,7 +117,11 @@ async def run_demo(options: DemoOptions, out=None) -> DemoResult:
             relay = await nursery.start(
                 run_relay,
                 RelayConfig(
-                    listen=(LOOPBACK, 0), to=receiver.link_address[:2], forward=impairment, back=impairment, seed=options.seed
+                    listen=(LOOPBACK, 0),
+                    to=receiver.link_address[:2],
+                    forward=impairment,
+                    back=impairment,
+                    seed=options.seed,
                 ),
             )
             tap = LinkTap(relay.links["forward"])
@@ -172,7 +176,6 @@ async def run_demo(options: DemoOptions, out=None) -> DemoResult:
                 if stop_metrics is not None:
                     stop_metrics()
                 nursery.cancel_scope.cancel()
-
 
 
 async def _watch_signals(stop_early) -> None:
@@ -275,11 +278,16 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--seconds", type=float, default=DEFAULT_SECONDS, help="how long the station sends")
     parser.add_argument("--seed", type=int, default=DEFAULT_SEED, help="seed of the link's losses and of the traffic")
     parser.add_argument("--loss", type=float, default=DEFAULT_LOSS, help="average packet loss of the radio relay, 0..1")
-    parser.add_argument("--burst", type=float, default=DEFAULT_BURST, help="mean length of a loss burst, in packets (≥ 1)")
+    parser.add_argument(
+        "--burst", type=float, default=DEFAULT_BURST, help="mean length of a loss burst, in packets (≥ 1)"
+    )
     parser.add_argument("--k", type=int, default=DEFAULT_K, help="source datagrams per block")
     parser.add_argument("--m", type=int, default=DEFAULT_M, help="repair packets per full block (0 = no protection)")
     parser.add_argument(
-        "--flush-ms", type=int, default=DEFAULT_FLUSH_MS, help="a block not full after this many ms is closed and protected as it is"
+        "--flush-ms",
+        type=int,
+        default=DEFAULT_FLUSH_MS,
+        help="a block not full after this many ms is closed and protected as it is",
     )
     parser.add_argument("--rate", type=float, default=DEFAULT_TELEMETRY_RATE, help="telemetry datagrams per second")
     parser.add_argument(
@@ -332,4 +340,3 @@ def _option_names(message: str) -> str:
     for key, option in _OPTION_OF_KEY.items():
         message = message.replace(key, option)
     return message.replace("demo sender: ", "")
-

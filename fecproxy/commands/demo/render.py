@@ -55,7 +55,9 @@ def describe_link(channel: GilbertElliott) -> str:
     if channel.is_memoryless:
         return f"loses {fmt_percent(channel.average_loss)} of packets independently"
     if channel.mean_burst <= 1 + 1e-9:
-        return f"loses {fmt_percent(channel.average_loss)} of packets, never two in a row (Gilbert–Elliott, mean burst 1)"
+        return (
+            f"loses {fmt_percent(channel.average_loss)} of packets, never two in a row (Gilbert–Elliott, mean burst 1)"
+        )
     return (
         f"loses {fmt_percent(channel.average_loss)} of packets in bursts "
         f"(Gilbert–Elliott, mean burst {channel.mean_burst:.3g} packets)"
@@ -273,7 +275,6 @@ class LiveView:
             self._last_plain = snapshot.elapsed
             self.out.write("  " + " | ".join(lines) + "\n")
         self.out.flush()
-
 
 
 def format_header(

@@ -231,5 +231,3 @@ class Sink:
                 body = ACK_BODY.pack(stream, self.seen[stream].count)
                 await sock.sendto(pack_datagram(STREAM_ACK, self.acks_sent, trio.current_time(), body), address)
                 self.acks_sent += 1
-
-
