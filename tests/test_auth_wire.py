@@ -5,10 +5,10 @@ import random
 
 import pytest
 
-from fecproxy.protocol import auth, keys, wire
+from fecproxy.protocol import auth, freshness, keys, wire
 from fecproxy.protocol.decoder import BlockDecoder, DecoderSettings
 from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
-from fecproxy.protocol.events import ControlReceived, Delivery, Dropped, SessionStarted
+from fecproxy.protocol.events import ChallengeDue, ControlReceived, Delivery, Dropped, SessionProven, SessionStarted
 
 OLD = keys.MasterKey(bytes.fromhex("11" * 32))
 NEW = keys.MasterKey(bytes.fromhex("22" * 32))
@@ -27,6 +27,15 @@ def sender(key=OLD, *, encrypt=False, session=0x1234, salt=7, k=4, m=2) -> Block
 
 def receiver(key=OLD, previous=None, *, encrypt=False) -> BlockDecoder:
     return BlockDecoder(DecoderSettings(), auth.Keyring(key, previous, encrypt=encrypt))
+
+
+def prove(decoder: BlockDecoder, encoder: BlockEncoder, now=0.5) -> None:
+    """The freshness exchange (protocol.freshness) before the test's traffic: the decoder's
+    challenge for the encoder's session, answered by an echo the encoder seals."""
+    challenge = decoder.freshness.challenge(encoder.session, now)
+    echo = freshness.EchoResponder().answer(challenge, encoder.session, now)
+    events, _ = decoder.receive(encoder.control(echo), now)
+    assert events == [SessionProven(encoder.session, encoder.sealer.next_sequence - 1)]
 
 
 def stream(encoder: BlockEncoder, count: int, *, seed=1, start=0.0):
@@ -54,19 +63,23 @@ def run(decoder: BlockDecoder, packets, now=1.0):
 def test_every_packet_is_sealed_and_a_keyed_pair_delivers_everything(encrypt):
     needs_crypto(encrypt)
     encoder = sender(encrypt=encrypt)
+    decoder = receiver(encrypt=encrypt)
+    prove(decoder, encoder)
     datagrams, packets = stream(encoder, 40)
     assert all(p[1] & wire.FLAG_AUTH for p in packets)
     assert all(bool(p[1] & wire.FLAG_ENCRYPTED) == encrypt for p in packets)
     lossy = [p for i, p in enumerate(packets) if i % 6 != 2]  # one source lost per block, rebuilt
-    delivered, drops = run(receiver(encrypt=encrypt), lossy)
+    delivered, drops = run(decoder, lossy)
     assert sorted(delivered) == sorted(datagrams) and drops == []
 
 
 @pytest.mark.parametrize("encrypt", [False, True])
 def test_bit_flipped_truncated_extended_and_unkeyed_packets_never_reach_the_application(encrypt):
     needs_crypto(encrypt)
-    _, packets = stream(sender(encrypt=encrypt), 8)
+    encoder = sender(encrypt=encrypt)
     decoder = receiver(encrypt=encrypt)
+    prove(decoder, encoder)
+    _, packets = stream(encoder, 8)
     sample = packets[0]
     bad = []
     for bit in range(0, len(sample) * 8, 3):
@@ -86,8 +99,9 @@ def test_bit_flipped_truncated_extended_and_unkeyed_packets_never_reach_the_appl
 
 
 def test_replays_and_reordered_replays_are_dropped_as_replay():
-    datagrams, packets = stream(sender(), 12)
-    decoder = receiver()
+    encoder, decoder = sender(), receiver()
+    prove(decoder, encoder)
+    datagrams, packets = stream(encoder, 12)
     delivered, drops = run(decoder, packets)
     assert delivered == datagrams
     shuffled = packets[:]
@@ -99,10 +113,13 @@ def test_replays_and_reordered_replays_are_dropped_as_replay():
 def test_replay_of_a_session_that_ended_is_still_a_replay():
     from fecproxy.protocol.decoder import SESSION_CONFIRM_PACKETS
 
-    old_data, old = stream(sender(session=1), 6)
     decoder = receiver()
+    first, second = sender(session=1), sender(session=2, salt=9)
+    prove(decoder, first)
+    old_data, old = stream(first, 6)
     assert run(decoder, old)[0] == old_data
-    _, new = stream(sender(session=2, salt=9), SESSION_CONFIRM_PACKETS)
+    prove(decoder, second, now=1.5)
+    _, new = stream(second, SESSION_CONFIRM_PACKETS)
     run(decoder, new, now=2.0)  # the restarted sender takes over; the old session ages out
     decoder.on_timer(3.0)
     assert decoder.sessions == (2,)
@@ -135,6 +152,7 @@ def test_two_key_rollover_loses_nothing():
     # mid-stream (a reload swaps the sealer's key, the sequence runs on).
     encoder = sender(OLD)
     decoder = receiver(OLD, previous=NEW)
+    prove(decoder, encoder)
     first, packets = stream(encoder, 10)
     encoder.sealer.key = auth.Keyring(NEW).current
     second, more = stream(encoder, 10, seed=2, start=0.5)
@@ -151,6 +169,7 @@ def test_two_key_rollover_loses_nothing():
 def test_control_packets_are_sealed_verified_and_handed_on():
     encoder = sender()
     decoder = receiver()
+    prove(decoder, encoder)
     _, packets = stream(encoder, 1)
     run(decoder, packets)
     control = encoder.control(b"\x01report")
@@ -163,8 +182,9 @@ def test_control_packets_are_sealed_verified_and_handed_on():
 
 
 def test_a_stranger_without_the_key_cannot_start_or_take_a_session():
-    decoder = receiver()
-    datagrams, packets = stream(sender(), 20)
+    decoder, encoder = receiver(), sender()
+    prove(decoder, encoder)
+    datagrams, packets = stream(encoder, 20)
     got = []
     for i, packet in enumerate(packets):
         events, _ = decoder.receive(packet, 1.0 + i * 1e-3)
@@ -178,7 +198,47 @@ def test_a_stranger_without_the_key_cannot_start_or_take_a_session():
 
 
 def test_session_started_is_told_once_for_a_keyed_sender():
-    _, packets = stream(sender(), 4)
-    decoder = receiver()
+    encoder, decoder = sender(), receiver()
+    prove(decoder, encoder)
+    _, packets = stream(encoder, 4)
     events = [e for p in packets for e in decoder.receive(p, 1.0)[0]]
     assert [e for e in events if isinstance(e, SessionStarted)] == [SessionStarted(0x1234, None)]
+
+
+def test_a_recording_replayed_to_a_restarted_receiver_delivers_nothing_and_is_challenged():
+    # RFC 4303 §3.3.3: a static key's replay state does not survive a restart; RFC 7296 §2.10:
+    # freshness from a nonce drawn by the new start.  A receiver that restarts has no window.
+    encoder = sender()
+    before = receiver()
+    prove(before, encoder)
+    datagrams, recording = stream(encoder, 24)
+    assert run(before, recording)[0] == datagrams
+    restarted = receiver()
+    events = [e for p in recording for e in restarted.receive(p, 2.0)[0]]
+    assert not [e for e in events if isinstance(e, Delivery)]
+    assert {e.reason for e in events if isinstance(e, Dropped)} == {"unproven"}
+    challenges = [e for e in events if isinstance(e, ChallengeDue)]
+    assert len(challenges) == 1  # once per retry interval, not once per packet
+    # An attacker cannot answer (no key); a recorded echo answers an older nonce.
+    old_echo = encoder.control(freshness.encode(freshness.KIND_ECHO, 0x1234, bytes(16)))
+    assert [e.reason for e in restarted.receive(old_echo, 2.1)[0]] == ["unproven"]
+    # The live sender answers: its echo's sequence is above everything recorded, so the
+    # recording stays refused while new traffic flows.
+    echo = freshness.EchoResponder().answer(challenges[0].body, encoder.session, 2.2)
+    events, _ = restarted.receive(encoder.control(echo), 2.2)
+    assert isinstance(events[0], SessionProven)
+    assert run(restarted, recording, now=2.3)[0] == []
+    fresh, more = stream(encoder, 8, seed=5, start=2.3)
+    assert run(restarted, more, now=2.4)[0] == fresh
+
+
+def test_a_challenge_is_answered_only_for_the_own_session_and_at_a_bounded_rate():
+    responder = freshness.EchoResponder()
+    body = freshness.encode(freshness.KIND_CHALLENGE, 0x1234, bytes(range(16)))
+    assert responder.answer(body, 0x9999, 0.0) is None  # a predecessor's session: no echo
+    echoes = [responder.answer(body, 0x1234, 0.0) for _ in range(50)]
+    assert sum(e is not None for e in echoes) == freshness.BURST
+    assert freshness.parse(echoes[0]) == freshness.Message(freshness.KIND_ECHO, 0x1234, bytes(range(16)))
+    for bad in (b"", body[:-1], body + b"\x00", b"\x03\x01" + body[2:], b"\x07" + body[1:]):
+        with pytest.raises(freshness.FreshnessError):
+            freshness.parse(bad)

@@ -60,18 +60,21 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from fecproxy.coding.codec import BlockCode, block_code
-from fecproxy.protocol import auth, wire
+from fecproxy.protocol import auth, freshness, wire
 from fecproxy.protocol.events import (
     BlockOutcome,
     BlockReport,
+    ChallengeDue,
     ControlReceived,
     Delivery,
     Dropped,
     DropReason,
     Event,
+    SessionProven,
     SessionStarted,
     direct_delivery,
 )
+from fecproxy.protocol.loss_report import KIND_KEY_CHECK
 from fecproxy.protocol.received_code import ReceivedCode
 from fecproxy.protocol.replay import ReplayWindow
 
@@ -222,6 +225,8 @@ class BlockDecoder:
         #: The latest packet's authentication result: the key id and whether the previous key
         #: was used (for the shell's rollover notice); None when unkeyed or not authentic.
         self.last_verified: auth.Verified | None = None
+        #: Keyed: which peer sessions proved they are live now (replay across restarts).
+        self.freshness = freshness.FreshnessGate()
 
     @property
     def sessions(self) -> tuple[int, ...]:
@@ -247,6 +252,11 @@ class BlockDecoder:
             if type(verified) is not auth.Verified:
                 return [verified], False
             data = verified.packet
+            gate = self.freshness
+            if not gate.admits(verified.session, verified.sequence):
+                unproven = self._unproven(gate, verified, now)
+                if unproven is not None:
+                    return unproven, False
         # Fast path for the two packets a clean link brings: a source packet of the replied-to
         # session, and such a repair packet of a block already finished.  The same checks in the
         # same order as wire.parse + _receive_general, with the same outcome, minus the packet
@@ -347,6 +357,33 @@ class BlockDecoder:
         window.commit(sequence)
         self.last_verified = verified
         return verified
+
+    def _unproven(self, gate: freshness.FreshnessGate, verified: auth.Verified, now: float) -> list[Event] | None:
+        """An authentic packet of a session not proven fresh since this decoder started
+        (:mod:`fecproxy.protocol.freshness`): an echo may prove it; a challenge or key check
+        passes (answering one proves nothing and costs one small packet); anything else is
+        dropped as ``unproven`` and the session challenged.  None: let the packet through."""
+        data = verified.packet
+        if len(data) > wire.CONTROL_HEADER_BYTES and data[0] == wire.CONTROL_TYPE_BYTE:
+            kind = freshness.kind_of(data[wire.CONTROL_HEADER_BYTES :])
+            if kind == freshness.KIND_ECHO:
+                if gate.on_echo(verified.session, verified.sequence, data[wire.CONTROL_HEADER_BYTES :]):
+                    return [SessionProven(verified.session, verified.sequence)]
+                return [
+                    self._drop(DropReason.UNPROVEN, f"echo of session {verified.session:#010x} answers no challenge")
+                ]
+            if kind == freshness.KIND_CHALLENGE or kind == KIND_KEY_CHECK:
+                return None
+        if gate.is_proven(verified.session):
+            detail = f"session {verified.session:#010x}: sequence {verified.sequence} sealed before its echo"
+            return [self._drop(DropReason.UNPROVEN, detail)]
+        events: list[Event] = [
+            self._drop(DropReason.UNPROVEN, f"session {verified.session:#010x} not yet proven fresh (challenged)")
+        ]
+        body = gate.challenge(verified.session, now)
+        if body is not None:
+            events.append(ChallengeDue(verified.session, body))
+        return events
 
     def _receive_general(self, data: bytes, now: float) -> tuple[list[Event], bool]:
         """``receive`` without its fast path: complete on its own (the fast path only saves the

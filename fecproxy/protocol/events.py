@@ -40,6 +40,7 @@ class DropReason(StrEnum):
     SESSION_LIMIT = "session_limit"  # a new sender session while every session slot is live
     MEMORY_LIMIT = "memory_limit"  # the decoder's byte budget is full of its own block
     DECODE_LIMIT = "decode_limit"  # a rebuild waits: decoder.max_rebuilds_per_s reached
+    UNPROVEN = "unproven"  # keyed: an authentic packet of a peer session not yet proven fresh (protocol.freshness)
 
 
 class BlockOutcome(StrEnum):
@@ -112,6 +113,24 @@ class ControlReceived(Event):
 
     session: int
     body: bytes
+
+
+@dataclass(frozen=True, slots=True)
+class ChallengeDue(Event):
+    """Keyed: send this challenge body (:mod:`fecproxy.protocol.freshness`), sealed as a control
+    packet of our own session, to the address the unproven packet came from."""
+
+    session: int
+    body: bytes
+
+
+@dataclass(frozen=True, slots=True)
+class SessionProven(Event):
+    """Keyed: the peer session answered our challenge; its packets sealed after ``sequence``
+    are delivered from now on."""
+
+    session: int
+    sequence: int
 
 
 def _delivery_maker():

@@ -30,10 +30,19 @@ from fecproxy import __version__
 from fecproxy.config import Config
 from fecproxy.config.addresses import format_sockaddr
 from fecproxy.linkmodel.estimator import LossEstimator
-from fecproxy.protocol import auth
+from fecproxy.protocol import auth, freshness
 from fecproxy.protocol.decoder import BlockDecoder, DecoderStats
 from fecproxy.protocol.encoder import BlockEncoder, EncoderStats
-from fecproxy.protocol.events import BlockReport, ControlReceived, Delivery, Dropped, DropReason, SessionStarted
+from fecproxy.protocol.events import (
+    BlockReport,
+    ChallengeDue,
+    ControlReceived,
+    Delivery,
+    Dropped,
+    DropReason,
+    SessionProven,
+    SessionStarted,
+)
 from fecproxy.protocol.flows import ClientFlowTable, PeerFlowTable
 from fecproxy.protocol.loss_report import KEY_CHECK_BODY
 from fecproxy.shell.fdlimit import ensure_open_files, files_needed
@@ -95,6 +104,7 @@ class Daemon:
         self.encoder = BlockEncoder(encoder_settings(config), self.session, sealer=sealer)
         self.decoder = BlockDecoder(decoder_settings(config), keys)
         self.auth_notice = auth.FailureNotice()
+        self.echoes = freshness.EchoResponder()  # answers the peer's challenges (keyed mode)
         self._key_check_due = False  # a key fault was logged: tell the peer too (see _send_key_check)
         self.estimator = LossEstimator(window=LOSS_ESTIMATE_WINDOW)
         # Loss reports on the direction we decode; adaptation of the one we encode (fec.adapt).
@@ -403,6 +413,10 @@ class Daemon:
                         # A block with nothing lost is one run of arrivals, a segment of its own.
                         estimator.observe_block(event.arrived_mask, event.span)
                         self.feedback.observe_block(event.arrived_mask, event.span)
+                    elif kind is ChallengeDue or (
+                        kind is ControlReceived and freshness.kind_of(event.body) == freshness.KIND_CHALLENGE
+                    ):
+                        await self._freshness_exchange(event, address, now)
                     elif kind is SessionStarted and event.previous is not None and self.upstreams is not None:
                         # A restarted sender numbers its flows afresh: what came before belongs
                         # to the old conversations, which all end now.
@@ -433,6 +447,20 @@ class Daemon:
             settled = self.decoder.received_code.settled
             if settled is not None and settled != self._logged_code:
                 self._log_peer_code(*settled)
+
+    async def _freshness_exchange(self, event, address, now: float) -> None:
+        """Keyed mode (protocol.freshness): send our challenge for an unproven peer session, or
+        answer the peer's challenge with an echo sealed in our session — to the address the
+        packet came from (a learned peer may not be proven yet; both are rate-limited)."""
+        if self.encoder.sealer is None:
+            return
+        if type(event) is ChallengeDue:
+            body = event.body
+        else:
+            body = self.echoes.answer(event.body, self.encoder.session, now)
+            if body is None:
+                return
+        await self._link_writer.send([self.encoder.control(body)], address)
 
     async def _send_key_check(self, source) -> None:
         """After logging that the peer's packets carry a key (or encryption mode) we do not share,
@@ -623,6 +651,8 @@ class Daemon:
             if drop is not None:
                 self._drops[drop.reason] += 1
                 self._handle_event(drop, now)
+        elif kind is SessionProven:
+            log_event(log, logging.INFO, "session_proven", session=f"{event.session:08x}")
         elif kind is SessionStarted:
             self._logged_code = None  # a new peer session: its code is logged afresh
             log_event(
