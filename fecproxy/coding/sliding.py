@@ -289,6 +289,25 @@ class WindowSystem:
         self._drop_columns(old_columns)
         return old
 
+    def give_up(self, esis: Sequence[int]) -> None:
+        """Stop solving for these unknowns (too old to be of use): their columns go, and so do the
+        equations that involve them."""
+        columns = [self._column_of[esi] for esi in esis if esi in self._column_of]
+        if not columns:
+            return
+        if self._pivots:
+            keep = np.flatnonzero(~self._coefs[:, columns].any(axis=1))
+            self._coefs, self._rhs = self._coefs[keep], self._rhs[keep]
+            self._pivots = [self._pivots[r] for r in keep.tolist()]
+        self._drop_columns(columns)
+
+    def referenced(self) -> set[int]:
+        """Unknown ESIs some equation involves (the others cannot be determined by what is held)."""
+        if not self._pivots:
+            return set()
+        used = np.flatnonzero(self._coefs.any(axis=0))
+        return {self._columns[c] for c in used.tolist()}
+
     # --- elimination -------------------------------------------------------------------------
 
     def _add_column(self, esi: int) -> None:
@@ -385,4 +404,3 @@ class WindowSystem:
         self._pivots = [self._pivots[r] for r in keep]
         self._drop_columns(solved_columns)
         return solved
-
