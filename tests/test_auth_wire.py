@@ -33,9 +33,9 @@ def prove(decoder: BlockDecoder, encoder: BlockEncoder, now=0.5) -> None:
     """The freshness exchange (protocol.freshness) before the test's traffic: the decoder's
     challenge for the encoder's session, answered by an echo the encoder seals."""
     challenge = decoder.freshness.challenge(encoder.session, now)
-    echo = freshness.EchoResponder().answer(challenge, encoder.session, now)
+    echo = freshness.EchoResponder().answer(challenge, encoder.session, 0.0, now)
     events, _ = decoder.receive(encoder.control(echo), now)
-    assert events == [SessionProven(encoder.session, encoder.sealer.next_sequence - 1)]
+    assert events == [SessionProven(encoder.session, encoder.sealer.next_sequence - 1, True, 0)]
 
 
 def stream(encoder: BlockEncoder, count: int, *, seed=1, start=0.0):
@@ -214,31 +214,69 @@ def test_a_recording_replayed_to_a_restarted_receiver_delivers_nothing_and_is_ch
     datagrams, recording = stream(encoder, 24)
     assert run(before, recording)[0] == datagrams
     restarted = receiver()
+    restarted.freshness.listening(2.0)
     events = [e for p in recording for e in restarted.receive(p, 2.0)[0]]
-    assert not [e for e in events if isinstance(e, Delivery)]
-    assert {e.reason for e in events if isinstance(e, Dropped)} == {"unproven"}
+    assert not [e for e in events if isinstance(e, (Delivery, Dropped))]  # held, not delivered
     challenges = [e for e in events if isinstance(e, ChallengeDue)]
     assert len(challenges) == 1  # once per retry interval, not once per packet
     # An attacker cannot answer (no key); a recorded echo answers an older nonce.
     old_echo = encoder.control(freshness.encode(freshness.KIND_ECHO, 0x1234, bytes(16)))
     assert [e.reason for e in restarted.receive(old_echo, 2.1)[0]] == ["unproven"]
-    # The live sender answers: its echo's sequence is above everything recorded, so the
-    # recording stays refused while new traffic flows.
-    echo = freshness.EchoResponder().answer(challenges[0].body, encoder.session, 2.2)
+    # The live sender, running for 60 s (longer than this receiver), answers: what it sealed
+    # before its echo may be a recording, so the held packets are dropped, not delivered.
+    echo = freshness.EchoResponder().answer(challenges[0].body, encoder.session, 60.0, 2.2)
     events, _ = restarted.receive(encoder.control(echo), 2.2)
-    assert isinstance(events[0], SessionProven)
+    assert events[0] == SessionProven(0x1234, encoder.sealer.next_sequence - 1, False, 0)
+    assert [(e.reason, e.detail.split()[0]) for e in events[1:]] == [("unproven", str(len(recording)))]
     assert run(restarted, recording, now=2.3)[0] == []
     fresh, more = stream(encoder, 8, seed=5, start=2.3)
     assert run(restarted, more, now=2.4)[0] == fresh
 
 
+def test_a_restarted_sender_loses_nothing_its_packets_held_until_proven_are_released():
+    decoder = receiver()
+    decoder.freshness.listening(0.0)
+    prove(decoder, sender(session=1), now=0.1)
+    restarted = sender(session=2, salt=11)  # started at 5.0, after the receiver began listening
+    datagrams, packets = stream(restarted, 12, start=5.0)
+    events = [e for p in packets for e in decoder.receive(p, 5.01)[0]]
+    assert not [e for e in events if isinstance(e, Delivery)]
+    challenge = next(e for e in events if isinstance(e, ChallengeDue))
+    echo = freshness.EchoResponder().answer(challenge.body, 2, 0.02, 5.02)
+    events, _ = decoder.receive(restarted.control(echo), 5.02)
+    assert events[0] == SessionProven(2, restarted.sealer.next_sequence - 1, True, len(packets))
+    assert [e.data for e in events if isinstance(e, Delivery)] == datagrams
+    assert run(decoder, packets, now=5.03) == ([], ["replay"] * len(packets))  # held ones were windowed
+
+
+def test_a_hello_proves_whichever_session_the_peer_runs_and_is_bounded():
+    decoder, encoder = receiver(), sender()
+    gate = decoder.freshness
+    hello = gate.hello(0.0)
+    assert freshness.parse(hello).any_session and gate.hello(0.1) is None  # not due yet
+    echo = freshness.EchoResponder().answer(hello, encoder.session, 0.0, 0.2)
+    events, _ = decoder.receive(encoder.control(echo), 0.3)
+    assert isinstance(events[0], SessionProven) and gate.is_proven(0x1234)
+    assert gate.hello(1.0) is None and gate.hello_deadline() is None  # a session is proven: done
+    quiet = receiver().freshness
+    sent = [quiet.hello(t * freshness.CHALLENGE_RETRY_S) for t in range(40)]
+    assert sum(body is not None for body in sent) == freshness.HELLO_TRIES
+
+
+def test_held_packets_are_bounded_per_session():
+    encoder, decoder = sender(k=16, m=0), receiver()
+    _, packets = stream(encoder, freshness.MAX_HELD_PACKETS + 40)
+    drops = run(decoder, packets)[1]
+    assert drops == ["unproven"] * (len(packets) - freshness.MAX_HELD_PACKETS)
+
+
 def test_a_challenge_is_answered_only_for_the_own_session_and_at_a_bounded_rate():
     responder = freshness.EchoResponder()
     body = freshness.encode(freshness.KIND_CHALLENGE, 0x1234, bytes(range(16)))
-    assert responder.answer(body, 0x9999, 0.0) is None  # a predecessor's session: no echo
-    echoes = [responder.answer(body, 0x1234, 0.0) for _ in range(50)]
+    assert responder.answer(body, 0x9999, 1.0, 0.0) is None  # a predecessor's session: no echo
+    echoes = [responder.answer(body, 0x1234, 1.5, 0.0) for _ in range(50)]
     assert sum(e is not None for e in echoes) == freshness.BURST
-    assert freshness.parse(echoes[0]) == freshness.Message(freshness.KIND_ECHO, 0x1234, bytes(range(16)))
-    for bad in (b"", body[:-1], body + b"\x00", b"\x03\x01" + body[2:], b"\x07" + body[1:]):
+    assert freshness.parse(echoes[0]) == freshness.Message(freshness.KIND_ECHO, 0x1234, bytes(range(16)), 1500)
+    for bad in (b"", body[:-1], body + b"\x00", body[:2] + b"\x01" + body[3:], b"\x07" + body[1:]):
         with pytest.raises(freshness.FreshnessError):
             freshness.parse(bad)

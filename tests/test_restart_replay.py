@@ -61,14 +61,16 @@ def test_a_recording_replayed_to_a_restarted_receiver_delivers_nothing_and_a_liv
     receiver = restart(pair, "receiver")
     pair.relay.target = receiver.link_address
     replay(recording, receiver.link_address)
-    assert wait_until(lambda: dropped(receiver, "unproven") >= len(recording) - 5, 5.0)
-    time.sleep(0.3)
+    # Held (bounded) while its session is unproven, and the challenge went to the attacker.
+    time.sleep(0.5)
     assert receiver.metric("fecproxy_datagrams_delivered_total") == 0
     before = pair.server.count()
     # The genuine sender (still the same session) answers the new receiver's challenge at once.
     took = first_arrival_after(pair, lambda i: client.send(1000 + i), before, timeout=3.0)
     assert took is not None and took < 1.0, f"first delivery after {took} s; log:\n{receiver.log()}"
-    assert receiver.events("session_proven")
+    proven = receiver.events("session_proven")
+    assert proven and proven[0]["young"] == "False"  # the sender is older than this receiver
+    assert dropped(receiver, "unproven") >= min(len(recording), 128) - 5  # held, then refused
     # Replayed once more after the proof: still nothing (below the echo's sequence number).
     time.sleep(0.5)  # the genuine datagrams still in flight (and their block's flush) come first
     delivered = receiver.metric("fecproxy_datagrams_delivered_total")
@@ -98,3 +100,18 @@ def test_replies_replayed_to_a_restarted_sender_are_not_delivered(pairs, tmp_pat
     stale = [reply for reply in client.replies if reply is not None and reply[1] < 5000]
     assert stale == [], f"{len(stale)} recorded replies reached the client"
     assert dropped(sender, "unproven") + dropped(sender, "replay") >= len(replies) - 5
+
+
+def test_a_restarted_keyed_sender_loses_nothing_and_its_replies_flow(pairs, tmp_path):
+    pair = pairs(echo=True, **keyed(tmp_path))
+    client = pair.client(stream=63)
+    send_paced(client.send, 40, rate=1000)
+    drain(pair, 40)
+    restart(pair, "sender")
+    client = pair.client(stream=63)  # to the new sender's listen address
+    send_paced(lambda i: client.send(40 + i), 80, rate=1000)
+    drain(pair, 120)
+    # The new session started after the receiver: what it held while proving it is released.
+    assert sorted(pair.server.received) == [(63, seq) for seq in range(120)]
+    assert pair.receiver.metric("fecproxy_datagrams_unrecovered_total") == 0
+    assert wait_until(lambda: (client.collect(), len(client.replies) >= 80)[1], 5.0), len(client.replies)

@@ -254,9 +254,11 @@ class BlockDecoder:
             data = verified.packet
             gate = self.freshness
             if not gate.admits(verified.session, verified.sequence):
-                unproven = self._unproven(gate, verified, now)
-                if unproven is not None:
-                    return unproven, False
+                early, passes = self._unproven(gate, verified, now)
+                if not passes:
+                    return early, False
+                later, _ = self._receive_general(data, now)
+                return early + later, False
         # Fast path for the two packets a clean link brings: a source packet of the replied-to
         # session, and such a repair packet of a block already finished.  The same checks in the
         # same order as wire.parse + _receive_general, with the same outcome, minus the packet
@@ -352,38 +354,57 @@ class BlockDecoder:
                 live.window = window
             else:  # a new session: _add_session takes it from here
                 self._retired_windows[session] = window
-                while len(self._retired_windows) > RETIRED_WINDOWS:
-                    self._retired_windows.popitem(last=False)
+                self._trim_retired_windows()
         window.commit(sequence)
         self.last_verified = verified
         return verified
 
-    def _unproven(self, gate: freshness.FreshnessGate, verified: auth.Verified, now: float) -> list[Event] | None:
+    def _unproven(self, gate: freshness.FreshnessGate, verified: auth.Verified, now: float) -> tuple[list[Event], bool]:
         """An authentic packet of a session not proven fresh since this decoder started
-        (:mod:`fecproxy.protocol.freshness`): an echo may prove it; a challenge or key check
-        passes (answering one proves nothing and costs one small packet); anything else is
-        dropped as ``unproven`` and the session challenged.  None: let the packet through."""
-        data = verified.packet
+        (:mod:`fecproxy.protocol.freshness`).  An echo may prove it (releasing what was held);
+        a challenge or key check passes on (answering one proves nothing and costs one small
+        packet), and makes us challenge its session too; anything else is held until the
+        session is proven, or dropped as ``unproven`` if it was sealed before the proof.
+        Returns the events and whether the packet goes on to the general path."""
+        data, session = verified.packet, verified.session
+        events: list[Event] = []
         if len(data) > wire.CONTROL_HEADER_BYTES and data[0] == wire.CONTROL_TYPE_BYTE:
-            kind = freshness.kind_of(data[wire.CONTROL_HEADER_BYTES :])
+            body = data[wire.CONTROL_HEADER_BYTES :]
+            kind = freshness.kind_of(body)
             if kind == freshness.KIND_ECHO:
-                if gate.on_echo(verified.session, verified.sequence, data[wire.CONTROL_HEADER_BYTES :]):
-                    return [SessionProven(verified.session, verified.sequence)]
-                return [
-                    self._drop(DropReason.UNPROVEN, f"echo of session {verified.session:#010x} answers no challenge")
-                ]
+                proof = gate.on_echo(session, verified.sequence, body, now)
+                if proof is None:
+                    return [
+                        self._drop(DropReason.UNPROVEN, f"echo of session {session:#010x} answers no challenge")
+                    ], False
+                events.append(SessionProven(session, proof.floor, proof.young, len(proof.released)))
+                if proof.discarded:
+                    events.append(
+                        self._drop_many(DropReason.UNPROVEN, proof.discarded, "held, sealed before the proof")
+                    )
+                for packet in proof.released:
+                    events.extend(self._receive_general(packet, now)[0])
+                return events, False
             if kind == freshness.KIND_CHALLENGE or kind == KIND_KEY_CHECK:
-                return None
-        if gate.is_proven(verified.session):
-            detail = f"session {verified.session:#010x}: sequence {verified.sequence} sealed before its echo"
-            return [self._drop(DropReason.UNPROVEN, detail)]
-        events: list[Event] = [
-            self._drop(DropReason.UNPROVEN, f"session {verified.session:#010x} not yet proven fresh (challenged)")
-        ]
-        body = gate.challenge(verified.session, now)
-        if body is not None:
-            events.append(ChallengeDue(verified.session, body))
-        return events
+                if not gate.is_proven(session):
+                    challenge = gate.challenge(session, now)
+                    if challenge is not None:
+                        events.append(ChallengeDue(session, challenge))
+                return events, True
+        if gate.is_proven(session):
+            detail = f"session {session:#010x}: sequence {verified.sequence} sealed before its echo"
+            return [self._drop(DropReason.UNPROVEN, detail)], False
+        challenge = gate.challenge(session, now)
+        if challenge is not None:
+            events.append(ChallengeDue(session, challenge))
+        dropped = gate.hold(session, verified.sequence, data, now)
+        if dropped:
+            events.append(self._drop_many(DropReason.UNPROVEN, dropped, f"session {session:#010x} not yet proven"))
+        return events, False
+
+    def _drop_many(self, reason: DropReason, count: int, detail: str) -> Dropped:
+        self.stats.dropped[reason] = self.stats.dropped.get(reason, 0) + count
+        return Dropped(reason, f"{count} packets: {detail}")
 
     def _receive_general(self, data: bytes, now: float) -> tuple[list[Event], bool]:
         """``receive`` without its fast path: complete on its own (the fast path only saves the
@@ -453,10 +474,16 @@ class BlockDecoder:
         del self._sessions[sess.id]
         if sess.window is not None:
             self._retired_windows[sess.id] = sess.window
-            while len(self._retired_windows) > RETIRED_WINDOWS:
-                self._retired_windows.popitem(last=False)
+            self._trim_retired_windows()
         if sess is self._primary:
             self._primary = None  # the session stays named in self.session until another is chosen
+
+    def _trim_retired_windows(self) -> None:
+        """Keep RETIRED_WINDOWS ended sessions' windows; a session whose window goes loses its
+        freshness proof too (without a window its old packets could pass again)."""
+        while len(self._retired_windows) > RETIRED_WINDOWS:
+            session, _ = self._retired_windows.popitem(last=False)
+            self.freshness.forget(session)
 
     def _admit(
         self, sess: _Session, pkt: wire.SourcePacket | wire.RepairPacket, now: float, events: list[Event]

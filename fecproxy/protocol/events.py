@@ -127,10 +127,13 @@ class ChallengeDue(Event):
 @dataclass(frozen=True, slots=True)
 class SessionProven(Event):
     """Keyed: the peer session answered our challenge; its packets sealed after ``sequence``
-    are delivered from now on."""
+    are delivered from now on.  ``young``: it started after this side began listening, so the
+    ``released`` packets held meanwhile were delivered too."""
 
     session: int
     sequence: int
+    young: bool = False
+    released: int = 0
 
 
 def _delivery_maker():

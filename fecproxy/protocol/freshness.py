@@ -19,18 +19,32 @@ anyway (replies, loss reports):
    sequence number above Q are delivered (the replay window takes over from there); those at or
    below Q were sent before the echo and may be a recording, and are dropped as ``unproven``.
 
+What is held meanwhile: the packets of a session awaiting proof are kept (bounded, MAX_HELD_*),
+authenticated and already recorded in the session's replay window.  The echo also says how long
+ago its session started (``age``).  A session that started after this side began listening
+(``age`` ≤ first challenge − listening start, measured on this side's clock) sealed every packet
+after that start, and every one of them that arrived here went through this side's replay window:
+none can be a recording from before, so the held packets are released — a restarted *sender*
+loses nothing.  A session older than that (this side restarted under a running peer) may be
+replayed from before the restart, so only held packets sealed after its echo are released.
+
 Why this stops a replay: a recording holds only packets sealed before the nonce existed, so it
 holds no echo of it, and the key is needed to make one.  If the recorded session is still live,
 its sender answers and the floor Q lies above every recorded packet.  Limits: it needs the return
-path (a one-way link delivers nothing in keyed mode); the packets a side sends during the round
-trip after the other side restarted are lost (one round trip, ~1 ms on a LAN, ~600 ms over a
-geostationary hop); a recording still costs the work of checking its tags; and all of it holds
-only while the key file stays secret.  Challenges and echoes are rate-limited, so a recorded
-challenge replayed at a side cannot make it send more than ECHOES_PER_S small packets.
+path (a one-way link delivers nothing in keyed mode); when a side restarts under a running peer,
+what the peer sealed before answering the new side's challenge is lost (one round trip, ~1 ms on
+a LAN, ~600 ms over a geostationary hop); a recording still costs the work of checking its tags;
+and all of it holds only while the key file stays secret.  Challenges and echoes are
+rate-limited, so a recorded challenge replayed at a side cannot make it send more than
+ECHOES_PER_S small packets.  A side that knows its peer's address sends a *hello* at start — a
+challenge naming no session ("whichever session you are") — so its peer's session is proven
+before the first reply.  If the decoder ever forgets a replay window (more sessions than it
+keeps), the young-session rule restarts from that moment.
 
 Control bodies (after the 10-byte common header of a control packet, :mod:`wire`)::
 
-    kind (1 B: 3 = challenge, 4 = echo) | reserved (3 B, 0) | session (4 B) | nonce (16 B)
+    kind (1 B: 3 = challenge, 4 = echo) | flags (1 B: 0x01 ANY = hello) | reserved (2 B, 0)
+    | session (4 B) | nonce (16 B) | age (4 B, ms since the echoing session started; 0 in a challenge)
 
 Pure: ``now`` in, bodies out; the shell seals and sends them.
 """
@@ -45,15 +59,28 @@ from dataclasses import dataclass
 
 KIND_CHALLENGE = 3
 KIND_ECHO = 4
-#: kind, 3 reserved bytes, session, nonce.
-BODY = struct.Struct(">B3xI16s")
-BODY_BYTES = BODY.size  # 24
+#: kind, flags, 2 reserved bytes, session, nonce, age in ms.
+BODY = struct.Struct(">BB2xI16sI")
+BODY_BYTES = BODY.size  # 28
+FLAG_ANY = 0x01  # a hello: a challenge for whichever session the peer is running
+MAX_AGE_MS = 0xFFFFFFFF  # ≈ 49 days; an older session says this much (it is "old" anyway)
 #: 128 bits: the nonce size RFC 7296 §2.10 requires at least (half the PRF key size, ≥ 128 bits).
 NONCE_BYTES = 16
 #: A challenge not answered within this time is sent again (same nonce).  Four tries a second
 #: keep a restart under a second behind a lost challenge on a lossy link, and stay far below the
 #: data rate (common practice, no source).
 CHALLENGE_RETRY_S = 0.25
+#: Held packets of sessions awaiting proof: at most this many per session and this many bytes in
+#: all, each at most HOLD_S old when released.  128 packets is 0.13 s at 1 000 datagrams/s, more
+#: than a LAN round trip; 1 MiB bounds what recordings can make a side hold (README "Bounds").
+MAX_HELD_PACKETS = 128
+MAX_HELD_BYTES = 1024 * 1024
+#: A held packet older than this is not released (it would be stale for the application, and its
+#: block long expired at the peer's pace): one second, the restart promise.
+HOLD_S = 1.0
+#: Hellos a side sends at start until some peer session is proven (one per CHALLENGE_RETRY_S):
+#: two seconds of trying, then challenges follow traffic only.
+HELLO_TRIES = 8
 #: Sessions awaiting proof at once.  The decoder tracks at most 4 live sessions; a few more let a
 #: stranger's authentic recordings not push out the real one (oldest pending goes first).
 MAX_PENDING = 8
@@ -79,23 +106,27 @@ class Message:
     kind: int
     session: int
     nonce: bytes
+    age_ms: int = 0
+    any_session: bool = False  # a hello
 
 
-def encode(kind: int, session: int, nonce: bytes) -> bytes:
+def encode(kind: int, session: int, nonce: bytes, age_ms: int = 0, *, any_session: bool = False) -> bytes:
     if kind not in (KIND_CHALLENGE, KIND_ECHO) or len(nonce) != NONCE_BYTES or not 0 <= session <= 0xFFFFFFFF:
         raise ValueError("challenge/echo needs kind 3 or 4, a 32-bit session and a 16-byte nonce")
-    return BODY.pack(kind, session, nonce)
+    return BODY.pack(kind, FLAG_ANY if any_session else 0, session, nonce, min(max(age_ms, 0), MAX_AGE_MS))
 
 
 def parse(body: bytes) -> Message:
     if len(body) != BODY_BYTES:
         raise FreshnessError(f"challenge/echo body of {len(body)} bytes; expected {BODY_BYTES}")
-    if body[1:4] != b"\x00\x00\x00":
-        raise FreshnessError("challenge/echo with reserved bytes set")
-    kind, session, nonce = BODY.unpack(body)
+    if body[2:4] != b"\x00\x00" or body[1] & ~FLAG_ANY:
+        raise FreshnessError("challenge/echo with reserved bits set")
+    kind, flags, session, nonce, age_ms = BODY.unpack(body)
     if kind not in (KIND_CHALLENGE, KIND_ECHO):
         raise FreshnessError(f"control kind {kind} is not a challenge or an echo")
-    return Message(kind, session, nonce)
+    if flags and kind != KIND_CHALLENGE:
+        raise FreshnessError("only a challenge may name no session")
+    return Message(kind, session, nonce, age_ms, bool(flags))
 
 
 def kind_of(body: bytes) -> int | None:
@@ -123,27 +154,63 @@ class _Bucket:
 
 
 class _Pending:
-    __slots__ = ("nonce", "sent_at")
+    __slots__ = ("nonce", "sent_at", "first_sent", "held", "held_bytes")
 
     def __init__(self, nonce: bytes) -> None:
         self.nonce = nonce
         self.sent_at: float | None = None
+        self.first_sent: float | None = None
+        self.held: list[tuple[int, float, bytes]] = []  # (sequence, arrival, plain packet)
+        self.held_bytes = 0
+
+
+@dataclass(frozen=True, slots=True)
+class Proof:
+    """What an echo proved: the session, its floor, the held packets to release now (in arrival
+    order) and how many held packets it leaves dropped."""
+
+    session: int
+    floor: int
+    released: list[bytes]
+    discarded: int
+    young: bool  # started after this side began listening: everything held was released
 
 
 class FreshnessGate:
-    """Which peer sessions are proven, from which sequence number on; challenges to send.
+    """Which peer sessions are proven, from which sequence number on; challenges to send; the
+    packets held until then.
 
-    ``admits(session, sequence)`` on every authentic packet (two dict lookups at most);
-    ``challenge(session, now)`` for one that is not admitted; ``on_echo`` when an echo arrives.
+    ``admits(session, sequence)`` on every authentic packet (one dict lookup);
+    ``challenge(session, now)`` and ``hold(...)`` for one that is not admitted; ``on_echo`` when
+    an echo arrives.
     """
 
     def __init__(self, nonce: Callable[[], bytes] = lambda: secrets.token_bytes(NONCE_BYTES)) -> None:
         self._nonce = nonce
         self._proven: OrderedDict[int, int] = OrderedDict()  # session -> floor (echo's sequence)
         self._pending: OrderedDict[int, _Pending] = OrderedDict()
+        self._hello: _Pending | None = None
+        self._hellos_left = HELLO_TRIES
         self._bucket = _Bucket(CHALLENGES_PER_S, BURST)
+        self._held_bytes = 0
+        #: Since when every authentic packet that arrived went through a replay window this side
+        #: still has (see the module docstring): set by ``listening``, else the first challenge;
+        #: moved to "now" when a window is forgotten.
+        self.trusted_since: float | None = None
+        self._forgot = False
         self.challenges_sent = 0
         self.proven_count = 0
+
+    def listening(self, now: float) -> None:
+        """The shell opened its link socket at ``now``: nothing arrived before."""
+        if self.trusted_since is None:
+            self.trusted_since = now
+
+    def forget(self, session: int) -> None:
+        """The decoder dropped ``session``'s replay window: its proof goes, and the young-session
+        rule restarts at the next ``now`` (packets sealed before may have passed no window)."""
+        self._proven.pop(session, None)
+        self._forgot = True
 
     def admits(self, session: int, sequence: int) -> bool:
         """True when ``session`` is proven and ``sequence`` was sealed after its echo."""
@@ -153,40 +220,115 @@ class FreshnessGate:
     def is_proven(self, session: int) -> bool:
         return session in self._proven
 
+    @property
+    def any_proven(self) -> bool:
+        return bool(self._proven)
+
+    def _tick(self, now: float) -> None:
+        if self.trusted_since is None:
+            self.trusted_since = now
+        if self._forgot:
+            self._forgot = False
+            self.trusted_since = now
+
     def challenge(self, session: int, now: float) -> bytes | None:
         """The challenge body to send for an unproven ``session`` now, or None (one is out and
         not yet due again, or the rate limit is reached)."""
+        self._tick(now)
         pending = self._pending.get(session)
         if pending is None:
             pending = self._pending[session] = _Pending(self._nonce())
             while len(self._pending) > MAX_PENDING:
-                self._pending.popitem(last=False)
+                _, gone = self._pending.popitem(last=False)
+                self._held_bytes -= gone.held_bytes
         elif pending.sent_at is not None and now - pending.sent_at < CHALLENGE_RETRY_S:
             return None
         if not self._bucket.take(now):
             return None
         pending.sent_at = now
+        if pending.first_sent is None:
+            pending.first_sent = now
         self.challenges_sent += 1
         return encode(KIND_CHALLENGE, session, pending.nonce)
 
-    def on_echo(self, session: int, sequence: int, body: bytes) -> bool:
-        """An authentic echo in ``session``'s own packet with sequence ``sequence``: True when it
-        answers our pending challenge (the session is proven from ``sequence`` on)."""
+    def hello(self, now: float) -> bytes | None:
+        """A hello to send to a known peer address (at start, HELLO_TRIES times at most, until a
+        session is proven), or None."""
+        self._tick(now)
+        if self._proven or self._hellos_left <= 0:
+            return None
+        hello = self._hello
+        if hello is None:
+            hello = self._hello = _Pending(self._nonce())
+        elif hello.sent_at is not None and now - hello.sent_at < CHALLENGE_RETRY_S:
+            return None
+        if not self._bucket.take(now):
+            return None
+        self._hellos_left -= 1
+        hello.sent_at = now
+        if hello.first_sent is None:
+            hello.first_sent = now
+        self.challenges_sent += 1
+        return encode(KIND_CHALLENGE, 0, hello.nonce, any_session=True)
+
+    def hello_deadline(self) -> float | None:
+        """When the next hello is due (None: no more)."""
+        hello = self._hello
+        if self._proven or self._hellos_left <= 0 or hello is None or hello.sent_at is None:
+            return None
+        return hello.sent_at + CHALLENGE_RETRY_S
+
+    def hold(self, session: int, sequence: int, packet: bytes, now: float) -> int:
+        """Keep an authentic packet of a session awaiting proof (``challenge`` made its entry);
+        returns how many held packets (this one included) were dropped to stay in bounds."""
+        pending = self._pending.get(session)
+        if pending is None:
+            return 1
+        dropped = 0
+        size = len(packet)
+        while pending.held and (len(pending.held) >= MAX_HELD_PACKETS or self._held_bytes + size > MAX_HELD_BYTES):
+            _, _, old = pending.held.pop(0)
+            pending.held_bytes -= len(old)
+            self._held_bytes -= len(old)
+            dropped += 1
+        if self._held_bytes + size > MAX_HELD_BYTES:
+            return dropped + 1
+        pending.held.append((sequence, now, packet))
+        pending.held_bytes += size
+        self._held_bytes += size
+        return dropped
+
+    def on_echo(self, session: int, sequence: int, body: bytes, now: float) -> Proof | None:
+        """An authentic echo in ``session``'s own packet with sequence ``sequence``: the proof
+        when it answers our pending challenge (or hello), else None."""
+        self._tick(now)
         try:
             message = parse(body)
         except FreshnessError:
-            return False
+            return None
+        if message.kind != KIND_ECHO or message.session != session:
+            return None
         pending = self._pending.get(session)
-        if message.kind != KIND_ECHO or message.session != session or pending is None:
-            return False
-        if not secrets.compare_digest(message.nonce, pending.nonce):
-            return False
-        del self._pending[session]
+        answered: _Pending
+        held: list[tuple[int, float, bytes]]
+        if pending is not None and secrets.compare_digest(message.nonce, pending.nonce):
+            answered, held = pending, pending.held
+        elif self._hello is not None and secrets.compare_digest(message.nonce, self._hello.nonce):
+            answered, held = self._hello, pending.held if pending is not None else []
+            self._hello = None
+        else:
+            return None
+        if pending is not None:
+            del self._pending[session]
+            self._held_bytes -= pending.held_bytes
         self._proven[session] = sequence
         while len(self._proven) > MAX_PROVEN:
             self._proven.popitem(last=False)
         self.proven_count += 1
-        return True
+        since, first_sent = self.trusted_since, answered.first_sent
+        young = first_sent is not None and since is not None and message.age_ms / 1000 <= first_sent - since
+        released = [packet for seq, arrival, packet in held if now - arrival <= HOLD_S and (young or seq > sequence)]
+        return Proof(session, sequence, released, len(held) - len(released), young)
 
 
 class EchoResponder:
@@ -196,15 +338,18 @@ class EchoResponder:
         self._bucket = _Bucket(ECHOES_PER_S, BURST)
         self.echoes_sent = 0
 
-    def answer(self, body: bytes, own_session: int, now: float) -> bytes | None:
+    def answer(self, body: bytes, own_session: int, age: float, now: float) -> bytes | None:
         """The echo body for a challenge ``body`` naming ``own_session`` (this side's sender
-        session, which will seal the echo), or None: malformed, another session's (a restarted
-        side's predecessor: its echo could prove nothing), or over the rate."""
+        session, which will seal the echo and started ``age`` seconds ago) or naming none (a
+        hello), or None: malformed, another session's (a restarted side's predecessor: its echo
+        could prove nothing), or over the rate."""
         try:
             message = parse(body)
         except FreshnessError:
             return None
-        if message.kind != KIND_CHALLENGE or message.session != own_session or not self._bucket.take(now):
+        if message.kind != KIND_CHALLENGE or not (message.any_session or message.session == own_session):
+            return None
+        if not self._bucket.take(now):
             return None
         self.echoes_sent += 1
-        return encode(KIND_ECHO, message.session, message.nonce)
+        return encode(KIND_ECHO, own_session, message.nonce, int(age * 1000))

@@ -105,6 +105,7 @@ class Daemon:
         self.decoder = BlockDecoder(decoder_settings(config), keys)
         self.auth_notice = auth.FailureNotice()
         self.echoes = freshness.EchoResponder()  # answers the peer's challenges (keyed mode)
+        self._started_at: float | None = None  # when the link socket opened (our session's age)
         self._key_check_due = False  # a key fault was logged: tell the peer too (see _send_key_check)
         self.estimator = LossEstimator(window=LOSS_ESTIMATE_WINDOW)
         # Loss reports on the direction we decode; adaptation of the one we encode (fec.adapt).
@@ -264,6 +265,8 @@ class Daemon:
         cfg = self.config
         self._check_open_files()
         metrics = self._open_sockets()
+        self._started_at = trio.current_time()
+        self.decoder.freshness.listening(self._started_at)
         self.feedback.configure(cfg, encoder_settings(cfg), trio.current_time())
         try:
             async with trio.open_nursery() as nursery:
@@ -274,6 +277,7 @@ class Daemon:
                     nursery.start_soon(metrics.run)  # the metrics port: a task here, no thread
                 nursery.start_soon(self._link_loop)
                 nursery.start_soon(self._timer_loop)
+                nursery.start_soon(self._hello_loop)
                 if self._app_sock is not None:
                     nursery.start_soon(self._client_loop)
                 if signals is not None:
@@ -459,10 +463,24 @@ class Daemon:
         if type(event) is ChallengeDue:
             body = event.body
         else:
-            body = self.echoes.answer(event.body, self.encoder.session, now)
+            age = now - self._started_at if self._started_at is not None else 0.0
+            body = self.echoes.answer(event.body, self.encoder.session, age, now)
             if body is None:
                 return
         await self._link_writer.send([self.encoder.control(body)], address)
+
+    async def _hello_loop(self) -> None:
+        """Keyed, with a known peer address: a few hellos at start (protocol.freshness), so the
+        peer's session is proven before its first reply."""
+        gate = self.decoder.freshness
+        while self.encoder.sealer is not None and self.peer is not None:
+            body = gate.hello(trio.current_time())
+            if body is not None:
+                await self._link_writer.send([self.encoder.control(body)], self.peer)
+            deadline = gate.hello_deadline()
+            if deadline is None:
+                return
+            await trio.sleep_until(deadline)
 
     async def _send_key_check(self, source) -> None:
         """After logging that the peer's packets carry a key (or encryption mode) we do not share,
@@ -654,7 +672,14 @@ class Daemon:
                 self._drops[drop.reason] += 1
                 self._handle_event(drop, now)
         elif kind is SessionProven:
-            log_event(log, logging.INFO, "session_proven", session=f"{event.session:08x}")
+            log_event(
+                log,
+                logging.INFO,
+                "session_proven",
+                session=f"{event.session:08x}",
+                young=event.young,
+                released=event.released,
+            )
         elif kind is SessionStarted:
             self._logged_code = None  # a new peer session: its code is logged afresh
             log_event(
