@@ -609,6 +609,7 @@ class _Parser:
         self.check_fec()
         self.check_addresses()
         self.check_auth()
+        self.check_flow_timeouts()
         if self.errors:
             raise ConfigError(self.errors)
         return self.build()
@@ -779,6 +780,16 @@ class _Parser:
             self.error(
                 "auth.encrypt",
                 f"true needs the {CRYPTO_PACKAGE} package, which is not installed; run {CRYPTO_INSTALL_HINT}, or set auth.encrypt: false",
+            )
+
+    def check_flow_timeouts(self) -> None:
+        first = self.values.get("flows.first_exchange_timeout_s")
+        idle = self.values.get("flows.idle_timeout_s")
+        if isinstance(first, int) and isinstance(idle, int) and first > idle:
+            self.error(
+                "flows.first_exchange_timeout_s",
+                f"{first} is above flows.idle_timeout_s {idle}; expected at most idle_timeout_s (a flow that "
+                f"has not been answered yet is never kept longer than an established one)",
             )
 
     def build(self) -> Config:
