@@ -900,3 +900,8 @@ def test_interleave_and_size_classes():
     ):
         messages = errors_of(edited(SENDER, **bad))
         assert len(messages) == 1 and path in messages[0], messages
+
+
+def test_first_exchange_default_follows_a_shorter_idle_timeout():
+    config = parse_config(edited(SENDER, flows__idle_timeout_s=10))
+    assert (config.flows.idle_timeout_s, config.flows.first_exchange_timeout_s) == (10, 10)
