@@ -23,10 +23,10 @@ from collections.abc import Awaitable, Callable, Iterable
 import trio
 
 from fecproxy.config.addresses import format_sockaddr
-from fecproxy.protocol.events import DropReason
+from fecproxy.protocol.events import DropReason, SockAddr
 from fecproxy.protocol.flows import FlowClosed, Opened, PeerFlowTable, Verdict
 from fecproxy.shell.logs import log_event
-from fecproxy.shell.udp import Address, DatagramReader, DatagramWriter
+from fecproxy.shell.udp import DatagramReader, DatagramWriter
 
 # The daemon's logger: these events were always the daemon's, and log filters rely on the name.
 log = logging.getLogger("fecproxy.shell.daemon")
@@ -65,7 +65,7 @@ class Upstreams:
     :meth:`writer_for` (the reader tasks live there, beside the daemon's loops, so stopping the
     daemon ends them too), and :meth:`close_all` when the daemon ends."""
 
-    def __init__(self, forward: Address, flows: PeerFlowTable, on_replies: ReplyHandler):
+    def __init__(self, forward: SockAddr, flows: PeerFlowTable, on_replies: ReplyHandler):
         self.forward = forward
         self.flows = flows
         self.on_replies = on_replies
