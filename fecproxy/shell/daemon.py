@@ -201,6 +201,8 @@ class Daemon:
             async with trio.open_nursery() as nursery:
                 self._nursery = nursery
                 self.app.start(nursery)
+                if metrics is not None:
+                    nursery.start_soon(metrics.run)  # the metrics port: a task here, no thread
                 nursery.start_soon(self._link_loop)
                 nursery.start_soon(self._timer_loop)
                 if signals is not None:
