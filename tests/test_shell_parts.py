@@ -18,12 +18,12 @@ import pytest
 import trio
 
 from fecproxy.config import parse_config_text
+from fecproxy.linkmodel.feedback import Feedback
 from fecproxy.protocol.decoder import BlockDecoder, DecoderStats
 from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings, EncoderStats
 from fecproxy.protocol.events import DropReason
 from fecproxy.shell import logs, udp
 from fecproxy.shell.metrics import build_registry, serve
-from fecproxy.shell.reports import Feedback
 from fecproxy.shell.settings import RESTART_KEYS, ReloadRejected, keep_fixed, needs_restart, read_new_config
 
 LOOPBACK = "127.0.0.1"
@@ -104,9 +104,7 @@ class StandInDaemon:
         self.encoder_stats = EncoderStats()
         self.decoder_stats = DecoderStats()
         self.decoder_stats.recovered = 3
-        self.feedback = Feedback(
-            BlockEncoder(EncoderSettings(), 1), BlockDecoder(), logging.getLogger("test")
-        )  # no reports yet
+        self.feedback = Feedback(BlockEncoder(EncoderSettings(), 1), BlockDecoder())  # no reports yet
 
     def drop_counts(self):
         return {"late": 2}

@@ -33,9 +33,9 @@ from fecproxy.shell.status import status_app
 disable_created_metrics()
 
 if TYPE_CHECKING:
+    from fecproxy.linkmodel.feedback import Feedback
     from fecproxy.protocol.decoder import DecoderStats
     from fecproxy.protocol.encoder import EncoderStats
-    from fecproxy.shell.reports import Feedback
 
 #: Why a well-formed loss report gave no decision (the labels of fecproxy_reports_ignored_total):
 #: on another session than our encoder's (reports.OTHER_SESSION), or the controller's reasons.
