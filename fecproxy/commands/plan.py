@@ -46,8 +46,8 @@ from fecproxy.linkmodel.planner import (
 LINK_LOSS_GAUGE = "fecproxy_link_loss_ratio"
 LINK_BURST_GAUGE = "fecproxy_link_mean_burst_packets"
 #: The gauges that tell the code arriving on the measured link (the peer's k and m as decoded).
-RECEIVED_K_GAUGE = "fecproxy_received_code_k"
-RECEIVED_M_GAUGE = "fecproxy_received_code_m"
+RECEIVED_K_GAUGE = "fecproxy_received_code_source_symbols"
+RECEIVED_M_GAUGE = "fecproxy_received_code_repair_symbols"
 #: A metrics page is a few kB; 1 MiB is far above any real page and bounds what we read.
 MAX_METRICS_PAGE_BYTES = 1 << 20
 #: Seconds to wait for the metrics page: a receiver on the same LAN answers in milliseconds.
@@ -339,7 +339,7 @@ def _pick(samples, name: str, select: dict[str, str]) -> float:
 
 def running_code(samples, select: dict[str, str]) -> dict[str, int] | None:
     """The code arriving on the measured link: the peer's k and m as this daemon decodes them
-    (``fecproxy_received_code_k``/``_m``); None while unknown (no repair packet yet) or absent.
+    (``fecproxy_received_code_source_symbols``/``_repair_symbols``); None while unknown or absent.
 
     The page's ``fecproxy_info`` labels are not used: they are the code this daemon *sends* with,
     on the other direction, while the link estimate describes the direction it receives."""
