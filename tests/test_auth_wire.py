@@ -1,6 +1,7 @@
 """Authentication wired into the encoder and decoder (sans-IO, fake clock): every packet sealed,
 every bad one refused with its reason before it touches any block, nothing forged delivered."""
 
+import itertools
 import random
 
 import pytest
@@ -8,7 +9,29 @@ import pytest
 from fecproxy.protocol import auth, freshness, keys, wire
 from fecproxy.protocol.decoder import BlockDecoder, DecoderSettings
 from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
-from fecproxy.protocol.events import ChallengeDue, ControlReceived, Delivery, Dropped, SessionProven, SessionStarted
+from fecproxy.protocol.events import (
+    ChallengeDue,
+    ControlReceived,
+    Delivery,
+    Dropped,
+    KeyCheckDue,
+    PeerAddressChanged,
+    SessionProven,
+    SessionStarted,
+)
+
+_SOURCES = itertools.count(1024)
+
+
+def receive_noting_peer(decoder, data, now):
+    """``decoder.receive`` from a fresh source address each time: returns the packet's events
+    (the peer-address event aside) and whether the decoder took that address as its peer's,
+    which it does exactly for a valid packet of the followed session."""
+    decoder.learn_peer = True
+    events = decoder.receive(data, ("127.0.0.1", next(_SOURCES)), now)
+    learned = [e for e in events if isinstance(e, PeerAddressChanged)]
+    return [e for e in events if not isinstance(e, PeerAddressChanged)], bool(learned)
+
 
 OLD = keys.MasterKey(bytes.fromhex("11" * 32))
 NEW = keys.MasterKey(bytes.fromhex("22" * 32))
@@ -33,9 +56,16 @@ def prove(decoder: BlockDecoder, encoder: BlockEncoder, now=0.5) -> None:
     """The freshness exchange (protocol.freshness) before the test's traffic: the decoder's
     challenge for the encoder's session, answered by an echo the encoder seals."""
     challenge = decoder.freshness.challenge(encoder.session, now)
-    echo = freshness.EchoResponder().answer(challenge, encoder.session, 0.0, now)
-    events, _ = decoder.receive(encoder.control(echo), now)
-    assert events == [SessionProven(encoder.session, encoder.sealer.next_sequence - 1, True, 0)]
+    echo = answer(challenge, encoder, now)
+    events = decoder.receive(encoder.control(echo), None, now)
+    assert len(events) == 1 and isinstance(events[0], SessionProven)
+
+
+def answer(challenge: bytes, encoder: BlockEncoder, now: float, started: float = 0.0) -> bytes:
+    """The echo an encoder running since ``started`` (nothing sealed before that) gives."""
+    first = auth.first_sequence(7)  # every test sender's salt is 7 or its sequence starts later
+    history = freshness.SequenceHistory(started, min(first, encoder.sealer.next_sequence))
+    return freshness.EchoResponder().answer(challenge, encoder.session, history, encoder.sealer.next_sequence, now)
 
 
 def stream(encoder: BlockEncoder, count: int, *, seed=1, start=0.0):
@@ -53,7 +83,7 @@ def stream(encoder: BlockEncoder, count: int, *, seed=1, start=0.0):
 def run(decoder: BlockDecoder, packets, now=1.0):
     delivered, drops = [], []
     for packet in packets:
-        events, _ = decoder.receive(packet, now)
+        events = decoder.receive(packet, None, now)
         delivered += [e.data for e in events if isinstance(e, Delivery)]
         drops += [e.reason for e in events if isinstance(e, Dropped)]
     return delivered, drops
@@ -130,8 +160,9 @@ def test_replay_of_a_session_that_ended_is_still_a_replay():
 def test_a_wrong_key_is_refused_and_says_which_key_ids_differ():
     _, packets = stream(sender(STRANGER), 4)
     decoder = receiver()
-    events, in_session = decoder.receive(packets[0], 1.0)
-    assert not in_session and [e.reason for e in events] == ["auth"]
+    events, in_session = receive_noting_peer(decoder, packets[0], 1.0)
+    assert not in_session and [e.reason for e in events if isinstance(e, Dropped)] == ["auth"]
+    assert isinstance(events[1], KeyCheckDue)  # the peer is told too (the key check's own test: test_core_decisions)
     error = events[0].error
     assert isinstance(error, auth.AuthError) and error.kind == "unknown_key"
     notice = auth.FailureNotice()
@@ -174,11 +205,11 @@ def test_control_packets_are_sealed_verified_and_handed_on():
     run(decoder, packets)
     control = encoder.control(b"\x01report")
     assert control[1] & wire.FLAG_AUTH
-    events, in_session = decoder.receive(control, 1.0)
+    events, in_session = receive_noting_peer(decoder, control, 1.0)
     assert events == [ControlReceived(0x1234, b"\x01report")]
     assert not in_session  # a control packet never teaches the shell its peer
     forged = wire.encode_control(0x1234, b"\x01forged")
-    assert [e.reason for e in decoder.receive(forged, 1.0)[0]] == ["auth"]
+    assert [e.reason for e in decoder.receive(forged, None, 1.0)] == ["auth"]
 
 
 def test_a_stranger_without_the_key_cannot_start_or_take_a_session():
@@ -187,12 +218,12 @@ def test_a_stranger_without_the_key_cannot_start_or_take_a_session():
     datagrams, packets = stream(encoder, 20)
     got = []
     for i, packet in enumerate(packets):
-        events, _ = decoder.receive(packet, 1.0 + i * 1e-3)
+        events = decoder.receive(packet, None, 1.0 + i * 1e-3)
         got += [e.data for e in events if isinstance(e, Delivery)]
         for j in range(5):
             forged = wire.encode_source(0xBAD, i, j, 1, b"forged") + bytes(auth.TRAILER_BYTES)
             forged = forged[:1] + bytes([forged[1] | wire.FLAG_AUTH]) + forged[2:]
-            assert decoder.receive(forged, 1.0)[0][0].reason == "auth"
+            assert decoder.receive(forged, None, 1.0)[0].reason == "auth"
     assert got == datagrams and decoder.sessions == (0x1234,)
     assert decoder.stats.dropped == {"auth": 5 * len(packets)}
 
@@ -201,7 +232,7 @@ def test_session_started_is_told_once_for_a_keyed_sender():
     encoder, decoder = sender(), receiver()
     prove(decoder, encoder)
     _, packets = stream(encoder, 4)
-    events = [e for p in packets for e in decoder.receive(p, 1.0)[0]]
+    events = [e for p in packets for e in decoder.receive(p, None, 1.0)]
     assert [e for e in events if isinstance(e, SessionStarted)] == [SessionStarted(0x1234, None)]
 
 
@@ -215,18 +246,18 @@ def test_a_recording_replayed_to_a_restarted_receiver_delivers_nothing_and_is_ch
     assert run(before, recording)[0] == datagrams
     restarted = receiver()
     restarted.freshness.listening(2.0)
-    events = [e for p in recording for e in restarted.receive(p, 2.0)[0]]
+    events = [e for p in recording for e in restarted.receive(p, None, 2.0)]
     assert not [e for e in events if isinstance(e, (Delivery, Dropped))]  # held, not delivered
     challenges = [e for e in events if isinstance(e, ChallengeDue)]
     assert len(challenges) == 1  # once per retry interval, not once per packet
     # An attacker cannot answer (no key); a recorded echo answers an older nonce.
     old_echo = encoder.control(freshness.encode(freshness.KIND_ECHO, 0x1234, bytes(16)))
-    assert [e.reason for e in restarted.receive(old_echo, 2.1)[0]] == ["unproven"]
+    assert [e.reason for e in restarted.receive(old_echo, None, 2.1)] == ["unproven"]
     # The live sender, running for 60 s (longer than this receiver), answers: what it sealed
     # before its echo may be a recording, so the held packets are dropped, not delivered.
-    echo = freshness.EchoResponder().answer(challenges[0].body, encoder.session, 60.0, 2.2)
-    events, _ = restarted.receive(encoder.control(echo), 2.2)
-    assert events[0] == SessionProven(0x1234, encoder.sealer.next_sequence - 1, False, 0)
+    echo = answer(challenges[0].body, encoder, 2.2, started=-60.0)
+    events = restarted.receive(encoder.control(echo), None, 2.2)
+    assert events[0] == SessionProven(0x1234, encoder.sealer.next_sequence - 2, False, 0)
     assert [(e.reason, e.detail.split()[0]) for e in events[1:]] == [("unproven", str(len(recording)))]
     assert run(restarted, recording, now=2.3)[0] == []
     fresh, more = stream(encoder, 8, seed=5, start=2.3)
@@ -239,12 +270,13 @@ def test_a_restarted_sender_loses_nothing_its_packets_held_until_proven_are_rele
     prove(decoder, sender(session=1), now=0.1)
     restarted = sender(session=2, salt=11)  # started at 5.0, after the receiver began listening
     datagrams, packets = stream(restarted, 12, start=5.0)
-    events = [e for p in packets for e in decoder.receive(p, 5.01)[0]]
+    events = [e for p in packets for e in decoder.receive(p, None, 5.01)]
     assert not [e for e in events if isinstance(e, Delivery)]
     challenge = next(e for e in events if isinstance(e, ChallengeDue))
-    echo = freshness.EchoResponder().answer(challenge.body, 2, 0.02, 5.02)
-    events, _ = decoder.receive(restarted.control(echo), 5.02)
-    assert events[0] == SessionProven(2, restarted.sealer.next_sequence - 1, True, len(packets))
+    history = freshness.SequenceHistory(5.0, auth.first_sequence(11))
+    echo = freshness.EchoResponder().answer(challenge.body, 2, history, restarted.sealer.next_sequence, 5.02)
+    events = decoder.receive(restarted.control(echo), None, 5.02)
+    assert events[0] == SessionProven(2, auth.first_sequence(11) - 1, True, len(packets))
     assert [e.data for e in events if isinstance(e, Delivery)] == datagrams
     assert run(decoder, packets, now=5.03) == ([], ["replay"] * len(packets))  # held ones were windowed
 
@@ -254,8 +286,8 @@ def test_a_hello_proves_whichever_session_the_peer_runs_and_is_bounded():
     gate = decoder.freshness
     hello = gate.hello(0.0)
     assert freshness.parse(hello).any_session and gate.hello(0.1) is None  # not due yet
-    echo = freshness.EchoResponder().answer(hello, encoder.session, 0.0, 0.2)
-    events, _ = decoder.receive(encoder.control(echo), 0.3)
+    echo = answer(hello, encoder, 0.2)
+    events = decoder.receive(encoder.control(echo), None, 0.3)
     assert isinstance(events[0], SessionProven) and gate.is_proven(0x1234)
     assert gate.hello(1.0) is None and gate.hello_deadline() is None  # a session is proven: done
     quiet = receiver().freshness
@@ -272,11 +304,19 @@ def test_held_packets_are_bounded_per_session():
 
 def test_a_challenge_is_answered_only_for_the_own_session_and_at_a_bounded_rate():
     responder = freshness.EchoResponder()
-    body = freshness.encode(freshness.KIND_CHALLENGE, 0x1234, bytes(range(16)))
-    assert responder.answer(body, 0x9999, 1.0, 0.0) is None  # a predecessor's session: no echo
-    echoes = [responder.answer(body, 0x1234, 1.5, 0.0) for _ in range(50)]
+    history = freshness.SequenceHistory(0.0, 100)
+    for step in range(1, 11):  # a checkpoint every 1/64 s (over CHECKPOINT_S), 50 packets apart
+        history.note(step / 64, 100 + 50 * step)
+    body = freshness.encode(freshness.KIND_CHALLENGE, 0x1234, bytes(range(16)), 45)  # listening 45 ms
+    assert responder.answer(body, 0x9999, history, 700, 0.1) is None  # a predecessor's session: no echo
+    echoes = [responder.answer(body, 0x1234, history, 700, 0.1) for _ in range(50)]
     assert sum(e is not None for e in echoes) == freshness.BURST
-    assert freshness.parse(echoes[0]) == freshness.Message(freshness.KIND_ECHO, 0x1234, bytes(range(16)), 1500)
+    # Received at 100 ms by a side listening for 45 ms: vouches from the 62.5 ms checkpoint on.
+    assert freshness.parse(echoes[0]) == freshness.Message(freshness.KIND_ECHO, 0x1234, bytes(range(16)), 300)
+    young = freshness.encode(freshness.KIND_CHALLENGE, 0x1234, bytes(16), 5000)  # listening 5 s
+    assert freshness.parse(responder.answer(young, 0x1234, history, 700, 0.2)).value == 100
+    late = freshness.encode(freshness.KIND_CHALLENGE, 0x1234, bytes(16), 0)  # just started
+    assert freshness.parse(responder.answer(late, 0x1234, history, 700, 0.3)).value == 700
     for bad in (b"", body[:-1], body + b"\x00", body[:2] + b"\x01" + body[3:], b"\x07" + body[1:]):
         with pytest.raises(freshness.FreshnessError):
             freshness.parse(bad)

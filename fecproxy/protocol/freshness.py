@@ -19,32 +19,35 @@ anyway (replies, loss reports):
    sequence number above Q are delivered (the replay window takes over from there); those at or
    below Q were sent before the echo and may be a recording, and are dropped as ``unproven``.
 
-What is held meanwhile: the packets of a session awaiting proof are kept (bounded, MAX_HELD_*),
-authenticated and already recorded in the session's replay window.  The echo also says how long
-ago its session started (``age``).  A session that started after this side began listening
-(``age`` ≤ first challenge − listening start, measured on this side's clock) sealed every packet
-after that start, and every one of them that arrived here went through this side's replay window:
-none can be a recording from before, so the held packets are released — a restarted *sender*
-loses nothing.  A session older than that (this side restarted under a running peer) may be
-replayed from before the restart, so only held packets sealed after its echo are released.
+What is held meanwhile, and what the echo vouches for: the packets of a session awaiting proof
+are kept (bounded, MAX_HELD_*), authenticated and already recorded in the session's replay window.
+The challenge says for how long U the challenger has been listening (every authentic packet since
+went through its replay windows); the answering side names the first sequence number S it sealed
+no earlier than U before the challenge reached it (from a short history of its own sequence
+numbers, SequenceHistory).  The challenger began listening no later than that moment, so every
+packet from S on was sealed after it began and, if it arrived, passed its windows: none of them
+can be a recording from before.  So held packets from S on are released and S − 1 becomes the
+floor.  A restarted *sender* (its session younger than U) loses nothing; a restarted receiver
+under a running sender loses what that sender sealed between the receiver's start and the
+moment the challenge arrived, less whatever falls after S — in practice about one round trip.
 
 Why this stops a replay: a recording holds only packets sealed before the nonce existed, so it
 holds no echo of it, and the key is needed to make one.  If the recorded session is still live,
-its sender answers and the floor Q lies above every recorded packet.  Limits: it needs the return
-path (a one-way link delivers nothing in keyed mode); when a side restarts under a running peer,
-what the peer sealed before answering the new side's challenge is lost (one round trip, ~1 ms on
-a LAN, ~600 ms over a geostationary hop); a recording still costs the work of checking its tags;
+its sender answers and vouches only for packets sealed after the challenger began listening.
+Limits: it needs the return path (a one-way link delivers nothing in keyed mode); when a side
+restarts under a running peer, what the peer sealed before the restart and delivers after it is
+lost (at most one round trip's worth); a recording still costs the work of checking its tags;
 and all of it holds only while the key file stays secret.  Challenges and echoes are
 rate-limited, so a recorded challenge replayed at a side cannot make it send more than
 ECHOES_PER_S small packets.  A side that knows its peer's address sends a *hello* at start — a
 challenge naming no session ("whichever session you are") — so its peer's session is proven
 before the first reply.  If the decoder ever forgets a replay window (more sessions than it
-keeps), the young-session rule restarts from that moment.
+keeps), "listening since" restarts from that moment (and challenges still out get new nonces).
 
 Control bodies (after the 10-byte common header of a control packet, :mod:`wire`)::
 
     kind (1 B: 3 = challenge, 4 = echo) | flags (1 B: 0x01 ANY = hello) | reserved (2 B, 0)
-    | session (4 B) | nonce (16 B) | age (4 B, ms since the echoing session started; 0 in a challenge)
+    | session (4 B) | nonce (16 B) | value (8 B: challenge: U in ms; echo: S)
 
 Pure: ``now`` in, bodies out; the shell seals and sends them.
 """
@@ -53,17 +56,24 @@ from __future__ import annotations
 
 import secrets
 import struct
-from collections import OrderedDict
+from collections import OrderedDict, deque
 from collections.abc import Callable
 from dataclasses import dataclass
+from typing import Any
 
 KIND_CHALLENGE = 3
 KIND_ECHO = 4
-#: kind, flags, 2 reserved bytes, session, nonce, age in ms.
-BODY = struct.Struct(">BB2xI16sI")
-BODY_BYTES = BODY.size  # 28
+#: kind, flags, 2 reserved bytes, session, nonce, value (challenge: listening for U ms; echo: S).
+BODY = struct.Struct(">BB2xI16sQ")
+BODY_BYTES = BODY.size  # 32
 FLAG_ANY = 0x01  # a hello: a challenge for whichever session the peer is running
-MAX_AGE_MS = 0xFFFFFFFF  # ≈ 49 days; an older session says this much (it is "old" anyway)
+VALUE_LIMIT = 1 << 64
+#: The answering side's sequence history: one checkpoint per CHECKPOINT_S, HISTORY_CHECKPOINTS
+#: kept (plus the session's first).  10 ms × 400 = 4 s back: a challenger that has listened longer
+#: than that has been up since before this session's recent packets anyway, or loses at most what
+#: was sealed in one checkpoint interval (our own bound, no source).
+CHECKPOINT_S = 0.010
+HISTORY_CHECKPOINTS = 400
 #: 128 bits: the nonce size RFC 7296 §2.10 requires at least (half the PRF key size, ≥ 128 bits).
 NONCE_BYTES = 16
 #: A challenge not answered within this time is sent again (same nonce).  Four tries a second
@@ -106,14 +116,14 @@ class Message:
     kind: int
     session: int
     nonce: bytes
-    age_ms: int = 0
+    value: int = 0  # challenge: listening for this many ms; echo: first sequence vouched for
     any_session: bool = False  # a hello
 
 
-def encode(kind: int, session: int, nonce: bytes, age_ms: int = 0, *, any_session: bool = False) -> bytes:
+def encode(kind: int, session: int, nonce: bytes, value: int = 0, *, any_session: bool = False) -> bytes:
     if kind not in (KIND_CHALLENGE, KIND_ECHO) or len(nonce) != NONCE_BYTES or not 0 <= session <= 0xFFFFFFFF:
         raise ValueError("challenge/echo needs kind 3 or 4, a 32-bit session and a 16-byte nonce")
-    return BODY.pack(kind, FLAG_ANY if any_session else 0, session, nonce, min(max(age_ms, 0), MAX_AGE_MS))
+    return BODY.pack(kind, FLAG_ANY if any_session else 0, session, nonce, min(max(value, 0), VALUE_LIMIT - 1))
 
 
 def parse(body: bytes) -> Message:
@@ -121,12 +131,12 @@ def parse(body: bytes) -> Message:
         raise FreshnessError(f"challenge/echo body of {len(body)} bytes; expected {BODY_BYTES}")
     if body[2:4] != b"\x00\x00" or body[1] & ~FLAG_ANY:
         raise FreshnessError("challenge/echo with reserved bits set")
-    kind, flags, session, nonce, age_ms = BODY.unpack(body)
+    kind, flags, session, nonce, value = BODY.unpack(body)
     if kind not in (KIND_CHALLENGE, KIND_ECHO):
         raise FreshnessError(f"control kind {kind} is not a challenge or an echo")
     if flags and kind != KIND_CHALLENGE:
         raise FreshnessError("only a challenge may name no session")
-    return Message(kind, session, nonce, age_ms, bool(flags))
+    return Message(kind, session, nonce, value, bool(flags))
 
 
 def kind_of(body: bytes) -> int | None:
@@ -154,13 +164,12 @@ class _Bucket:
 
 
 class _Pending:
-    __slots__ = ("nonce", "sent_at", "first_sent", "held", "held_bytes")
+    __slots__ = ("nonce", "sent_at", "held", "held_bytes")
 
     def __init__(self, nonce: bytes) -> None:
         self.nonce = nonce
         self.sent_at: float | None = None
-        self.first_sent: float | None = None
-        self.held: list[tuple[int, float, bytes]] = []  # (sequence, arrival, plain packet)
+        self.held: list[tuple[int, float, bytes, Any]] = []  # (sequence, arrival, plain packet, source)
         self.held_bytes = 0
 
 
@@ -171,9 +180,9 @@ class Proof:
 
     session: int
     floor: int
-    released: list[bytes]
+    released: list[tuple[bytes, Any]]  # (plain packet, the address it came from)
     discarded: int
-    young: bool  # started after this side began listening: everything held was released
+    young: bool  # everything held was vouched for (e.g. a session younger than our listening)
 
 
 class FreshnessGate:
@@ -207,10 +216,17 @@ class FreshnessGate:
             self.trusted_since = now
 
     def forget(self, session: int) -> None:
-        """The decoder dropped ``session``'s replay window: its proof goes, and the young-session
-        rule restarts at the next ``now`` (packets sealed before may have passed no window)."""
+        """The decoder dropped ``session``'s replay window: its proof goes, and "listening since"
+        restarts at the next ``now`` (packets sealed before may have passed no window)."""
         self._proven.pop(session, None)
         self._forgot = True
+        # Challenges already out told an older "listening since": their answers would vouch for
+        # too much.  New ones get new nonces.
+        for pending in self._pending.values():
+            pending.nonce = self._nonce()
+            pending.sent_at = None
+        if self._hello is not None:
+            self._hello.nonce = self._nonce()
 
     def admits(self, session: int, sequence: int) -> bool:
         """True when ``session`` is proven and ``sequence`` was sealed after its echo."""
@@ -246,10 +262,8 @@ class FreshnessGate:
         if not self._bucket.take(now):
             return None
         pending.sent_at = now
-        if pending.first_sent is None:
-            pending.first_sent = now
         self.challenges_sent += 1
-        return encode(KIND_CHALLENGE, session, pending.nonce)
+        return encode(KIND_CHALLENGE, session, pending.nonce, self._listening_ms(now))
 
     def hello(self, now: float) -> bytes | None:
         """A hello to send to a known peer address (at start, HELLO_TRIES times at most, until a
@@ -266,10 +280,13 @@ class FreshnessGate:
             return None
         self._hellos_left -= 1
         hello.sent_at = now
-        if hello.first_sent is None:
-            hello.first_sent = now
         self.challenges_sent += 1
-        return encode(KIND_CHALLENGE, 0, hello.nonce, any_session=True)
+        return encode(KIND_CHALLENGE, 0, hello.nonce, self._listening_ms(now), any_session=True)
+
+    def _listening_ms(self, now: float) -> int:
+        """U: how long every authentic packet has passed this side's windows, rounded down."""
+        since = self.trusted_since if self.trusted_since is not None else now
+        return max(0, int((now - since) * 1000))
 
     def hello_deadline(self) -> float | None:
         """When the next hello is due (None: no more)."""
@@ -278,7 +295,7 @@ class FreshnessGate:
             return None
         return hello.sent_at + CHALLENGE_RETRY_S
 
-    def hold(self, session: int, sequence: int, packet: bytes, now: float) -> int:
+    def hold(self, session: int, sequence: int, packet: bytes, source: Any, now: float) -> int:
         """Keep an authentic packet of a session awaiting proof (``challenge`` made its entry);
         returns how many held packets (this one included) were dropped to stay in bounds."""
         pending = self._pending.get(session)
@@ -287,13 +304,13 @@ class FreshnessGate:
         dropped = 0
         size = len(packet)
         while pending.held and (len(pending.held) >= MAX_HELD_PACKETS or self._held_bytes + size > MAX_HELD_BYTES):
-            _, _, old = pending.held.pop(0)
+            _, _, old, _ = pending.held.pop(0)
             pending.held_bytes -= len(old)
             self._held_bytes -= len(old)
             dropped += 1
         if self._held_bytes + size > MAX_HELD_BYTES:
             return dropped + 1
-        pending.held.append((sequence, now, packet))
+        pending.held.append((sequence, now, packet, source))
         pending.held_bytes += size
         self._held_bytes += size
         return dropped
@@ -309,26 +326,55 @@ class FreshnessGate:
         if message.kind != KIND_ECHO or message.session != session:
             return None
         pending = self._pending.get(session)
-        answered: _Pending
-        held: list[tuple[int, float, bytes]]
         if pending is not None and secrets.compare_digest(message.nonce, pending.nonce):
-            answered, held = pending, pending.held
+            pass
         elif self._hello is not None and secrets.compare_digest(message.nonce, self._hello.nonce):
-            answered, held = self._hello, pending.held if pending is not None else []
             self._hello = None
         else:
             return None
         if pending is not None:
             del self._pending[session]
             self._held_bytes -= pending.held_bytes
-        self._proven[session] = sequence
-        while len(self._proven) > MAX_PROVEN:
+        while len(self._proven) >= MAX_PROVEN:
             self._proven.popitem(last=False)
         self.proven_count += 1
-        since, first_sent = self.trusted_since, answered.first_sent
-        young = first_sent is not None and since is not None and message.age_ms / 1000 <= first_sent - since
-        released = [packet for seq, arrival, packet in held if now - arrival <= HOLD_S and (young or seq > sequence)]
-        return Proof(session, sequence, released, len(held) - len(released), young)
+        held = pending.held if pending is not None else []
+        floor = min(sequence, message.value - 1)
+        self._proven[session] = floor
+        released = [
+            (packet, source) for seq, arrival, packet, source in held if now - arrival <= HOLD_S and seq > floor
+        ]
+        return Proof(session, floor, released, len(held) - len(released), all(entry[0] > floor for entry in held))
+
+
+class SequenceHistory:
+    """The answering side's record of which sequence number it sealed when: the session's first,
+    then one checkpoint per CHECKPOINT_S (HISTORY_CHECKPOINTS kept).  ``note`` costs a compare
+    when no checkpoint is due, so the shell may call it per batch sent."""
+
+    __slots__ = ("_first", "_marks", "_last")
+
+    def __init__(self, now: float, first_sequence: int) -> None:
+        self._first = (now, first_sequence)
+        self._marks: deque[tuple[float, int]] = deque(maxlen=HISTORY_CHECKPOINTS)
+        self._last = now
+
+    def note(self, now: float, next_sequence: int) -> None:
+        """``next_sequence`` is the number the next packet sealed from ``now`` on gets."""
+        if now - self._last >= CHECKPOINT_S:
+            self._last = now
+            self._marks.append((now, next_sequence))
+
+    def first_since(self, moment: float, next_sequence: int) -> int:
+        """The lowest sequence number known to be sealed at or after ``moment`` (the next one
+        if nothing recorded is that recent)."""
+        start, first = self._first
+        if start >= moment:
+            return first
+        for time, sequence in self._marks:
+            if time >= moment:
+                return sequence
+        return next_sequence
 
 
 class EchoResponder:
@@ -338,11 +384,14 @@ class EchoResponder:
         self._bucket = _Bucket(ECHOES_PER_S, BURST)
         self.echoes_sent = 0
 
-    def answer(self, body: bytes, own_session: int, age: float, now: float) -> bytes | None:
+    def answer(
+        self, body: bytes, own_session: int, history: SequenceHistory, next_sequence: int, now: float
+    ) -> bytes | None:
         """The echo body for a challenge ``body`` naming ``own_session`` (this side's sender
-        session, which will seal the echo and started ``age`` seconds ago) or naming none (a
-        hello), or None: malformed, another session's (a restarted side's predecessor: its echo
-        could prove nothing), or over the rate."""
+        session, which will seal the echo as ``next_sequence``) or naming none (a hello), or
+        None: malformed, another session's (a restarted side's predecessor: its echo could prove
+        nothing), or over the rate.  It vouches for what was sealed since the challenger began
+        listening (see the module docstring)."""
         try:
             message = parse(body)
         except FreshnessError:
@@ -352,4 +401,5 @@ class EchoResponder:
         if not self._bucket.take(now):
             return None
         self.echoes_sent += 1
-        return encode(KIND_ECHO, own_session, message.nonce, int(age * 1000))
+        vouched = history.first_since(now - message.value / 1000, next_sequence)
+        return encode(KIND_ECHO, own_session, message.nonce, vouched)
