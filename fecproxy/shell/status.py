@@ -243,6 +243,7 @@ def status_app(registry: CollectorRegistry, other: Callable, history: History | 
             if history is not None:
                 rows, since = history_query(environ.get("QUERY_STRING", ""))
                 document["history"] = history.document(samples=rows, events_since=since)
+                document["uptime_s"] = history.uptime()  # one time base for the live read and the rows
             body = json.dumps(_json_safe(document), allow_nan=False).encode()
             headers = [("Content-Type", "application/json"), ("Cache-Control", "no-store")]
         else:
