@@ -9,6 +9,7 @@ from __future__ import annotations
 import argparse
 import importlib
 import sys
+from collections.abc import Set
 
 from fecproxy import __version__
 
@@ -36,10 +37,10 @@ class _HelpFormatter(argparse.ArgumentDefaultsHelpFormatter):
         text = action.help or ""
         if "default" in text or action.default in (None, False, [], argparse.SUPPRESS):
             return text
-        return super()._get_help_string(action)
+        return super()._get_help_string(action) or ""
 
 
-def build_parser(chosen: set[str] = frozenset()) -> argparse.ArgumentParser:
+def build_parser(chosen: Set[str] = frozenset()) -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="fecproxy",
         description="Reed–Solomon forward error correction for UDP over lossy links.",

@@ -6,6 +6,7 @@ from __future__ import annotations
 import dataclasses
 import os
 from pathlib import Path
+from typing import Any
 
 import yaml
 
@@ -20,12 +21,12 @@ MAX_CONFIG_FILE_BYTES = 1024 * 1024
 class _StrictLoader(yaml.SafeLoader):
     """SafeLoader that records duplicate keys (PyYAML silently keeps the last one)."""
 
-    def __init__(self, stream):
+    def __init__(self, stream: str) -> None:
         super().__init__(stream)
         self.duplicates: list[tuple[str, int, int]] = []
 
-    def construct_mapping(self, node, deep=False):
-        seen = set()
+    def construct_mapping(self, node: yaml.MappingNode, deep: bool = False) -> dict[Any, Any]:
+        seen: set[str] = set()
         for key_node, _ in node.value:
             if isinstance(key_node, yaml.ScalarNode):
                 key = key_node.value
@@ -122,7 +123,8 @@ def read_key_file(path: Path) -> MasterKey:
         ) from None
     except OSError as error:
         raise KeyFileError(
-            f"{shown}: cannot read the key file ({error.strerror or error}); make it readable by the user fecproxy runs as, "
+            f"{shown}: cannot read the key file ({error.strerror or error}); make it readable by the user fecproxy "
+            f"runs as, "
             f"and by no one else (chmod 600)"
         ) from None
     try:

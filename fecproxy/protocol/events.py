@@ -13,6 +13,7 @@ per-field ``object.__setattr__``.
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 from enum import StrEnum
 
@@ -114,14 +115,15 @@ class ControlReceived(Event):
     body: bytes
 
 
-def _delivery_maker():
+def _delivery_maker() -> Callable[[int, bytes], Delivery]:
     """Delivery(flow, data) for a datagram that came directly, built by filling its slots.
 
     The generated __init__ of a frozen dataclass sets each field through object.__setattr__:
     measured here, 0.97 µs against 0.51 µs this way, paid once per datagram on the receiver.
     """
-    new, set_flow, set_data = object.__new__, Delivery.flow.__set__, Delivery.data.__set__
-    set_recovered, set_delay = Delivery.recovered.__set__, Delivery.delay.__set__
+    slots = Delivery.__dict__  # the slot descriptors (typed as such there, not as the field types)
+    new, set_flow, set_data = object.__new__, slots["flow"].__set__, slots["data"].__set__
+    set_recovered, set_delay = slots["recovered"].__set__, slots["delay"].__set__
 
     def direct_delivery(flow: int, data: bytes) -> Delivery:
         delivery = new(Delivery)

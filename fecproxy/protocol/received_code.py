@@ -45,11 +45,11 @@ class ReceivedCode:
     def note(self, sbn: int, k: int, esi: int) -> None:
         """A repair packet of block ``sbn`` with ``k`` source symbols and ESI ``esi`` (≥ k)."""
         m = esi - k + 1
-        if sbn == self._sbn:
-            if k == self.k and m > self.m:
-                self.m = m
-            return
-        if self._sbn is not None:
+        if self._sbn is not None and self.k is not None and self.m is not None:  # k, m and _sbn are set together
+            if sbn == self._sbn:
+                if k == self.k and m > self.m:
+                    self.m = m
+                return
             ahead = (sbn - self._sbn) % SBN_MODULUS
             if ahead >= SBN_MODULUS // 2:
                 return  # an older block arriving late

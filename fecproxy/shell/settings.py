@@ -1,9 +1,10 @@
 """A daemon's core settings from its config, at start and on a SIGHUP reload.
 
 The cores can take new FEC, decoder and flow settings between blocks, so a reload applies those
-without dropping a flow (flow timeouts and the protected interval included).  What is bound to sockets or to the process's shape (role,
-addresses, metrics endpoint, socket buffers, logging, the flow table's size) cannot change under
-a running daemon: a reload reports such a change and keeps the running values until a restart.
+without dropping a flow (flow timeouts and the protected interval included).  What is bound to
+sockets or to the process's shape (role, addresses, metrics endpoint, socket buffers, logging,
+the flow table's size) cannot change under a running daemon: a reload reports such a change and
+keeps the running values until a restart.
 """
 
 from __future__ import annotations
@@ -68,14 +69,13 @@ def keyring(config: Config) -> Keyring | None:
 def flow_table(config: Config) -> ClientFlowTable | PeerFlowTable:
     """The sender's table of client addresses, or the receiver's table of the peer's flow ids."""
     flows = config.flows
-    timeouts = dict(
+    table = ClientFlowTable if config.role == "sender" else PeerFlowTable
+    return table(
+        flows.max,
         first_exchange_timeout=float(flows.first_exchange_timeout_s),
         idle_timeout=float(flows.idle_timeout_s),
         protect=float(flows.protect_s),
     )
-    if config.role == "sender":
-        return ClientFlowTable(flows.max, **timeouts)
-    return PeerFlowTable(flows.max, **timeouts)
 
 
 def apply_flow_timeouts(table: ClientFlowTable | PeerFlowTable, config: Config) -> None:

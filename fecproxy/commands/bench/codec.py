@@ -182,7 +182,7 @@ def measure_codec(k: int, m: int, length: int, seconds: float = DEFAULT_SECONDS,
             raise AssertionError(f"decode did not rebuild the source for k={k}, m={m}, L={length}")
     fresh = itertools.cycle(receptions)
     batches = itertools.cycle([receptions[i : i + DECODE_BATCH] for i in range(0, PATTERN_POOL, DECODE_BATCH)])
-    for received, rebuilt in zip(receptions[:DECODE_BATCH], code.recover_many(receptions[:DECODE_BATCH])):
+    for rebuilt in code.recover_many(receptions[:DECODE_BATCH]):
         if any(not np.array_equal(symbol, source[i]) for i, symbol in rebuilt.items()) or len(rebuilt) != min(m, k):
             raise AssertionError(f"recover_many did not rebuild the source for k={k}, m={m}, L={length}")
     repeated = receptions[0]
