@@ -8,19 +8,23 @@ prefix ``fecproxy_``, base units, counters end in ``_total``, labels only from s
 from __future__ import annotations
 
 import math
-import socket
-import threading
 from collections.abc import Iterable, Mapping
-from socketserver import ThreadingMixIn
 from typing import TYPE_CHECKING, Protocol
-from wsgiref.simple_server import WSGIRequestHandler, WSGIServer, make_server
 
-from prometheus_client import CollectorRegistry, Histogram, disable_created_metrics, make_wsgi_app
+from prometheus_client import (
+    CollectorRegistry,
+    Histogram,
+    PlatformCollector,
+    ProcessCollector,
+    disable_created_metrics,
+    make_wsgi_app,
+)
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, InfoMetricFamily
 
 from fecproxy import __version__
 from fecproxy.linkmodel.adaptation import DECISION_REASONS, DOWN, IGNORE_REASONS, UP
 from fecproxy.protocol.events import BlockOutcome, DropReason
+from fecproxy.shell.http_server import HttpServer, open_listener
 from fecproxy.shell.status import status_app
 
 # prometheus-client adds a `<name>_created` series (the creation time) to every counter and
@@ -29,9 +33,9 @@ from fecproxy.shell.status import status_app
 disable_created_metrics()
 
 if TYPE_CHECKING:
+    from fecproxy.linkmodel.feedback import Feedback
     from fecproxy.protocol.decoder import DecoderStats
     from fecproxy.protocol.encoder import EncoderStats
-    from fecproxy.shell.reports import Feedback
 
 #: Why a well-formed loss report gave no decision (the labels of fecproxy_reports_ignored_total):
 #: on another session than our encoder's (reports.OTHER_SESSION), or the controller's reasons.
@@ -201,12 +205,12 @@ class DaemonCollector:
         )
         received_k, received_m = d.received_code
         yield GaugeMetricFamily(
-            "fecproxy_received_code_k",
+            "fecproxy_received_code_source_symbols",
             "k of the code this daemon decodes (the peer's block size, from its repair packets); NaN until one arrives.",
             value=math.nan if received_k is None else received_k,
         )
         yield GaugeMetricFamily(
-            "fecproxy_received_code_m",
+            "fecproxy_received_code_repair_symbols",
             "m of the code this daemon decodes (highest repair ESI seen - k + 1, a lower bound if the last "
             "repair packets were lost); NaN until a repair packet arrives.",
             value=math.nan if received_m is None else received_m,
@@ -216,7 +220,7 @@ class DaemonCollector:
         info = InfoMetricFamily(
             "fecproxy",
             "Build of this daemon, its role and the code it sends with (k, m, interleave depth, size classes; "
-            "on a receiver: its replies). The code it decodes: fecproxy_received_code_k and fecproxy_received_code_m.",
+            "on a receiver: its replies). The code it decodes: fecproxy_received_code_source_symbols and _repair_symbols.",
         )
         info.add_metric(
             [],
@@ -233,22 +237,22 @@ class DaemonCollector:
 
 
 def _feedback_metrics(feedback: Feedback, shape: tuple[int, int], received: tuple[int | None, int | None]) -> Iterable:
-    """The code per link direction and the loss-report loop.  ``direction="send"``: the code this
+    """The code per link direction and the loss-report loop.  ``code="send"``: the code this
     daemon encodes with now (m moves with fec.adapt); ``"receive"``: the peer's code as its repair
-    packets show it (the same figures as fecproxy_received_code_k/_m; NaN until known; D is not on
+    packets show it (the same figures as fecproxy_received_code_*; NaN until known; D is not on
     the wire, so it has no "receive" series).  A fixed label set, so a pair's two scrapes line up."""
     k, m = shape
     received_k, received_m = (math.nan if value is None else value for value in received)
     for name, doc, sent, seen in (
         (
             "fecproxy_code_source_symbols",
-            "Source datagrams per full block (k) of the code, per link direction.",
+            "Source datagrams per full block (k): of the code this daemon sends with, and the one it receives.",
             k,
             received_k,
         ),
         (
             "fecproxy_code_repair_symbols",
-            "Repair packets per full block (m) of the code, per link direction.",
+            "Repair packets per full block (m): of the code this daemon sends with, and the one it receives.",
             m,
             received_m,
         ),
@@ -259,7 +263,9 @@ def _feedback_metrics(feedback: Feedback, shape: tuple[int, int], received: tupl
             None,
         ),
     ):
-        gauge = GaugeMetricFamily(name, doc, labels=["direction"])
+        # `code`, not `direction`: one meaning per label name across the package, and `direction`
+        # is the link direction (forward/return) on fecproxy impair's metrics.
+        gauge = GaugeMetricFamily(name, doc, labels=["code"])
         gauge.add_metric(["send"], sent)
         if seen is not None:
             gauge.add_metric(["receive"], seen)
@@ -278,13 +284,13 @@ def _feedback_metrics(feedback: Feedback, shape: tuple[int, int], received: tupl
     yield ignored
     adaptations = CounterMetricFamily(
         "fecproxy_adaptations",
-        "Changes of m (or D) made from loss reports, by direction and reason.",
-        labels=["direction", "reason"],
+        "Changes of m (or D) made from loss reports, by change (up, down) and reason.",
+        labels=["change", "reason"],
     )
     decisions = feedback.decisions()
-    for direction in (UP, DOWN):
+    for change in (UP, DOWN):
         for reason in DECISION_REASONS:
-            adaptations.add_metric([direction, reason], decisions.get((direction, reason), 0))
+            adaptations.add_metric([change, reason], decisions.get((change, reason), 0))
     yield adaptations
     yield GaugeMetricFamily(
         "fecproxy_reports_stale",
@@ -293,10 +299,19 @@ def _feedback_metrics(feedback: Feedback, shape: tuple[int, int], received: tupl
     )
 
 
+def add_process_collectors(registry: CollectorRegistry) -> None:
+    """prometheus-client's own collectors of the process (``process_*``: start time, memory, CPU,
+    open and maximum file descriptors, from /proc on Linux) and of the Python build
+    (``python_info``).  Several registries in one process (the demo) each show the same process."""
+    ProcessCollector(registry=registry)
+    PlatformCollector(registry=registry)
+
+
 def build_registry(daemon: DaemonView) -> tuple[CollectorRegistry, Histogram]:
     """A registry of this daemon's own (several daemons may share one process, as in the demo)."""
     registry = CollectorRegistry(auto_describe=False)
     registry.register(DaemonCollector(daemon))
+    add_process_collectors(registry)
     histogram = Histogram(
         "fecproxy_recovery_delay_seconds",
         "From a block's first packet to the delivery of a datagram rebuilt from it.",
@@ -306,52 +321,18 @@ def build_registry(daemon: DaemonView) -> tuple[CollectorRegistry, Histogram]:
     return registry, histogram
 
 
-#: How often the metrics thread looks for a stop request.  prometheus-client's own
-#: start_http_server keeps socketserver's 0.5 s, which alone spends half of the one second the
-#: daemon has to exit after SIGTERM; 50 ms costs a negligible 20 wake-ups a second.
-STOP_POLL_SECONDS = 0.05
-#: Seconds ``stop`` waits for the server thread; it is a daemon thread, so a scrape still being
-#: answered cannot hold up the process's exit beyond this.
-STOP_JOIN_SECONDS = 1.0
-
-
-class _ThreadingServer(ThreadingMixIn, WSGIServer):
-    daemon_threads = True
-
-
-class _QuietHandler(WSGIRequestHandler):
-    def log_message(self, format: str, *args) -> None:
-        """Scrapes are not events: nothing is logged per request."""
-
-
-class MetricsServer:
-    """A running /metrics endpoint: ``address`` is where it listens (the bound port when 0 was
-    asked for), ``stop()`` ends it quickly."""
-
-    def __init__(self, server: WSGIServer, thread: threading.Thread):
-        self._server, self._thread = server, thread
-        self.address: tuple[str, int] = server.server_address[:2]
-        self.port: int = self.address[1]
-
-    def stop(self) -> None:
-        self._server.shutdown()
-        self._server.server_close()
-        self._thread.join(timeout=STOP_JOIN_SECONDS)
+class MetricsServer(HttpServer):
+    """A bound /metrics endpoint: ``address`` is where it listens (the bound port when 0 was asked
+    for); it answers from :meth:`run`, a task in the owner's nursery; ``stop()`` ends it."""
 
 
 def serve(registry: CollectorRegistry, host: str, port: int) -> MetricsServer:
-    """Serve the registry (at /metrics, as at every path) from a background thread.
+    """Bind the metrics port for the registry (/metrics at every path but the status page's).
 
     The one metrics HTTP server of the package: the daemon, the demo and the impairment relay all
-    start theirs here.  Raises OSError when the address cannot be resolved or bound.
+    make theirs here, then start its ``run`` in their nursery (:mod:`fecproxy.shell.http_server`:
+    no thread, bounded connections).  Raises OSError when the address cannot be resolved or bound.
     """
-    family = socket.getaddrinfo(host, port, type=socket.SOCK_STREAM, flags=socket.AI_PASSIVE)[0][0]
     # `/` and `/status.json` are the status page; every other path is prometheus-client's.
     app = status_app(registry, make_wsgi_app(registry))
-    server_class = type("MetricsHTTPServer", (_ThreadingServer,), {"address_family": family})
-    server = make_server(host, port, app, server_class, handler_class=_QuietHandler)
-    thread = threading.Thread(
-        target=server.serve_forever, kwargs={"poll_interval": STOP_POLL_SECONDS}, name="fecproxy-metrics", daemon=True
-    )
-    thread.start()
-    return MetricsServer(server, thread)
+    return MetricsServer(open_listener(host, port), app)
