@@ -374,7 +374,7 @@ class BlockEncoder:
     def send(self, datagram: bytes, flow: int, now: float) -> list[bytes]:
         """Frame one application datagram; returns the packets to put on the link now.
 
-        ``flow`` is the packed 24-bit flow id (slot << 8 | generation), trusted as such.
+        ``flow`` is the packed 24-bit flow id (wire: slot << GENERATION_BITS | generation), trusted as such.
         An oversize datagram returns no packet and is counted in ``stats.dropped``.
         """
         return self.send_batch(((datagram, flow),), now)
@@ -393,6 +393,7 @@ class BlockEncoder:
         single_bound = bounds[0] if len(bounds) == 1 else None
         session, pack_source, pack_prefix = self.session, wire.pack_source_header, wire.SYMBOL_PREFIX.pack_into
         prefix, flag_end = wire.SYMBOL_PREFIX_BYTES, wire.FLAG_END
+        generation_bits, generation_mask, flow_shift = wire.GENERATION_BITS, wire.GENERATION_MASK, wire.FLOW_SHIFT
         blocks, lanes = self._open, self._lanes
         sources: list[bytes] = []
         pieces = [sources]  # source runs, each full block's (still empty) repair list between them
@@ -441,7 +442,7 @@ class BlockEncoder:
                     count, width, storage, symbol_len = block.count, block.width, block.storage, block.symbol_len
                     content, limit, base, previous_k = block.content, block.limit, block.base, block.previous_k
                 start = count * width + prefix
-                pack_prefix(storage, start - prefix, flow >> 8, flow & 0xFF, size)  # slot, generation, length
+                pack_prefix(storage, start - prefix, flow >> generation_bits, flow & generation_mask, size)
                 storage[start : start + size] = datagram
                 if symbol > symbol_len:
                     symbol_len = symbol
@@ -450,9 +451,12 @@ class BlockEncoder:
                 sent_count[index] += 1
                 sent_size[index] += size
                 if count < limit:
-                    sources.append(pack_source(0, session, base | (count - 1), flow << 8 | previous_k) + datagram)
+                    sources.append(
+                        pack_source(0, session, base | (count - 1), flow << flow_shift | previous_k) + datagram
+                    )
                     continue
-                sources.append(pack_source(flag_end, session, base | (count - 1), flow << 8 | previous_k) + datagram)
+                word = flow << flow_shift | previous_k
+                sources.append(pack_source(flag_end, session, base | (count - 1), word) + datagram)
                 cur.count, cur.symbol_len, cur.content = count, symbol_len, content
                 del blocks[key]
                 deferred.append(cur)
