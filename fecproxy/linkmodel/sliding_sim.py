@@ -121,7 +121,10 @@ def _replicate(
         packets += len(out)
         for packet in out:
             if not lost.lose():
-                take(decoder.receive(packet, now)[0], now)
+                if isinstance(decoder, BlockDecoder):
+                    take(decoder.receive(packet, None, now), now)
+                else:
+                    take(decoder.receive(packet, now)[0], now)
 
     padding = bytes(_PAYLOAD_BYTES - 4)
     for index in range(datagrams):
