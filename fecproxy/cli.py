@@ -26,6 +26,12 @@ COMMANDS: dict[str, tuple[str, str]] = {
     ),
     "bench": ("fecproxy.commands.bench", "measure codec and pipeline speed against a baseline run side by side"),
     "keygen": ("fecproxy.commands.keygen", "write a new pre-shared link key file (mode 0600) for auth.key_file"),
+    "manual": ("fecproxy.commands.manual", "print the manual page fecproxy(1), built from this command line's parser"),
+    "completion": ("fecproxy.commands.completion", "print a tab-completion script for bash, zsh or tcsh"),
+    "init": (
+        "fecproxy.commands.init",
+        "write a commented, checked config pair and key for a kind of link, or the shipped examples",
+    ),
 }
 
 
@@ -73,4 +79,7 @@ def main(argv: list[str] | None = None) -> int:
         parser.print_help()
         return 2
     module = importlib.import_module(args._module)
+    # The manual page and completion describe every subcommand: they get the whole parser
+    # (commands never import cli).
+    args._full_parser = lambda: build_parser(set(COMMANDS))
     return int(module.main(args) or 0)

@@ -23,7 +23,7 @@ import pytest
 PACKAGE_ROOT = Path(__file__).resolve().parents[1] / "fecproxy"
 
 #: Lowest first.  The key is the first component below ``fecproxy``.
-LAYERS = ("coding", "protocol", "linkmodel", "config", "shell", "commands", "cli", "__main__")
+LAYERS = ("coding", "protocol", "linkmodel", "config", "examples", "shell", "commands", "cli", "__main__")
 RANK = {name: rank for rank, name in enumerate(LAYERS)}
 #: Subpackages whose children are independent tools that must not import each other.
 SILOED = ("commands",)
