@@ -43,9 +43,9 @@ def warnings_for(config: Config, source: str) -> list[str]:
     return found
 
 
-def mtu_report(config) -> tuple[str, str | None]:
-    """(a comment line for ``check``'s output, a warning's text or None): the largest link packet against
-    ``link.mtu``, per IP version the link addresses use (both when a name hides it)."""
+def mtu_report(config: Config) -> tuple[str, str | None]:
+    """(a comment line for ``check``'s output, a warning's text or None): the largest link packet
+    against ``link.mtu``, per IP version the link addresses use (both when a name hides it)."""
     link, fec = config.link, config.fec
     trailer = TRAILER_BYTES if config.auth.enabled else 0
     addresses = [a for a in (link.bind, link.peer) if a is not None and a.is_ip_literal and not a.is_unspecified]
@@ -67,7 +67,7 @@ def mtu_report(config) -> tuple[str, str | None]:
         )
     return (
         f"# link.mtu {link.mtu}: largest link packet {sizes}: IP fragments\n",
-        f"{link.mtu} is less than the largest link packet: with fec.max_datagram_bytes {fec.max_datagram_bytes} the largest {what} "
-        f"is {sizes}, above the MTU, so IP fragments it (a lost fragment loses the packet); "
+        f"{link.mtu} is less than the largest link packet: with fec.max_datagram_bytes {fec.max_datagram_bytes} "
+        f"the largest {what} is {sizes}, above the MTU, so IP fragments it (a lost fragment loses the packet); "
         f"set fec.max_datagram_bytes ≤ {limits}, or link.mtu to the path's real MTU",
     )

@@ -124,7 +124,7 @@ class BitRate:
         self.low, self.high = low, high
         self.expected = f"bits per second {low:g}..{high:g}, as a number or with k/M (e.g. 9600, 9.6k, 256k, 2M)"
 
-    def __call__(self, value):
+    def __call__(self, value: object) -> float:
         if isinstance(value, bool) or not isinstance(value, (int, float, str)):
             raise Bad(f"is {kind_of(value)}; expected {self.expected}")
         text = str(value).strip()

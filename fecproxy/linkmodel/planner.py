@@ -440,17 +440,14 @@ def make_candidate(request: PlanRequest, k: int, m: int, figures: CodeFigures) -
         span = block_span(k, figures.k, request.rate, request.flush_time, figures.depth)
     byte_overhead = request.byte_overhead(figures.k, figures.m)
     budget = request.max_byte_overhead
-    air: dict = {}
+    source_air = repair_air = burst_delay = None
+    within_air = within_queue = True
     if link is not None:
         source_air = link.source_use(request.rate)
         repair_air = link.repair_use(request.rate, figures.k, figures.m)
-        air = dict(
-            source_air=source_air,
-            repair_air=repair_air,
-            burst_delay=link.burst_delay(k, m),
-            within_air=source_air + repair_air <= 1.0 + _BUDGET_SLACK,
-            within_queue=link.burst_source_fits() and link.burst_fits(k, m),
-        )
+        burst_delay = link.burst_delay(k, m)
+        within_air = source_air + repair_air <= 1.0 + _BUDGET_SLACK
+        within_queue = link.burst_source_fits() and link.burst_fits(k, m)
     return Candidate(
         k=k,
         k_effective=figures.k,
@@ -465,7 +462,11 @@ def make_candidate(request: PlanRequest, k: int, m: int, figures: CodeFigures) -
         within_overhead=figures.overhead <= request.max_overhead + _BUDGET_SLACK,
         byte_overhead=byte_overhead,
         within_byte_overhead=budget is None or byte_overhead is None or byte_overhead <= budget + _BUDGET_SLACK,
-        **air,
+        source_air=source_air,
+        repair_air=repair_air,
+        burst_delay=burst_delay,
+        within_air=within_air,
+        within_queue=within_queue,
     )
 
 
