@@ -14,7 +14,7 @@ import sys
 import urllib.error
 import urllib.request
 
-from fecproxy.commands.watch import metrics_url
+from fecproxy.config.addresses import metrics_url
 from fecproxy.linkmodel import sliding_sim
 from fecproxy.linkmodel.airtime import DEFAULT_QUEUE_MS, BudgetError, LinkBudget, parse_rate
 from fecproxy.linkmodel.loss_models import (

@@ -23,6 +23,8 @@ from dataclasses import dataclass, field
 
 from prometheus_client.parser import text_string_to_metric_families
 
+from fecproxy.config.addresses import metrics_url
+
 #: A read slower than this counts as a failing endpoint: a healthy daemon answers in
 #: milliseconds, and two endpoints must fit roughly within a few refresh periods.
 FETCH_TIMEOUT_S = 2.0
@@ -249,13 +251,6 @@ def fetch_events(url: str, since: int, timeout: float = FETCH_TIMEOUT_S) -> tupl
     with urllib.request.urlopen(status_url(url, since), timeout=timeout) as response:
         history = json.load(response).get("history") or {}
     return list(history.get("events") or []), int(history.get("events_recorded", since))
-
-
-def metrics_url(text: str) -> str:
-    """Accept ``host:port``, ``http://host:port`` or a full URL; default path /metrics."""
-    url = text if "://" in text else f"http://{text}"
-    scheme, _, rest = url.partition("://")
-    return url if "/" in rest else f"{url}/metrics"
 
 
 def fetch(url: str, timeout: float = FETCH_TIMEOUT_S) -> Samples:
