@@ -153,10 +153,10 @@ def test_default_datagram_fits_an_ethernet_frame_with_tag_room():
 def test_largest_datagram_keeps_a_repair_packet_inside_one_udp_datagram():
     # RFC 791: total length is 16 bits (65535) including the 20-byte header; RFC 768: 8-byte header.
     assert cfg.MAX_UDP_PAYLOAD_BYTES == 65535 - 20 - 8
-    # Wire version 2: 12-byte repair header, 5-byte symbol prefix, 32 bytes kept for a tag.
-    assert cfg.MAX_DATAGRAM_BYTES_LIMIT == 65507 - 12 - 5 - 32
-    parse_config(edited(SENDER, fec__max_datagram_bytes=65458))
-    assert "65459 is out of range" in errors_of(edited(SENDER, fec__max_datagram_bytes=65459))[0]
+    # Wire version 3: 12-byte repair header, 7-byte symbol prefix, 32 bytes kept for a tag.
+    assert cfg.MAX_DATAGRAM_BYTES_LIMIT == 65507 - 12 - 7 - 32
+    parse_config(edited(SENDER, fec__max_datagram_bytes=65456))
+    assert "65457 is out of range" in errors_of(edited(SENDER, fec__max_datagram_bytes=65457))[0]
 
 
 def test_block_limits_follow_rfc_5510():

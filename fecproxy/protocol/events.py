@@ -60,12 +60,14 @@ class Event:
 
 @dataclass(frozen=True, slots=True)
 class Delivery(Event):
-    """A datagram for the application; ``delay`` is 0 unless it was rebuilt."""
+    """A datagram for the application; ``delay`` is 0 unless it was rebuilt; ``seq`` is its
+    place in its flow (the sender's 16-bit count, for in-order delivery)."""
 
     flow: int
     data: bytes
     recovered: bool = False
     delay: float = 0.0
+    seq: int = 0
 
 
 @dataclass(frozen=True, slots=True)
@@ -115,20 +117,21 @@ class ControlReceived(Event):
 
 
 def _delivery_maker():
-    """Delivery(flow, data) for a datagram that came directly, built by filling its slots.
+    """Delivery(flow, data, seq=seq) for a datagram that came directly, built by filling its slots.
 
     The generated __init__ of a frozen dataclass sets each field through object.__setattr__:
     measured here, 0.97 µs against 0.51 µs this way, paid once per datagram on the receiver.
     """
     new, set_flow, set_data = object.__new__, Delivery.flow.__set__, Delivery.data.__set__
-    set_recovered, set_delay = Delivery.recovered.__set__, Delivery.delay.__set__
+    set_recovered, set_delay, set_seq = Delivery.recovered.__set__, Delivery.delay.__set__, Delivery.seq.__set__
 
-    def direct_delivery(flow: int, data: bytes) -> Delivery:
+    def direct_delivery(flow: int, data: bytes, seq: int = 0) -> Delivery:
         delivery = new(Delivery)
         set_flow(delivery, flow)
         set_data(delivery, data)
         set_recovered(delivery, False)
         set_delay(delivery, 0.0)
+        set_seq(delivery, seq)
         return delivery
 
     return direct_delivery
