@@ -103,3 +103,30 @@ def test_quick_run_over_an_impaired_link(capsys):
     lossy = [trial for trial in result["trials"] if trial["pipeline"] == "lossy"]
     assert lossy and all(trial["loss_limit"] > result["predicted_residual"] for trial in lossy)
     assert set(multiprocessing.active_children()) <= children_before
+
+
+def test_delay_figures_are_medians_and_differences_are_taken_within_each_repetition():
+    def rep(direct: float, plain: float, pair: float, noise: float = 0.0) -> list:
+        # A noisy moment moves every path measured in that repetition together.
+        return [
+            bench_pipeline.DelaySample(path, 5000.0, 1000, 0.0, value + noise, 10 * (value + noise))
+            for path, value in (("direct", direct), ("plain", plain), ("pair", pair))
+        ]
+
+    repetitions = [rep(50, 150, 200), rep(50, 150, 200, noise=5000), rep(50, 150, 200), rep(60, 160, 220)]
+    figures, added = bench_pipeline.summarize_delays(repetitions)
+
+    pair = next(f for f in figures if f.path == "pair")
+    assert pair.repeats == 4 and pair.samples == 4000
+    assert pair.p50_us == pytest.approx(210.0)  # median of 200, 200, 220, 5200
+    assert pair.p50_range_us == (200.0, 5200.0)
+    by_label = {a.label: a for a in added}
+    over_direct = by_label["added by the pair (pair − direct)"]
+    # Within each repetition the noise cancels: 150, 150, 150, 160.
+    assert over_direct.p50_us == pytest.approx(150.0)
+    assert over_direct.p50_range_us == (150.0, 160.0)
+    assert by_label["of which FEC (pair − plain relays)"].p99_us == pytest.approx(500.0)
+    text = bench_pipeline.format_result(
+        bench_pipeline.PipelineResult(1200, 16, 4, 1.0, 2e4, 1e4, "converged", "converged", figures, [], added)
+    )
+    assert "median of 4 repetitions" in text and "150.0 [150–160]" in text

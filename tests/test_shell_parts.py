@@ -15,6 +15,7 @@ from io import StringIO
 from pathlib import Path
 
 import pytest
+import trio
 
 from fecproxy.config import parse_config_text
 from fecproxy.protocol.decoder import BlockDecoder, DecoderStats
@@ -125,13 +126,18 @@ class StandInDaemon:
     received_code = (16, 4)
 
 
-def test_collector_reads_only_the_daemon_view_and_serve_exposes_it():
+def _get(url: str) -> str:
+    with urllib.request.urlopen(url, timeout=5) as response:
+        return response.read().decode()
+
+
+async def test_collector_reads_only_the_daemon_view_and_serve_exposes_it(nursery):
     registry, _ = build_registry(StandInDaemon())
     server = serve(registry, LOOPBACK, 0)
     try:
+        await nursery.start(server.run)
         assert server.address == (LOOPBACK, server.port) and server.port > 0
-        with urllib.request.urlopen(f"http://{LOOPBACK}:{server.port}/metrics", timeout=5) as response:
-            text = response.read().decode()
+        text = await trio.to_thread.run_sync(_get, f"http://{LOOPBACK}:{server.port}/metrics")
     finally:
         server.stop()
     assert "fecproxy_datagrams_recovered_total 3.0" in text

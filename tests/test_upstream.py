@@ -7,12 +7,14 @@ Real UDP sockets on 127.0.0.1 inside trio (pytest-trio), the flow table with a f
 from __future__ import annotations
 
 import errno
+import resource
 import socket
 
 import trio
 
 from fecproxy.protocol.flows import PeerFlowTable, flow_id
 from fecproxy.shell import upstream as upstream_module
+from fecproxy.shell.fdlimit import FD_RESERVE
 from fecproxy.shell.upstream import Upstreams
 
 LOOPBACK = "127.0.0.1"
@@ -83,3 +85,28 @@ async def test_a_socket_that_cannot_be_created_is_a_counted_drop(monkeypatch):
         assert upstreams.writer_for(flow_id(1, 0), 2.0) is not None and len(flows) == 1
         nursery.cancel_scope.cancel()
     upstreams.close_all()
+
+
+async def test_flow_sockets_stop_short_of_the_descriptors_reserved_for_the_rest():
+    """Past ``max_sockets`` (the open-file limit less fdlimit.FD_RESERVE) a new flow is a counted
+    ``no_socket`` drop: the link, the metrics port and the rest keep their descriptors."""
+    flows = table()
+
+    async def on_replies(batch, now):
+        pass
+
+    upstreams = Upstreams((LOOPBACK, 9), flows, on_replies, max_sockets=2)
+    async with trio.open_nursery() as nursery:
+        upstreams.attach(nursery)
+        assert upstreams.writer_for(flow_id(1, 0), 1.0) is not None
+        assert upstreams.writer_for(flow_id(2, 0), 1.0) is not None
+        assert upstreams.writer_for(flow_id(3, 0), 1.0, count=2) is None
+        assert upstreams.drops["no_socket"] == 2 and len(upstreams) == 2
+        nursery.cancel_scope.cancel()
+    upstreams.close_all()
+
+
+def test_the_default_socket_budget_is_the_open_file_limit_less_the_reserve():
+    soft, _ = resource.getrlimit(resource.RLIMIT_NOFILE)
+    upstreams = Upstreams((LOOPBACK, 9), table(), None)
+    assert upstreams.max_sockets == (None if soft == resource.RLIM_INFINITY else max(0, soft - FD_RESERVE))

@@ -273,6 +273,7 @@ async def _serve(
                 print(f"return: {config.back.describe()}", flush=True)
                 if metrics is not None:
                     server = start_metrics_server(relay, metrics)
+                    nursery.start_soon(server.run)
                     print(f"metrics: http://{format_sockaddr(server.address)}/metrics", flush=True)
                 if seconds is not None:
                     nursery.cancel_scope.deadline = trio.current_time() + seconds

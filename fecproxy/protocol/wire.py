@@ -113,6 +113,8 @@ class PacketType(IntEnum):
     SOURCE = 0
     REPAIR = 1
     CONTROL = 2
+    SLIDING_SOURCE = 3  # fec.code: sliding (RFC 8681), see "Sliding-window packets" below
+    SLIDING_REPAIR = 4
 
 
 #: The first byte (version and type) of the packets this version sends.
@@ -189,9 +191,6 @@ class ControlPacket:
     body: bytes
 
 
-Packet = SourcePacket | RepairPacket | ControlPacket
-
-
 def encode_source(
     session: int,
     sbn: int,
@@ -235,11 +234,13 @@ def encode_control(session: int, body: bytes) -> bytes:
     return COMMON_HEADER.pack(CONTROL_TYPE_BYTE, 0, session, 0) + body
 
 
-def parse(packet: bytes, *, max_datagram: int) -> Packet:
+def parse(packet: bytes, *, max_datagram: int, sliding: bool = False) -> Packet:
     """Validate every field, then return the packet; raise a PacketError naming the fault.
 
     ``max_datagram`` bounds both source payloads and repair symbols (RFC 8681 §7.5: check every
     header-derived size before it sizes anything), so a forged packet cannot inflate a block.
+    Sliding-window packets are parsed only for a caller that decodes them (``sliding=True``);
+    to any other they are an unsupported type.
     """
     size = len(packet)
     if size < COMMON_HEADER.size:
@@ -298,4 +299,108 @@ def parse(packet: bytes, *, max_datagram: int) -> Packet:
         if sbn_esi:
             raise InvalidField(f"control packet with SBN {sbn} and ESI {esi}; expected 0")
         return ControlPacket(session, bytes(packet[COMMON_HEADER.size :]))
+    if (kind == PacketType.SLIDING_SOURCE or kind == PacketType.SLIDING_REPAIR) and sliding:
+        if flags:
+            raise InvalidField(f"sliding-window packet with flags 0x{flags:02x}")
+        return _parse_sliding(packet, kind, session, sbn_esi, max_datagram)
     raise UnsupportedPacket(f"packet type {kind} is not defined")
+
+
+# --- Sliding-window packets (fec.code: sliding, RFC 8681) ----------------------------------------
+#
+# The same 10-byte common header; its 32-bit payload-id word holds a 32-bit source symbol id
+# instead of SBN ‖ ESI (RFC 8681 §4.1.2: the source FEC payload ID is a 32-bit ESI):
+#
+# * sliding source (type 3): common header (word = ESI), flow word (flow id 24 bits ‖ 8 bits 0),
+#   datagram; 14 bytes of header, as a block source packet.
+# * sliding repair (type 4): common header (word = FSS_ESI, the first source symbol of the
+#   window), repair key (16 bits), DT (4 bits) ‖ NSS (12 bits), repair symbol; 14 bytes of header.
+#   Repair key, DT, NSS and FSS_ESI are exactly what RFC 8681 §4.1.3's repair FEC payload ID
+#   carries, in our own layout.  The repair symbol covers the window's symbols framed as
+#   ``pack_symbol_prefix`` frames them (RFC 8681 §3.2 ADUI: flow ‖ length ‖ datagram ‖ padding).
+#
+# No flags are defined for them; authentication (auth.py) treats them like every other packet.
+
+SLIDING_SOURCE_TYPE_BYTE = (VERSION << 4) | PacketType.SLIDING_SOURCE
+SLIDING_REPAIR_TYPE_BYTE = (VERSION << 4) | PacketType.SLIDING_REPAIR
+SLIDING_REPAIR_HEADER = struct.Struct(">BBIIHH")  # common + repair key + DT << 12 | NSS
+SLIDING_SOURCE_HEADER_BYTES = SOURCE_HEADER_BYTES  # 14
+SLIDING_REPAIR_HEADER_BYTES = SLIDING_REPAIR_HEADER.size  # 14
+#: RFC 8681 §4.1.3: NSS is 12 bits and DT 4 bits; source symbol ids are 32 bits (§4.1.2).
+NSS_BITS = 12
+NSS_MASK = (1 << NSS_BITS) - 1
+MAX_DENSITY = 15
+ESI_MODULUS = 1 << 32
+
+#: ``pack_sliding_source(session, esi, flow << FLOW_SHIFT)`` -> 14 bytes.
+pack_sliding_source = partial(SOURCE_HEADER.pack, SLIDING_SOURCE_TYPE_BYTE, 0)
+#: ``pack_sliding_repair(session, first_esi, repair_key, dt << NSS_BITS | nss)`` -> 14 bytes.
+pack_sliding_repair = partial(SLIDING_REPAIR_HEADER.pack, SLIDING_REPAIR_TYPE_BYTE, 0)
+
+
+@dataclass(frozen=True, slots=True)
+class SlidingSourcePacket:
+    session: int
+    esi: int  # 32 bits on the wire: the receiver unwraps it
+    flow: int
+    data: bytes
+
+
+@dataclass(frozen=True, slots=True)
+class SlidingRepairPacket:
+    session: int
+    first_esi: int  # FSS_ESI
+    repair_key: int
+    dt: int
+    nss: int
+    symbol: bytes
+
+
+#: Every packet ``parse`` returns.
+Packet = SourcePacket | RepairPacket | ControlPacket | SlidingSourcePacket | SlidingRepairPacket
+
+
+def encode_sliding_source(session: int, esi: int, flow: int, data: bytes) -> bytes:
+    if not 0 <= flow < MAX_FLOW_IDS:
+        raise ValueError(f"flow {flow} outside 24 bits")
+    return pack_sliding_source(session, esi % ESI_MODULUS, flow << FLOW_SHIFT) + data
+
+
+def encode_sliding_repair(session: int, first_esi: int, repair_key: int, dt: int, nss: int, symbol: bytes) -> bytes:
+    if not (0 <= repair_key <= 0xFFFF and 0 <= dt <= MAX_DENSITY and 1 <= nss <= NSS_MASK):
+        raise ValueError(f"repair key {repair_key}, DT {dt} or NSS {nss} outside 16, 4 and 12 bits (NSS ≥ 1)")
+    return pack_sliding_repair(session, first_esi % ESI_MODULUS, repair_key, dt << NSS_BITS | nss) + symbol
+
+
+def _parse_sliding(
+    packet: bytes, kind: int, session: int, word: int, max_datagram: int
+) -> SlidingSourcePacket | SlidingRepairPacket:
+    size = len(packet)
+    if kind == PacketType.SLIDING_SOURCE:
+        if size < SLIDING_SOURCE_HEADER_BYTES:
+            raise TruncatedPacket(f"sliding source packet of {size} bytes has no flow id")
+        flow_word = SOURCE_HEADER.unpack_from(packet)[4]
+        if flow_word & PREVIOUS_K_MASK:
+            raise InvalidField(f"sliding source packet with reserved bits 0x{flow_word & PREVIOUS_K_MASK:02x} set")
+        payload = size - SLIDING_SOURCE_HEADER_BYTES
+        if payload > max_datagram:
+            raise OversizePacket(f"source datagram of {payload} bytes exceeds the limit of {max_datagram}")
+        return SlidingSourcePacket(session, word, flow_word >> FLOW_SHIFT, bytes(packet[SLIDING_SOURCE_HEADER_BYTES:]))
+    if size < SLIDING_REPAIR_HEADER_BYTES:
+        raise TruncatedPacket(f"sliding repair packet of {size} bytes has no repair key, DT and NSS")
+    repair_key, dt_nss = SLIDING_REPAIR_HEADER.unpack_from(packet)[4:]
+    nss = dt_nss & NSS_MASK
+    if nss == 0:
+        raise InvalidField("sliding repair packet with NSS 0 (an empty encoding window)")
+    symbol_size = size - SLIDING_REPAIR_HEADER_BYTES
+    if symbol_size < SYMBOL_PREFIX_BYTES:
+        raise TruncatedPacket(
+            f"repair symbol of {symbol_size} bytes is shorter than its {SYMBOL_PREFIX_BYTES}-byte prefix"
+        )
+    if symbol_size > max_datagram + SYMBOL_PREFIX_BYTES:
+        raise OversizePacket(
+            f"repair symbol of {symbol_size} bytes exceeds the limit of {max_datagram + SYMBOL_PREFIX_BYTES}"
+        )
+    return SlidingRepairPacket(
+        session, word, repair_key, dt_nss >> NSS_BITS, nss, bytes(packet[SLIDING_REPAIR_HEADER_BYTES:])
+    )

@@ -260,6 +260,8 @@ class Daemon:
                 self._nursery = nursery
                 if self.upstreams is not None:
                     self.upstreams.attach(nursery)
+                if metrics is not None:
+                    nursery.start_soon(metrics.run)  # the metrics port: a task here, no thread
                 nursery.start_soon(self._link_loop)
                 nursery.start_soon(self._timer_loop)
                 if self._app_sock is not None:

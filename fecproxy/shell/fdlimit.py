@@ -15,9 +15,11 @@ from collections.abc import Callable
 from dataclasses import dataclass
 
 #: Descriptors a daemon uses besides the per-flow sockets: stdin/stdout/stderr, the link and
-#: listen sockets, trio's epoll and wake-up descriptors, the metrics listener and its concurrent
-#: scrapes or status-page requests, a log file and imports reading files: about 15 at once in
-#: practice; 64 leaves room for a handful of browsers and scrapers (common practice, no source).
+#: listen sockets, trio's epoll and wake-up descriptors, the metrics listener and its connections
+#: (at most http_server.MAX_CONNECTIONS = 32), a log file and imports reading files: about 15 at
+#: once in practice plus the metrics connections; 64 covers both (common practice, no source).
+#: Reserved both ways: the flow sockets never take these (:func:`flow_socket_budget`), and the
+#: metrics port never holds more than its cap.
 FD_RESERVE = 64
 
 
@@ -46,6 +48,15 @@ class FileLimit:
 def files_needed(max_flows: int, *, holds_flow_sockets: bool) -> int:
     """Descriptors this daemon may hold: the reserve, plus one per flow on a receiver."""
     return FD_RESERVE + (max_flows if holds_flow_sockets else 0)
+
+
+def flow_socket_budget(getrlimit: Callable[[int], tuple[int, int]] = resource.getrlimit) -> int | None:
+    """Per-flow sockets that may be open at once under the soft limit as it is now, leaving
+    :data:`FD_RESERVE` for everything else; None when the limit is infinite."""
+    soft, _ = getrlimit(resource.RLIMIT_NOFILE)
+    if soft == resource.RLIM_INFINITY:
+        return None
+    return max(0, soft - FD_RESERVE)
 
 
 def _at_least(limit: int, need: int) -> bool:

@@ -8,12 +8,8 @@ prefix ``fecproxy_``, base units, counters end in ``_total``, labels only from s
 from __future__ import annotations
 
 import math
-import socket
-import threading
 from collections.abc import Iterable, Mapping
-from socketserver import ThreadingMixIn
 from typing import TYPE_CHECKING, Protocol
-from wsgiref.simple_server import WSGIRequestHandler, WSGIServer, make_server
 
 from prometheus_client import CollectorRegistry, Histogram, disable_created_metrics, make_wsgi_app
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, InfoMetricFamily
@@ -21,6 +17,7 @@ from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, InfoM
 from fecproxy import __version__
 from fecproxy.linkmodel.adaptation import DECISION_REASONS, DOWN, IGNORE_REASONS, UP
 from fecproxy.protocol.events import BlockOutcome, DropReason
+from fecproxy.shell.http_server import HttpServer, open_listener
 from fecproxy.shell.status import status_app
 
 # prometheus-client adds a `<name>_created` series (the creation time) to every counter and
@@ -306,52 +303,18 @@ def build_registry(daemon: DaemonView) -> tuple[CollectorRegistry, Histogram]:
     return registry, histogram
 
 
-#: How often the metrics thread looks for a stop request.  prometheus-client's own
-#: start_http_server keeps socketserver's 0.5 s, which alone spends half of the one second the
-#: daemon has to exit after SIGTERM; 50 ms costs a negligible 20 wake-ups a second.
-STOP_POLL_SECONDS = 0.05
-#: Seconds ``stop`` waits for the server thread; it is a daemon thread, so a scrape still being
-#: answered cannot hold up the process's exit beyond this.
-STOP_JOIN_SECONDS = 1.0
-
-
-class _ThreadingServer(ThreadingMixIn, WSGIServer):
-    daemon_threads = True
-
-
-class _QuietHandler(WSGIRequestHandler):
-    def log_message(self, format: str, *args) -> None:
-        """Scrapes are not events: nothing is logged per request."""
-
-
-class MetricsServer:
-    """A running /metrics endpoint: ``address`` is where it listens (the bound port when 0 was
-    asked for), ``stop()`` ends it quickly."""
-
-    def __init__(self, server: WSGIServer, thread: threading.Thread):
-        self._server, self._thread = server, thread
-        self.address: tuple[str, int] = server.server_address[:2]
-        self.port: int = self.address[1]
-
-    def stop(self) -> None:
-        self._server.shutdown()
-        self._server.server_close()
-        self._thread.join(timeout=STOP_JOIN_SECONDS)
+class MetricsServer(HttpServer):
+    """A bound /metrics endpoint: ``address`` is where it listens (the bound port when 0 was asked
+    for); it answers from :meth:`run`, a task in the owner's nursery; ``stop()`` ends it."""
 
 
 def serve(registry: CollectorRegistry, host: str, port: int) -> MetricsServer:
-    """Serve the registry (at /metrics, as at every path) from a background thread.
+    """Bind the metrics port for the registry (/metrics at every path but the status page's).
 
     The one metrics HTTP server of the package: the daemon, the demo and the impairment relay all
-    start theirs here.  Raises OSError when the address cannot be resolved or bound.
+    make theirs here, then start its ``run`` in their nursery (:mod:`fecproxy.shell.http_server`:
+    no thread, bounded connections).  Raises OSError when the address cannot be resolved or bound.
     """
-    family = socket.getaddrinfo(host, port, type=socket.SOCK_STREAM, flags=socket.AI_PASSIVE)[0][0]
     # `/` and `/status.json` are the status page; every other path is prometheus-client's.
     app = status_app(registry, make_wsgi_app(registry))
-    server_class = type("MetricsHTTPServer", (_ThreadingServer,), {"address_family": family})
-    server = make_server(host, port, app, server_class, handler_class=_QuietHandler)
-    thread = threading.Thread(
-        target=server.serve_forever, kwargs={"poll_interval": STOP_POLL_SECONDS}, name="fecproxy-metrics", daemon=True
-    )
-    thread.start()
-    return MetricsServer(server, thread)
+    return MetricsServer(open_listener(host, port), app)

@@ -25,6 +25,7 @@ import trio
 from fecproxy.config.addresses import format_sockaddr
 from fecproxy.protocol.events import DropReason
 from fecproxy.protocol.flows import FlowClosed, Opened, PeerFlowTable, Verdict
+from fecproxy.shell.fdlimit import flow_socket_budget
 from fecproxy.shell.logs import log_event
 from fecproxy.shell.udp import Address, DatagramReader, DatagramWriter
 
@@ -38,6 +39,9 @@ REPLY_BATCH = 64
 #: socket() errors that mean "out of descriptors or memory", not "the server is unreachable":
 #: counted as ``no_socket`` (socket(2): EMFILE per process, ENFILE system-wide, ENOBUFS/ENOMEM).
 _RESOURCE_ERRORS = frozenset({errno.EMFILE, errno.ENFILE, errno.ENOBUFS, errno.ENOMEM})
+
+#: ``max_sockets`` default: the open-file limit less fdlimit.FD_RESERVE, read at construction.
+FROM_OPEN_FILE_LIMIT = -1
 
 #: Called with a batch of (reply, flow) and the batch's ``now``: encode and send to the peer.
 ReplyHandler = Callable[[list[tuple[bytes, int]], float], Awaitable[None]]
@@ -65,8 +69,18 @@ class Upstreams:
     :meth:`writer_for` (the reader tasks live there, beside the daemon's loops, so stopping the
     daemon ends them too), and :meth:`close_all` when the daemon ends."""
 
-    def __init__(self, forward: Address, flows: PeerFlowTable, on_replies: ReplyHandler):
+    def __init__(
+        self,
+        forward: Address,
+        flows: PeerFlowTable,
+        on_replies: ReplyHandler,
+        max_sockets: int | None = FROM_OPEN_FILE_LIMIT,
+    ):
         self.forward = forward
+        #: Flow sockets open at once at most: the open-file limit less the reserve for the link,
+        #: the metrics port and the rest (fdlimit.FD_RESERVE), read when the daemon starts (after
+        #: it raised its limit); None = no limit of ours.
+        self.max_sockets = flow_socket_budget() if max_sockets == FROM_OPEN_FILE_LIMIT else max_sockets
         self.flows = flows
         self.on_replies = on_replies
         #: Datagrams dropped here, by reason ("flow_limit", "unknown_flow", "no_socket", "unreachable").
@@ -111,6 +125,8 @@ class Upstreams:
         family = socket.AF_INET6 if len(self.forward) == 4 else socket.AF_INET
         sock = None
         try:
+            if self.max_sockets is not None and len(self._by_flow) >= self.max_sockets:
+                raise OSError(errno.EMFILE, "flow sockets would take the descriptors reserved for the rest")
             sock = socket.socket(family, socket.SOCK_DGRAM)
             sock.setblocking(False)
             # Connected: the kernel picks the source address towards the server, and only the

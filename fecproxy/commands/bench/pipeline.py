@@ -55,11 +55,13 @@ from fecproxy.commands.bench.search import (  # noqa: F401  (re-exported: the pi
     SEARCH_PRECISION,
     STEP_UP,
     DelayFigures,
+    DelaySample,
     PipelineResult,
     RateSearch,
     Trial,
     format_result,
     residual_allowance,
+    summarize_delays,
 )
 from fecproxy.linkmodel.planner import evaluate
 from fecproxy.protocol.keys import KEY_BYTES, format_key_text
@@ -82,7 +84,13 @@ DEFAULT_MAX_RATE = 400_000.0
 #: A moderate rate for delay trials, far below the pair's limit, so queues stay short and the
 #: figures show the pair's own delay rather than congestion.
 DEFAULT_DELAY_RATE = 5_000.0
-DEFAULT_DELAY_SECONDS = 2.0
+DEFAULT_DELAY_SECONDS = 1.0
+#: Delay trials are repeated (direct, plain and pair in turn, the order rotating) and each figure
+#: is the median of the repetitions: on a shared machine one noisy second can move a p99 several
+#: fold, and a median of five is robust to two such seconds (common practice, no source).
+DEFAULT_DELAY_REPEATS = 5
+#: The paths of the delay trials, in the order of the first repetition.
+DELAY_PATHS = ("direct", "plain", "pair")
 #: Seed of the impaired link's loss pattern: the same losses every run.
 DEFAULT_SEED = 5510
 #: Link loss the --loss option accepts: at half the packets lost, no useful code is left to
@@ -335,6 +343,7 @@ def run_pipeline_bench(
     max_rate: float = DEFAULT_MAX_RATE,
     delay_rate: float = DEFAULT_DELAY_RATE,
     delay_seconds: float = DEFAULT_DELAY_SECONDS,
+    delay_repeats: int = DEFAULT_DELAY_REPEATS,
     link_loss: float | None = None,
     link_burst: float | None = None,
     seed: int = DEFAULT_SEED,
@@ -382,15 +391,22 @@ def run_pipeline_bench(
                 break
         for search in searches:
             search.stopped = search.stopped or "time budget"
-        say(f"rate search done; one-way delay trials at {delay_rate:,.0f}/s ({3 * delay_seconds:g} s)")
-        delays = []
-        for path in ("direct", "plain", "pair"):
-            trial, values = bench.run_trial(path, delay_rate, delay_seconds, keep_delays=True)
-            delays.append(
-                DelayFigures(
+        say(
+            f"rate search done; one-way delay trials at {delay_rate:,.0f}/s "
+            f"({delay_repeats} × {len(DELAY_PATHS)} × {delay_seconds:g} s)"
+        )
+        repetitions = []
+        for repeat in range(delay_repeats):
+            # Rotate the order so no path always runs first (after the search) or last.
+            order = DELAY_PATHS[repeat % len(DELAY_PATHS) :] + DELAY_PATHS[: repeat % len(DELAY_PATHS)]
+            samples = {}
+            for path in order:
+                trial, values = bench.run_trial(path, delay_rate, delay_seconds, keep_delays=True)
+                samples[path] = DelaySample(
                     path, trial.offered, len(values), trial.loss, _percentile_us(values, 50), _percentile_us(values, 99)
                 )
-            )
+            repetitions.append([samples[path] for path in DELAY_PATHS])
+        delays, added_delays = summarize_delays(repetitions)
     plain, pair, *lossy = searches  # lossy: [] or [lossy, relayed]
     result = PipelineResult(
         datagram_bytes=DATAGRAM_BYTES,
@@ -403,6 +419,7 @@ def run_pipeline_bench(
         pair_stopped=pair.stopped,
         delays=delays,
         trials=[trial for search in searches for trial in search.trials],
+        added_delays=added_delays,
     )
     if lossy:
         result.link_loss, result.link_burst, result.predicted_residual = link_loss, link_burst, predicted
@@ -463,6 +480,12 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument(
         "--delay-seconds", type=positive(float), default=DEFAULT_DELAY_SECONDS, help="length of each delay trial"
     )
+    parser.add_argument(
+        "--delay-repeats",
+        type=positive(int),
+        default=DEFAULT_DELAY_REPEATS,
+        help="repetitions of the delay trials; figures are their median with the range beside it",
+    )
     parser.add_argument("--block-size", type=positive(int), default=BLOCK_SIZE, help="k of the fecproxy pair")
     parser.add_argument("--repair", type=int, default=REPAIR, help="m of the fecproxy pair")
     parser.add_argument(
@@ -511,6 +534,7 @@ def main(args: argparse.Namespace) -> int:
         max_rate=args.max_rate,
         delay_rate=args.delay_rate,
         delay_seconds=args.delay_seconds,
+        delay_repeats=args.delay_repeats,
         link_loss=args.loss,
         link_burst=args.burst,
         seed=args.seed,
@@ -527,6 +551,7 @@ def main(args: argparse.Namespace) -> int:
             max_rate=2000.0,
             delay_rate=1000.0,
             delay_seconds=0.2,
+            delay_repeats=2,
         )
     progress = None if args.quiet else (lambda line: print(line, file=sys.stderr, flush=True))
     result = run_pipeline_bench(progress=progress, **settings)

@@ -109,12 +109,93 @@ class RateSearch:
 
 @dataclass(frozen=True)
 class DelayFigures:
+    """One path's one-way delay: the median over the repetitions of each repetition's p50/p99,
+    with the lowest and highest repetition beside it (the spread shows how steady it was)."""
+
     path: str
     rate: float
     samples: int
     loss: float
     p50_us: float
     p99_us: float
+    repeats: int = 1
+    p50_range_us: tuple[float, float] = (math.nan, math.nan)
+    p99_range_us: tuple[float, float] = (math.nan, math.nan)
+
+
+@dataclass(frozen=True)
+class DelaySample:
+    """One path in one repetition of the delay trials."""
+
+    path: str
+    rate: float
+    samples: int
+    loss: float
+    p50_us: float
+    p99_us: float
+
+
+@dataclass(frozen=True)
+class AddedDelay:
+    """A difference of two paths' delays taken within each repetition (so a noisy moment moves
+    both sides of it), then summarised as the median and range over the repetitions."""
+
+    label: str
+    minuend: str
+    subtrahend: str
+    p50_us: float
+    p99_us: float
+    p50_range_us: tuple[float, float]
+    p99_range_us: tuple[float, float]
+
+
+#: The differences the report gives: what the pair adds over no relay, and what FEC adds over
+#: two plain relays on the same socket layer.
+ADDED_DELAYS = (
+    ("added by the pair (pair − direct)", "pair", "direct"),
+    ("of which FEC (pair − plain relays)", "pair", "plain"),
+)
+
+
+def _median_range(values: list[float]) -> tuple[float, tuple[float, float]]:
+    finite = sorted(v for v in values if not math.isnan(v))
+    if not finite:
+        return math.nan, (math.nan, math.nan)
+    middle = len(finite) // 2
+    median = finite[middle] if len(finite) % 2 else (finite[middle - 1] + finite[middle]) / 2
+    return median, (finite[0], finite[-1])
+
+
+def summarize_delays(repetitions: list[list[DelaySample]]) -> tuple[list[DelayFigures], list[AddedDelay]]:
+    """Per path: median and range of p50/p99 over the repetitions; per difference in
+    ADDED_DELAYS: the difference within each repetition, then its median and range."""
+    if not repetitions:
+        return [], []
+    paths = [sample.path for sample in repetitions[0]]
+    by_path = {path: [s for rep in repetitions for s in rep if s.path == path] for path in paths}
+    figures = []
+    for path, samples in by_path.items():
+        p50, p50_range = _median_range([s.p50_us for s in samples])
+        p99, p99_range = _median_range([s.p99_us for s in samples])
+        sent = sum(s.samples for s in samples)
+        loss = sum(s.loss for s in samples) / len(samples)
+        rate = sum(s.rate for s in samples) / len(samples)
+        figures.append(DelayFigures(path, rate, sent, loss, p50, p99, len(samples), p50_range, p99_range))
+    added = []
+    for label, minuend, subtrahend in ADDED_DELAYS:
+        if minuend not in by_path or subtrahend not in by_path:
+            continue
+        differences = []
+        for rep in repetitions:
+            here = {s.path: s for s in rep}
+            if minuend in here and subtrahend in here:
+                differences.append(
+                    (here[minuend].p50_us - here[subtrahend].p50_us, here[minuend].p99_us - here[subtrahend].p99_us)
+                )
+        p50, p50_range = _median_range([d[0] for d in differences])
+        p99, p99_range = _median_range([d[1] for d in differences])
+        added.append(AddedDelay(label, minuend, subtrahend, p50, p99, p50_range, p99_range))
+    return figures, added
 
 
 @dataclass
@@ -129,6 +210,8 @@ class PipelineResult:
     pair_stopped: str
     delays: list[DelayFigures]
     trials: list[Trial]
+    #: Differences between paths taken within each delay repetition (:func:`summarize_delays`).
+    added_delays: list[AddedDelay] = field(default_factory=list)
     #: Set when the run also searched the pair over an impaired link (``--loss``).
     link_loss: float | None = None
     link_burst: float | None = None
@@ -173,9 +256,9 @@ class PipelineResult:
         out["lossy_ratio"] = self.lossy_ratio
         out["lossy_over_relayed"] = self.lossy_over_relayed
         out["trials"] = [dict(asdict(t), loss=t.loss, passed=t.passed) for t in self.trials]
-        direct, pair = self.delay("direct"), self.delay("pair")
-        if direct and pair:
-            out["added_delay_us"] = dict(p50=pair.p50_us - direct.p50_us, p99=pair.p99_us - direct.p99_us)
+        for added in self.added_delays:
+            if (added.minuend, added.subtrahend) == ("pair", "direct"):
+                out["added_delay_us"] = dict(p50=added.p50_us, p99=added.p99_us)
         return out
 
 
@@ -223,22 +306,27 @@ def format_result(result: PipelineResult) -> str:
                 f"(total {sum(best.cpu_us.values()):.1f})"
             )
     if result.delays:
+        first = result.delays[0]
         lines.append(
-            f"one-way delay at {result.delays[0].rate:,.0f} datagrams/s   "
-            f"{'p50 µs':>8} {'p99 µs':>8} {'loss':>8} {'samples':>8}"
+            f"one-way delay at {first.rate:,.0f} datagrams/s, median of {first.repeats} repetitions "
+            f"[lowest–highest]; differences taken within each repetition"
         )
+        lines.append(f"  {'path':<36} {'p50 µs':>22} {'p99 µs':>24} {'loss':>8} {'samples':>8}")
         for d in result.delays:
-            lines.append(f"  {d.path:<36} {d.p50_us:>8.1f} {d.p99_us:>8.1f} {d.loss:>8.3%} {d.samples:>8}")
-        direct, plain, pair = result.delay("direct"), result.delay("plain"), result.delay("pair")
-        if direct and pair:
             lines.append(
-                f"  {'added by the pair (pair − direct)':<36} "
-                f"{pair.p50_us - direct.p50_us:>8.1f} {pair.p99_us - direct.p99_us:>8.1f}"
+                f"  {d.path:<36} {_spread(d.p50_us, d.p50_range_us):>22} {_spread(d.p99_us, d.p99_range_us):>24} "
+                f"{d.loss:>8.3%} {d.samples:>8}"
             )
-        if plain and pair:
-            # Two hops through any user-space relay cost wake-ups; this part is FEC's own.
+        for a in result.added_delays:
             lines.append(
-                f"  {'of which FEC (pair − plain relays)':<36} "
-                f"{pair.p50_us - plain.p50_us:>8.1f} {pair.p99_us - plain.p99_us:>8.1f}"
+                f"  {a.label:<36} {_spread(a.p50_us, a.p50_range_us):>22} {_spread(a.p99_us, a.p99_range_us):>24}"
             )
     return "\n".join(lines)
+
+
+def _spread(median: float, bounds: tuple[float, float]) -> str:
+    """``median [lowest–highest]``, or the median alone for a single repetition."""
+    low, high = bounds
+    if math.isnan(low) or low == high:
+        return f"{median:.1f}"
+    return f"{median:.1f} [{low:.0f}–{high:.0f}]"

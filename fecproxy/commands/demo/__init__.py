@@ -26,6 +26,7 @@ from __future__ import annotations
 import argparse
 import signal
 import sys
+from collections.abc import Callable
 
 import trio
 import trio.socket
@@ -69,18 +70,21 @@ SETTLE_MARGIN_S = 0.3
 SETTLE_POLL_S = 0.05
 
 
-def _start_metrics(registry, port: int) -> tuple[object | None, str]:
-    """Serve the receiver's /metrics; a busy port falls back to any free one, never to a crash."""
+def _start_metrics(registry, port: int, nursery: trio.Nursery) -> tuple[Callable[[], None] | None, str]:
+    """Serve the receiver's /metrics from a task in ``nursery``; a busy port falls back to any
+    free one, never to a crash."""
     from fecproxy.shell.metrics import serve
 
     try:
         server = serve(registry, LOOPBACK, port)
+        nursery.start_soon(server.run)
         return server.stop, _endpoints(server.port)
     except OSError as error:
         busy = f"port {port}: {error.strerror or error}"
     if port != 0:
         try:
             server = serve(registry, LOOPBACK, 0)
+            nursery.start_soon(server.run)
             return server.stop, f"{_endpoints(server.port)} ({busy}, so a free port was taken)"
         except OSError as error:
             busy += f"; any free port: {error.strerror or error}"
@@ -128,7 +132,7 @@ async def run_demo(options: DemoOptions, out=None) -> DemoResult:
             sender = await nursery.start(
                 Daemon(build_configs(options, sink_address, relay.listen_address[:2]), handle_signals=False).run
             )
-            stop_metrics, metrics_text = _start_metrics(receiver.registry, options.metrics_port)
+            stop_metrics, metrics_text = _start_metrics(receiver.registry, options.metrics_port, nursery)
             try:
                 station, sink = Station(options.rate, options.seed), Sink(tap.lost_ids)
                 out.write(
