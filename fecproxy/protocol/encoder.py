@@ -55,6 +55,7 @@ from fecproxy.coding.codec import block_code
 from fecproxy.protocol import wire
 from fecproxy.protocol.auth import Sealer
 from fecproxy.protocol.events import DropReason
+from fecproxy.protocol.ordering import MAX_SEQUENCE_FLOWS, FlowSequencer
 from fecproxy.protocol.repair_rule import DEFAULT_SHORT_BLOCK_REPAIR, SHORT_BLOCK_RULES, repair_count
 
 #: 16 datagrams per block and 4 repair packets (25 % overhead) rides out 4 losses in 20 packets;
@@ -90,10 +91,6 @@ MAX_BLOCKS_PER_ENCODE = 8
 #: A bound in bytes too, for wide symbols (jumbo datagrams): 8 blocks of 16 × 1208 bytes, the
 #: knee above, is about 155 KB of source symbols per call.
 MAX_BYTES_PER_ENCODE = 160 * 1024
-#: Flows whose next sequence number the encoder remembers: twice the 65 536 slots of the wire's
-#: flow id, so every live flow (at most one per slot) and its slot's previous generations fit;
-#: the least recently used beyond that is long over (~100 bytes each, ~13 MB at worst).
-MAX_SEQUENCE_FLOWS = 1 << 17
 
 
 def size_class_names(boundaries: Iterable[int]) -> tuple[str, ...]:
@@ -284,9 +281,7 @@ class BlockEncoder:
         self._open: dict[int, _Block] = {}  # by key = class · MAX_INTERLEAVE + lane, blocks still fed
         self._by_sbn: dict[int, _Block] = {}  # every open block, also those a new layout no longer feeds
         self._lanes: dict[int, int] = {}  # per class: the lane of its next datagram
-        # Per flow: its next sequence number, least recently used first (each use moves the
-        # flow to the end), so the table is cut from the front at MAX_SEQUENCE_FLOWS.
-        self._sequences: dict[int, int] = {}
+        self._sequences = FlowSequencer()  # each flow's datagrams numbered in the order taken
         self._carry: tuple[int, int] | None = None  # (SBN, k) of a closed block whose successor is not open yet
         self._spare: dict[tuple[int, int], list[tuple[memoryview, np.ndarray]]] = {}  # zeroed buffers by shape
         self._groups: dict[int, _Group] = {}  # per class: the round its lanes are joining
@@ -400,7 +395,7 @@ class BlockEncoder:
         single_bound = bounds[0] if len(bounds) == 1 else None
         session, pack_source, pack_prefix = self.session, wire.pack_source_header, wire.SYMBOL_PREFIX.pack_into
         prefix, flag_end = wire.SYMBOL_PREFIX_BYTES, wire.FLAG_END
-        blocks, lanes, sequences = self._open, self._lanes, self._sequences
+        blocks, lanes, sequences = self._open, self._lanes, self._sequences.counts
         sources: list[bytes] = []
         pieces = [sources]  # source runs, each full block's (still empty) repair list between them
         deferred: list[_Block] = []
@@ -447,7 +442,7 @@ class BlockEncoder:
                     cur, cur_key = block, key
                     count, width, storage, symbol_len = block.count, block.width, block.storage, block.symbol_len
                     content, limit, base, previous_k = block.content, block.limit, block.base, block.previous_k
-                seq = sequences.pop(flow, -1)
+                seq = sequences.pop(flow, -1)  # FlowSequencer.next, inlined: once per datagram
                 if seq < 0:
                     seq = 0
                     if len(sequences) >= MAX_SEQUENCE_FLOWS:

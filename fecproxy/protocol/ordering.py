@@ -82,8 +82,36 @@ WAIT_BUCKETS: tuple[float, ...] = (
     10.0,
 )
 
+#: Flows whose next sequence number a sender remembers: twice the 65 536 slots of the wire's flow
+#: id, so every live flow (at most one per slot) and its slot's previous generations fit; the
+#: least recently used beyond that is long over (~100 bytes each, ~13 MB at worst).
+MAX_SEQUENCE_FLOWS = 1 << 17
+
 _HALF = SEQUENCE_MODULUS // 2
 _MASK = SEQUENCE_MODULUS - 1
+
+
+class FlowSequencer:
+    """The sender's side: each flow's datagrams counted from 0 in the order it takes them.
+
+    ``counts`` maps flow -> next number, least recently used first (each use moves the flow to
+    the end), so the table is cut from the front at MAX_SEQUENCE_FLOWS.  The block encoder's hot
+    loop inlines :meth:`next` on ``counts``; both must stay the same rule."""
+
+    __slots__ = ("counts",)
+
+    def __init__(self) -> None:
+        self.counts: dict[int, int] = {}
+
+    def next(self, flow: int) -> int:
+        counts = self.counts
+        seq = counts.pop(flow, -1)
+        if seq < 0:
+            seq = 0
+            if len(counts) >= MAX_SEQUENCE_FLOWS:
+                del counts[next(iter(counts))]
+        counts[flow] = (seq + 1) & _MASK
+        return seq
 
 
 class SkipReason(StrEnum):

@@ -312,7 +312,7 @@ def parse(packet: bytes, *, max_datagram: int, sliding: bool = False) -> Packet:
 # instead of SBN ‖ ESI (RFC 8681 §4.1.2: the source FEC payload ID is a 32-bit ESI):
 #
 # * sliding source (type 3): common header (word = ESI), flow word (flow id 24 bits ‖ 8 bits 0),
-#   datagram; 14 bytes of header, as a block source packet.
+#   the flow sequence number (16 bits), datagram; 16 bytes of header, as a block source packet.
 # * sliding repair (type 4): common header (word = FSS_ESI, the first source symbol of the
 #   window), repair key (16 bits), DT (4 bits) ‖ NSS (12 bits), repair symbol; 14 bytes of header.
 #   Repair key, DT, NSS and FSS_ESI are exactly what RFC 8681 §4.1.3's repair FEC payload ID
@@ -324,7 +324,7 @@ def parse(packet: bytes, *, max_datagram: int, sliding: bool = False) -> Packet:
 SLIDING_SOURCE_TYPE_BYTE = (VERSION << 4) | PacketType.SLIDING_SOURCE
 SLIDING_REPAIR_TYPE_BYTE = (VERSION << 4) | PacketType.SLIDING_REPAIR
 SLIDING_REPAIR_HEADER = struct.Struct(">BBIIHH")  # common + repair key + DT << 12 | NSS
-SLIDING_SOURCE_HEADER_BYTES = SOURCE_HEADER_BYTES  # 14
+SLIDING_SOURCE_HEADER_BYTES = SOURCE_HEADER_BYTES  # 16
 SLIDING_REPAIR_HEADER_BYTES = SLIDING_REPAIR_HEADER.size  # 14
 #: RFC 8681 §4.1.3: NSS is 12 bits and DT 4 bits; source symbol ids are 32 bits (§4.1.2).
 NSS_BITS = 12
@@ -332,7 +332,7 @@ NSS_MASK = (1 << NSS_BITS) - 1
 MAX_DENSITY = 15
 ESI_MODULUS = 1 << 32
 
-#: ``pack_sliding_source(session, esi, flow << FLOW_SHIFT)`` -> 14 bytes.
+#: ``pack_sliding_source(session, esi, flow << FLOW_SHIFT, seq)`` -> 16 bytes.
 pack_sliding_source = partial(SOURCE_HEADER.pack, SLIDING_SOURCE_TYPE_BYTE, 0)
 #: ``pack_sliding_repair(session, first_esi, repair_key, dt << NSS_BITS | nss)`` -> 14 bytes.
 pack_sliding_repair = partial(SLIDING_REPAIR_HEADER.pack, SLIDING_REPAIR_TYPE_BYTE, 0)
@@ -344,6 +344,7 @@ class SlidingSourcePacket:
     esi: int  # 32 bits on the wire: the receiver unwraps it
     flow: int
     data: bytes
+    seq: int = 0  # the flow's sequence number, as in SourcePacket
 
 
 @dataclass(frozen=True, slots=True)
@@ -360,10 +361,10 @@ class SlidingRepairPacket:
 Packet = SourcePacket | RepairPacket | ControlPacket | SlidingSourcePacket | SlidingRepairPacket
 
 
-def encode_sliding_source(session: int, esi: int, flow: int, data: bytes) -> bytes:
-    if not 0 <= flow < MAX_FLOW_IDS:
-        raise ValueError(f"flow {flow} outside 24 bits")
-    return pack_sliding_source(session, esi % ESI_MODULUS, flow << FLOW_SHIFT) + data
+def encode_sliding_source(session: int, esi: int, flow: int, data: bytes, seq: int = 0) -> bytes:
+    if not 0 <= flow < MAX_FLOW_IDS or not 0 <= seq < SEQUENCE_MODULUS:
+        raise ValueError(f"flow {flow} or sequence number {seq} outside 24 and 16 bits")
+    return pack_sliding_source(session, esi % ESI_MODULUS, flow << FLOW_SHIFT, seq) + data
 
 
 def encode_sliding_repair(session: int, first_esi: int, repair_key: int, dt: int, nss: int, symbol: bytes) -> bytes:
@@ -379,13 +380,15 @@ def _parse_sliding(
     if kind == PacketType.SLIDING_SOURCE:
         if size < SLIDING_SOURCE_HEADER_BYTES:
             raise TruncatedPacket(f"sliding source packet of {size} bytes has no flow id")
-        flow_word = SOURCE_HEADER.unpack_from(packet)[4]
+        flow_word, seq = SOURCE_HEADER.unpack_from(packet)[4:]
         if flow_word & PREVIOUS_K_MASK:
             raise InvalidField(f"sliding source packet with reserved bits 0x{flow_word & PREVIOUS_K_MASK:02x} set")
         payload = size - SLIDING_SOURCE_HEADER_BYTES
         if payload > max_datagram:
             raise OversizePacket(f"source datagram of {payload} bytes exceeds the limit of {max_datagram}")
-        return SlidingSourcePacket(session, word, flow_word >> FLOW_SHIFT, bytes(packet[SLIDING_SOURCE_HEADER_BYTES:]))
+        return SlidingSourcePacket(
+            session, word, flow_word >> FLOW_SHIFT, bytes(packet[SLIDING_SOURCE_HEADER_BYTES:]), seq
+        )
     if size < SLIDING_REPAIR_HEADER_BYTES:
         raise TruncatedPacket(f"sliding repair packet of {size} bytes has no repair key, DT and NSS")
     repair_key, dt_nss = SLIDING_REPAIR_HEADER.unpack_from(packet)[4:]
