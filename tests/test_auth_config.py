@@ -124,7 +124,7 @@ def test_missing_unreadable_special_and_huge_key_files(tmp_path, monkeypatch):
 
     monkeypatch.setattr(os, "open", refuse)
     message = errors_of(write_config(tmp_path, "key_file: locked.key\n"))
-    assert "cannot read the key file (Permission denied)" in message and "chmod 600" in message
+    assert "cannot read the key file (Permission denied)" in message and "LoadCredential=" in message
 
 
 def test_both_key_files_are_checked_and_reported_together(tmp_path):

@@ -1,6 +1,7 @@
 """Authentication wired into the encoder and decoder (sans-IO, fake clock): every packet sealed,
 every bad one refused with its reason before it touches any block, nothing forged delivered."""
 
+import itertools
 import random
 
 import pytest
@@ -8,7 +9,27 @@ import pytest
 from fecproxy.protocol import auth, keys, wire
 from fecproxy.protocol.decoder import BlockDecoder, DecoderSettings
 from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
-from fecproxy.protocol.events import ControlReceived, Delivery, Dropped, SessionStarted
+from fecproxy.protocol.events import (
+    ControlReceived,
+    Delivery,
+    Dropped,
+    KeyCheckDue,
+    PeerAddressChanged,
+    SessionStarted,
+)
+
+_SOURCES = itertools.count(1024)
+
+
+def receive_noting_peer(decoder, data, now):
+    """``decoder.receive`` from a fresh source address each time: returns the packet's events
+    (the peer-address event aside) and whether the decoder took that address as its peer's,
+    which it does exactly for a valid packet of the followed session."""
+    decoder.learn_peer = True
+    events = decoder.receive(data, ("127.0.0.1", next(_SOURCES)), now)
+    learned = [e for e in events if isinstance(e, PeerAddressChanged)]
+    return [e for e in events if not isinstance(e, PeerAddressChanged)], bool(learned)
+
 
 OLD = keys.MasterKey(bytes.fromhex("11" * 32))
 NEW = keys.MasterKey(bytes.fromhex("22" * 32))
@@ -44,7 +65,7 @@ def stream(encoder: BlockEncoder, count: int, *, seed=1, start=0.0):
 def run(decoder: BlockDecoder, packets, now=1.0):
     delivered, drops = [], []
     for packet in packets:
-        events, _ = decoder.receive(packet, now)
+        events = decoder.receive(packet, None, now)
         delivered += [e.data for e in events if isinstance(e, Delivery)]
         drops += [e.reason for e in events if isinstance(e, Dropped)]
     return delivered, drops
@@ -113,8 +134,9 @@ def test_replay_of_a_session_that_ended_is_still_a_replay():
 def test_a_wrong_key_is_refused_and_says_which_key_ids_differ():
     _, packets = stream(sender(STRANGER), 4)
     decoder = receiver()
-    events, in_session = decoder.receive(packets[0], 1.0)
-    assert not in_session and [e.reason for e in events] == ["auth"]
+    events, in_session = receive_noting_peer(decoder, packets[0], 1.0)
+    assert not in_session and [e.reason for e in events if isinstance(e, Dropped)] == ["auth"]
+    assert isinstance(events[1], KeyCheckDue)  # the peer is told too (the key check's own test: test_core_decisions)
     error = events[0].error
     assert isinstance(error, auth.AuthError) and error.kind == "unknown_key"
     notice = auth.FailureNotice()
@@ -155,11 +177,11 @@ def test_control_packets_are_sealed_verified_and_handed_on():
     run(decoder, packets)
     control = encoder.control(b"\x01report")
     assert control[1] & wire.FLAG_AUTH
-    events, in_session = decoder.receive(control, 1.0)
+    events, in_session = receive_noting_peer(decoder, control, 1.0)
     assert events == [ControlReceived(0x1234, b"\x01report")]
     assert not in_session  # a control packet never teaches the shell its peer
     forged = wire.encode_control(0x1234, b"\x01forged")
-    assert [e.reason for e in decoder.receive(forged, 1.0)[0]] == ["auth"]
+    assert [e.reason for e in decoder.receive(forged, None, 1.0)] == ["auth"]
 
 
 def test_a_stranger_without_the_key_cannot_start_or_take_a_session():
@@ -167,12 +189,12 @@ def test_a_stranger_without_the_key_cannot_start_or_take_a_session():
     datagrams, packets = stream(sender(), 20)
     got = []
     for i, packet in enumerate(packets):
-        events, _ = decoder.receive(packet, 1.0 + i * 1e-3)
+        events = decoder.receive(packet, None, 1.0 + i * 1e-3)
         got += [e.data for e in events if isinstance(e, Delivery)]
         for j in range(5):
             forged = wire.encode_source(0xBAD, i, j, 1, b"forged") + bytes(auth.TRAILER_BYTES)
             forged = forged[:1] + bytes([forged[1] | wire.FLAG_AUTH]) + forged[2:]
-            assert decoder.receive(forged, 1.0)[0][0].reason == "auth"
+            assert decoder.receive(forged, None, 1.0)[0].reason == "auth"
     assert got == datagrams and decoder.sessions == (0x1234,)
     assert decoder.stats.dropped == {"auth": 5 * len(packets)}
 
@@ -180,5 +202,5 @@ def test_a_stranger_without_the_key_cannot_start_or_take_a_session():
 def test_session_started_is_told_once_for_a_keyed_sender():
     _, packets = stream(sender(), 4)
     decoder = receiver()
-    events = [e for p in packets for e in decoder.receive(p, 1.0)[0]]
+    events = [e for p in packets for e in decoder.receive(p, None, 1.0)]
     assert [e for e in events if isinstance(e, SessionStarted)] == [SessionStarted(0x1234, None)]

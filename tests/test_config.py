@@ -187,12 +187,21 @@ def test_flow_limit_is_half_the_16_bit_slot_space():
 
 
 def test_flow_timeouts_and_protection_are_independent_keys():
-    """The first-exchange timeout may exceed idle_timeout_s (the smaller applies), and 0
-    protection is allowed (always evict, never refuse)."""
+    """0 protection is allowed (always evict, never refuse); the first-exchange timeout may equal
+    idle_timeout_s."""
     config = parse_config(
-        edited(SENDER, flows__idle_timeout_s=1, flows__first_exchange_timeout_s=600, flows__protect_s=0)
+        edited(SENDER, flows__idle_timeout_s=600, flows__first_exchange_timeout_s=600, flows__protect_s=0)
     )
-    assert (config.flows.idle_timeout_s, config.flows.first_exchange_timeout_s, config.flows.protect_s) == (1, 600, 0)
+    assert (config.flows.idle_timeout_s, config.flows.first_exchange_timeout_s, config.flows.protect_s) == (600, 600, 0)
+
+
+def test_first_exchange_timeout_above_idle_timeout_is_refused():
+    """README: first_exchange_timeout_s is "at most idle_timeout_s"; check must not let it through."""
+    [message] = errors_of(edited(SENDER, flows__idle_timeout_s=1, flows__first_exchange_timeout_s=600))
+    assert (
+        "flows.first_exchange_timeout_s: 600 is above flows.idle_timeout_s 1; expected at most idle_timeout_s"
+        in message
+    )
 
 
 def test_socket_buffer_limit_cannot_overflow_the_doubled_int():
@@ -663,7 +672,8 @@ def valid_documents(draw):
         },
         "flows": {
             "max": draw(st.integers(1, cfg.MAX_FLOWS_LIMIT)),
-            "first_exchange_timeout_s": draw(st.integers(1, cfg.MAX_FLOW_IDLE_TIMEOUT_S)),
+            "idle_timeout_s": (idle := draw(st.integers(1, cfg.MAX_FLOW_IDLE_TIMEOUT_S))),
+            "first_exchange_timeout_s": draw(st.integers(1, idle)),
             "protect_s": draw(st.integers(0, cfg.MAX_FLOW_PROTECT_S)),
         },
         "log": {"level": draw(st.sampled_from(["debug", "info", "warning", "error"]))},
@@ -890,3 +900,8 @@ def test_interleave_and_size_classes():
     ):
         messages = errors_of(edited(SENDER, **bad))
         assert len(messages) == 1 and path in messages[0], messages
+
+
+def test_first_exchange_default_follows_a_shorter_idle_timeout():
+    config = parse_config(edited(SENDER, flows__idle_timeout_s=10))
+    assert (config.flows.idle_timeout_s, config.flows.first_exchange_timeout_s) == (10, 10)

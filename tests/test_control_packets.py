@@ -5,13 +5,28 @@ The bytes are our own format (DEVELOPERS.md "Loss reports (control packets)").""
 
 from __future__ import annotations
 
+import itertools
+
 import pytest
 
 from fecproxy.protocol import wire
 from fecproxy.protocol.decoder import BlockDecoder
 from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
-from fecproxy.protocol.events import ControlReceived, Dropped, DropReason
+from fecproxy.protocol.events import ControlReceived, Dropped, DropReason, PeerAddressChanged
 from fecproxy.protocol.loss_report import LossReport, encode_report, parse_report
+
+_SOURCES = itertools.count(1024)
+
+
+def receive_noting_peer(decoder, data, now):
+    """``decoder.receive`` from a fresh source address each time: returns the packet's events
+    (the peer-address event aside) and whether the decoder took that address as its peer's,
+    which it does exactly for a valid packet of the followed session."""
+    decoder.learn_peer = True
+    events = decoder.receive(data, ("127.0.0.1", next(_SOURCES)), now)
+    learned = [e for e in events if isinstance(e, PeerAddressChanged)]
+    return [e for e in events if not isinstance(e, PeerAddressChanged)], bool(learned)
+
 
 REPORT = LossReport(
     epoch=0xFFFFFFFF, sequence=1, interval_ms=250, source_received=0, repair_received=0, source_lost=0, unrecovered=0
@@ -29,10 +44,10 @@ def test_decoder_hands_control_bodies_on_and_keeps_its_session():
     sender = BlockEncoder(EncoderSettings(block_size=2, repair=1), 0x1111)
     decoder = BlockDecoder()
     for packet in sender.send(b"a", 0, 0.0):
-        decoder.receive(packet, 0.0)
+        decoder.receive(packet, None, 0.0)
     assert decoder.session == 0x1111
     report = BlockEncoder(EncoderSettings(), 0x2222).control(encode_report(REPORT))
-    events, in_session = decoder.receive(report, 0.1)
+    events, in_session = receive_noting_peer(decoder, report, 0.1)
     assert events == [ControlReceived(0x2222, encode_report(REPORT))] and not in_session
     assert parse_report(events[0].body) == REPORT
     assert (decoder.sessions, decoder.session, decoder.stats.control_received) == ((0x1111,), 0x1111, 1)
@@ -48,7 +63,7 @@ def test_decoder_hands_control_bodies_on_and_keeps_its_session():
     ],
 )
 def test_control_header_fields_are_checked(packet):
-    events, in_session = BlockDecoder().receive(packet, 0.0)
+    events, in_session = receive_noting_peer(BlockDecoder(), packet, 0.0)
     assert [type(e) for e in events] == [Dropped] and events[0].reason == DropReason.MALFORMED and not in_session
 
 

@@ -1,7 +1,7 @@
 """The decoder's fast path is only an optimisation: with it and without it, the same packets give
-the same events, the same in-session flags, the same counters and the same session table.
+the same events (peer addresses learned included), the same counters and the same session table.
 
-The fast path handles a source packet of the replied-to session and such a repair packet of a block
+The fast path handles a source packet of the followed session and such a repair packet of a block
 already finished without building a packet object; ``BlockDecoder._receive_general`` is the path
 every packet could take.  Hypothesis feeds both the same streams of valid, duplicated, late,
 reordered and bit-flipped packets of one or two sender sessions.
@@ -9,11 +9,26 @@ reordered and bit-flipped packets of one or two sender sessions.
 
 from __future__ import annotations
 
+import itertools
+
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from fecproxy.protocol.decoder import BlockDecoder, DecoderSettings
 from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
+from fecproxy.protocol.events import PeerAddressChanged
+
+_SOURCES = itertools.count(1024)
+
+
+def receive_noting_peer(decoder, data, now):
+    """``decoder.receive`` from a fresh source address each time: returns the packet's events
+    (the peer-address event aside) and whether the decoder took that address as its peer's,
+    which it does exactly for a valid packet of the followed session."""
+    decoder.learn_peer = True
+    events = decoder.receive(data, ("127.0.0.1", next(_SOURCES)), now)
+    learned = [e for e in events if isinstance(e, PeerAddressChanged)]
+    return [e for e in events if not isinstance(e, PeerAddressChanged)], bool(learned)
 
 
 def link_packets(k: int, m: int, datagrams: list[tuple[bytes, int]], session: int) -> list[bytes]:
@@ -51,8 +66,8 @@ def test_fast_and_general_paths_agree(k, m, first, second, steps, max_datagram, 
     if second:  # a restarted sender: a second session whose packets mix with the first's
         link += link_packets(k, m, second, session=0x2222)
     decoder_settings = DecoderSettings(max_datagram=max_datagram, max_open_blocks=max_open_blocks)
-    fast = BlockDecoder(decoder_settings)
-    general = BlockDecoder(decoder_settings)
+    fast = BlockDecoder(decoder_settings, learn_peer=True)
+    general = BlockDecoder(decoder_settings, learn_peer=True)
     general.receive = general._receive_general  # the test hook: no fast path
     now = 0.0
     for index, flip, offset, xor, step_time in steps:
@@ -64,7 +79,8 @@ def test_fast_and_general_paths_agree(k, m, first, second, steps, max_datagram, 
         if step_time:
             now += step_time
             assert fast.on_timer(now) == general.on_timer(now)
-        assert fast.receive(data, now) == general.receive(data, now)
+        source = ("127.0.0.1", 1000 + index % 3)  # the peer's address moves now and then
+        assert fast.receive(data, source, now) == general.receive(data, source, now)
         assert fast.stats == general.stats
         assert (fast.sessions, fast.session, fast.held_bytes, fast.open_blocks) == (
             general.sessions,
@@ -88,9 +104,9 @@ def test_an_invalid_packet_bearing_the_replied_to_session_does_not_keep_it_alive
         decoder = BlockDecoder()
         if hooked:
             decoder.receive = decoder._receive_general
-        decoder.receive(old[0], 1.0)
-        events, in_session = decoder.receive(bytes(bad), 1.4)
+        decoder.receive(old[0], None, 1.0)
+        events, in_session = receive_noting_peer(decoder, bytes(bad), 1.4)
         assert not in_session and [e.reason for e in events] == ["unsupported"]
         for packet in new:  # 0.6 s after the old session's last valid packet
-            decoder.receive(packet, 1.6)
+            decoder.receive(packet, None, 1.6)
         assert decoder.session == 0x2222

@@ -38,7 +38,9 @@ def test_every_example_passes_check(capsys, path):
     status = cli.main(["check", str(path)])
     captured = capsys.readouterr()
     assert status == 0, captured.err
-    assert captured.err == ""
+    # Only warnings: the two-site examples bind their link to every address with the key
+    # commented out (README "Link security" says how to turn it on).
+    assert all(": warning: " in line for line in captured.err.splitlines()), captured.err
 
 
 def plan_command(path: Path) -> list[str]:

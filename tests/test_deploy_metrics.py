@@ -3,16 +3,15 @@ the bytes of the packets it returns, one by one or in batches, and /metrics expo
 
 from __future__ import annotations
 
-import logging
 import random
 
 from prometheus_client import CollectorRegistry, generate_latest
 
+from fecproxy.linkmodel.feedback import Feedback
 from fecproxy.protocol import wire
 from fecproxy.protocol.decoder import BlockDecoder
 from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
 from fecproxy.shell.metrics import DaemonCollector
-from fecproxy.shell.reports import Feedback
 
 
 def datagrams(count: int, seed: int) -> list[bytes]:
@@ -67,9 +66,7 @@ class _Daemon:
         self.interleave = encoder.settings.interleave
         self.size_class_names = encoder.settings.class_names
         self.reloads = {"applied": 0, "rejected": 0}
-        self.feedback = Feedback(
-            BlockEncoder(EncoderSettings(), 1), BlockDecoder(), logging.getLogger("test")
-        )  # no reports yet
+        self.feedback = Feedback(BlockEncoder(EncoderSettings(), 1), BlockDecoder())  # no reports yet
 
     def drop_counts(self):
         return {}

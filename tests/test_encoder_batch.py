@@ -212,7 +212,7 @@ def test_decoder_rebuilds_every_batched_block_that_lost_at_most_m(k, m, seed, dr
         lost = set(drops.sample(range(n), drops.randint(0, m)))
         kept += [p for i, p in enumerate(packets[block * n : (block + 1) * n]) if i not in lost]
     dec = BlockDecoder()
-    events = [event for p in kept for event in dec.receive(p, 0.002)[0]]
+    events = [event for p in kept for event in dec.receive(p, None, 0.002)]
     delivered = sorted((e.flow, e.data) for e in events if isinstance(e, Delivery))
     assert delivered == sorted((flow, data) for data, flow in sent)
     assert dec.stats.unrecovered == 0
@@ -227,7 +227,7 @@ def test_a_bad_item_midway_raises_and_leaves_the_block_consistent():
     packets = enc.send_batch([(b"third", 2), (b"4th", 2)], 0.001)
     assert len(packets) == 2 + 2  # two sources, then the block's two repair packets
     dec = BlockDecoder()
-    events = [event for p in packets for event in dec.receive(p, 0.002)[0]]
+    events = [event for p in packets for event in dec.receive(p, None, 0.002)]
     delivered = sorted((e.flow, e.data) for e in events if isinstance(e, Delivery))
     assert delivered == sorted([(1, b"first"), (1, b"second!"), (2, b"third"), (2, b"4th")])
     assert enc.next_deadline() is None

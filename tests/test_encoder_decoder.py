@@ -10,7 +10,19 @@ from hypothesis import strategies as st
 from fecproxy.protocol import wire
 from fecproxy.protocol.decoder import BlockDecoder, DecoderSettings
 from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
-from fecproxy.protocol.events import BlockReport, Delivery, Dropped, SessionStarted
+from fecproxy.protocol.events import BlockReport, Delivery, Dropped, PeerAddressChanged, SessionStarted
+
+_SOURCES = itertools.count(1024)
+
+
+def receive_noting_peer(decoder, data, now):
+    """``decoder.receive`` from a fresh source address each time: returns the packet's events
+    (the peer-address event aside) and whether the decoder took that address as its peer's,
+    which it does exactly for a valid packet of the followed session."""
+    decoder.learn_peer = True
+    events = decoder.receive(data, ("127.0.0.1", next(_SOURCES)), now)
+    learned = [e for e in events if isinstance(e, PeerAddressChanged)]
+    return [e for e in events if not isinstance(e, PeerAddressChanged)], bool(learned)
 
 
 def make_block(k, m, sizes=None, *, session=1, seed=0, first_sbn=0):
@@ -36,7 +48,7 @@ def make_block(k, m, sizes=None, *, session=1, seed=0, first_sbn=0):
 def feed(decoder, packets, now=1.0):
     events = []
     for p in packets:
-        events += decoder.receive(p, now)[0]
+        events += decoder.receive(p, None, now)
     return events
 
 
@@ -283,11 +295,11 @@ def test_a_stray_packet_of_another_session_does_not_retire_the_live_one():
     dec = BlockDecoder()
     feed(dec, live[:1], now=1.0)
     stray = wire.encode_source(0xDEAD, 7, 0, 3, b"stray")
-    events, stray_in_session = dec.receive(stray, 1.01)
+    events, stray_in_session = receive_noting_peer(dec, stray, 1.01)
     assert delivered(events) == [(3, b"stray")]  # its datagram is not lost
     assert dec.session == 100 and not stray_in_session
     events = feed(dec, live[2:3] + live[4:-1], now=1.02)  # the live session goes on and recovers
-    last_events, last_in_session = dec.receive(live[-1], 1.02)
+    last_events, last_in_session = receive_noting_peer(dec, live[-1], 1.02)
     events += last_events
     assert last_in_session and sorted(delivered(events)) == sorted(datagrams[1:])
 
@@ -304,12 +316,12 @@ def test_a_stranger_flooding_one_made_up_session_changes_nothing_for_the_live_on
         data = i.to_bytes(4, "big")
         sent.append(data)
         for packet in enc.send(data, 1, now):
-            events, in_session = dec.receive(packet, now)
+            events, in_session = receive_noting_peer(dec, packet, now)
             assert in_session
             got += [e.data for e in events if isinstance(e, Delivery)]
         for j in range(5):  # the stranger: one made-up session, plausible headers
             forged = wire.encode_source(0x0BADF00D, i, j, 1, b"forged")
-            events, in_session = dec.receive(forged, now)
+            events, in_session = receive_noting_peer(dec, forged, now)
             assert not in_session
         dec.on_timer(now)
     assert got == sent and dec.session == 100
@@ -323,7 +335,7 @@ def test_sessions_are_bounded_and_a_live_established_session_is_never_evicted():
     _, live = make_block(4, 2, session=100)
     feed(dec, live[:3], now=1.0)
     for fake in range(1, 50):  # one packet each: never established, the oldest makes room
-        dec.receive(wire.encode_source(fake, 0, 0, 0, b"x"), 1.0 + fake * 1e-4)
+        dec.receive(wire.encode_source(fake, 0, 0, 0, b"x"), None, 1.0 + fake * 1e-4)
         assert len(dec.sessions) <= MAX_SESSIONS and 100 in dec.sessions
     dec.on_timer(1.0 + dec.settings.hold_time + 0.01)
     assert dec.sessions == (100,)
@@ -449,7 +461,7 @@ def test_mutated_and_junk_packets_never_raise_and_state_stays_bounded(seed, flip
     now = 0.0
     for data in stream:
         now += 0.01
-        dec.receive(data, now)
+        dec.receive(data, None, now)
         dec.on_timer(now)
         assert dec.open_blocks <= 3
     dec.on_timer(now + 10)
@@ -483,7 +495,7 @@ def test_blackout_deep_reordering_and_duplication_leave_no_stuck_blocks_and_no_g
     for index, (sent_at, packet) in enumerate(reordered):
         at = max(sent_at, reordered[index - 1][0] if index else 0.0)
         for copy in (packet, packet):
-            got += [e.data for e in dec.receive(copy, at)[0] if isinstance(e, Delivery)]
+            got += [e.data for e in dec.receive(copy, None, at) if isinstance(e, Delivery)]
         dec.on_timer(at)
         peak = max(peak, dec.held_bytes)
         assert dec.open_blocks <= 64

@@ -29,7 +29,7 @@ def send_all(enc, items, *, step=0.0001):
 
 def decode(packets, now=1.0):
     dec = BlockDecoder()
-    events = [e for p in packets for e in dec.receive(p, now)[0]]
+    events = [e for p in packets for e in dec.receive(p, None, now)]
     events += dec.close()
     return dec, sorted((e.flow, e.data) for e in events if isinstance(e, Delivery))
 

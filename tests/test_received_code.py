@@ -53,7 +53,7 @@ def test_decoder_reports_the_encoders_code():
     decoder = BlockDecoder()
     packets = encoder.send_batch([(bytes([i]) * 20, 0) for i in range(8)], 0.0)
     for packet in packets:
-        decoder.receive(packet, 0.0)
+        decoder.receive(packet, None, 0.0)
     assert (decoder.received_code.k, decoder.received_code.m) == (8, 3)
 
 

@@ -96,7 +96,7 @@ def run_pair(channel: GilbertElliott, k: int, m: int, datagrams: int, seed: str)
             if position == 0:
                 truth.append(lost)
             if not lost:
-                take(decoder.receive(pkt, now)[0])
+                take(decoder.receive(pkt, None, now))
         take(decoder.on_timer(now))
     take(decoder.close())
     return {"reports": reports, "truth": np.array(truth), "decoder": decoder.stats, "link": on_link}

@@ -7,7 +7,6 @@ import base64
 import hashlib
 import io
 import json
-import logging
 import math
 import os
 import re
@@ -22,11 +21,11 @@ from support.browser import HeadlessChromium, artifact_dir, find_chromium
 from support.daemon_pair import drain, send_paced
 from support.lossy_relay import iid_loss
 
+from fecproxy.linkmodel.feedback import Feedback
 from fecproxy.protocol.decoder import BlockDecoder, DecoderStats
 from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings, EncoderStats
 from fecproxy.shell import status, status_page
 from fecproxy.shell.metrics import build_registry
-from fecproxy.shell.reports import Feedback
 
 REPO = Path(__file__).resolve().parent.parent
 
@@ -53,9 +52,7 @@ class _Daemon:
         self.role = "receiver"
         self.reloads = {"applied": 1, "rejected": 0}
         self.estimate = estimate
-        self.feedback = Feedback(
-            BlockEncoder(EncoderSettings(), 1), BlockDecoder(), logging.getLogger("test")
-        )  # no reports yet
+        self.feedback = Feedback(BlockEncoder(EncoderSettings(), 1), BlockDecoder())  # no reports yet
 
     def drop_counts(self):
         return {"late": 3, "duplicate": 1}

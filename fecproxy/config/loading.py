@@ -4,13 +4,26 @@ then the key files it names (auth.key_file, auth.previous_key_file) -> keys in t
 from __future__ import annotations
 
 import dataclasses
+import errno
 import os
+from collections.abc import Mapping
 from pathlib import Path
 
 import yaml
 
 from fecproxy.config.schema import Config, ConfigError, ConfigUnreadable, parse_config
-from fecproxy.protocol.keys import MAX_KEY_FILE_BYTES, KeyFileError, MasterKey, check_key_file_mode, parse_key_text
+from fecproxy.protocol.keys import (
+    MAX_KEY_FILE_BYTES,
+    KeyFileError,
+    MasterKey,
+    check_credential_mode,
+    check_key_file_mode,
+    parse_key_text,
+)
+
+#: Set by systemd for a service whose unit has LoadCredential= (systemd.exec(5), "Credentials"):
+#: the folder holding the credentials it passed, readable by the service's user only.
+CREDENTIALS_ENV = "CREDENTIALS_DIRECTORY"
 
 #: A config file is a few hundred bytes; refusing more than 1 MiB keeps a wrong path (a log, a
 #: disk image) from being read into memory and parsed.
@@ -108,10 +121,24 @@ def key_file_path(written: str, base: Path) -> Path:
     return base / Path(written).expanduser()
 
 
-def read_key_file(path: Path) -> MasterKey:
+def credential_path(written: str, environ: Mapping[str, str] | None = None) -> Path | None:
+    """The systemd credential standing for a key file, if there is one: a key file written as a
+    plain name (``link.key``) is taken from ``$CREDENTIALS_DIRECTORY`` when systemd set it and
+    passed a credential of that name (``LoadCredential=link.key:/etc/fecproxy/link.key``).  So
+    one config serves the service (key passed by systemd, the file itself root's, mode 0600)
+    and a manual run as root (the same name read beside the config)."""
+    directory = (os.environ if environ is None else environ).get(CREDENTIALS_ENV)
+    if not directory or Path(written).name != written:
+        return None
+    candidate = Path(directory) / written
+    return candidate if os.path.lexists(candidate) else None
+
+
+def read_key_file(path: Path, *, credential: bool = False) -> MasterKey:
     """Open, check the mode of what was opened (no race with a swapped file), read, parse.
 
-    Raises KeyFileError naming the file and what to do.
+    ``credential``: the file is a systemd credential (its own mode rule, see
+    ``keys.check_credential_mode``).  Raises KeyFileError naming the file and what to do.
     """
     shown = str(path)
     try:
@@ -121,12 +148,18 @@ def read_key_file(path: Path) -> MasterKey:
             f"{shown}: no such key file; create one with `fecproxy keygen {shown}` and copy it to the peer"
         ) from None
     except OSError as error:
-        raise KeyFileError(
-            f"{shown}: cannot read the key file ({error.strerror or error}); make it readable by the user fecproxy runs as, "
-            f"and by no one else (chmod 600)"
-        ) from None
+        remedy = (
+            'pass it with systemd\'s LoadCredential= (README, "Installing as a service"), or run as its owner'
+            if error.errno == errno.EACCES and not credential
+            else "make it readable by the user fecproxy runs as, and by no one else (chmod 600)"
+        )
+        raise KeyFileError(f"{shown}: cannot read the key file ({error.strerror or error}); {remedy}") from None
     try:
-        check_key_file_mode(os.fstat(descriptor).st_mode, shown)
+        status = os.fstat(descriptor)
+        if credential:
+            check_credential_mode(status.st_mode, status.st_uid, os.geteuid(), shown)
+        else:
+            check_key_file_mode(status.st_mode, shown)
         data = os.read(descriptor, MAX_KEY_FILE_BYTES + 1)
     except OSError as error:
         raise KeyFileError(f"{shown}: cannot read the key file ({error.strerror or error})") from None
@@ -152,7 +185,11 @@ def load_keys(config: Config, source: str, base: Path) -> Config:
         if written is None:
             continue
         try:
-            loaded[name] = read_key_file(key_file_path(written, base))
+            credential = credential_path(written)
+            if credential is not None:
+                loaded[name] = read_key_file(credential, credential=True)
+            else:
+                loaded[name] = read_key_file(key_file_path(written, base))
         except KeyFileError as error:
             errors.append(f"{source}: auth.{name}: {error}")
     if not errors and "previous_key_file" in loaded and loaded["key_file"] == loaded["previous_key_file"]:

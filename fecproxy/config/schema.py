@@ -604,11 +604,13 @@ class _Parser:
                 self.section(name, raw)
             else:
                 self.error(name, f"unknown key; {_suggest(name, None)}")
+        first_exchange_given = "flows.first_exchange_timeout_s" in self.values
         self.fill_defaults()
         self.check_role()
         self.check_fec()
         self.check_addresses()
         self.check_auth()
+        self.check_flow_timeouts(first_exchange_given)
         if self.errors:
             raise ConfigError(self.errors)
         return self.build()
@@ -779,6 +781,20 @@ class _Parser:
             self.error(
                 "auth.encrypt",
                 f"true needs the {CRYPTO_PACKAGE} package, which is not installed; run {CRYPTO_INSTALL_HINT}, or set auth.encrypt: false",
+            )
+
+    def check_flow_timeouts(self, first_exchange_given: bool) -> None:
+        first = self.values.get("flows.first_exchange_timeout_s")
+        idle = self.values.get("flows.idle_timeout_s")
+        if not (isinstance(first, int) and isinstance(idle, int) and first > idle):
+            return
+        if not first_exchange_given:  # the default follows a shorter idle_timeout_s down
+            self.values["flows.first_exchange_timeout_s"] = idle
+        else:
+            self.error(
+                "flows.first_exchange_timeout_s",
+                f"{first} is above flows.idle_timeout_s {idle}; expected at most idle_timeout_s (a flow that "
+                f"has not been answered yet is never kept longer than an established one)",
             )
 
     def build(self) -> Config:

@@ -132,13 +132,19 @@ class PacketKey:
     key_id: int
     mac_key: bytes
     aead: object | None  # a ChaCha20Poly1305 instance in encrypted mode
+    fingerprint: str = ""  # keys.fingerprint: what people compare between the two sides' logs
 
     @classmethod
     def derive(cls, master: keys.MasterKey, *, encrypt: bool) -> PacketKey:
-        return cls(master.key_id, keys.mac_key(master), _aead(keys.aead_key(master)) if encrypt else None)
+        aead = _aead(keys.aead_key(master)) if encrypt else None
+        return cls(master.key_id, keys.mac_key(master), aead, master.fingerprint)
+
+    def describe(self) -> str:
+        """The key id (on the wire) and the fingerprint (to compare with the peer's log)."""
+        return f"0x{self.key_id:02x} fingerprint {self.fingerprint}"
 
     def __repr__(self) -> str:
-        return f"PacketKey(key id 0x{self.key_id:02x}, {'encrypted' if self.aead else 'MAC'})"
+        return f"PacketKey(key id {self.describe()}, {'encrypted' if self.aead else 'MAC'})"
 
 
 class Keyring:
@@ -163,9 +169,15 @@ class Keyring:
     def key_ids(self) -> tuple[int, ...]:
         return tuple(self._by_id)
 
+    def describe(self) -> str:
+        """For log lines: ``key 0x0a fingerprint 3f…, previous key 0x5c fingerprint 9d…, MAC``."""
+        text = f"key {self.current.describe()}"
+        if self.previous is not None:
+            text += f", previous key {self.previous.describe()}"
+        return f"{text}, {'encrypted' if self.encrypt else 'MAC'}"
+
     def __repr__(self) -> str:
-        ids = ", ".join(f"0x{key_id:02x}" for key_id in self._by_id)
-        return f"Keyring(key ids {ids}, {'encrypted' if self.encrypt else 'MAC'})"
+        return f"Keyring({self.describe()})"
 
 
 class Verified(NamedTuple):
@@ -263,7 +275,7 @@ def verify(packet: bytes, keyring: Keyring) -> Verified:
         )
     candidates = keyring.candidates(key_id)
     if not candidates:
-        ours = ", ".join(f"0x{known:02x}" for known in keyring.key_ids)
+        ours = ", ".join(key.describe() for key in (keyring.current, keyring.previous) if key is not None)
         raise AuthError(
             "unknown_key",
             f"packet made with key id 0x{key_id:02x}, this side has {ours}: the two sides have different key files (or the packet is forged)",
@@ -284,7 +296,8 @@ def verify(packet: bytes, keyring: Keyring) -> Verified:
                 return Verified(plain, key_id, sequence, session, key is not keyring.current)
     raise AuthError(
         "bad_tag",
-        f"tag check failed for key id 0x{key_id:02x}: forged or damaged packet, or a different key with the same id",
+        f"tag check failed for key id 0x{key_id:02x}: forged or damaged packet, or a different key with the same id "
+        f"(this side's has fingerprint {', '.join(key.fingerprint for key in candidates)}: compare it with the peer's)",
         key_id,
     )
 

@@ -7,8 +7,8 @@ shell can count loss on the link (before recovery) apart from loss after it (RFC
 A finished block remembers which datagrams it delivered: a late source packet of a block that
 ended incomplete is still delivered if its datagram never was (and dropped as ``late`` if it was).
 
-``receive`` returns the events and whether the packet was a valid packet of the *replied-to*
-session (below): the shell learns its peer's address only from those.
+``receive(data, addr, now)`` also owns the peer's address: configured, or learned from the
+source of valid packets of the *followed* session (below) only, told as PeerAddressChanged.
 
 Authentication
 --------------
@@ -27,13 +27,13 @@ blocks, so a packet of one session never disturbs another's blocks:
 * a valid packet of a session not in the table adds it at once (its source datagrams are
   delivered at once); when the table is full, the least recently active session that may be
   evicted goes (a session that is quiet — no valid packet for the hold time — or that is not the
-  replied-to one and has sent fewer than SESSION_CONFIRM_PACKETS valid packets); when none may,
+  followed one and has sent fewer than SESSION_CONFIRM_PACKETS valid packets); when none may,
   the packet is dropped as ``session_limit``.  A session still sending valid packets is never
   retired by another;
-* a session other than the replied-to one ages out when it has been quiet for the hold time and
+* a session other than the followed one ages out when it has been quiet for the hold time and
   has no open block; its state goes with it;
-* the **replied-to session** is the one whose sender the shell answers (and learns its peer
-  address from): the first session seen, then, once it has been quiet for the hold time, the
+* the **followed session** is the one whose sender the shell answers (and whose packets' source
+  is the peer's address): the first session seen, then, once it has been quiet for the hold time, the
   next *established* session (SESSION_CONFIRM_PACKETS valid packets) to send.  Changing it emits
   SessionStarted.  A stranger's packets of a made-up session therefore never move the peer
   address while the real sender is sending, and a restarted sender takes over within the hold
@@ -69,7 +69,11 @@ from fecproxy.protocol.events import (
     Dropped,
     DropReason,
     Event,
+    KeyCheckDue,
+    PeerAddressChanged,
+    PeerCodeSettled,
     SessionStarted,
+    SockAddr,
     direct_delivery,
 )
 from fecproxy.protocol.received_code import ReceivedCode
@@ -105,13 +109,17 @@ FINISHED_MEMORY_FACTOR = 4
 #: (the old one's stragglers, the new one); the rest is room for a stranger's sessions without
 #: touching the real one.  Each costs its blocks (within the shared budgets) and a replay window.
 MAX_SESSIONS = 4
-#: Valid packets a session must have sent before it may become the replied-to session in place
+#: Valid packets a session must have sent before it may become the followed session in place
 #: of a quiet one, and before it is safe from eviction by a newcomer.  One stray packet with a
 #: random session value (a bit flip, a forgery) must never take the replies; a real sender sends
 #: this many within its first block.
 SESSION_CONFIRM_PACKETS = 8
 #: Replay windows of ended sessions kept (keyed mode): ~8 KiB each at the default window.
 RETIRED_WINDOWS = 16
+
+#: Authentication failures that mean the two sides' keys or encryption modes differ (not a forgery
+#: of ours): each noticed one also has the peer sent a key check (KeyCheckDue).
+KEY_FAULT_KINDS = frozenset({"unknown_key", "mode_mismatch"})
 
 #: The fast path peeks a packet's fixed header (14 bytes for source, 12 for repair packets).
 _LEADING_BYTES = max(wire.SOURCE_HEADER_BYTES, wire.REPAIR_HEADER_BYTES)
@@ -206,13 +214,26 @@ class _Block:
 class BlockDecoder:
     """One direction's decoder.  Feed ``receive``; call ``on_timer`` at ``next_deadline``."""
 
-    def __init__(self, settings: DecoderSettings = DecoderSettings(), keyring: auth.Keyring | None = None):
+    def __init__(
+        self,
+        settings: DecoderSettings = DecoderSettings(),
+        keyring: auth.Keyring | None = None,
+        *,
+        peer: SockAddr | None = None,
+        learn_peer: bool = False,
+    ):
         self.settings = settings
         self.keyring = keyring  # replaced on a key reload; the sessions' windows stay
         self.stats = DecoderStats()
-        self.session: int | None = None  # the replied-to session
-        self._primary: _Session | None = None
-        self.received_code = ReceivedCode()  # the replied-to session's k and m as its repair packets show them
+        self.session: int | None = None  # the followed session
+        self._followed: _Session | None = None
+        self.received_code = ReceivedCode()  # the followed session's k and m as its repair packets show them
+        #: Where the peer is: configured, or (``learn_peer``) the source of the followed session's
+        #: latest valid packet.  The shell sends everything for the peer here.
+        self.peer = peer
+        self.learn_peer = learn_peer
+        #: One log line per kind of authentication failure per interval (see Dropped.notice).
+        self.auth_notice = auth.FailureNotice()
         self._sessions: dict[int, _Session] = {}
         self._retired_windows: OrderedDict[int, ReplayWindow] = OrderedDict()
         self._open_count = 0  # open blocks, all sessions
@@ -222,10 +243,11 @@ class BlockDecoder:
         #: The latest packet's authentication result: the key id and whether the previous key
         #: was used (for the shell's rollover notice); None when unkeyed or not authentic.
         self.last_verified: auth.Verified | None = None
+        self._code_told: tuple[int, int] | None = None  # the peer's code last told (PeerCodeSettled)
 
     @property
     def sessions(self) -> tuple[int, ...]:
-        """The live sessions, replied-to one included."""
+        """The live sessions, followed one included."""
         return tuple(self._sessions)
 
     @property
@@ -238,43 +260,43 @@ class BlockDecoder:
         return self._open_count
 
     # ------------------------------------------------------------------ feeding
-    def receive(self, data: bytes, now: float) -> tuple[list[Event], bool]:
-        """Take one link packet.  Returns its events, and True when it was a valid packet of the
-        replied-to session (possibly made so by this very packet): the only packets whose source
-        address the shell may take as its peer's."""
+    def receive(self, data: bytes, addr: SockAddr | None, now: float) -> list[Event]:
+        """Take one link packet that came from ``addr``.  Returns its events, among them what the
+        shell must act on besides deliveries: PeerAddressChanged (only from a valid packet of the
+        followed session, see "Sender sessions"), KeyCheckDue, PeerCodeSettled."""
         if self.keyring is not None:
-            verified = self._authenticate(data, now)
-            if type(verified) is not auth.Verified:
-                return [verified], False
+            verified = self._authenticate(data, self.keyring, addr, now)
+            if not isinstance(verified, auth.Verified):
+                return verified
             data = verified.packet
-        # Fast path for the two packets a clean link brings: a source packet of the replied-to
+        # Fast path for the two packets a clean link brings: a source packet of the followed
         # session, and such a repair packet of a block already finished.  The same checks in the
         # same order as wire.parse + _receive_general, with the same outcome, minus the packet
         # object (tests/test_decoder_paths.py compares the two); anything else (another session,
         # a bad field, a repair packet still needed) takes the general path.
         size = len(data)
-        primary = self._primary
-        if size >= _LEADING_BYTES and primary is not None:
+        followed = self._followed
+        if size >= _LEADING_BYTES and followed is not None:
             type_byte = data[0]
             if type_byte == wire.SOURCE_TYPE_BYTE:
                 _, flags, session, payload_id, flow_word, seq = wire.peek_source(data)
                 if (
-                    session == primary.id
+                    session == followed.id
                     and not flags & ~wire.FLAG_END
                     and payload_id & wire.ESI_MASK <= wire.MAX_ESI
                     and size - wire.SOURCE_HEADER_BYTES <= self.settings.max_datagram
                 ):
-                    primary.last_seen = now
-                    primary.packets += 1
+                    followed.last_seen = now
+                    followed.packets += 1
                     self.stats.source_received += 1
                     sbn, esi = payload_id >> wire.ESI_BITS, payload_id & wire.ESI_MASK
                     events: list[Event] = []
-                    block = primary.open.get(sbn)
+                    block = followed.open.get(sbn)
                     if block is None:
-                        block = self._block_for(primary, sbn, now, events)
+                        block = self._block_for(followed, sbn, now, events)
                         if block is None:
                             self._outside_block(
-                                primary,
+                                followed,
                                 sbn,
                                 esi,
                                 flow_word >> wire.FLOW_SHIFT,
@@ -282,11 +304,13 @@ class BlockDecoder:
                                 seq,
                                 events,
                             )
-                            return events, True
+                            if self.learn_peer and addr != self.peer:
+                                self._peer_seen(addr, events)
+                            return events
                     previous_k = flow_word & wire.PREVIOUS_K_MASK
                     if previous_k and not block.told_previous:
                         block.told_previous = True
-                        self._learn_previous_k(primary, sbn, previous_k, now, events)
+                        self._learn_previous_k(followed, sbn, previous_k, now, events)
                     self._add_source_fields(
                         block,
                         sbn,
@@ -298,28 +322,54 @@ class BlockDecoder:
                         events,
                     )
                     self._try_finish(block, now, events)
-                    return events, True
+                    if self.learn_peer and addr != self.peer:
+                        self._peer_seen(addr, events)
+                    return events
             elif type_byte == wire.REPAIR_TYPE_BYTE:
                 _, flags, session, payload_id, k = wire.peek_repair(data)
                 symbol_size = size - wire.REPAIR_HEADER_BYTES
                 sbn = payload_id >> wire.ESI_BITS
                 if (
-                    session == primary.id
+                    session == followed.id
                     and not flags
                     and 1 <= k <= payload_id & wire.ESI_MASK <= wire.MAX_ESI
                     and wire.SYMBOL_PREFIX_BYTES <= symbol_size <= self.settings.max_datagram + wire.SYMBOL_PREFIX_BYTES
-                    and sbn not in primary.open
-                    and sbn in primary.finished
+                    and sbn not in followed.open
+                    and sbn in followed.finished
                 ):
-                    primary.last_seen = now
-                    primary.packets += 1
+                    followed.last_seen = now
+                    followed.packets += 1
                     self.stats.repair_received += 1
                     self.stats.repair_unneeded += 1  # normal: the block completed before its repair came
-                    self.received_code.note(sbn, k, payload_id & wire.ESI_MASK)
-                    return [], True
-        return self._receive_general(data, now)
+                    events = []
+                    settled = self.received_code.note(sbn, k, payload_id & wire.ESI_MASK)
+                    if settled is not None:
+                        self._code_settled(settled, events)
+                    if self.learn_peer and addr != self.peer:
+                        self._peer_seen(addr, events)
+                    return events
+        return self._receive_general(data, addr, now)
 
-    def _authenticate(self, data: bytes, now: float) -> auth.Verified | Dropped:
+    def _peer_seen(self, addr: SockAddr | None, events: list[Event]) -> None:
+        """A packet of the followed session came from ``addr``, not the peer's known address:
+        it becomes the peer's if the packet dropped nothing (a stranger replaying or forging one
+        of the session's packets from elsewhere makes at least a duplicate or a bad field)."""
+        if addr is None:
+            return
+        for event in events:
+            if type(event) is Dropped:
+                return
+        previous, self.peer = self.peer, addr
+        events.append(PeerAddressChanged(addr, previous))
+
+    def _code_settled(self, settled: tuple[int, int], events: list[Event]) -> None:
+        k, m = settled
+        events.append(PeerCodeSettled(k, m, first=self._code_told is None))
+        self._code_told = settled
+
+    def _authenticate(
+        self, data: bytes, keyring: auth.Keyring, addr: SockAddr | None, now: float
+    ) -> auth.Verified | list[Event]:
         """Replay query, tag check, window update (auth.open_packet's order), with the window of
         the packet's session: a live one's, a retired one's, or none yet for a new session."""
         self.last_verified = None
@@ -328,16 +378,23 @@ class BlockDecoder:
             session, _, sequence = auth.peek_trailer(data)
             live = self._sessions.get(session)
             window = live.window if live is not None else self._retired_windows.get(session)
-            verdict = window.check(sequence) if window is not None else None
-            if verdict is not None and not verdict.accepted:
-                raise auth.ReplayedPacket(
-                    f"sequence {sequence} is {verdict.value.replace('_', ' ')} (highest {window.highest})", sequence
-                )
-            verified = auth.verify(data, self.keyring)
+            if window is not None:
+                verdict = window.check(sequence)
+                if not verdict.accepted:
+                    raise auth.ReplayedPacket(
+                        f"sequence {sequence} is {verdict.value.replace('_', ' ')} (highest {window.highest})", sequence
+                    )
+            verified = auth.verify(data, keyring)
         except auth.AuthError as error:
-            return self._drop(DropReason.AUTH, str(error), error)
+            notice = self.auth_notice.note(error, now)
+            events: list[Event] = [self._drop(DropReason.AUTH, str(error), error, notice)]
+            if notice is not None and error.kind in KEY_FAULT_KINDS:
+                destination = self.peer or addr
+                if destination is not None:
+                    events.append(KeyCheckDue(destination))
+            return events
         except auth.ReplayedPacket as error:
-            return self._drop(DropReason.REPLAY, str(error), error)
+            return [self._drop(DropReason.REPLAY, str(error), error)]
         if window is None:
             window = ReplayWindow()  # made only now that the packet proved authentic
             if live is not None:
@@ -350,44 +407,49 @@ class BlockDecoder:
         self.last_verified = verified
         return verified
 
-    def _receive_general(self, data: bytes, now: float) -> tuple[list[Event], bool]:
+    def _receive_general(self, data: bytes, addr: SockAddr | None, now: float) -> list[Event]:
         """``receive`` without its fast path: complete on its own (the fast path only saves the
         parsing of the two commonest packets), so tests can compare the two."""
         try:
             pkt = wire.parse(data, max_datagram=self.settings.max_datagram)
         except wire.PacketError as error:
-            return [self._drop(error.reason, str(error))], False
+            return [self._drop(error.reason, str(error))]
         if isinstance(pkt, wire.ControlPacket):
             # A control packet carries its sending side's own session (as every packet it sends,
             # so sealing keeps one replay window and nonce prefix per session), but it is no
             # data: it neither touches the session table nor teaches the shell its peer.
             self.stats.control_received += 1
-            return [ControlReceived(pkt.session, pkt.body)], False
+            return [ControlReceived(pkt.session, pkt.body)]
         events: list[Event] = []
         sess = self._sessions.get(pkt.session)
         if sess is None:
             sess = self._add_session(pkt.session, now, events)
             if sess is None:
-                return events, False
+                return events
         sess.last_seen = now
         sess.packets += 1
-        primary = self._primary
-        if primary is not sess and (
-            primary is None
-            or (now - primary.last_seen >= self.settings.hold_time and sess.packets >= SESSION_CONFIRM_PACKETS)
+        followed = self._followed
+        if followed is not sess and (
+            followed is None
+            or (now - followed.last_seen >= self.settings.hold_time and sess.packets >= SESSION_CONFIRM_PACKETS)
         ):
             previous = self.session
-            self._primary, self.session = sess, sess.id
+            self._followed, self.session = sess, sess.id
             self.received_code.reset()
+            self._code_told = None
             events.append(SessionStarted(sess.id, previous))
         if isinstance(pkt, wire.SourcePacket):
             self.stats.source_received += 1
         else:
             self.stats.repair_received += 1
-            if sess is self._primary:  # the peer's code is the replied-to session's
-                self.received_code.note(pkt.sbn, pkt.k, pkt.esi)
+            if sess is self._followed:  # the peer's code is the followed session's
+                settled = self.received_code.note(pkt.sbn, pkt.k, pkt.esi)
+                if settled is not None:
+                    self._code_settled(settled, events)
         self._admit(sess, pkt, now, events)
-        return events, self._primary is sess
+        if sess is self._followed and self.learn_peer and addr != self.peer:
+            self._peer_seen(addr, events)
+        return events
 
     def _add_session(self, session: int, now: float, events: list[Event]) -> _Session | None:
         """A valid packet of a session not in the table: make room if a session may go."""
@@ -396,7 +458,7 @@ class BlockDecoder:
             evictable = [
                 s
                 for s in self._sessions.values()
-                if now - s.last_seen >= hold or (s is not self._primary and s.packets < SESSION_CONFIRM_PACKETS)
+                if now - s.last_seen >= hold or (s is not self._followed and s.packets < SESSION_CONFIRM_PACKETS)
             ]
             if not evictable:
                 events.append(
@@ -420,8 +482,8 @@ class BlockDecoder:
             self._retired_windows[sess.id] = sess.window
             while len(self._retired_windows) > RETIRED_WINDOWS:
                 self._retired_windows.popitem(last=False)
-        if sess is self._primary:
-            self._primary = None  # the session stays named in self.session until another is chosen
+        if sess is self._followed:
+            self._followed = None  # the session stays named in self.session until another is chosen
 
     def _admit(
         self, sess: _Session, pkt: wire.SourcePacket | wire.RepairPacket, now: float, events: list[Event]
@@ -447,19 +509,19 @@ class BlockDecoder:
 
     @property
     def highest_sbn(self) -> int | None:
-        """The newest source block number seen of the replied-to session (None before any);
+        """The newest source block number seen of the followed session (None before any);
         a loss report carries it."""
-        return self._primary.newest if self._primary is not None else None
+        return self._followed.newest if self._followed is not None else None
 
     def next_deadline(self) -> float | None:
         hold = self.settings.hold_time
         deadlines = [next(iter(s.open.values())).first_seen + hold for s in self._sessions.values() if s.open]
-        deadlines += [s.last_seen + hold for s in self._sessions.values() if s is not self._primary and not s.open]
+        deadlines += [s.last_seen + hold for s in self._sessions.values() if s is not self._followed and not s.open]
         return min(deadlines) if deadlines else None
 
     def on_timer(self, now: float) -> list[Event]:
         """Expire blocks whose hold time has passed (they can no longer be completed in time), and
-        forget sessions other than the replied-to one that have been quiet for the hold time."""
+        forget sessions other than the followed one that have been quiet for the hold time."""
         events: list[Event] = []
         hold = self.settings.hold_time
         for sess in list(self._sessions.values()):
@@ -468,7 +530,7 @@ class BlockDecoder:
                 if block.first_seen + hold > now:
                     break
                 events.append(self._finish(block, BlockOutcome.EXPIRED))
-            if sess is not self._primary and not sess.open and now - sess.last_seen >= hold:
+            if sess is not self._followed and not sess.open and now - sess.last_seen >= hold:
                 self._end_session(sess, events)
         return events
 
@@ -484,9 +546,11 @@ class BlockDecoder:
         ]
 
     # ------------------------------------------------------------------ internals
-    def _drop(self, reason: DropReason, detail: str, error: Exception | None = None) -> Dropped:
+    def _drop(
+        self, reason: DropReason, detail: str, error: Exception | None = None, notice: str | None = None
+    ) -> Dropped:
         self.stats.dropped[reason] = self.stats.dropped.get(reason, 0) + 1
-        return Dropped(reason, detail, error)
+        return Dropped(reason, detail, error, notice)
 
     def _learn_previous_k(self, sess: _Session, sbn: int, k: int, now: float, events: list[Event]) -> None:
         """A source packet of a newly seen block told the size of the block before it.
@@ -504,7 +568,7 @@ class BlockDecoder:
                 block.k = k
                 self._try_finish(block, now, events)
             return
-        if previous in sess.finished:
+        if previous in sess.finished or sess.first_sbn is None:
             return
         after_first = (previous - sess.first_sbn) % wire.SBN_MODULUS
         if not 0 < after_first < wire.SBN_MODULUS // 2:

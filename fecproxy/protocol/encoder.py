@@ -376,7 +376,7 @@ class BlockEncoder:
     def send(self, datagram: bytes, flow: int, now: float) -> list[bytes]:
         """Frame one application datagram; returns the packets to put on the link now.
 
-        ``flow`` is the packed 24-bit flow id (slot << 8 | generation), trusted as such.
+        ``flow`` is the packed 24-bit flow id (wire: slot << GENERATION_BITS | generation), trusted as such.
         An oversize datagram returns no packet and is counted in ``stats.dropped``.
         """
         return self.send_batch(((datagram, flow),), now)
@@ -395,6 +395,7 @@ class BlockEncoder:
         single_bound = bounds[0] if len(bounds) == 1 else None
         session, pack_source, pack_prefix = self.session, wire.pack_source_header, wire.SYMBOL_PREFIX.pack_into
         prefix, flag_end = wire.SYMBOL_PREFIX_BYTES, wire.FLAG_END
+        generation_bits, generation_mask, flow_shift = wire.GENERATION_BITS, wire.GENERATION_MASK, wire.FLOW_SHIFT
         blocks, lanes, sequences = self._open, self._lanes, self._sequences.counts
         sources: list[bytes] = []
         pieces = [sources]  # source runs, each full block's (still empty) repair list between them
@@ -449,7 +450,7 @@ class BlockEncoder:
                         del sequences[next(iter(sequences))]
                 sequences[flow] = (seq + 1) & 0xFFFF
                 start = count * width + prefix
-                pack_prefix(storage, start - prefix, flow >> 8, flow & 0xFF, size, seq)  # slot, generation, length, seq
+                pack_prefix(storage, start - prefix, flow >> generation_bits, flow & generation_mask, size, seq)
                 storage[start : start + size] = datagram
                 if symbol > symbol_len:
                     symbol_len = symbol
@@ -458,11 +459,12 @@ class BlockEncoder:
                 sent_count[index] += 1
                 sent_size[index] += size
                 if count < limit:
-                    sources.append(pack_source(0, session, base | (count - 1), flow << 8 | previous_k, seq) + datagram)
+                    sources.append(
+                        pack_source(0, session, base | (count - 1), flow << flow_shift | previous_k, seq) + datagram
+                    )
                     continue
-                sources.append(
-                    pack_source(flag_end, session, base | (count - 1), flow << 8 | previous_k, seq) + datagram
-                )
+                word = flow << flow_shift | previous_k
+                sources.append(pack_source(flag_end, session, base | (count - 1), word, seq) + datagram)
                 cur.count, cur.symbol_len, cur.content = count, symbol_len, content
                 del blocks[key]
                 deferred.append(cur)

@@ -35,26 +35,26 @@ from collections.abc import Hashable
 from dataclasses import dataclass
 from typing import Generic, TypeVar
 
+from fecproxy.protocol.wire import GENERATION_BITS, SLOT_BITS
+
 # --------------------------------------------------------------------------------------------
 # Flow identifiers
 # --------------------------------------------------------------------------------------------
 
-#: A slot is 16 bits of the 24-bit flow id of wire format version 2 (fecproxy.protocol.wire):
-#: thousands of concurrent clients, where the one-byte flow id of the RFC 6363 §4 source symbol
-#: stops at 256.
-SLOT_BITS = 16
+# A slot is SLOT_BITS = 16 bits of the 24-bit flow id of wire format version 2 (the layout's home
+# is fecproxy.protocol.wire): thousands of concurrent clients, where the one-byte flow id of the
+# RFC 6363 §4 source symbol stops at 256.
 FLOW_SLOTS = 1 << SLOT_BITS
-#: A generation is 8 bits: it tells a slot's new client from its previous one.  A receiver judges
-#: old against new by serial-number arithmetic (half the space ahead is newer), so it needs only
-#: that fewer than 128 conversations of one slot pass unseen while it still holds the slot.
-GENERATION_BITS = 8
+# A generation is GENERATION_BITS = 8 bits: it tells a slot's new client from its previous one.
+# A receiver judges old against new by serial-number arithmetic (half the space ahead is newer), so
+# it needs only that fewer than 128 conversations of one slot pass unseen while it still holds it.
 GENERATIONS = 1 << GENERATION_BITS
 _GENERATION_MASK = GENERATIONS - 1
 _HALF_GENERATIONS = GENERATIONS // 2
 
 
 def flow_id(slot: int, generation: int) -> int:
-    """The packed identifier the wire carries: ``slot << 8 | generation``."""
+    """The packed identifier the wire carries: ``slot << GENERATION_BITS | generation``."""
     return slot << GENERATION_BITS | generation
 
 

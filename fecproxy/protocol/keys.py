@@ -10,6 +10,9 @@ so the rules are tested without touching a disk.
 
   - the **key id** (1 byte) names the key in every packet, so during a rollover a receiver knows
     which of its two keys to try;
+  - the **fingerprint** (8 bytes, shown as 16 hex digits) names the key to people: ``fecproxy
+    check`` and the logs print it so two sides' keys are compared with a chance of 1 in 2^64 of
+    a wrong key passing, where the 1-byte id would miss one wrong key in 256;
   - the **MAC key** and the **AEAD key** are separate sub-keys, so the same bytes are never used by
     two algorithms.
 
@@ -38,6 +41,11 @@ MAX_KEY_FILE_BYTES = 4096
 #: HKDF-Expand ``info`` labels, one per derived value; the version suffix lets a later format
 #: derive different values from the same key file.
 _INFO_KEY_ID = b"fecproxy key id v1"
+_INFO_FINGERPRINT = b"fecproxy key fingerprint v1"
+#: 8 bytes: two different keys show the same fingerprint with probability 2^-64, so comparing
+#: fingerprints by eye or by `fecproxy check SENDER RECEIVER` finds a wrong key; 16 hex digits
+#: still fit a log line.  Like the key id it is a PRF output and tells nothing useful about the key.
+FINGERPRINT_BYTES = 8
 _INFO_MAC = b"fecproxy packet mac v1"
 _INFO_AEAD = b"fecproxy packet aead v1"
 
@@ -49,20 +57,21 @@ class KeyFileError(ValueError):
 class MasterKey:
     """A 32-byte pre-shared key that never shows itself in a repr, a log line or a traceback."""
 
-    __slots__ = ("_secret", "key_id")
+    __slots__ = ("_secret", "fingerprint", "key_id")
 
     def __init__(self, secret: bytes):
         if len(secret) != KEY_BYTES:
             raise ValueError(f"a key is {KEY_BYTES} bytes, got {len(secret)}")
         self._secret = bytes(secret)
         self.key_id = key_id(self._secret)
+        self.fingerprint = fingerprint(self._secret)
 
     def secret(self) -> bytes:
         """The key bytes, for deriving sub-keys; callers must not log or store them."""
         return self._secret
 
     def __repr__(self) -> str:
-        return f"MasterKey(key id 0x{self.key_id:02x})"
+        return f"MasterKey({key_fingerprint_text(self)})"
 
     __str__ = __repr__
 
@@ -83,6 +92,11 @@ def hkdf_expand_block(prk: bytes, info: bytes) -> bytes:
 def key_id(secret: bytes) -> int:
     """The 1-byte id both peers compute alike from the key itself (no configuration)."""
     return hkdf_expand_block(secret, _INFO_KEY_ID)[0]
+
+
+def fingerprint(secret: bytes) -> str:
+    """The key's 16-hex-digit fingerprint, computed alike on both sides (compare, never the key)."""
+    return hkdf_expand_block(secret, _INFO_FINGERPRINT)[:FINGERPRINT_BYTES].hex()
 
 
 def mac_key(master: MasterKey) -> bytes:
@@ -142,5 +156,35 @@ def check_key_file_mode(st_mode: int, source: str) -> None:
 
 
 def key_fingerprint_text(master: MasterKey) -> str:
-    """What may be shown of a key: its id (already on the wire in every packet)."""
-    return f"key id 0x{master.key_id:02x}"
+    """What may be shown of a key: its id (already on the wire in every packet) and its
+    fingerprint (what people compare between the two sides)."""
+    return f"key id 0x{master.key_id:02x}, fingerprint {master.fingerprint}"
+
+
+#: Permission bits a systemd credential must not have.  systemd writes a credential 0400 and
+#: root-owned, then grants the service's user read access by a POSIX ACL entry, or, where the
+#: file system has no ACLs, by making that user the owner (systemd src/core/exec-credential.c,
+#: ``write_credential``: ``fchmod(fd, 0400)``, ``fd_add_uid_acl_permission(fd, uid, ACL_READ)``,
+#: else ``fchown``).  ``stat`` shows an ACL's mask in the group bits, so such a file reads 0440
+#: although no group may read it: group *read* is therefore allowed there, any write bit and any
+#: access by others is not.
+FORBIDDEN_CREDENTIAL_MODE_BITS = 0o037
+
+
+def check_credential_mode(st_mode: int, st_uid: int, euid: int, source: str) -> None:
+    """The rule for a key handed over by systemd in ``$CREDENTIALS_DIRECTORY`` (see
+    FORBIDDEN_CREDENTIAL_MODE_BITS): a regular file, owned by root or by the user reading it,
+    with no write bit for group or others and nothing for others."""
+    if not stat.S_ISREG(st_mode):
+        raise KeyFileError(f"{source}: not a regular file; expected the key file systemd's LoadCredential= passes")
+    loose = stat.S_IMODE(st_mode) & FORBIDDEN_CREDENTIAL_MODE_BITS
+    if loose:
+        raise KeyFileError(
+            f"{source}: the credential is open to other users (mode {stat.S_IMODE(st_mode):04o}); expected what "
+            f"systemd's LoadCredential= makes (0400); check the credential directory is systemd's own"
+        )
+    if st_uid not in (0, euid):
+        raise KeyFileError(
+            f"{source}: the credential is owned by user id {st_uid}; expected root or this user ({euid}), as "
+            f"systemd's LoadCredential= makes it"
+        )

@@ -51,7 +51,7 @@ import math
 import struct
 from dataclasses import dataclass
 
-from fecproxy.protocol.wire import PacketError, UnsupportedPacket
+from fecproxy.protocol.wire import SBN_MODULUS, PacketError, UnsupportedPacket
 
 #: The body's first byte: which control message this is.  Other kinds are "unsupported".
 KIND_LOSS_REPORT = 1
@@ -79,7 +79,6 @@ BURST_SCALE = 1 << 8
 BURST_MAX_RAW = 0xFFFF
 COUNTER_MAX = (1 << 64) - 1
 FIELD32_MAX = (1 << 32) - 1
-SBN_MODULUS = 1 << 24
 #: The report period fits its 16-bit field; config keeps reports.interval_ms within it.
 MAX_INTERVAL_MS = 0xFFFF
 

@@ -42,18 +42,25 @@ class ReceivedCode:
         self.settled: tuple[int, int] | None = None
         self._sbn: int | None = None
 
-    def note(self, sbn: int, k: int, esi: int) -> None:
-        """A repair packet of block ``sbn`` with ``k`` source symbols and ESI ``esi`` (≥ k)."""
+    def note(self, sbn: int, k: int, esi: int) -> tuple[int, int] | None:
+        """A repair packet of block ``sbn`` with ``k`` source symbols and ESI ``esi`` (≥ k).
+
+        Returns the settled figure when this packet changed it (else None): the one moment
+        worth telling the operator."""
         m = esi - k + 1
         if sbn == self._sbn:
-            if k == self.k and m > self.m:
+            if k == self.k and self.m is not None and m > self.m:
                 self.m = m
-            return
-        if self._sbn is not None:
+            return None
+        changed = None
+        if self._sbn is not None and self.k is not None and self.m is not None:
             ahead = (sbn - self._sbn) % SBN_MODULUS
             if ahead >= SBN_MODULUS // 2:
-                return  # an older block arriving late
-            self.settled = (self.k, self.m)
-            if (k, m) < (self.k, self.m) and ahead <= CODE_WINDOW_BLOCKS:
-                return  # a short block, or a block whose last repair packets are lost or still to come
+                return None  # an older block arriving late
+            settled = (self.k, self.m)
+            if settled != self.settled:
+                self.settled = changed = settled
+            if (k, m) < settled and ahead <= CODE_WINDOW_BLOCKS:
+                return changed  # a short block, or a block whose last repair packets are lost or still to come
         self.k, self.m, self._sbn = k, m, sbn
+        return changed

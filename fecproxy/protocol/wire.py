@@ -71,7 +71,12 @@ REPAIR_HEADER_BYTES = REPAIR_HEADER.size  # 12
 #: byte stops at 256) and an 8-bit generation (a slot's new client is a new conversation).
 FLOW_ID_BITS = 24
 MAX_FLOW_IDS = 1 << FLOW_ID_BITS
-#: The flow word of a source header is ``flow << FLOW_SHIFT | previous_k``.
+#: The flow id is ``slot << GENERATION_BITS | generation`` (what each part means: protocol.flows).
+GENERATION_BITS = 8
+GENERATION_MASK = (1 << GENERATION_BITS) - 1
+SLOT_BITS = FLOW_ID_BITS - GENERATION_BITS
+#: The flow word of a source header is ``flow << FLOW_SHIFT | previous_k``: the previous block's k
+#: takes the low byte (k ≤ MAX_K = 255).
 FLOW_SHIFT = 8
 PREVIOUS_K_MASK = (1 << FLOW_SHIFT) - 1
 #: Sequence numbers count each flow's datagrams modulo 2^16 (serial-number arithmetic,
@@ -80,7 +85,7 @@ SEQUENCE_BITS = 16
 SEQUENCE_MODULUS = 1 << SEQUENCE_BITS
 #: Source symbol prefix after RFC 6363 §4 / RFC 6865 §4, flow id widened to 3 bytes, and the flow
 #: sequence number: slot (2) ‖ generation (1) ‖ length (2) ‖ sequence (2), all big-endian; packed
-#: as (flow >> 8, flow & 0xFF, length, seq).
+#: as (flow >> GENERATION_BITS, flow & GENERATION_MASK, length, seq).
 SYMBOL_PREFIX = struct.Struct(">HBHH")
 #: The flow id, the 2-byte length and the 2-byte sequence number that precede the datagram (and
 #: its zero padding) in a symbol.
@@ -212,13 +217,13 @@ def encode_source(
 
 def pack_symbol_prefix(flow: int, length: int, seq: int) -> bytes:
     """The 7-byte prefix a source datagram has in its symbol: slot ‖ generation ‖ length ‖ sequence."""
-    return SYMBOL_PREFIX.pack(flow >> FLOW_SHIFT, flow & 0xFF, length, seq)
+    return SYMBOL_PREFIX.pack(flow >> GENERATION_BITS, flow & GENERATION_MASK, length, seq)
 
 
 def unpack_symbol_prefix(symbol) -> tuple[int, int, int]:
     """(flow, length, seq) from the first SYMBOL_PREFIX_BYTES bytes of a symbol."""
     slot, generation, length, seq = SYMBOL_PREFIX.unpack_from(symbol)
-    return slot << FLOW_SHIFT | generation, length, seq
+    return slot << GENERATION_BITS | generation, length, seq
 
 
 def encode_repair(session: int, sbn: int, esi: int, k: int, symbol: bytes) -> bytes:

@@ -12,6 +12,8 @@ import dataclasses
 from pathlib import Path
 
 from fecproxy.config import Config, ConfigError, load_config
+from fecproxy.linkmodel.adaptation import AdaptPolicy
+from fecproxy.linkmodel.feedback import Feedback
 from fecproxy.protocol.auth import Keyring
 from fecproxy.protocol.decoder import DecoderSettings
 from fecproxy.protocol.encoder import EncoderSettings
@@ -31,6 +33,31 @@ class ReloadRejected(Exception):
     def __init__(self, errors: str):
         super().__init__(errors)
         self.errors = errors
+
+
+def adapt_policy(config: Config) -> AdaptPolicy | None:
+    """The controller's policy from ``fec`` and ``fec.adapt``; None when m is fixed."""
+    fec, adapt = config.fec, config.fec.adapt
+    if adapt is None or not config.reports.enabled:
+        return None
+    return AdaptPolicy(
+        block_size=fec.block_size,
+        target_residual=adapt.target_residual,
+        min_repair=min(adapt.min_repair, adapt.repair_ceiling(fec.block_size)),
+        max_repair=adapt.repair_ceiling(fec.block_size),
+        max_overhead=adapt.max_overhead,
+        report_interval=config.reports.interval_ms / 1000,
+        allow_repair_above_source=fec.allow_repair_above_source,
+        short_block_repair=str(fec.short_block_repair),
+        flush_interval=fec.flush_seconds,
+        depths=(fec.interleave,),  # the sender's configured D: m is chosen for the layout it sends
+    )
+
+
+def configure_feedback(feedback: Feedback, config: Config, now: float) -> None:
+    """Loss reports and adaptation as ``config`` says (at start and on a reload)."""
+    interval = config.reports.interval_ms if config.reports.enabled else None
+    feedback.configure(adapt_policy(config), interval, encoder_settings(config), now)
 
 
 def encoder_settings(config: Config) -> EncoderSettings:
@@ -68,14 +95,13 @@ def keyring(config: Config) -> Keyring | None:
 def flow_table(config: Config) -> ClientFlowTable | PeerFlowTable:
     """The sender's table of client addresses, or the receiver's table of the peer's flow ids."""
     flows = config.flows
-    timeouts = dict(
+    table = ClientFlowTable if config.role == "sender" else PeerFlowTable
+    return table(
+        flows.max,
         first_exchange_timeout=float(flows.first_exchange_timeout_s),
         idle_timeout=float(flows.idle_timeout_s),
         protect=float(flows.protect_s),
     )
-    if config.role == "sender":
-        return ClientFlowTable(flows.max, **timeouts)
-    return PeerFlowTable(flows.max, **timeouts)
 
 
 def apply_flow_timeouts(table: ClientFlowTable | PeerFlowTable, config: Config) -> None:

@@ -29,6 +29,7 @@ import time
 import trio
 
 from fecproxy.config.addresses import format_sockaddr
+from fecproxy.protocol.events import SockAddr
 from fecproxy.shell.logs import log_event
 
 log = logging.getLogger("fecproxy.shell.udp")
@@ -58,8 +59,6 @@ RECV_BATCH = 256
 #: every datagram (at most 65 507 bytes of payload over IPv4, 65 527 over IPv6) and every
 #: coalesced GRO buffer fits and nothing is ever truncated silently.
 MAX_UDP_PAYLOAD = 65535
-
-Address = tuple  # (host, port) or (host, port, flowinfo, scope_id)
 
 
 #: socket(7): Linux doubles the SO_RCVBUF/SO_SNDBUF value set (room for its bookkeeping) and
@@ -123,7 +122,7 @@ def open_udp_socket(
     return sock
 
 
-def resolve(host: str, port: int, family: int = 0) -> Address:
+def resolve(host: str, port: int, family: int = 0) -> SockAddr:
     infos = socket.getaddrinfo(host, port, family=family, type=socket.SOCK_DGRAM)
     return infos[0][4]
 
@@ -180,13 +179,13 @@ class DatagramReader:
         self._view = memoryview(bytearray(size))
         self.coalescing = coalesce and enable_coalescing(sock)
 
-    async def read_batch(self) -> list[tuple[bytes, Address]]:
+    async def read_batch(self) -> list[tuple[bytes, SockAddr]]:
         """Wait until readable, then return every datagram queued (up to about the batch size).
 
         Every call lets other tasks run at least once, even when the socket never empties:
         a busy socket must not starve the timers, the other direction or signal handling.
         """
-        out: list[tuple[bytes, Address]] = []
+        out: list[tuple[bytes, SockAddr]] = []
         waited = False
         while True:
             if self.coalescing:
@@ -240,7 +239,7 @@ _SEND_ERROR_MEMORY = 1024
 _send_error_logged: dict[str, tuple[float, int]] = {}
 
 
-def _note_send_error(address: Address, error: OSError) -> None:
+def _note_send_error(address: SockAddr, error: OSError) -> None:
     """A WARNING line per address at most once per SEND_ERROR_LOG_INTERVAL_S, with the count of
     failures not logged since; each failure is counted by the writer either way."""
     shown = format_sockaddr(address)
@@ -272,7 +271,7 @@ class DatagramWriter:
         async with self._wait_lock:
             await trio.lowlevel.wait_writable(self.sock)
 
-    async def send(self, packets: list[bytes], address: Address) -> None:
+    async def send(self, packets: list[bytes], address: SockAddr) -> None:
         if not packets:
             return
         if DatagramWriter.gso_supported is not False and len(packets) > 1:
@@ -281,7 +280,7 @@ class DatagramWriter:
             for data in packets:
                 await self._sendto(data, address)
 
-    async def _sendto(self, data: bytes, address: Address) -> None:
+    async def _sendto(self, data: bytes, address: SockAddr) -> None:
         while True:
             try:
                 self.sock.sendto(data, address)
@@ -294,7 +293,7 @@ class DatagramWriter:
                 _note_send_error(address, error)
                 return
 
-    async def _send_gso(self, packets: list[bytes], address: Address) -> None:
+    async def _send_gso(self, packets: list[bytes], address: SockAddr) -> None:
         start = 0
         count = len(packets)
         while start < count:
@@ -317,7 +316,7 @@ class DatagramWriter:
                     await self._sendto(data, address)
             start = end
 
-    async def _sendmsg_gso(self, run: list[bytes], segment: int, address: Address) -> bool:
+    async def _sendmsg_gso(self, run: list[bytes], segment: int, address: SockAddr) -> bool:
         control = gso_control(segment)
         while True:
             try:

@@ -23,11 +23,11 @@ from collections.abc import Awaitable, Callable, Iterable
 import trio
 
 from fecproxy.config.addresses import format_sockaddr
-from fecproxy.protocol.events import DropReason
+from fecproxy.protocol.events import DropReason, SockAddr
 from fecproxy.protocol.flows import FlowClosed, Opened, PeerFlowTable, Verdict
 from fecproxy.shell.fdlimit import flow_socket_budget
 from fecproxy.shell.logs import log_event
-from fecproxy.shell.udp import Address, DatagramReader, DatagramWriter
+from fecproxy.shell.udp import DatagramReader, DatagramWriter
 
 # The daemon's logger: these events were always the daemon's, and log filters rely on the name.
 log = logging.getLogger("fecproxy.shell.daemon")
@@ -71,7 +71,7 @@ class Upstreams:
 
     def __init__(
         self,
-        forward: Address,
+        forward: SockAddr,
         flows: PeerFlowTable,
         on_replies: ReplyHandler,
         max_sockets: int | None = FROM_OPEN_FILE_LIMIT,

@@ -1,4 +1,4 @@
-"""Loss reports in the shell: each daemon reports on the direction it decodes, and adapts the
+"""Loss reports, sans-IO: each daemon reports on the direction it decodes, and adapts the
 direction it encodes from its peer's reports (when ``fec.adapt`` is set).
 
 * :class:`LossReporter` builds a :class:`~fecproxy.protocol.loss_report.LossReport` every
@@ -8,19 +8,20 @@ direction it encodes from its peer's reports (when ``fec.adapt`` is set).
   :class:`~fecproxy.linkmodel.adaptation.RedundancyController` with the encoder's own traffic
   profile (rate, mean and longest datagram) measured between two reports.
 
-Both are sans-IO like the cores (``now`` in, reports, events and deadlines out).  :class:`Feedback`
-holds the two for one daemon, applies decisions to its encoder and logs them; the daemon only
-moves the bytes and fires the timer.  It exports its counts through the daemon to the metrics.
+:class:`Feedback` holds the two for one daemon and the link-loss estimates fed from the decoder's
+block reports.  Everything is ``(input, now)`` in and decisions out: a report packet to send
+(:class:`ReportDue`), a new m (the controller's :class:`~fecproxy.linkmodel.adaptation.Decision`,
+already applied to the encoder), the return path's state (ReportsStale / ReportsResumed), a
+control body that failed parsing (a counted ``Dropped``).  No clock, socket or log here: the shell
+fires the timer at ``next_deadline()``, sends the packets and logs the events.
 """
 
 from __future__ import annotations
 
 import dataclasses
-import logging
 import secrets
 from dataclasses import dataclass, field
 
-from fecproxy.config import Config
 from fecproxy.linkmodel.adaptation import (
     AdaptPolicy,
     Decision,
@@ -30,13 +31,12 @@ from fecproxy.linkmodel.adaptation import (
     ReportsStale,
     SourceProfile,
 )
-from fecproxy.linkmodel.estimator import LossEstimator
+from fecproxy.linkmodel.estimator import LossEstimate, LossEstimator
 from fecproxy.protocol.decoder import BlockDecoder
 from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
-from fecproxy.protocol.events import ControlReceived, Dropped
+from fecproxy.protocol.events import BlockReport, ControlReceived, Dropped
 from fecproxy.protocol.loss_report import KEY_CHECK_BODY, LossReport, encode_report, parse_report
 from fecproxy.protocol.wire import PacketError
-from fecproxy.shell.logs import log_event
 
 #: Source positions behind the loss and burst estimate a report carries: about one report
 #: interval of a 1000 datagram/s flow, so the estimate follows a fade within an interval or two;
@@ -49,6 +49,22 @@ REPORT_ESTIMATE_WINDOW = 1000
 #: (sent by a run of the peer before it restarted, or forged); the others are the controller's
 #: (adaptation.IGNORE_REASONS).
 OTHER_SESSION = "other_session"
+#: Source packets the link-loss estimate (the metrics' and the status page's) looks back over:
+#: long enough to see several bursts at a few percent loss, short enough to follow a changing
+#: link within seconds at telemetry rates (common practice, no source).
+LOSS_ESTIMATE_WINDOW = 10_000
+
+
+@dataclass(frozen=True, slots=True)
+class ReportDue:
+    """A loss report to send to the peer now: ``packet`` is the whole control packet."""
+
+    packet: bytes
+    report: LossReport
+
+
+#: What Feedback returns: a report to send, the controller's events, a control body refused.
+FeedbackEvent = ReportDue | Decision | ReportsStale | ReportsResumed | Dropped
 
 
 @dataclass
@@ -58,12 +74,13 @@ class ReportStats:
     sent: int = 0
     received: int = 0  # well-formed reports on our encoder's session
     ignored: dict[str, int] = field(default_factory=dict)  # by reason, OTHER_SESSION + the controller's
+    dropped: dict[str, int] = field(default_factory=dict)  # control bodies that failed parsing, by reason
 
 
 class LossReporter:
     """The reporting side of the direction this daemon decodes."""
 
-    def __init__(self, interval_ms: int, now: float):
+    def __init__(self, interval_ms: int, now: float) -> None:
         self.interval_ms = interval_ms
         self._interval = interval_ms / 1000
         self.epoch = secrets.randbits(32)  # a restart of ours is a new baseline for the peer
@@ -103,30 +120,11 @@ class LossReporter:
         )
 
 
-def adapt_policy(config: Config) -> AdaptPolicy | None:
-    """The controller's policy from ``fec`` and ``fec.adapt``; None when m is fixed."""
-    fec, adapt = config.fec, config.fec.adapt
-    if adapt is None or not config.reports.enabled:
-        return None
-    return AdaptPolicy(
-        block_size=fec.block_size,
-        target_residual=adapt.target_residual,
-        min_repair=min(adapt.min_repair, adapt.repair_ceiling(fec.block_size)),
-        max_repair=adapt.repair_ceiling(fec.block_size),
-        max_overhead=adapt.max_overhead,
-        report_interval=config.reports.interval_ms / 1000,
-        allow_repair_above_source=fec.allow_repair_above_source,
-        short_block_repair=str(fec.short_block_repair),
-        flush_interval=fec.flush_seconds,
-        depths=(fec.interleave,),  # the sender's configured D: m is chosen for the layout it sends
-    )
-
-
 class Adapter:
     """The adapting side of the direction this daemon encodes: the peer's reports in, the m the
     encoder should use out (``repair``), with the controller's events for the log and metrics."""
 
-    def __init__(self, policy: AdaptPolicy, initial_repair: int, now: float, encoder: BlockEncoder):
+    def __init__(self, policy: AdaptPolicy, initial_repair: int, now: float, encoder: BlockEncoder) -> None:
         self.controller = RedundancyController(policy, initial_repair, now)
         self._encoder = encoder
         self._mark = (now, encoder.stats.source_packets, encoder.stats.datagram_bytes)
@@ -176,16 +174,17 @@ class Adapter:
 
 
 class Feedback:
-    """Everything about loss reports one daemon does, for the shell to wire in a few lines:
-    the reporter of the direction it decodes, the adapter of the one it encodes, their counts,
-    deadlines and log lines.  Encoder settings changes go through ``encoder.update`` (from the
-    next block on)."""
+    """Everything about loss reports one daemon does: the reporter of the direction it decodes,
+    the adapter of the one it encodes, the link-loss estimates, their counts and deadlines.
+    Encoder settings changes go through ``encoder.update`` (from the next block on)."""
 
-    def __init__(self, encoder: BlockEncoder, decoder: BlockDecoder, log: logging.Logger):
-        self.encoder, self.decoder, self.log = encoder, decoder, log
+    def __init__(self, encoder: BlockEncoder, decoder: BlockDecoder) -> None:
+        self.encoder, self.decoder = encoder, decoder
         self.stats = ReportStats()
         self.reporter: LossReporter | None = None
         self.adapter: Adapter | None = None  # from the first datagram we send on (see _adapter)
+        #: The link as the decoder's blocks show it, over LOSS_ESTIMATE_WINDOW source packets.
+        self.estimator = LossEstimator(window=LOSS_ESTIMATE_WINDOW)
         self._policy: AdaptPolicy | None = None
         self._initial_repair = encoder.settings.repair
         self._base: EncoderSettings = encoder.settings
@@ -194,15 +193,17 @@ class Feedback:
 
     # -- configuration ---------------------------------------------------------------------------
 
-    def configure(self, config: Config, base: EncoderSettings, now: float) -> None:
-        """Apply ``config`` (at start and on a reload): a changed interval starts a new reporter,
+    def configure(
+        self, policy: AdaptPolicy | None, report_interval_ms: int | None, base: EncoderSettings, now: float
+    ) -> None:
+        """Apply a config (at start and on a reload): reports every ``report_interval_ms`` (None:
+        off), adaptation by ``policy`` (None: m fixed).  A changed interval starts a new reporter,
         a changed policy a new controller from the m in use; then the encoder gets ``base`` with
         the adapted m."""
-        if not config.reports.enabled:
+        if report_interval_ms is None:
             self.reporter = None
-        elif self.reporter is None or self.reporter.interval_ms != config.reports.interval_ms:
-            self.reporter = LossReporter(config.reports.interval_ms, now)
-        policy = adapt_policy(config)
+        elif self.reporter is None or self.reporter.interval_ms != report_interval_ms:
+            self.reporter = LossReporter(report_interval_ms, now)
         old = self.adapter
         if old is not None and policy != old.controller.policy:
             for key, count in old.controller.stats.decisions.items():
@@ -236,43 +237,48 @@ class Feedback:
 
     # -- timers ----------------------------------------------------------------------------------
 
-    def deadlines(self) -> list[float]:
-        out = []
+    def next_deadline(self) -> float | None:
+        deadlines = []
         if self.reporter is not None:
-            out.append(self.reporter.next_deadline())
+            deadlines.append(self.reporter.next_deadline())
         if self.adapter is not None:
             deadline = self.adapter.next_deadline()
             if deadline is not None:
-                out.append(deadline)
-        return out
+                deadlines.append(deadline)
+        return min(deadlines) if deadlines else None
 
-    def on_timer(self, now: float) -> list[bytes]:
-        """Packets to send to the peer now (a due report); the adapter's stale check."""
+    def on_timer(self, now: float) -> list[FeedbackEvent]:
+        """The adapter's stale check, then a report if one is due (ReportDue: send its packet)."""
+        events: list[FeedbackEvent] = []
         adapter = self._adapter(now)
         if adapter is not None:
-            self._apply(adapter.on_timer(now))
-        if self.reporter is None:
-            return []
-        report = self.reporter.on_timer(now, self.decoder)
-        if report is None:
-            return []
-        self.stats.sent += 1
-        return [self.encoder.control(encode_report(report))]
-
-    # -- reports from the peer -------------------------------------------------------------------
-
-    def observe_block(self, arrived_mask: int, span: int) -> None:
+            events += self._applied(adapter.on_timer(now))
         if self.reporter is not None:
-            self.reporter.estimator.observe_block(arrived_mask, span)
+            report = self.reporter.on_timer(now, self.decoder)
+            if report is not None:
+                self.stats.sent += 1
+                events.append(ReportDue(self.encoder.control(encode_report(report)), report))
+        return events
 
-    def on_control(self, event: ControlReceived, now: float) -> Dropped | None:
-        """A control packet from the peer; a body that fails parsing is returned as a drop."""
+    # -- what the decoder tells ------------------------------------------------------------------
+
+    def on_block(self, report: BlockReport) -> None:
+        """A finished block of the direction we decode: one segment of the loss estimates (one
+        per block: repair positions sit between blocks on the link, so chaining blocks would bias
+        the burst estimate, see linkmodel.estimator.LossEstimator)."""
+        self.estimator.observe_block(report.arrived_mask, report.span)
+        if self.reporter is not None:
+            self.reporter.estimator.observe_block(report.arrived_mask, report.span)
+
+    def on_control(self, event: ControlReceived, now: float) -> list[FeedbackEvent]:
+        """A control packet from the peer: a loss report for the adaptation, or a key check."""
         if event.body == KEY_CHECK_BODY:
-            return None  # the peer's key check verified: our keys agree (see loss_report)
+            return []  # the peer's key check verified: our keys agree (see loss_report)
         try:
             report = parse_report(event.body)
         except PacketError as error:
-            return Dropped(error.reason, str(error))
+            self.stats.dropped[error.reason] = self.stats.dropped.get(error.reason, 0) + 1
+            return [Dropped(error.reason, str(error))]
         followed = self.decoder.session
         if followed is not None and event.session != followed:
             # From a run of the peer we no longer decode (sent before it restarted), or forged.
@@ -280,45 +286,18 @@ class Feedback:
             # controller, which takes counter differences from the first report it accepts, and
             # the link the report describes is the same link.
             self.stats.ignored[OTHER_SESSION] = self.stats.ignored.get(OTHER_SESSION, 0) + 1
-            return None
+            return []
         self.stats.received += 1
         adapter = self._adapter(now)
-        if adapter is not None:
-            self._apply(adapter.on_report(report, now))
-        return None
+        if adapter is None:
+            return []
+        return self._applied(adapter.on_report(report, now))
 
-    def _apply(self, events: list[Event]) -> None:
-        log = self.log
-        for event in events:
-            if isinstance(event, Decision):
-                self.encoder.update(self._settings())
-                link, choice = event.link, event.choice
-                log_event(
-                    log,
-                    logging.INFO,
-                    "adapted",
-                    direction=event.direction,
-                    reason=event.reason,
-                    m_from=event.previous.repair,
-                    m=choice.repair,
-                    depth=choice.depth,
-                    k_effective=choice.k_effective,
-                    loss=f"{link.loss:.4f}",
-                    burst=f"{link.mean_burst:.2f}",
-                    basis=link.basis,
-                    samples=link.samples,
-                    predicted_residual=f"{choice.residual_loss:.2e}",
-                )
-            elif isinstance(event, ReportsStale):
-                log_event(
-                    log,
-                    logging.WARNING,
-                    "loss_reports_stale",
-                    holding_m=self.adapter.repair,
-                    detail="no loss report from the peer for 5 intervals (return path down?): m is held",
-                )
-            elif isinstance(event, ReportsResumed):
-                log_event(log, logging.INFO, "loss_reports_resumed", m=self.adapter.repair)
+    def _applied(self, events: list[Event]) -> list[FeedbackEvent]:
+        """The controller's events, a new m already applied to the encoder."""
+        if any(isinstance(event, Decision) for event in events):
+            self.encoder.update(self._settings())
+        return list(events)
 
     # -- what the metrics read -------------------------------------------------------------------
 
@@ -328,12 +307,20 @@ class Feedback:
         return self._policy is not None
 
     @property
+    def repair(self) -> int:
+        """m of the blocks being sent now."""
+        return self.encoder.settings.repair
+
+    @property
     def depth(self) -> int:
         return self.adapter.depth if self.adapter is not None else self.encoder.settings.interleave
 
     @property
     def stale(self) -> bool:
         return self.adapter is not None and self.adapter.stale
+
+    def loss_estimate(self) -> LossEstimate:
+        return self.estimator.estimate()
 
     def decisions(self) -> dict[tuple[str, str], int]:
         """Decisions by (direction, reason), this run's controllers summed."""

@@ -1,0 +1,149 @@
+"""`fecproxy check SENDER.yaml RECEIVER.yaml`: the two sides checked against each other, and the
+single-side warnings (README "Caution", "Link security")."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+from support.processes import run_to_exit
+
+from fecproxy import cli
+from fecproxy.commands.check import EXIT_INVALID, EXIT_VALID
+from fecproxy.commands.keygen import write_key_file
+
+ROOT = Path(__file__).resolve().parents[1]
+SHIPPED_PAIRS = [("sender.yaml", "receiver.yaml"), ("trial-sender.yaml", "trial-receiver.yaml")]
+
+SENDER = """\
+role: sender
+listen: 127.0.0.1:5000
+link: {{bind: 127.0.0.1:7001, peer: 127.0.0.1:7000}}
+fec: {{block_size: 16, repair: 4, flush_ms: 40, max_datagram_bytes: {mtu}}}
+decoder: {{hold_ms: 500}}
+flows: {{max: 64}}
+{auth}
+"""
+RECEIVER = """\
+role: receiver
+forward: 127.0.0.1:6000
+link: {{bind: 127.0.0.1:7000, peer: 127.0.0.1:7001}}
+fec: {{block_size: 8, repair: 2, flush_ms: {flush}, max_datagram_bytes: 1400}}
+decoder: {{hold_ms: {hold}}}
+flows: {{max: {flows}}}
+{auth}
+"""
+
+
+def write_pair(tmp_path: Path, *, sender: dict, receiver: dict) -> tuple[str, str]:
+    s, r = tmp_path / "s.yaml", tmp_path / "r.yaml"
+    s.write_text(SENDER.format(**({"mtu": 1400, "auth": ""} | sender)))
+    r.write_text(RECEIVER.format(**({"flush": 20, "hold": 500, "flows": 64, "auth": ""} | receiver)))
+    return str(s), str(r)
+
+
+def run_check(capsys, *argv: str) -> tuple[int, list[str]]:
+    status = cli.main(["check", *argv])
+    return status, capsys.readouterr().err.splitlines()
+
+
+@pytest.mark.parametrize(("sender", "receiver"), SHIPPED_PAIRS)
+def test_shipped_pairs_agree(capsys, sender, receiver):
+    status, err = run_check(capsys, str(ROOT / "config" / sender), str(ROOT / "config" / receiver))
+    assert status == EXIT_VALID, err
+    assert all(": warning: " in line for line in err), err
+
+
+def test_a_matching_pair_passes_quietly(capsys, tmp_path):
+    status, err = run_check(capsys, *write_pair(tmp_path, sender={}, receiver={}))
+    assert (status, err) == (EXIT_VALID, [])
+
+
+def test_a_mismatched_pair_names_every_fault_once_with_side_and_key(capsys, tmp_path):
+    (tmp_path / "a.key").write_text("11" * 32 + "\n")
+    (tmp_path / "a.key").chmod(0o600)
+    (tmp_path / "b.key").write_text("22" * 32 + "\n")
+    (tmp_path / "b.key").chmod(0o600)
+    s, r = write_pair(
+        tmp_path,
+        sender={"mtu": 1200, "auth": "auth: {key_file: a.key}"},
+        # hold 30 ms < sender flush 40 ms; the receiver's own flush 600 ms > the sender's hold 500 ms.
+        receiver={"flush": 600, "hold": 30, "flows": 16, "auth": "auth: {key_file: b.key}"},
+    )
+    status, err = run_check(capsys, s, r)
+    assert status == EXIT_INVALID
+    *faults, summary = err
+    assert summary == f"{s} + {r}: mismatched pair (6 errors)"
+    expected = [
+        f"{r}: fec.max_datagram_bytes: 1400, but {s} has 1200",
+        f"{r}: auth.key_file: accepts fingerprint ",  # the sender's key is not among the receiver's
+        f"{s}: auth.key_file: accepts fingerprint ",  # and the other way round
+        f"{r}: decoder.hold_ms: 30 is below {s}'s fec.flush_ms 40",
+        f"{s}: decoder.hold_ms: 500 is below {r}'s fec.flush_ms 600",
+        f"{r}: flows.max: 16 is below {s}'s flows.max 64",
+    ]
+    assert len(faults) == len(expected), faults
+    for line, start in zip(faults, expected, strict=True):
+        assert line.startswith(start), (line, start)
+
+
+def test_keys_on_one_side_only_and_encrypt_mismatch(capsys, tmp_path):
+    write_key_file(str(tmp_path / "link.key"), bytes(range(32)))
+    s, r = write_pair(tmp_path, sender={"auth": "auth: {key_file: link.key}"}, receiver={})
+    status, err = run_check(capsys, s, r)
+    assert status == EXIT_INVALID
+    assert err[0].startswith(f"{r}: auth.key_file: not set, but {s} has a key")
+
+
+def test_same_key_file_passes_and_check_shows_the_fingerprint(capsys, tmp_path):
+    write_key_file(str(tmp_path / "link.key"), bytes(range(32)))
+    auth = "auth: {key_file: link.key}"
+    s, r = write_pair(tmp_path, sender={"auth": auth}, receiver={"auth": auth})
+    status = cli.main(["check", s, r])
+    out = capsys.readouterr().out
+    assert status == EXIT_VALID
+    from fecproxy.protocol.keys import MasterKey
+
+    fingerprint = MasterKey(bytes(range(32))).fingerprint
+    assert len(fingerprint) == 16 and out.count(f"fingerprint {fingerprint}") == 2
+
+
+def test_delay_spread_is_added_to_the_flush_time(capsys, tmp_path):
+    s, r = write_pair(tmp_path, sender={}, receiver={"hold": 100})
+    assert run_check(capsys, s, r)[0] == EXIT_VALID
+    status, err = run_check(capsys, "--delay-spread-ms", "80", s, r)
+    assert status == EXIT_INVALID
+    assert err[0] == (
+        f"{r}: decoder.hold_ms: 100 is below {s}'s fec.flush_ms 40 + the stated delay spread 80 ms = 120 ms; "
+        f"expected hold_ms ≥ 120 (a block would expire before its repair packets arrive)"
+    )
+
+
+def test_sides_in_the_wrong_order(capsys, tmp_path):
+    s, r = write_pair(tmp_path, sender={}, receiver={})
+    status, err = run_check(capsys, r, s)
+    assert status == EXIT_INVALID
+    assert err[:2] == [
+        f"{r}: role: receiver; expected sender (give the sender's file first)",
+        f"{s}: role: sender; expected receiver (give the sender's file first)",
+    ]
+
+
+def test_warnings_for_an_open_link_without_key_and_wildcard_metrics(capsys, tmp_path):
+    path = tmp_path / "r.yaml"
+    path.write_text(
+        "role: receiver\nforward: 127.0.0.1:6000\nlink: {bind: 0.0.0.0:7000}\nmetrics: {listen: '[::]:11465'}\n"
+    )
+    status, err = run_check(capsys, "--quiet", str(path))
+    assert status == EXIT_VALID
+    assert [line.split(": warning: ")[0] for line in err] == [
+        f"{path}: link.bind",
+        f"{path}: link.peer",
+        f"{path}: metrics.listen",
+    ]
+
+
+def test_pair_check_as_a_process():
+    result = run_to_exit("check", "config/trial-sender.yaml", "config/trial-receiver.yaml", timeout=60, cwd=ROOT)
+    assert result.returncode == 0, result.stderr
+    assert "the pair agrees" in result.stdout
