@@ -621,6 +621,7 @@ def test_effective_has_every_key_in_yaml_nesting():
         "link",
         "fec",
         "decoder",
+        "delivery",
         "flows",
         "sockets",
         "log",
@@ -628,6 +629,7 @@ def test_effective_has_every_key_in_yaml_nesting():
         "reports",
         "auth",
     ]
+    assert effective["delivery"] == {"order": "as_available", "max_wait_ms": 200}
     assert effective["fec"] == {
         "block_size": 16,
         "repair": 4,
@@ -905,3 +907,12 @@ def test_interleave_and_size_classes():
 def test_first_exchange_default_follows_a_shorter_idle_timeout():
     config = parse_config(edited(SENDER, flows__idle_timeout_s=10))
     assert (config.flows.idle_timeout_s, config.flows.first_exchange_timeout_s) == (10, 10)
+
+
+def test_delivery_order_and_its_bound():
+    config = parse_config(edited(RECEIVER, delivery__order="in_order", delivery__max_wait_ms=150))
+    assert config.delivery.in_order and config.delivery.max_wait_seconds == 0.15
+    assert "is not a valid delivery order" in errors_of(edited(RECEIVER, delivery__order="sorted"))[0]
+    # Waiting longer than the decoder keeps a block open cannot bring a gap back.
+    (error,) = errors_of(edited(RECEIVER, delivery__max_wait_ms=600, decoder__hold_ms=500))
+    assert "delivery.max_wait_ms: 600 is above decoder.hold_ms 500" in error

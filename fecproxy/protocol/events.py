@@ -47,6 +47,7 @@ class DropReason(StrEnum):
     SESSION_LIMIT = "session_limit"  # a new sender session while every session slot is live
     MEMORY_LIMIT = "memory_limit"  # the decoder's byte budget is full of its own block
     DECODE_LIMIT = "decode_limit"  # a rebuild waits: decoder.max_rebuilds_per_s reached
+    ORDER_LATE = "order_late"  # in-order delivery had already skipped its place (delivery.max_wait_ms)
 
 
 class BlockOutcome(StrEnum):

@@ -31,7 +31,7 @@ from collections import OrderedDict
 from dataclasses import dataclass, field
 from enum import StrEnum
 
-from fecproxy.protocol.events import Delivery
+from fecproxy.protocol.events import Delivery, DropReason
 from fecproxy.protocol.wire import SEQUENCE_MODULUS
 
 #: How long a datagram after a gap may wait for the gap to be rebuilt.  A gap is rebuilt when its
@@ -143,6 +143,11 @@ class OrderStats:
     @property
     def gaps_skipped(self) -> int:
         return sum(self.skipped.values())
+
+    @property
+    def dropped(self) -> dict[str, int]:
+        """The datagrams this stage dropped, by drop reason (the daemon's drop counters)."""
+        return {DropReason.ORDER_LATE: self.late, DropReason.DUPLICATE: self.duplicates}
 
 
 class _Flow:
