@@ -76,6 +76,7 @@ def test_output_fills_in_defaults(capsys, tmp_path):
         "link",
         "fec",
         "decoder",
+        "delivery",
         "flows",
         "sockets",
         "log",

@@ -526,7 +526,7 @@ def _order_wait_line(channel: GilbertElliott, k_effective: int, rate: float, spa
     return (
         f"in-order delivery (delivery.order: in_order) adds: {wait.waiting_share:.1%} of datagrams wait behind a gap, "
         f"mean {wait.mean_seconds * 1000:.2f} ms, at most {wait.worst_seconds * 1000:.1f} ms while the gap is rebuilt "
-        f"(set delivery.max_wait_ms above that plus the link's delay spread)"
+        f"(set delivery.max_wait_ms above that plus the delay spread of the link)"
     )
 
 

@@ -502,7 +502,9 @@ _SECTIONS: dict[str, tuple[type, dict[str, Callable]]] = {
         {
             "order": Choice(DeliveryOrder, "delivery order"),
             "max_wait_ms": Integer(
-                1, MAX_MAX_WAIT_MS, f"an integer number of milliseconds 1..{MAX_MAX_WAIT_MS}, ≤ decoder.hold_ms"
+                1,
+                MAX_MAX_WAIT_MS,
+                f"an integer number of milliseconds 1..{MAX_MAX_WAIT_MS} (in order: ≤ decoder.hold_ms)",
             ),
         },
     ),
@@ -741,7 +743,8 @@ class _Parser:
 
     def check_delivery(self) -> None:
         wait, hold = self.values.get("delivery.max_wait_ms"), self.values.get("decoder.hold_ms")
-        if wait is not None and hold is not None and wait > hold:
+        in_order = self.values.get("delivery.order") is DeliveryOrder.IN_ORDER  # the bound is unused otherwise
+        if in_order and wait is not None and hold is not None and wait > hold:
             self.error(
                 "delivery.max_wait_ms",
                 f"{wait} is above decoder.hold_ms {hold}; expected max_wait_ms ≤ hold_ms (a gap cannot be "
