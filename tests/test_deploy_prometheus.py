@@ -284,7 +284,7 @@ def test_dashboard_rules_and_alerts_return_data_from_a_real_pair(tmp_path):
             receiver_fec=fec,
         )
         ports = {
-            name: {"sender": int(p.sender.started["metrics"]), "receiver": int(p.receiver.started["metrics"])}
+            name: {"sender": p.sender.metrics_port, "receiver": p.receiver.metrics_port}
             for name, p in ((FIRST_PAIR, pair), (SECOND_PAIR, second))
         }
         prometheus = Prometheus(binary, scrape_config_for(ports, tmp_path), tmp_path)
@@ -360,7 +360,10 @@ def test_dashboard_rules_and_alerts_return_data_from_a_real_pair(tmp_path):
         # with every daemon chosen (the "All" value) and with the receiver alone.
         assert dashboard["schemaVersion"] >= 1
         for name in (FIRST_PAIR, SECOND_PAIR):
-            for instances in (variables["instance"]["allValue"], re.escape(f"{LOOPBACK}:{ports[name]['receiver']}").replace("\\", "\\\\")):
+            for instances in (
+                variables["instance"]["allValue"],
+                re.escape(f"{LOOPBACK}:{ports[name]['receiver']}").replace("\\", "\\\\"),
+            ):
                 for panel in dashboard["panels"]:
                     for target in panel["targets"]:
                         expr = dashboard_query(target["expr"], name, instances)

@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import dataclasses
 import importlib.util
+import math
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field
 from enum import StrEnum
@@ -25,6 +26,7 @@ from fecproxy.config.checkers import (
     AddressField,
     Bad,
     BadKeys,
+    BitRate,
     Boolean,
     Choice,
     FilePath,
@@ -36,6 +38,7 @@ from fecproxy.config.checkers import (
 from fecproxy.config.messages import closest, key_text, kind_of, or_list, show_value
 from fecproxy.protocol import decoder as _decoder
 from fecproxy.protocol import encoder as _encoder
+from fecproxy.protocol import pacer as _pacer
 from fecproxy.protocol import wire
 from fecproxy.protocol.flows import FLOW_SLOTS
 from fecproxy.protocol.keys import MasterKey
@@ -153,6 +156,21 @@ DEFAULT_REPORT_INTERVAL_MS = 1000
 MAX_REPORT_INTERVAL_MS = 60_000
 
 
+#: link.queue_ms: one second of air time.  It holds a 60 kB burst at 512 kbit/s; narrower links
+#: need more (the trial configs set it), and more also means longer waits behind a burst.  CoDel's
+#: 100 ms interval (RFC 8289 §4.2) is sized for the Internet, not a radio.  Common practice, no source.
+DEFAULT_LINK_QUEUE_MS = 1000
+#: A minute of air time is a store-and-forward buffer, not a queue.
+MAX_LINK_QUEUE_MS = 60_000
+#: link.mtu: Ethernet's 1500 bytes (RFC 894).  Bounds: IPv4's 576-byte minimum datagram every host
+#: must accept (RFC 791 §3.1) and the largest IPv4 total length.
+DEFAULT_LINK_MTU = 1500
+MIN_LINK_MTU = 576
+MAX_LINK_MTU = 65_535
+#: link.rate bounds: the pacer's floor (no IP radio below 1200 bit/s, from memory) to 10 Gbit/s.
+MIN_LINK_RATE_BPS = _pacer.MIN_RATE_BPS
+MAX_LINK_RATE_BPS = 10e9
+
 # --------------------------------------------------------------------------------------------
 # Typed values
 # --------------------------------------------------------------------------------------------
@@ -196,6 +214,13 @@ class ConfigUnreadable(ConfigError):
 class LinkSection:
     bind: Address  # local address of the link side (port 0 = any free port)
     peer: Address | None = None  # the other proxy; None on a receiver = learned from traffic
+    rate: float | None = None  # air rate in bit/s (IP/UDP headers counted); None = no pacing
+    queue_ms: int = DEFAULT_LINK_QUEUE_MS  # air time the pacer may hold
+    mtu: int = DEFAULT_LINK_MTU  # path MTU the operator declares (fecproxy check compares packets with it)
+
+    @property
+    def paced(self) -> bool:
+        return self.rate is not None
 
 
 @dataclass(frozen=True)
@@ -430,7 +455,16 @@ _TOP_SCALARS: dict[str, Callable] = {
 }
 
 _SECTIONS: dict[str, tuple[type, dict[str, Callable]]] = {
-    "link": (LinkSection, {"bind": _ADDRESS_TO_BIND, "peer": _DESTINATION}),
+    "link": (
+        LinkSection,
+        {
+            "bind": _ADDRESS_TO_BIND,
+            "peer": _DESTINATION,
+            "rate": BitRate(MIN_LINK_RATE_BPS, MAX_LINK_RATE_BPS),
+            "queue_ms": Integer(1, MAX_LINK_QUEUE_MS, f"an integer number of milliseconds 1..{MAX_LINK_QUEUE_MS}"),
+            "mtu": Integer(MIN_LINK_MTU, MAX_LINK_MTU, f"an integer number of bytes {MIN_LINK_MTU}..{MAX_LINK_MTU}"),
+        },
+    ),
     "fec": (
         FecSection,
         {
@@ -523,6 +557,7 @@ _OPTIONAL = {
     "listen",
     "forward",
     "link.peer",
+    "link.rate",
     "metrics.listen",
     "fec.adapt",
     "auth.key_file",
@@ -609,6 +644,7 @@ class _Parser:
         self.check_role()
         self.check_fec()
         self.check_addresses()
+        self.check_link()
         self.check_auth()
         self.check_flow_timeouts(first_exchange_given)
         if self.errors:
@@ -756,6 +792,19 @@ class _Parser:
                     f"{show_value(str(destination))} is this proxy's own link.bind {show_value(str(bind))}; "
                     f"expected {_PURPOSE[path]}, which must differ from link.bind",
                 )
+
+    def check_link(self) -> None:
+        """The pacer's queue must hold at least one full-size packet at the rate."""
+        rate, queue_ms, mtu = (self.values.get(f"link.{key}") for key in ("rate", "queue_ms", "mtu"))
+        if rate is None or queue_ms is None or mtu is None:
+            return
+        needed = math.ceil(mtu * 8 / rate * 1000)
+        if queue_ms < needed:
+            self.error(
+                "link.queue_ms",
+                f"{queue_ms} holds less than one {mtu}-byte packet (link.mtu) at link.rate {rate:g} bit/s; "
+                f"expected at least {needed}",
+            )
 
     def check_auth(self) -> None:
         key_file = self.values.get("auth.key_file")
