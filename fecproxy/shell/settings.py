@@ -53,6 +53,7 @@ def adapt_policy(config: Config) -> AdaptPolicy | None:
         short_block_repair=str(fec.short_block_repair),
         flush_interval=fec.flush_seconds,
         depths=(fec.interleave,),  # the sender's configured D: m is chosen for the layout it sends
+        air_rate_bps=config.link.rate,  # the headroom the source leaves bounds the repair
     )
 
 
