@@ -137,7 +137,7 @@ def test_no_loss_block_completes_on_end_flag_and_repair_is_not_a_drop():
 def test_reordering_and_duplication():
     datagrams, packets = make_block(6, 3, seed=3)
     rng = random.Random(1)
-    for trial in range(50):
+    for _trial in range(50):
         lost = set(rng.sample(range(9), 3))
         kept = [p for i, p in enumerate(packets) if i not in lost]
         shuffled = kept + rng.sample(kept, 3)  # duplicates
@@ -203,7 +203,7 @@ def test_open_blocks_are_bounded_oldest_evicted_first():
     events = []
     for sbn in range(5):
         out = []
-        for i in range(4):
+        for _ in range(4):
             out += enc.send(b"x", 0, now=sbn)
         events += feed(dec, out[1:2], now=sbn)  # one source packet per block: never completes
     evicted = [r.sbn for r in reports(events)]
@@ -242,7 +242,7 @@ def test_packets_contradicting_the_block_are_dropped_not_trusted():
 
 def test_malformed_packets_are_counted_by_reason():
     dec = BlockDecoder()
-    events = feed(dec, [b"", b"\x30" + bytes(13), wire.encode_source(1, 0, 0, 0, bytes(2000))])
+    events = feed(dec, [b"", bytes([(wire.VERSION + 1) << 4]) + bytes(15), wire.encode_source(1, 0, 0, 0, bytes(2000))])
     assert [e.reason for e in events] == ["malformed", "unsupported", "oversize"]
     assert dec.stats.dropped == {"malformed": 1, "unsupported": 1, "oversize": 1}
 
@@ -272,7 +272,7 @@ def test_random_loss_never_corrupts_and_delivers_each_datagram_at_most_once(k, m
     dec = BlockDecoder(DecoderSettings(max_datagram=64))
     sent = []
     link = []
-    for i in range(k * blocks):
+    for _ in range(k * blocks):
         data = rng.randbytes(rng.randint(0, 64))
         flow = rng.randint(0, 3)
         sent.append((flow, data))
@@ -354,8 +354,9 @@ def test_a_duplicated_packet_of_a_new_session_is_delivered_once():
 def test_repair_packets_carry_rfc_symbols_of_the_rfc6363_framing():
     # Outside check: the repair payloads equal what galois computes for RFC 5510 §8.2
     # (GM = V_k^-1 · V over GF(2^8) on 0x11D, alpha = 2, §8.1) applied to the source symbols
-    # framed as RFC 6363 §4 / RFC 6865 §4 say, with our flow id widened to 3 bytes (wire version 2):
-    # flow id (3: slot ‖ generation) ‖ length (2, big-endian) ‖ data ‖ zeros.
+    # framed as RFC 6363 §4 / RFC 6865 §4 say, with our flow id widened to 3 bytes and our flow
+    # sequence number after the length (wire version 3):
+    # flow id (3: slot ‖ generation) ‖ length (2, big-endian) ‖ sequence (2) ‖ data ‖ zeros.
     import galois
     import numpy as np
 
@@ -367,10 +368,10 @@ def test_repair_packets_carry_rfc_symbols_of_the_rfc6363_framing():
     for flow, data in flows_and_data:
         link += enc.send(data, flow, now=0.0)
     repairs = [wire.parse(p, max_datagram=1400) for p in link[k:]]
-    length = 5 + max(len(d) for _, d in flows_and_data)
+    length = 7 + max(len(d) for _, d in flows_and_data)
     symbols = np.zeros((k, length), dtype=np.uint8)
-    for row, (flow, data) in enumerate(flows_and_data):
-        framed = flow.to_bytes(3, "big") + len(data).to_bytes(2, "big") + data
+    for row, ((flow, data), seq) in enumerate(zip(flows_and_data, (0, 0, 1), strict=True)):
+        framed = flow.to_bytes(3, "big") + len(data).to_bytes(2, "big") + seq.to_bytes(2, "big") + data
         symbols[row, : len(framed)] = np.frombuffer(framed, dtype=np.uint8)
     vandermonde = field.Vandermonde(field.primitive_element, k, k + m)
     generator = np.linalg.inv(vandermonde[:, :k]) @ vandermonde

@@ -25,6 +25,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from support.daemon_pair import metrics_port_of
 from support.processes import LOOPBACK, Child, fecproxy, run_json, scrape
 from support.receiver_view import invisible_share  # closed form, checked in test_receiver_loss_estimate.py
 
@@ -93,7 +94,7 @@ def run_link(
         children.append(receiver)
         started = json.loads(receiver.wait_for(r'"event": "started"').string)
         receiver_link = started["link"]
-        receiver_metrics = int(started["metrics"])
+        receiver_metrics = metrics_port_of(started)
 
         impair = Child(
             fecproxy(
@@ -131,7 +132,7 @@ def run_link(
         started = json.loads(sender.wait_for(r'"event": "started"').string)
         host, port = started["listen"].rsplit(":", 1)
         target = (host, int(port))
-        sender_metrics = int(started["metrics"])
+        sender_metrics = metrics_port_of(started)
 
         # Paced traffic: every 5 ms send what the schedule says is due (bounded in count and time).
         begin = time.monotonic()
@@ -225,8 +226,10 @@ def test_residual_loss_matches_the_plan(baseline, capsys):
     hidden = invisible_share(LINK, K, M)
     with capsys.disabled():
         print(
-            f"\n[link e2e] k={K} m={M} on {LINK_LOSS:.0%}/burst {LINK_BURST:g}: {sent} datagrams in {baseline['elapsed']:.1f} s; "
-            f"plan {predicted['residual_loss']:.4f} ± {sd:.4f} (1 sd); sink {at_sink:.4f}; receiver counter {counted:.4f} "
+            f"\n[link e2e] k={K} m={M} on {LINK_LOSS:.0%}/burst {LINK_BURST:g}: {sent} datagrams in "
+            f"{baseline['elapsed']:.1f} s; "
+            f"plan {predicted['residual_loss']:.4f} ± {sd:.4f} (1 sd); sink {at_sink:.4f}; receiver counter "
+            f"{counted:.4f} "
             f"(expected {predicted['residual_loss'] - hidden:.4f}: plan − invisible {hidden:.4f}); "
             f"relay measured loss {baseline['impair']['fecproxy_impair_loss_ratio{direction=forward}']:.4f} "
             f"burst {baseline['impair']['fecproxy_impair_mean_burst_packets{direction=forward}']:.3f}"
@@ -290,7 +293,8 @@ def test_recommendation_is_confirmed_by_the_pair(tmp_path, capsys):
         at_sink = 1 - result["received"] / sent
         with capsys.disabled():
             print(
-                f"\n[link e2e] recommended k={k} m={m} (overhead {best['overhead']:.3f}): plan {best['residual_loss']:.4f} "
+                f"\n[link e2e] recommended k={k} m={m} (overhead {best['overhead']:.3f}): plan "
+                f"{best['residual_loss']:.4f} "
                 f"± {sd:.4f}, sink {at_sink:.4f}, target {target}"
             )
         assert abs(at_sink - best["residual_loss"]) < Z * sd

@@ -8,6 +8,7 @@ from __future__ import annotations
 import ipaddress
 import re
 from dataclasses import dataclass
+from typing import Any
 
 from fecproxy.config.messages import clip, kind_of, show_value
 
@@ -114,9 +115,18 @@ def parse_address(text: str, *, allow_port_zero: bool = False, allow_unspecified
     return address
 
 
-def format_sockaddr(address) -> str:
+def format_sockaddr(address: tuple[Any, ...] | None) -> str:
     """A socket address tuple (IPv4 or IPv6) as ``host:port`` / ``[host]:port``; "-" for none."""
     if address is None:
         return "-"
     host, port = address[0], address[1]
     return f"[{host}]:{port}" if ":" in host else f"{host}:{port}"
+
+
+def metrics_url(text: str) -> str:
+    """A metrics endpoint as an operator types it: ``host:port`` (as in ``metrics.listen``),
+    ``http://host:port`` or a full URL; the default path is /metrics.  ``fecproxy watch`` and
+    ``fecproxy plan --from-metrics`` both take it so."""
+    url = text if "://" in text else f"http://{text}"
+    scheme, _, rest = url.partition("://")
+    return url if "/" in rest else f"{url}/metrics"

@@ -1,9 +1,10 @@
 """A daemon's core settings from its config, at start and on a SIGHUP reload.
 
 The cores can take new FEC, decoder and flow settings between blocks, so a reload applies those
-without dropping a flow (flow timeouts and the protected interval included).  What is bound to sockets or to the process's shape (role,
-addresses, metrics endpoint, socket buffers, logging, the flow table's size) cannot change under
-a running daemon: a reload reports such a change and keeps the running values until a restart.
+without dropping a flow (flow timeouts and the protected interval included).  What is bound to
+sockets or to the process's shape (role, addresses, metrics endpoint, socket buffers, logging,
+the flow table's size) cannot change under a running daemon: a reload reports such a change and
+keeps the running values until a restart.
 """
 
 from __future__ import annotations
@@ -20,9 +21,10 @@ from fecproxy.protocol.encoder import EncoderSettings
 from fecproxy.protocol.flows import ClientFlowTable, PeerFlowTable
 
 #: Config sections a reload cannot apply (they need new sockets or another role; logging is set
-#: up once by the command, whose --log-level/--log-format may override it): a change to one is
-#: reported, and the running value is kept.
-RESTART_KEYS = ("role", "listen", "forward", "link", "metrics", "sockets", "log")
+#: up once by the command, whose --log-level/--log-format may override it; the delivery order is
+#: kept, since switching it mid-stream would reorder what waits): a change to one is reported,
+#: and the running value is kept.
+RESTART_KEYS = ("role", "listen", "forward", "link", "metrics", "sockets", "log", "delivery")
 #: Single keys a reload cannot apply: the flow table is built at its size once.
 RESTART_FIELDS = ("flows.max",)
 
@@ -51,6 +53,7 @@ def adapt_policy(config: Config) -> AdaptPolicy | None:
         short_block_repair=str(fec.short_block_repair),
         flush_interval=fec.flush_seconds,
         depths=(fec.interleave,),  # the sender's configured D: m is chosen for the layout it sends
+        air_rate_bps=config.link.rate,  # the headroom the source leaves bounds the repair
     )
 
 

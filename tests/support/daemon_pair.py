@@ -26,6 +26,7 @@ import threading
 import time
 import urllib.request
 from collections import defaultdict
+from collections.abc import Callable
 from pathlib import Path
 
 import yaml
@@ -177,6 +178,11 @@ def wait_until(predicate, timeout: float, interval: float = 0.02) -> bool:
 _FIELD = re.compile(r'(\w+)=("(?:[^"\\]|\\.)*"|\S*)')
 
 
+def metrics_port_of(started: dict[str, str]) -> int:
+    """The port of a ``started`` line's ``metrics`` field (``http://HOST:PORT/metrics``)."""
+    return int(started["metrics"].split("://", 1)[-1].split("/", 1)[0].rsplit(":", 1)[1])
+
+
 def parse_log_line(line: str) -> dict[str, str]:
     return {key: json.loads(value) if value.startswith('"') else value for key, value in _FIELD.findall(line)}
 
@@ -199,6 +205,7 @@ class DaemonProcess:
         self.started: dict[str, str] = {}
 
     def _read(self) -> None:
+        assert self.proc.stderr is not None  # opened with stderr=PIPE
         for line in self.proc.stderr:
             self.lines.append(line.rstrip("\n"))
 
@@ -223,6 +230,10 @@ class DaemonProcess:
         return host, int(port)
 
     @property
+    def metrics_port(self) -> int:
+        return metrics_port_of(self.started)
+
+    @property
     def link_address(self) -> tuple[str, int]:
         return self._address(self.started["link"])
 
@@ -232,7 +243,7 @@ class DaemonProcess:
 
     def metrics(self) -> dict[tuple[str, tuple], float]:
         """Every sample on /metrics, keyed by (sample name, sorted label items)."""
-        url = f"http://{LOOPBACK}:{self.started['metrics']}/metrics"
+        url = f"http://{LOOPBACK}:{self.metrics_port}/metrics"
         with urllib.request.urlopen(url, timeout=5) as response:
             text = response.read().decode()
         samples = {}
@@ -261,7 +272,7 @@ class DaemonProcess:
         except subprocess.TimeoutExpired:
             self.proc.kill()
             self.proc.wait(timeout=5)
-            raise AssertionError(f"{self.config_path.name} did not exit within {timeout}s of SIGTERM")
+            raise AssertionError(f"{self.config_path.name} did not exit within {timeout}s of SIGTERM") from None
         finally:
             self._reader.join(timeout=2)
 
@@ -316,7 +327,7 @@ class Pair:
         sender_extra=None,
         receiver_extra=None,
     ):
-        self._closers = []
+        self._closers: list[Callable[[], int | None]] = []
         try:
             self.server = AppServer(echo=echo)
             self._closers.append(self.server.close)
@@ -346,7 +357,8 @@ class Pair:
 
     def close(self) -> list[int]:
         """Stop everything; returns the daemons' exit codes (sender first)."""
-        codes, errors = [], []
+        codes: list[int | None] = []
+        errors: list[Exception] = []
         for client in getattr(self, "clients", []):
             client.close()
         for daemon in (getattr(self, "sender", None), getattr(self, "receiver", None)):
