@@ -16,7 +16,7 @@ from __future__ import annotations
 
 import dataclasses
 import importlib.util
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field
 from enum import StrEnum
 
@@ -195,7 +195,7 @@ class LogFormat(StrEnum):
 class ConfigError(ValueError):
     """An invalid configuration; ``messages`` holds every fault found, one line each."""
 
-    def __init__(self, messages):
+    def __init__(self, messages: Iterable[str]) -> None:
         self.messages = tuple(messages)
         super().__init__("\n".join(self.messages))
 
