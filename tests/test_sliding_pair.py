@@ -46,7 +46,7 @@ def test_sliding_sender_shows_its_window_in_metrics_and_readme(pairs):
     assert metrics[("fecproxy_sliding_window_packets", ())] == 16
     assert metrics[("fecproxy_sliding_repair_interval_packets", ())] == 2
     info = [labels for (name, labels) in metrics if name == "fecproxy_info"]
-    assert ("code", "sliding") in info[0]
+    assert ("fec_code", "sliding") in info[0]
     readme = (Path(__file__).resolve().parent.parent / "README.md").read_text()
     for name in ("fecproxy_sliding_window_packets", "fecproxy_sliding_repair_interval_packets", "`fec.code`"):
         assert name in readme

@@ -240,7 +240,7 @@ class DaemonCollector:
             {
                 "version": __version__,
                 "role": d.role,
-                "code": "block" if sliding is None else "sliding",
+                "fec_code": "block" if sliding is None else "sliding",
                 "k": str(k),
                 "m": str(m),
                 "interleave": str(d.interleave),
