@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import dataclasses
 import importlib.util
+import math
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field
 from enum import StrEnum
@@ -25,6 +26,7 @@ from fecproxy.config.checkers import (
     AddressField,
     Bad,
     BadKeys,
+    BitRate,
     Boolean,
     Choice,
     FilePath,
@@ -36,6 +38,8 @@ from fecproxy.config.checkers import (
 from fecproxy.config.messages import closest, key_text, kind_of, or_list, show_value
 from fecproxy.protocol import decoder as _decoder
 from fecproxy.protocol import encoder as _encoder
+from fecproxy.protocol import ordering as _ordering
+from fecproxy.protocol import pacer as _pacer
 from fecproxy.protocol import sliding_encoder as _sliding
 from fecproxy.protocol import wire
 from fecproxy.protocol.flows import FLOW_SLOTS
@@ -94,6 +98,10 @@ MAX_DATAGRAM_BYTES_LIMIT = (
 DEFAULT_HOLD_MS = round(_decoder.DEFAULT_HOLD_TIME * 1000)
 #: An hour-long hold is never useful; a minute is already generous and bounds the memory held.
 MAX_HOLD_MS = 60_000
+
+#: In-order delivery owns its bound and its reason (fecproxy.protocol.ordering.DEFAULT_MAX_WAIT).
+DEFAULT_MAX_WAIT_MS = round(_ordering.DEFAULT_MAX_WAIT * 1000)
+MAX_MAX_WAIT_MS = round(_ordering.MAX_MAX_WAIT * 1000)
 
 #: The decoder owns the open-block bound and its reason (decoder.DEFAULT_MAX_OPEN_BLOCKS).
 DEFAULT_MAX_OPEN_BLOCKS = _decoder.DEFAULT_MAX_OPEN_BLOCKS
@@ -170,6 +178,21 @@ DEFAULT_REPORT_INTERVAL_MS = 1000
 MAX_REPORT_INTERVAL_MS = 60_000
 
 
+#: link.queue_ms: one second of air time.  It holds a 60 kB burst at 512 kbit/s; narrower links
+#: need more (the trial configs set it), and more also means longer waits behind a burst.  CoDel's
+#: 100 ms interval (RFC 8289 §4.2) is sized for the Internet, not a radio.  Common practice, no source.
+DEFAULT_LINK_QUEUE_MS = 1000
+#: A minute of air time is a store-and-forward buffer, not a queue.
+MAX_LINK_QUEUE_MS = 60_000
+#: link.mtu: Ethernet's 1500 bytes (RFC 894).  Bounds: IPv4's 576-byte minimum datagram every host
+#: must accept (RFC 791 §3.1) and the largest IPv4 total length.
+DEFAULT_LINK_MTU = 1500
+MIN_LINK_MTU = 576
+MAX_LINK_MTU = 65_535
+#: link.rate bounds: the pacer's floor (no IP radio below 1200 bit/s, from memory) to 10 Gbit/s.
+MIN_LINK_RATE_BPS = _pacer.MIN_RATE_BPS
+MAX_LINK_RATE_BPS = 10e9
+
 # --------------------------------------------------------------------------------------------
 # Typed values
 # --------------------------------------------------------------------------------------------
@@ -185,6 +208,11 @@ class LogLevel(StrEnum):
     INFO = "info"
     WARNING = "warning"
     ERROR = "error"
+
+
+class DeliveryOrder(StrEnum):
+    AS_AVAILABLE = "as_available"  # each datagram leaves the moment it arrives or is rebuilt
+    IN_ORDER = "in_order"  # each flow's datagrams leave in the order the sender took them
 
 
 class LogFormat(StrEnum):
@@ -213,6 +241,13 @@ class ConfigUnreadable(ConfigError):
 class LinkSection:
     bind: Address  # local address of the link side (port 0 = any free port)
     peer: Address | None = None  # the other proxy; None on a receiver = learned from traffic
+    rate: float | None = None  # air rate in bit/s (IP/UDP headers counted); None = no pacing
+    queue_ms: int = DEFAULT_LINK_QUEUE_MS  # air time the pacer may hold
+    mtu: int = DEFAULT_LINK_MTU  # path MTU the operator declares (fecproxy check compares packets with it)
+
+    @property
+    def paced(self) -> bool:
+        return self.rate is not None
 
 
 @dataclass(frozen=True)
@@ -275,6 +310,23 @@ class DecoderSection:
     @property
     def hold_seconds(self) -> float:
         return self.hold_ms / 1000
+
+
+@dataclass(frozen=True)
+class DeliverySection:
+    """What this daemon hands its applications: as available (the default: no added wait) or
+    each flow in order, a datagram after a gap waiting at most max_wait_ms for it."""
+
+    order: DeliveryOrder = DeliveryOrder.AS_AVAILABLE
+    max_wait_ms: int = DEFAULT_MAX_WAIT_MS
+
+    @property
+    def in_order(self) -> bool:
+        return self.order is DeliveryOrder.IN_ORDER
+
+    @property
+    def max_wait_seconds(self) -> float:
+        return self.max_wait_ms / 1000
 
 
 @dataclass(frozen=True)
@@ -346,6 +398,7 @@ class Config:
     forward: Address | None = None  # receiver: rebuilt datagrams are delivered here
     fec: FecSection = FecSection()
     decoder: DecoderSection = DecoderSection()
+    delivery: DeliverySection = DeliverySection()
     flows: FlowsSection = FlowsSection()
     sockets: SocketsSection = SocketsSection()
     log: LogSection = LogSection()
@@ -436,6 +489,7 @@ TOP_LEVEL_KEYS = (
     "link",
     "fec",
     "decoder",
+    "delivery",
     "flows",
     "sockets",
     "log",
@@ -451,7 +505,16 @@ _TOP_SCALARS: dict[str, Callable] = {
 }
 
 _SECTIONS: dict[str, tuple[type, dict[str, Callable]]] = {
-    "link": (LinkSection, {"bind": _ADDRESS_TO_BIND, "peer": _DESTINATION}),
+    "link": (
+        LinkSection,
+        {
+            "bind": _ADDRESS_TO_BIND,
+            "peer": _DESTINATION,
+            "rate": BitRate(MIN_LINK_RATE_BPS, MAX_LINK_RATE_BPS),
+            "queue_ms": Integer(1, MAX_LINK_QUEUE_MS, f"an integer number of milliseconds 1..{MAX_LINK_QUEUE_MS}"),
+            "mtu": Integer(MIN_LINK_MTU, MAX_LINK_MTU, f"an integer number of bytes {MIN_LINK_MTU}..{MAX_LINK_MTU}"),
+        },
+    ),
     "fec": (
         FecSection,
         {
@@ -492,6 +555,17 @@ _SECTIONS: dict[str, tuple[type, dict[str, Callable]]] = {
             "max_memory_bytes": Integer(MIN_MEMORY_BYTES, MAX_MEMORY_BYTES_LIMIT),
             "max_rebuilds_per_s": Integer(
                 1, MAX_REBUILDS_PER_S_LIMIT, f"an integer 1..{MAX_REBUILDS_PER_S_LIMIT}, or null for no cap"
+            ),
+        },
+    ),
+    "delivery": (
+        DeliverySection,
+        {
+            "order": Choice(DeliveryOrder, "delivery order"),
+            "max_wait_ms": Integer(
+                1,
+                MAX_MAX_WAIT_MS,
+                f"an integer number of milliseconds 1..{MAX_MAX_WAIT_MS} (in order: ≤ decoder.hold_ms)",
             ),
         },
     ),
@@ -550,6 +624,7 @@ _OPTIONAL = {
     "listen",
     "forward",
     "link.peer",
+    "link.rate",
     "metrics.listen",
     "fec.adapt",
     "auth.key_file",
@@ -636,7 +711,9 @@ class _Parser:
         self.fill_defaults()
         self.check_role()
         self.check_fec()
+        self.check_delivery()
         self.check_addresses()
+        self.check_link()
         self.check_auth()
         self.check_flow_timeouts(first_exchange_given)
         if self.errors:
@@ -757,6 +834,16 @@ class _Parser:
                 "as the window's longest datagram), or fec.code: block",
             )
 
+    def check_delivery(self) -> None:
+        wait, hold = self.values.get("delivery.max_wait_ms"), self.values.get("decoder.hold_ms")
+        in_order = self.values.get("delivery.order") is DeliveryOrder.IN_ORDER  # the bound is unused otherwise
+        if in_order and wait is not None and hold is not None and wait > hold:
+            self.error(
+                "delivery.max_wait_ms",
+                f"{wait} is above decoder.hold_ms {hold}; expected max_wait_ms ≤ hold_ms (a gap cannot be "
+                f"rebuilt once the decoder gives up its block, so waiting longer only delays what follows)",
+            )
+
     def check_adapt(self, k: int, allow) -> None:
         adapt = self.values.get("fec.adapt")
         if adapt is None:
@@ -813,6 +900,19 @@ class _Parser:
                     f"{show_value(str(destination))} is this proxy's own link.bind {show_value(str(bind))}; "
                     f"expected {_PURPOSE[path]}, which must differ from link.bind",
                 )
+
+    def check_link(self) -> None:
+        """The pacer's queue must hold at least one full-size packet at the rate."""
+        rate, queue_ms, mtu = (self.values.get(f"link.{key}") for key in ("rate", "queue_ms", "mtu"))
+        if rate is None or queue_ms is None or mtu is None:
+            return
+        needed = math.ceil(mtu * 8 / rate * 1000)
+        if queue_ms < needed:
+            self.error(
+                "link.queue_ms",
+                f"{queue_ms} holds less than one {mtu}-byte packet (link.mtu) at link.rate {rate:g} bit/s; "
+                f"expected at least {needed}",
+            )
 
     def check_auth(self) -> None:
         key_file = self.values.get("auth.key_file")

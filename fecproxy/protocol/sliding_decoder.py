@@ -271,7 +271,7 @@ class SlidingDecoder:
                 del stream.given_up[esi]
                 self.late_delivered += 1
                 self.stats.delivered += 1
-                events.append(Delivery(pkt.flow, pkt.data))
+                events.append(Delivery(pkt.flow, pkt.data, seq=pkt.seq))
                 return
             self._count(DropReason.STALE)
             events.append(Dropped(DropReason.STALE, f"source symbol {esi} is behind the decoding window"))
@@ -285,8 +285,8 @@ class SlidingDecoder:
             self._resolve(stream, esi, _ARRIVED)
         self._advance(stream, esi, now, seen=True)
         self.stats.delivered += 1
-        events.append(Delivery(pkt.flow, pkt.data))
-        adui = wire.pack_symbol_prefix(pkt.flow, len(pkt.data)) + pkt.data
+        events.append(Delivery(pkt.flow, pkt.data, seq=pkt.seq))
+        adui = wire.pack_symbol_prefix(pkt.flow, len(pkt.data), pkt.seq) + pkt.data
         self._deliver_solved(stream, system.add_known(esi, adui), now, events)
 
     def _repair(self, stream: _Stream, pkt: wire.SlidingRepairPacket, now: float, events: list[Event]) -> None:
@@ -380,7 +380,7 @@ class SlidingDecoder:
             if noticed is None:
                 continue  # not missing (given up meanwhile): nothing to deliver
             end = wire.SYMBOL_PREFIX_BYTES
-            flow, length = wire.unpack_symbol_prefix(symbol) if len(symbol) >= end else (0, -1)
+            flow, length, seq = wire.unpack_symbol_prefix(symbol) if len(symbol) >= end else (0, -1, 0)
             if not 0 <= length <= limit or end + length > len(symbol) or any(symbol[end + length :]):
                 self._count(DropReason.INCONSISTENT)
                 events.append(Dropped(DropReason.INCONSISTENT, f"rebuilt symbol {esi} fails its framing check"))
@@ -393,7 +393,7 @@ class SlidingDecoder:
             self.stats.recovered += 1
             self.stats.delivered += 1
             self._resolve(stream, esi, _RECOVERED)
-            events.append(Delivery(flow, symbol[end : end + length], recovered=True, delay=now - noticed))
+            events.append(Delivery(flow, symbol[end : end + length], recovered=True, delay=now - noticed, seq=seq))
 
     # --- segment reports ---------------------------------------------------------------------
 

@@ -8,9 +8,11 @@ prefix ``fecproxy_``, base units, counters end in ``_total``, labels only from s
 from __future__ import annotations
 
 import math
+import socket
 from collections.abc import Iterable, Mapping
 from typing import TYPE_CHECKING, Protocol
 
+import trio
 from prometheus_client import (
     CollectorRegistry,
     Histogram,
@@ -19,13 +21,15 @@ from prometheus_client import (
     disable_created_metrics,
     make_wsgi_app,
 )
-from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, InfoMetricFamily
+from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, HistogramMetricFamily, InfoMetricFamily
 
 from fecproxy import __version__
 from fecproxy.linkmodel.adaptation import DECISION_REASONS, DOWN, IGNORE_REASONS, UP
 from fecproxy.protocol.events import BlockOutcome, DropReason
-from fecproxy.shell.http_server import HttpServer, open_listener
-from fecproxy.shell.status import status_app
+from fecproxy.protocol.ordering import WAIT_BUCKETS, OrderStats, SkipReason
+from fecproxy.shell.history import History, keep_history
+from fecproxy.shell.http_server import HttpServer, WsgiApp, open_listener
+from fecproxy.shell.status import read_samples, status_app
 
 # prometheus-client adds a `<name>_created` series (the creation time) to every counter and
 # histogram it owns; Prometheus does not need them and they double the series an operator sees
@@ -91,6 +95,9 @@ class DaemonView(Protocol):
     @property
     def feedback(self) -> Feedback:
         """Loss reports sent and received, and the adaptation of the direction we send."""
+
+    # Optional (read with getattr): ``order_stats`` -> OrderStats | None, in-order delivery's
+    # counters (None when the daemon delivers as available).
 
 
 #: From 1 ms (a fast LAN hop) to 2 s (well past any hold time we would configure).
@@ -229,6 +236,7 @@ class DaemonCollector:
                 "fec.adapt chose it).",
                 value=sliding[1],
             )
+        yield from _order_metrics(getattr(d, "order_stats", None))
         k, m = d.block_shape
         info = InfoMetricFamily(
             "fecproxy",
@@ -313,6 +321,43 @@ def _feedback_metrics(feedback: Feedback, shape: tuple[int, int], received: tupl
     )
 
 
+def _order_metrics(stats: OrderStats | None) -> Iterable:
+    """In-order delivery (delivery.order: in_order): the wait it added, what waited, the gaps it
+    skipped by reason.  Exported on every daemon (zeros when it delivers as available), so rules
+    and dashboards can rely on the series existing."""
+    stats = stats if stats is not None else OrderStats()
+    cumulative, buckets = 0, []
+    for bound, count in zip(WAIT_BUCKETS, stats.wait_counts, strict=False):
+        cumulative += count
+        buckets.append((f"{bound:g}" if bound else "0.0", cumulative))
+    buckets.append(("+Inf", sum(stats.wait_counts)))
+    yield HistogramMetricFamily(
+        "fecproxy_delivery_wait_seconds",
+        "Wait added by in-order delivery to each datagram handed on (0 when it came in order).",
+        buckets=buckets,
+        sum_value=stats.wait_sum,
+    )
+    yield CounterMetricFamily(
+        "fecproxy_delivery_held", "Datagrams that waited behind a gap (in-order delivery).", value=stats.held
+    )
+    yield GaugeMetricFamily(
+        "fecproxy_delivery_held_datagrams", "Datagrams waiting behind a gap now.", value=stats.held_datagrams
+    )
+    skipped = CounterMetricFamily(
+        "fecproxy_delivery_gaps_skipped",
+        "Sequence numbers in-order delivery passed over without a datagram, by reason.",
+        labels=["reason"],
+    )
+    for reason in SkipReason:
+        skipped.add_metric([reason.value], stats.skipped.get(reason, 0))
+    yield skipped
+    yield CounterMetricFamily(
+        "fecproxy_delivery_flow_restarts",
+        "Flows whose sequence jumped far back (a restarted peer), followed afresh.",
+        value=stats.restarts,
+    )
+
+
 def add_process_collectors(registry: CollectorRegistry) -> None:
     """prometheus-client's own collectors of the process (``process_*``: start time, memory, CPU,
     open and maximum file descriptors, from /proc on Linux) and of the Python build
@@ -337,16 +382,30 @@ def build_registry(daemon: DaemonView) -> tuple[CollectorRegistry, Histogram]:
 
 class MetricsServer(HttpServer):
     """A bound /metrics endpoint: ``address`` is where it listens (the bound port when 0 was asked
-    for); it answers from :meth:`run`, a task in the owner's nursery; ``stop()`` ends it."""
+    for); it answers from :meth:`run`, a task in the owner's nursery, which also samples the
+    ``history`` (if any) for /status.json; ``stop()`` ends both."""
+
+    def __init__(self, sock: socket.socket, app: WsgiApp, registry: CollectorRegistry, history: History | None):
+        super().__init__(sock, app)
+        self.registry, self.history = registry, history
+
+    async def run(self, *, task_status: trio.TaskStatus[None] = trio.TASK_STATUS_IGNORED) -> None:
+        async with trio.open_nursery() as nursery:
+            if self.history is not None:
+                nursery.start_soon(keep_history, self.history, lambda: read_samples(self.registry)[0].items())
+            await super().run(task_status=task_status)
+            nursery.cancel_scope.cancel()
 
 
-def serve(registry: CollectorRegistry, host: str, port: int) -> MetricsServer:
+def serve(registry: CollectorRegistry, host: str, port: int, *, history: History | None = None) -> MetricsServer:
     """Bind the metrics port for the registry (/metrics at every path but the status page's).
 
     The one metrics HTTP server of the package: the daemon, the demo and the impairment relay all
     make theirs here, then start its ``run`` in their nursery (:mod:`fecproxy.shell.http_server`:
-    no thread, bounded connections).  Raises OSError when the address cannot be resolved or bound.
+    no thread, bounded connections).  With a ``history``, /status.json can hand out its samples
+    and events (:mod:`fecproxy.shell.history`).  Raises OSError when the address cannot be
+    resolved or bound.
     """
     # `/` and `/status.json` are the status page; every other path is prometheus-client's.
-    app = status_app(registry, make_wsgi_app(registry))
-    return MetricsServer(open_listener(host, port), app)
+    app = status_app(registry, make_wsgi_app(registry), history=history)
+    return MetricsServer(open_listener(host, port), app, registry, history)
