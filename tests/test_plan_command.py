@@ -207,7 +207,7 @@ def metrics_url(request):
     page = getattr(request, "param", CANNED_PAGE)
 
     class Handler(http.server.BaseHTTPRequestHandler):
-        def do_GET(self):  # noqa: N802 (http.server naming)
+        def do_GET(self):  # http.server calls the handler by this name
             body = page.encode()
             self.send_response(200 if self.path == "/metrics" else 404)
             self.send_header("Content-Type", "text/plain; version=0.0.4")
