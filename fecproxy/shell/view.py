@@ -69,6 +69,14 @@ class DaemonStatsView:
         return settings.block_size, settings.repair
 
     @property
+    def sliding_shape(self) -> tuple[int, int, float] | None:
+        """(window, repair interval, window age in s) with fec.code: sliding; None with blocks."""
+        sliding = getattr(self._encoder, "sliding_settings", None)
+        if sliding is None:
+            return None
+        return sliding.window, sliding.repair_interval, sliding.window_age
+
+    @property
     def interleave(self) -> int:
         return self._encoder.settings.interleave
 
