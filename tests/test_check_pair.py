@@ -179,3 +179,13 @@ def test_link_budget_repair_air_time_and_pacing_on_one_side_only(capsys, tmp_pat
     )
     warned = [line.split(": warning: ")[0] for line in err if ": warning: " in line]
     assert f"{r}: link.mtu" in warned and f"{r}: link.rate" in warned
+
+
+def test_in_order_wait_shorter_than_a_rebuild_is_warned_of(capsys, tmp_path):
+    s, r = write_pair(tmp_path, sender={}, receiver={"auth": "delivery: {order: in_order, max_wait_ms: 10}"})
+    status, err = run_check(capsys, s, r)
+    assert status == EXIT_VALID
+    assert err == [
+        f"{r}: delivery.max_wait_ms: warning: 10 is below the 40 ms a gap may take to be rebuilt ({s}'s "
+        f"fec.flush_ms, plus air time and delay spread): such gaps are skipped although repair is on its way"
+    ]
