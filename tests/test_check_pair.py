@@ -13,7 +13,10 @@ from fecproxy.commands.check import EXIT_INVALID, EXIT_VALID
 from fecproxy.commands.keygen import write_key_file
 
 ROOT = Path(__file__).resolve().parents[1]
-SHIPPED_PAIRS = [("sender.yaml", "receiver.yaml"), ("trial-sender.yaml", "trial-receiver.yaml")]
+#: Every shipped pair: each *sender*.yaml in config/ with the receiver.yaml of the same name.
+SHIPPED_PAIRS = [
+    (path.name, path.name.replace("sender", "receiver")) for path in sorted((ROOT / "config").glob("*sender*.yaml"))
+]
 
 SENDER = """\
 role: sender
@@ -49,6 +52,7 @@ def run_check(capsys, *argv: str) -> tuple[int, list[str]]:
 
 @pytest.mark.parametrize(("sender", "receiver"), SHIPPED_PAIRS)
 def test_shipped_pairs_agree(capsys, sender, receiver):
+    assert len(SHIPPED_PAIRS) >= 2
     status, err = run_check(capsys, str(ROOT / "config" / sender), str(ROOT / "config" / receiver))
     assert status == EXIT_VALID, err
     assert all(": warning: " in line for line in err), err
