@@ -30,9 +30,9 @@ def _metrics_table_names() -> set[str]:
     section = README.split("### Metrics", 1)[1].split("\n## ", 1)[0]
     names: set[str] = set()
     for line in section.splitlines():
-        if line.startswith("| `fecproxy_"):
+        if line.startswith(("| `fecproxy_", "| `process_")):
             first_column = line.split("|")[1]
-            names.update(re.findall(r"`(fecproxy_[a-z0-9_]+)", first_column))
+            names.update(re.findall(r"`((?:fecproxy|process|python)_[a-z0-9_]+)", first_column))
     return names
 
 
@@ -59,8 +59,8 @@ def test_every_family_a_daemon_pair_exposes_is_in_the_readme_table(pairs):
         assert not _undocumented(families), f"add to README's metrics table: {sorted(_undocumented(families))}"
         assert "_created" not in page
     # The receiver decodes the sender's code (k=16, m=4), seen in its repair packets ...
-    assert pair.receiver.metric("fecproxy_received_code_k") == 16
-    assert pair.receiver.metric("fecproxy_received_code_m") == 4
+    assert pair.receiver.metric("fecproxy_received_code_source_symbols") == 16
+    assert pair.receiver.metric("fecproxy_received_code_repair_symbols") == 4
     code = pair.receiver.wait_event("peer_code", 5)
     assert (code["k"], code["m"]) == ("16", "4")
     assert pair.receiver.started["decoding"] == "peer's code unknown until traffic"
@@ -89,8 +89,8 @@ def test_an_idle_receiver_exposes_its_estimate_as_nan_and_plan_says_no_traffic(p
     for name in (
         "fecproxy_link_loss_ratio",
         "fecproxy_link_mean_burst_packets",
-        "fecproxy_received_code_k",
-        "fecproxy_received_code_m",
+        "fecproxy_received_code_source_symbols",
+        "fecproxy_received_code_repair_symbols",
     ):
         assert math.isnan(receiver.metric(name)), name
     url = f"http://{LOOPBACK}:{receiver.started['metrics']}/metrics"
@@ -119,7 +119,7 @@ def test_every_family_the_impairment_relay_exposes_is_in_the_readme_table():
     try:
         url = relay.wait_for(r"^metrics: (\S+)").group(1)
         families, page = _families(url)
-        assert families and all(name.startswith("fecproxy_impair_") for name in families)
+        assert families and all(name.startswith(("fecproxy_impair_", "process_", "python_")) for name in families)
         assert not _undocumented(families), f"add to README's metrics table: {sorted(_undocumented(families))}"
         assert "_created" not in page
     finally:

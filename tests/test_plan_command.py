@@ -338,7 +338,7 @@ def test_byte_overhead_budget_and_the_senders_byte_cut(capsys):
 INFO_PAGE = CANNED_PAGE.replace(
     "fecproxy_other_total 12",
     'fecproxy_info{interleave="1",k="8",m="2",role="receiver",version="x"} 1.0\n'
-    "fecproxy_received_code_k 16.0\nfecproxy_received_code_m 4.0",
+    "fecproxy_received_code_source_symbols 16.0\nfecproxy_received_code_repair_symbols 4.0",
 )
 
 

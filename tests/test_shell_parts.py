@@ -143,7 +143,7 @@ async def test_collector_reads_only_the_daemon_view_and_serve_exposes_it(nursery
     assert all(f'reason="{reason}"' in text for reason in DropReason)
     assert 'fecproxy_info{interleave="1",k="8",m="2",role="receiver",size_classes="le256,gt256"' in text
     assert "fecproxy_link_loss_ratio 0.05" in text
-    assert "fecproxy_received_code_k 16.0" in text and "fecproxy_received_code_m 4.0" in text
+    assert "fecproxy_received_code_source_symbols 16.0" in text and "fecproxy_received_code_repair_symbols 4.0" in text
     assert "_created" not in text  # no creation-time series beside the counters and the histogram
 
 
@@ -157,8 +157,8 @@ def test_link_and_code_gauges_are_present_as_nan_before_traffic():
     for name in (
         "fecproxy_link_loss_ratio",
         "fecproxy_link_mean_burst_packets",
-        "fecproxy_received_code_k",
-        "fecproxy_received_code_m",
+        "fecproxy_received_code_source_symbols",
+        "fecproxy_received_code_repair_symbols",
     ):
         assert math.isnan(values[name]), name
 

@@ -260,3 +260,13 @@ def test_late_source_symbol_solves_the_rest():
     solved = system.add_known(1, symbols[1])
     assert [(esi, got[: len(symbols[esi])]) for esi, got in solved] == [(2, symbols[2])]
     assert system.rows == 0 and system.unknowns == ()
+
+
+def test_bench_codec_measures_the_sliding_code_beside_the_block_code():
+    from fecproxy.commands.bench import codec as bench_codec
+
+    figures = bench_codec.measure_sliding(8, 4, 64, seconds=0.01)
+    assert figures.encode > 0 and figures.decode > 0
+    block = bench_codec.measure_codec(4, 1, 64, seconds=0.01, use_zfec=False)
+    table = bench_codec.format_sliding_table([figures], [block])
+    assert "sliding W=8 X=4 L=64" in table and "block k=4 m=1 L=64" in table

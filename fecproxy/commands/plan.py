@@ -14,6 +14,7 @@ import sys
 import urllib.error
 import urllib.request
 
+from fecproxy.linkmodel import sliding_sim
 from fecproxy.linkmodel.loss_models import (
     ChannelConfigError,
     GilbertElliott,
@@ -45,8 +46,8 @@ from fecproxy.linkmodel.planner import (
 LINK_LOSS_GAUGE = "fecproxy_link_loss_ratio"
 LINK_BURST_GAUGE = "fecproxy_link_mean_burst_packets"
 #: The gauges that tell the code arriving on the measured link (the peer's k and m as decoded).
-RECEIVED_K_GAUGE = "fecproxy_received_code_k"
-RECEIVED_M_GAUGE = "fecproxy_received_code_m"
+RECEIVED_K_GAUGE = "fecproxy_received_code_source_symbols"
+RECEIVED_M_GAUGE = "fecproxy_received_code_repair_symbols"
 #: A metrics page is a few kB; 1 MiB is far above any real page and bounds what we read.
 MAX_METRICS_PAGE_BYTES = 1 << 20
 #: Seconds to wait for the metrics page: a receiver on the same LAN answers in milliseconds.
@@ -84,6 +85,10 @@ class MetricsError(PlanError):
 #: Options without a default: absent from the namespace until given (argparse.SUPPRESS keeps
 #: "(default: None)" out of --help); :func:`_fill_unset` puts None back before use.
 _UNSET_OPTIONS = (
+    "sliding_window",
+    "repair_interval",
+    "sim_datagrams",
+    "seed",
     "loss",
     "burst",
     "ge_p",
@@ -184,7 +189,99 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     )
     codes.add_argument("--k", type=int, help="evaluation mode: source packets per block of the one code to evaluate")
     codes.add_argument("--m", type=int, help="evaluation mode: repair packets per block of the one code to evaluate")
+    sliding = parser.add_argument_group("sliding-window code (fec.code: sliding), estimated by simulation")
+    sliding.add_argument(
+        "--sliding-window",
+        metavar="W[,W...]",
+        help="compare sliding-window codes with these encoding windows (source packets) beside the block code "
+        "--k/--m (default 16/4) on the same link; needs --rate",
+    )
+    sliding.add_argument(
+        "--repair-interval",
+        type=int,
+        help="sliding: one repair packet every X source packets (default: the block code's overhead, k/m rounded)",
+    )
+    sliding.add_argument(
+        "--sim-datagrams",
+        type=int,
+        help=f"datagrams simulated per code (default {sliding_sim.DEFAULT_DATAGRAMS}, "
+        f"in {sliding_sim.REPLICATIONS} seeded replications)",
+    )
+    sliding.add_argument("--seed", type=int, help="first seed of the simulation's replications (default 1)")
     parser.add_argument("--json", action="store_true", default=False, help="print JSON instead of a table")
+
+
+def _compare_sliding(args: argparse.Namespace, channel: GilbertElliott) -> int:
+    """Sliding-window codes beside the block code on one link: seeded simulation with 95 % CIs."""
+    if args.rate is None:
+        raise PlanError("the sliding-window comparison needs the datagram rate: --rate N")
+    windows = parse_int_list(args.sliding_window)
+    k = args.k if args.k is not None else 16
+    m = args.m if args.m is not None else 4
+    if not 1 <= k or not 0 <= m or k + m > 255:
+        raise PlanError(f"block code k={k} m={m} is outside 1 ≤ k, 0 ≤ m, k + m ≤ 255")
+    interval = args.repair_interval if args.repair_interval is not None else max(1, round(k / m) if m else k)
+    datagrams = args.sim_datagrams if args.sim_datagrams is not None else sliding_sim.DEFAULT_DATAGRAMS
+    seed = args.seed if args.seed is not None else 1
+    flush = (args.flush_ms if args.flush_ms is not None else 20.0) / 1000.0
+    try:
+        block = sliding_sim.simulate(
+            "block",
+            dict(block_size=k, repair=m, flush_interval=flush),
+            channel,
+            args.rate,
+            datagrams=datagrams,
+            seed=seed,
+        )
+        codes = [
+            sliding_sim.simulate(
+                "sliding",
+                dict(window=w, repair_interval=min(interval, w), flush=flush),
+                channel,
+                args.rate,
+                datagrams=datagrams,
+                seed=seed,
+            )
+            for w in windows
+        ]
+    except ValueError as exc:
+        raise PlanError(str(exc)) from None
+    exact = evaluate(channel, k, m).residual_loss
+    method = (
+        f"seeded simulation (seeds {seed}..{seed + sliding_sim.REPLICATIONS - 1}, {sliding_sim.REPLICATIONS} "
+        f"replications of {datagrams // sliding_sim.REPLICATIONS} datagrams at {args.rate:g}/s, no link delay); "
+        "figures are estimates with 95 % confidence intervals (Student t over replications)"
+    )
+    if args.json:
+        out = {
+            "channel": _channel_dict(channel),
+            "rate": args.rate,
+            "method": method,
+            "block": dict(block.as_dict(), exact_residual_loss=exact),
+            "sliding": [c.as_dict() for c in codes],
+        }
+        print(json.dumps(out, indent=2))
+        return 0
+    print(f"link: {channel.describe()}")
+    print(method)
+    header = f"{'code':<30} {'overhead':>8}  {'residual loss (95% CI)':<30} {'mean delay ms':<22} {'p99 delay ms':<22}"
+    print(header)
+    print("-" * len(header))
+
+    def row(c: sliding_sim.SimulatedCode) -> str:
+        r, d, p = c.residual_loss, c.mean_delay, c.p99_delay
+        return (
+            f"{c.code:<30} {c.overhead:>8.3f}  {f'{r.mean:.2e} [{r.low:.2e}, {r.high:.2e}]':<30} "
+            f"{f'{d.mean * 1e3:.1f} [{d.low * 1e3:.1f}, {d.high * 1e3:.1f}]':<22} "
+            f"{f'{p.mean * 1e3:.1f} [{p.low * 1e3:.1f}, {p.high * 1e3:.1f}]':<22}"
+        )
+
+    print(row(block))
+    for code in codes:
+        print(row(code))
+    print(f"block k={k} m={m}: exact residual loss {exact:.3g} (planner; the simulated figure estimates it)")
+    print("delay: from sending to delivery of rebuilt datagrams, i.e. what the code adds")
+    return 0
 
 
 # -- link from options or metrics ---------------------------------------------------------------------
@@ -242,7 +339,7 @@ def _pick(samples, name: str, select: dict[str, str]) -> float:
 
 def running_code(samples, select: dict[str, str]) -> dict[str, int] | None:
     """The code arriving on the measured link: the peer's k and m as this daemon decodes them
-    (``fecproxy_received_code_k``/``_m``); None while unknown (no repair packet yet) or absent.
+    (``fecproxy_received_code_source_symbols``/``_repair_symbols``); None while unknown or absent.
 
     The page's ``fecproxy_info`` labels are not used: they are the code this daemon *sends* with,
     on the other direction, while the link estimate describes the direction it receives."""
@@ -465,6 +562,8 @@ def main(args: argparse.Namespace) -> int:
     args = _fill_unset(args)
     try:
         channel = channel_from_args(args)
+        if args.sliding_window is not None:
+            return _compare_sliding(args, channel)
         depths = parse_int_list(args.interleave)
         if args.k is not None or args.m is not None:
             return _evaluate_one(args, channel, depths)

@@ -141,8 +141,8 @@ def figures(now: Samples, before: Samples | None = None, seconds: float | None =
         loss, burst = _get(now, "fecproxy_link_loss_ratio"), _get(now, "fecproxy_link_mean_burst_packets")
         if math.isfinite(loss):  # NaN: the daemon has not received a block from its peer yet
             out.estimate = (loss, burst)
-    if ("fecproxy_received_code_k", ()) in now:
-        k, m = _get(now, "fecproxy_received_code_k"), _get(now, "fecproxy_received_code_m")
+    if ("fecproxy_received_code_source_symbols", ()) in now:
+        k, m = _get(now, "fecproxy_received_code_source_symbols"), _get(now, "fecproxy_received_code_repair_symbols")
         if math.isfinite(k):
             out.decoding = f"k={k:.0f} m={m:.0f}" if math.isfinite(m) else f"k={k:.0f}"
     return out

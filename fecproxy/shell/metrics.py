@@ -11,7 +11,14 @@ import math
 from collections.abc import Iterable, Mapping
 from typing import TYPE_CHECKING, Protocol
 
-from prometheus_client import CollectorRegistry, Histogram, disable_created_metrics, make_wsgi_app
+from prometheus_client import (
+    CollectorRegistry,
+    Histogram,
+    PlatformCollector,
+    ProcessCollector,
+    disable_created_metrics,
+    make_wsgi_app,
+)
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, InfoMetricFamily
 
 from fecproxy import __version__
@@ -198,12 +205,12 @@ class DaemonCollector:
         )
         received_k, received_m = d.received_code
         yield GaugeMetricFamily(
-            "fecproxy_received_code_k",
+            "fecproxy_received_code_source_symbols",
             "k of the code this daemon decodes (the peer's block size, from its repair packets); NaN until one arrives.",
             value=math.nan if received_k is None else received_k,
         )
         yield GaugeMetricFamily(
-            "fecproxy_received_code_m",
+            "fecproxy_received_code_repair_symbols",
             "m of the code this daemon decodes (highest repair ESI seen - k + 1, a lower bound if the last "
             "repair packets were lost); NaN until a repair packet arrives.",
             value=math.nan if received_m is None else received_m,
@@ -213,7 +220,7 @@ class DaemonCollector:
         info = InfoMetricFamily(
             "fecproxy",
             "Build of this daemon, its role and the code it sends with (k, m, interleave depth, size classes; "
-            "on a receiver: its replies). The code it decodes: fecproxy_received_code_k and fecproxy_received_code_m.",
+            "on a receiver: its replies). The code it decodes: fecproxy_received_code_source_symbols and _repair_symbols.",
         )
         info.add_metric(
             [],
@@ -230,22 +237,22 @@ class DaemonCollector:
 
 
 def _feedback_metrics(feedback: Feedback, shape: tuple[int, int], received: tuple[int | None, int | None]) -> Iterable:
-    """The code per link direction and the loss-report loop.  ``direction="send"``: the code this
+    """The code per link direction and the loss-report loop.  ``code="send"``: the code this
     daemon encodes with now (m moves with fec.adapt); ``"receive"``: the peer's code as its repair
-    packets show it (the same figures as fecproxy_received_code_k/_m; NaN until known; D is not on
+    packets show it (the same figures as fecproxy_received_code_*; NaN until known; D is not on
     the wire, so it has no "receive" series).  A fixed label set, so a pair's two scrapes line up."""
     k, m = shape
     received_k, received_m = (math.nan if value is None else value for value in received)
     for name, doc, sent, seen in (
         (
             "fecproxy_code_source_symbols",
-            "Source datagrams per full block (k) of the code, per link direction.",
+            "Source datagrams per full block (k): of the code this daemon sends with, and the one it receives.",
             k,
             received_k,
         ),
         (
             "fecproxy_code_repair_symbols",
-            "Repair packets per full block (m) of the code, per link direction.",
+            "Repair packets per full block (m): of the code this daemon sends with, and the one it receives.",
             m,
             received_m,
         ),
@@ -256,7 +263,9 @@ def _feedback_metrics(feedback: Feedback, shape: tuple[int, int], received: tupl
             None,
         ),
     ):
-        gauge = GaugeMetricFamily(name, doc, labels=["direction"])
+        # `code`, not `direction`: one meaning per label name across the package, and `direction`
+        # is the link direction (forward/return) on fecproxy impair's metrics.
+        gauge = GaugeMetricFamily(name, doc, labels=["code"])
         gauge.add_metric(["send"], sent)
         if seen is not None:
             gauge.add_metric(["receive"], seen)
@@ -275,13 +284,13 @@ def _feedback_metrics(feedback: Feedback, shape: tuple[int, int], received: tupl
     yield ignored
     adaptations = CounterMetricFamily(
         "fecproxy_adaptations",
-        "Changes of m (or D) made from loss reports, by direction and reason.",
-        labels=["direction", "reason"],
+        "Changes of m (or D) made from loss reports, by change (up, down) and reason.",
+        labels=["change", "reason"],
     )
     decisions = feedback.decisions()
-    for direction in (UP, DOWN):
+    for change in (UP, DOWN):
         for reason in DECISION_REASONS:
-            adaptations.add_metric([direction, reason], decisions.get((direction, reason), 0))
+            adaptations.add_metric([change, reason], decisions.get((change, reason), 0))
     yield adaptations
     yield GaugeMetricFamily(
         "fecproxy_reports_stale",
@@ -290,10 +299,19 @@ def _feedback_metrics(feedback: Feedback, shape: tuple[int, int], received: tupl
     )
 
 
+def add_process_collectors(registry: CollectorRegistry) -> None:
+    """prometheus-client's own collectors of the process (``process_*``: start time, memory, CPU,
+    open and maximum file descriptors, from /proc on Linux) and of the Python build
+    (``python_info``).  Several registries in one process (the demo) each show the same process."""
+    ProcessCollector(registry=registry)
+    PlatformCollector(registry=registry)
+
+
 def build_registry(daemon: DaemonView) -> tuple[CollectorRegistry, Histogram]:
     """A registry of this daemon's own (several daemons may share one process, as in the demo)."""
     registry = CollectorRegistry(auto_describe=False)
     registry.register(DaemonCollector(daemon))
+    add_process_collectors(registry)
     histogram = Histogram(
         "fecproxy_recovery_delay_seconds",
         "From a block's first packet to the delivery of a datagram rebuilt from it.",

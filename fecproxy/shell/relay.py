@@ -29,7 +29,7 @@ from fecproxy.linkmodel.impairment import (
     LinkImpairment,
     LinkStats,
 )
-from fecproxy.shell.metrics import MetricsServer, serve
+from fecproxy.shell.metrics import MetricsServer, add_process_collectors, serve
 from fecproxy.shell.udp import MAX_UDP_PAYLOAD
 
 #: Default seed: runs are reproducible unless the user asks otherwise.
@@ -241,4 +241,5 @@ def start_metrics_server(relay: UdpRelay, address: tuple[str, int]) -> MetricsSe
     the returned server's ``address`` is the bound one, its ``stop()`` ends it."""
     registry = CollectorRegistry(auto_describe=False)
     registry.register(_RelayCollector(relay))
+    add_process_collectors(registry)
     return serve(registry, address[0], address[1])

@@ -23,6 +23,7 @@ from dataclasses import asdict, dataclass
 
 import numpy as np
 
+from fecproxy.coding import sliding
 from fecproxy.coding.codec import MAX_ENCODING_SYMBOLS, BlockCode
 
 #: (k, m, L) shapes measured by default: a small block for low-latency voice/telemetry, a
@@ -133,6 +134,16 @@ def add_arguments(codec: argparse.ArgumentParser) -> None:
         default=DEFAULT_SECONDS,
         help="seconds spent timing each function (ours and zfec's) per shape",
     )
+    codec.add_argument(
+        "--sliding",
+        action="append",
+        type=_sliding_shape,
+        metavar="W,X,L",
+        help="sliding-window shape to measure beside the blocks: window W, one repair per X source symbols, "
+        "L bytes (repeat for several; default: "
+        + " ".join(",".join(map(str, s)) for s in DEFAULT_SLIDING_SHAPES)
+        + ")",
+    )
     codec.add_argument("--json", action="store_true", help="print the figures as JSON instead of a table")
 
 
@@ -231,6 +242,97 @@ def measure_codec(k: int, m: int, length: int, seconds: float = DEFAULT_SECONDS,
     )
 
 
+#: (window, repair interval, L) of the sliding-window code measured by default: the defaults of
+#: ``fec.code: sliding`` (32, one repair per 4) and a 16-symbol window, both at 25 % overhead
+#: like the block shape (16, 4, 1200) they are printed beside.
+DEFAULT_SLIDING_SHAPES: tuple[tuple[int, int, int], ...] = ((16, 4, 1200), (32, 4, 1200))
+#: Source symbols in the stream the sliding decoder is timed on (cycled); long enough to slide
+#: the window many times over.
+SLIDING_STREAM = 512
+
+
+@dataclass(frozen=True)
+class SlidingFigures:
+    """Throughput in MB/s of source data of the sliding-window code (RFC 8681) for (W, x, L).
+
+    ``encode``: one repair symbol over the W-symbol window every x source symbols;
+    ``decode``: a stream of SLIDING_STREAM symbols, one source symbol lost in every x (a fresh
+    seeded position each time, the m/k = 1/x share of the block figure), through the decoder's
+    incremental solver (source symbols added, one equation per repair, window slid).
+    """
+
+    window: int
+    interval: int
+    length: int
+    encode: float
+    decode: float
+
+    def as_dict(self) -> dict:
+        return asdict(self)
+
+
+def _sliding_shape(text: str) -> tuple[int, int, int]:
+    try:
+        window, interval, length = (int(part) for part in text.split(","))
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"sliding shape must be W,X,L (three integers), got {text!r}") from None
+    if not (1 <= interval <= window <= 255 and length >= 1):
+        raise argparse.ArgumentTypeError(f"need 1 ≤ X ≤ W ≤ 255 and L ≥ 1, got {text!r}")
+    return window, interval, length
+
+
+def measure_sliding(window: int, interval: int, length: int, seconds: float = DEFAULT_SECONDS) -> SlidingFigures:
+    """Encode and decode rates of the sliding-window code for one (W, x, L)."""
+    rng = np.random.default_rng(SEED)
+    stream = [bytes(row) for row in rng.integers(0, 256, size=(SLIDING_STREAM, length), dtype=np.uint8)]
+    repairs = []  # (first ESI, count, key, symbol) after every interval-th source symbol
+    for end in range(interval, SLIDING_STREAM + 1, interval):
+        first = max(0, end - window)
+        key = len(repairs) % 4096
+        repairs.append((first, end - first, key, sliding.encode_repair(stream[first:end], key)))
+    lost = {int(start + rng.integers(0, interval)) for start in range(0, SLIDING_STREAM, interval)}
+
+    def decode_stream() -> int:
+        system = sliding.WindowSystem()
+        rebuilt = 0
+        for index, (first, count, key, symbol) in enumerate(repairs):
+            for esi in range(index * interval, (index + 1) * interval):
+                if esi not in lost:
+                    rebuilt += len(system.add_known(esi, stream[esi]))
+            rebuilt += len(system.add_equation(first, sliding.coefficients(key, count), symbol))
+            system.forget_before(first)
+        return rebuilt
+
+    if decode_stream() != len(lost):
+        raise AssertionError(f"sliding decoder did not rebuild every loss for W={window}, x={interval}, L={length}")
+    window_symbols = stream[:window]
+    rates = _rates({"encode": lambda: sliding.encode_repair(window_symbols, 7), "decode": decode_stream}, seconds)
+    return SlidingFigures(
+        window=window,
+        interval=interval,
+        length=length,
+        encode=rates["encode"] * interval * length / 1e6,
+        decode=rates["decode"] * SLIDING_STREAM * length / 1e6,
+    )
+
+
+def format_sliding_table(figures: list[SlidingFigures], blocks: list[CodecFigures]) -> str:
+    header = f"{'code':>22} | {'encode':>8} | {'decode':>8}"
+    lines = [
+        "",
+        "sliding-window code (RFC 8681, GF(2^8), dense) beside the block code, MB/s of source data:",
+        f"sliding encode: one repair over W symbols per X source symbols; decode: {SLIDING_STREAM}-symbol stream, "
+        "one source lost in every X, through the incremental solver",
+        header,
+        "-" * len(header),
+    ]
+    for b in blocks:
+        lines.append(f"{f'block k={b.k} m={b.m} L={b.length}':>22} | {b.encode:>8.1f} | {b.decode:>8.1f}")
+    for f in figures:
+        lines.append(f"{f'sliding W={f.window} X={f.interval} L={f.length}':>22} | {f.encode:>8.1f} | {f.decode:>8.1f}")
+    return "\n".join(lines)
+
+
 def _cell(value: float | None, digits: int) -> str:
     return "-" if value is None else f"{value:.{digits}f}"
 
@@ -266,6 +368,8 @@ def format_table(figures: list[CodecFigures], seconds: float) -> str:
 def main(args: argparse.Namespace) -> int:
     shapes = args.shape or list(DEFAULT_SHAPES)
     figures = [measure_codec(k, m, length, args.seconds) for k, m, length in shapes]
+    sliding_shapes = getattr(args, "sliding", None) or list(DEFAULT_SLIDING_SHAPES)
+    sliding_figures = [measure_sliding(w, x, length, args.seconds) for w, x, length in sliding_shapes]
     if args.json:
         print(
             json.dumps(
@@ -275,10 +379,12 @@ def main(args: argparse.Namespace) -> int:
                     "decode_patterns": "fresh per block",
                     "pattern_pool": PATTERN_POOL,
                     "shapes": [f.as_dict() for f in figures],
+                    "sliding": [f.as_dict() for f in sliding_figures],
                 },
                 indent=2,
             )
         )
     else:
         print(format_table(figures, args.seconds))
+        print(format_sliding_table(sliding_figures, figures))
     return 0
