@@ -11,12 +11,29 @@ Public library API (stable), importable from here:
   :class:`BlockOutcome`.
 
 The names load on first use (PEP 562), so ``import fecproxy`` stays cheap for commands that need
-none of them, and the package root imports nothing eagerly (see tests/test_layers.py).
+none of them, and the package root imports nothing eagerly (see tests/test_layers.py).  Type
+checkers and editors see them through the ``TYPE_CHECKING`` imports below, which never run;
+tests/test_public_api.py keeps that list and ``_PUBLIC`` the same.
 """
 
 from __future__ import annotations
 
 import importlib
+from typing import TYPE_CHECKING, Any
+
+if TYPE_CHECKING:
+    from fecproxy.coding.codec import BlockCode as BlockCode
+    from fecproxy.protocol.decoder import BlockDecoder as BlockDecoder
+    from fecproxy.protocol.decoder import DecoderSettings as DecoderSettings
+    from fecproxy.protocol.encoder import BlockEncoder as BlockEncoder
+    from fecproxy.protocol.encoder import EncoderSettings as EncoderSettings
+    from fecproxy.protocol.events import BlockOutcome as BlockOutcome
+    from fecproxy.protocol.events import BlockReport as BlockReport
+    from fecproxy.protocol.events import Delivery as Delivery
+    from fecproxy.protocol.events import Dropped as Dropped
+    from fecproxy.protocol.events import DropReason as DropReason
+    from fecproxy.protocol.events import Event as Event
+    from fecproxy.protocol.events import SessionStarted as SessionStarted
 
 __version__ = "0.1.0"
 
@@ -39,7 +56,7 @@ _PUBLIC = {
 __all__ = ["__version__", *_PUBLIC]
 
 
-def __getattr__(name: str):
+def __getattr__(name: str) -> Any:
     module = _PUBLIC.get(name)
     if module is None:
         raise AttributeError(f"module 'fecproxy' has no attribute {name!r}")

@@ -9,6 +9,7 @@ from __future__ import annotations
 import argparse
 import importlib
 import sys
+from collections.abc import Set
 
 from fecproxy import __version__
 
@@ -25,6 +26,12 @@ COMMANDS: dict[str, tuple[str, str]] = {
     ),
     "bench": ("fecproxy.commands.bench", "measure codec and pipeline speed against a baseline run side by side"),
     "keygen": ("fecproxy.commands.keygen", "write a new pre-shared link key file (mode 0600) for auth.key_file"),
+    "manual": ("fecproxy.commands.manual", "print the manual page fecproxy(1), built from this command line's parser"),
+    "completion": ("fecproxy.commands.completion", "print a tab-completion script for bash, zsh or tcsh"),
+    "init": (
+        "fecproxy.commands.init",
+        "write a commented, checked config pair and key for a kind of link, or the shipped examples",
+    ),
 }
 
 
@@ -36,10 +43,10 @@ class _HelpFormatter(argparse.ArgumentDefaultsHelpFormatter):
         text = action.help or ""
         if "default" in text or action.default in (None, False, [], argparse.SUPPRESS):
             return text
-        return super()._get_help_string(action)
+        return super()._get_help_string(action) or ""
 
 
-def build_parser(chosen: set[str] = frozenset()) -> argparse.ArgumentParser:
+def build_parser(chosen: Set[str] = frozenset()) -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="fecproxy",
         description="Reed–Solomon forward error correction for UDP over lossy links.",
@@ -72,4 +79,7 @@ def main(argv: list[str] | None = None) -> int:
         parser.print_help()
         return 2
     module = importlib.import_module(args._module)
+    # The manual page and completion describe every subcommand: they get the whole parser
+    # (commands never import cli).
+    args._full_parser = lambda: build_parser(set(COMMANDS))
     return int(module.main(args) or 0)

@@ -9,6 +9,7 @@ when at least m of the other n − 1 packets of its block are lost too; MDS code
 from __future__ import annotations
 
 import math
+from typing import Any
 
 import numpy as np
 import pytest
@@ -52,7 +53,7 @@ PER_REPORT = 500
 
 
 def policy(**changes) -> AdaptPolicy:
-    settings = dict(
+    settings: dict[str, Any] = dict(
         block_size=K, target_residual=TARGET, min_repair=1, max_repair=K, max_overhead=1.0, report_interval=INTERVAL
     )
     settings.update(changes)

@@ -206,7 +206,8 @@ async def test_sender_follows_a_fading_link_and_holds_without_reports(caplog):
         residual = (unrec1 - unrec0) / max(1, expected1 - expected0)
         print(
             f"{phase}: m {sorted(set(steady_ms))}, {blocks} blocks, {failed} failed (bound {bound:.0f}, predicted "
-            f"{blocks * block_failure:.2f}); residual {residual:.2e}, predicted {predicted_residual:.2e}, target {TARGET:g}"
+            f"{blocks * block_failure:.2f}); residual {residual:.2e}, predicted {predicted_residual:.2e}, target "
+            f"{TARGET:g}"
         )
         assert failed <= bound, (phase, failed, bound)
 

@@ -101,6 +101,10 @@ def test_encrypted_packet_follows_the_documented_layout():
 # ------------------------------------------------------------------ round trips
 
 
+def test_the_trailer_fits_the_room_the_wire_format_keeps_for_it():
+    assert auth.TRAILER_BYTES <= wire.AUTH_TAG_RESERVE_BYTES
+
+
 @pytest.mark.parametrize("encrypt", MODES)
 @pytest.mark.parametrize("packet", [SOURCE, REPAIR, CONTROL], ids=["source", "repair", "control"])
 def test_round_trip_gives_back_the_version_1_packet(encrypt, packet):

@@ -207,7 +207,7 @@ def test_decode_errors():
     with pytest.raises(CodecError, match="out of range"):
         code.decode({"0": symbols[0], 1: symbols[1], 2: symbols[2]})
     with pytest.raises(CodecError, match="out of range"):
-        code.decode({True: symbols[0], 1: symbols[1], 2: symbols[2]})
+        code.decode({True: symbols[0], 2: symbols[2], 3: symbols[3]})
     with pytest.raises(CodecError, match="one length"):
         code.decode({0: symbols[0], 1: symbols[1][:3], 2: symbols[2]})
     with pytest.raises(CodecError, match="one length"):  # also for a symbol decoding would not use
@@ -327,7 +327,7 @@ def test_recover_many_equals_recover_block_by_block(GF, shape, blocks, data):
         sources.append(source)
     rebuilt = code.recover_many(receptions)
     assert len(rebuilt) == blocks
-    for received, source, found in zip(receptions, sources, rebuilt):
+    for received, source, found in zip(receptions, sources, rebuilt, strict=True):
         assert sorted(found) == [i for i in range(k) if i not in received]
         assert all(np.array_equal(symbol, source[i]) for i, symbol in found.items())
 

@@ -9,6 +9,7 @@ import ipaddress
 import math
 from fractions import Fraction
 from pathlib import Path
+from typing import Any
 
 import pytest
 import yaml
@@ -23,16 +24,16 @@ from fecproxy.config import (
     ConfigUnreadable,
     FecSection,
     Role,
-    ShortBlockRepair,
     load_config,
     parse_address,
     parse_config,
     parse_config_text,
 )
+from fecproxy.protocol.repair_rule import ShortBlockRepair
 
 EXAMPLES = Path(__file__).resolve().parents[1] / "config"
 
-SENDER = {
+SENDER: dict[Any, Any] = {
     "role": "sender",
     "listen": "127.0.0.1:5000",
     "link": {"bind": "127.0.0.1:7001", "peer": "127.0.0.1:7000"},
@@ -43,6 +44,8 @@ RECEIVER = {
     "link": {"bind": "127.0.0.1:7000"},
 }
 DELETE = object()
+#: A document whose top level has a key YAML reads as an integer.
+NON_STRING_KEY = {**SENDER, 7: "x"}
 
 
 def edited(base: dict, **changes) -> dict:
@@ -95,7 +98,7 @@ def test_minimal_receiver_learns_its_peer():
     assert config.forward == Address("127.0.0.1", 6000)
 
 
-def test_config_is_frozen():
+def test_config_is_frozen() -> None:
     config = parse_config(SENDER)
     with pytest.raises(dataclasses.FrozenInstanceError):
         config.role = Role.RECEIVER  # type: ignore[misc]
@@ -275,7 +278,7 @@ BAD_CONFIGS = [
         edited(SENDER, log__zzz=1),
         ["log.zzz: unknown key; valid keys here are level, format"],
     ),
-    ("non-string key", {**SENDER, 7: "x"}, ["7: unknown key"]),
+    ("non-string key", NON_STRING_KEY, ["7: unknown key"]),
     ("section not a mapping", edited(SENDER, fec=16), ["fec: 16 is an integer; expected a mapping of fec settings"]),
     ("role missing", edited(SENDER, role=DELETE), ["role: missing; expected sender or receiver"]),
     ("role wrong", edited(SENDER, role="relay"), ['role: "relay" is not a valid role; expected sender or receiver']),
@@ -423,7 +426,8 @@ BAD_CONFIGS = [
         "adapt min_repair beyond the overhead cap",
         edited(SENDER, fec__block_size=8, fec__adapt={"min_repair": 3, "max_overhead": 0.25}),
         [
-            "fec.adapt.min_repair: 3 is above the 2 repair packets that fec.adapt.max_overhead 0.25 allows with fec.block_size 8"
+            "fec.adapt.min_repair: 3 is above the 2 repair packets that fec.adapt.max_overhead 0.25 allows with "
+            "fec.block_size 8"
         ],
     ),
     ("adapt null key", edited(SENDER, fec__adapt={"min_repair": None}), ["fec.adapt.min_repair: has no value (null)"]),

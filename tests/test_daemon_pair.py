@@ -85,7 +85,7 @@ def assert_aligned(packets, k: int, m: int) -> None:
 
 def test_no_corrupted_or_duplicated_datagram_is_ever_delivered(pairs):
     """20 % i.i.d. loss: many blocks are rebuilt, many fail; whatever arrives is bit-exact."""
-    k, m, count = 16, 4, 1600
+    count = 1600
     pair = pairs(sender_fec={"flush_ms": NEVER_FLUSH_MS}, forward=iid_loss(0.20, seed=7), record=True)
     client = pair.client(stream=1)
     send_paced(client.send, count, rate=2000)

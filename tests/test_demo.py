@@ -13,6 +13,7 @@ import subprocess
 import sys
 from collections import Counter
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pytest
@@ -157,7 +158,7 @@ def test_formatting_helpers():
 
 
 def _result(**changes) -> render.DemoResult:
-    fields = dict(
+    fields: dict[str, Any] = dict(
         seconds=20.0,
         seed=1,
         k=32,

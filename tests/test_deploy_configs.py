@@ -55,7 +55,7 @@ def plan_command(path: Path) -> list[str]:
 )
 def test_sender_code_meets_its_stated_traffic_and_link(capsys, path):
     argv = plan_command(path)
-    options = dict(zip(argv[::2], argv[1::2]))
+    options = dict(zip(argv[::2], argv[1::2], strict=True))
     fec = yaml.safe_load(path.read_text())["fec"]
     # The quoted command describes this file's code ...
     assert (int(options["--k"]), int(options["--m"]), float(options["--flush-ms"])) == (

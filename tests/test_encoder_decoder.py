@@ -137,7 +137,7 @@ def test_no_loss_block_completes_on_end_flag_and_repair_is_not_a_drop():
 def test_reordering_and_duplication():
     datagrams, packets = make_block(6, 3, seed=3)
     rng = random.Random(1)
-    for trial in range(50):
+    for _trial in range(50):
         lost = set(rng.sample(range(9), 3))
         kept = [p for i, p in enumerate(packets) if i not in lost]
         shuffled = kept + rng.sample(kept, 3)  # duplicates
@@ -203,7 +203,7 @@ def test_open_blocks_are_bounded_oldest_evicted_first():
     events = []
     for sbn in range(5):
         out = []
-        for i in range(4):
+        for _ in range(4):
             out += enc.send(b"x", 0, now=sbn)
         events += feed(dec, out[1:2], now=sbn)  # one source packet per block: never completes
     evicted = [r.sbn for r in reports(events)]
@@ -272,7 +272,7 @@ def test_random_loss_never_corrupts_and_delivers_each_datagram_at_most_once(k, m
     dec = BlockDecoder(DecoderSettings(max_datagram=64))
     sent = []
     link = []
-    for i in range(k * blocks):
+    for _ in range(k * blocks):
         data = rng.randbytes(rng.randint(0, 64))
         flow = rng.randint(0, 3)
         sent.append((flow, data))

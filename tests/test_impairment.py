@@ -24,7 +24,7 @@ SIGMAS = 4.0
 
 def drain_all(link: ImpairedLink, limit: int = 1_000_000) -> list[tuple[float, bytes]]:
     """Jump the fake clock from deadline to deadline until nothing is in flight."""
-    out = []
+    out: list[tuple[float, bytes]] = []
     for _ in range(limit):
         deadline = link.next_deadline()
         if deadline is None:

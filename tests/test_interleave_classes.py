@@ -2,6 +2,7 @@
 fake clock: no sockets, no sleeps.  Traffic is demo data of our own: a hill-top weather
 station's 18–24-byte telemetry records mixed with 1150–1200-byte camera-still slices."""
 
+import itertools
 import random
 
 import pytest
@@ -88,7 +89,7 @@ def test_repair_of_a_round_sits_d_packets_apart_like_its_sources():
         positions.setdefault(wire.parse(p, max_datagram=1400).sbn, []).append(i)
     for where in positions.values():
         assert len(where) == k + m
-        assert {b - a for a, b in zip(where, where[1:])} == {depth}
+        assert {b - a for a, b in itertools.pairwise(where)} == {depth}
 
 
 def test_previous_k_tells_a_whole_lost_block_to_the_receiver_with_interleaving():
@@ -106,7 +107,7 @@ def test_previous_k_tells_a_whole_lost_block_to_the_receiver_with_interleaving()
 def test_previous_k_is_zero_until_block_sbn_minus_1_closed():
     enc = BlockEncoder(EncoderSettings(block_size=2, repair=1, interleave=2), SESSION)
     seen = []
-    for i in range(8):
+    for _ in range(8):
         out = enc.send(b"x" * 30, 1, 0.0)
         seen.append((wire.parse(out[0], max_datagram=1400).sbn, wire.parse(out[0], max_datagram=1400).previous_k))
     # SBN 1 opens while SBN 0 is open (0); SBN 0 closes at datagram 2, so SBN 1's last packet says 2.
@@ -116,7 +117,7 @@ def test_previous_k_is_zero_until_block_sbn_minus_1_closed():
 def test_small_datagrams_are_never_padded_to_large_ones():
     enc = BlockEncoder(EncoderSettings(block_size=4, repair=1, size_classes=(256,)), SESSION)
     packets = []
-    for i in range(4):
+    for _ in range(4):
         packets += enc.send(b"t" * 20, 1, 0.0)
         packets += enc.send(b"i" * 1200, 2, 0.0)
     repairs = [wire.parse(p, max_datagram=1400) for p in packets if not is_source(p)]

@@ -8,7 +8,9 @@ A module may import modules of its own layer's subpackage and of any lower layer
 rules: a command never imports another command's module (``commands.demo`` may not reach into
 ``commands.impair``: what both need lives in a lower layer), and the package root
 (``fecproxy/__init__.py``) imports nothing of the package eagerly (its public names load lazily).
-Every import counts, including those inside functions and under ``if TYPE_CHECKING:``.
+Every import counts, including those inside functions and under ``if TYPE_CHECKING:`` — except
+the package root's ``if TYPE_CHECKING:`` block: there the public names are re-exported for type
+checkers only, code that never runs, so it cannot make the root heavy nor close a cycle.
 """
 
 from __future__ import annotations
@@ -21,7 +23,7 @@ import pytest
 PACKAGE_ROOT = Path(__file__).resolve().parents[1] / "fecproxy"
 
 #: Lowest first.  The key is the first component below ``fecproxy``.
-LAYERS = ("coding", "protocol", "linkmodel", "config", "shell", "commands", "cli", "__main__")
+LAYERS = ("coding", "protocol", "linkmodel", "config", "examples", "shell", "commands", "cli", "__main__")
 RANK = {name: rank for rank, name in enumerate(LAYERS)}
 #: Subpackages whose children are independent tools that must not import each other.
 SILOED = ("commands",)
@@ -34,12 +36,38 @@ def module_name(path: Path, root: Path, package: str) -> str:
     return ".".join([package, *parts])
 
 
+def _is_type_checking_block(node: ast.AST) -> bool:
+    """``if TYPE_CHECKING:`` or ``if typing.TYPE_CHECKING:``."""
+    if not isinstance(node, ast.If):
+        return False
+    test = node.test
+    return (isinstance(test, ast.Name) and test.id == "TYPE_CHECKING") or (
+        isinstance(test, ast.Attribute) and test.attr == "TYPE_CHECKING"
+    )
+
+
+def _nodes(tree: ast.AST, *, skip_type_checking: bool) -> list[ast.AST]:
+    """Every node of ``tree``; without the bodies of ``if TYPE_CHECKING:`` blocks if asked."""
+    found: list[ast.AST] = []
+    pending = [tree]
+    while pending:
+        node = pending.pop()
+        found.append(node)
+        children = list(ast.iter_child_nodes(node))
+        if skip_type_checking and _is_type_checking_block(node):
+            assert isinstance(node, ast.If)
+            children = [node.test, *node.orelse]
+        pending.extend(children)
+    return found
+
+
 def imports_of(path: Path, name: str, package: str) -> set[str]:
-    """Every module of ``package`` that ``path`` imports, resolved to full dotted names."""
+    """Every module of ``package`` that ``path`` imports, resolved to full dotted names (for the
+    package root, the imports that run: not those under ``if TYPE_CHECKING:``)."""
     tree = ast.parse(path.read_text(encoding="utf-8"), filename=str(path))
     is_package = path.name == "__init__.py"
     found: set[str] = set()
-    for node in ast.walk(tree):
+    for node in _nodes(tree, skip_type_checking=name == package):
         if isinstance(node, ast.Import):
             found.update(alias.name for alias in node.names if alias.name.split(".")[0] == package)
         elif isinstance(node, ast.ImportFrom):
@@ -197,11 +225,24 @@ def test_checker_fails_on_a_cycle(layered):
 def test_checker_sees_type_checking_imports_and_sibling_commands(layered):
     graph = layered(
         {
-            "commands/demo.py": "from typing import TYPE_CHECKING\nif TYPE_CHECKING:\n    from pkg.commands.impair import R\n",
+            "commands/demo.py": "from typing import TYPE_CHECKING\nif TYPE_CHECKING:\n    from pkg.commands.impair "
+            "import R\n",
             "commands/impair.py": "R = 1\n",
         }
     )
     assert violations(graph) == ["pkg.commands.demo imports another command's module pkg.commands.impair"]
+
+
+def test_checker_allows_type_checking_re_exports_in_the_root_only(layered):
+    root = "from typing import TYPE_CHECKING\nif TYPE_CHECKING:\n    from pkg.protocol.wire import X as X\n"
+    graph = layered({"__init__.py": root, "protocol/wire.py": "X = 1\n"})
+    assert violations(graph) == []
+    # The same block anywhere else still counts: coding may not see protocol, even for types.
+    graph = layered({"coding/field.py": root, "protocol/wire.py": "X = 1\n"})
+    assert violations(graph) == ["pkg.coding.field (layer coding) imports pkg.protocol.wire (higher layer protocol)"]
+    # And an import after the block, or in its else branch, runs: it counts in the root too.
+    graph = layered({"__init__.py": root + "else:\n    from pkg.protocol import wire\n", "protocol/wire.py": "X = 1\n"})
+    assert "pkg (package root) imports pkg.protocol.wire: load it lazily instead" in violations(graph)
 
 
 def test_checker_fails_on_an_eager_root_import(layered):

@@ -16,6 +16,7 @@ all seeds are fixed, so a pass is reproducible).  Sources of the variances:
 
 from __future__ import annotations
 
+import itertools
 import math
 import random
 
@@ -269,7 +270,7 @@ def test_estimator_undefined_states():
 
 def brute_force(flags: list[bool]):
     """Recount everything from the list: the slow obvious way, to check the O(1) bookkeeping."""
-    pairs = list(zip(flags, flags[1:]))
+    pairs = list(itertools.pairwise(flags))
     gb = sum(1 for a, b in pairs if not a and b)
     gg = sum(1 for a, b in pairs if not a and not b)
     bg = sum(1 for a, b in pairs if a and not b)

@@ -89,7 +89,9 @@ def run_clients(destination: tuple[str, int], count: int, rate: float) -> tuple[
                 pending.append((now, next_client, sock))
                 next_client += 1
             for key, _ in selector.select(timeout=0.002):
-                client, sock = key.data, key.fileobj
+                client, fileobj = key.data, key.fileobj
+                assert isinstance(fileobj, socket.socket)
+                sock = fileobj
                 try:
                     data = sock.recv(65_535)
                 except BlockingIOError:

@@ -7,6 +7,8 @@ here independently of the pacer; the drop rule against the issue's published ord
 
 from __future__ import annotations
 
+from typing import Any
+
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
@@ -14,6 +16,7 @@ from hypothesis import strategies as st
 from fecproxy.protocol.pacer import (
     IPV4_UDP_HEADER_BYTES,
     MAX_CONTROL_QUEUED,
+    Departure,
     Pacer,
     PacerConfigError,
     PacerDrop,
@@ -24,9 +27,9 @@ from fecproxy.protocol.pacer import (
 SOURCE, REPAIR, CONTROL = PacketKind.SOURCE, PacketKind.REPAIR, PacketKind.CONTROL
 
 
-def drain(pacer: Pacer, now: float, until: float) -> list[tuple[float, object]]:
+def drain(pacer: Pacer[Any], now: float, until: float) -> list[tuple[float, Departure[Any]]]:
     """Run the fake clock from ``now`` to ``until`` waking at every deadline; (time, departure)."""
-    out = []
+    out: list[tuple[float, Departure[Any]]] = []
     while True:
         for d in pacer.datagrams_to_send(now):
             out.append((now, d))

@@ -225,8 +225,10 @@ def test_residual_loss_matches_the_plan(baseline, capsys):
     hidden = invisible_share(LINK, K, M)
     with capsys.disabled():
         print(
-            f"\n[link e2e] k={K} m={M} on {LINK_LOSS:.0%}/burst {LINK_BURST:g}: {sent} datagrams in {baseline['elapsed']:.1f} s; "
-            f"plan {predicted['residual_loss']:.4f} ± {sd:.4f} (1 sd); sink {at_sink:.4f}; receiver counter {counted:.4f} "
+            f"\n[link e2e] k={K} m={M} on {LINK_LOSS:.0%}/burst {LINK_BURST:g}: {sent} datagrams in "
+            f"{baseline['elapsed']:.1f} s; "
+            f"plan {predicted['residual_loss']:.4f} ± {sd:.4f} (1 sd); sink {at_sink:.4f}; receiver counter "
+            f"{counted:.4f} "
             f"(expected {predicted['residual_loss'] - hidden:.4f}: plan − invisible {hidden:.4f}); "
             f"relay measured loss {baseline['impair']['fecproxy_impair_loss_ratio{direction=forward}']:.4f} "
             f"burst {baseline['impair']['fecproxy_impair_mean_burst_packets{direction=forward}']:.3f}"
@@ -290,7 +292,8 @@ def test_recommendation_is_confirmed_by_the_pair(tmp_path, capsys):
         at_sink = 1 - result["received"] / sent
         with capsys.disabled():
             print(
-                f"\n[link e2e] recommended k={k} m={m} (overhead {best['overhead']:.3f}): plan {best['residual_loss']:.4f} "
+                f"\n[link e2e] recommended k={k} m={m} (overhead {best['overhead']:.3f}): plan "
+                f"{best['residual_loss']:.4f} "
                 f"± {sd:.4f}, sink {at_sink:.4f}, target {target}"
             )
         assert abs(at_sink - best["residual_loss"]) < Z * sd

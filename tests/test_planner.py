@@ -5,6 +5,7 @@ The ``fecproxy plan`` command is tested in test_plan_command.py.
 
 from __future__ import annotations
 
+import itertools
 import math
 
 import numpy as np
@@ -90,7 +91,7 @@ def test_repair_range_is_consistent_and_monotone():
         single = evaluate(channel, 12, f.m, depth=2)
         assert single.residual_loss == pytest.approx(f.residual_loss, rel=1e-12, abs=1e-300)
     residuals = [f.residual_loss for f in rows]
-    assert all(a >= b for a, b in zip(residuals, residuals[1:]))
+    assert all(a >= b for a, b in itertools.pairwise(residuals))
     # m = 0: nothing is recovered, residual = the average loss; block failure = P(any loss).
     assert rows[0].residual_loss == pytest.approx(channel.average_loss, rel=1e-12)
 
@@ -108,9 +109,9 @@ def test_small_case_by_enumeration():
     failure = residual = 0.0
     n = k + m
     for states in itertools.product([0, 1], repeat=n):
-        path = pi[states[0]] * np.prod([t[a, b] for a, b in zip(states, states[1:])])
+        path = pi[states[0]] * np.prod([t[a, b] for a, b in itertools.pairwise(states)])
         for lost in itertools.product([0, 1], repeat=n):
-            prob = path * np.prod([e[s] if x else 1 - e[s] for s, x in zip(states, lost)])
+            prob = path * np.prod([e[s] if x else 1 - e[s] for s, x in zip(states, lost, strict=True)])
             if sum(lost) > m:
                 failure += prob
                 residual += prob * sum(lost[:k]) / k

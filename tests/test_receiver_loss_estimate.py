@@ -40,7 +40,7 @@ from fecproxy.linkmodel.loss_models import GilbertElliott, GilbertElliottChannel
 from fecproxy.protocol.decoder import BlockDecoder, DecoderSettings
 from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
 from fecproxy.protocol.events import BlockReport
-from fecproxy.protocol.wire import parse
+from fecproxy.protocol.wire import ControlPacket, parse
 
 Z = 4.0  # standard errors allowed
 
@@ -92,6 +92,7 @@ def run_pair(channel: GilbertElliott, k: int, m: int, datagrams: int, seed: str)
         for position, pkt in enumerate(encoder.send(b"%08d" % i, 1, now)):
             lost = link.lose()
             parsed = parse(pkt, max_datagram=32)
+            assert not isinstance(parsed, ControlPacket)
             on_link.setdefault(parsed.sbn, {})[parsed.esi] = lost
             if position == 0:
                 truth.append(lost)

@@ -34,7 +34,8 @@ async def echo_server(sock, *, task_status=trio.TASK_STATUS_IGNORED):
         await sock.sendto(b"re:" + data, address)
 
 
-async def start_pair(nursery, forward=LinkImpairment(), back=None, seed=1):
+async def start_pair(nursery, forward=None, back=None, seed=1):
+    forward = forward or LinkImpairment()
     server = await udp_socket()
     await nursery.start(echo_server, server)
     config = RelayConfig(

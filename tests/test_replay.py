@@ -90,7 +90,9 @@ class SetModel:
     """The obvious definition: everything accepted, and the highest; nothing clever."""
 
     def __init__(self, window: int):
-        self.window, self.seen, self.highest = window, set(), None
+        self.window = window
+        self.seen: set[int] = set()
+        self.highest: int | None = None
 
     def accept(self, sequence: int) -> Verdict:
         if self.highest is not None and sequence <= self.highest:

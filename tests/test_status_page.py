@@ -294,7 +294,8 @@ REFRESHES = "Number((document.body && document.body.dataset.refreshes) || 0)"
 
 READ_PAGE = """(() => {
   const cells = {};
-  for (const el of document.querySelectorAll("[data-metric]")) cells[el.dataset.metric] = [el.dataset.value, el.textContent];
+  for (const el of document.querySelectorAll("[data-metric]"))
+    cells[el.dataset.metric] = [el.dataset.value, el.textContent];
   const pick = (id) => [document.getElementById(id).dataset.value, document.getElementById(id).textContent];
   const plan = document.getElementById("plan-code");
   return {

@@ -14,8 +14,9 @@ so a block closed early keeps a valid code: the receiver needs only the block's 
 from __future__ import annotations
 
 from collections import OrderedDict
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from functools import lru_cache
+from typing import Any
 
 import numpy as np
 
@@ -56,37 +57,33 @@ def _generator(k: int, n: int) -> np.ndarray:
     return gm
 
 
-def _as_symbols(symbols, count: int | None, what: str) -> np.ndarray:
+def _as_symbols(symbols: object, count: int | None, what: str) -> np.ndarray:
     """Accept a (count, L) uint8 array or a sequence of equal-length bytes-likes."""
     if isinstance(symbols, np.ndarray):
         array = symbols
         if array.dtype != np.uint8 or array.ndim != 2:
             raise CodecError(f"{what} must be a 2-D uint8 array, got {array.dtype} with shape {array.shape}")
+    elif isinstance(symbols, Iterable):
+        array = _stack(list(symbols), what)
     else:
-        try:
-            rows = list(symbols)
-        except TypeError:
-            raise CodecError(
-                f"{what} must be a 2-D uint8 array or a sequence of bytes, got {type(symbols).__name__}"
-            ) from None
-        array = _stack(rows, what)
+        raise CodecError(f"{what} must be a 2-D uint8 array or a sequence of bytes, got {type(symbols).__name__}")
     if count is not None and array.shape[0] != count:
         raise CodecError(f"{what} must have {count} symbols, got {array.shape[0]}")
     return array
 
 
-def _symbol_length(symbol, what: str) -> int:
+def _symbol_length(symbol: object, what: str) -> int:
     """Length of one symbol given as bytes-like or 1-D uint8 array; anything else is a CodecError."""
     if isinstance(symbol, np.ndarray):
         if symbol.dtype != np.uint8 or symbol.ndim != 1:
             raise CodecError(f"{what} symbol must be a 1-D uint8 array, got {symbol.dtype} with shape {symbol.shape}")
-        return symbol.shape[0]
+        return int(symbol.shape[0])
     if isinstance(symbol, (bytes, bytearray, memoryview)):
         return memoryview(symbol).nbytes
     raise CodecError(f"{what} symbol must be bytes or a 1-D uint8 array, got {type(symbol).__name__}")
 
 
-def _stack(rows: Sequence, what: str, length: int | None = None) -> np.ndarray:
+def _stack(rows: Sequence[Any], what: str, length: int | None = None) -> np.ndarray:
     """One writable (len(rows), L) uint8 array from equal-length symbols, copying each byte once.
 
     The fast path joins the rows' buffers in one C call (bytes, bytearray, memoryview
@@ -131,7 +128,9 @@ class BlockCode:
         self.generator = _generator(k, n)
         # Repair symbol j is column j of GM applied to the source: (n − k, k) coefficients.
         self._encoder = gf256.Multiplier(self.generator[:, k:].T)
-        self._inverses: OrderedDict[tuple, tuple[gf256.Multiplier, np.ndarray]] = OrderedDict()
+        self._inverses: OrderedDict[tuple[tuple[int, ...], tuple[int, ...]], tuple[gf256.Multiplier, np.ndarray]] = (
+            OrderedDict()
+        )
         self._pattern_cache = pattern_cache
 
     def __repr__(self) -> str:
@@ -141,7 +140,7 @@ class BlockCode:
     def m(self) -> int:
         return self.n - self.k
 
-    def encode(self, source) -> np.ndarray:
+    def encode(self, source: object) -> np.ndarray:
         """Repair symbols k..n−1 as an (n−k, L) uint8 array."""
         data = _as_symbols(source, self.k, "source")
         return self._encoder(data)
@@ -182,7 +181,13 @@ class BlockCode:
                 self._recover_together(selected, group[start : start + per_call], e, results)
         return results
 
-    def _recover_together(self, selected: list, members: list[int], e: int, results: list) -> None:
+    def _recover_together(
+        self,
+        selected: list[tuple[list[int], list[int], np.ndarray]],
+        members: list[int],
+        e: int,
+        results: list[dict[int, np.ndarray]],
+    ) -> None:
         """Rebuild the blocks ``members`` of ``selected`` (all with e losses) in one kernel pass."""
         positions = np.empty((len(members), e + self.k), dtype=np.intp)
         for row, position in enumerate(members):
@@ -218,7 +223,7 @@ class BlockCode:
             received = {int(index): symbol for index, symbol in received.items()}
         if len(indices) < self.k:
             raise NotEnoughSymbols(f"need {self.k} encoding symbols to decode, got {len(indices)}")
-        symbols = list(received.values())
+        symbols: list[Any] = list(received.values())
         try:
             lengths = set(map(len, symbols))
         except TypeError:
@@ -230,7 +235,7 @@ class BlockCode:
         known_count = self.k - len(missing)
         repairs = indices[known_count : self.k]  # sorted: sources first, then the first e repairs
         if missing:
-            stand_in = dict(zip(missing, repairs))
+            stand_in = dict(zip(missing, repairs, strict=True))
             rows = [received[stand_in.get(i, i)] for i in range(self.k)]
         else:
             rows = [received[i] for i in range(self.k)]
@@ -272,7 +277,7 @@ def _build_log_difference() -> np.ndarray:
     """
     positions = np.arange(MAX_ENCODING_SYMBOLS)
     points = gf256.EXP[positions]
-    table = gf256.LOG[points[:, None] ^ points[None, :]].astype(np.int32)
+    table: np.ndarray = gf256.LOG[points[:, None] ^ points[None, :]].astype(np.int32)
     np.fill_diagonal(table, 0)
     return table
 
@@ -297,7 +302,9 @@ def lagrange_coefficients(missing: Sequence[int], points: Sequence[int]) -> np.n
     is a handful of whole-array operations on e×k and k×k integers; no matrix inversion.
     Columns follow the order of ``points``.  Every coefficient is non-zero (x_m is never a point).
     """
-    return lagrange_coefficients_many(np.array([[*missing, *points]], dtype=np.intp), len(missing))[0]
+    many = lagrange_coefficients_many(np.array([[*missing, *points]], dtype=np.intp), len(missing))
+    coefficients: np.ndarray = many[0]
+    return coefficients
 
 
 def lagrange_coefficients_many(positions: np.ndarray, e: int) -> np.ndarray:
@@ -309,7 +316,8 @@ def lagrange_coefficients_many(positions: np.ndarray, e: int) -> np.ndarray:
     # −2·254 .. 254 and one lookup in the thrice-repeated exponent table finishes it.
     sums = differences.sum(axis=2) % (gf256.ORDER - 1)
     logs = (sums[:, :e, None] + _EXP_OFFSET) - differences[:, :e] - sums[:, None, e:]
-    return _EXP_WRAPPED[logs]
+    coefficients: np.ndarray = _EXP_WRAPPED[logs]
+    return coefficients
 
 
 #: _EXP_WRAPPED[i + _EXP_OFFSET] = alpha^i for −510 ≤ i < 255: the exponent table repeated so a

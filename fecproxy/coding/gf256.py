@@ -49,7 +49,7 @@ EXP, LOG = _build_tables()
 def _build_mul_table() -> np.ndarray:
     """MUL[a, b] = a·b: 64 KiB, small enough to keep and fast to index with numpy."""
     a = np.arange(ORDER)
-    table = EXP[(LOG[a][:, None] + LOG[a][None, :])].astype(np.uint8)
+    table: np.ndarray = EXP[(LOG[a][:, None] + LOG[a][None, :])].astype(np.uint8)
     table[0, :] = 0
     table[:, 0] = 0
     return table
@@ -85,7 +85,8 @@ def matmul_small(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     a = np.asarray(a, dtype=np.uint8)
     b = np.asarray(b, dtype=np.uint8)
     products = MUL[a[:, :, None], b[None, :, :]]  # (rows, inner, cols)
-    return np.bitwise_xor.reduce(products, axis=1).astype(np.uint8)
+    product: np.ndarray = np.bitwise_xor.reduce(products, axis=1).astype(np.uint8)
+    return product
 
 
 def invert_matrix(m: np.ndarray) -> np.ndarray:
@@ -210,7 +211,8 @@ def _digit_values(digit_bits: int) -> np.ndarray:
     width = digits.bit_length() - 1
     order = [int(format(d, f"0{width}b")[::-1], 2) if width else 0 for d in range(digits)]
     shifts = np.array(order) * digit_bits
-    return ((np.arange(ORDER)[:, None] >> shifts[None, :]) & ((1 << digit_bits) - 1)).astype(np.intp)
+    values: np.ndarray = ((np.arange(ORDER)[:, None] >> shifts[None, :]) & ((1 << digit_bits) - 1)).astype(np.intp)
+    return values
 
 
 _DIGIT_VALUES = {bits: _digit_values(bits) for bits in (2, 4)}

@@ -149,7 +149,8 @@ def combine(coefs: np.ndarray, symbols: np.ndarray) -> np.ndarray:
     coefs = np.asarray(coefs, dtype=np.uint8)
     if symbols.shape[0] != coefs.size:
         raise ValueError(f"{coefs.size} coefficients for {symbols.shape[0]} symbols")
-    return gf256.Multiplier(coefs[None, :])(symbols)[0]
+    combined: np.ndarray = gf256.Multiplier(coefs[None, :])(symbols)[0]
+    return combined
 
 
 def encode_repair(symbols: Sequence[bytes | np.ndarray], repair_key: int, dt: int = MAX_DENSITY) -> bytes:
@@ -165,12 +166,14 @@ def encode_repair(symbols: Sequence[bytes | np.ndarray], repair_key: int, dt: in
 
 def _scale_rows(factors: np.ndarray, row: np.ndarray) -> np.ndarray:
     """Outer product over GF(2^8): out[r] = factors[r] · row."""
-    return gf256.MUL[factors[:, None], row[None, :]]
+    scaled: np.ndarray = gf256.MUL[factors[:, None], row[None, :]]
+    return scaled
 
 
 def _combine_rows(factors: np.ndarray, rows: np.ndarray) -> np.ndarray:
     """XOR_r factors[r] · rows[r] over GF(2^8), for a few rows (the pivots a new row meets)."""
-    return np.bitwise_xor.reduce(gf256.MUL[factors[:, None], rows], axis=0)
+    combined: np.ndarray = np.bitwise_xor.reduce(gf256.MUL[factors[:, None], rows], axis=0)
+    return combined
 
 
 class WindowSystem:

@@ -82,7 +82,8 @@ def format_summary(relay: UdpRelay) -> str:
             f"{direction}: submitted {stats.submitted}, on the air {stats.sent}, delivered {stats.delivered} "
             f"(duplicates {stats.duplicates})\n"
             f"  loss model: lost {stats.lost}, {measured}\n"
-            f"  drops: queue {stats.queue_drops}, blackout {stats.blackout_drops}, in-flight limit {stats.in_flight_drops}, "
+            f"  drops: queue {stats.queue_drops}, blackout {stats.blackout_drops}, in-flight limit "
+            f"{stats.in_flight_drops}, "
             f"no client {shell['no_client']}, send errors {shell['send_error']}"
         )
     return "\n".join(lines)
@@ -266,7 +267,8 @@ async def _serve(
             async with trio.open_nursery() as nursery:
                 await nursery.start(relay.run)
                 print(
-                    f"fecproxy impair: listening on {format_sockaddr(relay.listen_address)}, relaying to {format_sockaddr(config.to)}",
+                    f"fecproxy impair: listening on {format_sockaddr(relay.listen_address)}, relaying to "
+                    f"{format_sockaddr(config.to)}",
                     flush=True,
                 )
                 print(f"forward: {config.forward.describe()}", flush=True)

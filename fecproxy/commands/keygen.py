@@ -25,7 +25,10 @@ KEY_FILE_MODE = 0o600
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
-    parser.epilog = f"exit status: {EXIT_WRITTEN} = key written, {EXIT_NOT_WRITTEN} = not written (file exists or cannot be created)"
+    parser.epilog = (
+        f"exit status: {EXIT_WRITTEN} = key written, {EXIT_NOT_WRITTEN} = not written (file exists or "
+        f"cannot be created)"
+    )
     parser.add_argument("path", metavar="PATH", help="the key file to create; an existing file is never overwritten")
 
 

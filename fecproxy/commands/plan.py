@@ -28,7 +28,6 @@ from fecproxy.linkmodel.planner import (
     DEFAULT_SHORT_BLOCK_RULE,
     DEFAULT_TARGET,
     SENDER_MAX_INTERLEAVE,
-    SHORT_BLOCK_RULES,
     Candidate,
     Plan,
     PlanError,
@@ -40,6 +39,7 @@ from fecproxy.linkmodel.planner import (
     parse_int_list,
     plan,
 )
+from fecproxy.protocol.repair_rule import SHORT_BLOCK_RULES
 
 #: Gauges the receiver exports from its online estimate (transition counting over the source
 #: datagrams it saw or missed); ``--from-metrics`` reads these two.
@@ -72,7 +72,8 @@ EPILOG = (
     "With --mean-bytes and --max-bytes (the datagram sizes of the flow, or of one fec.size_classes class) "
     "the byte overhead m'·(repair header + 3 + max)/(k'·(source header + mean)) is shown and can be "
     "budgeted (--max-byte-overhead), and m' is cut as the sender cuts it to keep repair bytes at or below "
-    f"source bytes (RFC 6363 §8.2). Interleave depths go up to the sender's fec.interleave limit, {SENDER_MAX_INTERLEAVE}. "
+    f"source bytes (RFC 6363 §8.2). Interleave depths go up to the sender's fec.interleave limit, "
+    f"{SENDER_MAX_INTERLEAVE}. "
     "Exit status: 0 with a recommendation (or in evaluation mode), 1 when no candidate meets the "
     "target within the budgets, 2 on bad input."
 )
@@ -454,7 +455,8 @@ def format_table(result: Plan, running: dict | None = None) -> str:
     effective_head = " " + "k'".rjust(4) + " " + "m'".rjust(4) if short else ""
     bytes_head = f" {'bytes_ovh':>9}" if req.bytes_modelled else ""
     lines.append(
-        f"{'':1} {'k':>4} {'m':>4}{effective_head} {'D':>3} {'overhead':>8}{bytes_head} {'block_fail':>10} {'residual':>10} "
+        f"{'':1} {'k':>4} {'m':>4}{effective_head} {'D':>3} {'overhead':>8}{bytes_head} {'block_fail':>10} "
+        f"{'residual':>10} "
         f"{'span_ms':>8}  verdict"
     )
     for c in result.candidates:
@@ -477,13 +479,16 @@ def format_table(result: Plan, running: dict | None = None) -> str:
         lines.append(f"sender config: {keys}, fec.flush_ms: {req.flush_time * 1000:g}")
         # The same aim, for a sender that follows the link itself (fec.adapt, from loss reports).
         lines.append(
-            f"or let the sender choose m from its loss reports: fec.block_size: {best.k}, fec.interleave: {best.depth}, "
-            f"fec.flush_ms: {req.flush_time * 1000:g}, fec.adapt: {{target_residual: {req.target:g}, max_overhead: {req.max_overhead:g}}}"
+            f"or let the sender choose m from its loss reports: fec.block_size: {best.k}, fec.interleave: "
+            f"{best.depth}, "
+            f"fec.flush_ms: {req.flush_time * 1000:g}, fec.adapt: "
+            f"{{target_residual: {req.target:g}, max_overhead: {req.max_overhead:g}}}"
         )
     else:
         lowest = min(result.candidates, key=lambda c: c.residual_loss)
         lines.append(
-            f"no candidate meets residual loss {req.target:g} within the budgets; the lowest is {lowest.residual_loss:.3g} "
+            f"no candidate meets residual loss {req.target:g} within the budgets; the lowest is "
+            f"{lowest.residual_loss:.3g} "
             f"at k={lowest.k} m={lowest.m} D={lowest.depth} — allow more overhead, latency or interleaving"
         )
     if running:
@@ -492,19 +497,22 @@ def format_table(result: Plan, running: dict | None = None) -> str:
             " (interleave depth is not on the wire)"
         )
     lines.append(
-        "(each row: the fewest repair packets meeting the target for that k and D, else the most the overhead budget allows)"
+        "(each row: the fewest repair packets meeting the target for that k and D, else the most the overhead budget "
+        "allows)"
     )
     caps = {d: effective_k(max(req.k_values), req.rate, req.flush_time, d) for d in req.depths}
     capped = {d: cap for d, cap in caps.items() if any(k > cap for k in req.k_values)}
     if capped:
         at = ", ".join(f"{cap} at D={d}" for d, cap in capped.items())
         lines.append(
-            f"(at {req.rate:g} datagrams/s a block the {req.flush_time * 1000:g} ms flush timer closes holds at most {at}: "
+            f"(at {req.rate:g} datagrams/s a block the {req.flush_time * 1000:g} ms flush timer closes holds at most "
+            f"{at}: "
             f"larger k send the same blocks, so a row repeating another's (k', m') is listed once)"
         )
     if short:
         lines.append(
-            f"(k', m': the block the sender really sends at this rate — closed by the {req.flush_time * 1000:g} ms flush "
+            f"(k', m': the block the sender really sends at this rate — closed by the {req.flush_time * 1000:g} ms "
+            f"flush "
             f"timer, repair by the {req.short_block_repair} short-block rule; the figures are those of (k', m'))"
         )
     return "\n".join(lines)
@@ -537,7 +545,7 @@ def _evaluate_one(args: argparse.Namespace, channel: GilbertElliott, depths: tup
         "overhead": figures.overhead,
         "block_failure": figures.block_failure,
         "residual_loss": figures.residual_loss,
-        "block_span_ms": None if args.rate is None else block_span(args.k, k_eff, args.rate, flush, depth) * 1000.0,
+        "block_span_ms": None if flush is None else block_span(args.k, k_eff, args.rate, flush, depth) * 1000.0,
         "channel": _channel_dict(channel),
     }
     if args.json:
@@ -547,7 +555,7 @@ def _evaluate_one(args: argparse.Namespace, channel: GilbertElliott, depths: tup
         short = (
             f" (effective k {k_eff} m {m_eff} at {args.rate:g}/s: the {flush * 1000:g} ms flush closes blocks short, "
             f"{args.short_block_repair} rule)"
-            if k_eff != args.k
+            if k_eff != args.k and flush is not None
             else ""
         )
         print(f"code: k={args.k} m={args.m} interleave D={depth}{short}, overhead {figures.overhead:.3f}")

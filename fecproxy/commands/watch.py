@@ -220,7 +220,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         "urls",
         nargs="+",
         metavar="URL",
-        help="metrics endpoint of a daemon (host:port or http://host:port/metrics); give the sender's and the receiver's",
+        help="metrics endpoint of a daemon (host:port or http://host:port/metrics); give the sender's and the "
+        "receiver's",
     )
     parser.add_argument("--interval", type=float, default=DEFAULT_INTERVAL_S, help="seconds between frames")
     parser.add_argument("--count", type=int, default=None, help="stop after this many frames (default: until Ctrl-C)")

@@ -8,6 +8,7 @@ from __future__ import annotations
 import ipaddress
 import re
 from dataclasses import dataclass
+from typing import Any
 
 from fecproxy.config.messages import clip, kind_of, show_value
 
@@ -114,7 +115,7 @@ def parse_address(text: str, *, allow_port_zero: bool = False, allow_unspecified
     return address
 
 
-def format_sockaddr(address) -> str:
+def format_sockaddr(address: tuple[Any, ...] | None) -> str:
     """A socket address tuple (IPv4 or IPv6) as ``host:port`` / ``[host]:port``; "-" for none."""
     if address is None:
         return "-"

@@ -7,10 +7,12 @@ for messages about a missing value.  The schema (``config/schema.py``) pairs eve
 
 from __future__ import annotations
 
-from collections.abc import Callable, Mapping
+from collections.abc import Mapping
 from enum import StrEnum
+from itertools import pairwise
+from typing import Any, Protocol
 
-from fecproxy.config.addresses import AddressError, parse_address
+from fecproxy.config.addresses import Address, AddressError, parse_address
 from fecproxy.config.messages import closest, key_text, kind_of, or_list, show_value
 
 
@@ -18,12 +20,21 @@ class Bad(Exception):
     pass
 
 
+class Checker(Protocol):
+    """What the schema pairs with a key: parses a raw YAML value, names what it expects."""
+
+    @property
+    def expected(self) -> str: ...
+
+    def __call__(self, value: object) -> Any: ...
+
+
 class Integer:
     def __init__(self, low: int, high: int, expected: str | None = None):
         self.low, self.high = low, high
         self.expected = expected or f"an integer {low}..{high}"
 
-    def __call__(self, value):
+    def __call__(self, value: object) -> int:
         if isinstance(value, bool) or not isinstance(value, int):
             raise Bad(f"is {kind_of(value)}; expected {self.expected}")
         if not self.low <= value <= self.high:
@@ -34,7 +45,7 @@ class Integer:
 class Boolean:
     expected = "true or false"
 
-    def __call__(self, value):
+    def __call__(self, value: object) -> bool:
         if not isinstance(value, bool):
             raise Bad(f"is {kind_of(value)}; expected {self.expected}")
         return value
@@ -45,7 +56,7 @@ class Choice:
         self.enum, self.what = enum, what
         self.expected = or_list([member.value for member in enum])
 
-    def __call__(self, value):
+    def __call__(self, value: object) -> StrEnum:
         if not isinstance(value, str):
             raise Bad(f"is {kind_of(value)}; expected {self.expected}")
         try:
@@ -65,7 +76,7 @@ class AddressField:
         else:
             self.expected = "HOST:PORT of a destination with port 1..65535, e.g. 192.0.2.10:7000 or [2001:db8::10]:7000"
 
-    def __call__(self, value):
+    def __call__(self, value: object) -> Address:
         if not isinstance(value, str):
             raise Bad(f"is {kind_of(value)}; expected {self.expected}")
         try:
@@ -77,7 +88,7 @@ class AddressField:
 class FilePath:
     expected = "the path of a key file, e.g. /etc/fecproxy/link.key (made by `fecproxy keygen PATH`)"
 
-    def __call__(self, value):
+    def __call__(self, value: object) -> str:
         if not isinstance(value, str):
             raise Bad(f"is {kind_of(value)}; expected {self.expected}")
         if not value.strip() or "\0" in value:
@@ -92,7 +103,7 @@ class Number:
         self.low, self.high, self.low_open, self.high_open = low, high, low_open, high_open
         self.expected = expected
 
-    def __call__(self, value):
+    def __call__(self, value: object) -> float:
         if isinstance(value, bool) or not isinstance(value, (int, float)):
             hint = ""
             if isinstance(value, str) and _looks_numeric(value):
@@ -115,7 +126,7 @@ class SizeBoundaries:
             f"a list of at most {max_count} increasing byte counts 1..{max_bytes}, e.g. [256] or [] for one class"
         )
 
-    def __call__(self, value):
+    def __call__(self, value: object) -> tuple[int, ...]:
         if not isinstance(value, list):
             raise Bad(f"is {kind_of(value)}; expected {self.expected}")
         if len(value) > self.max_count:
@@ -123,7 +134,7 @@ class SizeBoundaries:
         for item in value:
             if isinstance(item, bool) or not isinstance(item, int) or not 1 <= item <= self.max_bytes:
                 raise Bad(f"holds {show_value(item)}; expected {self.expected}")
-        if any(a >= b for a, b in zip(value, value[1:])):
+        if any(a >= b for a, b in pairwise(value)):
             raise Bad(f"is not increasing; expected {self.expected}")
         return tuple(value)
 
@@ -139,23 +150,23 @@ def _looks_numeric(text: str) -> bool:
 class BadKeys(Exception):
     """Faults inside a nested mapping: (key, text) pairs, each reported under its own path."""
 
-    def __init__(self, faults: list[tuple[str, str]]):
+    def __init__(self, faults: list[tuple[str, str]]) -> None:
         self.faults = faults
 
 
 class NestedMapping:
     """A nested mapping of settings (like fec.adapt); missing keys take the dataclass defaults."""
 
-    def __init__(self, cls: type, keys: dict[str, Callable], what: str, *, nullable: frozenset[str] = frozenset()):
+    def __init__(self, cls: type[Any], keys: dict[str, Checker], what: str, *, nullable: frozenset[str] = frozenset()):
         self.cls, self.keys, self.what = cls, keys, what
         self.nullable = nullable  # nested keys where null means "not set" (the default applies)
         self.expected = f"a mapping of {what} settings ({', '.join(keys)})"
 
-    def __call__(self, value):
+    def __call__(self, value: object) -> Any:
         if not isinstance(value, Mapping):
             raise Bad(f"is {kind_of(value)}; expected {self.expected}")
         faults: list[tuple[str, str]] = []
-        parsed = {}
+        parsed: dict[str, Any] = {}
         for key, raw in value.items():
             name = key_text(key)
             check = self.keys.get(name)
@@ -164,7 +175,8 @@ class NestedMapping:
                 faults.append(
                     (
                         name,
-                        f"unknown key; {f'did you mean {near}?' if near else 'valid keys here are ' + ', '.join(self.keys)}",
+                        f"unknown key; "
+                        f"{f'did you mean {near}?' if near else 'valid keys here are ' + ', '.join(self.keys)}",
                     )
                 )
             elif raw is None and name in self.nullable:

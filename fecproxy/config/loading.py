@@ -8,6 +8,7 @@ import errno
 import os
 from collections.abc import Mapping
 from pathlib import Path
+from typing import Any
 
 import yaml
 
@@ -33,12 +34,12 @@ MAX_CONFIG_FILE_BYTES = 1024 * 1024
 class _StrictLoader(yaml.SafeLoader):
     """SafeLoader that records duplicate keys (PyYAML silently keeps the last one)."""
 
-    def __init__(self, stream):
+    def __init__(self, stream: str) -> None:
         super().__init__(stream)
         self.duplicates: list[tuple[str, int, int]] = []
 
-    def construct_mapping(self, node, deep=False):
-        seen = set()
+    def construct_mapping(self, node: yaml.MappingNode, deep: bool = False) -> dict[Any, Any]:
+        seen: set[str] = set()
         for key_node, _ in node.value:
             if isinstance(key_node, yaml.ScalarNode):
                 key = key_node.value

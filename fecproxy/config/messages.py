@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import difflib
 import json
-from collections.abc import Mapping
+from collections.abc import Iterable, Mapping
 
 #: difflib ratio at which an unknown key is close enough to suggest (difflib's own default).
 SUGGESTION_CUTOFF = 0.6
@@ -12,7 +12,7 @@ SUGGESTION_CUTOFF = 0.6
 MAX_SHOWN_VALUE_CHARS = 60
 
 
-def kind_of(value) -> str:
+def kind_of(value: object) -> str:
     if value is None:
         return "null"
     if isinstance(value, bool):
@@ -30,7 +30,7 @@ def kind_of(value) -> str:
     return f"a {type(value).__name__}"
 
 
-def show_value(value) -> str:
+def show_value(value: object) -> str:
     """A bad value as the user would recognise it from the YAML."""
     if value is None:
         return "null"
@@ -53,7 +53,7 @@ def clip(text: str, limit: int = MAX_SHOWN_VALUE_CHARS) -> str:
     return text if len(text) <= limit else text[: limit - 1] + "…"
 
 
-def key_text(key) -> str:
+def key_text(key: object) -> str:
     if isinstance(key, bool):
         return "true" if key else "false"
     return key if isinstance(key, str) else show_value(key)
@@ -63,7 +63,7 @@ def or_list(words: list[str]) -> str:
     return ", ".join(words[:-1]) + f" or {words[-1]}" if len(words) > 1 else words[0]
 
 
-def closest(word: str, candidates) -> str | None:
+def closest(word: str, candidates: Iterable[str]) -> str | None:
     lowered = {candidate.lower(): candidate for candidate in candidates}
     match = difflib.get_close_matches(word.lower(), list(lowered), n=1, cutoff=SUGGESTION_CUTOFF)
     return lowered[match[0]] if match else None

@@ -259,7 +259,8 @@ class _Parser:
         if not isinstance(document, Mapping):
             raise ConfigError(
                 [
-                    f"{self.source}: the document is {kind_of(document)}; expected a mapping of settings (key: value lines)"
+                    f"{self.source}: the document is {kind_of(document)}; "
+                    "expected a mapping of settings (key: value lines)"
                 ]
             )
         for key, raw in document.items():
@@ -374,13 +375,15 @@ class _Parser:
             if adapt.min_repair > adapt.max_repair:
                 self.error(
                     "fec.adapt.min_repair",
-                    f"{adapt.min_repair} is above fec.adapt.max_repair {adapt.max_repair}; expected min_repair ≤ max_repair",
+                    f"{adapt.min_repair} is above fec.adapt.max_repair "
+                    f"{adapt.max_repair}; expected min_repair ≤ max_repair",
                 )
             if k + adapt.max_repair > MAX_ENCODING_SYMBOLS:
                 self.error(
                     "fec.adapt.max_repair",
                     f"{adapt.max_repair} is too large with fec.block_size {k}; expected block_size + max_repair ≤ "
-                    f"{MAX_ENCODING_SYMBOLS} (RFC 5510 §8.2: n ≤ 255 in GF(2^8)), so max_repair ≤ {MAX_ENCODING_SYMBOLS - k}",
+                    f"{MAX_ENCODING_SYMBOLS} (RFC 5510 §8.2: n ≤ 255 in "
+                    f"GF(2^8)), so max_repair ≤ {MAX_ENCODING_SYMBOLS - k}",
                 )
         if adapt.max_overhead > 1 and allow is False:
             self.error(
@@ -394,7 +397,8 @@ class _Parser:
             self.error(
                 "fec.adapt.min_repair",
                 f"{adapt.min_repair} is above the {adapt.repair_ceiling(k)} repair packets that fec.adapt.max_overhead "
-                f"{adapt.max_overhead:g} allows with fec.block_size {k}; expected min_repair ≤ block_size × max_overhead",
+                f"{adapt.max_overhead:g} allows with fec.block_size "
+                f"{k}; expected min_repair ≤ block_size × max_overhead",
             )
         if self.values.get("reports.interval_ms") == 0:
             self.error(
@@ -441,12 +445,14 @@ class _Parser:
         if key_file is not None and previous is not None and key_file == previous:
             self.error(
                 "auth.previous_key_file",
-                f"{show_value(previous)} is the same file as auth.key_file; expected the old key's file during a rollover, or no previous_key_file",
+                f"{show_value(previous)} is the same file as auth.key_file; expected "
+                "the old key's file during a rollover, or no previous_key_file",
             )
         if self.values.get("auth.encrypt") is True and not crypto_available():
             self.error(
                 "auth.encrypt",
-                f"true needs the {CRYPTO_PACKAGE} package, which is not installed; run {CRYPTO_INSTALL_HINT}, or set auth.encrypt: false",
+                f"true needs the {CRYPTO_PACKAGE} package, which is not installed; "
+                f"run {CRYPTO_INSTALL_HINT}, or set auth.encrypt: false",
             )
 
     def check_flow_timeouts(self, first_exchange_given: bool) -> None:

@@ -6,6 +6,7 @@ Re-exported by :mod:`fecproxy.config.schema` (and so by :mod:`fecproxy.config`).
 
 from __future__ import annotations
 
+from collections.abc import Iterable
 from dataclasses import dataclass, field
 from enum import StrEnum
 
@@ -60,7 +61,7 @@ class LogFormat(StrEnum):
 class ConfigError(ValueError):
     """An invalid configuration; ``messages`` holds every fault found, one line each."""
 
-    def __init__(self, messages):
+    def __init__(self, messages: Iterable[str]) -> None:
         self.messages = tuple(messages)
         super().__init__("\n".join(self.messages))
 

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import dataclasses
 from collections.abc import Callable
+from typing import Any
 
 from fecproxy.config.checkers import (
     AddressField,
@@ -101,13 +102,13 @@ TOP_LEVEL_KEYS = (
     "auth",
 )
 
-_TOP_SCALARS: dict[str, Callable] = {
+_TOP_SCALARS: dict[str, Callable[..., Any]] = {
     "role": Choice(Role, "role"),
     "listen": _ADDRESS_TO_BIND,
     "forward": _DESTINATION,
 }
 
-_SECTIONS: dict[str, tuple[type, dict[str, Callable]]] = {
+_SECTIONS: dict[str, tuple[type, dict[str, Callable[..., Any]]]] = {
     "link": (LinkSection, {"bind": _ADDRESS_TO_BIND, "peer": _DESTINATION}),
     "fec": (
         FecSection,

@@ -62,6 +62,10 @@ class LossEstimator:
         if window is not None and (not isinstance(window, int) or window < 2):
             raise ChannelConfigError(f"window must be an int ≥ 2 samples (or None for all), got {window!r}")
         self.window = window
+        self.reset()
+
+    def reset(self) -> None:
+        """Forget every sample (the window size stays)."""
         #: Per sample in the window: bit 0 = lost, bit 1 = paired with the sample before it.
         self._flags: deque[int] = deque()
         #: Outcome of the last sample, or None when the next sample starts a new segment.
@@ -85,9 +89,10 @@ class LossEstimator:
     def observe(self, lost: bool) -> None:
         """One packet: True if it was lost, False if it arrived."""
         lost = bool(lost)
-        linked = self._last is not None
-        if linked:
-            self._count_pair(self._last, lost, +1)
+        previous = self._last
+        linked = previous is not None
+        if previous is not None:
+            self._count_pair(previous, lost, +1)
         self._last = lost
         self._samples += 1
         self._lost += lost
@@ -152,9 +157,6 @@ class LossEstimator:
             self.observe_run(lost, run - position)
             position = run
         self.end_segment()
-
-    def reset(self) -> None:
-        self.__init__(self.window)
 
     def estimate(self) -> LossEstimate:
         from_good = self._gg + self._gb

@@ -70,14 +70,19 @@ class Blackout:
             raise ImpairmentConfigError(f"blackout duration must be in (0, period], got {self.duration!r}")
         if self.offset is None:
             object.__setattr__(self, "offset", self.period)
-        if not (math.isfinite(self.offset) and self.offset >= 0):
+        if not (math.isfinite(self.first) and self.first >= 0):
             raise ImpairmentConfigError(f"blackout offset must be ≥ 0 s, got {self.offset!r}")
+
+    @property
+    def first(self) -> float:
+        """Seconds from start to the first outage: ``offset``, which __post_init__ fills when None."""
+        return self.period if self.offset is None else self.offset
 
     def active(self, elapsed: float) -> bool:
         """True when ``elapsed`` seconds after start fall inside an outage."""
-        if elapsed < self.offset:
+        if elapsed < self.first:
             return False
-        return (elapsed - self.offset) % self.period < self.duration
+        return (elapsed - self.first) % self.period < self.duration
 
     @classmethod
     def parse(cls, text: str) -> Blackout | None:

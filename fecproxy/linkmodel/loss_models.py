@@ -152,7 +152,8 @@ class GilbertElliott:
         bad = self.stationary_bad
         stationary = np.array([[1.0 - bad, bad], [1.0 - bad, bad]])
         decay = (1.0 - self.p - self.r) ** steps
-        return stationary + decay * (np.eye(2) - stationary)
+        matrix: np.ndarray = stationary + decay * (np.eye(2) - stationary)
+        return matrix
 
     def describe(self) -> str:
         return (

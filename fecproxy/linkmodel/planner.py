@@ -21,7 +21,7 @@ candidate codes in a fraction of a second.
   reported and budgeted, and m' is cut as the sender's RFC 6363 §8.2 byte rule cuts it.
 * Short blocks: when the datagram rate cannot fill k datagrams before the sender's flush timer, a
   block closes with k' < k datagrams and gets m' repair packets by the sender's own short-block
-  rule (:func:`fecproxy.repair_rule.repair_count`, the function the encoder calls), so the code
+  rule (:func:`fecproxy.protocol.repair_rule.repair_count`, the function the encoder calls), so the code
   evaluated is (k', m'), not (k, m).
 
 Residual loss = E[source packets lost and not recovered] / k, where a lost source packet is
@@ -31,8 +31,9 @@ unrecoverable exactly when its block has more than m losses in total (MDS: any k
 from __future__ import annotations
 
 import math
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 
@@ -117,7 +118,7 @@ def iid_residual_loss(k: int, m: int, loss: float) -> float:
     return loss * _binomial_upper_tail(k + m - 1, loss, m)
 
 
-def _block_loss_counts(channel: GilbertElliott, k: int, max_m: int, depth: int = 1):
+def _block_loss_counts(channel: GilbertElliott, k: int, max_m: int, depth: int = 1) -> Iterator[tuple[int, np.ndarray]]:
     """Yield (m, P[i, l]) for m = 0..max_m: the probability that a block of k source and m repair
     packets loses i source and l repair packets — the forward recursion along the block.
 
@@ -157,7 +158,8 @@ def block_loss_distribution(channel: GilbertElliott, k: int, m: int, depth: int 
     (e.g. the variance a test run must allow for) follow directly.
     """
     *_, (_, counts) = _block_loss_counts(channel, k, m, depth)
-    return counts
+    distribution: np.ndarray = counts
+    return distribution
 
 
 def evaluate_repair_range(channel: GilbertElliott, k: int, max_m: int, depth: int = 1) -> list[CodeFigures]:
@@ -212,7 +214,7 @@ def effective_code(
 ) -> tuple[int, int]:
     """(k', m'): the block the sender really sends for a configured (k, m) at this rate and flush time.
 
-    m' comes from the encoder's own rule (fecproxy.repair_rule), not a copy of it: proportional
+    m' comes from the encoder's own rule (fecproxy.protocol.repair_rule), not a copy of it: proportional
     gives ceil(m·k'/k), at least 1 when m > 0; full gives m.
     """
     _check_code(k, m, depth)
@@ -246,7 +248,8 @@ class PlanRequest:
             raise PlanError(f"latency budget must be > 0 seconds, got {self.latency_budget!r}")
         if not (0 <= self.max_overhead <= MAX_OVERHEAD):
             raise PlanError(
-                f"max overhead must be in [0, {MAX_OVERHEAD:g}] (RFC 6363 §8.2: repair rate never above the source rate), "
+                f"max overhead must be in [0, {MAX_OVERHEAD:g}] (RFC 6363 §8.2: repair rate never above the source "
+                f"rate), "
                 f"got {self.max_overhead!r}"
             )
         if not (0 < self.target < 1):
@@ -263,11 +266,12 @@ class PlanRequest:
             _check_code(1, 0, depth)
             if depth > SENDER_MAX_INTERLEAVE:
                 raise PlanError(
-                    f"interleave depth {depth} is more than the sender supports (fec.interleave ≤ {SENDER_MAX_INTERLEAVE})"
+                    f"interleave depth {depth} is more than the sender supports (fec.interleave ≤ "
+                    f"{SENDER_MAX_INTERLEAVE})"
                 )
         if (self.mean_bytes is None) != (self.max_bytes is None):
             raise PlanError("datagram sizes need both the mean and the longest size")
-        if self.mean_bytes is not None:
+        if self.mean_bytes is not None and self.max_bytes is not None:
             if not (
                 math.isfinite(self.mean_bytes) and 0 <= self.mean_bytes <= self.max_bytes <= wire.MAX_DATAGRAM_LIMIT
             ):
@@ -303,7 +307,7 @@ class PlanRequest:
     def byte_capped(self, k_effective: int, m_effective: int) -> int:
         """m' as the sender's RFC 6363 §8.2 byte rule leaves it for a block of mean-sized
         datagrams with one of the longest (the symbol length); unchanged without sizes."""
-        if self.mean_bytes is None:
+        if self.mean_bytes is None or self.max_bytes is None:
             return m_effective
         prefix = wire.SYMBOL_PREFIX_BYTES
         content = int(k_effective * (prefix + self.mean_bytes))
@@ -311,7 +315,7 @@ class PlanRequest:
 
     def byte_overhead(self, k_effective: int, m_effective: int) -> float | None:
         """Repair bytes per source byte on the link, headers included; None without sizes."""
-        if self.mean_bytes is None:
+        if self.mean_bytes is None or self.max_bytes is None:
             return None
         repair = m_effective * (wire.REPAIR_HEADER_BYTES + wire.SYMBOL_PREFIX_BYTES + self.max_bytes)
         return repair / (k_effective * (wire.SOURCE_HEADER_BYTES + self.mean_bytes))
@@ -354,7 +358,7 @@ class Candidate:
         """The sender's config keys that apply this row (fec.*)."""
         return {"fec.block_size": self.k, "fec.repair": self.m, "fec.interleave": self.depth}
 
-    def as_dict(self) -> dict:
+    def as_dict(self) -> dict[str, Any]:
         return {
             "k": self.k,
             "k_effective": self.k_effective,
@@ -382,7 +386,7 @@ class Plan:
     recommended: Candidate | None = None
 
 
-def _cost(c: Candidate) -> tuple:
+def _cost(c: Candidate) -> tuple[float, float, int, int, int]:
     """Cheapest first: lowest overhead, then lowest added delay, then the simpler code."""
     return (round(c.overhead, 12), round(c.span, 12), c.k_effective, c.depth, c.k)
 
@@ -427,11 +431,13 @@ def plan(request: PlanRequest) -> Plan:
             max_m = min(math.floor(k * request.max_overhead + _BUDGET_SLACK), MAX_BLOCK_PACKETS - k)
             m_eff = {m: request.byte_capped(k_eff, repair_count(k, m, k_eff, rule)) for m in range(max_m + 1)}
             in_budget = [m for m in range(max_m + 1) if m_eff[m] <= k_eff * request.max_overhead + _BUDGET_SLACK]
-            if request.max_byte_overhead is not None:
+            byte_budget = request.max_byte_overhead
+            if byte_budget is not None:
+                # byte_overhead is never None here: a byte budget needs the sizes (checked above).
                 in_budget = [
                     m
                     for m in in_budget
-                    if request.byte_overhead(k_eff, m_eff[m]) <= request.max_byte_overhead + _BUDGET_SLACK
+                    if (request.byte_overhead(k_eff, m_eff[m]) or 0.0) <= byte_budget + _BUDGET_SLACK
                 ] or [0]
             options = evaluate_repair_range(request.channel, k_eff, max(m_eff[m] for m in in_budget), depth)
             chosen = next((m for m in in_budget if options[m_eff[m]].residual_loss <= request.target), in_budget[-1])

@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
@@ -52,7 +53,7 @@ class Estimate:
     low: float
     high: float
 
-    def as_dict(self) -> dict:
+    def as_dict(self) -> dict[str, Any]:
         return {"mean": self.mean, "ci95": [self.low, self.high]}
 
 
@@ -66,7 +67,7 @@ class SimulatedCode:
     rebuilt: int
     datagrams: int
 
-    def as_dict(self) -> dict:
+    def as_dict(self) -> dict[str, Any]:
         return {
             "code": self.code,
             "overhead": self.overhead,
@@ -90,7 +91,7 @@ def _estimate(values: list[float]) -> Estimate:
 
 
 def _replicate(
-    make: tuple[str, dict], channel: GilbertElliott, rate: float, datagrams: int, seed: int
+    make: tuple[str, dict[str, Any]], channel: GilbertElliott, rate: float, datagrams: int, seed: int
 ) -> tuple[float, list[float], int]:
     """One replication: (residual loss, delays of rebuilt datagrams, link packets sent)."""
     kind, params = make
@@ -143,7 +144,13 @@ def _replicate(
 
 
 def simulate(
-    kind: str, params: dict, channel: GilbertElliott, rate: float, *, datagrams: int = DEFAULT_DATAGRAMS, seed: int = 1
+    kind: str,
+    params: dict[str, Any],
+    channel: GilbertElliott,
+    rate: float,
+    *,
+    datagrams: int = DEFAULT_DATAGRAMS,
+    seed: int = 1,
 ) -> SimulatedCode:
     """Residual loss and rebuilt datagrams' delay of one code, ``kind`` "block" (``params`` are
     EncoderSettings fields) or "sliding" (SlidingSettings fields), at ``rate`` datagrams/s."""

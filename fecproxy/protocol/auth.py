@@ -56,16 +56,15 @@ from __future__ import annotations
 import hmac
 import struct
 from dataclasses import dataclass
-from typing import NamedTuple
+from typing import NamedTuple, Protocol
 
 from fecproxy.protocol import keys, wire
 from fecproxy.protocol.replay import SEQUENCE_LIMIT, ReplayWindow
 
 #: The AUTH flag of the common header (bit 7).
 FLAG_AUTH = wire.FLAG_AUTH
-#: Proposed: bit 6 says the body is encrypted.  Kept visible so that a pair with ``encrypt`` set
-#: on one side only is told exactly that, not just "bad tag".  To be added to wire.py when the
-#: trailer is wired in.
+#: Bit 6 says the body is encrypted.  A flag of its own so that a pair with ``encrypt`` set on one
+#: side only is told exactly that, not just "bad tag".
 FLAG_ENCRYPTED = wire.FLAG_ENCRYPTED
 _AUTH_FLAGS = FLAG_AUTH | FLAG_ENCRYPTED
 
@@ -116,7 +115,16 @@ class SequenceExhausted(RuntimeError):
     """The sender's 64-bit sequence would wrap: it must restart (new salt) before sending more."""
 
 
-def _aead(key: bytes):
+class Aead(Protocol):
+    """What encrypted mode uses of ``cryptography``'s ChaCha20Poly1305 (an optional dependency,
+    so it is described here rather than imported)."""
+
+    def encrypt(self, nonce: bytes, data: bytes, associated_data: bytes | None, /) -> bytes: ...
+
+    def decrypt(self, nonce: bytes, data: bytes, associated_data: bytes | None, /) -> bytes: ...
+
+
+def _aead(key: bytes) -> Aead:
     """ChaCha20-Poly1305 from the optional ``cryptography`` package (``fecproxy[crypto]``)."""
     try:
         from cryptography.hazmat.primitives.ciphers.aead import ChaCha20Poly1305
@@ -131,7 +139,7 @@ class PacketKey:
 
     key_id: int
     mac_key: bytes
-    aead: object | None  # a ChaCha20Poly1305 instance in encrypted mode
+    aead: Aead | None  # a ChaCha20Poly1305 instance in encrypted mode
     fingerprint: str = ""  # keys.fingerprint: what people compare between the two sides' logs
 
     @classmethod
@@ -270,7 +278,8 @@ def verify(packet: bytes, keyring: Keyring) -> Verified:
         peer, here = ("encrypts", "does not") if encrypted else ("does not encrypt", "does")
         raise AuthError(
             "mode_mismatch",
-            f"the peer {peer} (auth.encrypt) but this side {here}: set auth.encrypt alike on both sides (or the packet is forged)",
+            f"the peer {peer} (auth.encrypt) but this side {here}: set auth.encrypt alike on both sides (or the "
+            f"packet is forged)",
             key_id,
         )
     candidates = keyring.candidates(key_id)
@@ -278,7 +287,8 @@ def verify(packet: bytes, keyring: Keyring) -> Verified:
         ours = ", ".join(key.describe() for key in (keyring.current, keyring.previous) if key is not None)
         raise AuthError(
             "unknown_key",
-            f"packet made with key id 0x{key_id:02x}, this side has {ours}: the two sides have different key files (or the packet is forged)",
+            f"packet made with key id 0x{key_id:02x}, this side has {ours}: the two sides have different key files "
+            f"(or the packet is forged)",
             key_id,
         )
     tag_start = len(packet) - TAG_BYTES
@@ -290,7 +300,7 @@ def verify(packet: bytes, keyring: Keyring) -> Verified:
                 plain = packet[:1] + _FLAG_BYTES[flags & ~_AUTH_FLAGS] + packet[2 : tag_start - _TRAILER_HEAD.size]
                 return Verified(plain, key_id, sequence, session, key is not keyring.current)
         else:
-            body = _decrypt(key, packet, sequence)
+            body = _decrypt(key.aead, packet, sequence)
             if body is not None:
                 plain = packet[:1] + _FLAG_BYTES[flags & ~_AUTH_FLAGS] + packet[2:HEADER_BYTES] + body
                 return Verified(plain, key_id, sequence, session, key is not keyring.current)
@@ -302,14 +312,14 @@ def verify(packet: bytes, keyring: Keyring) -> Verified:
     )
 
 
-def _decrypt(key: PacketKey, packet: bytes, sequence: int) -> bytes | None:
+def _decrypt(aead: Aead, packet: bytes, sequence: int) -> bytes | None:
     from cryptography.exceptions import InvalidTag
 
     nonce = packet[2:6] + _SEQUENCE.pack(sequence)
     associated = packet[:HEADER_BYTES] + packet[-TRAILER_BYTES:-TAG_BYTES]
     sealed = packet[HEADER_BYTES:-TRAILER_BYTES] + packet[-TAG_BYTES:]
     try:
-        return key.aead.decrypt(nonce, sealed, associated)
+        return aead.decrypt(nonce, sealed, associated)
     except InvalidTag:
         return None
 

@@ -308,8 +308,6 @@ class BlockDecoder(SessionTable):
             # data: it neither touches the session table nor teaches the shell its peer.
             self.stats.control_received += 1
             return [ControlReceived(pkt.session, pkt.body)]
-        if not isinstance(pkt, (wire.SourcePacket, wire.RepairPacket)):  # parse gives sliding ones only if asked
-            return [self._drop(DropReason.UNSUPPORTED, f"{type(pkt).__name__} is not a block packet")]
         events: list[Event] = []
         sess = self._sessions.get(pkt.session)
         if sess is None:

@@ -75,7 +75,7 @@ class MasterKey:
 
     __str__ = __repr__
 
-    def __eq__(self, other) -> bool:
+    def __eq__(self, other: object) -> bool:
         if not isinstance(other, MasterKey):
             return NotImplemented
         return hmac.compare_digest(self._secret, other._secret)

@@ -84,9 +84,7 @@ MAX_INTERVAL_MS = 0xFFFF
 
 
 class ReportError(PacketError):
-    """A loss-report body that fails validation; ``reason`` is the drop-counter label."""
-
-    reason = "malformed"
+    """A loss-report body that fails validation; its ``reason`` is the drop-counter label, "malformed"."""
 
 
 class UnsupportedReport(UnsupportedPacket):

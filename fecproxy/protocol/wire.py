@@ -25,8 +25,9 @@ Repair symbols cover, per source datagram, the RFC 6363 §4 / RFC 6865 §4 sourc
 "flow id ‖ length (2 bytes) ‖ datagram ‖ zero padding" up to the block's symbol size, with our
 flow id widened from the RFCs' one byte to three (slot and generation, so thousands of clients
 fit and a recycled slot is told from its previous client); those 5 bytes and the padding never
-travel in source packets, so a rebuilt datagram gets back its exact length and flow.  k travels only in repair packets: a block closed early by its flush
-timer has fewer datagrams than configured, and that is known only once it is closed.
+travel in source packets, so a rebuilt datagram gets back its exact length and flow.  k travels
+only in repair packets: a block closed early by its flush timer has fewer datagrams than
+configured, and that is known only once it is closed.
 The END flag on a source packet says "this is the last datagram of a block filled to its
 configured k", so a receiver with no loss can close the block without waiting for repair.  And
 every source packet tells the k of the block before it: when a block's last datagrams and all its
@@ -40,6 +41,7 @@ import struct
 from dataclasses import dataclass
 from enum import IntEnum
 from functools import partial
+from typing import Literal, overload
 
 from fecproxy.coding.codec import MAX_ENCODING_SYMBOLS
 from fecproxy.protocol.events import DropReason
@@ -83,13 +85,14 @@ MAX_K = MAX_ENCODING_SYMBOLS
 MAX_ESI = MAX_ENCODING_SYMBOLS - 1
 #: The length field is 16 bits; a datagram can't be longer than this in any block.
 MAX_DATAGRAM_LIMIT = 0xFFFF - SYMBOL_PREFIX_BYTES
-#: Room kept for a future authentication tag (HMAC-SHA-256 output is 32 bytes; RFC 6363 §9 and
-#: RFC 5510 §9 recommend authenticating source and repair packets).
+#: Room kept for the authentication trailer: the 32 bytes of a full HMAC-SHA-256 output, which hold
+#: auth.TRAILER_BYTES = 25 (key id, sequence, 16-byte tag).  RFC 6363 §9 and RFC 5510 §9 recommend
+#: authenticating source and repair packets.
 AUTH_TAG_RESERVE_BYTES = 32
 #: A repair packet is header (12 bytes) + symbol prefix (flow 3 + length 2, after RFC 6363 §4) +
 #: datagram, and should fit a 1500-byte Ethernet MTU (RFC 894) less 20 bytes of IPv4 header
-#: (RFC 791) and 8 of UDP (RFC 768), with 32 bytes kept for an authentication tag
-#: (HMAC-SHA-256, RFC 2104/6234): 1500 − 28 − 12 − 5 − 32 = 1423, rounded down to 1400.
+#: (RFC 791) and 8 of UDP (RFC 768), with 32 bytes kept for the authentication trailer
+#: (AUTH_TAG_RESERVE_BYTES): 1500 − 28 − 12 − 5 − 32 = 1423, rounded down to 1400.
 DEFAULT_MAX_DATAGRAM = 1400
 
 FLAG_END = 0x01  # source: last datagram of a block filled to its configured k
@@ -193,7 +196,7 @@ def pack_symbol_prefix(flow: int, length: int) -> bytes:
     return SYMBOL_PREFIX.pack(flow >> GENERATION_BITS, flow & GENERATION_MASK, length)
 
 
-def unpack_symbol_prefix(symbol) -> tuple[int, int]:
+def unpack_symbol_prefix(symbol: bytes | bytearray | memoryview) -> tuple[int, int]:
     """(flow, length) from the first SYMBOL_PREFIX_BYTES bytes of a symbol."""
     slot, generation, length = SYMBOL_PREFIX.unpack_from(symbol)
     return slot << GENERATION_BITS | generation, length
@@ -212,6 +215,10 @@ def encode_control(session: int, body: bytes) -> bytes:
     return COMMON_HEADER.pack(CONTROL_TYPE_BYTE, 0, session, 0) + body
 
 
+@overload
+def parse(packet: bytes, *, max_datagram: int, sliding: Literal[False] = False) -> BlockCodePacket: ...
+@overload
+def parse(packet: bytes, *, max_datagram: int, sliding: bool) -> Packet: ...
 def parse(packet: bytes, *, max_datagram: int, sliding: bool = False) -> Packet:
     """Validate every field, then return the packet; raise a PacketError naming the fault.
 
@@ -333,6 +340,8 @@ class SlidingRepairPacket:
     symbol: bytes
 
 
+#: What ``parse`` returns to a block-code caller (``sliding=False``).
+BlockCodePacket = SourcePacket | RepairPacket | ControlPacket
 #: Every packet ``parse`` returns.
 Packet = SourcePacket | RepairPacket | ControlPacket | SlidingSourcePacket | SlidingRepairPacket
 

@@ -81,7 +81,8 @@ class UdpRelay:
             out_sock = trio.socket.socket(to_info[0][0], stdlib_socket.SOCK_DGRAM)
         except OSError as exc:
             raise RelayError(
-                f"cannot resolve or open sockets for {format_sockaddr(config.listen)} / {format_sockaddr(config.to)}: {exc}"
+                f"cannot resolve or open sockets for {format_sockaddr(config.listen)} / "
+                f"{format_sockaddr(config.to)}: {exc}"
             ) from None
         with listen_sock, out_sock:
             for sock in (listen_sock, out_sock):

@@ -1,9 +1,10 @@
 """A daemon's core settings from its config, at start and on a SIGHUP reload.
 
 The cores can take new FEC, decoder and flow settings between blocks, so a reload applies those
-without dropping a flow (flow timeouts and the protected interval included).  What is bound to sockets or to the process's shape (role,
-addresses, metrics endpoint, socket buffers, logging, the flow table's size) cannot change under
-a running daemon: a reload reports such a change and keeps the running values until a restart.
+without dropping a flow (flow timeouts and the protected interval included).  What is bound to
+sockets or to the process's shape (role, addresses, metrics endpoint, socket buffers, logging,
+the flow table's size) cannot change under a running daemon: a reload reports such a change and
+keeps the running values until a restart.
 """
 
 from __future__ import annotations

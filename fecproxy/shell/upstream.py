@@ -122,6 +122,8 @@ class Upstreams:
         return self._open(flow, count)
 
     def _open(self, flow: int, count: int) -> DatagramWriter | None:
+        if self._nursery is None:
+            raise RuntimeError("Upstreams.attach(nursery) must come before the first datagram")
         family = socket.AF_INET6 if len(self.forward) == 4 else socket.AF_INET
         sock = None
         try:

@@ -139,15 +139,18 @@ class HeadlessChromium:
             self.errors.append("log: " + params["entry"].get("text", ""))
 
     def send(self, method: str, params: dict | None = None) -> dict:
+        if self.ws is None:
+            raise DevToolsError(f"{method}: not connected")
+        ws = self.ws
         self._next_id += 1
         ident = self._next_id
-        self.ws.send(json.dumps({"id": ident, "method": method, "params": params or {}}))
+        ws.send(json.dumps({"id": ident, "method": method, "params": params or {}}))
         deadline = time.monotonic() + COMMAND_TIMEOUT_S
         while True:
             remaining = deadline - time.monotonic()
             if remaining <= 0:
                 raise DevToolsError(f"{method}: no answer within {COMMAND_TIMEOUT_S} s")
-            message = json.loads(self.ws.recv(timeout=remaining))
+            message = json.loads(ws.recv(timeout=remaining))
             if message.get("id") == ident:
                 if "error" in message:
                     raise DevToolsError(f"{method}: {message['error']}")

@@ -26,6 +26,7 @@ import threading
 import time
 import urllib.request
 from collections import defaultdict
+from collections.abc import Callable
 from pathlib import Path
 
 import yaml
@@ -199,6 +200,7 @@ class DaemonProcess:
         self.started: dict[str, str] = {}
 
     def _read(self) -> None:
+        assert self.proc.stderr is not None  # opened with stderr=PIPE
         for line in self.proc.stderr:
             self.lines.append(line.rstrip("\n"))
 
@@ -261,7 +263,7 @@ class DaemonProcess:
         except subprocess.TimeoutExpired:
             self.proc.kill()
             self.proc.wait(timeout=5)
-            raise AssertionError(f"{self.config_path.name} did not exit within {timeout}s of SIGTERM")
+            raise AssertionError(f"{self.config_path.name} did not exit within {timeout}s of SIGTERM") from None
         finally:
             self._reader.join(timeout=2)
 
@@ -316,7 +318,7 @@ class Pair:
         sender_extra=None,
         receiver_extra=None,
     ):
-        self._closers = []
+        self._closers: list[Callable[[], int | None]] = []
         try:
             self.server = AppServer(echo=echo)
             self._closers.append(self.server.close)
@@ -346,7 +348,8 @@ class Pair:
 
     def close(self) -> list[int]:
         """Stop everything; returns the daemons' exit codes (sender first)."""
-        codes, errors = [], []
+        codes: list[int | None] = []
+        errors: list[Exception] = []
         for client in getattr(self, "clients", []):
             client.close()
         for daemon in (getattr(self, "sender", None), getattr(self, "receiver", None)):

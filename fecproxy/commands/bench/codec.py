@@ -193,7 +193,7 @@ def measure_codec(k: int, m: int, length: int, seconds: float = DEFAULT_SECONDS,
             raise AssertionError(f"decode did not rebuild the source for k={k}, m={m}, L={length}")
     fresh = itertools.cycle(receptions)
     batches = itertools.cycle([receptions[i : i + DECODE_BATCH] for i in range(0, PATTERN_POOL, DECODE_BATCH)])
-    for received, rebuilt in zip(receptions[:DECODE_BATCH], code.recover_many(receptions[:DECODE_BATCH])):
+    for rebuilt in code.recover_many(receptions[:DECODE_BATCH]):
         if any(not np.array_equal(symbol, source[i]) for i, symbol in rebuilt.items()) or len(rebuilt) != min(m, k):
             raise AssertionError(f"recover_many did not rebuild the source for k={k}, m={m}, L={length}")
     repeated = receptions[0]
@@ -285,7 +285,9 @@ def measure_sliding(window: int, interval: int, length: int, seconds: float = DE
     """Encode and decode rates of the sliding-window code for one (W, x, L)."""
     rng = np.random.default_rng(SEED)
     stream = [bytes(row) for row in rng.integers(0, 256, size=(SLIDING_STREAM, length), dtype=np.uint8)]
-    repairs = []  # (first ESI, count, key, symbol) after every interval-th source symbol
+    repairs: list[
+        tuple[int, int, int, bytes]
+    ] = []  # (first ESI, count, key, symbol) after every interval-th source symbol
     for end in range(interval, SLIDING_STREAM + 1, interval):
         first = max(0, end - window)
         key = len(repairs) % 4096

@@ -217,7 +217,7 @@ class _Flood:
                 context,
                 {
                     "role": "receiver",
-                    "forward": "127.0.0.1:%d" % sink.getsockname()[1],
+                    "forward": f"127.0.0.1:{sink.getsockname()[1]}",
                     "link": {"bind": "127.0.0.1:0"},
                     "log": {"level": "error"},
                     **extra,
@@ -229,7 +229,7 @@ class _Flood:
                 {
                     "role": "sender",
                     "listen": "127.0.0.1:0",
-                    "link": {"bind": "127.0.0.1:0", "peer": "127.0.0.1:%d" % tap.getsockname()[1]},
+                    "link": {"bind": "127.0.0.1:0", "peer": f"127.0.0.1:{tap.getsockname()[1]}"},
                     "log": {"level": "error"},
                     **extra,
                 },
@@ -307,8 +307,10 @@ def format_figures(figures: dict) -> str:
 
     lines = [
         f"flood benchmark, auth {figures['auth']}: {figures['hostile']:,} hostile packets at "
-        f"{figures['hostile_rate']:,.0f}/s to the receiver's link port, real traffic {figures['real_sent']:,} datagrams",
-        f"  daemons alive                  {'yes' if figures['alive'] else 'NO':>12}   target yes            {verdict(figures['alive'])}",
+        f"{figures['hostile_rate']:,.0f}/s to the receiver's link port, "
+        f"real traffic {figures['real_sent']:,} datagrams",
+        f"  daemons alive                  {'yes' if figures['alive'] else 'NO':>12}   target yes            "
+        f"{verdict(figures['alive'])}",
         f"  real datagrams delivered       {share:>12.2%}   target ≥ {target:.0%}          {verdict(share >= target)}",
         f"  corrupted datagrams delivered  {figures['corrupted']:>12,}   target {'0' if keyed else '-'}"
         f"             {verdict(figures['corrupted'] == 0) if keyed else ''}",
@@ -317,7 +319,8 @@ def format_figures(figures: dict) -> str:
     if growth is not None:
         lines.append(
             f"  receiver RSS growth            {growth / 2**20:>10.1f} MiB   target ≤ 50 MiB       "
-            f"{verdict(growth <= TARGET_RSS_GROWTH_BYTES)}   ({figures['rss_before'] / 2**20:.1f} → {figures['rss_after'] / 2**20:.1f} MiB)"
+            f"{verdict(growth <= TARGET_RSS_GROWTH_BYTES)}   ({figures['rss_before'] / 2**20:.1f} → "
+            f"{figures['rss_after'] / 2**20:.1f} MiB)"
         )
     return "\n".join(lines)
 

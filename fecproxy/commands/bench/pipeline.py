@@ -174,6 +174,7 @@ class _Bench:
         child.close()
         self.processes.append(process)
         self.connections.append(parent)
+        assert process.pid is not None  # set by start()
         self.pids[role] = process.pid
         return parent
 
@@ -216,7 +217,8 @@ class _Bench:
         return self._reply(self._start(role, daemon_main, document, key_dir))
 
     def _cpu_seconds(self) -> dict[str, float]:
-        return {role: _process_cpu_seconds(pid) for role, pid in self.pids.items()}
+        """CPU seconds so far per role, for the roles whose figure can be read."""
+        return {role: cpu for role, pid in self.pids.items() if (cpu := _process_cpu_seconds(pid)) is not None}
 
     @staticmethod
     def _reply(conn):
@@ -249,7 +251,7 @@ class _Bench:
         cpu_us = {
             role: (cpu_after[role] - cpu_before[role]) / max(sent, 1) * 1e6
             for role in stages
-            if cpu_after.get(role) is not None and cpu_before.get(role) is not None
+            if role in cpu_after and role in cpu_before
         }
         limit = LOSS_LIMIT
         if pipeline == "lossy":

@@ -181,9 +181,9 @@ def relay_main(conn, forward: tuple, impairment: tuple | None = None) -> None:
         link = ImpairedLink(LinkImpairment(loss=link_channel(loss, burst)), seed=seed, start=time.monotonic())
 
     async def relay() -> None:
-        buffers = dict(receive_buffer=SOCKET_BUFFER_BYTES, send_buffer=SOCKET_BUFFER_BYTES)
-        inbound = open_udp_socket("127.0.0.1", 0, **buffers)
-        outbound = open_udp_socket("127.0.0.1", 0, **buffers)
+        buffers = SOCKET_BUFFER_BYTES
+        inbound = open_udp_socket("127.0.0.1", 0, receive_buffer=buffers, send_buffer=buffers)
+        outbound = open_udp_socket("127.0.0.1", 0, receive_buffer=buffers, send_buffer=buffers)
         reader, writer = DatagramReader(inbound, coalesce=True), DatagramWriter(outbound)
         conn.send(inbound.getsockname())
         while True:

@@ -79,9 +79,9 @@ class RateSearch:
     def next_rate(self) -> float | None:
         if self.stopped:
             return None
-        if self.best is None and self.lowest_failure is None:
-            return self.start
         if self.lowest_failure is None:
+            if self.best is None:
+                return self.start
             if self.best >= self.ceiling:
                 self.stopped = "ceiling"
                 return None

@@ -27,6 +27,7 @@ import argparse
 import signal
 import sys
 from collections.abc import Callable
+from typing import TYPE_CHECKING
 
 import trio
 import trio.socket
@@ -60,6 +61,9 @@ from fecproxy.commands.demo.tap import LinkTap
 from fecproxy.commands.demo.traffic import DEFAULT_TELEMETRY_RATE, STREAM_CAMERA, Sink, Station
 from fecproxy.config import MAX_HOLD_MS, ConfigError
 
+if TYPE_CHECKING:  # prometheus_client loads only when --metrics-port asks for it
+    from prometheus_client import CollectorRegistry
+
 __all__ = ["DemoOptions", "DemoResult", "add_arguments", "main", "run_demo"]
 
 #: The live view is redrawn this often (without a terminal it prints a line less often, see render).
@@ -70,7 +74,9 @@ SETTLE_MARGIN_S = 0.3
 SETTLE_POLL_S = 0.05
 
 
-def _start_metrics(registry, port: int, nursery: trio.Nursery) -> tuple[Callable[[], None] | None, str]:
+def _start_metrics(
+    registry: CollectorRegistry, port: int, nursery: trio.Nursery
+) -> tuple[Callable[[], None] | None, str]:
     """Serve the receiver's /metrics from a task in ``nursery``; a busy port falls back to any
     free one, never to a crash."""
     from fecproxy.shell.metrics import serve
@@ -108,7 +114,7 @@ async def run_demo(options: DemoOptions, out=None) -> DemoResult:
     sink_sock = trio.socket.socket(trio.socket.AF_INET, trio.socket.SOCK_DGRAM)
     telemetry_sock = trio.socket.socket(trio.socket.AF_INET, trio.socket.SOCK_DGRAM)
     camera_sock = trio.socket.socket(trio.socket.AF_INET, trio.socket.SOCK_DGRAM)
-    stop_metrics = None
+    stop_metrics: Callable[[], None] | None = None
     with sink_sock, telemetry_sock, camera_sock:
         for sock in (sink_sock, telemetry_sock, camera_sock):
             await sock.bind((LOOPBACK, 0))
@@ -298,7 +304,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         "--metrics-port",
         type=int,
         default=DEFAULT_METRICS_PORT,
-        help=f"serve the receiver's Prometheus metrics on {LOOPBACK}:PORT (0 = any free port; a busy port falls back to a free one)",
+        help=f"serve the receiver's Prometheus metrics on {LOOPBACK}:PORT (0 = any free port; a busy port falls back "
+        f"to a free one)",
     )
     parser.add_argument("--no-live", action="store_true", help="no live view, only the header and the summary")
 

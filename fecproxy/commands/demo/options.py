@@ -71,10 +71,11 @@ def build_configs(options: DemoOptions, sink: tuple, relay: tuple | None = None)
     """The receiver's config (relay unknown yet) or the sender's (relay given); raises ConfigError."""
     fec = {"block_size": options.k, "repair": options.m, "flush_ms": options.flush_ms}
     decoder = {"hold_ms": min(options.flush_ms + HOLD_MARGIN_MS, MAX_HOLD_MS)}
-    common = {"link": {"bind": f"{LOOPBACK}:0"}, "fec": fec, "decoder": decoder}
+    link = {"bind": f"{LOOPBACK}:0"}
+    common = {"link": link, "fec": fec, "decoder": decoder}
     if relay is None:
         return parse_config({"role": "receiver", "forward": f"{sink[0]}:{sink[1]}", **common}, "demo receiver")
-    common["link"]["peer"] = f"{relay[0]}:{relay[1]}"
+    link["peer"] = f"{relay[0]}:{relay[1]}"
     return parse_config({"role": "sender", "listen": f"{LOOPBACK}:0", **common}, "demo sender")
 
 

@@ -225,7 +225,8 @@ def format_summary(r: DemoResult) -> str:
                 f"  size class {name}",  # a sub-row of "bytes on the link"
                 "",
                 f"repair {fmt_bytes(repair_bytes)} for source {fmt_bytes(source_bytes)} "
-                f"(+{fmt_percent(ratio(repair_bytes, source_bytes))} bytes, +{fmt_percent(ratio(repair_packets, source_packets))} packets)",
+                f"(+{fmt_percent(ratio(repair_bytes, source_bytes))} bytes, "
+                f"+{fmt_percent(ratio(repair_packets, source_packets))} packets)",
             )
             for name, (source_bytes, repair_bytes, source_packets, repair_packets) in r.classes.items()
             if source_packets
@@ -237,7 +238,8 @@ def format_summary(r: DemoResult) -> str:
             f"{fmt_percent(r.predicted_with_fec)} lost (exact, for the {blocks} blocks sent)",
         ),
         "",
-        f"  link: lost {r.link_lost} of {r.link_packets} packets on the air ({fmt_percent(ratio(r.link_lost, r.link_packets))}); "
+        f"  link: lost {r.link_lost} of {r.link_packets} packets on the air "
+        f"({fmt_percent(ratio(r.link_lost, r.link_packets))}); "
         f"configured: {describe_link(r.channel)}",
         f"  intact datagrams' one-way delay: p50 {fmt_ms(percentile(r.intact_delays, 50))}, "
         f"p99 {fmt_ms(percentile(r.intact_delays, 99))}",
@@ -290,10 +292,12 @@ def format_header(
     rows = [
         "fecproxy demo",
         *textwrap.wrap(story, HEADER_WIDTH, initial_indent="  ", subsequent_indent="  "),
-        f"  station → sender {format_sockaddr(sender)} → {'lossy ' if channel.average_loss else ''}relay {format_sockaddr(relay)} "
+        f"  station → sender {format_sockaddr(sender)} → {'lossy ' if channel.average_loss else ''}relay "
+        f"{format_sockaddr(relay)} "
         f"→ receiver {format_sockaddr(receiver)} → sink {format_sockaddr(sink)}",
         "  (the sink's acknowledgements travel back the same way)",
-        f"  FEC: k={options.k} source + m={options.m} repair packets per block; blocks close after {options.flush_ms} ms",
+        f"  FEC: k={options.k} source + m={options.m} repair packets per block; blocks close after "
+        f"{options.flush_ms} ms",
         f"  receiver metrics: {metrics_text}",
         f"  running for {options.seconds:g} s (Ctrl-C ends early with the summary)",
         "",
