@@ -18,14 +18,16 @@ from __future__ import annotations
 
 import dataclasses
 import importlib.util
-from collections.abc import Callable, Mapping
+from collections.abc import Mapping
 from dataclasses import dataclass
 from enum import StrEnum
+from typing import Any
 
 from fecproxy.config.addresses import Address
 from fecproxy.config.checkers import (
     Bad,
     BadKeys,
+    Checker,
 )
 from fecproxy.config.limits import (
     AUTH_TAG_RESERVE_BYTES,
@@ -187,14 +189,14 @@ class Config:
     reports: ReportsSection = ReportsSection()
     auth: AuthSection = AuthSection()
 
-    def effective(self) -> dict:
+    def effective(self) -> dict[str, Any]:
         """Every key with defaults filled in, nested as in the YAML; absent addresses are None.
 
         The result is plain data (str, int, bool, None): safe to dump as YAML and to feed back
         to :func:`parse_config`, which gives an equal Config (keys loaded from key files aside:
         only their paths are shown).
         """
-        document: dict = {}
+        document: dict[str, Any] = {}
         for name in TOP_LEVEL_KEYS:
             value = getattr(self, name)
             if name in _SECTIONS:  # the YAML keys only: never the loaded key material
@@ -204,7 +206,7 @@ class Config:
         return document
 
 
-def _plain(value):
+def _plain(value: object) -> Any:
     if dataclasses.is_dataclass(value) and not isinstance(value, Address):
         return {f.name: _plain(getattr(value, f.name)) for f in dataclasses.fields(value)}
     if isinstance(value, Address):
@@ -244,14 +246,14 @@ class _Parser:
     def __init__(self, source: str):
         self.source = source
         self.errors: list[str] = []
-        self.values: dict[str, object] = {}
+        self.values: dict[str, Any] = {}  # what each checker returned, by key path
         self.bad: set[str] = set()  # paths (and sections) that already have a message
 
     def error(self, path: str, text: str) -> None:
         self.errors.append(f"{self.source}: {path}: {text}")
         self.bad.add(path)
 
-    def run(self, document) -> Config:
+    def run(self, document: object) -> Config:
         if document is None:
             raise ConfigError(
                 [f"{self.source}: the document is empty; expected a mapping with at least role and link.bind"]
@@ -282,7 +284,7 @@ class _Parser:
             raise ConfigError(self.errors)
         return self.build()
 
-    def value(self, path: str, raw, check: Callable) -> None:
+    def value(self, path: str, raw: object, check: Checker) -> None:
         if raw is None:
             if path in _OPTIONAL:
                 return  # null = not set
@@ -297,7 +299,7 @@ class _Parser:
                 self.error(f"{path}.{key}", text)
             self.bad.add(path)
 
-    def section(self, name: str, raw) -> None:
+    def section(self, name: str, raw: object) -> None:
         if raw is None:
             return  # "metrics:" with everything commented out is an empty section
         keys = _SECTIONS[name][1]
@@ -367,7 +369,7 @@ class _Parser:
             )
         self.check_adapt(k, allow)
 
-    def check_adapt(self, k: int, allow) -> None:
+    def check_adapt(self, k: int, allow: bool | None) -> None:
         adapt = self.values.get("fec.adapt")
         if adapt is None:
             return

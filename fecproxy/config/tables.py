@@ -9,12 +9,11 @@ dataclasses (:mod:`fecproxy.config.sections`), so the tables, the defaults and
 from __future__ import annotations
 
 import dataclasses
-from collections.abc import Callable
-from typing import Any
 
 from fecproxy.config.checkers import (
     AddressField,
     Boolean,
+    Checker,
     Choice,
     FilePath,
     Integer,
@@ -102,13 +101,13 @@ TOP_LEVEL_KEYS = (
     "auth",
 )
 
-_TOP_SCALARS: dict[str, Callable[..., Any]] = {
+_TOP_SCALARS: dict[str, Checker] = {
     "role": Choice(Role, "role"),
     "listen": _ADDRESS_TO_BIND,
     "forward": _DESTINATION,
 }
 
-_SECTIONS: dict[str, tuple[type, dict[str, Callable[..., Any]]]] = {
+_SECTIONS: dict[str, tuple[type, dict[str, Checker]]] = {
     "link": (LinkSection, {"bind": _ADDRESS_TO_BIND, "peer": _DESTINATION}),
     "fec": (
         FecSection,

@@ -48,6 +48,7 @@ from __future__ import annotations
 
 from bisect import bisect_left
 from collections.abc import Iterable
+from typing import Any
 
 import numpy as np
 
@@ -305,7 +306,8 @@ class BlockEncoder:
         generation_bits, generation_mask, flow_shift = wire.GENERATION_BITS, wire.GENERATION_MASK, wire.FLOW_SHIFT
         blocks, lanes = self._open, self._lanes
         sources: list[bytes] = []
-        pieces = [sources]  # source runs, each full block's (still empty) repair list between them
+        #: Source runs, each full block's (still empty) repair list, or its interleaving group, between them.
+        pieces: list[list[bytes] | _Group] = [sources]
         deferred: list[_Block] = []
         classes = len(bounds) + 1
         sent_count, sent_size = [0] * classes, [0] * classes  # per class: datagrams, their bytes
@@ -315,7 +317,7 @@ class BlockEncoder:
         cur: _Block | None = None
         cur_key = -1
         count = width = symbol_len = content = limit = base = previous_k = 0
-        storage = None
+        storage: Any = None  # the current block's memoryview (None until a block is current)
         try:
             for datagram, flow in items:
                 size = len(datagram)
@@ -366,6 +368,7 @@ class BlockEncoder:
                     continue
                 word = flow << flow_shift | previous_k
                 sources.append(pack_source(flag_end, session, base | (count - 1), word) + datagram)
+                assert cur is not None  # set when the datagram's block became current (once per block here)
                 cur.count, cur.symbol_len, cur.content = count, symbol_len, content
                 del blocks[key]
                 deferred.append(cur)
@@ -400,7 +403,7 @@ class BlockEncoder:
             return self._sealed(sources)
         out: list[bytes] = []
         for piece in pieces:
-            out += piece if type(piece) is list else piece.interleaved()
+            out += piece.interleaved() if isinstance(piece, _Group) else piece
         return self._sealed(out)
 
     def _retire(self, block: _Block) -> bool:
