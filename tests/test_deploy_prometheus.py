@@ -206,7 +206,7 @@ def test_dashboard_rules_and_alerts_return_data_from_a_real_pair(tmp_path):
     )
     prometheus = None
     try:
-        ports = {"sender": int(pair.sender.started["metrics"]), "receiver": int(pair.receiver.started["metrics"])}
+        ports = {"sender": pair.sender.metrics_port, "receiver": pair.receiver.metrics_port}
         prometheus = Prometheus(binary, scrape_config_for(ports, tmp_path), tmp_path)
         # Traffic starts only once both daemons were scraped (every counter still 0): see above.
         ready = wait_until(

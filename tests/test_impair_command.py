@@ -244,3 +244,22 @@ def test_ipv6_relay_counts_ipv6_headers_against_the_rate_cap():
     except OSError as error:  # ::1 configured off on this host
         pytest.skip(f"IPv6 loopback unusable here: {error}")
     assert headers == {"forward": 48, "return": 48}  # RFC 8200 §3 (40) + RFC 768 (8)
+
+
+def test_progress_lines_show_buffer_and_blackout_drops_beside_the_loss_model():
+    """A narrow link's buffer can lose more than its loss model: the progress line says so."""
+    from fecproxy.commands.impair import format_progress
+    from fecproxy.linkmodel.impairment import Blackout, ImpairedLink, LinkImpairment
+
+    link = ImpairedLink(LinkImpairment(rate_bps=64_000, queue_packets=4, blackout=Blackout(1.0, 10.0, 0.0)), seed=3)
+    for i in range(20):
+        link.submit(b"x" * 1000, i * 0.01)
+
+    class Relay:
+        def stats(self):
+            return {"forward": link.stats()}
+
+    line = format_progress(10.0, Relay(), {})
+    stats = link.stats()
+    assert stats.queue_drops > 0
+    assert f"buffer full {stats.queue_drops}, blackout {stats.blackout_drops}" in line

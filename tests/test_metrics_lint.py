@@ -52,7 +52,7 @@ def test_both_daemons_metrics_pass_promtool_with_no_warning(pairs):
     send_paced(client.send, 300, 300.0)
     drain(pair, 300)
     for daemon in (pair.sender, pair.receiver):
-        text = _text(int(daemon.started["metrics"]))
+        text = _text(daemon.metrics_port)
         assert "process_start_time_seconds" in text and "process_open_fds" in text and "python_info" in text
         result = promtool_check(text)
         assert result.returncode == 0 and not result.stdout.strip() and not result.stderr.strip(), (

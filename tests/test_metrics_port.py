@@ -129,7 +129,7 @@ def test_scrapes_in_a_tight_loop_never_fail_while_thousands_of_flows_open_and_cl
     flows = {"max": CHURN_TABLE, "protect_s": 0}
     pair = pairs(sender_extra={"flows": flows}, receiver_extra={"flows": flows}, echo=True)
     urls = [
-        f"http://{LOOPBACK}:{daemon.started['metrics']}{path}"
+        f"http://{LOOPBACK}:{daemon.metrics_port}{path}"
         for daemon in (pair.sender, pair.receiver)
         for path in ("/metrics", "/status.json")
     ]
@@ -211,7 +211,7 @@ def _p99(values: list[float]) -> float:
 @pytest.mark.slow
 def test_300_idle_metrics_connections_leave_flows_metrics_and_forwarding_alone(pairs):
     pair = pairs(echo=True, sender_fec={"flush_ms": 5}, receiver_fec={"flush_ms": 5})
-    metrics_address = (LOOPBACK, int(pair.receiver.started["metrics"]))
+    metrics_address = (LOOPBACK, pair.receiver.metrics_port)
     baseline = _round_trips(pair, 1)
     idle = [socket.create_connection(metrics_address, timeout=5) for _ in range(IDLE_CONNECTIONS)]
     loaded: list[float] = []
@@ -236,3 +236,17 @@ def test_300_idle_metrics_connections_leave_flows_metrics_and_forwarding_alone(p
     )
     # Generous margins: the machine is shared; the old thread-per-connection server stalled 0.7 s.
     assert p99_loaded <= max(5 * p99_base, p99_base + 0.05), (p99_base, p99_loaded)
+
+
+def test_the_started_line_names_the_metrics_url_and_the_key_plainly(pairs, tmp_path):
+    from test_link_security import keyed
+
+    pair = pairs(**keyed(tmp_path))
+    for daemon in (pair.sender, pair.receiver):
+        url, auth = daemon.started["metrics"], daemon.started["auth"]
+        assert url == f"http://{LOOPBACK}:{daemon.metrics_port}/metrics"
+        status, text = _get(url)  # the URL as printed answers
+        assert status == 200 and "fecproxy_info" in text
+        # The mode first, then the key id and fingerprint to compare with the peer's line: no
+        # Python repr of an internal object.
+        assert auth.startswith("MAC (not encrypted), key 0x") and "fingerprint" in auth and "Keyring" not in auth

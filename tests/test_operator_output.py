@@ -54,7 +54,7 @@ def test_every_family_a_daemon_pair_exposes_is_in_the_readme_table(pairs):
     send_paced(client.send, 192, rate=4000.0)  # 16 datagrams in 4 ms: full blocks, not flushed short
     drain(pair, 192)
     for daemon in (pair.sender, pair.receiver):
-        families, page = _families(f"http://{LOOPBACK}:{daemon.started['metrics']}/metrics")
+        families, page = _families(f"http://{LOOPBACK}:{daemon.metrics_port}/metrics")
         assert "fecproxy_info" in families and "fecproxy_recovery_delay_seconds" in families
         assert not _undocumented(families), f"add to README's metrics table: {sorted(_undocumented(families))}"
         assert "_created" not in page
@@ -93,7 +93,7 @@ def test_an_idle_receiver_exposes_its_estimate_as_nan_and_plan_says_no_traffic(p
         "fecproxy_received_code_repair_symbols",
     ):
         assert math.isnan(receiver.metric(name)), name
-    url = f"http://{LOOPBACK}:{receiver.started['metrics']}/metrics"
+    url = f"http://{LOOPBACK}:{receiver.metrics_port}/metrics"
     done = run_to_exit("plan", "--from-metrics", url, "--rate", "30")
     assert done.returncode != 0
     assert "no traffic measured yet" in done.stderr, done.stderr

@@ -25,6 +25,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from support.daemon_pair import metrics_port_of
 from support.processes import LOOPBACK, Child, fecproxy, run_json, scrape
 from support.receiver_view import invisible_share  # closed form, checked in test_receiver_loss_estimate.py
 
@@ -93,7 +94,7 @@ def run_link(
         children.append(receiver)
         started = json.loads(receiver.wait_for(r'"event": "started"').string)
         receiver_link = started["link"]
-        receiver_metrics = int(started["metrics"])
+        receiver_metrics = metrics_port_of(started)
 
         impair = Child(
             fecproxy(
@@ -131,7 +132,7 @@ def run_link(
         started = json.loads(sender.wait_for(r'"event": "started"').string)
         host, port = started["listen"].rsplit(":", 1)
         target = (host, int(port))
-        sender_metrics = int(started["metrics"])
+        sender_metrics = metrics_port_of(started)
 
         # Paced traffic: every 5 ms send what the schedule says is due (bounded in count and time).
         begin = time.monotonic()

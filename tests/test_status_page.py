@@ -325,7 +325,7 @@ def test_status_page_in_headless_chromium_shows_the_daemons_metrics(pairs, tmp_p
         print(f"SKIPPED: {reason}")
         pytest.skip(reason)
     pair = pairs(forward=iid_loss(0.06, seed=11))
-    url = f"http://127.0.0.1:{pair.receiver.started['metrics']}/"
+    url = f"http://127.0.0.1:{pair.receiver.metrics_port}/"
     began = time.monotonic()
     with HeadlessChromium(executable) as browser:
         browser.navigate(url)

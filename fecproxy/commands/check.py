@@ -88,7 +88,7 @@ def _key_text(auth) -> str:
 
 
 def main(args: argparse.Namespace) -> int:
-    from fecproxy.config.advice import warnings_for
+    from fecproxy.config.advice import mtu_report, warnings_for
 
     sources = [args.config] + ([args.receiver] if args.receiver else [])
     configs = [load_config_or_status(source) for source in sources]
@@ -100,7 +100,8 @@ def main(args: argparse.Namespace) -> int:
             print(line, file=sys.stderr)
     if args.receiver is None:
         if not args.quiet:
-            sys.stdout.write(render_effective(configs[0], args.config))
+            header, _, body = render_effective(configs[0], args.config).partition("\n")
+            sys.stdout.write(header + "\n" + mtu_report(configs[0])[0] + body)
         return EXIT_VALID
     return _check_pair(configs, sources, args)
 

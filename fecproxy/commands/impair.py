@@ -95,14 +95,19 @@ def _burst_text(value: float, lost: int) -> str:
 
 def format_progress(elapsed: float, relay: UdpRelay, previous: dict) -> str:
     """One line per interval while the relay runs: what each direction carried and lost since the
-    last line (``previous`` holds the last counters and is updated)."""
+    last line (``previous`` holds the last counters and is updated).  The modem buffer's and the
+    blackouts' drops stand beside the loss model's: on a narrow link they can be most of the loss."""
     parts = [f"t={elapsed:.0f}s"]
     for direction, stats in relay.stats().items():
-        sent0, lost0, delivered0 = previous.get(direction, (0, 0, 0))
+        sent0, lost0, delivered0, queue0, blackout0 = previous.get(direction, (0, 0, 0, 0, 0))
         sent, lost = stats.sent - sent0, stats.lost - lost0
+        queue, blackout = stats.queue_drops - queue0, stats.blackout_drops - blackout0
         share = f"{lost / sent:.2%}" if sent else "-"
-        parts.append(f"{direction}: on the air {sent}, lost {lost} ({share}), delivered {stats.delivered - delivered0}")
-        previous[direction] = (stats.sent, stats.lost, stats.delivered)
+        parts.append(
+            f"{direction}: on the air {sent}, lost {lost} ({share}), buffer full {queue}, blackout {blackout}, "
+            f"delivered {stats.delivered - delivered0}"
+        )
+        previous[direction] = (stats.sent, stats.lost, stats.delivered, stats.queue_drops, stats.blackout_drops)
     return "  ".join(parts)
 
 

@@ -15,6 +15,7 @@ import urllib.error
 import urllib.request
 
 from fecproxy.linkmodel import sliding_sim
+from fecproxy.linkmodel.airtime import DEFAULT_QUEUE_MS, BudgetError, LinkBudget, parse_rate
 from fecproxy.linkmodel.loss_models import (
     ChannelConfigError,
     GilbertElliott,
@@ -104,6 +105,10 @@ _UNSET_OPTIONS = (
     "mean_bytes",
     "max_bytes",
     "max_byte_overhead",
+    "link_rate",
+    "datagram_bytes",
+    "burst_datagrams",
+    "queue_ms",
 )
 
 
@@ -162,7 +167,14 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         "--max-overhead",
         type=float,
         default=DEFAULT_MAX_OVERHEAD,
-        help="largest m'/k' on the link (≤ 1, RFC 6363 §8.2)",
+        help="largest m'/k' on the link (≤ 1, RFC 6363 §8.2; above 1 with --allow-repair-above-source)",
+    )
+    need.add_argument(
+        "--allow-repair-above-source",
+        action="store_true",
+        default=False,
+        help="the sender's fec.allow_repair_above_source: overheads above 1 and m ≥ k (repetition-like codes "
+        "for low-rate telemetry)",
     )
     need.add_argument("--target", type=float, default=DEFAULT_TARGET, help="residual datagram loss to reach")
     need.add_argument(
@@ -175,6 +187,31 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         "--max-byte-overhead",
         type=float,
         help="largest repair bytes / source bytes on the link (≤ 1, RFC 6363 §8.2); needs the sizes",
+    )
+
+    air = parser.add_argument_group("air rate (the daemon's pacer: link.rate, link.queue_ms)")
+    air.add_argument(
+        "--link-rate",
+        metavar="BPS",
+        type=str,
+        help="the link's air rate in bit/s, IP/UDP headers counted (9600, 9.6k, 256k, 2M): reports the air time "
+        "of source and repair and refuses codes that do not fit",
+    )
+    air.add_argument(
+        "--datagram-bytes",
+        type=float,
+        help="mean application datagram size for the air time (default: --mean-bytes; needed with --link-rate)",
+    )
+    air.add_argument(
+        "--burst-datagrams",
+        type=int,
+        help="datagrams an application sends back to back (a camera still): the queueing delay the burst meets "
+        "in the pacer is shown, and codes whose burst overflows the queue are refused",
+    )
+    air.add_argument(
+        "--queue-ms",
+        type=float,
+        help=f"the sender's link.queue_ms: air time the pacer may hold (default {DEFAULT_QUEUE_MS})",
     )
 
     codes = parser.add_argument_group("codes")
@@ -408,6 +445,44 @@ def channel_from_args(args: argparse.Namespace) -> GilbertElliott:
     return channel_from_figures(loss=args.loss, burst=args.burst, **four)
 
 
+def budget_from_args(args: argparse.Namespace) -> LinkBudget | None:
+    """The air-rate budget from --link-rate and its companions; None without --link-rate."""
+    companions = {"--datagram-bytes": args.datagram_bytes, "--burst-datagrams": args.burst_datagrams}
+    companions["--queue-ms"] = args.queue_ms
+    if args.link_rate is None:
+        given = [name for name, value in companions.items() if value is not None]
+        if given:
+            raise PlanError(f"{', '.join(given)} describe the air rate's use: give --link-rate BPS as well")
+        return None
+    size = args.datagram_bytes if args.datagram_bytes is not None else args.mean_bytes
+    if size is None:
+        raise PlanError("--link-rate needs the datagram size: --datagram-bytes N (or --mean-bytes)")
+    try:
+        return LinkBudget(
+            rate_bps=parse_rate(args.link_rate),
+            datagram_bytes=size,
+            max_bytes=args.max_bytes,
+            burst_datagrams=args.burst_datagrams,
+            queue_ms=DEFAULT_QUEUE_MS if args.queue_ms is None else args.queue_ms,
+        )
+    except BudgetError as exc:
+        raise PlanError(str(exc)) from None
+
+
+def _budget_lines(budget: LinkBudget, rate: float) -> list[str]:
+    line = (
+        f"air rate {budget.rate_bps:g} bit/s (IP/UDP headers counted): source takes {budget.source_use(rate):.1%} "
+        f"at {rate:g} datagrams/s of {budget.datagram_bytes:g} bytes; pacer queue {budget.queue_ms:g} ms"
+    )
+    lines = [line]
+    if budget.burst_datagrams is not None:
+        lines.append(
+            f"burst: {budget.burst_datagrams} datagrams back to back; burst_ms = queueing delay of its last datagram "
+            "in the pacer on an otherwise idle link"
+        )
+    return lines
+
+
 # -- output --------------------------------------------------------------------------------------------
 
 
@@ -430,6 +505,8 @@ def _verdict(c: Candidate) -> str:
         ("latency", c.within_latency),
         ("overhead", c.within_overhead),
         ("bytes", c.within_byte_overhead),
+        ("air", c.within_air),
+        ("queue", c.within_queue),
     )
     misses = [name for name, ok in checks if not ok]
     return "misses " + ",".join(misses)
@@ -452,8 +529,12 @@ def format_table(result: Plan, running: dict | None = None) -> str:
             2,
             f"datagrams: mean {req.mean_bytes:g} bytes, longest {req.max_bytes} (repair symbols are that long){budget}",
         )
+    if req.budget is not None:
+        lines[2:2] = _budget_lines(req.budget, req.rate)
     effective_head = " " + "k'".rjust(4) + " " + "m'".rjust(4) if short else ""
     bytes_head = f" {'bytes_ovh':>9}" if req.bytes_modelled else ""
+    if req.budget is not None:
+        bytes_head += f" {'air':>6}" + (f" {'burst_ms':>8}" if req.budget.burst_datagrams is not None else "")
     lines.append(
         f"{'':1} {'k':>4} {'m':>4}{effective_head} {'D':>3} {'overhead':>8}{bytes_head} {'block_fail':>10} "
         f"{'residual':>10} "
@@ -463,6 +544,10 @@ def format_table(result: Plan, running: dict | None = None) -> str:
         mark = "*" if c is result.recommended else " "
         effective = f" {c.k_effective:>4} {c.m_effective:>4}" if short else ""
         byte_cell = f" {c.byte_overhead:>9.3f}" if req.bytes_modelled else ""
+        if req.budget is not None and c.source_air is not None and c.repair_air is not None:
+            byte_cell += f" {c.source_air + c.repair_air:>6.1%}"
+            if c.burst_delay is not None:
+                byte_cell += f" {c.burst_delay * 1000:>8.0f}"
         lines.append(
             f"{mark} {c.k:>4} {c.m:>4}{effective} {c.depth:>3} {c.overhead:>8.3f}{byte_cell} {c.block_failure:>10.3g} "
             f"{c.residual_loss:>10.3g} {c.span * 1000:>8.1f}  {_verdict(c)}"
@@ -488,8 +573,14 @@ def format_table(result: Plan, running: dict | None = None) -> str:
         lowest = min(result.candidates, key=lambda c: c.residual_loss)
         lines.append(
             f"no candidate meets residual loss {req.target:g} within the budgets; the lowest is "
-            f"{lowest.residual_loss:.3g} "
-            f"at k={lowest.k} m={lowest.m} D={lowest.depth} — allow more overhead, latency or interleaving"
+            f"{lowest.residual_loss:.3g} at k={lowest.k} m={lowest.m} D={lowest.depth} — "
+            + (
+                "the air rate leaves no room for more repair: lower the traffic or raise link.rate"
+                if req.budget is not None and not any(c.within_air and c.within_queue for c in result.candidates)
+                else "allow more overhead"
+                + ("" if req.allow_repair_above_source else " (above 1 with --allow-repair-above-source)")
+                + ", latency or interleaving"
+            )
         )
     if running:
         lines.append(
@@ -502,6 +593,8 @@ def format_table(result: Plan, running: dict | None = None) -> str:
     )
     caps = {d: effective_k(max(req.k_values), req.rate, req.flush_time, d) for d in req.depths}
     capped = {d: cap for d, cap in caps.items() if any(k > cap for k in req.k_values)}
+    if req.budget is not None and req.budget.burst_datagrams is not None:
+        capped = {}  # a burst fills its blocks whatever the average rate
     if capped:
         at = ", ".join(f"{cap} at D={d}" for d, cap in capped.items())
         lines.append(
@@ -548,6 +641,20 @@ def _evaluate_one(args: argparse.Namespace, channel: GilbertElliott, depths: tup
         "block_span_ms": None if flush is None else block_span(args.k, k_eff, args.rate, flush, depth) * 1000.0,
         "channel": _channel_dict(channel),
     }
+    budget = budget_from_args(args)
+    if budget is not None:
+        if args.rate is None:
+            raise PlanError("--link-rate needs the datagram rate: --rate N (datagrams per second)")
+        source_air, repair_air = budget.source_use(args.rate), budget.repair_use(args.rate, k_eff, m_eff)
+        delay = budget.burst_delay(args.k, args.m)
+        out.update(
+            link_rate_bps=budget.rate_bps,
+            source_air=source_air,
+            repair_air=repair_air,
+            burst_delay_ms=None if delay is None else delay * 1000.0,
+            within_air=source_air + repair_air <= 1.0,
+            within_queue=budget.burst_source_fits() and budget.burst_fits(args.k, args.m),
+        )
     if args.json:
         print(json.dumps(out, indent=2))
     else:
@@ -563,6 +670,19 @@ def _evaluate_one(args: argparse.Namespace, channel: GilbertElliott, depths: tup
         print(f"residual datagram loss:    {figures.residual_loss:.6g}")
         if out["block_span_ms"] is not None:
             print(f"block span:                {out['block_span_ms']:.1f} ms")
+        if budget is not None:
+            used = out["source_air"] + out["repair_air"]
+            print(
+                f"air rate used:             {used:.1%} of {budget.rate_bps:g} bit/s "
+                f"(source {out['source_air']:.1%}, repair {out['repair_air']:.1%})"
+                + ("" if out["within_air"] else " — does not fit: the pacer's queue grows until it drops repair")
+            )
+            if out["burst_delay_ms"] is not None:
+                print(
+                    f"burst queueing delay:      {out['burst_delay_ms']:.0f} ms for the last of "
+                    f"{budget.burst_datagrams} datagrams (pacer queue {budget.queue_ms:g} ms"
+                    + (")" if out["within_queue"] else ": the burst overflows it, repair is dropped)")
+                )
     return 0
 
 
@@ -590,6 +710,8 @@ def main(args: argparse.Namespace) -> int:
             mean_bytes=args.mean_bytes,
             max_bytes=args.max_bytes,
             max_byte_overhead=args.max_byte_overhead,
+            allow_repair_above_source=args.allow_repair_above_source,
+            budget=budget_from_args(args),
         )
         result = plan(request)
     except (PlanError, ChannelConfigError) as exc:
@@ -611,6 +733,8 @@ def main(args: argparse.Namespace) -> int:
                     "mean_bytes": request.mean_bytes,
                     "max_bytes": request.max_bytes,
                     "max_byte_overhead": request.max_byte_overhead,
+                    "link_rate_bps": None if request.budget is None else request.budget.rate_bps,
+                    "burst_datagrams": None if request.budget is None else request.budget.burst_datagrams,
                     "running": getattr(args, "running", None),
                 },
                 indent=2,

@@ -117,6 +117,27 @@ class Number:
         return number
 
 
+class BitRate:
+    """Bits per second: a number, or text with an SI suffix (9600, "9.6k", "256k", "2M")."""
+
+    def __init__(self, low: float, high: float):
+        self.low, self.high = low, high
+        self.expected = f"bits per second {low:g}..{high:g}, as a number or with k/M (e.g. 9600, 9.6k, 256k, 2M)"
+
+    def __call__(self, value: object) -> float:
+        if isinstance(value, bool) or not isinstance(value, (int, float, str)):
+            raise Bad(f"is {kind_of(value)}; expected {self.expected}")
+        text = str(value).strip()
+        scale = {"k": 1e3, "K": 1e3, "M": 1e6, "G": 1e9}.get(text[-1:], 1.0)
+        try:
+            number = float(text[:-1] if scale != 1.0 else text) * scale
+        except ValueError:
+            raise Bad(f"is not a rate; expected {self.expected}") from None
+        if not self.low <= number <= self.high:  # NaN fails too
+            raise Bad(f"is out of range; expected {self.expected}")
+        return number
+
+
 class SizeBoundaries:
     """A list of increasing byte counts (fec.size_classes; an empty list = one class)."""
 

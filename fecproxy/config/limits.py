@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from fecproxy.protocol import decoder as _decoder
 from fecproxy.protocol import encoder as _encoder
+from fecproxy.protocol import pacer as _pacer
 from fecproxy.protocol import wire
 from fecproxy.protocol.flows import FLOW_SLOTS
 
@@ -122,3 +123,19 @@ DEFAULT_REPORT_INTERVAL_MS = 1000
 #: A report period above a minute cannot follow a link; it also keeps the value inside the report's
 #: 16-bit interval field (fecproxy.protocol.loss_report.MAX_INTERVAL_MS).
 MAX_REPORT_INTERVAL_MS = 60_000
+
+
+#: link.queue_ms: one second of air time.  It holds a 60 kB burst at 512 kbit/s; narrower links
+#: need more (the trial configs set it), and more also means longer waits behind a burst.  CoDel's
+#: 100 ms interval (RFC 8289 §4.2) is sized for the Internet, not a radio.  Common practice, no source.
+DEFAULT_LINK_QUEUE_MS = 1000
+#: A minute of air time is a store-and-forward buffer, not a queue.
+MAX_LINK_QUEUE_MS = 60_000
+#: link.mtu: Ethernet's 1500 bytes (RFC 894).  Bounds: IPv4's 576-byte minimum datagram every host
+#: must accept (RFC 791 §3.1) and the largest IPv4 total length.
+DEFAULT_LINK_MTU = 1500
+MIN_LINK_MTU = 576
+MAX_LINK_MTU = 65_535
+#: link.rate bounds: the pacer's floor (no IP radio below 1200 bit/s, from memory) to 10 Gbit/s.
+MIN_LINK_RATE_BPS = _pacer.MIN_RATE_BPS
+MAX_LINK_RATE_BPS = 10e9

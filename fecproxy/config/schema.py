@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import dataclasses
 import importlib.util
+import math
 from collections.abc import Mapping
 from dataclasses import dataclass
 from enum import StrEnum
@@ -38,6 +39,8 @@ from fecproxy.config.limits import (
     DEFAULT_FLUSH_MS,
     DEFAULT_HOLD_MS,
     DEFAULT_INTERLEAVE,
+    DEFAULT_LINK_MTU,
+    DEFAULT_LINK_QUEUE_MS,
     DEFAULT_MAX_DATAGRAM_BYTES,
     DEFAULT_MAX_FLOWS,
     DEFAULT_MAX_MEMORY_BYTES,
@@ -58,6 +61,9 @@ from fecproxy.config.limits import (
     MAX_FLUSH_MS,
     MAX_HOLD_MS,
     MAX_INTERLEAVE,
+    MAX_LINK_MTU,
+    MAX_LINK_QUEUE_MS,
+    MAX_LINK_RATE_BPS,
     MAX_MEMORY_BYTES_LIMIT,
     MAX_OPEN_BLOCKS_LIMIT,
     MAX_REBUILDS_PER_S_LIMIT,
@@ -66,6 +72,8 @@ from fecproxy.config.limits import (
     MAX_SOCKET_BUFFER_BYTES,
     MAX_STATS_INTERVAL_S,
     MAX_UDP_PAYLOAD_BYTES,
+    MIN_LINK_MTU,
+    MIN_LINK_RATE_BPS,
     MIN_MEMORY_BYTES,
 )
 from fecproxy.config.messages import closest, key_text, kind_of, or_list, show_value
@@ -154,6 +162,13 @@ __all__ = [
     "DEFAULT_MAX_OVERHEAD",
     "DEFAULT_REPORT_INTERVAL_MS",
     "MAX_REPORT_INTERVAL_MS",
+    "DEFAULT_LINK_QUEUE_MS",
+    "MAX_LINK_QUEUE_MS",
+    "DEFAULT_LINK_MTU",
+    "MIN_LINK_MTU",
+    "MAX_LINK_MTU",
+    "MIN_LINK_RATE_BPS",
+    "MAX_LINK_RATE_BPS",
     "Role",
     "LogLevel",
     "LogFormat",
@@ -278,6 +293,7 @@ class _Parser:
         self.check_role()
         self.check_fec()
         self.check_addresses()
+        self.check_link()
         self.check_auth()
         self.check_flow_timeouts(first_exchange_given)
         if self.errors:
@@ -428,6 +444,19 @@ class _Parser:
                     f"{show_value(str(destination))} is this proxy's own link.bind {show_value(str(bind))}; "
                     f"expected {_PURPOSE[path]}, which must differ from link.bind",
                 )
+
+    def check_link(self) -> None:
+        """The pacer's queue must hold at least one full-size packet at the rate."""
+        rate, queue_ms, mtu = (self.values.get(f"link.{key}") for key in ("rate", "queue_ms", "mtu"))
+        if rate is None or queue_ms is None or mtu is None:
+            return
+        needed = math.ceil(mtu * 8 / rate * 1000)
+        if queue_ms < needed:
+            self.error(
+                "link.queue_ms",
+                f"{queue_ms} holds less than one {mtu}-byte packet (link.mtu) at link.rate {rate:g} bit/s; "
+                f"expected at least {needed}",
+            )
 
     def check_auth(self) -> None:
         key_file = self.values.get("auth.key_file")

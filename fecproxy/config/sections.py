@@ -19,6 +19,8 @@ from fecproxy.config.limits import (
     DEFAULT_FLUSH_MS,
     DEFAULT_HOLD_MS,
     DEFAULT_INTERLEAVE,
+    DEFAULT_LINK_MTU,
+    DEFAULT_LINK_QUEUE_MS,
     DEFAULT_MAX_DATAGRAM_BYTES,
     DEFAULT_MAX_FLOWS,
     DEFAULT_MAX_MEMORY_BYTES,
@@ -79,6 +81,13 @@ class ConfigUnreadable(ConfigError):
 class LinkSection:
     bind: Address  # local address of the link side (port 0 = any free port)
     peer: Address | None = None  # the other proxy; None on a receiver = learned from traffic
+    rate: float | None = None  # air rate in bit/s (IP/UDP headers counted); None = no pacing
+    queue_ms: int = DEFAULT_LINK_QUEUE_MS  # air time the pacer may hold
+    mtu: int = DEFAULT_LINK_MTU  # path MTU the operator declares (fecproxy check compares packets with it)
+
+    @property
+    def paced(self) -> bool:
+        return self.rate is not None
 
 
 @dataclass(frozen=True)

@@ -12,6 +12,7 @@ import dataclasses
 
 from fecproxy.config.checkers import (
     AddressField,
+    BitRate,
     Boolean,
     Checker,
     Choice,
@@ -30,6 +31,9 @@ from fecproxy.config.limits import (
     MAX_FLUSH_MS,
     MAX_HOLD_MS,
     MAX_INTERLEAVE,
+    MAX_LINK_MTU,
+    MAX_LINK_QUEUE_MS,
+    MAX_LINK_RATE_BPS,
     MAX_MEMORY_BYTES_LIMIT,
     MAX_OPEN_BLOCKS_LIMIT,
     MAX_REBUILDS_PER_S_LIMIT,
@@ -37,6 +41,8 @@ from fecproxy.config.limits import (
     MAX_SIZE_BOUNDARIES,
     MAX_SOCKET_BUFFER_BYTES,
     MAX_STATS_INTERVAL_S,
+    MIN_LINK_MTU,
+    MIN_LINK_RATE_BPS,
     MIN_MEMORY_BYTES,
 )
 from fecproxy.config.sections import (
@@ -108,7 +114,16 @@ _TOP_SCALARS: dict[str, Checker] = {
 }
 
 _SECTIONS: dict[str, tuple[type, dict[str, Checker]]] = {
-    "link": (LinkSection, {"bind": _ADDRESS_TO_BIND, "peer": _DESTINATION}),
+    "link": (
+        LinkSection,
+        {
+            "bind": _ADDRESS_TO_BIND,
+            "peer": _DESTINATION,
+            "rate": BitRate(MIN_LINK_RATE_BPS, MAX_LINK_RATE_BPS),
+            "queue_ms": Integer(1, MAX_LINK_QUEUE_MS, f"an integer number of milliseconds 1..{MAX_LINK_QUEUE_MS}"),
+            "mtu": Integer(MIN_LINK_MTU, MAX_LINK_MTU, f"an integer number of bytes {MIN_LINK_MTU}..{MAX_LINK_MTU}"),
+        },
+    ),
     "fec": (
         FecSection,
         {
@@ -201,6 +216,7 @@ _OPTIONAL = {
     "listen",
     "forward",
     "link.peer",
+    "link.rate",
     "metrics.listen",
     "fec.adapt",
     "auth.key_file",

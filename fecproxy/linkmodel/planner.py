@@ -37,6 +37,7 @@ from typing import Any
 
 import numpy as np
 
+from fecproxy.linkmodel.airtime import LinkBudget
 from fecproxy.linkmodel.loss_models import GilbertElliott
 from fecproxy.protocol import wire
 from fecproxy.protocol.encoder import MAX_INTERLEAVE, repair_byte_cap
@@ -240,17 +241,22 @@ class PlanRequest:
     mean_bytes: float | None = None  # mean datagram size of the flow (its size class); None = bytes not modelled
     max_bytes: int | None = None  # longest datagram of the flow: the length of every repair symbol
     max_byte_overhead: float | None = None  # repair bytes / source bytes on the link; None = no byte budget
+    allow_repair_above_source: bool = False  # the sender's fec.allow_repair_above_source: overheads above 1
+    budget: LinkBudget | None = None  # the air rate and bursts (plan --link-rate); None = rate not modelled
 
     def __post_init__(self) -> None:
         if not (math.isfinite(self.rate) and self.rate > 0):
             raise PlanError(f"datagram rate must be > 0 per second, got {self.rate!r}")
         if not (math.isfinite(self.latency_budget) and self.latency_budget > 0):
             raise PlanError(f"latency budget must be > 0 seconds, got {self.latency_budget!r}")
-        if not (0 <= self.max_overhead <= MAX_OVERHEAD):
+        ceiling = MAX_BLOCK_PACKETS - 1 if self.allow_repair_above_source else MAX_OVERHEAD
+        if not (0 <= self.max_overhead <= ceiling):
+            if self.allow_repair_above_source or not math.isfinite(self.max_overhead) or self.max_overhead < 0:
+                raise PlanError(f"max overhead must be in [0, {ceiling:g}], got {self.max_overhead!r}")
             raise PlanError(
-                f"max overhead must be in [0, {MAX_OVERHEAD:g}] (RFC 6363 §8.2: repair rate never above the source "
-                f"rate), "
-                f"got {self.max_overhead!r}"
+                f"max overhead must be in [0, {MAX_OVERHEAD:g}] (RFC 6363 §8.2: repair rate never above the "
+                f"source rate), got {self.max_overhead!r}; above 1 needs the sender's fec.allow_repair_above_source "
+                "(--allow-repair-above-source)"
             )
         if not (0 < self.target < 1):
             raise PlanError(f"target residual loss must be in (0, 1), got {self.target!r}")
@@ -282,7 +288,7 @@ class PlanRequest:
         if self.max_byte_overhead is not None:
             if self.mean_bytes is None:
                 raise PlanError("a byte overhead budget needs the datagram sizes (mean and max bytes)")
-            if not (0 <= self.max_byte_overhead <= MAX_OVERHEAD):
+            if not (0 <= self.max_byte_overhead <= ceiling):
                 raise PlanError(
                     f"max byte overhead must be in [0, {MAX_OVERHEAD:g}] (RFC 6363 §8.2: repair bytes never above "
                     f"the source bytes), got {self.max_byte_overhead!r}"
@@ -296,6 +302,14 @@ class PlanRequest:
         object.__setattr__(self, "k_values", tuple(sorted(set(self.k_values))))
         object.__setattr__(self, "depths", tuple(sorted(set(self.depths))))
 
+    def block_fill(self, k: int, depth: int = 1) -> int:
+        """Datagrams a block really holds: a burst (budget.burst_datagrams) fills blocks to k at
+        once whatever the average rate; otherwise the flush timer decides (:func:`effective_k`)."""
+        burst = None if self.budget is None else self.budget.burst_datagrams
+        if burst is not None:
+            return max(1, min(k, burst // depth))
+        return effective_k(k, self.rate, self.flush_time, depth)
+
     @property
     def flush_time(self) -> float:
         return self.latency_budget if self.flush is None else self.flush
@@ -307,7 +321,7 @@ class PlanRequest:
     def byte_capped(self, k_effective: int, m_effective: int) -> int:
         """m' as the sender's RFC 6363 §8.2 byte rule leaves it for a block of mean-sized
         datagrams with one of the longest (the symbol length); unchanged without sizes."""
-        if self.mean_bytes is None or self.max_bytes is None:
+        if self.mean_bytes is None or self.max_bytes is None or self.allow_repair_above_source:
             return m_effective
         prefix = wire.SYMBOL_PREFIX_BYTES
         content = int(k_effective * (prefix + self.mean_bytes))
@@ -339,6 +353,11 @@ class Candidate:
     within_overhead: bool
     byte_overhead: float | None = None  # repair bytes / source bytes, when datagram sizes are given
     within_byte_overhead: bool = True
+    source_air: float | None = None  # share of link.rate the source packets take (with --link-rate)
+    repair_air: float | None = None  # share of link.rate the repair packets take
+    burst_delay: float | None = None  # seconds a burst's last datagram waits in the pacer
+    within_air: bool = True  # source + repair fit the air rate
+    within_queue: bool = True  # a burst and its repair fit the pacer's queue (link.queue_ms)
 
     @property
     def overhead(self) -> float:
@@ -352,11 +371,21 @@ class Candidate:
 
     @property
     def acceptable(self) -> bool:
-        return self.meets_target and self.within_latency and self.within_overhead and self.within_byte_overhead
+        return (
+            self.meets_target
+            and self.within_latency
+            and self.within_overhead
+            and self.within_byte_overhead
+            and self.within_air
+            and self.within_queue
+        )
 
-    def config_keys(self) -> dict[str, int]:
+    def config_keys(self) -> dict[str, int | bool]:
         """The sender's config keys that apply this row (fec.*)."""
-        return {"fec.block_size": self.k, "fec.repair": self.m, "fec.interleave": self.depth}
+        keys: dict[str, int | bool] = {"fec.block_size": self.k, "fec.repair": self.m, "fec.interleave": self.depth}
+        if self.m > self.k or self.m_effective > self.k_effective:
+            keys["fec.allow_repair_above_source"] = True
+        return keys
 
     def as_dict(self) -> dict[str, Any]:
         return {
@@ -374,6 +403,11 @@ class Candidate:
             "within_overhead": self.within_overhead,
             "byte_overhead": self.byte_overhead,
             "within_byte_overhead": self.within_byte_overhead,
+            "source_air": self.source_air,
+            "repair_air": self.repair_air,
+            "burst_delay_ms": None if self.burst_delay is None else self.burst_delay * 1000.0,
+            "within_air": self.within_air,
+            "within_queue": self.within_queue,
             "acceptable": self.acceptable,
             "config": self.config_keys(),
         }
@@ -393,9 +427,27 @@ def _cost(c: Candidate) -> tuple[float, float, int, int, int]:
 
 def make_candidate(request: PlanRequest, k: int, m: int, figures: CodeFigures) -> Candidate:
     """A plan row for configured (k, m) whose effective code (k', m') has ``figures``."""
-    span = block_span(k, figures.k, request.rate, request.flush_time, figures.depth)
+    link = request.budget
+    if link is not None and link.burst_datagrams is not None:
+        # A burst's block: its datagrams arrive together and leave at the air rate, so the block
+        # spans its k'·D source packets' air time (a short remainder block waits for the flush).
+        span = (
+            request.flush_time
+            if figures.k < k and figures.k * figures.depth < link.burst_datagrams
+            else (figures.k * figures.depth - 1) * link.source_wire_bytes / link.rate_bytes
+        )
+    else:
+        span = block_span(k, figures.k, request.rate, request.flush_time, figures.depth)
     byte_overhead = request.byte_overhead(figures.k, figures.m)
     budget = request.max_byte_overhead
+    source_air = repair_air = burst_delay = None
+    within_air = within_queue = True
+    if link is not None:
+        source_air = link.source_use(request.rate)
+        repair_air = link.repair_use(request.rate, figures.k, figures.m)
+        burst_delay = link.burst_delay(k, m)
+        within_air = source_air + repair_air <= 1.0 + _BUDGET_SLACK
+        within_queue = link.burst_source_fits() and link.burst_fits(k, m)
     return Candidate(
         k=k,
         k_effective=figures.k,
@@ -410,6 +462,11 @@ def make_candidate(request: PlanRequest, k: int, m: int, figures: CodeFigures) -
         within_overhead=figures.overhead <= request.max_overhead + _BUDGET_SLACK,
         byte_overhead=byte_overhead,
         within_byte_overhead=budget is None or byte_overhead is None or byte_overhead <= budget + _BUDGET_SLACK,
+        source_air=source_air,
+        repair_air=repair_air,
+        burst_delay=burst_delay,
+        within_air=within_air,
+        within_queue=within_queue,
     )
 
 
@@ -427,7 +484,7 @@ def plan(request: PlanRequest) -> Plan:
     rule = request.short_block_repair
     for depth in request.depths:
         for k in request.k_values:
-            k_eff = effective_k(k, request.rate, request.flush_time, depth)
+            k_eff = request.block_fill(k, depth)
             max_m = min(math.floor(k * request.max_overhead + _BUDGET_SLACK), MAX_BLOCK_PACKETS - k)
             m_eff = {m: request.byte_capped(k_eff, repair_count(k, m, k_eff, rule)) for m in range(max_m + 1)}
             in_budget = [m for m in range(max_m + 1) if m_eff[m] <= k_eff * request.max_overhead + _BUDGET_SLACK]
@@ -438,6 +495,13 @@ def plan(request: PlanRequest) -> Plan:
                     m
                     for m in in_budget
                     if (request.byte_overhead(k_eff, m_eff[m]) or 0.0) <= byte_budget + _BUDGET_SLACK
+                ] or [0]
+            if request.budget is not None:
+                fits = request.budget.source_use(request.rate)
+                in_budget = [
+                    m
+                    for m in in_budget
+                    if fits + request.budget.repair_use(request.rate, k_eff, m_eff[m]) <= 1.0 + _BUDGET_SLACK
                 ] or [0]
             options = evaluate_repair_range(request.channel, k_eff, max(m_eff[m] for m in in_budget), depth)
             chosen = next((m for m in in_budget if options[m_eff[m]].residual_loss <= request.target), in_budget[-1])

@@ -178,11 +178,13 @@ class Keyring:
         return tuple(self._by_id)
 
     def describe(self) -> str:
-        """For log lines: ``key 0x0a fingerprint 3f…, previous key 0x5c fingerprint 9d…, MAC``."""
-        text = f"key {self.current.describe()}"
+        """For log lines, the mode first: ``MAC (not encrypted), key 0x0a fingerprint 3f…,
+        previous key 0x5c fingerprint 9d…`` or ``encrypted (ChaCha20-Poly1305), key …``."""
+        text = "encrypted (ChaCha20-Poly1305)" if self.encrypt else "MAC (not encrypted)"
+        text += f", key {self.current.describe()}"
         if self.previous is not None:
             text += f", previous key {self.previous.describe()}"
-        return f"{text}, {'encrypted' if self.encrypt else 'MAC'}"
+        return text
 
     def __repr__(self) -> str:
         return f"Keyring({self.describe()})"

@@ -48,7 +48,8 @@ from fecproxy.protocol.events import (
 from fecproxy.protocol.loss_report import KEY_CHECK_BODY
 from fecproxy.shell.app_side import SideOpenError, app_side
 from fecproxy.shell.fdlimit import ensure_open_files, files_needed
-from fecproxy.shell.logs import log_event, log_exception
+from fecproxy.shell.history import History
+from fecproxy.shell.logs import event_sink, log_event, log_exception
 from fecproxy.shell.metrics import MetricsServer, build_registry, serve
 from fecproxy.shell.settings import (
     ReloadRejected,
@@ -110,7 +111,10 @@ class Daemon:
         self._nursery: trio.Nursery | None = None
         self._stopping = False
         self.registry, self.recovery_delay = build_registry(self.view)
+        #: Recent samples and events for /status.json (every INFO+ log_event of this daemon's tasks).
+        self.history = History()
         self.metrics_port: int | None = None
+        self.metrics_address: tuple[str, int] | None = None
         self.link_address: tuple[Any, ...] | None = None
 
     @property
@@ -152,8 +156,8 @@ class Daemon:
                 raise error.error from None
             if cfg.metrics.listen is not None:
                 key, address = "metrics.listen", cfg.metrics.listen
-                metrics = serve(self.registry, cfg.metrics.listen.host, cfg.metrics.listen.port)
-                self.metrics_port = metrics.port
+                metrics = serve(self.registry, cfg.metrics.listen.host, cfg.metrics.listen.port, history=self.history)
+                self.metrics_port, self.metrics_address = metrics.port, metrics.address
         except OSError as error:
             self.app.close()
             if self._link_sock is not None:
@@ -197,6 +201,8 @@ class Daemon:
         self._check_open_files()
         metrics = self._open_sockets()
         configure_feedback(self.feedback, cfg, trio.current_time())
+        # From here on, this task's events and those of the tasks it starts go to the history too.
+        sink = event_sink.set(self.history.record)
         try:
             async with trio.open_nursery() as nursery:
                 self._nursery = nursery
@@ -230,8 +236,10 @@ class Daemon:
                     sends=side["sends"],
                     decoding="peer's code unknown until traffic",
                     session=f"{self.session:08x}",
-                    metrics=self.metrics_port or "off",
-                    auth=repr(self.decoder.keyring) if self.decoder.keyring is not None else "off",
+                    metrics=f"http://{format_sockaddr(self.metrics_address)}/metrics"
+                    if self.metrics_address
+                    else "off",
+                    auth=self.decoder.keyring.describe() if self.decoder.keyring is not None else "off",
                 )
                 task_status.started(self)
         finally:
@@ -239,7 +247,14 @@ class Daemon:
             self._link_sock.close()
             if metrics is not None:
                 metrics.stop()
-        log_event(log, logging.INFO, "stopped", **self.summary())
+            log_event(log, logging.INFO, "stopped", **self.summary())
+            event_sink.reset(sink)
+
+    def _metrics_url(self) -> str:
+        """Where to point a browser, Prometheus or ``fecproxy watch``; "off" without a port."""
+        if self.metrics_address is None:
+            return "off"
+        return f"http://{format_sockaddr(self.metrics_address)}/metrics"
 
     async def stop(self) -> None:
         """Close the open block (its repair packets go out), then end every task."""
@@ -493,7 +508,7 @@ class Daemon:
         else:
             self.encoder.sealer.key = keys.current
         if changed:
-            log_event(log, logging.INFO, "keys", auth=repr(keys) if keys is not None else "off")
+            log_event(log, logging.INFO, "keys", auth=keys.describe() if keys is not None else "off")
 
     async def _stats_loop(self, interval: float) -> None:
         """One INFO line every ``interval`` seconds with the counters since the previous line, so

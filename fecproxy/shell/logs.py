@@ -10,17 +10,35 @@ import json
 import logging
 import sys
 import time
+from collections.abc import Callable, Mapping
+from contextvars import ContextVar
 
 LEVELS = {"debug": logging.DEBUG, "info": logging.INFO, "warning": logging.WARNING, "error": logging.ERROR}
 
 
+#: Where a daemon keeps its recent events (shell.history.History.record), or None.  A context
+#: variable: the daemon sets it before it starts its tasks, which inherit it, so two daemons in
+#: one process (the demo) each keep their own events and a library user's logging keeps none.
+EventSink = Callable[[int, str, Mapping[str, object]], None]
+event_sink: ContextVar[EventSink | None] = ContextVar("fecproxy_event_sink", default=None)
+
+
 def log_event(logger: logging.Logger, level: int, event: str, **fields: object) -> None:
+    """Log one event; at INFO and above it is also kept in the current daemon's history,
+    whatever the log level (the one function through which every event is recorded)."""
+    if level >= logging.INFO:
+        sink = event_sink.get()
+        if sink is not None:
+            sink(level, event, fields)
     if logger.isEnabledFor(level):
         logger.log(level, event, extra={"fields": fields})
 
 
 def log_exception(logger: logging.Logger, event: str, **fields: object) -> None:
     """Like :func:`log_event` at ERROR, with the traceback of the exception being handled."""
+    sink = event_sink.get()
+    if sink is not None:
+        sink(logging.ERROR, event, fields)
     logger.error(event, exc_info=True, extra={"fields": fields})
 
 

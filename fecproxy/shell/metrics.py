@@ -8,9 +8,11 @@ prefix ``fecproxy_``, base units, counters end in ``_total``, labels only from s
 from __future__ import annotations
 
 import math
+import socket
 from collections.abc import Iterable, Mapping
 from typing import TYPE_CHECKING, Protocol
 
+import trio
 from prometheus_client import (
     CollectorRegistry,
     Histogram,
@@ -24,8 +26,9 @@ from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, InfoM
 from fecproxy import __version__
 from fecproxy.linkmodel.adaptation import DECISION_REASONS, DOWN, IGNORE_REASONS, UP
 from fecproxy.protocol.events import BlockOutcome, DropReason
-from fecproxy.shell.http_server import HttpServer, open_listener
-from fecproxy.shell.status import status_app
+from fecproxy.shell.history import History, keep_history
+from fecproxy.shell.http_server import HttpServer, WsgiApp, open_listener
+from fecproxy.shell.status import read_samples, status_app
 
 # prometheus-client adds a `<name>_created` series (the creation time) to every counter and
 # histogram it owns; Prometheus does not need them and they double the series an operator sees
@@ -326,16 +329,30 @@ def build_registry(daemon: DaemonView) -> tuple[CollectorRegistry, Histogram]:
 
 class MetricsServer(HttpServer):
     """A bound /metrics endpoint: ``address`` is where it listens (the bound port when 0 was asked
-    for); it answers from :meth:`run`, a task in the owner's nursery; ``stop()`` ends it."""
+    for); it answers from :meth:`run`, a task in the owner's nursery, which also samples the
+    ``history`` (if any) for /status.json; ``stop()`` ends both."""
+
+    def __init__(self, sock: socket.socket, app: WsgiApp, registry: CollectorRegistry, history: History | None):
+        super().__init__(sock, app)
+        self.registry, self.history = registry, history
+
+    async def run(self, *, task_status: trio.TaskStatus[None] = trio.TASK_STATUS_IGNORED) -> None:
+        async with trio.open_nursery() as nursery:
+            if self.history is not None:
+                nursery.start_soon(keep_history, self.history, lambda: read_samples(self.registry)[0].items())
+            await super().run(task_status=task_status)
+            nursery.cancel_scope.cancel()
 
 
-def serve(registry: CollectorRegistry, host: str, port: int) -> MetricsServer:
+def serve(registry: CollectorRegistry, host: str, port: int, *, history: History | None = None) -> MetricsServer:
     """Bind the metrics port for the registry (/metrics at every path but the status page's).
 
     The one metrics HTTP server of the package: the daemon, the demo and the impairment relay all
     make theirs here, then start its ``run`` in their nursery (:mod:`fecproxy.shell.http_server`:
-    no thread, bounded connections).  Raises OSError when the address cannot be resolved or bound.
+    no thread, bounded connections).  With a ``history``, /status.json can hand out its samples
+    and events (:mod:`fecproxy.shell.history`).  Raises OSError when the address cannot be
+    resolved or bound.
     """
     # `/` and `/status.json` are the status page; every other path is prometheus-client's.
-    app = status_app(registry, make_wsgi_app(registry))
-    return MetricsServer(open_listener(host, port), app)
+    app = status_app(registry, make_wsgi_app(registry), history=history)
+    return MetricsServer(open_listener(host, port), app, registry, history)

@@ -20,6 +20,7 @@ import threading
 import time
 from collections import deque
 from collections.abc import Callable, Iterable
+from urllib.parse import parse_qs
 
 from prometheus_client import CollectorRegistry
 
@@ -33,6 +34,7 @@ from fecproxy.linkmodel.planner import (
     plan,
 )
 from fecproxy.shell import status_page
+from fecproxy.shell.history import History
 
 #: How often the page polls (seconds): once a second, like ``fecproxy watch``; the page reads it
 #: from the document, so this is the one place to change it.
@@ -210,8 +212,23 @@ def _json_safe(value):
     return value
 
 
-def status_app(registry: CollectorRegistry, other: Callable) -> Callable:
-    """WSGI app: ``/`` the page, ``/status.json`` its data, anything else ``other`` (/metrics)."""
+def history_query(query: str) -> tuple[bool, int | None]:
+    """``/status.json``'s query: ``history`` (any value) asks for the sampled rows and every kept
+    event; ``events_since=N`` for the events after the N-th only (what a poller has not seen)."""
+    params = parse_qs(query, keep_blank_values=True)
+    rows = "history" in params
+    since: int | None = 0 if rows else None
+    for text in params.get("events_since", []):
+        try:
+            since = max(0, int(text))
+        except ValueError:
+            since = 0
+    return rows, since
+
+
+def status_app(registry: CollectorRegistry, other: Callable, history: History | None = None) -> Callable:
+    """WSGI app: ``/`` the page, ``/status.json`` its data (with ``history``: the daemon's recent
+    samples and events on request, see :func:`history_query`), anything else ``other`` (/metrics)."""
     source = StatusSource(registry)
 
     def app(environ: dict, start_response: Callable) -> Iterable[bytes]:
@@ -222,7 +239,12 @@ def status_app(registry: CollectorRegistry, other: Callable) -> Callable:
             start_response("405 Method Not Allowed", [("Allow", "GET, HEAD"), ("Content-Type", "text/plain")])
             return [b"GET or HEAD only\n"]
         if path == "/status.json":
-            body = json.dumps(_json_safe(source.document()), allow_nan=False).encode()
+            document = source.document()
+            if history is not None:
+                rows, since = history_query(environ.get("QUERY_STRING", ""))
+                document["history"] = history.document(samples=rows, events_since=since)
+                document["uptime_s"] = history.uptime()  # one time base for the live read and the rows
+            body = json.dumps(_json_safe(document), allow_nan=False).encode()
             headers = [("Content-Type", "application/json"), ("Cache-Control", "no-store")]
         else:
             try:

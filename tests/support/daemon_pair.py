@@ -178,6 +178,11 @@ def wait_until(predicate, timeout: float, interval: float = 0.02) -> bool:
 _FIELD = re.compile(r'(\w+)=("(?:[^"\\]|\\.)*"|\S*)')
 
 
+def metrics_port_of(started: dict[str, str]) -> int:
+    """The port of a ``started`` line's ``metrics`` field (``http://HOST:PORT/metrics``)."""
+    return int(started["metrics"].split("://", 1)[-1].split("/", 1)[0].rsplit(":", 1)[1])
+
+
 def parse_log_line(line: str) -> dict[str, str]:
     return {key: json.loads(value) if value.startswith('"') else value for key, value in _FIELD.findall(line)}
 
@@ -225,6 +230,10 @@ class DaemonProcess:
         return host, int(port)
 
     @property
+    def metrics_port(self) -> int:
+        return metrics_port_of(self.started)
+
+    @property
     def link_address(self) -> tuple[str, int]:
         return self._address(self.started["link"])
 
@@ -234,7 +243,7 @@ class DaemonProcess:
 
     def metrics(self) -> dict[tuple[str, tuple], float]:
         """Every sample on /metrics, keyed by (sample name, sorted label items)."""
-        url = f"http://{LOOPBACK}:{self.started['metrics']}/metrics"
+        url = f"http://{LOOPBACK}:{self.metrics_port}/metrics"
         with urllib.request.urlopen(url, timeout=5) as response:
             text = response.read().decode()
         samples = {}

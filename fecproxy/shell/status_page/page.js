@@ -1,9 +1,13 @@
 "use strict";
-// Polls status.json, keeps five minutes of reads, and draws the figures and SVG charts.
-// Rates are differences between reads (a counter that went down means the daemon restarted:
-// its new value is the increase), as `fecproxy watch` computes them.
+// Polls status.json, keeps the daemon's history window of reads, and draws the figures and SVG
+// charts.  The first read asks for the daemon's history (status.json?history=1: its one-second
+// samples and last events), so a page opened after an incident shows it; later reads ask only for
+// events not yet seen.  Rates are differences between reads (a counter that went down means the
+// daemon restarted: its new value is the increase), as `fecproxy watch` computes them.
 (() => {
-  const HISTORY_READS = 301;       // five minutes of one-second reads, plus the first
+  let windowS = 900;               // the chart span: the daemon's history span (history.span_s)
+  let maxReads = 901;              // reads kept: the span at one read per refresh, plus the first
+  const MAX_EVENTS_SHOWN = 200;    // the daemon keeps as many
   const KPI_READS = 5;             // the figure cards cover the last few reads
   const FETCH_TIMEOUT_MS = 3000;   // a healthy daemon answers in milliseconds
   const CHART = { w: 420, h: 200, left: 50, right: 8, top: 10, bottom: 24 };  // the SVGs' viewBox
@@ -28,7 +32,9 @@
   const $ = (id) => document.getElementById(id);
   const reads = [];   // {t: daemon uptime in s, s: samples}
   const points = [];  // one per read after the first: the interval's figures
+  const events = [];  // the daemon's events, oldest first: {seq, t, ts, level, event, fields}
   let refreshS = 1;
+  let lastSeq = null; // null until the history was read
 
   // ---------------------------------------------------------------- arithmetic
   const get = (s, key) => s[key] ?? 0;
@@ -116,6 +122,23 @@
     for (const f of [1, 2, 2.5, 5, 10]) if (f * step >= v) return f * step;
     return 10 * step;
   }
+  // The charts' span: the shortest of one, five or fifteen minutes (at most the daemon's history)
+  // that holds every read, so a young daemon's few seconds are not a sliver at the edge.
+  const SPANS = [60, 300, 900];
+  function chartSpan() {
+    const age = reads.length ? reads[reads.length - 1].t - reads[0].t : 0;
+    for (const span of SPANS) if (span >= age && span <= windowS) return span;
+    return windowS;
+  }
+  function spanText(span) {
+    return span % 60 === 0 ? (span === 60 ? "minute" : `${span / 60} minutes`) : `${span} s`;
+  }
+  function caption() {
+    const fromHistory = lastSeq !== null && reads.length > 1 ? " (from the daemon's own history: they start before this page was opened)" : "";
+    $("kpi-span").textContent = `Figures above: the last few seconds. Charts: the last ${spanText(chartSpan())}${fromHistory}, ` +
+      `one point per second; dashed marks: the events listed below.`;
+    $("kpi-span").dataset.span = String(chartSpan());
+  }
   // series: [{name, color, values: [[t, v|null], ...]}]; format: tick label of a value
   function drawChart(id, legendName, series, format, step) {
     const svg = $(id), c = CHART;
@@ -129,7 +152,7 @@
       return item;
     }));
     const now = reads.length ? reads[reads.length - 1].t : 0;
-    const span = Math.max(60, Math.min(300, now - (reads.length ? reads[0].t : 0)));
+    const span = chartSpan();  // the caption names the same span (see caption())
     const x = (t) => c.left + (c.w - c.left - c.right) * (1 - (now - t) / span);
     let top = 0;
     for (const s of series) for (const [, v] of s.values) if (v !== null && v > top) top = v;
@@ -140,23 +163,35 @@
       svg.append(node("line", { class: i ? "grid" : "axis", x1: c.left, x2: c.w - c.right, y1: y(v), y2: y(v) }));
       svg.append(node("text", { x: c.left - 6, y: y(v) + 4, "text-anchor": "end" }, format(v)));
     }
-    const ticks = span >= 240 ? 60 : 30;
+    const ticks = span >= 600 ? 300 : span >= 240 ? 60 : 30;
     for (let ago = 0; ago <= span + 1e-9; ago += ticks) {
       const xt = x(now - ago);
       svg.append(node("text", { x: xt, y: c.h - 8, "text-anchor": ago === 0 ? "end" : "middle" },
         ago === 0 ? "now" : ago % 60 === 0 ? `−${ago / 60} min` : `−${ago} s`));
     }
-    let drawn = false;
+    // Events as vertical marks (warnings and errors darker), so a loss spike sits beside its cause.
+    let marks = 0;
+    for (const e of events) {
+      if (now - e.t > span || e.t > now) continue;
+      const xe = x(e.t).toFixed(1);
+      svg.append(node("line", { class: "mark " + e.level, x1: xe, x2: xe, y1: c.top, y2: c.h - c.bottom },));
+      marks++;
+    }
+    svg.dataset.marks = String(marks);
+    let drawn = false, shown = 0, highest = null;
     for (const s of series) {
       let d = "", open = false, last = null;
       for (const [t, v] of s.values) {
         if (now - t > span || v === null) { open = false; continue; }
         if (step && open && last !== null) d += `L${x(t).toFixed(1)},${y(last).toFixed(1)}`;
         d += `${open ? "L" : "M"}${x(t).toFixed(1)},${y(v).toFixed(1)}`;
-        open = true; last = v;
+        open = true; last = v; shown++;
+        if (highest === null || v > highest) highest = v;
       }
       if (d) { svg.append(node("path", { class: "line c" + s.color, d })); drawn = true; }
     }
+    svg.dataset.points = String(shown);
+    svg.dataset.max = highest === null ? "" : String(highest);
     if (!drawn) {
       svg.append(node("text", { class: "empty", x: (c.left + c.w) / 2, y: c.h / 2, "text-anchor": "middle" },
         reads.length < 2 ? "collecting…" : "no data in this window"));
@@ -263,6 +298,47 @@
     const top = Object.entries(f.drops).filter(([, v]) => v > 0).sort((a, b) => b[1] - a[1]).map(([r, v]) => `${r} ${count(v)}`);
     $("kpi-drops-sub").textContent = top.length ? top.join(", ") : `none, ${span}`;
   }
+  function fieldsText(fields) {
+    return Object.entries(fields || {}).map(([k, v]) => `${k}=${v}`).join(" ");
+  }
+  function drawEvents() {
+    const rows = events.slice(-MAX_EVENTS_SHOWN).reverse().map((e) => {
+      const tr = document.createElement("tr");
+      tr.className = "ev " + e.level;
+      tr.dataset.event = e.event;
+      const when = document.createElement("td");
+      when.textContent = new Date(e.ts).toLocaleTimeString("en-GB");
+      when.title = e.ts;
+      const name = document.createElement("td");
+      name.className = "name";
+      name.textContent = e.event;
+      const detail = document.createElement("td");
+      detail.className = "detail";
+      detail.textContent = fieldsText(e.fields);
+      tr.append(when, name, detail);
+      return tr;
+    });
+    $("events").tBodies[0].replaceChildren(...rows);
+    $("events-none").hidden = rows.length > 0;
+  }
+  function takeHistory(doc) {
+    const h = doc.history;
+    if (!h) { lastSeq = 0; return; }
+    if (h.span_s) { windowS = h.span_s; maxReads = Math.round(h.span_s / (h.interval_s || 1)) + 1; }
+    for (const e of h.events || []) if (lastSeq === null || e.seq > lastSeq) events.push(e);
+    while (events.length > MAX_EVENTS_SHOWN) events.shift();
+    lastSeq = Math.max(lastSeq || 0, h.events_recorded || 0);
+    if (!h.samples || reads.length) return;
+    const send = (name) => `${name}{code="send"}`;
+    for (const row of h.samples) {
+      const s = {};
+      h.series.forEach((key, i) => { if (row[i + 1] !== null) s[key] = row[i + 1]; });
+      const k = s[send("fecproxy_code_source_symbols")], m = s[send("fecproxy_code_repair_symbols")];
+      const read = { t: row[0], s, info: { k: k === undefined ? "" : String(k), m: m === undefined ? "" : String(m) } };
+      if (reads.length) points.push(figures(read, reads[reads.length - 1]));
+      reads.push(read);
+    }
+  }
   function connection(state, text) {
     const pill = $("conn");
     pill.className = "pill " + state;
@@ -274,25 +350,32 @@
     const abort = new AbortController();
     const timer = setTimeout(() => abort.abort(), FETCH_TIMEOUT_MS);
     try {
-      const response = await fetch("status.json", { cache: "no-store", signal: abort.signal });
+      const query = lastSeq === null ? "?history=1" : `?events_since=${lastSeq}`;
+      const response = await fetch("status.json" + query, { cache: "no-store", signal: abort.signal });
       if (!response.ok) throw new Error(`HTTP ${response.status}`);
       const doc = await response.json();
       refreshS = doc.refresh_s || refreshS;
       const read = { t: doc.uptime_s, s: doc.samples, info: doc.info || {} };
       const previous = reads[reads.length - 1];
-      if (previous && read.t < previous.t) { reads.length = 0; points.length = 0; }  // daemon restarted
-      if (previous && read.t >= previous.t && reads.length) points.push(figures(read, reads[reads.length - 1]));
-      reads.push(read);
-      while (reads.length > HISTORY_READS) reads.shift();
-      while (points.length > HISTORY_READS - 1) points.shift();
+      if (previous && read.t < previous.t) {  // daemon restarted: its history starts afresh
+        reads.length = 0; points.length = 0; events.length = 0; lastSeq = null;
+      }
+      takeHistory(doc);
+      const before = reads[reads.length - 1];
+      if (before && read.t > before.t) points.push(figures(read, before));
+      if (!before || read.t > before.t) reads.push(read);
+      while (reads.length > maxReads) reads.shift();
+      while (points.length > maxReads - 1) points.shift();
       $("role").textContent = read.info.role || "?";
       $("version").textContent = read.info.version || "?";
       for (const key of ["k", "m"]) { $("code-" + key).textContent = read.info[key] || "?"; $("code-" + key).dataset.value = read.info[key] || ""; }
       $("uptime").textContent = duration(doc.uptime_s);
       drawKpis();
+      caption();
       drawCharts();
       drawTotals(read.s);
       drawEstimate(doc);
+      drawEvents();
       connection("ok", "live · " + new Date().toLocaleTimeString("en-GB"));
       document.body.dataset.refreshes = String(Number(document.body.dataset.refreshes) + 1);
     } catch (error) {
