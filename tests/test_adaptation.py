@@ -519,3 +519,18 @@ def test_closed_loop_follows_a_fading_link():
             unrecovered += lost
         assert unrecovered <= expected + 4 * math.sqrt(variance), (phase, unrecovered, expected, variance)
         assert expected / (blocks * K) <= TARGET
+
+
+def test_the_air_rate_headroom_bounds_the_repair():
+    # link.rate 256 kbit/s; 10 datagrams/s of 1200 bytes take 10 × (14 + 1200 + 28) × 8 = 99 kbit/s
+    # of air, so repair may take at most 0.95 × 256 000 − 99 360 bit/s: m'/k' × 10 × (12 + 5 + 1200
+    # + 28) × 8 ≤ that, i.e. m ≤ 16 × 143 840 / 99 600 = 23.1 → the packet cap m ≤ 16 binds first;
+    # at 20 datagrams/s the source takes 198 720 bit/s, leaving 44 480: m ≤ 16 × 44 480 / 199 200 = 3.57.
+    source = SourceProfile(rate=20.0, mean_datagram_bytes=1200, longest_datagram_bytes=1200)
+    controller = RedundancyController(policy(air_rate_bps=256_000.0), initial_repair=4, now=0.0, source=source)
+    receiver = FakeReceiver()
+    feed(controller, receiver, 0.0, 0.20, 2.0, count=3)  # a link that would need far more
+    assert controller.repair == 3
+    source_bits = 20 * (wire.SOURCE_HEADER_BYTES + 1200 + 28) * 8
+    repair_bits = 20 * controller.repair / K * (wire.REPAIR_HEADER_BYTES + wire.SYMBOL_PREFIX_BYTES + 1200 + 28) * 8
+    assert source_bits + repair_bits <= 0.95 * 256_000

@@ -66,3 +66,23 @@ def test_settled_is_the_figure_once_a_later_block_began():
     assert code.settled == (16, 4) and (code.k, code.m) == (16, 4)
     code.reset()
     assert code.settled is None
+
+
+def test_the_configured_code_is_the_largest_full_blocks_and_short_blocks_say_so():
+    from fecproxy.protocol.received_code import ReceivedCode
+
+    code = ReceivedCode()
+    # A peer configured 16/8 at telemetry rate: every block closed short (k'=2, m'=1).
+    for sbn in range(5):
+        code.note(sbn, 2, 2)
+    assert code.configured is None and code.k == 2  # "short blocks only so far"
+    code.note_full(5, 16)  # END flag on ESI 15
+    for esi in range(16, 24):
+        code.note(5, 16, esi)
+    assert code.configured == (16, 8)
+    for sbn in range(6, 20):  # short blocks again: the configured figure stays
+        code.note(sbn, 1, 1)
+    assert code.configured == (16, 8)
+    code.note_full(20, 16)
+    code.note(20, 16, 17)  # a full block whose last repair packets were lost shows m ≥ 2 only
+    assert code.configured == (16, 8)

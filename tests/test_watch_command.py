@@ -67,6 +67,32 @@ def test_totals_frame_shows_every_dashboard_figure():
     assert "loss 5.000 %, mean burst 1.50 packets" in text
 
 
+#: An in-order receiver's delivery figures (invented): 100 datagrams, 10 waited, 2 gaps skipped.
+IN_ORDER = """\
+# TYPE fecproxy_delivery_wait_seconds histogram
+fecproxy_delivery_wait_seconds_bucket{le="0.0"} 90.0
+fecproxy_delivery_wait_seconds_bucket{le="0.01"} 95.0
+fecproxy_delivery_wait_seconds_bucket{le="0.1"} 100.0
+fecproxy_delivery_wait_seconds_bucket{le="+Inf"} 100.0
+fecproxy_delivery_wait_seconds_count 100.0
+fecproxy_delivery_wait_seconds_sum 0.3
+# TYPE fecproxy_delivery_held_total counter
+fecproxy_delivery_held_total 10.0
+# TYPE fecproxy_delivery_gaps_skipped_total counter
+fecproxy_delivery_gaps_skipped_total{reason="max_wait"} 2.0
+fecproxy_delivery_gaps_skipped_total{reason="given_up"} 0.0
+"""
+
+
+def test_in_order_wait_is_shown_only_for_a_daemon_that_delivers_in_order():
+    assert "in-order wait                — (delivering as available" in render(
+        [("u", figures(parse_metrics(SNAPSHOT)))]
+    )
+    text = render([("u", figures(parse_metrics(SNAPSHOT + IN_ORDER)))])
+    # 90 of 100 waited 0: p50 is 0; p99 at rank 99 lies 4/5 of the way through (0.01, 0.1].
+    assert re.search(r"in-order wait\s+p50 0\.0 ms .* p99 82\.0 ms\s+held 10 total, gaps skipped 2 total", text)
+
+
 def test_rates_between_two_reads_and_a_down_endpoint():
     before = parse_metrics(SNAPSHOT)
     later = parse_metrics(

@@ -102,6 +102,12 @@ class Figures:
     drops: dict[str, float] = field(default_factory=dict)
     flows: float = 0.0
     estimate: tuple[float, float] | None = None
+    # In-order delivery (delivery.order: in_order): datagrams handed on through it, the added
+    # wait's quantiles, datagrams that waited behind a gap and gaps skipped.
+    ordered: float = 0.0
+    wait_quantiles: dict[float, float | None] = field(default_factory=dict)
+    held: float = 0.0
+    skipped: float = 0.0
 
 
 def figures(now: Samples, before: Samples | None = None, seconds: float | None = None) -> Figures:
@@ -130,6 +136,18 @@ def figures(now: Samples, before: Samples | None = None, seconds: float | None =
             le = dict(labels)["le"]
             buckets.append((float(le), _delta(now, before, name, le=le)))
     out.delay_quantiles = {q: histogram_quantile(q, buckets) for q in QUANTILES}
+    waits = []
+    for (name, labels), _ in now.items():
+        if name == "fecproxy_delivery_wait_seconds_bucket":
+            le = dict(labels)["le"]
+            waits.append((float(le), _delta(now, before, name, le=le)))
+    out.wait_quantiles = {q: histogram_quantile(q, waits) for q in QUANTILES}
+    if ("fecproxy_delivery_wait_seconds_count", ()) in now:
+        out.ordered = _delta(now, before, "fecproxy_delivery_wait_seconds_count")
+        out.held = _delta(now, before, "fecproxy_delivery_held_total")
+    for (name, labels), _ in now.items():
+        if name == "fecproxy_delivery_gaps_skipped_total":
+            out.skipped += _delta(now, before, name, reason=dict(labels).get("reason", "?"))
     for (name, labels), _ in now.items():
         if name == "fecproxy_packets_dropped_total":
             reason = dict(labels).get("reason", "?")
@@ -177,6 +195,13 @@ def render_endpoint(url: str, view: Figures | str) -> list[str]:
         + "   ".join(f"p{round(100 * q)} {_ms(value)}" for q, value in f.delay_quantiles.items()),
         "  drops                        "
         + (", ".join(f"{reason} {_per(count, f.seconds)}" for reason, count in sorted(f.drops.items())) or "none"),
+        "  in-order wait                "
+        + (
+            "— (delivering as available, or nothing delivered yet)"
+            if not f.ordered
+            else "   ".join(f"p{round(100 * q)} {_ms(value)}" for q, value in f.wait_quantiles.items())
+            + f"   held {_per(f.held, f.seconds)}, gaps skipped {_per(f.skipped, f.seconds)}"
+        ),
         f"  flows                        {f.flows:.0f}",
         "  online estimate              "
         + (

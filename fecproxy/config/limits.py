@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from fecproxy.protocol import decoder as _decoder
 from fecproxy.protocol import encoder as _encoder
+from fecproxy.protocol import ordering as _ordering
 from fecproxy.protocol import pacer as _pacer
 from fecproxy.protocol import wire
 from fecproxy.protocol.flows import FLOW_SLOTS
@@ -49,6 +50,10 @@ MAX_DATAGRAM_BYTES_LIMIT = (
 DEFAULT_HOLD_MS = round(_decoder.DEFAULT_HOLD_TIME * 1000)
 #: An hour-long hold is never useful; a minute is already generous and bounds the memory held.
 MAX_HOLD_MS = 60_000
+
+#: In-order delivery owns its bound and its reason (fecproxy.protocol.ordering.DEFAULT_MAX_WAIT).
+DEFAULT_MAX_WAIT_MS = round(_ordering.DEFAULT_MAX_WAIT * 1000)
+MAX_MAX_WAIT_MS = round(_ordering.MAX_MAX_WAIT * 1000)
 
 #: The decoder owns the open-block bound and its reason (decoder.DEFAULT_MAX_OPEN_BLOCKS).
 DEFAULT_MAX_OPEN_BLOCKS = _decoder.DEFAULT_MAX_OPEN_BLOCKS

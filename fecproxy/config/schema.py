@@ -46,6 +46,7 @@ from fecproxy.config.limits import (
     DEFAULT_MAX_MEMORY_BYTES,
     DEFAULT_MAX_OPEN_BLOCKS,
     DEFAULT_MAX_OVERHEAD,
+    DEFAULT_MAX_WAIT_MS,
     DEFAULT_MIN_REPAIR,
     DEFAULT_REPAIR,
     DEFAULT_REPORT_INTERVAL_MS,
@@ -64,6 +65,7 @@ from fecproxy.config.limits import (
     MAX_LINK_MTU,
     MAX_LINK_QUEUE_MS,
     MAX_LINK_RATE_BPS,
+    MAX_MAX_WAIT_MS,
     MAX_MEMORY_BYTES_LIMIT,
     MAX_OPEN_BLOCKS_LIMIT,
     MAX_REBUILDS_PER_S_LIMIT,
@@ -83,6 +85,8 @@ from fecproxy.config.sections import (
     ConfigError,
     ConfigUnreadable,
     DecoderSection,
+    DeliveryOrder,
+    DeliverySection,
     FecSection,
     FlowsSection,
     LinkSection,
@@ -140,6 +144,8 @@ __all__ = [
     "MAX_DATAGRAM_BYTES_LIMIT",
     "DEFAULT_HOLD_MS",
     "MAX_HOLD_MS",
+    "DEFAULT_MAX_WAIT_MS",
+    "MAX_MAX_WAIT_MS",
     "DEFAULT_MAX_OPEN_BLOCKS",
     "MAX_OPEN_BLOCKS_LIMIT",
     "DEFAULT_MAX_MEMORY_BYTES",
@@ -171,6 +177,7 @@ __all__ = [
     "MAX_LINK_RATE_BPS",
     "Role",
     "LogLevel",
+    "DeliveryOrder",
     "LogFormat",
     "ConfigError",
     "ConfigUnreadable",
@@ -178,6 +185,7 @@ __all__ = [
     "AdaptSection",
     "FecSection",
     "DecoderSection",
+    "DeliverySection",
     "FlowsSection",
     "SocketsSection",
     "LogSection",
@@ -197,6 +205,7 @@ class Config:
     forward: Address | None = None  # receiver: rebuilt datagrams are delivered here
     fec: FecSection = FecSection()
     decoder: DecoderSection = DecoderSection()
+    delivery: DeliverySection = DeliverySection()
     flows: FlowsSection = FlowsSection()
     sockets: SocketsSection = SocketsSection()
     log: LogSection = LogSection()
@@ -292,6 +301,7 @@ class _Parser:
         self.fill_defaults()
         self.check_role()
         self.check_fec()
+        self.check_delivery()
         self.check_addresses()
         self.check_link()
         self.check_auth()
@@ -384,6 +394,16 @@ class _Parser:
                 f"repair rate at or below the source rate), or set fec.allow_repair_above_source: true",
             )
         self.check_adapt(k, allow)
+
+    def check_delivery(self) -> None:
+        wait, hold = self.values.get("delivery.max_wait_ms"), self.values.get("decoder.hold_ms")
+        in_order = self.values.get("delivery.order") is DeliveryOrder.IN_ORDER  # the bound is unused otherwise
+        if in_order and wait is not None and hold is not None and wait > hold:
+            self.error(
+                "delivery.max_wait_ms",
+                f"{wait} is above decoder.hold_ms {hold}; expected max_wait_ms ≤ hold_ms (a gap cannot be "
+                f"rebuilt once the decoder gives up its block, so waiting longer only delays what follows)",
+            )
 
     def check_adapt(self, k: int, allow: bool | None) -> None:
         adapt = self.values.get("fec.adapt")

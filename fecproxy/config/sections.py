@@ -26,6 +26,7 @@ from fecproxy.config.limits import (
     DEFAULT_MAX_MEMORY_BYTES,
     DEFAULT_MAX_OPEN_BLOCKS,
     DEFAULT_MAX_OVERHEAD,
+    DEFAULT_MAX_WAIT_MS,
     DEFAULT_MIN_REPAIR,
     DEFAULT_REPAIR,
     DEFAULT_REPORT_INTERVAL_MS,
@@ -53,6 +54,11 @@ class LogLevel(StrEnum):
     INFO = "info"
     WARNING = "warning"
     ERROR = "error"
+
+
+class DeliveryOrder(StrEnum):
+    AS_AVAILABLE = "as_available"  # each datagram leaves the moment it arrives or is rebuilt
+    IN_ORDER = "in_order"  # each flow's datagrams leave in the order the sender took them
 
 
 class LogFormat(StrEnum):
@@ -146,6 +152,23 @@ class DecoderSection:
     @property
     def hold_seconds(self) -> float:
         return self.hold_ms / 1000
+
+
+@dataclass(frozen=True)
+class DeliverySection:
+    """What this daemon hands its applications: as available (the default: no added wait) or
+    each flow in order, a datagram after a gap waiting at most max_wait_ms for it."""
+
+    order: DeliveryOrder = DeliveryOrder.AS_AVAILABLE
+    max_wait_ms: int = DEFAULT_MAX_WAIT_MS
+
+    @property
+    def in_order(self) -> bool:
+        return self.order is DeliveryOrder.IN_ORDER
+
+    @property
+    def max_wait_seconds(self) -> float:
+        return self.max_wait_ms / 1000
 
 
 @dataclass(frozen=True)

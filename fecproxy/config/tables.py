@@ -34,6 +34,7 @@ from fecproxy.config.limits import (
     MAX_LINK_MTU,
     MAX_LINK_QUEUE_MS,
     MAX_LINK_RATE_BPS,
+    MAX_MAX_WAIT_MS,
     MAX_MEMORY_BYTES_LIMIT,
     MAX_OPEN_BLOCKS_LIMIT,
     MAX_REBUILDS_PER_S_LIMIT,
@@ -49,6 +50,8 @@ from fecproxy.config.sections import (
     AdaptSection,
     AuthSection,
     DecoderSection,
+    DeliveryOrder,
+    DeliverySection,
     FecSection,
     FlowsSection,
     LinkSection,
@@ -99,6 +102,7 @@ TOP_LEVEL_KEYS = (
     "link",
     "fec",
     "decoder",
+    "delivery",
     "flows",
     "sockets",
     "log",
@@ -158,6 +162,17 @@ _SECTIONS: dict[str, tuple[type, dict[str, Checker]]] = {
             "max_memory_bytes": Integer(MIN_MEMORY_BYTES, MAX_MEMORY_BYTES_LIMIT),
             "max_rebuilds_per_s": Integer(
                 1, MAX_REBUILDS_PER_S_LIMIT, f"an integer 1..{MAX_REBUILDS_PER_S_LIMIT}, or null for no cap"
+            ),
+        },
+    ),
+    "delivery": (
+        DeliverySection,
+        {
+            "order": Choice(DeliveryOrder, "delivery order"),
+            "max_wait_ms": Integer(
+                1,
+                MAX_MAX_WAIT_MS,
+                f"an integer number of milliseconds 1..{MAX_MAX_WAIT_MS} (in order: ≤ decoder.hold_ms)",
             ),
         },
     ),

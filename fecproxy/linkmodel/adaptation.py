@@ -72,6 +72,12 @@ MAX_MODEL_BURST = float(MAX_BLOCK_PACKETS)
 INDEPENDENT_BURST_TOLERANCE = 0.5 / BURST_SCALE
 #: Relative slack when comparing to budgets (m/k = 0.25 meets 0.25 despite binary floating point).
 _SLACK = 1e-9
+#: With link.rate set, source and repair together may take this share of the air rate; the rest
+#: is left for control packets (reports, key checks) and for the error of the rate estimate.
+#: Common practice, no source.
+AIR_SHARE_FOR_DATA = 0.95
+#: IP + UDP bytes per packet counted against the air rate (IPv4, RFC 791 + RFC 768), as the pacer counts.
+AIR_HEADER_BYTES = 28
 #: 32-bit serial-number comparison of report sequence numbers (RFC 1982 style: half the space ahead).
 _SEQUENCE_MODULUS = 1 << 32
 
@@ -107,6 +113,7 @@ class AdaptPolicy:
     depths: tuple[int, ...] = (1,)  # interleave depths the sender can apply; (1,) = none
     short_block_repair: str = SHORT_BLOCK_RULES[0]
     flush_interval: float | None = None  # seconds; None = blocks always fill (no short blocks)
+    air_rate_bps: float | None = None  # link.rate: repair never beyond the headroom the source leaves
 
     def __post_init__(self) -> None:
         k = self.block_size
@@ -371,7 +378,19 @@ class RedundancyController:
         source_bytes, repair_bytes = self.source.source_packet_bytes, self.source.repair_packet_bytes
         if source_bytes is None or repair_bytes is None:
             return True
-        return m_eff * repair_bytes <= budget * k_eff * source_bytes * (1 + _SLACK)
+        if m_eff * repair_bytes > budget * k_eff * source_bytes * (1 + _SLACK):
+            return False
+        return self._within_air(m_eff, k_eff, source_bytes, repair_bytes)
+
+    def _within_air(self, m_eff: int, k_eff: int, source_bytes: float, repair_bytes: int) -> bool:
+        """link.rate: the source's air time plus m'/k' repair packets per datagram fit the air rate
+        (AIR_SHARE_FOR_DATA of it).  m = 0 always fits: the source is not this rule's to cut."""
+        air, rate = self.policy.air_rate_bps, self.source.rate
+        if air is None or rate is None or m_eff == 0:
+            return True
+        source = rate * (source_bytes + AIR_HEADER_BYTES) * 8
+        repair = rate * m_eff / k_eff * (repair_bytes + AIR_HEADER_BYTES) * 8
+        return source + repair <= AIR_SHARE_FOR_DATA * air * (1 + _SLACK)
 
     def _decide(self, link: LinkView, now: float) -> Decision | None:
         options = self.options(link)

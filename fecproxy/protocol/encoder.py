@@ -70,6 +70,7 @@ from fecproxy.protocol.encoder_settings import (
     size_class_names,
 )
 from fecproxy.protocol.events import DropReason
+from fecproxy.protocol.ordering import MAX_SEQUENCE_FLOWS, FlowSequencer
 
 __all__ = [
     "DEFAULT_BLOCK_SIZE",
@@ -190,6 +191,7 @@ class BlockEncoder:
         self._open: dict[int, _Block] = {}  # by key = class · MAX_INTERLEAVE + lane, blocks still fed
         self._by_sbn: dict[int, _Block] = {}  # every open block, also those a new layout no longer feeds
         self._lanes: dict[int, int] = {}  # per class: the lane of its next datagram
+        self._sequences = FlowSequencer()  # each flow's datagrams numbered in the order taken
         self._carry: tuple[int, int] | None = None  # (SBN, k) of a closed block whose successor is not open yet
         self._spare: dict[tuple[int, int], list[tuple[memoryview, np.ndarray]]] = {}  # zeroed buffers by shape
         self._groups: dict[int, _Group] = {}  # per class: the round its lanes are joining
@@ -304,7 +306,7 @@ class BlockEncoder:
         session, pack_source, pack_prefix = self.session, wire.pack_source_header, wire.SYMBOL_PREFIX.pack_into
         prefix, flag_end = wire.SYMBOL_PREFIX_BYTES, wire.FLAG_END
         generation_bits, generation_mask, flow_shift = wire.GENERATION_BITS, wire.GENERATION_MASK, wire.FLOW_SHIFT
-        blocks, lanes = self._open, self._lanes
+        blocks, lanes, sequences = self._open, self._lanes, self._sequences.counts
         sources: list[bytes] = []
         #: Source runs, each full block's (still empty) repair list, or its interleaving group, between them.
         pieces: list[list[bytes] | _Group] = [sources]
@@ -352,8 +354,14 @@ class BlockEncoder:
                     cur, cur_key = block, key
                     count, width, storage, symbol_len = block.count, block.width, block.storage, block.symbol_len
                     content, limit, base, previous_k = block.content, block.limit, block.base, block.previous_k
+                seq = sequences.pop(flow, -1)  # FlowSequencer.next, inlined: once per datagram
+                if seq < 0:
+                    seq = 0
+                    if len(sequences) >= MAX_SEQUENCE_FLOWS:
+                        del sequences[next(iter(sequences))]
+                sequences[flow] = (seq + 1) & 0xFFFF
                 start = count * width + prefix
-                pack_prefix(storage, start - prefix, flow >> generation_bits, flow & generation_mask, size)
+                pack_prefix(storage, start - prefix, flow >> generation_bits, flow & generation_mask, size, seq)
                 storage[start : start + size] = datagram
                 if symbol > symbol_len:
                     symbol_len = symbol
@@ -363,11 +371,11 @@ class BlockEncoder:
                 sent_size[index] += size
                 if count < limit:
                     sources.append(
-                        pack_source(0, session, base | (count - 1), flow << flow_shift | previous_k) + datagram
+                        pack_source(0, session, base | (count - 1), flow << flow_shift | previous_k, seq) + datagram
                     )
                     continue
                 word = flow << flow_shift | previous_k
-                sources.append(pack_source(flag_end, session, base | (count - 1), word) + datagram)
+                sources.append(pack_source(flag_end, session, base | (count - 1), word, seq) + datagram)
                 assert cur is not None  # set when the datagram's block became current (once per block here)
                 cur.count, cur.symbol_len, cur.content = count, symbol_len, content
                 del blocks[key]

@@ -128,7 +128,7 @@ class Block:
         self.sbn = sbn
         self.first_seen = now
         self.k: int | None = None
-        self.sources: dict[int, tuple[int, bytes]] = {}
+        self.sources: dict[int, tuple[int, bytes, int]] = {}  # ESI -> (flow, datagram, flow sequence number)
         self.repairs: dict[int, bytes] = {}
         self.symbol_len: int | None = None
         self.max_esi = -1

@@ -35,6 +35,7 @@ from fecproxy.protocol import auth
 from fecproxy.protocol.decoder import BlockDecoder
 from fecproxy.protocol.encoder import BlockEncoder
 from fecproxy.protocol.events import (
+    BlockOutcome,
     BlockReport,
     ControlReceived,
     Delivery,
@@ -46,6 +47,7 @@ from fecproxy.protocol.events import (
     SessionStarted,
 )
 from fecproxy.protocol.loss_report import KEY_CHECK_BODY
+from fecproxy.protocol.ordering import InOrderDelivery
 from fecproxy.shell.app_side import SideOpenError, app_side
 from fecproxy.shell.fdlimit import ensure_open_files, files_needed
 from fecproxy.shell.history import History
@@ -70,6 +72,18 @@ log = logging.getLogger("fecproxy.shell.daemon")
 
 #: SIGTERM/SIGINT stop (after flushing the open block), SIGHUP reloads the config.
 HANDLED_SIGNALS = (signal.SIGTERM, signal.SIGINT, signal.SIGHUP)
+#: How a block ended without all its datagrams: its gaps are given up for in-order delivery.
+GIVEN_UP = frozenset((BlockOutcome.EXPIRED, BlockOutcome.EVICTED, BlockOutcome.SUPERSEDED))
+
+
+def _add(by_flow: dict[int, list[bytes]], deliveries: list[Delivery]) -> None:
+    """Append deliveries to the per-flow batch the application side sends, in their order."""
+    for delivery in deliveries:
+        datagrams = by_flow.get(delivery.flow)
+        if datagrams is None:
+            by_flow[delivery.flow] = [delivery.data]
+        else:
+            datagrams.append(delivery.data)
 
 
 class SocketOpenError(OSError):
@@ -104,7 +118,12 @@ class Daemon:
         #: The application side, by role (sender: clients at ``listen``; receiver: ``forward``).
         self.app = app_side(config, flow_table(config), self._encode_and_send)
         self.counts = ShellCounts()
-        self.view = DaemonStatsView(str(config.role), self.encoder, self.decoder, self.feedback, self.app, self.counts)
+        #: delivery.order: in_order puts each flow back in the sender's order before the
+        #: application side (protocol.ordering); None delivers as available.
+        self.order = InOrderDelivery(config.delivery.max_wait_seconds) if config.delivery.in_order else None
+        self.view = DaemonStatsView(
+            str(config.role), self.encoder, self.decoder, self.feedback, self.app, self.counts, self.order
+        )
         self._link_sock: Any = None
         self._link_writer: DatagramWriter | None = None
         self._timer_scope: trio.CancelScope | None = None
@@ -262,7 +281,13 @@ class Daemon:
             return
         self._stopping = True
         await self._send_to_peer(self.encoder.close())
-        await self._handle_events(self.decoder.close(), trio.current_time())
+        now = trio.current_time()
+        await self._handle_events(self.decoder.close(), now)
+        if self.order is not None:  # what waits behind a gap goes now, in order
+            by_flow: dict[int, list[bytes]] = {}
+            _add(by_flow, self.order.close(now))
+            if by_flow:
+                await self.app.deliver(by_flow, now)
         self._nursery.cancel_scope.cancel()
 
     def summary(self) -> dict[str, int]:
@@ -313,6 +338,7 @@ class Daemon:
         # The peer sends with GSO, so with GRO a burst of its packets is one read (see udp.py).
         reader = DatagramReader(self._link_sock, coalesce=True)
         receive = self.decoder.receive
+        order = self.order
         by_flow: dict[int, list[bytes]] = {}
         while True:
             batch = await reader.read_batch()
@@ -327,16 +353,24 @@ class Daemon:
                     if type(event) is Delivery:  # the common case, inline: once per datagram
                         if event.recovered:
                             self.recovery_delay.observe(event.delay)
+                        if order is not None:
+                            _add(by_flow, order.push(event, now))
+                            continue
                         datagrams = by_flow.get(event.flow)
                         if datagrams is None:
                             by_flow[event.flow] = [event.data]
                         else:
                             datagrams.append(event.data)
                     else:
-                        if type(event) is SessionStarted and by_flow:
-                            # What came before a peer restart belongs to the old conversations.
-                            await self.app.deliver(by_flow, now)
-                            by_flow = {}
+                        if type(event) is SessionStarted:
+                            if order is not None:  # the old conversations' waiting datagrams first
+                                _add(by_flow, order.reset(now))
+                            if by_flow:
+                                # What came before a peer restart belongs to the old conversations.
+                                await self.app.deliver(by_flow, now)
+                                by_flow = {}
+                        elif order is not None and type(event) is BlockReport:
+                            _add(by_flow, self._give_up(event, now))
                         await self._handle_event(event, now)
             if by_flow:
                 await self.app.deliver(by_flow, now)
@@ -352,7 +386,16 @@ class Daemon:
             self._timer_scope = None
             now = trio.current_time()
             await self._send_to_peer(self.encoder.on_timer(now))
-            await self._handle_events(self.decoder.on_timer(now), now)
+            events = self.decoder.on_timer(now)
+            if self.order is not None:
+                by_flow: dict[int, list[bytes]] = {}
+                for event in events:
+                    if type(event) is BlockReport:
+                        _add(by_flow, self._give_up(event, now))
+                _add(by_flow, self.order.on_timer(now))
+                if by_flow:
+                    await self.app.deliver(by_flow, now)
+            await self._handle_events(events, now)
             await self._handle_events(self.feedback.on_timer(now), now)
             self.app.expire(now)
 
@@ -461,6 +504,13 @@ class Daemon:
             log_event(log, logging.INFO, "loss_reports_resumed", m=self.feedback.repair)
 
     # ------------------------------------------------------------ helpers
+    def _give_up(self, report: BlockReport, now: float) -> list[Delivery]:
+        """In order: a block ended without all its datagrams, so gaps older than every block still
+        open can no longer be rebuilt; what waited behind them goes on (protocol.ordering)."""
+        if self.order is None or not report.unrecovered or report.outcome not in GIVEN_UP:
+            return []
+        return self.order.give_up_before(self.decoder.oldest_open_since(), now)
+
     def reload(self, config: Config | None = None) -> bool:
         """Apply new FEC, decoder and flow-timeout settings from the next block on; keep flows.
 
@@ -548,6 +598,7 @@ class Daemon:
             self.decoder.next_deadline(),
             self.app.flows.next_deadline(),
             self.feedback.next_deadline(),
+            None if self.order is None else self.order.next_deadline(),
         )
         deadlines = [d for d in cores if d is not None]
         return min(deadlines) if deadlines else math.inf

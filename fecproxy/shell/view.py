@@ -12,6 +12,7 @@ from collections.abc import Callable
 from fecproxy.linkmodel.feedback import Feedback
 from fecproxy.protocol.decoder import BlockDecoder, DecoderStats
 from fecproxy.protocol.encoder import BlockEncoder, EncoderStats
+from fecproxy.protocol.ordering import InOrderDelivery, OrderStats
 from fecproxy.shell.app_side import AppSide
 
 
@@ -39,9 +40,11 @@ class DaemonStatsView:
         feedback: Feedback,
         app: AppSide,
         counts: ShellCounts,
+        order: InOrderDelivery | None = None,
     ):
         self.role = role
         self._encoder, self._decoder = encoder, decoder
+        self._order = order
         self.feedback = feedback
         self._app = app
         self._counts = counts
@@ -53,6 +56,11 @@ class DaemonStatsView:
     @property
     def decoder_stats(self) -> DecoderStats:
         return self._decoder.stats
+
+    @property
+    def order_stats(self) -> OrderStats | None:
+        """In-order delivery's counters; None when this daemon delivers as available."""
+        return None if self._order is None else self._order.stats
 
     @property
     def block_shape(self) -> tuple[int, int]:
@@ -80,6 +88,7 @@ class DaemonStatsView:
             self._decoder.stats.dropped,
             self.feedback.stats.dropped,
             self._app.drops,
+            {} if self._order is None else self._order.stats.dropped,
         )
         for source in sources:
             for reason, count in list(source.items()):
