@@ -57,3 +57,18 @@ def test_in_order_delivers_rebuilt_datagrams_in_place(pairs):
 def test_as_available_hands_rebuilt_datagrams_on_late(pairs):
     got = lossy_run(pairs, {})
     assert sorted(got) == list(range(160)) and got != list(range(160))
+
+
+def test_a_gap_that_cannot_be_rebuilt_holds_what_follows_no_longer_than_the_bound(pairs):
+    # Block 0 loses a source packet and all four repair packets: datagram 3 is gone for good, so
+    # 4, 5, … wait for it until delivery.max_wait_ms (200 ms), then the gap is skipped and counted.
+    pair = pairs(forward=drop_indices([3, 16, 17, 18, 19]), sender_fec={"flush_ms": 200}, receiver_extra=IN_ORDER)
+    client = pair.client(stream=23)
+    send_paced(client.send, 64, rate=500)
+    drain(pair, 63)
+    assert [seq for _, seq in pair.server.received] == [seq for seq in range(64) if seq != 3]
+    assert pair.receiver.metric("fecproxy_delivery_gaps_skipped_total", reason="max_wait") == 1
+    waits = histogram(pair.receiver, "fecproxy_delivery_wait_seconds")
+    print(f"\nunrecoverable gap, bound 200 ms: waits by bucket (cumulative) {waits}")
+    assert waits["0.1"] < waits["count"]  # some waited for the bound ...
+    assert waits["0.5"] == waits["count"]  # ... and none much longer (room for a late timer on a busy host)

@@ -14,6 +14,7 @@ import sys
 import urllib.error
 import urllib.request
 
+from fecproxy.config.addresses import metrics_url
 from fecproxy.linkmodel import sliding_sim
 from fecproxy.linkmodel.airtime import DEFAULT_QUEUE_MS, BudgetError, LinkBudget, parse_rate
 from fecproxy.linkmodel.loss_models import (
@@ -133,7 +134,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     link.add_argument(
         "--from-metrics",
         metavar="URL",
-        help=f"read {LINK_LOSS_GAUGE} and {LINK_BURST_GAUGE} from a receiver's Prometheus page at URL",
+        help=f"read {LINK_LOSS_GAUGE} and {LINK_BURST_GAUGE} from a receiver's metrics at URL "
+        "(host:port as in its metrics.listen, or http://host:port/metrics)",
     )
     link.add_argument(
         "--metrics-select",
@@ -411,8 +413,9 @@ def read_metrics(
         if not sep or not key:
             raise MetricsError(f"--metrics-select wants LABEL=VALUE, got {item!r}")
         wanted[key.strip()] = value.strip()
+    url = metrics_url(url)  # host:port as `fecproxy watch` takes it, or a URL
     if not url.startswith(("http://", "https://")):
-        raise MetricsError(f"--from-metrics wants an http:// or https:// URL, got {url!r}")
+        raise MetricsError(f"--from-metrics wants host:port or an http:// or https:// URL, got {url!r}")
     try:
         with urllib.request.urlopen(url, timeout=timeout) as response:
             body = response.read(MAX_METRICS_PAGE_BYTES + 1)

@@ -18,7 +18,7 @@ it holds across size classes, interleaved blocks and rebuilt datagrams alike.
 Memory is bounded: at most ``WINDOW`` sequence numbers ahead of a flow's next one are held (a
 datagram further ahead moves the flow's front to itself, skipping what is missing), at most
 ``max_held_bytes`` across all flows (beyond, the flow that has waited longest skips its gap), and
-at most ``max_flows`` flows are tracked (the least recently seen goes; its next datagram starts it
+at most ``max_flows`` flows are tracked (the one first seen longest ago goes; its next datagram starts it
 afresh).
 
 Like the decoder: values and ``now`` in, deliveries and the next deadline out; no clock, no I/O.
@@ -27,7 +27,6 @@ Like the decoder: values and ``now`` in, deliveries and the next deadline out; n
 from __future__ import annotations
 
 from bisect import bisect_left
-from collections import OrderedDict
 from dataclasses import dataclass, field
 from enum import StrEnum
 
@@ -61,7 +60,7 @@ DEFAULT_MAX_HELD_BYTES = 8 * 1024 * 1024
 #: (measured with sys.getsizeof, rounded up).
 HELD_OVERHEAD_BYTES = 200
 #: Flows followed at once: the flow table's own upper bound (config ``flows.max`` ≤ 65 536) would
-#: cost ~150 bytes each; 65 536 flows is ~10 MB.  The least recently seen beyond it is dropped.
+#: cost ~150 bytes each; 65 536 flows is ~10 MB.  Beyond it the one first seen longest ago goes.
 DEFAULT_MAX_FLOWS = 65536
 #: Upper bounds (seconds) of the added-wait histogram buckets; the last bucket is +Inf.  Zero is
 #: its own bucket, so "no added wait" is read exactly; then 1 ms to 10 s, 1-2-5 steps.
@@ -128,7 +127,6 @@ class SkipReason(StrEnum):
 class OrderStats:
     """Counters, plain ints read by the metrics collector."""
 
-    released: int = 0  # datagrams handed on
     held: int = 0  # datagrams that had to wait behind a gap
     late: int = 0  # dropped: came after their place in the order was skipped
     duplicates: int = 0  # dropped: a second datagram with a sequence number already waiting
@@ -139,6 +137,11 @@ class OrderStats:
     #: Added wait: count per WAIT_BUCKETS bucket (not cumulative; one more for +Inf) and the sum.
     wait_counts: list[int] = field(default_factory=lambda: [0] * (len(WAIT_BUCKETS) + 1))
     wait_sum: float = 0.0
+
+    @property
+    def released(self) -> int:
+        """Datagrams handed on (each counted once in the wait histogram)."""
+        return sum(self.wait_counts)
 
     @property
     def gaps_skipped(self) -> int:
@@ -179,17 +182,24 @@ class InOrderDelivery:
         self.max_held_bytes = max_held_bytes
         self.max_flows = max_flows
         self.stats = OrderStats()
-        self._flows: OrderedDict[int, _Flow] = OrderedDict()
+        self._zero_waits = self.stats.wait_counts  # bucket 0 counts the datagrams that did not wait
+        # Insertion order: beyond max_flows the flow first seen longest ago goes (a use does not
+        # move it: that would cost every datagram; a live flow so pushed out starts afresh).
+        self._flows: dict[int, _Flow] = {}
         self._waiting: dict[int, _Flow] = {}  # flows holding something
         self._evicted: list[Delivery] = []  # released by a flow pushed out of the table
 
     # ------------------------------------------------------------------ feeding
     def push(self, delivery: Delivery, now: float) -> list[Delivery]:
         """One delivery from the decoder; returns what may go to the application now, in order."""
-        flows = self._flows
         flow_id = delivery.flow
         seq = delivery.seq
-        state = flows.get(flow_id)
+        state = self._flows.get(flow_id)
+        if state is not None and seq == state.next and not state.held:
+            # The common case, first and cheapest: in order, nothing waiting, no added wait.
+            state.next = (seq + 1) & _MASK
+            self._zero_waits[0] += 1
+            return [delivery]
         if state is None:
             # A new flow: the sender counts each flow from 0, so a first datagram a little way
             # in means the first ones are missing (and may still be rebuilt); far in, we joined
@@ -198,15 +208,7 @@ class InOrderDelivery:
             if self._evicted:
                 out_evicted, self._evicted = self._evicted, []
                 return out_evicted + self.push(delivery, now)
-        else:
-            flows.move_to_end(flow_id)
         ahead = (seq - state.next) & _MASK
-        if ahead == 0 and not state.held:  # the common case: in order, nothing waiting
-            state.next = (seq + 1) & _MASK
-            stats = self.stats
-            stats.released += 1
-            stats.wait_counts[0] += 1
-            return [delivery]
         out: list[Delivery] = []
         if ahead >= _HALF:
             if SEQUENCE_MODULUS - ahead <= LATE_WINDOW:
@@ -293,14 +295,13 @@ class InOrderDelivery:
     def _new_flow(self, flow_id: int, next_seq: int, now: float) -> _Flow:
         flows = self._flows
         if len(flows) >= self.max_flows:
-            _, gone = flows.popitem(last=False)
+            gone = flows.pop(next(iter(flows)))
             self._release_all(gone, now, SkipReason.CLOSED, self._evicted)  # what it held goes on
         state = flows[flow_id] = _Flow(flow_id, next_seq)
         return state
 
     def _count_release(self, wait: float) -> None:
         stats = self.stats
-        stats.released += 1
         stats.wait_sum += wait
         stats.wait_counts[bisect_left(WAIT_BUCKETS, wait)] += 1
 
