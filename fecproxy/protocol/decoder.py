@@ -369,12 +369,6 @@ class BlockDecoder(SessionTable):
         a loss report carries it."""
         return self._followed.newest if self._followed is not None else None
 
-    def oldest_open_since(self) -> float | None:
-        """When the oldest open block (any session) was first seen; None when none is open.  In-order
-        delivery reads it after a block is given up: a gap older than this can no longer be filled."""
-        firsts = [next(iter(s.open.values())).first_seen for s in self._sessions.values() if s.open]
-        return min(firsts) if firsts else None
-
     def next_deadline(self) -> float | None:
         hold = self.settings.hold_time
         deadlines = [next(iter(s.open.values())).first_seen + hold for s in self._sessions.values() if s.open]

@@ -170,6 +170,12 @@ class SessionTable:
     def open_blocks(self) -> int:
         return self._open_count
 
+    def oldest_open_since(self) -> float | None:
+        """When the oldest open block (any session) was first seen; None when none is open.  In-order
+        delivery reads it after a block is given up: a gap older than this can no longer be filled."""
+        firsts = [next(iter(s.open.values())).first_seen for s in self._sessions.values() if s.open]
+        return min(firsts) if firsts else None
+
     def _add_session(self, session: int, now: float, events: list[Event]) -> Session | None:
         """A valid packet of a session not in the table: make room if a session may go."""
         hold = self.settings.hold_time
