@@ -11,6 +11,7 @@ from fecproxy.protocol import decoder as _decoder
 from fecproxy.protocol import encoder as _encoder
 from fecproxy.protocol import ordering as _ordering
 from fecproxy.protocol import pacer as _pacer
+from fecproxy.protocol import sliding_encoder as _sliding
 from fecproxy.protocol import wire
 from fecproxy.protocol.flows import FLOW_SLOTS
 
@@ -31,6 +32,15 @@ DEFAULT_INTERLEAVE = _encoder.DEFAULT_INTERLEAVE
 MAX_INTERLEAVE = _encoder.MAX_INTERLEAVE
 DEFAULT_SIZE_CLASSES = _encoder.DEFAULT_SIZE_CLASSES
 MAX_SIZE_BOUNDARIES = _encoder.MAX_SIZE_BOUNDARIES
+#: The sliding-window code (fec.code: sliding): the encoder owns its defaults, bounds and reasons.
+DEFAULT_WINDOW = _sliding.DEFAULT_WINDOW
+MAX_WINDOW = _sliding.MAX_WINDOW
+DEFAULT_WINDOW_MS = round(_sliding.DEFAULT_WINDOW_AGE * 1000)
+#: A window older than a minute protects nothing interactive; the same bound as flush_ms.
+MAX_WINDOW_MS = 60_000
+DEFAULT_REPAIR_INTERVAL = _sliding.DEFAULT_REPAIR_INTERVAL
+
+
 #: A block held open for more than a minute protects nothing in time for any real-time use, and
 #: keeps memory busy; beyond that the setting is surely a unit mistake (seconds for ms).
 MAX_FLUSH_MS = 60_000

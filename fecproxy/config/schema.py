@@ -49,11 +49,14 @@ from fecproxy.config.limits import (
     DEFAULT_MAX_WAIT_MS,
     DEFAULT_MIN_REPAIR,
     DEFAULT_REPAIR,
+    DEFAULT_REPAIR_INTERVAL,
     DEFAULT_REPORT_INTERVAL_MS,
     DEFAULT_SIZE_CLASSES,
     DEFAULT_SOCKET_BUFFER_BYTES,
     DEFAULT_STATS_INTERVAL_S,
     DEFAULT_TARGET_RESIDUAL,
+    DEFAULT_WINDOW,
+    DEFAULT_WINDOW_MS,
     MAX_DATAGRAM_BYTES_LIMIT,
     MAX_ENCODING_SYMBOLS,
     MAX_FLOW_IDLE_TIMEOUT_S,
@@ -74,11 +77,13 @@ from fecproxy.config.limits import (
     MAX_SOCKET_BUFFER_BYTES,
     MAX_STATS_INTERVAL_S,
     MAX_UDP_PAYLOAD_BYTES,
+    MAX_WINDOW,
+    MAX_WINDOW_MS,
     MIN_LINK_MTU,
     MIN_LINK_RATE_BPS,
     MIN_MEMORY_BYTES,
 )
-from fecproxy.config.messages import closest, key_text, kind_of, or_list, show_value
+from fecproxy.config.messages import key_text, kind_of, show_value
 from fecproxy.config.sections import (
     AdaptSection,
     AuthSection,
@@ -87,6 +92,7 @@ from fecproxy.config.sections import (
     DecoderSection,
     DeliveryOrder,
     DeliverySection,
+    FecCode,
     FecSection,
     FlowsSection,
     LinkSection,
@@ -109,6 +115,7 @@ from fecproxy.config.tables import (
     CRYPTO_INSTALL_HINT,
     CRYPTO_PACKAGE,
     TOP_LEVEL_KEYS,
+    _suggest,
 )
 from fecproxy.protocol.flows import FLOW_SLOTS
 from fecproxy.protocol.keys import MasterKey
@@ -137,6 +144,12 @@ __all__ = [
     "MAX_INTERLEAVE",
     "DEFAULT_SIZE_CLASSES",
     "MAX_SIZE_BOUNDARIES",
+    "DEFAULT_WINDOW",
+    "MAX_WINDOW",
+    "DEFAULT_WINDOW_MS",
+    "MAX_WINDOW_MS",
+    "DEFAULT_REPAIR_INTERVAL",
+    "FecCode",
     "MAX_FLUSH_MS",
     "DEFAULT_MAX_DATAGRAM_BYTES",
     "AUTH_TAG_RESERVE_BYTES",
@@ -242,23 +255,6 @@ def _plain(value: object) -> Any:
     return value
 
 
-def _suggest(name: str, section: str | None) -> str:
-    """The hint after "unknown key": a near miss here, the same key elsewhere, or the list."""
-    local = list(_SECTIONS[section][1]) if section else list(TOP_LEVEL_KEYS)
-    prefix = f"{section}." if section else ""
-    near = closest(name, local)
-    if near:
-        return f"did you mean {prefix}{near}?"
-    elsewhere = [path for path in ALL_KEY_PATHS if path.rsplit(".", 1)[-1] == name.lower() and path != prefix + name]
-    if elsewhere:
-        return f"did you mean {or_list(elsewhere)}?"
-    near_anywhere = closest(name, [path.rsplit(".", 1)[-1] for path in ALL_KEY_PATHS])
-    if near_anywhere:
-        paths = [path for path in ALL_KEY_PATHS if path.rsplit(".", 1)[-1] == near_anywhere]
-        return f"did you mean {or_list(paths)}?"
-    return f"valid keys here are {', '.join(local)}"
-
-
 # --------------------------------------------------------------------------------------------
 # Parsing
 # --------------------------------------------------------------------------------------------
@@ -298,6 +294,7 @@ class _Parser:
             else:
                 self.error(name, f"unknown key; {_suggest(name, None)}")
         first_exchange_given = "flows.first_exchange_timeout_s" in self.values
+        self.given = set(self.values)
         self.fill_defaults()
         self.check_role()
         self.check_fec()
@@ -379,6 +376,7 @@ class _Parser:
         k = self.values.get("fec.block_size")
         m = self.values.get("fec.repair")
         allow = self.values.get("fec.allow_repair_above_source")
+        self.check_sliding()
         if k is None or m is None:
             return
         if k + m > MAX_ENCODING_SYMBOLS:
@@ -394,6 +392,34 @@ class _Parser:
                 f"repair rate at or below the source rate), or set fec.allow_repair_above_source: true",
             )
         self.check_adapt(k, allow)
+
+    def check_sliding(self) -> None:
+        """The sliding window's own keys, and what of the block code's layout it cannot use."""
+        window, interval = self.values.get("fec.window"), self.values.get("fec.repair_interval")
+        if window is not None and interval is not None and interval > window:
+            self.error(
+                "fec.repair_interval",
+                f"{interval} is above fec.window {window}; expected repair_interval ≤ window (a repair packet "
+                "covers the window, so a longer interval leaves source packets no repair covers)",
+            )
+        if self.values.get("fec.code") != FecCode.SLIDING:
+            return
+        depth = self.values.get("fec.interleave")
+        if depth is not None and depth > 1:
+            self.error(
+                "fec.interleave",
+                f"{depth} is set but fec.code is sliding; expected 1 (interleaving spreads the packets of blocks; "
+                "the sliding window already covers each datagram by several repair packets in a row: "
+                "use fec.window for burst protection), or fec.code: block",
+            )
+        classes = self.values.get("fec.size_classes")
+        if "fec.size_classes" in getattr(self, "given", ()) and classes:
+            self.error(
+                "fec.size_classes",
+                f"{list(classes)} is set but fec.code is sliding; expected [] or no size_classes "
+                "(the sliding code keeps one window for all datagram sizes, so its repair packets are as long "
+                "as the window's longest datagram), or fec.code: block",
+            )
 
     def check_delivery(self) -> None:
         wait, hold = self.values.get("delivery.max_wait_ms"), self.values.get("decoder.hold_ms")

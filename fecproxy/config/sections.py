@@ -29,11 +29,14 @@ from fecproxy.config.limits import (
     DEFAULT_MAX_WAIT_MS,
     DEFAULT_MIN_REPAIR,
     DEFAULT_REPAIR,
+    DEFAULT_REPAIR_INTERVAL,
     DEFAULT_REPORT_INTERVAL_MS,
     DEFAULT_SIZE_CLASSES,
     DEFAULT_SOCKET_BUFFER_BYTES,
     DEFAULT_STATS_INTERVAL_S,
     DEFAULT_TARGET_RESIDUAL,
+    DEFAULT_WINDOW,
+    DEFAULT_WINDOW_MS,
     MAX_ENCODING_SYMBOLS,
 )
 from fecproxy.protocol.keys import MasterKey
@@ -42,6 +45,13 @@ from fecproxy.protocol.repair_rule import DEFAULT_SHORT_BLOCK_REPAIR, ShortBlock
 # --------------------------------------------------------------------------------------------
 # Typed values
 # --------------------------------------------------------------------------------------------
+
+
+class FecCode(StrEnum):
+    """Which code the sender uses (the receiver decodes either, whatever its own setting)."""
+
+    BLOCK = "block"  # Reed–Solomon blocks of k (RFC 5510)
+    SLIDING = "sliding"  # sliding-window random linear code (RFC 8681)
 
 
 class Role(StrEnum):
@@ -123,6 +133,10 @@ class FecSection:
     adapt: AdaptSection | None = None  # None = m stays fixed at repair
     interleave: int = DEFAULT_INTERLEAVE  # D: open blocks per size class, fed in turn
     size_classes: tuple[int, ...] = DEFAULT_SIZE_CLASSES  # boundaries in bytes; () = one class
+    code: FecCode = FecCode.BLOCK  # block by default: the code every earlier receiver decodes
+    window: int = DEFAULT_WINDOW  # sliding: source packets in the encoding window
+    window_ms: int = DEFAULT_WINDOW_MS  # sliding: oldest source packet the window keeps
+    repair_interval: int = DEFAULT_REPAIR_INTERVAL  # sliding: one repair packet every this many
 
     @property
     def flush_seconds(self) -> float:

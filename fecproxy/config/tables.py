@@ -42,16 +42,20 @@ from fecproxy.config.limits import (
     MAX_SIZE_BOUNDARIES,
     MAX_SOCKET_BUFFER_BYTES,
     MAX_STATS_INTERVAL_S,
+    MAX_WINDOW,
+    MAX_WINDOW_MS,
     MIN_LINK_MTU,
     MIN_LINK_RATE_BPS,
     MIN_MEMORY_BYTES,
 )
+from fecproxy.config.messages import closest, or_list
 from fecproxy.config.sections import (
     AdaptSection,
     AuthSection,
     DecoderSection,
     DeliveryOrder,
     DeliverySection,
+    FecCode,
     FecSection,
     FlowsSection,
     LinkSection,
@@ -152,6 +156,12 @@ _SECTIONS: dict[str, tuple[type, dict[str, Checker]]] = {
             "adapt": _ADAPT,
             "interleave": Integer(1, MAX_INTERLEAVE, f"an integer 1..{MAX_INTERLEAVE} (1 = no interleaving)"),
             "size_classes": SizeBoundaries(MAX_SIZE_BOUNDARIES, MAX_DATAGRAM_BYTES_LIMIT),
+            "code": Choice(FecCode, "code"),
+            "window": Integer(1, MAX_WINDOW, f"an integer 1..{MAX_WINDOW} (source packets)"),
+            "window_ms": Integer(1, MAX_WINDOW_MS, f"an integer number of milliseconds 1..{MAX_WINDOW_MS}"),
+            "repair_interval": Integer(
+                1, MAX_WINDOW, f"an integer 1..{MAX_WINDOW} with repair_interval ≤ window (source packets per repair)"
+            ),
         },
     ),
     "decoder": (
@@ -275,3 +285,20 @@ def _defaults() -> dict[str, object]:
 
 ALL_KEY_PATHS = _all_paths()
 _DEFAULTS = _defaults()
+
+
+def _suggest(name: str, section: str | None) -> str:
+    """The hint after "unknown key": a near miss here, the same key elsewhere, or the list."""
+    local = list(_SECTIONS[section][1]) if section else list(TOP_LEVEL_KEYS)
+    prefix = f"{section}." if section else ""
+    near = closest(name, local)
+    if near:
+        return f"did you mean {prefix}{near}?"
+    elsewhere = [path for path in ALL_KEY_PATHS if path.rsplit(".", 1)[-1] == name.lower() and path != prefix + name]
+    if elsewhere:
+        return f"did you mean {or_list(elsewhere)}?"
+    near_anywhere = closest(name, [path.rsplit(".", 1)[-1] for path in ALL_KEY_PATHS])
+    if near_anywhere:
+        paths = [path for path in ALL_KEY_PATHS if path.rsplit(".", 1)[-1] == near_anywhere]
+        return f"did you mean {or_list(paths)}?"
+    return f"valid keys here are {', '.join(local)}"

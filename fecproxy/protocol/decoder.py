@@ -111,6 +111,7 @@ __all__ = [
     "DecoderSettings",
     "DecoderStats",
 ]
+from fecproxy.protocol.sliding_decoder import SlidingDecoder, SlidingDecoderSettings
 
 #: Authentication failures that mean the two sides' keys or encryption modes differ (not a forgery
 #: of ours): each noticed one also has the peer sent a key check (KeyCheckDue).
@@ -148,6 +149,16 @@ class BlockDecoder(SessionTable):
         #: was used (for the shell's rollover notice); None when unkeyed or not authentic.
         self.last_verified: auth.Verified | None = None
         self._code_told: tuple[int, int] | None = None  # the peer's code last told (PeerCodeSettled)
+        #: A peer with ``fec.code: sliding`` sends sliding-window packets: their windows live here,
+        #: per session of this table (sessions, keys and the peer address are ruled above), and
+        #: count into this decoder's stats.
+        self.sliding = SlidingDecoder(self._sliding_settings(), stats=self.stats)  # type: ignore[arg-type]
+
+    def _session_ended(self, session: int, events: list[Event]) -> None:
+        events += self.sliding.forget(session)  # its sliding windows go with it
+
+    def _sliding_settings(self) -> SlidingDecoderSettings:
+        return SlidingDecoderSettings(hold_time=self.settings.hold_time, max_datagram=self.settings.max_datagram)
 
     # ------------------------------------------------------------------ feeding
     def receive(self, data: bytes, addr: SockAddr | None, now: float) -> list[Event]:
@@ -301,7 +312,7 @@ class BlockDecoder(SessionTable):
         """``receive`` without its fast path: complete on its own (the fast path only saves the
         parsing of the two commonest packets), so tests can compare the two."""
         try:
-            pkt = wire.parse(data, max_datagram=self.settings.max_datagram)
+            pkt = wire.parse(data, max_datagram=self.settings.max_datagram, sliding=True)
         except wire.PacketError as error:
             return [self._drop(error.reason, str(error))]
         if isinstance(pkt, wire.ControlPacket):
@@ -328,15 +339,23 @@ class BlockDecoder(SessionTable):
             self.received_code.reset()
             self._code_told = None
             events.append(SessionStarted(sess.id, previous))
-        if isinstance(pkt, wire.SourcePacket):
+        if isinstance(pkt, (wire.SourcePacket, wire.SlidingSourcePacket)):
             self.stats.source_received += 1
         else:
             self.stats.repair_received += 1
-            if sess is self._followed:  # the peer's code is the followed session's
+            if sess is self._followed and isinstance(pkt, wire.RepairPacket):  # the followed session's code
                 settled = self.received_code.note(pkt.sbn, pkt.k, pkt.esi)
                 if settled is not None:
                     self._code_settled(settled, events)
-        self._admit(sess, pkt, now, events)
+        if isinstance(pkt, (wire.SlidingSourcePacket, wire.SlidingRepairPacket)):
+            sliding = self.sliding
+            if sliding.settings.hold_time != self.settings.hold_time or (
+                sliding.settings.max_datagram != self.settings.max_datagram
+            ):
+                sliding.settings = self._sliding_settings()  # a reload changed them
+            events += sliding.take(sess.id, pkt, now)
+        else:
+            self._admit(sess, pkt, now, events)
         if sess is self._followed and self.learn_peer and addr != self.peer:
             self._peer_seen(addr, events)
         return events
@@ -373,6 +392,9 @@ class BlockDecoder(SessionTable):
         hold = self.settings.hold_time
         deadlines = [next(iter(s.open.values())).first_seen + hold for s in self._sessions.values() if s.open]
         deadlines += [s.last_seen + hold for s in self._sessions.values() if s is not self._followed and not s.open]
+        sliding = self.sliding.next_deadline()
+        if sliding is not None:
+            deadlines.append(sliding)
         return min(deadlines) if deadlines else None
 
     def on_timer(self, now: float) -> list[Event]:
@@ -388,6 +410,7 @@ class BlockDecoder(SessionTable):
                 events.append(self._finish(block, BlockOutcome.EXPIRED))
             if sess is not self._followed and not sess.open and now - sess.last_seen >= hold:
                 self._end_session(sess, events)
+        events += self.sliding.on_timer(now)
         return events
 
     def close(self) -> list[Event]:
@@ -399,7 +422,7 @@ class BlockDecoder(SessionTable):
             self._finish(block, BlockOutcome.EXPIRED)
             for sess in list(self._sessions.values())
             for block in list(sess.open.values())
-        ]
+        ] + self.sliding.close()
 
     # ------------------------------------------------------------------ internals
     def _learn_previous_k(self, sess: Session, sbn: int, k: int, now: float, events: list[Event]) -> None:
@@ -426,29 +449,6 @@ class BlockDecoder(SessionTable):
         block = self._block_for(sess, previous, now, events, keep=sess.open.get(sbn))
         if block is not None:
             block.k = k
-
-    def _outside_block(
-        self, sess: Session, sbn: int, esi: int, flow: int, data: bytes, seq: int, events: list[Event]
-    ) -> None:
-        """A source packet whose block is finished or too far behind to open.
-
-        A block that ended without all its datagrams (expired, evicted, superseded) remembers
-        which ones it delivered: a late one it never delivered is delivered now rather than
-        lost.  That also undoes the harm of a damaged or forged packet that opened a block ahead
-        of the real one and expired before the real packets came."""
-        delivered = sess.finished.get(sbn)
-        if delivered is not None and esi <= wire.MAX_ESI and not delivered >> esi & 1:
-            sess.finished[sbn] = delivered | 1 << esi
-            self.stats.delivered += 1
-            events.append(direct_delivery(flow, data, seq))
-            return
-        events.append(self._behind(sess, sbn, repair=False))
-
-    def _behind(self, sess: Session, sbn: int, *, repair: bool) -> Dropped:
-        """The drop for a packet whose block is finished or too far behind to open."""
-        if sbn in sess.finished and not repair:
-            return self._drop(DropReason.LATE, f"source packet for finished block {sbn}")
-        return self._drop(DropReason.STALE, f"block {sbn} is behind the window")
 
     def _add_source_fields(
         self, block: Block, sbn: int, esi: int, flow: int, end: bool, data: bytes, seq: int, events: list[Event]

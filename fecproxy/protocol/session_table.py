@@ -12,7 +12,7 @@ from collections import OrderedDict
 from dataclasses import dataclass, field
 
 from fecproxy.protocol import auth, wire
-from fecproxy.protocol.events import BlockOutcome, BlockReport, Dropped, DropReason, Event
+from fecproxy.protocol.events import BlockOutcome, BlockReport, Dropped, DropReason, Event, direct_delivery
 from fecproxy.protocol.replay import ReplayWindow
 
 #: How long an incomplete block waits for more packets.  Must exceed the sender's flush interval
@@ -176,6 +176,32 @@ class SessionTable:
         firsts = [next(iter(s.open.values())).first_seen for s in self._sessions.values() if s.open]
         return min(firsts) if firsts else None
 
+    def _session_ended(self, session: int, events: list[Event]) -> None:
+        """A session left the table: the state kept beside it elsewhere goes too (a hook)."""
+
+    def _outside_block(
+        self, sess: Session, sbn: int, esi: int, flow: int, data: bytes, seq: int, events: list[Event]
+    ) -> None:
+        """A source packet whose block is finished or too far behind to open.
+
+        A block that ended without all its datagrams (expired, evicted, superseded) remembers
+        which ones it delivered: a late one it never delivered is delivered now rather than
+        lost.  That also undoes the harm of a damaged or forged packet that opened a block ahead
+        of the real one and expired before the real packets came."""
+        delivered = sess.finished.get(sbn)
+        if delivered is not None and esi <= wire.MAX_ESI and not delivered >> esi & 1:
+            sess.finished[sbn] = delivered | 1 << esi
+            self.stats.delivered += 1
+            events.append(direct_delivery(flow, data, seq))
+            return
+        events.append(self._behind(sess, sbn, repair=False))
+
+    def _behind(self, sess: Session, sbn: int, *, repair: bool) -> Dropped:
+        """The drop for a packet whose block is finished or too far behind to open."""
+        if sbn in sess.finished and not repair:
+            return self._drop(DropReason.LATE, f"source packet for finished block {sbn}")
+        return self._drop(DropReason.STALE, f"block {sbn} is behind the window")
+
     def _add_session(self, session: int, now: float, events: list[Event]) -> Session | None:
         """A valid packet of a session not in the table: make room if a session may go."""
         hold = self.settings.hold_time
@@ -203,6 +229,7 @@ class SessionTable:
         for block in list(sess.open.values()):
             events.append(self._finish(block, BlockOutcome.SUPERSEDED))
         del self._sessions[sess.id]
+        self._session_ended(sess.id, events)
         if sess.window is not None:
             self._retired_windows[sess.id] = sess.window
             while len(self._retired_windows) > RETIRED_WINDOWS:
