@@ -1,7 +1,7 @@
 """Control packets (type 2) through the protocol core: the encoder builds them, the decoder hands
 their body to the shell as ``ControlReceived`` without touching its sender-session state.
 
-The bytes are our own format (DEVELOPERS.md "Loss reports (control packets)")."""
+The bytes are our own format (docs/design.md "Loss reports (control packets)")."""
 
 from __future__ import annotations
 

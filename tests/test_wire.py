@@ -1,4 +1,4 @@
-"""Wire format: hex vectors (our own format, documented in DEVELOPERS.md) and validation."""
+"""Wire format: hex vectors (our own format, documented in docs/design.md) and validation."""
 
 import pytest
 from hypothesis import given
@@ -15,7 +15,7 @@ from fecproxy.protocol.wire import (
     parse,
 )
 
-# Test vectors of our own format; DEVELOPERS.md "Wire format" lists the same bytes.  The SBN (24 bits)
+# Test vectors of our own format; docs/design.md "Wire format" lists the same bytes.  The SBN (24 bits)
 # and ESI (8 bits) are the FEC Payload ID of RFC 6865 §5.1 for m = 8, and the repair packet's k is
 # its 16-bit "number of source symbols" field.  Version 3: the flow id is 24 bits, slot 0x0102 and
 # generation 5 here, and the flow sequence number (16 bits) follows the flow word: 7 here.

@@ -19,7 +19,7 @@ Several blocks are open at once, one per (size class, lane):
 Each block has its own SBN (numbers are taken consecutively as blocks open), its own flush
 deadline and its own k' when closed early.  "previous k" in a source packet is the k of block
 SBN − 1 if that block has closed by the time the packet is sent, else 0 (with one open block at a
-time this is always the block before; see DEVELOPERS.md "Wire format").
+time this is always the block before; see docs/design.md "Wire format").
 
 RFC 6363 §8.2 in bytes: unless ``allow_repair_above_source``, a block's repair count is cut so
 that its repair symbols (m'·symbol length) do not exceed its source symbols' content (the
