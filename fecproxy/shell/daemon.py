@@ -29,26 +29,23 @@ import trio
 from fecproxy import __version__
 from fecproxy.config import Config
 from fecproxy.config.addresses import format_sockaddr
-from fecproxy.linkmodel.adaptation import STALE_AFTER_INTERVALS, Decision, ReportsResumed, ReportsStale
 from fecproxy.linkmodel.feedback import Feedback, ReportDue
 from fecproxy.protocol import auth
 from fecproxy.protocol.decoder import BlockDecoder
-from fecproxy.protocol.encoder import BlockEncoder
 from fecproxy.protocol.events import (
     BlockOutcome,
     BlockReport,
     ControlReceived,
     Delivery,
-    Dropped,
     DropReason,
     KeyCheckDue,
-    PeerAddressChanged,
-    PeerCodeSettled,
     SessionStarted,
 )
 from fecproxy.protocol.loss_report import KEY_CHECK_BODY
 from fecproxy.protocol.ordering import InOrderDelivery
+from fecproxy.protocol.sliding_encoder import SlidingEncoder
 from fecproxy.shell.app_side import SideOpenError, app_side
+from fecproxy.shell.event_log import log_core_event
 from fecproxy.shell.fdlimit import ensure_open_files, files_needed
 from fecproxy.shell.history import History
 from fecproxy.shell.logs import event_sink, log_event, log_exception
@@ -56,12 +53,13 @@ from fecproxy.shell.metrics import MetricsServer, build_registry, serve
 from fecproxy.shell.settings import (
     ReloadRejected,
     apply_flow_timeouts,
+    apply_sliding,
     configure_feedback,
     decoder_settings,
-    encoder_settings,
     flow_table,
     keep_fixed,
     keyring,
+    make_encoder,
     needs_restart,
     read_new_config,
 )
@@ -110,7 +108,8 @@ class Daemon:
         # A fresh random salt per start: with the random session it makes the encrypted mode's
         # nonces unique across restarts (protocol.auth, "Nonce rule").
         sealer = None if keys is None else auth.Sealer(keys.current, secrets.randbits(auth.SALT_BITS))
-        self.encoder = BlockEncoder(encoder_settings(config), self.session, sealer=sealer)
+        # fec.code: block or sliding; both offer the loops and the feedback the same surface.
+        self.encoder = make_encoder(config, self.session, sealer)
         # No configured peer: the decoder learns it from the followed session's packets.
         self.decoder = BlockDecoder(decoder_settings(config), keys, learn_peer=config.link.peer is None)
         # Loss reports on the direction we decode; adaptation of the one we encode (fec.adapt).
@@ -247,8 +246,8 @@ class Daemon:
                     peer=format_sockaddr(self.peer) if self.peer else "learned",
                     listen=side["listen"],
                     forward=side["forward"],
-                    k=cfg.fec.block_size,
-                    m=self.encoder.settings.repair,
+                    code=str(cfg.fec.code),
+                    **self._code_fields(cfg),
                     flush_ms=cfg.fec.flush_ms,
                     adapt="on" if self.feedback.adapting else "off",
                     reports_ms=cfg.reports.interval_ms,
@@ -414,94 +413,22 @@ class Daemon:
             await self._handle_event(event, now)
 
     async def _handle_event(self, event: Any, now: float) -> None:
-        """The one handler of what the cores say (deliveries aside, batched by the link loop)."""
+        """The one handler of what the cores say (deliveries aside, batched by the link loop):
+        act on the event, then log it (shell.event_log)."""
         if isinstance(event, BlockReport):
             self.feedback.on_block(event)
-            if event.unrecovered:
-                log_event(
-                    log,
-                    logging.DEBUG,
-                    "block_unrecovered",
-                    sbn=event.sbn,
-                    k=event.k,
-                    lost=event.lost,
-                    outcome=event.outcome,
-                )
-        elif isinstance(event, Dropped):
-            if event.notice is not None:
-                # One line per kind of failure per interval: a peer with the wrong key says so
-                # plainly, a flood of forgeries does not flood the log.
-                kind = getattr(event.error, "kind", event.reason)
-                log_event(log, logging.WARNING, "auth_failed", kind=kind, detail=event.notice)
-            elif event.reason is not DropReason.AUTH:
-                log_event(log, logging.DEBUG, "dropped", reason=event.reason, detail=event.detail)
-        elif isinstance(event, PeerAddressChanged):
-            if event.previous is not None:
-                log_event(
-                    log,
-                    logging.INFO,
-                    "peer_changed",
-                    old=format_sockaddr(event.previous),
-                    new=format_sockaddr(event.address),
-                )
         elif isinstance(event, KeyCheckDue):
             # Sealed with our key, so the peer's log says the same as ours (see loss_report).
             if self.encoder.sealer is not None and self._link_writer is not None:
                 await self._link_writer.send([self.encoder.control(KEY_CHECK_BODY)], event.address)
-        elif isinstance(event, PeerCodeSettled):
-            # INFO the first time per peer session, DEBUG when it changes later (an adapting peer
-            # changes m often).
-            log_event(
-                log,
-                logging.INFO if event.first else logging.DEBUG,
-                "peer_code",
-                k=event.k,
-                m=event.m,
-                detail="decoding the peer's blocks (k from its repair packets, m = highest repair ESI - k + 1)",
-            )
         elif isinstance(event, ControlReceived):
             await self._handle_events(self.feedback.on_control(event, now), now)
         elif isinstance(event, SessionStarted):
             if event.previous is not None:
                 self.app.peer_restarted()
-            log_event(
-                log,
-                logging.INFO,
-                "peer_session",
-                session=f"{event.session:08x}",
-                previous=f"{event.previous:08x}" if event.previous is not None else "-",
-            )
         elif isinstance(event, ReportDue):
             await self._send_to_peer([event.packet])
-        elif isinstance(event, Decision):
-            link, choice = event.link, event.choice
-            log_event(
-                log,
-                logging.INFO,
-                "adapted",
-                direction=event.direction,
-                reason=event.reason,
-                m_from=event.previous.repair,
-                m=choice.repair,
-                depth=choice.depth,
-                k_effective=choice.k_effective,
-                loss=f"{link.loss:.4f}",
-                burst=f"{link.mean_burst:.2f}",
-                basis=link.basis,
-                samples=link.samples,
-                predicted_residual=f"{choice.residual_loss:.2e}",
-            )
-        elif isinstance(event, ReportsStale):
-            log_event(
-                log,
-                logging.WARNING,
-                "loss_reports_stale",
-                holding_m=self.feedback.repair,
-                detail=f"no loss report from the peer for {STALE_AFTER_INTERVALS} intervals "
-                "(return path down?): m is held",
-            )
-        elif isinstance(event, ReportsResumed):
-            log_event(log, logging.INFO, "loss_reports_resumed", m=self.feedback.repair)
+        log_core_event(event, self.feedback.repair)
 
     # ------------------------------------------------------------ helpers
     def _give_up(self, report: BlockReport, now: float) -> list[Delivery]:
@@ -528,6 +455,7 @@ class Daemon:
         fixed = needs_restart(self.config, new)
         if fixed:
             log_event(log, logging.WARNING, "reload_needs_restart", keys=",".join(fixed))
+        apply_sliding(self.encoder, new)
         configure_feedback(self.feedback, new, trio.current_time())
         self.decoder.settings = decoder_settings(new)
         self._apply_keys(new)
@@ -538,12 +466,23 @@ class Daemon:
             log,
             logging.INFO,
             "reloaded",
-            k=new.fec.block_size,
-            m=self.encoder.settings.repair,
+            **self._code_fields(new),
             flush_ms=new.fec.flush_ms,
         )
         self._reschedule()
         return True
+
+    def _code_fields(self, cfg: Config) -> dict[str, Any]:
+        """What the log says of the code this side sends with: k and m, or the sliding window."""
+        encoder = self.encoder
+        if isinstance(encoder, SlidingEncoder):
+            sliding = encoder.sliding_settings
+            return dict(
+                window=sliding.window,
+                window_ms=round(sliding.window_age * 1000),
+                repair_interval=sliding.repair_interval,
+            )
+        return dict(k=cfg.fec.block_size, m=encoder.settings.repair)
 
     def _apply_keys(self, new: Config) -> None:
         """New keys from the reloaded config: sent with from the next packet on, accepted at

@@ -207,13 +207,15 @@ class DaemonCollector:
         )
         yield GaugeMetricFamily(
             "fecproxy_link_mean_burst_packets",
-            "Estimated mean length of loss bursts on the link into this daemon, in packets; NaN until the first block from the peer.",
+            "Estimated mean length of loss bursts on the link into this daemon, in packets; "
+            "NaN until the first block from the peer.",
             value=burst,
         )
         received_k, received_m = d.received_code
         yield GaugeMetricFamily(
             "fecproxy_received_code_source_symbols",
-            "k of the code this daemon decodes (the peer's block size, from its repair packets); NaN until one arrives.",
+            "k of the code this daemon decodes (the peer's block size, from its repair packets); "
+            "NaN until one arrives.",
             value=math.nan if received_k is None else received_k,
         )
         yield GaugeMetricFamily(
@@ -223,18 +225,33 @@ class DaemonCollector:
             value=math.nan if received_m is None else received_m,
         )
         yield from _feedback_metrics(d.feedback, d.block_shape, d.received_code)
+        sliding = getattr(d, "sliding_shape", None)
+        if sliding is not None:  # fec.code: sliding
+            yield GaugeMetricFamily(
+                "fecproxy_sliding_window_packets",
+                "Source packets the sliding-window code's encoding window holds at most (fec.window).",
+                value=sliding[0],
+            )
+            yield GaugeMetricFamily(
+                "fecproxy_sliding_repair_interval_packets",
+                "Source packets per repair packet of the sliding-window code now (fec.repair_interval, or as "
+                "fec.adapt chose it).",
+                value=sliding[1],
+            )
         yield from _order_metrics(getattr(d, "order_stats", None))
         k, m = d.block_shape
         info = InfoMetricFamily(
             "fecproxy",
             "Build of this daemon, its role and the code it sends with (k, m, interleave depth, size classes; "
-            "on a receiver: its replies). The code it decodes: fecproxy_received_code_source_symbols and _repair_symbols.",
+            "on a receiver: its replies). "
+            "The code it decodes: fecproxy_received_code_source_symbols and _repair_symbols.",
         )
         info.add_metric(
             [],
             {
                 "version": __version__,
                 "role": d.role,
+                "fec_code": "block" if sliding is None else "sliding",
                 "k": str(k),
                 "m": str(m),
                 "interleave": str(d.interleave),
