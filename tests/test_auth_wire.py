@@ -56,6 +56,7 @@ def prove(decoder: BlockDecoder, encoder: BlockEncoder, now=0.5) -> None:
     """The freshness exchange (protocol.freshness) before the test's traffic: the decoder's
     challenge for the encoder's session, answered by an echo the encoder seals."""
     challenge = decoder.freshness.challenge(encoder.session, now)
+    assert challenge is not None
     echo = answer(challenge, encoder, now)
     events = decoder.receive(encoder.control(echo), None, now)
     assert len(events) == 1 and isinstance(events[0], SessionProven)
@@ -64,8 +65,11 @@ def prove(decoder: BlockDecoder, encoder: BlockEncoder, now=0.5) -> None:
 def answer(challenge: bytes, encoder: BlockEncoder, now: float, started: float = 0.0) -> bytes:
     """The echo an encoder running since ``started`` (nothing sealed before that) gives."""
     first = auth.first_sequence(7)  # every test sender's salt is 7 or its sequence starts later
+    assert encoder.sealer is not None
     history = freshness.SequenceHistory(started, min(first, encoder.sealer.next_sequence))
-    return freshness.EchoResponder().answer(challenge, encoder.session, history, encoder.sealer.next_sequence, now)
+    echo = freshness.EchoResponder().answer(challenge, encoder.session, history, encoder.sealer.next_sequence, now)
+    assert echo is not None
+    return echo
 
 
 def stream(encoder: BlockEncoder, count: int, *, seed=1, start=0.0):
@@ -206,7 +210,8 @@ def test_control_packets_are_sealed_verified_and_handed_on():
     control = encoder.control(b"\x01report")
     assert control[1] & wire.FLAG_AUTH
     events, in_session = receive_noting_peer(decoder, control, 1.0)
-    assert events == [ControlReceived(0x1234, b"\x01report")]
+    assert [(e.session, e.body) for e in events if isinstance(e, ControlReceived)] == [(0x1234, b"\x01report")]
+    assert len(events) == 1
     assert not in_session  # a control packet never teaches the shell its peer
     forged = wire.encode_control(0x1234, b"\x01forged")
     assert [e.reason for e in decoder.receive(forged, None, 1.0)] == ["auth"]

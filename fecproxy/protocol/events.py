@@ -14,7 +14,7 @@ per-field ``object.__setattr__``.
 from __future__ import annotations
 
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from enum import StrEnum
 from typing import Any
 
@@ -122,10 +122,12 @@ class ControlReceived(Event):
     :mod:`fecproxy.protocol.loss_report`).  ``session`` is the header's session: the sending
     side's own sender session, like every packet it sends (one sequence space and replay window
     per session when packets are authenticated); the shell checks it against the session it
-    decodes."""
+    decodes.  With a key the body may also be a freshness challenge or echo
+    (:mod:`fecproxy.protocol.freshness`): the shell answers a challenge to ``address``."""
 
     session: int
     body: bytes
+    address: SockAddr | None = field(default=None, compare=False)  # where it came from
 
 
 @dataclass(frozen=True, slots=True)
@@ -160,16 +162,6 @@ class PeerCodeSettled(Event):
 class ChallengeDue(Event):
     """Keyed: send this challenge body (:mod:`fecproxy.protocol.freshness`), sealed as a control
     packet of our own session, to ``address`` (where the unproven packet came from)."""
-
-    session: int
-    body: bytes
-    address: SockAddr | None = None
-
-
-@dataclass(frozen=True, slots=True)
-class ChallengeReceived(Event):
-    """Keyed: the peer challenges our session (:mod:`fecproxy.protocol.freshness`); the shell
-    answers with an echo sealed in its own session, to ``address``."""
 
     session: int
     body: bytes

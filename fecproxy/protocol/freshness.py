@@ -61,6 +61,10 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
+from fecproxy.protocol.events import ChallengeDue, Dropped, DropReason, Event, SessionProven
+from fecproxy.protocol.loss_report import KIND_KEY_CHECK
+from fecproxy.protocol.wire import CONTROL_HEADER_BYTES, CONTROL_TYPE_BYTE
+
 KIND_CHALLENGE = 3
 KIND_ECHO = 4
 #: kind, flags, 2 reserved bytes, session, nonce, value (challenge: listening for U ms; echo: S).
@@ -183,6 +187,24 @@ class Proof:
     released: list[tuple[bytes, Any]]  # (plain packet, the address it came from)
     discarded: int
     young: bool  # everything held was vouched for (e.g. a session younger than our listening)
+
+
+class Screening:
+    """What ``FreshnessGate.screen`` decided for one packet: events for the shell (a challenge to
+    send, a proof, ``unproven`` drops, counted), whether the packet goes on to the decoder, and
+    held packets released by a proof (with their sources)."""
+
+    __slots__ = ("events", "dropped", "passes", "released")
+
+    def __init__(self, dropped: dict[str, int]) -> None:
+        self.events: list[Event] = []
+        self.dropped = dropped  # the decoder's drop counters
+        self.passes = False
+        self.released: list[tuple[bytes, Any]] = []
+
+    def drop(self, count: int, detail: str) -> None:
+        self.dropped[DropReason.UNPROVEN] = self.dropped.get(DropReason.UNPROVEN, 0) + count
+        self.events.append(Dropped(DropReason.UNPROVEN, f"{count} packet(s): {detail}"))
 
 
 class FreshnessGate:
@@ -314,6 +336,44 @@ class FreshnessGate:
         pending.held_bytes += size
         self._held_bytes += size
         return dropped
+
+    def screen(
+        self, session: int, sequence: int, packet: bytes, source: Any, now: float, dropped: dict[str, int]
+    ) -> Screening:
+        """An authentic packet (``packet`` plain) that ``admits`` refused: what the decoder does
+        with it.  An echo may prove its session (releasing what was held); a challenge or key
+        check passes on (answering one proves nothing and costs one small packet) and makes us
+        challenge its session too; anything else is held until the session is proven, or
+        dropped as ``unproven`` if it was sealed before the proof (counted in ``dropped``)."""
+        screening = Screening(dropped)
+        if len(packet) > CONTROL_HEADER_BYTES and packet[0] == CONTROL_TYPE_BYTE:
+            body = packet[CONTROL_HEADER_BYTES:]
+            kind = kind_of(body)
+            if kind == KIND_ECHO:
+                proof = self.on_echo(session, sequence, body, now)
+                if proof is None:
+                    screening.drop(1, f"echo of session {session:#010x} answers no challenge")
+                    return screening
+                screening.events.append(SessionProven(session, proof.floor, proof.young, len(proof.released)))
+                if proof.discarded:
+                    screening.drop(proof.discarded, "held, sealed before the proof")
+                screening.released = proof.released
+                return screening
+            if kind == KIND_CHALLENGE or kind == KIND_KEY_CHECK:
+                screening.passes = True
+                if session in self._proven:
+                    return screening
+        elif session in self._proven:
+            screening.drop(1, f"session {session:#010x}: sequence {sequence} sealed before its echo")
+            return screening
+        challenge = self.challenge(session, now)
+        if challenge is not None:
+            screening.events.append(ChallengeDue(session, challenge, source))
+        if not screening.passes:
+            overflow = self.hold(session, sequence, packet, source, now)
+            if overflow:
+                screening.drop(overflow, f"session {session:#010x} not yet proven")
+        return screening
 
     def on_echo(self, session: int, sequence: int, body: bytes, now: float) -> Proof | None:
         """An authentic echo in ``session``'s own packet with sequence ``sequence``: the proof

@@ -29,7 +29,6 @@ import trio
 from fecproxy import __version__
 from fecproxy.config import Config
 from fecproxy.config.addresses import format_sockaddr
-from fecproxy.linkmodel.adaptation import STALE_AFTER_INTERVALS, Decision, ReportsResumed, ReportsStale
 from fecproxy.linkmodel.feedback import Feedback, ReportDue
 from fecproxy.protocol import auth, freshness
 from fecproxy.protocol.decoder import BlockDecoder
@@ -37,22 +36,19 @@ from fecproxy.protocol.events import (
     BlockOutcome,
     BlockReport,
     ChallengeDue,
-    ChallengeReceived,
     ControlReceived,
     Delivery,
-    Dropped,
     DropReason,
     KeyCheckDue,
-    PeerAddressChanged,
-    PeerCodeSettled,
-    SessionProven,
     SessionStarted,
 )
 from fecproxy.protocol.loss_report import KEY_CHECK_BODY
 from fecproxy.protocol.ordering import InOrderDelivery
 from fecproxy.protocol.sliding_encoder import SlidingEncoder
 from fecproxy.shell.app_side import SideOpenError, app_side
+from fecproxy.shell.event_log import log_core_event
 from fecproxy.shell.fdlimit import ensure_open_files, files_needed
+from fecproxy.shell.freshness_link import FreshnessLink
 from fecproxy.shell.history import History
 from fecproxy.shell.logs import event_sink, log_event, log_exception
 from fecproxy.shell.metrics import MetricsServer, build_registry, serve
@@ -123,6 +119,7 @@ class Daemon:
         #: The application side, by role (sender: clients at ``listen``; receiver: ``forward``).
         self.app = app_side(config, flow_table(config), self._encode_and_send)
         self.counts = ShellCounts()
+        self.freshness = FreshnessLink(self.encoder, self.decoder)  # keyed: proving sessions live
         #: delivery.order: in_order puts each flow back in the sender's order before the
         #: application side (protocol.ordering); None delivers as available.
         self.order = InOrderDelivery(config.delivery.max_wait_seconds) if config.delivery.in_order else None
@@ -140,8 +137,6 @@ class Daemon:
         self.metrics_port: int | None = None
         self.metrics_address: tuple[str, int] | None = None
         self.link_address: tuple[Any, ...] | None = None
-        self.echoes = freshness.EchoResponder()  # answers the peer's challenges (keyed mode)
-        self._sequences: freshness.SequenceHistory | None = None  # keyed: what we sealed when
 
     @property
     def flows(self) -> Any:
@@ -226,9 +221,7 @@ class Daemon:
         cfg = self.config
         self._check_open_files()
         metrics = self._open_sockets()
-        started = trio.current_time()
-        self.decoder.freshness.listening(started)
-        self._note_sequence(started)
+        self.freshness.start(trio.current_time())
         configure_feedback(self.feedback, cfg, trio.current_time())
         # From here on, this task's events and those of the tasks it starts go to the history too.
         sink = event_sink.set(self.history.record)
@@ -240,7 +233,8 @@ class Daemon:
                     nursery.start_soon(metrics.run)  # the metrics port: a task here, no thread
                 nursery.start_soon(self._link_loop)
                 nursery.start_soon(self._timer_loop)
-                nursery.start_soon(self._hello_loop)
+                if self._link_writer is not None:
+                    nursery.start_soon(self.freshness.hellos, self._link_writer.send, lambda: self.peer)
                 if signals is not None:
                     nursery.start_soon(self._signal_loop, signals)
                 if cfg.log.stats_interval_s:
@@ -321,8 +315,7 @@ class Daemon:
         """Frame a batch (blocks it fills share codec calls, see BlockEncoder.send_batch) and
         put it on the link.  Both roles: the sender's client datagrams, the receiver's replies."""
         encoder = self.encoder
-        if encoder.sealer is not None:
-            self._note_sequence(now)
+        self.freshness.note(now)
         oversize = encoder.stats.dropped.get(DropReason.OVERSIZE, 0)
         try:
             out = encoder.send_batch(items, now)
@@ -342,16 +335,12 @@ class Daemon:
         await self._send_to_peer(out)
         self._reschedule()
 
-    def _note_sequence(self, now: float) -> None:
-        """Keyed: remember which sequence number we seal from ``now`` on (protocol.freshness: an
-        echo vouches for what was sealed since its challenger began listening)."""
-        sealer = self.encoder.sealer
-        if sealer is None:
-            return
-        if self._sequences is None:
-            self._sequences = freshness.SequenceHistory(now, sealer.next_sequence)
-        else:
-            self._sequences.note(now, sealer.next_sequence)
+    async def _freshness(self, event: ChallengeDue | ControlReceived, now: float) -> None:
+        """Our challenge, or our echo to the peer's: to where the packet came from (a learned
+        peer may not be proven yet), rate-limited (protocol.freshness)."""
+        packet, destination = self.freshness.packet_for(event, now), event.address or self.peer
+        if packet is not None and destination is not None and self._link_writer is not None:
+            await self._link_writer.send([packet], destination)
 
     def _internal_error(self, where: str) -> None:
         self.counts.drop(DropReason.INTERNAL_ERROR)
@@ -423,19 +412,6 @@ class Daemon:
             await self._handle_events(self.feedback.on_timer(now), now)
             self.app.expire(now)
 
-    async def _hello_loop(self) -> None:
-        """Keyed, with a known peer address: a few hellos at start (protocol.freshness), so the
-        peer's session is proven before its first reply."""
-        gate = self.decoder.freshness
-        while self.encoder.sealer is not None and self._link_writer is not None and self.peer is not None:
-            body = gate.hello(trio.current_time())
-            if body is not None:
-                await self._link_writer.send([self.encoder.control(body)], self.peer)
-            deadline = gate.hello_deadline()
-            if deadline is None:
-                return
-            await trio.sleep_until(deadline)
-
     async def _signal_loop(self, signals: Any) -> None:
         async for signum in signals:
             if signum == signal.SIGHUP:
@@ -451,117 +427,28 @@ class Daemon:
             await self._handle_event(event, now)
 
     async def _handle_event(self, event: Any, now: float) -> None:
-        """The one handler of what the cores say (deliveries aside, batched by the link loop)."""
+        """The one handler of what the cores say (deliveries aside, batched by the link loop):
+        act on the event, then log it (shell.event_log)."""
         if isinstance(event, BlockReport):
             self.feedback.on_block(event)
-            if event.unrecovered:
-                log_event(
-                    log,
-                    logging.DEBUG,
-                    "block_unrecovered",
-                    sbn=event.sbn,
-                    k=event.k,
-                    lost=event.lost,
-                    outcome=event.outcome,
-                )
-        elif isinstance(event, Dropped):
-            if event.notice is not None:
-                # One line per kind of failure per interval: a peer with the wrong key says so
-                # plainly, a flood of forgeries does not flood the log.
-                kind = getattr(event.error, "kind", event.reason)
-                log_event(log, logging.WARNING, "auth_failed", kind=kind, detail=event.notice)
-            elif event.reason is not DropReason.AUTH:
-                log_event(log, logging.DEBUG, "dropped", reason=event.reason, detail=event.detail)
-        elif isinstance(event, PeerAddressChanged):
-            if event.previous is not None:
-                log_event(
-                    log,
-                    logging.INFO,
-                    "peer_changed",
-                    old=format_sockaddr(event.previous),
-                    new=format_sockaddr(event.address),
-                )
         elif isinstance(event, KeyCheckDue):
             # Sealed with our key, so the peer's log says the same as ours (see loss_report).
             if self.encoder.sealer is not None and self._link_writer is not None:
                 await self._link_writer.send([self.encoder.control(KEY_CHECK_BODY)], event.address)
-        elif isinstance(event, ChallengeDue | ChallengeReceived):
-            # protocol.freshness: our challenge for an unproven peer session, or our echo to the
-            # peer's, sealed in our session, to where the packet came from (rate-limited both).
-            destination = event.address or self.peer
-            if self.encoder.sealer is None or self._link_writer is None or destination is None:
-                return
-            body: bytes | None = event.body
-            if isinstance(event, ChallengeReceived):
-                self._note_sequence(now)
-                assert self._sequences is not None  # made by _note_sequence: the sealer is set
-                sealer = self.encoder.sealer
-                body = self.echoes.answer(event.body, self.encoder.session, self._sequences, sealer.next_sequence, now)
-            if body is not None:
-                await self._link_writer.send([self.encoder.control(body)], destination)
-        elif isinstance(event, SessionProven):
-            log_event(
-                log,
-                logging.INFO,
-                "session_proven",
-                session=f"{event.session:08x}",
-                young=event.young,
-                released=event.released,
-            )
-        elif isinstance(event, PeerCodeSettled):
-            # INFO the first time per peer session, DEBUG when it changes later (an adapting peer
-            # changes m often).
-            log_event(
-                log,
-                logging.INFO if event.first else logging.DEBUG,
-                "peer_code",
-                k=event.k,
-                m=event.m,
-                detail="decoding the peer's blocks (k from its repair packets, m = highest repair ESI - k + 1)",
-            )
+        elif isinstance(event, ChallengeDue):
+            await self._freshness(event, now)
         elif isinstance(event, ControlReceived):
-            await self._handle_events(self.feedback.on_control(event, now), now)
+            kind = freshness.kind_of(event.body)
+            if kind == freshness.KIND_CHALLENGE:
+                await self._freshness(event, now)
+            elif kind != freshness.KIND_ECHO:  # an echo here answers a challenge already answered
+                await self._handle_events(self.feedback.on_control(event, now), now)
         elif isinstance(event, SessionStarted):
             if event.previous is not None:
                 self.app.peer_restarted()
-            log_event(
-                log,
-                logging.INFO,
-                "peer_session",
-                session=f"{event.session:08x}",
-                previous=f"{event.previous:08x}" if event.previous is not None else "-",
-            )
         elif isinstance(event, ReportDue):
             await self._send_to_peer([event.packet])
-        elif isinstance(event, Decision):
-            link, choice = event.link, event.choice
-            log_event(
-                log,
-                logging.INFO,
-                "adapted",
-                direction=event.direction,
-                reason=event.reason,
-                m_from=event.previous.repair,
-                m=choice.repair,
-                depth=choice.depth,
-                k_effective=choice.k_effective,
-                loss=f"{link.loss:.4f}",
-                burst=f"{link.mean_burst:.2f}",
-                basis=link.basis,
-                samples=link.samples,
-                predicted_residual=f"{choice.residual_loss:.2e}",
-            )
-        elif isinstance(event, ReportsStale):
-            log_event(
-                log,
-                logging.WARNING,
-                "loss_reports_stale",
-                holding_m=self.feedback.repair,
-                detail=f"no loss report from the peer for {STALE_AFTER_INTERVALS} intervals "
-                "(return path down?): m is held",
-            )
-        elif isinstance(event, ReportsResumed):
-            log_event(log, logging.INFO, "loss_reports_resumed", m=self.feedback.repair)
+        log_core_event(event, self.feedback.repair)
 
     # ------------------------------------------------------------ helpers
     def _give_up(self, report: BlockReport, now: float) -> list[Delivery]:
