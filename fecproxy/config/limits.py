@@ -47,7 +47,7 @@ MAX_FLUSH_MS = 60_000
 
 #: The wire format owns the default and its reason (fecproxy.protocol.wire.DEFAULT_MAX_DATAGRAM).
 DEFAULT_MAX_DATAGRAM_BYTES = wire.DEFAULT_MAX_DATAGRAM
-#: Room reserved for a future authentication tag (HMAC-SHA-256 output is 32 bytes).
+#: Room reserved for the authentication trailer (the wire format owns the figure and its reason).
 AUTH_TAG_RESERVE_BYTES = wire.AUTH_TAG_RESERVE_BYTES
 #: The largest UDP payload over IPv4: 65535 − 20 (IPv4 header, RFC 791) − 8 (UDP, RFC 768).
 MAX_UDP_PAYLOAD_BYTES = 65_507

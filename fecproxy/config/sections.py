@@ -149,7 +149,7 @@ class FecSection:
         A full block gets m.  A short block (closed by its flush timer) gets, by
         ``short_block_repair``: proportional = ceil(m·k'/k), which is ≥ 1 whenever m > 0, so
         sparse telemetry is neither left bare nor flooded; full = m.  m = 0 always gives 0.
-        The rule itself lives in fecproxy.repair_rule, shared with the encoder and planner.
+        The rule itself lives in fecproxy.protocol.repair_rule, shared with the encoder and planner.
         """
         if isinstance(k_actual, bool) or not isinstance(k_actual, int) or not 1 <= k_actual <= self.block_size:
             raise ValueError(f"k_actual must be an integer 1..{self.block_size}, got {k_actual!r}")
