@@ -13,6 +13,7 @@ from fecproxy.linkmodel.feedback import Feedback
 from fecproxy.protocol.decoder import BlockDecoder, DecoderStats
 from fecproxy.protocol.encoder import BlockEncoder, EncoderStats
 from fecproxy.protocol.ordering import InOrderDelivery, OrderStats
+from fecproxy.protocol.sliding_encoder import SlidingEncoder
 from fecproxy.shell.app_side import AppSide
 
 
@@ -35,7 +36,7 @@ class DaemonStatsView:
     def __init__(
         self,
         role: str,
-        encoder: BlockEncoder,
+        encoder: BlockEncoder | SlidingEncoder,
         decoder: BlockDecoder,
         feedback: Feedback,
         app: AppSide,
