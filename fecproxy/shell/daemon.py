@@ -29,7 +29,6 @@ import trio
 from fecproxy import __version__
 from fecproxy.config import Config
 from fecproxy.config.addresses import format_sockaddr
-from fecproxy.linkmodel.adaptation import STALE_AFTER_INTERVALS, Decision, ReportsResumed, ReportsStale
 from fecproxy.linkmodel.feedback import Feedback, ReportDue
 from fecproxy.protocol import auth
 from fecproxy.protocol.decoder import BlockDecoder
@@ -38,17 +37,15 @@ from fecproxy.protocol.events import (
     BlockReport,
     ControlReceived,
     Delivery,
-    Dropped,
     DropReason,
     KeyCheckDue,
-    PeerAddressChanged,
-    PeerCodeSettled,
     SessionStarted,
 )
 from fecproxy.protocol.loss_report import KEY_CHECK_BODY
 from fecproxy.protocol.ordering import InOrderDelivery
 from fecproxy.protocol.sliding_encoder import SlidingEncoder
 from fecproxy.shell.app_side import SideOpenError, app_side
+from fecproxy.shell.event_log import log_core_event
 from fecproxy.shell.fdlimit import ensure_open_files, files_needed
 from fecproxy.shell.history import History
 from fecproxy.shell.logs import event_sink, log_event, log_exception
@@ -416,94 +413,22 @@ class Daemon:
             await self._handle_event(event, now)
 
     async def _handle_event(self, event: Any, now: float) -> None:
-        """The one handler of what the cores say (deliveries aside, batched by the link loop)."""
+        """The one handler of what the cores say (deliveries aside, batched by the link loop):
+        act on the event, then log it (shell.event_log)."""
         if isinstance(event, BlockReport):
             self.feedback.on_block(event)
-            if event.unrecovered:
-                log_event(
-                    log,
-                    logging.DEBUG,
-                    "block_unrecovered",
-                    sbn=event.sbn,
-                    k=event.k,
-                    lost=event.lost,
-                    outcome=event.outcome,
-                )
-        elif isinstance(event, Dropped):
-            if event.notice is not None:
-                # One line per kind of failure per interval: a peer with the wrong key says so
-                # plainly, a flood of forgeries does not flood the log.
-                kind = getattr(event.error, "kind", event.reason)
-                log_event(log, logging.WARNING, "auth_failed", kind=kind, detail=event.notice)
-            elif event.reason is not DropReason.AUTH:
-                log_event(log, logging.DEBUG, "dropped", reason=event.reason, detail=event.detail)
-        elif isinstance(event, PeerAddressChanged):
-            if event.previous is not None:
-                log_event(
-                    log,
-                    logging.INFO,
-                    "peer_changed",
-                    old=format_sockaddr(event.previous),
-                    new=format_sockaddr(event.address),
-                )
         elif isinstance(event, KeyCheckDue):
             # Sealed with our key, so the peer's log says the same as ours (see loss_report).
             if self.encoder.sealer is not None and self._link_writer is not None:
                 await self._link_writer.send([self.encoder.control(KEY_CHECK_BODY)], event.address)
-        elif isinstance(event, PeerCodeSettled):
-            # INFO the first time per peer session, DEBUG when it changes later (an adapting peer
-            # changes m often).
-            log_event(
-                log,
-                logging.INFO if event.first else logging.DEBUG,
-                "peer_code",
-                k=event.k,
-                m=event.m,
-                detail="decoding the peer's blocks (k from its repair packets, m = highest repair ESI - k + 1)",
-            )
         elif isinstance(event, ControlReceived):
             await self._handle_events(self.feedback.on_control(event, now), now)
         elif isinstance(event, SessionStarted):
             if event.previous is not None:
                 self.app.peer_restarted()
-            log_event(
-                log,
-                logging.INFO,
-                "peer_session",
-                session=f"{event.session:08x}",
-                previous=f"{event.previous:08x}" if event.previous is not None else "-",
-            )
         elif isinstance(event, ReportDue):
             await self._send_to_peer([event.packet])
-        elif isinstance(event, Decision):
-            link, choice = event.link, event.choice
-            log_event(
-                log,
-                logging.INFO,
-                "adapted",
-                direction=event.direction,
-                reason=event.reason,
-                m_from=event.previous.repair,
-                m=choice.repair,
-                depth=choice.depth,
-                k_effective=choice.k_effective,
-                loss=f"{link.loss:.4f}",
-                burst=f"{link.mean_burst:.2f}",
-                basis=link.basis,
-                samples=link.samples,
-                predicted_residual=f"{choice.residual_loss:.2e}",
-            )
-        elif isinstance(event, ReportsStale):
-            log_event(
-                log,
-                logging.WARNING,
-                "loss_reports_stale",
-                holding_m=self.feedback.repair,
-                detail=f"no loss report from the peer for {STALE_AFTER_INTERVALS} intervals "
-                "(return path down?): m is held",
-            )
-        elif isinstance(event, ReportsResumed):
-            log_event(log, logging.INFO, "loss_reports_resumed", m=self.feedback.repair)
+        log_core_event(event, self.feedback.repair)
 
     # ------------------------------------------------------------ helpers
     def _give_up(self, report: BlockReport, now: float) -> list[Delivery]:

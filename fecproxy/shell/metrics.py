@@ -207,13 +207,15 @@ class DaemonCollector:
         )
         yield GaugeMetricFamily(
             "fecproxy_link_mean_burst_packets",
-            "Estimated mean length of loss bursts on the link into this daemon, in packets; NaN until the first block from the peer.",
+            "Estimated mean length of loss bursts on the link into this daemon, in packets; "
+            "NaN until the first block from the peer.",
             value=burst,
         )
         received_k, received_m = d.received_code
         yield GaugeMetricFamily(
             "fecproxy_received_code_source_symbols",
-            "k of the code this daemon decodes (the peer's block size, from its repair packets); NaN until one arrives.",
+            "k of the code this daemon decodes (the peer's block size, from its repair packets); "
+            "NaN until one arrives.",
             value=math.nan if received_k is None else received_k,
         )
         yield GaugeMetricFamily(
@@ -241,7 +243,8 @@ class DaemonCollector:
         info = InfoMetricFamily(
             "fecproxy",
             "Build of this daemon, its role and the code it sends with (k, m, interleave depth, size classes; "
-            "on a receiver: its replies). The code it decodes: fecproxy_received_code_source_symbols and _repair_symbols.",
+            "on a receiver: its replies). "
+            "The code it decodes: fecproxy_received_code_source_symbols and _repair_symbols.",
         )
         info.add_metric(
             [],
