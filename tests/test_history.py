@@ -98,6 +98,7 @@ async def test_each_daemon_task_tree_keeps_its_own_events():
 
     async def daemon(history: History, name: str) -> None:
         event_sink.set(history.record)
+
         async def child() -> None:
             await trio.sleep(0)
             log_event(log, logging.INFO, "reloaded", who=name)

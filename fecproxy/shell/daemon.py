@@ -46,11 +46,15 @@ from fecproxy.protocol.events import (
     SessionStarted,
 )
 from fecproxy.protocol.loss_report import KEY_CHECK_BODY
+from fecproxy.protocol.pacer import PacketKind
+from fecproxy.protocol.peer_view import PeerHeard, PeerSilent
 from fecproxy.shell.app_side import SideOpenError, app_side
 from fecproxy.shell.fdlimit import ensure_open_files, files_needed
 from fecproxy.shell.history import History
+from fecproxy.shell.link_output import LinkOutput
 from fecproxy.shell.logs import event_sink, log_event, log_exception
 from fecproxy.shell.metrics import MetricsServer, build_registry, serve
+from fecproxy.shell.operator_notes import OversizeWarning, ratio_field, stats_loop
 from fecproxy.shell.settings import (
     ReloadRejected,
     apply_flow_timeouts,
@@ -104,7 +108,13 @@ class Daemon:
         #: The application side, by role (sender: clients at ``listen``; receiver: ``forward``).
         self.app = app_side(config, flow_table(config), self._encode_and_send)
         self.counts = ShellCounts()
-        self.view = DaemonStatsView(str(config.role), self.encoder, self.decoder, self.feedback, self.app, self.counts)
+        #: Every link packet goes out through here: at once, or paced to link.rate.
+        self.link = LinkOutput(config)
+        self.oversize = OversizeWarning()
+        self._heard = 0  # valid packets from the peer so far (decoder counts + control packets)
+        self.view = DaemonStatsView(
+            str(config.role), self.encoder, self.decoder, self.feedback, self.app, self.counts, self.link
+        )
         self._link_sock: Any = None
         self._link_writer: DatagramWriter | None = None
         self._timer_scope: trio.CancelScope | None = None
@@ -146,6 +156,7 @@ class Daemon:
             self._link_writer = writer = DatagramWriter(self._link_sock)
             self.counts.link_send_errors = lambda: writer.send_errors
             self.link_address = self._link_sock.getsockname()
+            self.link.attach(writer, self._link_sock.family, trio.current_time())
             if cfg.link.peer is not None:
                 key, address = "link.peer", cfg.link.peer
                 self.decoder.peer = resolve(cfg.link.peer.host, cfg.link.peer.port, self._link_sock.family)
@@ -210,11 +221,12 @@ class Daemon:
                 if metrics is not None:
                     nursery.start_soon(metrics.run)  # the metrics port: a task here, no thread
                 nursery.start_soon(self._link_loop)
+                nursery.start_soon(self.link.run)
                 nursery.start_soon(self._timer_loop)
                 if signals is not None:
                     nursery.start_soon(self._signal_loop, signals)
                 if cfg.log.stats_interval_s:
-                    nursery.start_soon(self._stats_loop, cfg.log.stats_interval_s)
+                    nursery.start_soon(stats_loop, cfg.log.stats_interval_s, self._stats_snapshot, self._stats_states)
                 side = self.app.log_fields()
                 # k and m: the code this side sends with (on a receiver, its replies); the code it
                 # decodes is the peer's, known from its first repair packets (a "peer_code" line).
@@ -232,6 +244,7 @@ class Daemon:
                     m=self.encoder.settings.repair,
                     flush_ms=cfg.fec.flush_ms,
                     adapt="on" if self.feedback.adapting else "off",
+                    link_rate=f"{cfg.link.rate:g}" if cfg.link.rate is not None else "off",
                     reports_ms=cfg.reports.interval_ms,
                     sends=side["sends"],
                     decoding="peer's code unknown until traffic",
@@ -263,6 +276,9 @@ class Daemon:
         self._stopping = True
         await self._send_to_peer(self.encoder.close())
         await self._handle_events(self.decoder.close(), trio.current_time())
+        left = await self.link.drain()  # the paced queue: the last block's repair packets
+        if left:
+            log_event(log, logging.INFO, "queue_discarded", packets=left, detail="still queued for the link at stop")
         self._nursery.cancel_scope.cancel()
 
     def summary(self) -> dict[str, int]:
@@ -293,14 +309,8 @@ class Daemon:
             out = []
         dropped = encoder.stats.dropped.get(DropReason.OVERSIZE, 0) - oversize
         if dropped:
-            log_event(
-                log,
-                logging.DEBUG,
-                "dropped",
-                reason=DropReason.OVERSIZE,
-                count=dropped,
-                detail=f"datagrams over max_datagram {encoder.settings.max_datagram} bytes",
-            )
+            limit = encoder.settings.max_datagram
+            self.oversize.note(dropped, max(len(data) for data, _ in items), limit, now)
         await self._send_to_peer(out)
         self._reschedule()
 
@@ -341,6 +351,12 @@ class Daemon:
             if by_flow:
                 await self.app.deliver(by_flow, now)
                 by_flow = {}
+            heard = (
+                self.decoder.stats.source_received + self.decoder.stats.repair_received + self.feedback.stats.received
+            )
+            if heard != self._heard:  # anything valid from the peer: it is there
+                self._heard = heard
+                await self._handle_events(self.feedback.peer.heard(now), now)
             self._reschedule()
 
     async def _timer_loop(self) -> None:
@@ -393,18 +409,28 @@ class Daemon:
             elif event.reason is not DropReason.AUTH:
                 log_event(log, logging.DEBUG, "dropped", reason=event.reason, detail=event.detail)
         elif isinstance(event, PeerAddressChanged):
-            if event.previous is not None:
-                log_event(
-                    log,
-                    logging.INFO,
-                    "peer_changed",
-                    old=format_sockaddr(event.previous),
-                    new=format_sockaddr(event.address),
-                )
+            # A receiver without link.peer says where its replies go, and every change of it.
+            log_event(
+                log,
+                logging.INFO,
+                "peer_learned" if event.previous is None else "peer_changed",
+                old=format_sockaddr(event.previous) if event.previous is not None else "-",
+                new=format_sockaddr(event.address),
+            )
+        elif isinstance(event, PeerSilent):
+            log_event(
+                log,
+                logging.WARNING,
+                "peer_silent",
+                quiet_s=round(event.at - event.last_heard_at, 1),
+                detail="nothing valid from the peer (no loss report, no packet): peer down or return path cut",
+            )
+        elif isinstance(event, PeerHeard):
+            log_event(log, logging.INFO, "peer_heard", silent_s=round(event.silent_for, 1))
         elif isinstance(event, KeyCheckDue):
             # Sealed with our key, so the peer's log says the same as ours (see loss_report).
-            if self.encoder.sealer is not None and self._link_writer is not None:
-                await self._link_writer.send([self.encoder.control(KEY_CHECK_BODY)], event.address)
+            if self.encoder.sealer is not None:
+                await self.link.send([self.encoder.control(KEY_CHECK_BODY)], event.address, now)
         elif isinstance(event, PeerCodeSettled):
             # INFO the first time per peer session, DEBUG when it changes later (an adapting peer
             # changes m often).
@@ -412,8 +438,9 @@ class Daemon:
                 log,
                 logging.INFO if event.first else logging.DEBUG,
                 "peer_code",
-                k=event.k,
-                m=event.m,
+                k=event.configured[0] if event.configured else event.k,
+                m=event.configured[1] if event.configured else event.m,
+                blocks="full" if event.configured else "short blocks only so far",
                 detail="decoding the peer's blocks (k from its repair packets, m = highest repair ESI - k + 1)",
             )
         elif isinstance(event, ControlReceived):
@@ -510,37 +537,28 @@ class Daemon:
         if changed:
             log_event(log, logging.INFO, "keys", auth=keys.describe() if keys is not None else "off")
 
-    async def _stats_loop(self, interval: float) -> None:
-        """One INFO line every ``interval`` seconds with the counters since the previous line, so
-        a long run shows it is alive and what the link did without a metrics endpoint."""
-        previous = self._stats_snapshot()
-        while True:
-            await trio.sleep(interval)
-            now = self._stats_snapshot()
-            delta = {key: now[key] - previous[key] for key in now}
-            previous = now
-            expected = delta["lost"] + delta["received_source"]
-            log_event(
-                log,
-                logging.INFO,
-                "stats",
-                interval_s=interval,
-                datagrams_in=delta["datagrams_in"],
-                datagrams_out=delta["delivered"],
-                link_packets_in=delta["received_source"] + delta["received_repair"],
-                link_packets_out=delta["source_sent"] + delta["repair_sent"],
-                # Ratios of the interval's source datagrams; "-" when the peer sent none.
-                link_loss=round(delta["lost"] / expected, 6) if expected else "-",
-                residual_loss=round(delta["unrecovered"] / expected, 6) if expected else "-",
-                recovered=delta["recovered"],
-                dropped=delta["dropped"],
-                flows=len(self.app.flows),
-            )
-
     def _stats_snapshot(self) -> dict[str, int]:
         counts = self.summary()
         counts["datagrams_in"] = self.encoder.stats.source_packets  # one source packet per datagram taken in
+        counts["oversize"] = self.encoder.stats.dropped.get(DropReason.OVERSIZE, 0)
+        figures = self.link.figures()
+        if figures.rate_bps is not None:
+            for kind in PacketKind:
+                counts[f"air_{kind.value}"] = figures.air_bytes[kind]
+            counts["queue_dropped"] = sum(figures.dropped.values())
         return counts
+
+    def _stats_states(self) -> dict[str, object]:
+        """The stats line's fields that are states: flows, and the far end as the peer reports it."""
+        before, after = self.feedback.peer.peer_loss()
+        since = self.feedback.peer.seconds_since_heard(trio.current_time())
+        return dict(
+            flows=len(self.app.flows),
+            peer=format_sockaddr(self.peer) if self.peer else "-",
+            peer_link_loss=ratio_field(before),
+            peer_residual_loss=ratio_field(after),
+            peer_silent_s=round(since, 1) if self.feedback.peer.silent else 0,
+        )
 
     def _next_deadline(self) -> float:
         cores = (
@@ -563,4 +581,4 @@ class Daemon:
         if peer is None or self._link_writer is None:
             self.counts.drop(DropReason.NO_PEER, len(packets))
             return
-        await self._link_writer.send(packets, peer)
+        await self.link.send(packets, peer, trio.current_time())

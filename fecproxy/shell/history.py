@@ -77,6 +77,9 @@ PEER_SILENT_GAPS = 10.0
 #: Samples in which the peer's packets rose before its silence is judged: its rhythm is unknown before.
 MIN_RISES = 3
 RECEIVED = "fecproxy_link_packets_received_total"
+#: The daemon's report-based silence flag (fecproxy.protocol.peer_view): finite once the peer
+#: reports, and then the daemon logs peer_silent/peer_heard itself.
+PEER_SILENT_GAUGE = "fecproxy_peer_silent"
 
 log = logging.getLogger("fecproxy.shell.daemon")
 
@@ -160,6 +163,8 @@ class History:
             self.series = tuple(sorted(key for key in values if _family(key) in HISTORY_FAMILIES))[:MAX_SERIES]
         row = array("d", (values.get(key, math.nan) for key in self.series))
         self._rows.append((now, row))
+        if math.isfinite(values.get(PEER_SILENT_GAUGE, math.nan)):
+            return  # the daemon's own peer view (from the peer's loss reports) tells silence: once is enough
         self._watch_peer(now, sum(value for key, value in values.items() if _family(key) == RECEIVED))
 
     def rows(self) -> list[list[float | None]]:

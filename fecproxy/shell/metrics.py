@@ -28,6 +28,8 @@ from fecproxy.linkmodel.adaptation import DECISION_REASONS, DOWN, IGNORE_REASONS
 from fecproxy.protocol.events import BlockOutcome, DropReason
 from fecproxy.shell.history import History, keep_history
 from fecproxy.shell.http_server import HttpServer, WsgiApp, open_listener
+from fecproxy.shell.link_metrics import link_metrics
+from fecproxy.shell.link_output import LinkFigures
 from fecproxy.shell.status import read_samples, status_app
 
 # prometheus-client adds a `<name>_created` series (the creation time) to every counter and
@@ -95,6 +97,12 @@ class DaemonView(Protocol):
     def feedback(self) -> Feedback:
         """Loss reports sent and received, and the adaptation of the direction we send."""
 
+    def link_figures(self) -> LinkFigures | None:
+        """The link output's air budget and pacer queue (None: no link output, nothing paced)."""
+
+
+#: The link figures of a view that has no link output: nothing paced, nothing sent.
+UNPACED = LinkFigures(None, {}, 0, 0, 0.0, {})
 
 #: From 1 ms (a fast LAN hop) to 2 s (well past any hold time we would configure).
 RECOVERY_DELAY_BUCKETS = (0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.0)
@@ -219,6 +227,12 @@ class DaemonCollector:
             value=math.nan if received_m is None else received_m,
         )
         yield from _feedback_metrics(d.feedback, d.block_shape, d.received_code)
+        try:
+            now: float | None = trio.current_time()  # the cores' clock: scrapes run in the daemon's trio loop
+        except RuntimeError:  # read outside a trio run (a test): "seconds since" is unknown
+            now = None
+        full = getattr(d, "received_code_full", None)  # a stand-in view may not tell
+        yield from link_metrics(d.link_figures() or UNPACED, d.feedback.peer, now, full)
         k, m = d.block_shape
         info = InfoMetricFamily(
             "fecproxy",
