@@ -8,7 +8,6 @@ from __future__ import annotations
 import hashlib
 import hmac
 import os
-import time
 
 import pytest
 from hypothesis import given, settings
@@ -331,56 +330,6 @@ def test_failure_notice_logs_once_per_interval_and_counts_the_rest():
     assert notice.note(auth.AuthError("bad_tag", "x"), now=2.0) is not None  # another kind
     assert "2 more since the last report" in notice.note(error, now=60.0)
     assert notice.note(error, now=61.0) is None
-
-
-# ------------------------------------------------------------------ cost, printed not asserted
-
-
-@pytest.mark.slow
-def test_print_cost_per_packet(capsys):
-    """Micro-benchmark: µs per 1200-byte packet, each figure beside an unprotected baseline."""
-    packet = wire.encode_source(SESSION, 1, 0, 0, os.urandom(1200))
-    mac_ring = auth.Keyring(OLD)
-    rows = {}
-
-    def rate(function, rounds=5, calls=2000):
-        best = float("inf")
-        for _ in range(rounds):
-            start = time.perf_counter()
-            for _ in range(calls):
-                function()
-            best = min(best, (time.perf_counter() - start) / calls)
-        return best * 1e6
-
-    rows["baseline: wire.parse"] = rate(lambda: wire.parse(packet, max_datagram=1400))
-    protected = auth.protect(packet, mac_ring.current, 1)
-    rows["HMAC-SHA-256 protect"] = rate(lambda: auth.protect(packet, mac_ring.current, 1))
-    rows["HMAC-SHA-256 verify"] = rate(lambda: auth.verify(protected, mac_ring))
-    blake_key = keys.mac_key(OLD)
-    rows["keyed BLAKE2b-128 tag (alternative)"] = rate(
-        lambda: hashlib.blake2b(packet, key=blake_key, digest_size=16).digest()
-    )
-    rows["keyed BLAKE2s-128 tag (alternative)"] = rate(
-        lambda: hashlib.blake2s(packet, key=blake_key, digest_size=16).digest()
-    )
-    try:
-        aead_ring = auth.Keyring(OLD, encrypt=True)
-    except RuntimeError:
-        aead_ring = None
-    if aead_ring is not None:
-        sealed = auth.protect(packet, aead_ring.current, 1)
-        rows["ChaCha20-Poly1305 protect"] = rate(lambda: auth.protect(packet, aead_ring.current, 1))
-        rows["ChaCha20-Poly1305 verify"] = rate(lambda: auth.verify(sealed, aead_ring))
-    window = ReplayWindow()
-    counter = iter(range(10**9))
-    rows["replay check + commit"] = rate(
-        lambda: window.commit(next(counter)) if window.check(0).accepted or True else None
-    )
-    baseline = rows["baseline: wire.parse"]
-    with capsys.disabled():
-        print("\nper 1200-byte packet, best of 5 rounds:")
-        for name, micros in rows.items():
-            print(f"  {name:40s} {micros:7.2f} µs  ({micros / baseline:5.2f}× wire.parse)")
 
 
 def test_a_short_plain_packet_is_reported_as_untagged_not_truncated():

@@ -82,6 +82,7 @@ def test_output_fills_in_defaults(capsys, tmp_path):
         "link",
         "fec",
         "decoder",
+        "delivery",
         "flows",
         "sockets",
         "log",
@@ -203,12 +204,13 @@ def test_process_rejects_a_bad_file(tmp_path):
 
 def test_check_tells_which_max_datagram_bytes_fits_the_mtu(capsys, tmp_path):
     # Design notes §7 (RFC 791 / RFC 768 / RFC 8200): a 1500-byte MTU leaves 1472 bytes of UDP payload
-    # over IPv4 and 1452 over IPv6; our repair packet adds 12 + 5 bytes of header and symbol prefix.
+    # over IPv4 and 1452 over IPv6; our repair packet adds 12 + 7 bytes of header and symbol prefix
+    # (wire version 3).
     path = tmp_path / "s.yaml"
     path.write_text(GOOD_SENDER + "  max_datagram_bytes: 1460\n")
     status, out, err = run_check(capsys, str(path))
     assert status == EXIT_VALID
-    assert "link.mtu: warning: 1500" in err and "fec.max_datagram_bytes ≤ 1455" in err and "IPv4" in err
+    assert "link.mtu: warning: 1500" in err and "fec.max_datagram_bytes ≤ 1453" in err and "IPv4" in err
     path.write_text(GOOD_SENDER)
     status, out, err = run_check(capsys, str(path))
-    assert "# link.mtu 1500:" in out and "up to 1455 (IPv4) fits" in out and err == ""
+    assert "# link.mtu 1500:" in out and "up to 1453 (IPv4) fits" in out and err == ""

@@ -147,3 +147,35 @@ def test_pair_check_as_a_process():
     result = run_to_exit("check", "config/trial-sender.yaml", "config/trial-receiver.yaml", timeout=60, cwd=ROOT)
     assert result.returncode == 0, result.stderr
     assert "the pair agrees" in result.stdout
+
+
+def test_link_budget_repair_air_time_and_pacing_on_one_side_only(capsys, tmp_path):
+    """A paced sender's repair packets leave after their air time: the receiver's hold must
+    cover it; pacing on one side only and different MTUs are warned of."""
+    s, r = tmp_path / "s.yaml", tmp_path / "r.yaml"
+    s.write_text(
+        "role: sender\nlisten: 127.0.0.1:5000\n"
+        "link: {bind: 127.0.0.1:7001, peer: 127.0.0.1:7000, rate: 9600, queue_ms: 2000, mtu: 576}\n"
+        "fec: {block_size: 4, repair: 2, flush_ms: 100, max_datagram_bytes: 256}\n"
+    )
+    r.write_text(
+        "role: receiver\nforward: 127.0.0.1:6000\nlink: {bind: 127.0.0.1:7000, peer: 127.0.0.1:7001}\n"
+        "fec: {block_size: 4, repair: 2, flush_ms: 20, max_datagram_bytes: 256}\ndecoder: {hold_ms: 200}\n"
+    )
+    from fecproxy.config import load_config
+    from fecproxy.config.pair import _repair_air_ms
+    from fecproxy.protocol import wire
+
+    # Two repair packets of header + symbol prefix + 256 bytes + IPv4/UDP 28 bytes at 9600 bit/s.
+    air = _repair_air_ms(load_config(s))
+    expected_air = 2 * (wire.REPAIR_HEADER_BYTES + wire.SYMBOL_PREFIX_BYTES + 256 + 28) * 8 / 9600 * 1000
+    assert air == pytest.approx(expected_air, abs=1)
+    status, err = run_check(capsys, str(s), str(r))
+    assert status == EXIT_INVALID
+    assert err[0] == (
+        f"{r}: decoder.hold_ms: 200 is below {s}'s fec.flush_ms 100 + the repair's air time {air} ms at its "
+        f"link.rate = {100 + air} ms; expected hold_ms ≥ {100 + air} (a block would expire before its repair "
+        f"packets arrive)"
+    )
+    warned = [line.split(": warning: ")[0] for line in err if ": warning: " in line]
+    assert f"{r}: link.mtu" in warned and f"{r}: link.rate" in warned

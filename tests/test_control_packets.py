@@ -1,7 +1,7 @@
 """Control packets (type 2) through the protocol core: the encoder builds them, the decoder hands
 their body to the shell as ``ControlReceived`` without touching its sender-session state.
 
-The bytes are our own format (DEVELOPERS.md "Loss reports (control packets)")."""
+The bytes are our own format (docs/design.md "Loss reports (control packets)")."""
 
 from __future__ import annotations
 
@@ -37,7 +37,7 @@ def test_control_packet_bytes():
     encoder = BlockEncoder(EncoderSettings(), 0x0A0B0C0D)
     body = encode_report(REPORT)
     # version 2 | type 2, no flags, session, SBN 0 and ESI 0, then the body.
-    assert encoder.control(body) == bytes.fromhex("22 00 0a0b0c0d 000000 00") + body
+    assert encoder.control(body) == bytes.fromhex("32 00 0a0b0c0d 000000 00") + body
 
 
 def test_decoder_hands_control_bodies_on_and_keeps_its_session():
@@ -57,9 +57,9 @@ def test_decoder_hands_control_bodies_on_and_keeps_its_session():
 @pytest.mark.parametrize(
     "packet",
     [
-        bytes.fromhex("22 01 0a0b0c0d 000000 00") + b"x",  # a flag on a control packet
-        bytes.fromhex("22 00 0a0b0c0d 000001 00") + b"x",  # a block number
-        bytes.fromhex("22 00 0a0b0c0d 000000 05") + b"x",  # an ESI
+        bytes.fromhex("32 01 0a0b0c0d 000000 00") + b"x",  # a flag on a control packet
+        bytes.fromhex("32 00 0a0b0c0d 000001 00") + b"x",  # a block number
+        bytes.fromhex("32 00 0a0b0c0d 000000 05") + b"x",  # an ESI
     ],
 )
 def test_control_header_fields_are_checked(packet):

@@ -38,6 +38,7 @@ from support.lossy_relay import drop_indices, iid_loss
 from support.processes import run_to_exit
 
 from fecproxy.commands import EXIT_CANNOT_START, EXIT_INVALID, EXIT_UNREADABLE
+from fecproxy.protocol import wire
 
 #: Exit bound required of a daemon after SIGTERM: "exit 0 within a second".
 SIGTERM_EXIT_SECONDS = 1.0
@@ -438,7 +439,7 @@ def test_malformed_and_forged_packets_are_counted_and_never_crash_the_receiver(p
     _, session, _, _ = parse_link_header(pair.relay.forward.packets[0][2])
     genuine_source = pair.relay.forward.packets[3][2]  # block 0 is finished by now
 
-    def header(kind: int, flags: int, sbn: int, esi: int, version: int = 2, sess: int = session) -> bytes:
+    def header(kind: int, flags: int, sbn: int, esi: int, version: int = wire.VERSION, sess: int = session) -> bytes:
         return struct.pack(">BBII", (version << 4) | kind, flags, sess, (sbn << 8) | esi)
 
     hostile = {
@@ -453,17 +454,17 @@ def test_malformed_and_forged_packets_are_counted_and_never_crash_the_receiver(p
             header(REPAIR, 0, 5, 20) + struct.pack(">H", 16) + b"a",  # symbol shorter than its prefix
         ],
         "unsupported": [
-            header(SOURCE, 0, 5, 0, version=3) + b"\x00data",  # a future version
+            header(SOURCE, 0, 5, 0, version=wire.VERSION + 1) + b"\x00data",  # a future version
             header(SOURCE, 0, 5, 0, version=1) + b"\x00\x00data",  # the one-byte flow id of version 1
             header(SOURCE, 0x40, 5, 0) + b"\x00data",  # undefined flag
             header(7, 0, 5, 0) + b"\x00data",  # undefined type
         ],
         "oversize": [
-            header(SOURCE, 0, 5, 0) + bytes(4) + bytes(1401),  # above max_datagram_bytes 1400
-            header(REPAIR, 0, 5, 20) + struct.pack(">H", 16) + bytes(1406),  # 5-byte prefix + 1401
+            header(SOURCE, 0, 5, 0) + bytes(6) + bytes(1401),  # above max_datagram_bytes 1400
+            header(REPAIR, 0, 5, 20) + struct.pack(">H", 16) + bytes(1408),  # 7-byte prefix + 1401
         ],
         "late": [genuine_source],  # replay of a datagram of a finished block
-        "stale": [header(SOURCE, 0, (1 << 24) - 5000, 0) + bytes(4) + b"old"],  # far behind the window
+        "stale": [header(SOURCE, 0, (1 << 24) - 5000, 0) + bytes(6) + b"old"],  # far behind the window
     }
     before = {reason: pair.receiver.metric("fecproxy_packets_dropped_total", reason=reason) for reason in hostile}
     with socket.socket(socket.AF_INET, socket.SOCK_DGRAM) as attacker:
@@ -475,7 +476,10 @@ def test_malformed_and_forged_packets_are_counted_and_never_crash_the_receiver(p
         rng = random.Random(11)
         for _ in range(300):  # random bytes of random lengths, bounded
             junk = rng.randbytes(rng.randrange(0, 1600))
-            if junk[:1] in (b"\x20", b"\x21") and junk[1:2] in (b"\x00", b"\x01"):
+            if junk[0:1] in (bytes([wire.SOURCE_TYPE_BYTE]), bytes([wire.REPAIR_TYPE_BYTE])) and junk[1:2] in (
+                b"\x00",
+                b"\x01",
+            ):
                 continue  # could pass as a well-formed packet of a new session (see below)
             attacker.sendto(junk, pair.receiver.link_address)
 
@@ -510,7 +514,7 @@ def test_one_forged_packet_of_a_new_session_does_not_stop_the_genuine_stream(pai
     send_paced(client.send, 16, rate=1000)
     drain(pair, 16)
     _, session, _, _ = parse_link_header(pair.relay.forward.packets[0][2])
-    forged = struct.pack(">BBIII", 0x20 | SOURCE, 0, session ^ 0xFFFFFFFF, 0, 0) + b"forged"
+    forged = wire.encode_source(session ^ 0xFFFFFFFF, 0, 0, 0, b"forged")
     with socket.socket(socket.AF_INET, socket.SOCK_DGRAM) as attacker:
         attacker.bind((LOOPBACK, 0))
         attacker.sendto(forged, pair.receiver.link_address)

@@ -105,14 +105,26 @@ def test_grafana_dashboard_and_provisioning_are_well_formed():
     assert all(p["type"] == "file" and p["options"]["path"] for p in providers["providers"])
     sources = yaml.safe_load((provisioning / "datasources" / "fecproxy.yaml").read_text())
     assert sources["apiVersion"] == 1
-    uids = {source["uid"] for source in sources["datasources"]}
     dashboard = json.loads(DASHBOARD.read_text())
     assert isinstance(dashboard["schemaVersion"], int) and dashboard["uid"] and dashboard["title"]
     ids = [panel["id"] for panel in dashboard["panels"]]
     assert len(ids) == len(set(ids))
+    # The data source is a variable (and an import input), never a fixed uid.
+    variables = {variable["name"]: variable for variable in dashboard["templating"]["list"]}
+    assert variables["datasource"]["type"] == "datasource" and variables["datasource"]["query"] == "prometheus"
+    assert [entry["type"] for entry in dashboard["__inputs"]] == ["datasource"]
     for panel in dashboard["panels"]:
-        assert panel["datasource"]["uid"] in uids and panel["targets"]
-        assert all(target["datasource"]["uid"] in uids and target["expr"] for target in panel["targets"])
+        assert panel["datasource"]["uid"] == "${datasource}" and panel["targets"]
+        assert all(target["datasource"]["uid"] == "${datasource}" and target["expr"] for target in panel["targets"])
+    # One pair at a time: the pair variable is single-valued, and every query is filtered by it
+    # and by the chosen daemons, and keeps the pair label in what it returns.
+    assert not variables["pair"]["multi"] and not variables["pair"]["includeAll"]
+    assert '{job="fecproxy", pair="$pair"}' in variables["instance"]["query"]["query"]
+    for panel in dashboard["panels"]:
+        for target in panel["targets"]:
+            expr = target["expr"]
+            assert expr.count('pair="$pair", instance=~"$instance"') == expr.count("fecproxy_"), expr
+            assert all("pair" in group for group in re.findall(r"by \(([^)]*)\)", expr)), expr
     exprs = " ".join(t["expr"] for panel in dashboard["panels"] for t in panel["targets"])
     for needed in (
         "source_packets_lost_per_expected",
@@ -130,18 +142,58 @@ def test_grafana_dashboard_and_provisioning_are_well_formed():
         assert needed in exprs, needed
 
 
+def test_dashboard_matches_grafana_s_dashboard_schema():
+    """Grafana's own SDK (grafana-foundation-sdk, types generated from Grafana's dashboard schema)
+    reads the dashboard and writes it back: a key the schema does not know, or a value of the
+    wrong kind where the SDK converts one, does not survive the round trip.  `__inputs` and
+    `__requires` are import metadata outside the dashboard model."""
+    from grafana_foundation_sdk.cog.encoder import JSONEncoder
+    from grafana_foundation_sdk.models.dashboard import Dashboard
+
+    written = json.loads(DASHBOARD.read_text())
+    model = Dashboard.from_json(written)
+    read_back = json.loads(JSONEncoder(sort_keys=True).encode(model))
+    lost: list[str] = []
+
+    def compare(ours, theirs, path: str) -> None:
+        if isinstance(ours, dict):
+            for key, value in ours.items():
+                if not isinstance(theirs, dict) or key not in theirs:
+                    lost.append(f"{path}.{key}")
+                else:
+                    compare(value, theirs[key], f"{path}.{key}")
+        elif isinstance(ours, list):
+            if not isinstance(theirs, list) or len(ours) != len(theirs):
+                lost.append(path)
+                return
+            for index, (mine, other) in enumerate(zip(ours, theirs, strict=True)):
+                compare(mine, other, f"{path}[{index}]")
+        elif ours != theirs:
+            lost.append(f"{path}: {ours!r} read back as {theirs!r}")
+
+    compare({k: v for k, v in written.items() if k not in ("__inputs", "__requires")}, read_back, "")
+    assert lost == []
+
+
 def free_port() -> int:
     with socket.socket() as probe:
         probe.bind((LOOPBACK, 0))
         return probe.getsockname()[1]
 
 
-def scrape_config_for(ports: dict[str, int], tmp_path: Path) -> Path:
-    """The shipped config with the test's ports and 1-s intervals; the rule files copied beside."""
+def scrape_config_for(ports: dict[str, dict[str, int]], tmp_path: Path) -> Path:
+    """The shipped config with the test's ports and 1-s intervals, its targets repeated for each
+    pair (``ports``: pair label -> side -> metrics port) as README says to copy them; the rule
+    files copied beside."""
     config = yaml.safe_load((PROMETHEUS_DIR / "prometheus.yml").read_text())
     config["global"]["scrape_interval"] = config["global"]["evaluation_interval"] = TEST_INTERVAL
-    for target in config["scrape_configs"][0]["static_configs"]:
-        target["targets"] = [f"{LOOPBACK}:{ports[target['labels']['side']]}"]
+    shipped = config["scrape_configs"][0]["static_configs"]
+    targets = []
+    for pair, sides in ports.items():
+        for target in shipped:
+            side = target["labels"]["side"]
+            targets.append({"targets": [f"{LOOPBACK}:{sides[side]}"], "labels": target["labels"] | {"pair": pair}})
+    config["scrape_configs"][0]["static_configs"] = targets
     for name in config["rule_files"]:
         shutil.copy(PROMETHEUS_DIR / name, tmp_path / name)
     path = tmp_path / "prometheus.yml"
@@ -193,29 +245,58 @@ def by_side(result: list[dict]) -> dict[str, float]:
     return {series["metric"].get("side", ""): float(series["value"][1]) for series in result}
 
 
+#: The pairs the test runs side by side: the shipped config's pair, and a second one with other
+#: losses, scraped by the same Prometheus (README: "Copy the targets for each pair you run").
+FIRST_PAIR = "station-valley"
+SECOND_PAIR = "hilltop-relay"
+SECOND_LINK_LOSS = 0.05
+
+
+def dashboard_query(expr: str, pair: str, instances: str = ".+") -> str:
+    """A panel query as Grafana sends it: $pair the chosen pair, $instance the "All" value
+    (the variable's allValue, ``.+``) or a chosen daemon, regex-escaped with its backslashes
+    doubled for the PromQL string (as Grafana's Prometheus data source escapes values)."""
+    return expr.replace("$pair", pair).replace("$instance", instances)
+
+
 @pytest.mark.slow
 def test_dashboard_rules_and_alerts_return_data_from_a_real_pair(tmp_path):
     binary = require("prometheus")
+    fec = {"block_size": 8, "repair": 2, "flush_ms": 20}
+    (tmp_path / FIRST_PAIR).mkdir()
+    (tmp_path / SECOND_PAIR).mkdir()
     pair = Pair(
-        tmp_path,
+        tmp_path / FIRST_PAIR,
         forward=iid_loss(LINK_LOSS, SEED),
         record=True,
         echo=True,
-        sender_fec={"block_size": 8, "repair": 2, "flush_ms": 20},
-        receiver_fec={"block_size": 8, "repair": 2, "flush_ms": 20},
+        sender_fec=fec,
+        receiver_fec=fec,
     )
+    second = None
     prometheus = None
     try:
-        ports = {"sender": pair.sender.metrics_port, "receiver": pair.receiver.metrics_port}
-        prometheus = Prometheus(binary, scrape_config_for(ports, tmp_path), tmp_path)
-        # Traffic starts only once both daemons were scraped (every counter still 0): see above.
-        ready = wait_until(
-            lambda: len(prometheus.try_query('up{job="fecproxy"} == 1')) == 2, PROMETHEUS_READY_TIMEOUT, interval=0.2
+        second = Pair(
+            tmp_path / SECOND_PAIR,
+            forward=iid_loss(SECOND_LINK_LOSS, SEED + 1),
+            echo=True,
+            sender_fec=fec,
+            receiver_fec=fec,
         )
-        assert ready, "Prometheus did not scrape both daemons:\n" + prometheus.log_path.read_text()[-3000:]
-        client = pair.client(1)
-        send_paced(client.send, DATAGRAMS, RATE)
+        ports = {
+            name: {"sender": p.sender.metrics_port, "receiver": p.receiver.metrics_port}
+            for name, p in ((FIRST_PAIR, pair), (SECOND_PAIR, second))
+        }
+        prometheus = Prometheus(binary, scrape_config_for(ports, tmp_path), tmp_path)
+        # Traffic starts only once all daemons were scraped (every counter still 0): see above.
+        ready = wait_until(
+            lambda: len(prometheus.try_query('up{job="fecproxy"} == 1')) == 4, PROMETHEUS_READY_TIMEOUT, interval=0.2
+        )
+        assert ready, "Prometheus did not scrape all four daemons:\n" + prometheus.log_path.read_text()[-3000:]
+        clients = [pair.client(1), second.client(1)]
+        send_paced(lambda data: [client.send(data) for client in clients], DATAGRAMS, RATE)
         drain(pair, DATAGRAMS)
+        drain(second, DATAGRAMS)
         time.sleep(0.6)  # the last repair and the hold timer's verdicts
         final = {side: daemon.metrics() for side, daemon in (("sender", pair.sender), ("receiver", pair.receiver))}
         # Two more scrapes and rule evaluations after the counters stopped moving.
@@ -264,35 +345,67 @@ def test_dashboard_rules_and_alerts_return_data_from_a_real_pair(tmp_path):
                 continue
             assert result, f"alert {rule['name']} expression has no data: {rule['query']}"
 
-        # Every dashboard panel query has data.
+        # The dashboard's variables: the pair list names both pairs, each pair's daemon list its two.
         dashboard = json.loads(DASHBOARD.read_text())
+        variables = {variable["name"]: variable for variable in dashboard["templating"]["list"]}
+        pair_selector = re.fullmatch(r"label_values\((.*), pair\)", variables["pair"]["query"]["query"]).group(1)
+        assert set(prometheus.api("label/pair/values", **{"match[]": pair_selector})) == {FIRST_PAIR, SECOND_PAIR}
+        instance_selector = re.fullmatch(r"label_values\((.*), instance\)", variables["instance"]["query"]["query"])
+        for name in (FIRST_PAIR, SECOND_PAIR):
+            selector = instance_selector.group(1).replace("$pair", name)
+            instances = prometheus.api("label/instance/values", **{"match[]": selector})
+            assert sorted(instances) == sorted(f"{LOOPBACK}:{port}" for port in ports[name].values())
+
+        # Every dashboard panel query has data for each pair on its own, and only that pair's:
+        # with every daemon chosen (the "All" value) and with the receiver alone.
         assert dashboard["schemaVersion"] >= 1
-        for panel in dashboard["panels"]:
-            for target in panel["targets"]:
-                assert prometheus.query(target["expr"]), f"panel {panel['title']!r}: {target['expr']} has no data"
+        for name in (FIRST_PAIR, SECOND_PAIR):
+            for instances in (
+                variables["instance"]["allValue"],
+                re.escape(f"{LOOPBACK}:{ports[name]['receiver']}").replace("\\", "\\\\"),
+            ):
+                for panel in dashboard["panels"]:
+                    for target in panel["targets"]:
+                        expr = dashboard_query(target["expr"], name, instances)
+                        result = prometheus.query(expr)
+                        if not result and instances != variables["instance"]["allValue"]:
+                            continue  # a sender-only series (e.g. what the sender sends) for the receiver alone
+                        assert result, f"pair {name}, panel {panel['title']!r}: {expr} has no data"
+                        assert {series["metric"].get("pair") for series in result} == {name}, (expr, result)
 
         # The loss panel agrees with the relay: source packets it dropped / source packets sent.
         dropped_sources = sum(
             1 for _, dropped, data in pair.relay.forward.packets if dropped and parse_link_header(data)[0] == SOURCE
         )
         all_sources = sum(1 for _, _, data in pair.relay.forward.packets if parse_link_header(data)[0] == SOURCE)
-        link = by_side(prometheus.query("instance:fecproxy_source_packets_lost_per_expected:ratio_rate5m"))
-        residual = by_side(prometheus.query("instance:fecproxy_datagrams_unrecovered_per_expected:ratio_rate5m"))
+        first = f'{{pair="{FIRST_PAIR}"}}'
+        link = by_side(prometheus.query(f"instance:fecproxy_source_packets_lost_per_expected:ratio_rate5m{first}"))
+        residual = by_side(
+            prometheus.query(f"instance:fecproxy_datagrams_unrecovered_per_expected:ratio_rate5m{first}")
+        )
+        other = by_side(
+            prometheus.query(f'instance:fecproxy_source_packets_lost_per_expected:ratio_rate5m{{pair="{SECOND_PAIR}"}}')
+        )
         receiver = final["receiver"]
         lost = receiver[("fecproxy_source_packets_lost_total", ())]
         arrived = receiver[("fecproxy_link_packets_received_total", (("kind", "source"),))]
         unrecovered = receiver[("fecproxy_datagrams_unrecovered_total", ())]
         print(
             f"relay dropped {dropped_sources}/{all_sources} source packets; panel link loss {link['receiver']:.5f}, "
-            f"residual {residual['receiver']:.5f}"
+            f"residual {residual['receiver']:.5f}; the other pair's link loss {other['receiver']:.5f}"
         )
         assert lost <= dropped_sources and dropped_sources - lost <= 2 * 8  # at most a trailing block unseen
         assert link["receiver"] == pytest.approx(dropped_sources / all_sources, abs=0.005)
         assert link["receiver"] == pytest.approx(lost / (lost + arrived), rel=1e-6)
         assert residual["receiver"] == pytest.approx(unrecovered / (lost + arrived), rel=1e-6, abs=1e-12)
         assert link["sender"] == 0.0  # the echo path loses nothing
+        # The second pair's figure is its own (5 % configured), not the first pair's (10 %).
+        assert other["receiver"] == pytest.approx(SECOND_LINK_LOSS, abs=0.025)
+        assert abs(other["receiver"] - link["receiver"]) > 0.02
     finally:
         if prometheus is not None:
             prometheus.close()
         codes = pair.close()
+        if second is not None:
+            second.close()
     assert codes == [0, 0]

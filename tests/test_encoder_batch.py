@@ -107,16 +107,28 @@ def test_repair_of_a_batched_block_matches_galois():
     batch = [(rng.randbytes(rng.randint(0, 40)), rng.randint(0, 2**24 - 1)) for _ in range(3 * k)]
     packets = enc.send_batch(batch, 0.0)
     assert len(packets) == 3 * (k + m)
+    counts: dict[int, int] = {}
+    sequence_of = []  # each flow's datagrams counted from 0
+    for _, flow in batch:
+        sequence_of.append(counts.get(flow, 0))
+        counts[flow] = sequence_of[-1] + 1
     for block in range(3):
         items = batch[block * k : (block + 1) * k]
-        length = 5 + max(len(data) for data, _ in items)
+        length = 7 + max(len(data) for data, _ in items)
         # RFC 6363 §4: flow id ‖ length (2 bytes, big-endian) ‖ data ‖ zero padding; our flow id
-        # is 3 bytes (slot ‖ generation, wire version 2).
+        # is 3 bytes (slot ‖ generation) and our flow sequence number (2 bytes) follows the length
+        # (wire version 3).
         symbols = field(
             np.array(
                 [
-                    list(flow.to_bytes(3, "big") + len(data).to_bytes(2, "big") + data + bytes(length - 5 - len(data)))
-                    for data, flow in items
+                    list(
+                        flow.to_bytes(3, "big")
+                        + len(data).to_bytes(2, "big")
+                        + sequence_of[block * k + row].to_bytes(2, "big")
+                        + data
+                        + bytes(length - 7 - len(data))
+                    )
+                    for row, (data, flow) in enumerate(items)
                 ],
                 dtype=np.uint8,
             )

@@ -242,7 +242,7 @@ def test_packets_contradicting_the_block_are_dropped_not_trusted():
 
 def test_malformed_packets_are_counted_by_reason():
     dec = BlockDecoder()
-    events = feed(dec, [b"", b"\x30" + bytes(13), wire.encode_source(1, 0, 0, 0, bytes(2000))])
+    events = feed(dec, [b"", bytes([(wire.VERSION + 1) << 4]) + bytes(15), wire.encode_source(1, 0, 0, 0, bytes(2000))])
     assert [e.reason for e in events] == ["malformed", "unsupported", "oversize"]
     assert dec.stats.dropped == {"malformed": 1, "unsupported": 1, "oversize": 1}
 
@@ -354,8 +354,9 @@ def test_a_duplicated_packet_of_a_new_session_is_delivered_once():
 def test_repair_packets_carry_rfc_symbols_of_the_rfc6363_framing():
     # Outside check: the repair payloads equal what galois computes for RFC 5510 §8.2
     # (GM = V_k^-1 · V over GF(2^8) on 0x11D, alpha = 2, §8.1) applied to the source symbols
-    # framed as RFC 6363 §4 / RFC 6865 §4 say, with our flow id widened to 3 bytes (wire version 2):
-    # flow id (3: slot ‖ generation) ‖ length (2, big-endian) ‖ data ‖ zeros.
+    # framed as RFC 6363 §4 / RFC 6865 §4 say, with our flow id widened to 3 bytes and our flow
+    # sequence number after the length (wire version 3):
+    # flow id (3: slot ‖ generation) ‖ length (2, big-endian) ‖ sequence (2) ‖ data ‖ zeros.
     import galois
     import numpy as np
 
@@ -367,10 +368,10 @@ def test_repair_packets_carry_rfc_symbols_of_the_rfc6363_framing():
     for flow, data in flows_and_data:
         link += enc.send(data, flow, now=0.0)
     repairs = [wire.parse(p, max_datagram=1400) for p in link[k:]]
-    length = 5 + max(len(d) for _, d in flows_and_data)
+    length = 7 + max(len(d) for _, d in flows_and_data)
     symbols = np.zeros((k, length), dtype=np.uint8)
-    for row, (flow, data) in enumerate(flows_and_data):
-        framed = flow.to_bytes(3, "big") + len(data).to_bytes(2, "big") + data
+    for row, ((flow, data), seq) in enumerate(zip(flows_and_data, (0, 0, 1), strict=True)):
+        framed = flow.to_bytes(3, "big") + len(data).to_bytes(2, "big") + seq.to_bytes(2, "big") + data
         symbols[row, : len(framed)] = np.frombuffer(framed, dtype=np.uint8)
     vandermonde = field.Vandermonde(field.primitive_element, k, k + m)
     generator = np.linalg.inv(vandermonde[:, :k]) @ vandermonde

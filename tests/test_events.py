@@ -36,6 +36,7 @@ def test_label_strings_stay_exactly_as_exported():
         "session_limit",
         "memory_limit",
         "decode_limit",
+        "order_late",
     ]
     assert [outcome.value for outcome in BlockOutcome] == ["complete", "recovered", "expired", "evicted", "superseded"]
     assert DropReason.LATE == "late" and f"{DropReason.LATE}" == "late"

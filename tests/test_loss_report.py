@@ -1,4 +1,4 @@
-"""Loss-report bodies (control packets): hex vectors (our own format, documented in DEVELOPERS.md
+"""Loss-report bodies (control packets): hex vectors (our own format, documented in docs/design.md
 "Loss reports (control packets)"), round trips and strict validation."""
 
 import math
@@ -20,7 +20,7 @@ from fecproxy.protocol.loss_report import (
     parse_report,
 )
 
-# Our own format; DEVELOPERS.md lists the same bytes.  Loss 0.012 → round(0.012 × 65536) = 786 =
+# Our own format; docs/design.md lists the same bytes.  Loss 0.012 → round(0.012 × 65536) = 786 =
 # 0x0312; burst 1.5 → 1.5 × 256 = 384 = 0x0180.
 FULL_REPORT = LossReport(
     epoch=0x01020304,

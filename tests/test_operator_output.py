@@ -134,7 +134,9 @@ def _help(capsys, *argv: str) -> str:
     return capsys.readouterr().out
 
 
-@pytest.mark.parametrize("argv", [[], *([name] for name in cli.COMMANDS), ["bench", "codec"], ["bench", "pipeline"]])
+@pytest.mark.parametrize(
+    "argv", [[], *([name] for name in cli.COMMANDS), ["bench", "codec"], ["bench", "pipeline"], ["bench", "auth"]]
+)
 def test_help_speaks_to_users_not_to_the_source_tree(capsys, argv):
     text = _help(capsys, *argv)
     assert not re.search(r"fecproxy\.[a-z]|\.py\b|:mod:|\bmodule\b", text), text

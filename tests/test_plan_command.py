@@ -207,7 +207,7 @@ def metrics_url(request):
     page = getattr(request, "param", CANNED_PAGE)
 
     class Handler(http.server.BaseHTTPRequestHandler):
-        def do_GET(self):  # noqa: N802 (http.server naming)
+        def do_GET(self):  # http.server calls the handler by this name
             body = page.encode()
             self.send_response(200 if self.path == "/metrics" else 404)
             self.send_header("Content-Type", "text/plain; version=0.0.4")
@@ -247,6 +247,27 @@ def test_from_metrics(capsys, metrics_url):
     assert data["channel"]["average_loss"] == pytest.approx(0.04)
     assert data["channel"]["mean_burst"] == pytest.approx(2.5)
     assert data["residual_loss"] == evaluate(GilbertElliott.from_loss_burst(0.04, 2.5), 16, 4).residual_loss
+
+
+@pytest.mark.parametrize("form", ["host:port", "http://host:port", "http://host:port/metrics"])
+def test_from_metrics_takes_an_address_as_watch_does(capsys, metrics_url, form):
+    """``host:port`` (as in metrics.listen and ``fecproxy watch``) or a URL, with or without path."""
+    address = metrics_url.removeprefix("http://").removesuffix("/metrics")
+    given = {"host:port": address, "http://host:port": f"http://{address}", "http://host:port/metrics": metrics_url}
+    code, out, err = run_plan(
+        capsys,
+        "--from-metrics",
+        given[form],
+        "--metrics-select",
+        "direction=forward",
+        "--k",
+        "16",
+        "--m",
+        "4",
+        "--json",
+    )
+    assert code == 0, err
+    assert json.loads(out)["channel"]["average_loss"] == pytest.approx(0.04)
 
 
 def test_from_metrics_needs_a_selector_when_ambiguous(capsys, metrics_url):

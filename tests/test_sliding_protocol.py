@@ -37,20 +37,21 @@ def feed(dec, packets, now=0.0):
 
 def test_repair_header_carries_the_rfc_8681_repair_payload_id():
     # RFC 8681 §4.1.3: repair key (16 bits), DT (4 bits), NSS (12 bits), FSS_ESI (32 bits).
-    packet = wire.encode_sliding_repair(0xABCDEF01, 0x89ABCDEF, 0xBEEF, 9, 0x123, b"\x00" * 6)
-    assert len(packet) == wire.SLIDING_REPAIR_HEADER_BYTES + 6 == 20
+    packet = wire.encode_sliding_repair(0xABCDEF01, 0x89ABCDEF, 0xBEEF, 9, 0x123, b"\x00" * 8)
+    assert len(packet) == wire.SLIDING_REPAIR_HEADER_BYTES + 8 == 22
     assert packet[6:10] == bytes.fromhex("89abcdef")  # FSS_ESI in the payload-id word
     assert packet[10:12] == bytes.fromhex("beef")  # repair key
     assert packet[12:14] == bytes([0x91, 0x23])  # DT ‖ NSS
     pkt = wire.parse(packet, max_datagram=100, sliding=True)
-    assert pkt == wire.SlidingRepairPacket(0xABCDEF01, 0x89ABCDEF, 0xBEEF, 9, 0x123, b"\x00" * 6)
+    assert pkt == wire.SlidingRepairPacket(0xABCDEF01, 0x89ABCDEF, 0xBEEF, 9, 0x123, b"\x00" * 8)
 
 
 def test_source_header_carries_a_32_bit_esi():
     # RFC 8681 §4.1.2: the source FEC payload ID is a 32-bit ESI.
-    packet = wire.encode_sliding_source(7, 0xFFFFFFFF, 0x0102AA, b"hello")
+    packet = wire.encode_sliding_source(7, 0xFFFFFFFF, 0x0102AA, b"hello", seq=0xBEEF)
+    assert packet[14:16] == bytes.fromhex("beef")  # the flow sequence number, as in block source packets
     pkt = wire.parse(packet, max_datagram=100, sliding=True)
-    assert pkt == wire.SlidingSourcePacket(7, 0xFFFFFFFF, 0x0102AA, b"hello")
+    assert pkt == wire.SlidingSourcePacket(7, 0xFFFFFFFF, 0x0102AA, b"hello", 0xBEEF)
 
 
 def test_block_receivers_refuse_sliding_packets_as_unsupported():
@@ -65,8 +66,8 @@ def test_block_receivers_refuse_sliding_packets_as_unsupported():
         (wire.encode_sliding_repair(1, 0, 1, 15, 1, b"\x00" * 4), DropReason.MALFORMED),  # symbol < prefix
         (wire.pack_sliding_repair(1, 0, 1, 15 << 12) + b"\x00" * 5, DropReason.MALFORMED),  # NSS 0
         (wire.encode_sliding_source(1, 0, 1, b"x" * 101), DropReason.OVERSIZE),
-        (wire.encode_sliding_repair(1, 0, 1, 15, 1, b"\x00" * 107), DropReason.OVERSIZE),
-        (wire.pack_sliding_source(1, 0, 5) + b"x", DropReason.MALFORMED),  # reserved bits
+        (wire.encode_sliding_repair(1, 0, 1, 15, 1, b"\x00" * 108), DropReason.OVERSIZE),
+        (wire.pack_sliding_source(1, 0, 5, 0) + b"x", DropReason.MALFORMED),  # reserved bits
         (bytes([wire.SLIDING_SOURCE_TYPE_BYTE, 1]) + bytes(12), DropReason.MALFORMED),  # END flag
     ],
 )
@@ -90,7 +91,7 @@ def test_one_repair_every_interval_over_the_window():
     assert kinds.count(wire.SLIDING_SOURCE_TYPE_BYTE) == 9 and len(repairs) == 3
     assert [(r.first_esi, r.nss) for r in repairs] == [(0, 3), (0, 6), (3, 6)]  # window ≤ 6, slides
     # the repair symbol is the RFC 8681 combination of the window's ADUIs
-    adui = [wire.pack_symbol_prefix(i % 2, i + 1) + bytes([i]) * (i + 1) for i in range(9)]
+    adui = [wire.pack_symbol_prefix(i % 2, i + 1, i // 2) + bytes([i]) * (i + 1) for i in range(9)]  # 2 flows
     last = repairs[-1]
     assert last.symbol == sliding.encode_repair(adui[3:9], last.repair_key, last.dt)
 

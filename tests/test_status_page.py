@@ -96,7 +96,7 @@ def _call(app, path: str, method: str = "GET"):
     return captured["status"], captured["headers"], body
 
 
-def _exposition(registry) -> dict[str, float]:
+def _exposition(registry) -> dict[str, float | None]:
     """Samples of the registry's /metrics text, keyed the way status.json keys them."""
     from prometheus_client.parser import text_string_to_metric_families
 

@@ -67,6 +67,32 @@ def test_totals_frame_shows_every_dashboard_figure():
     assert "loss 5.000 %, mean burst 1.50 packets" in text
 
 
+#: An in-order receiver's delivery figures (invented): 100 datagrams, 10 waited, 2 gaps skipped.
+IN_ORDER = """\
+# TYPE fecproxy_delivery_wait_seconds histogram
+fecproxy_delivery_wait_seconds_bucket{le="0.0"} 90.0
+fecproxy_delivery_wait_seconds_bucket{le="0.01"} 95.0
+fecproxy_delivery_wait_seconds_bucket{le="0.1"} 100.0
+fecproxy_delivery_wait_seconds_bucket{le="+Inf"} 100.0
+fecproxy_delivery_wait_seconds_count 100.0
+fecproxy_delivery_wait_seconds_sum 0.3
+# TYPE fecproxy_delivery_held_total counter
+fecproxy_delivery_held_total 10.0
+# TYPE fecproxy_delivery_gaps_skipped_total counter
+fecproxy_delivery_gaps_skipped_total{reason="max_wait"} 2.0
+fecproxy_delivery_gaps_skipped_total{reason="given_up"} 0.0
+"""
+
+
+def test_in_order_wait_is_shown_only_for_a_daemon_that_delivers_in_order():
+    assert "in-order wait                — (delivering as available" in render(
+        [("u", figures(parse_metrics(SNAPSHOT)))]
+    )
+    text = render([("u", figures(parse_metrics(SNAPSHOT + IN_ORDER)))])
+    # 90 of 100 waited 0: p50 is 0; p99 at rank 99 lies 4/5 of the way through (0.01, 0.1].
+    assert re.search(r"in-order wait\s+p50 0\.0 ms .* p99 82\.0 ms\s+held 10 total, gaps skipped 2 total", text)
+
+
 def test_rates_between_two_reads_and_a_down_endpoint():
     before = parse_metrics(SNAPSHOT)
     later = parse_metrics(
@@ -159,3 +185,69 @@ def test_once_with_every_endpoint_down_exits_1():
     )
     assert result.returncode == 1
     assert "DOWN: " in result.stdout
+
+
+IMPAIR_PAGE = """\
+# TYPE fecproxy_impair_datagrams_sent_total counter
+fecproxy_impair_datagrams_sent_total{direction="forward"} 10.0
+"""
+
+
+def test_an_endpoint_that_is_not_a_daemon_says_what_it_is():
+    from fecproxy.commands.watch import not_a_daemon
+
+    impair = not_a_daemon(parse_metrics(IMPAIR_PAGE))
+    assert impair is not None and "fecproxy impair's endpoint" in impair.text
+    other = not_a_daemon(parse_metrics("# TYPE node_load1 gauge\nnode_load1 0.5\n"))
+    assert other is not None and "no fecproxy_info" in other.text
+    assert not_a_daemon(parse_metrics(SNAPSHOT)) is None
+    frame = render([("http://127.0.0.1:1/metrics", impair)])
+    assert "NOT A DAEMON: this is fecproxy impair's endpoint" in frame and "link loss" not in frame
+
+
+def test_whole_process_watch_pointed_at_impair_says_so_and_exits_1():
+    from support.processes import Child, fecproxy
+
+    far = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    far.bind(("127.0.0.1", 0))
+    relay = Child(
+        fecproxy(
+            "impair", "--listen", "127.0.0.1:0", "--to", f"127.0.0.1:{far.getsockname()[1]}",
+            "--metrics", "127.0.0.1:0", "--seconds", "30",
+        )
+    )  # fmt: skip
+    try:
+        url = relay.wait_for(r"^metrics: (\S+)").group(1)
+        result = subprocess.run(
+            [sys.executable, "-m", "fecproxy", "watch", url, "--once"],
+            capture_output=True,
+            text=True,
+            timeout=60,
+            stdin=subprocess.DEVNULL,
+        )
+    finally:
+        relay.stop()
+        far.close()
+    assert result.returncode == 1
+    assert "NOT A DAEMON: this is fecproxy impair's endpoint" in result.stdout
+
+
+def test_event_lines_and_the_status_url():
+    from fecproxy.commands.watch import event_line, status_url
+
+    event = {"ts": "2026-12-03T18:46:52.120Z", "level": "warning", "event": "peer_silent", "fields": {"quiet_s": 5}}
+    assert event_line(event) == "18:46:52 warning peer_silent quiet_s=5"
+    assert status_url("http://127.0.0.1:11465/metrics", 7) == "http://127.0.0.1:11465/status.json?events_since=7"
+
+
+def test_whole_process_watch_events_shows_a_running_daemons_history(pairs):
+    pair = pairs()
+    result = subprocess.run(
+        [sys.executable, "-m", "fecproxy", "watch", f"127.0.0.1:{pair.receiver.metrics_port}", "--once", "--events"],
+        capture_output=True,
+        text=True,
+        timeout=60,
+        stdin=subprocess.DEVNULL,
+    )
+    assert result.returncode == 0, result.stderr
+    assert re.search(r"^    \d\d:\d\d:\d\d info    started version=", result.stdout, flags=re.MULTILINE), result.stdout

@@ -32,6 +32,10 @@ TARGET_RESIDUAL = 1e-3
 #: Slack on top of flush + delay spread in each side's decoder.hold_ms, for scheduling delays
 #: on a busy gateway (common practice, no source).
 HOLD_MARGIN_MS = 100
+#: Slack on top of flush + delay spread in delivery.max_wait_ms for an in-order receiver: a gap is
+#: rebuilt once its block's repair arrives, and 20 ms covers the timers of a busy gateway without
+#: holding a picture much longer (common practice, no source).
+ORDER_MARGIN_MS = 20
 
 
 @dataclass(frozen=True)
@@ -52,6 +56,7 @@ class Profile:
     reply_code: tuple[int, int, int] = (4, 2, 50)  # receiver's k, m, flush_ms for the replies
     flows_max: int = 64
     protect_s: int = 2
+    in_order: bool = False  # the receiver delivers each flow in order (streams without their own sequence)
 
 
 PROFILES = {
@@ -88,6 +93,7 @@ PROFILES = {
             delay_spread_ms=5,
             reply_code=(4, 2, 20),
             flows_max=64,
+            in_order=True,  # raw MPEG-TS takes a late datagram as a second fault (README, "Delivery order")
         ),
         Profile(
             name="geo-satellite",
@@ -166,6 +172,15 @@ def render_pair(profile: Profile) -> dict[str, str]:
     code = choose_code(profile)
     reply_k, reply_m, reply_flush = profile.reply_code
     receiver_hold = profile.latency_ms + profile.delay_spread_ms + HOLD_MARGIN_MS
+    max_wait = profile.latency_ms + profile.delay_spread_ms + ORDER_MARGIN_MS
+    delivery = (
+        "delivery:\n"
+        + '  order: in_order              # each flow in the sender\'s order (README, "Delivery order")\n'
+        + f"  max_wait_ms: {max_wait}              # flush {profile.latency_ms} ms + delay spread "
+        f"{profile.delay_spread_ms} ms + {ORDER_MARGIN_MS} ms; then a gap is skipped\n\n"
+        if profile.in_order
+        else ""
+    )
     sender_hold = reply_flush + profile.delay_spread_ms + HOLD_MARGIN_MS
     short = f" (blocks close short at this rate: k'={code.k_effective} m'={code.m_effective})" if code.short else ""
     head = (
@@ -222,6 +237,7 @@ def render_pair(profile: Profile) -> dict[str, str]:
         + "decoder:\n"
         + f"  hold_ms: {receiver_hold}               # the sender's flush {profile.latency_ms} ms + delay spread "
         f"{profile.delay_spread_ms} ms + {HOLD_MARGIN_MS} ms\n\n"
+        + delivery
         + f"flows:\n  max: {profile.flows_max}                      # at least the sender's\n"
         f"  protect_s: {profile.protect_s}\n\n" + auth + "\nmetrics:\n" + metrics_note + "  listen: 127.0.0.1:11465\n"
     )

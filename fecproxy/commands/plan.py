@@ -14,6 +14,7 @@ import sys
 import urllib.error
 import urllib.request
 
+from fecproxy.config.addresses import metrics_url
 from fecproxy.linkmodel import sliding_sim
 from fecproxy.linkmodel.airtime import DEFAULT_QUEUE_MS, BudgetError, LinkBudget, parse_rate
 from fecproxy.linkmodel.loss_models import (
@@ -22,6 +23,7 @@ from fecproxy.linkmodel.loss_models import (
     channel_from_estimate,
     channel_from_figures,
 )
+from fecproxy.linkmodel.order_wait import in_order_wait
 from fecproxy.linkmodel.planner import (
     DEFAULT_K_VALUES,
     DEFAULT_LATENCY_BUDGET_S,
@@ -132,7 +134,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     link.add_argument(
         "--from-metrics",
         metavar="URL",
-        help=f"read {LINK_LOSS_GAUGE} and {LINK_BURST_GAUGE} from a receiver's Prometheus page at URL",
+        help=f"read {LINK_LOSS_GAUGE} and {LINK_BURST_GAUGE} from a receiver's metrics at URL "
+        "(host:port as in its metrics.listen, or http://host:port/metrics)",
     )
     link.add_argument(
         "--metrics-select",
@@ -410,8 +413,9 @@ def read_metrics(
         if not sep or not key:
             raise MetricsError(f"--metrics-select wants LABEL=VALUE, got {item!r}")
         wanted[key.strip()] = value.strip()
+    url = metrics_url(url)  # host:port as `fecproxy watch` takes it, or a URL
     if not url.startswith(("http://", "https://")):
-        raise MetricsError(f"--from-metrics wants an http:// or https:// URL, got {url!r}")
+        raise MetricsError(f"--from-metrics wants host:port or an http:// or https:// URL, got {url!r}")
     try:
         with urllib.request.urlopen(url, timeout=timeout) as response:
             body = response.read(MAX_METRICS_PAGE_BYTES + 1)
@@ -560,6 +564,7 @@ def format_table(result: Plan, running: dict | None = None) -> str:
             f"recommended (*): k={best.k} m={best.m} interleave D={best.depth}{sent} — overhead {best.overhead:.3f}, "
             f"residual loss {best.residual_loss:.3g}, block span {best.span * 1000:.1f} ms"
         )
+        lines.append(_order_wait_line(req.channel, best.k_effective, req.rate, best.span, best.depth))
         keys = ", ".join(f"{key}: {value}" for key, value in best.config_keys().items())
         lines.append(f"sender config: {keys}, fec.flush_ms: {req.flush_time * 1000:g}")
         # The same aim, for a sender that follows the link itself (fec.adapt, from loss reports).
@@ -611,6 +616,16 @@ def format_table(result: Plan, running: dict | None = None) -> str:
     return "\n".join(lines)
 
 
+def _order_wait_line(channel: GilbertElliott, k_effective: int, rate: float, span: float, depth: int) -> str:
+    """What delivery.order: in_order would add on the receiving side (fecproxy.linkmodel.order_wait)."""
+    wait = in_order_wait(channel, k_effective, rate, span, depth)
+    return (
+        f"in-order delivery (delivery.order: in_order) adds: {wait.waiting_share:.1%} of datagrams wait behind a gap, "
+        f"mean {wait.mean_seconds * 1000:.2f} ms, at most {wait.worst_seconds * 1000:.1f} ms while the gap is rebuilt "
+        f"(set delivery.max_wait_ms above that plus the delay spread of the link)"
+    )
+
+
 def _evaluate_one(args: argparse.Namespace, channel: GilbertElliott, depths: tuple[int, ...]) -> int:
     if args.k is None or args.m is None:
         raise PlanError("evaluation mode needs both --k and --m")
@@ -639,6 +654,11 @@ def _evaluate_one(args: argparse.Namespace, channel: GilbertElliott, depths: tup
         "block_failure": figures.block_failure,
         "residual_loss": figures.residual_loss,
         "block_span_ms": None if flush is None else block_span(args.k, k_eff, args.rate, flush, depth) * 1000.0,
+        "in_order_wait": None
+        if flush is None
+        else in_order_wait(
+            channel, k_eff, args.rate, block_span(args.k, k_eff, args.rate, flush, depth), depth
+        ).as_dict(),
         "channel": _channel_dict(channel),
     }
     budget = budget_from_args(args)
@@ -670,6 +690,8 @@ def _evaluate_one(args: argparse.Namespace, channel: GilbertElliott, depths: tup
         print(f"residual datagram loss:    {figures.residual_loss:.6g}")
         if out["block_span_ms"] is not None:
             print(f"block span:                {out['block_span_ms']:.1f} ms")
+            span = out["block_span_ms"] / 1000.0
+            print(_order_wait_line(channel, k_eff, args.rate, span, depth))
         if budget is not None:
             used = out["source_air"] + out["repair_air"]
             print(

@@ -12,14 +12,18 @@ Rendering is a pure function of metrics text, so it is tested without a network.
 from __future__ import annotations
 
 import argparse
+import json
 import math
 import sys
 import time
 import urllib.error
 import urllib.request
+from collections import deque
 from dataclasses import dataclass, field
 
 from prometheus_client.parser import text_string_to_metric_families
+
+from fecproxy.config.addresses import metrics_url
 
 #: A read slower than this counts as a failing endpoint: a healthy daemon answers in
 #: milliseconds, and two endpoints must fit roughly within a few refresh periods.
@@ -30,6 +34,9 @@ DEFAULT_INTERVAL_S = 1.0
 #: Bound on frames when a count is given (a runaway script loop should still end).
 MAX_COUNT = 1_000_000
 QUANTILES = (0.5, 0.9, 0.99)
+#: Events shown under each endpoint on a terminal with ``--events``: the last few fit on a screen
+#: beside the figures; the status page and /status.json hold the daemon's last 200.
+EVENTS_SHOWN = 10
 CLEAR_SCREEN = "\x1b[H\x1b[2J"
 
 Samples = dict[tuple[str, tuple[tuple[str, str], ...]], float]
@@ -104,6 +111,12 @@ class Figures:
     estimate: tuple[float, float] | None = None
     air: str | None = None  # the link's use of its air rate (link.rate), None when not paced
     far_end: str = "—"  # what the peer reports on the direction this daemon sends, and its silence
+    # In-order delivery (delivery.order: in_order): datagrams handed on through it, the added
+    # wait's quantiles, datagrams that waited behind a gap and gaps skipped.
+    ordered: float = 0.0
+    wait_quantiles: dict[float, float | None] = field(default_factory=dict)
+    held: float = 0.0
+    skipped: float = 0.0
 
 
 def figures(now: Samples, before: Samples | None = None, seconds: float | None = None) -> Figures:
@@ -132,6 +145,18 @@ def figures(now: Samples, before: Samples | None = None, seconds: float | None =
             le = dict(labels)["le"]
             buckets.append((float(le), _delta(now, before, name, le=le)))
     out.delay_quantiles = {q: histogram_quantile(q, buckets) for q in QUANTILES}
+    waits = []
+    for (name, labels), _ in now.items():
+        if name == "fecproxy_delivery_wait_seconds_bucket":
+            le = dict(labels)["le"]
+            waits.append((float(le), _delta(now, before, name, le=le)))
+    out.wait_quantiles = {q: histogram_quantile(q, waits) for q in QUANTILES}
+    if ("fecproxy_delivery_wait_seconds_count", ()) in now:
+        out.ordered = _delta(now, before, "fecproxy_delivery_wait_seconds_count")
+        out.held = _delta(now, before, "fecproxy_delivery_held_total")
+    for (name, labels), _ in now.items():
+        if name == "fecproxy_delivery_gaps_skipped_total":
+            out.skipped += _delta(now, before, name, reason=dict(labels).get("reason", "?"))
     for (name, labels), _ in now.items():
         if name == "fecproxy_packets_dropped_total":
             reason = dict(labels).get("reason", "?")
@@ -206,10 +231,33 @@ def _ms(value: float | None) -> str:
     return "—" if value is None else f"{1000 * value:.1f} ms"
 
 
-def render_endpoint(url: str, view: Figures | str) -> list[str]:
-    """Lines for one endpoint; ``view`` is its figures, or the error text when it is down."""
+@dataclass
+class NotADaemon:
+    """An endpoint that answers but is no fecproxy daemon's: what it seems to be instead."""
+
+    text: str
+
+
+def not_a_daemon(samples: Samples) -> NotADaemon | None:
+    """Why ``samples`` cannot be shown as a daemon's (no ``fecproxy_info``), or None if they can."""
+    names = {name for name, _ in samples}
+    if "fecproxy_info" in names:
+        return None
+    if any(name.startswith("fecproxy_impair_") for name in names):
+        return NotADaemon(
+            "this is fecproxy impair's endpoint (the emulated link's figures), not a daemon's: "
+            "point watch at the sender's and the receiver's metrics.listen"
+        )
+    return NotADaemon("no fecproxy daemon metrics here (no fecproxy_info): is this a daemon's metrics.listen?")
+
+
+def render_endpoint(url: str, view: Figures | NotADaemon | str, events: list[str] | None = None) -> list[str]:
+    """Lines for one endpoint; ``view`` is its figures, what it is instead of a daemon, or the
+    error text when it is down; ``events`` the event lines to show under it (``--events``)."""
     if isinstance(view, str):
         return [f"{url}", f"  DOWN: {view}"]
+    if isinstance(view, NotADaemon):
+        return [f"{url}", f"  NOT A DAEMON: {view.text}"]
     f = view
     span = f"last {f.seconds:.1f} s" if f.seconds else "since start"
     lines = [
@@ -223,6 +271,13 @@ def render_endpoint(url: str, view: Figures | str) -> list[str]:
         + "   ".join(f"p{round(100 * q)} {_ms(value)}" for q, value in f.delay_quantiles.items()),
         "  drops                        "
         + (", ".join(f"{reason} {_per(count, f.seconds)}" for reason, count in sorted(f.drops.items())) or "none"),
+        "  in-order wait                "
+        + (
+            "— (delivering as available, or nothing delivered yet)"
+            if not f.ordered
+            else "   ".join(f"p{round(100 * q)} {_ms(value)}" for q, value in f.wait_quantiles.items())
+            + f"   held {_per(f.held, f.seconds)}, gaps skipped {_per(f.skipped, f.seconds)}"
+        ),
         f"  flows                        {f.flows:.0f}",
         f"  far end (what we send)       {f.far_end}",
         "  online estimate              "
@@ -234,23 +289,42 @@ def render_endpoint(url: str, view: Figures | str) -> list[str]:
     ]
     if f.air is not None:
         lines.append(f"  air rate used                {f.air}")
+    if events is not None:
+        lines.append("  events                       " + ("" if events else "none"))
+        lines.extend(f"    {line}" for line in events)
     return lines
 
 
-def render(views: list[tuple[str, Figures | str]], clock: str = "") -> str:
-    """One whole frame for every endpoint, in the order given."""
+def render(
+    views: list[tuple[str, Figures | NotADaemon | str]], clock: str = "", events: dict[str, list[str]] | None = None
+) -> str:
+    """One whole frame for every endpoint, in the order given (with their ``events`` if given)."""
     lines = [f"fecproxy watch  {clock}".rstrip()]
     for url, view in views:
         lines.append("")
-        lines.extend(render_endpoint(url, view))
+        lines.extend(render_endpoint(url, view, None if events is None else events.get(url, [])))
     return "\n".join(lines) + "\n"
 
 
-def metrics_url(text: str) -> str:
-    """Accept ``host:port``, ``http://host:port`` or a full URL; default path /metrics."""
-    url = text if "://" in text else f"http://{text}"
+def event_line(event: dict) -> str:
+    """One event of a daemon's history as a line: time, level, name, fields."""
+    fields = " ".join(f"{key}={value}" for key, value in (event.get("fields") or {}).items())
+    clock = str(event.get("ts", ""))[11:19]
+    return f"{clock} {event.get('level', '?'):<7} {event.get('event', '?')} {fields}".rstrip()
+
+
+def status_url(url: str, since: int) -> str:
+    """The daemon's /status.json asking for the events after the ``since``-th."""
     scheme, _, rest = url.partition("://")
-    return url if "/" in rest else f"{url}/metrics"
+    host = rest.split("/", 1)[0]
+    return f"{scheme}://{host}/status.json?events_since={since}"
+
+
+def fetch_events(url: str, since: int, timeout: float = FETCH_TIMEOUT_S) -> tuple[list[dict], int]:
+    """The daemon's events after the ``since``-th, and the number of the last one."""
+    with urllib.request.urlopen(status_url(url, since), timeout=timeout) as response:
+        history = json.load(response).get("history") or {}
+    return list(history.get("events") or []), int(history.get("events_recorded", since))
 
 
 def fetch(url: str, timeout: float = FETCH_TIMEOUT_S) -> Samples:
@@ -275,6 +349,28 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--interval", type=float, default=DEFAULT_INTERVAL_S, help="seconds between frames")
     parser.add_argument("--count", type=int, default=None, help="stop after this many frames (default: until Ctrl-C)")
     parser.add_argument("--once", action="store_true", help="print one frame of totals since start and exit")
+    parser.add_argument(
+        "--events",
+        action="store_true",
+        help="also show each daemon's events from its history (auth failures, reloads, peer and session changes, "
+        "adaptations, silences): the last few on a terminal, each new one once otherwise",
+    )
+
+
+def _new_events(url: str, seen: dict[str, int], kept: deque[str], *, every_frame: bool) -> list[str]:
+    """The event lines to show for ``url`` this frame: on a terminal (redrawn each frame) the last
+    few, otherwise each event once, when it is new.  A failed read shows as one line."""
+    since = seen.get(url, 0)
+    try:
+        events, last = fetch_events(url, since)
+    except Exception as error:  # the figures are shown anyway; an old daemon has no history
+        return [f"(events unavailable: {_error_text(error)})"]
+    if last < since:  # the daemon restarted: its numbering starts afresh
+        events, last = fetch_events(url, 0)
+    seen[url] = last
+    lines = [event_line(event) for event in events]
+    kept.extend(lines)
+    return list(kept) if every_frame else lines
 
 
 def main(args: argparse.Namespace) -> int:
@@ -290,6 +386,8 @@ def main(args: argparse.Namespace) -> int:
         return 2
     urls = [metrics_url(url) for url in args.urls]
     previous: dict[str, tuple[Samples, float]] = {}
+    seen_events: dict[str, int] = {}  # per endpoint: the number of the last event read
+    kept_events: dict[str, deque[str]] = {url: deque(maxlen=EVENTS_SHOWN) for url in urls}
     clear = sys.stdout.isatty()
     frame = 0
     any_up = False
@@ -297,7 +395,8 @@ def main(args: argparse.Namespace) -> int:
         while count is None or frame < count:
             if frame:
                 time.sleep(args.interval)
-            views: list[tuple[str, Figures | str]] = []
+            views: list[tuple[str, Figures | NotADaemon | str]] = []
+            shown_events: dict[str, list[str]] | None = {} if args.events else None
             any_up = False
             for url in urls:
                 try:
@@ -305,11 +404,17 @@ def main(args: argparse.Namespace) -> int:
                 except Exception as error:  # any failure to read or parse is shown, not raised
                     views.append((url, _error_text(error)))
                     continue
+                other = not_a_daemon(samples)
+                if other is not None:
+                    views.append((url, other))
+                    continue
                 any_up = True
                 before = previous.get(url)
                 views.append((url, figures(samples, *((before[0], at - before[1]) if before else (None, None)))))
                 previous[url] = (samples, at)
-            text = render(views, time.strftime("%Y-%m-%d %H:%M:%S"))
+                if shown_events is not None:
+                    shown_events[url] = _new_events(url, seen_events, kept_events[url], every_frame=clear)
+            text = render(views, time.strftime("%Y-%m-%d %H:%M:%S"), shown_events)
             sys.stdout.write((CLEAR_SCREEN if clear else ("\n" if frame else "")) + text)
             sys.stdout.flush()
             frame += 1

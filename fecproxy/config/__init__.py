@@ -7,7 +7,7 @@ Modules: :mod:`~fecproxy.config.schema` (sections, defaults, limits, the checker
 
 from fecproxy.config.addresses import Address, AddressError, format_sockaddr, parse_address
 from fecproxy.config.loading import MAX_CONFIG_FILE_BYTES, load_config, load_keys, parse_config_text, read_key_file
-from fecproxy.config.schema import *  # noqa: F401,F403 - the schema's names are this package's API
+from fecproxy.config.schema import *  # noqa: F403 - the schema's names are this package's API
 from fecproxy.config.schema import Config, ConfigError, ConfigUnreadable, parse_config
 
 __all__ = [

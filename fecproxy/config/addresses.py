@@ -121,3 +121,12 @@ def format_sockaddr(address: tuple[Any, ...] | None) -> str:
         return "-"
     host, port = address[0], address[1]
     return f"[{host}]:{port}" if ":" in host else f"{host}:{port}"
+
+
+def metrics_url(text: str) -> str:
+    """A metrics endpoint as an operator types it: ``host:port`` (as in ``metrics.listen``),
+    ``http://host:port`` or a full URL; the default path is /metrics.  ``fecproxy watch`` and
+    ``fecproxy plan --from-metrics`` both take it so."""
+    url = text if "://" in text else f"http://{text}"
+    scheme, _, rest = url.partition("://")
+    return url if "/" in rest else f"{url}/metrics"

@@ -11,9 +11,13 @@ the sender's ``decoder`` faces the receiver's ``fec`` exactly as the other way r
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 from fecproxy.config.schema import Config, Role
+from fecproxy.linkmodel.airtime import LinkBudget
+from fecproxy.protocol.auth import TRAILER_BYTES
+from fecproxy.protocol.pacer import IPV4_UDP_HEADER_BYTES, IPV6_UDP_HEADER_BYTES
 
 #: What the receiver's decoder counts per held packet and per block (README "Bounds": payload +
 #: 160 bytes per packet + 1 KiB per block); used to tell whether one round of the peer's blocks
@@ -79,6 +83,7 @@ class _Checker:
             self.blocks_fit(encoder, decoder)
             self.reports_for_adaptation(encoder, decoder)
         self.flow_tables()
+        self.link_budgets()
         self.addresses()
         return self.found
 
@@ -135,20 +140,42 @@ class _Checker:
             )
 
     def hold_covers_flush(self, encoder: Side, decoder: Side) -> None:
-        """A block's repair leaves the encoder at most flush_ms after its first datagram; its
-        packets then reach the decoder up to the stated delay spread apart.  The decoder must
-        hold an incomplete block at least that long, or it expires blocks whose repair is still
-        on the way."""
+        """A block's repair is queued at most flush_ms after its first datagram; with pacing
+        (``link.rate``) its m repair packets then take their air time to leave; its packets then
+        reach the decoder up to the stated delay spread apart.  The decoder must hold an
+        incomplete block at least that long, or it expires blocks whose repair is still on the way."""
         flush = encoder.config.fec.flush_ms
         hold = decoder.config.decoder.hold_ms
-        needed = flush + self.spread
+        repair_air = _repair_air_ms(encoder.config)
+        needed = flush + repair_air + self.spread
         if hold < needed:
+            air = f" + the repair's air time {repair_air} ms at its link.rate" if repair_air else ""
             spread = f" + the stated delay spread {self.spread} ms" if self.spread else ""
             self.error(
                 decoder,
                 "decoder.hold_ms",
-                f"{hold} is below {encoder.source}'s fec.flush_ms {flush}{spread} = {needed} ms; expected hold_ms ≥ "
-                f"{needed} (a block would expire before its repair packets arrive)",
+                f"{hold} is below {encoder.source}'s fec.flush_ms {flush}{air}{spread} = {needed} ms; expected "
+                f"hold_ms ≥ {needed} (a block would expire before its repair packets arrive)",
+            )
+
+    def link_budgets(self) -> None:
+        """The two ends of one path: the same declared MTU, and pacing on both or neither (an
+        unpaced side floods the modem buffer the paced side protects)."""
+        s, r = self.sender, self.receiver
+        s_link, r_link = s.config.link, r.config.link
+        if s_link.mtu != r_link.mtu:
+            self.warn(
+                r,
+                "link.mtu",
+                f"{r_link.mtu}, but {s.source} declares {s_link.mtu}; expected the same path MTU on both sides",
+            )
+        if s_link.paced != r_link.paced:
+            paced, bare = (s, r) if s_link.paced else (r, s)
+            self.warn(
+                bare,
+                "link.rate",
+                f"not set, but {paced.source} paces its link at {paced.config.link.rate:g} bit/s; on a shared "
+                f"radio both sides should pace (this side's bursts would overflow the modem's buffer)",
             )
 
     def blocks_fit(self, encoder: Side, decoder: Side) -> None:
@@ -222,6 +249,24 @@ class _Checker:
                 f"{back}, but {s.source} binds its link to port {s_bind.port}; expected the same port "
                 f"(unless a NAT or a relay such as `fecproxy impair` between them maps one to the other)",
             )
+
+
+def _repair_air_ms(config: Config) -> int:
+    """Air time, in whole ms rounded up, of one full block's repair packets at ``link.rate``
+    (0 without pacing): what the last repair waits after its block closes on an idle link."""
+    link, fec = config.link, config.fec
+    if link.rate is None:
+        return 0
+    ipv6 = any(a is not None and a.is_ipv6 for a in (link.bind, link.peer))
+    budget = LinkBudget(
+        rate_bps=link.rate,
+        datagram_bytes=fec.max_datagram_bytes,
+        trailer_bytes=TRAILER_BYTES if config.auth.enabled else 0,
+        header_bytes=IPV6_UDP_HEADER_BYTES if ipv6 else IPV4_UDP_HEADER_BYTES,
+        mtu=link.mtu,
+    )
+    repair = fec.repair if fec.adapt is None else max(fec.repair, fec.adapt.repair_ceiling(fec.block_size))
+    return math.ceil(repair * budget.repair_wire_bytes / budget.rate_bytes * 1000)
 
 
 def check_pair(sender: Side, receiver: Side, delay_spread_ms: int = 0) -> list[Finding]:

@@ -38,6 +38,7 @@ from fecproxy.config.checkers import (
 from fecproxy.config.messages import closest, key_text, kind_of, or_list, show_value
 from fecproxy.protocol import decoder as _decoder
 from fecproxy.protocol import encoder as _encoder
+from fecproxy.protocol import ordering as _ordering
 from fecproxy.protocol import pacer as _pacer
 from fecproxy.protocol import wire
 from fecproxy.protocol.flows import FLOW_SLOTS
@@ -80,6 +81,10 @@ MAX_DATAGRAM_BYTES_LIMIT = (
 DEFAULT_HOLD_MS = round(_decoder.DEFAULT_HOLD_TIME * 1000)
 #: An hour-long hold is never useful; a minute is already generous and bounds the memory held.
 MAX_HOLD_MS = 60_000
+
+#: In-order delivery owns its bound and its reason (fecproxy.protocol.ordering.DEFAULT_MAX_WAIT).
+DEFAULT_MAX_WAIT_MS = round(_ordering.DEFAULT_MAX_WAIT * 1000)
+MAX_MAX_WAIT_MS = round(_ordering.MAX_MAX_WAIT * 1000)
 
 #: The decoder owns the open-block bound and its reason (decoder.DEFAULT_MAX_OPEN_BLOCKS).
 DEFAULT_MAX_OPEN_BLOCKS = _decoder.DEFAULT_MAX_OPEN_BLOCKS
@@ -188,6 +193,11 @@ class LogLevel(StrEnum):
     ERROR = "error"
 
 
+class DeliveryOrder(StrEnum):
+    AS_AVAILABLE = "as_available"  # each datagram leaves the moment it arrives or is rebuilt
+    IN_ORDER = "in_order"  # each flow's datagrams leave in the order the sender took them
+
+
 class LogFormat(StrEnum):
     TEXT = "text"  # key=value fields on one line
     JSON = "json"  # one JSON object per line
@@ -282,6 +292,23 @@ class DecoderSection:
 
 
 @dataclass(frozen=True)
+class DeliverySection:
+    """What this daemon hands its applications: as available (the default: no added wait) or
+    each flow in order, a datagram after a gap waiting at most max_wait_ms for it."""
+
+    order: DeliveryOrder = DeliveryOrder.AS_AVAILABLE
+    max_wait_ms: int = DEFAULT_MAX_WAIT_MS
+
+    @property
+    def in_order(self) -> bool:
+        return self.order is DeliveryOrder.IN_ORDER
+
+    @property
+    def max_wait_seconds(self) -> float:
+        return self.max_wait_ms / 1000
+
+
+@dataclass(frozen=True)
 class FlowsSection:
     max: int = DEFAULT_MAX_FLOWS
     idle_timeout_s: int = DEFAULT_FLOW_IDLE_TIMEOUT_S  # established flows
@@ -350,6 +377,7 @@ class Config:
     forward: Address | None = None  # receiver: rebuilt datagrams are delivered here
     fec: FecSection = FecSection()
     decoder: DecoderSection = DecoderSection()
+    delivery: DeliverySection = DeliverySection()
     flows: FlowsSection = FlowsSection()
     sockets: SocketsSection = SocketsSection()
     log: LogSection = LogSection()
@@ -440,6 +468,7 @@ TOP_LEVEL_KEYS = (
     "link",
     "fec",
     "decoder",
+    "delivery",
     "flows",
     "sockets",
     "log",
@@ -499,6 +528,17 @@ _SECTIONS: dict[str, tuple[type, dict[str, Callable]]] = {
             "max_memory_bytes": Integer(MIN_MEMORY_BYTES, MAX_MEMORY_BYTES_LIMIT),
             "max_rebuilds_per_s": Integer(
                 1, MAX_REBUILDS_PER_S_LIMIT, f"an integer 1..{MAX_REBUILDS_PER_S_LIMIT}, or null for no cap"
+            ),
+        },
+    ),
+    "delivery": (
+        DeliverySection,
+        {
+            "order": Choice(DeliveryOrder, "delivery order"),
+            "max_wait_ms": Integer(
+                1,
+                MAX_MAX_WAIT_MS,
+                f"an integer number of milliseconds 1..{MAX_MAX_WAIT_MS} (in order: ≤ decoder.hold_ms)",
             ),
         },
     ),
@@ -643,6 +683,7 @@ class _Parser:
         self.fill_defaults()
         self.check_role()
         self.check_fec()
+        self.check_delivery()
         self.check_addresses()
         self.check_link()
         self.check_auth()
@@ -735,6 +776,16 @@ class _Parser:
                 f"repair rate at or below the source rate), or set fec.allow_repair_above_source: true",
             )
         self.check_adapt(k, allow)
+
+    def check_delivery(self) -> None:
+        wait, hold = self.values.get("delivery.max_wait_ms"), self.values.get("decoder.hold_ms")
+        in_order = self.values.get("delivery.order") is DeliveryOrder.IN_ORDER  # the bound is unused otherwise
+        if in_order and wait is not None and hold is not None and wait > hold:
+            self.error(
+                "delivery.max_wait_ms",
+                f"{wait} is above decoder.hold_ms {hold}; expected max_wait_ms ≤ hold_ms (a gap cannot be "
+                f"rebuilt once the decoder gives up its block, so waiting longer only delays what follows)",
+            )
 
     def check_adapt(self, k: int, allow) -> None:
         adapt = self.values.get("fec.adapt")

@@ -199,7 +199,7 @@ class _Block:
         self.sbn = sbn
         self.first_seen = now
         self.k: int | None = None
-        self.sources: dict[int, tuple[int, bytes]] = {}
+        self.sources: dict[int, tuple[int, bytes, int]] = {}  # ESI -> (flow, datagram, flow sequence number)
         self.repairs: dict[int, bytes] = {}
         self.symbol_len: int | None = None
         self.max_esi = -1
@@ -279,7 +279,7 @@ class BlockDecoder:
         if size >= _LEADING_BYTES and followed is not None:
             type_byte = data[0]
             if type_byte == wire.SOURCE_TYPE_BYTE:
-                _, flags, session, payload_id, flow_word = wire.peek_source(data)
+                _, flags, session, payload_id, flow_word, seq = wire.peek_source(data)
                 if (
                     session == followed.id
                     and not flags & ~wire.FLAG_END
@@ -301,6 +301,7 @@ class BlockDecoder:
                                 esi,
                                 flow_word >> wire.FLOW_SHIFT,
                                 bytes(data[wire.SOURCE_HEADER_BYTES :]),
+                                seq,
                                 events,
                             )
                             if self.learn_peer and addr != self.peer:
@@ -319,6 +320,7 @@ class BlockDecoder:
                         flow_word >> wire.FLOW_SHIFT,
                         bool(flags),
                         bytes(data[wire.SOURCE_HEADER_BYTES :]),
+                        seq,
                         events,
                     )
                     self._try_finish(block, now, events)
@@ -495,7 +497,7 @@ class BlockDecoder:
             if isinstance(pkt, wire.RepairPacket) and pkt.sbn in sess.finished:
                 self.stats.repair_unneeded += 1  # normal: a block complete before its repair arrived
             elif isinstance(pkt, wire.SourcePacket):
-                self._outside_block(sess, pkt.sbn, pkt.esi, pkt.flow, pkt.data, events)
+                self._outside_block(sess, pkt.sbn, pkt.esi, pkt.flow, pkt.data, pkt.seq, events)
             else:
                 events.append(self._behind(sess, pkt.sbn, repair=True))
             return
@@ -505,7 +507,7 @@ class BlockDecoder:
             if pkt.previous_k and not block.told_previous:
                 block.told_previous = True
                 self._learn_previous_k(sess, pkt.sbn, pkt.previous_k, now, events)
-            self._add_source_fields(block, pkt.sbn, pkt.esi, pkt.flow, pkt.end, pkt.data, events)
+            self._add_source_fields(block, pkt.sbn, pkt.esi, pkt.flow, pkt.end, pkt.data, pkt.seq, events)
         else:
             self._add_repair(block, pkt, events)
         self._try_finish(block, now, events)
@@ -515,6 +517,12 @@ class BlockDecoder:
         """The newest source block number seen of the followed session (None before any);
         a loss report carries it."""
         return self._followed.newest if self._followed is not None else None
+
+    def oldest_open_since(self) -> float | None:
+        """When the oldest open block (any session) was first seen; None when none is open.  In-order
+        delivery reads it after a block is given up: a gap older than this can no longer be filled."""
+        firsts = [next(iter(s.open.values())).first_seen for s in self._sessions.values() if s.open]
+        return min(firsts) if firsts else None
 
     def next_deadline(self) -> float | None:
         hold = self.settings.hold_time
@@ -637,7 +645,9 @@ class BlockDecoder:
         """How far behind the newest block a never-seen block may still be opened."""
         return self.settings.max_open_blocks * FINISHED_MEMORY_FACTOR
 
-    def _outside_block(self, sess: _Session, sbn: int, esi: int, flow: int, data: bytes, events: list[Event]) -> None:
+    def _outside_block(
+        self, sess: _Session, sbn: int, esi: int, flow: int, data: bytes, seq: int, events: list[Event]
+    ) -> None:
         """A source packet whose block is finished or too far behind to open.
 
         A block that ended without all its datagrams (expired, evicted, superseded) remembers
@@ -648,7 +658,7 @@ class BlockDecoder:
         if delivered is not None and esi <= wire.MAX_ESI and not delivered >> esi & 1:
             sess.finished[sbn] = delivered | 1 << esi
             self.stats.delivered += 1
-            events.append(direct_delivery(flow, data))
+            events.append(direct_delivery(flow, data, seq))
             return
         events.append(self._behind(sess, sbn, repair=False))
 
@@ -659,7 +669,7 @@ class BlockDecoder:
         return self._drop(DropReason.STALE, f"block {sbn} is behind the window")
 
     def _add_source_fields(
-        self, block: _Block, sbn: int, esi: int, flow: int, end: bool, data: bytes, events: list[Event]
+        self, block: _Block, sbn: int, esi: int, flow: int, end: bool, data: bytes, seq: int, events: list[Event]
     ) -> None:
         """Hold and deliver one source datagram (fields given singly: the fast path has no packet)."""
         k = block.k
@@ -687,12 +697,12 @@ class BlockDecoder:
         block.bytes += cost  # _hold, inlined: once per datagram
         block.owner.bytes += cost
         self._bytes += cost
-        block.sources[esi] = (flow, data)
+        block.sources[esi] = (flow, data, seq)
         block.arrived |= 1 << esi
         if esi > block.max_esi:
             block.max_esi = esi
         self.stats.delivered += 1
-        events.append(direct_delivery(flow, data))
+        events.append(direct_delivery(flow, data, seq))
 
     def _add_repair(self, block: _Block, pkt: wire.RepairPacket, events: list[Event]) -> None:
         if pkt.esi in block.repairs:
@@ -714,7 +724,7 @@ class BlockDecoder:
                 self._drop(DropReason.INCONSISTENT, f"repair symbol of {size} bytes, block uses {block.symbol_len}")
             )
             return
-        longest = max((len(data) for _, data in block.sources.values()), default=0)
+        longest = max((len(source[1]) for source in block.sources.values()), default=0)
         if longest + wire.SYMBOL_PREFIX_BYTES > size:
             events.append(
                 self._drop(DropReason.INCONSISTENT, f"repair symbol of {size} bytes shorter than a source datagram")
@@ -775,9 +785,9 @@ class BlockDecoder:
         row = 0
         prefix = wire.SYMBOL_PREFIX_BYTES
         for esi in sorted(block.sources):
-            flow, data = block.sources[esi]
+            flow, data, seq = block.sources[esi]
             size = len(data)
-            symbols[row, :prefix] = np.frombuffer(wire.pack_symbol_prefix(flow, size), dtype=np.uint8)
+            symbols[row, :prefix] = np.frombuffer(wire.pack_symbol_prefix(flow, size, seq), dtype=np.uint8)
             symbols[row, prefix : prefix + size] = np.frombuffer(data, dtype=np.uint8)
             row += 1
         for esi in repair_indices:
@@ -791,18 +801,18 @@ class BlockDecoder:
         events: list[Event] = []
         for esi in sorted(rebuilt):
             symbol = rebuilt[esi]
-            flow, size = wire.unpack_symbol_prefix(symbol[:prefix].tobytes())
+            flow, size, seq = wire.unpack_symbol_prefix(symbol[:prefix].tobytes())
             if size + prefix > length:
                 events.append(
                     self._drop(DropReason.INCONSISTENT, f"rebuilt datagram {block.sbn}/{esi} claims {size} bytes")
                 )
                 continue
             data = symbol[prefix : prefix + size].tobytes()
-            block.sources[esi] = (flow, data)
+            block.sources[esi] = (flow, data, seq)
             block.rebuilt += 1
             self.stats.delivered += 1
             self.stats.recovered += 1
-            events.append(Delivery(flow, data, recovered=True, delay=delay))
+            events.append(Delivery(flow, data, recovered=True, delay=delay, seq=seq))
         return events
 
     def _finish(self, block: _Block, outcome: BlockOutcome) -> BlockReport:

@@ -19,7 +19,7 @@ Several blocks are open at once, one per (size class, lane):
 Each block has its own SBN (numbers are taken consecutively as blocks open), its own flush
 deadline and its own k' when closed early.  "previous k" in a source packet is the k of block
 SBN − 1 if that block has closed by the time the packet is sent, else 0 (with one open block at a
-time this is always the block before; see DEVELOPERS.md "Wire format").
+time this is always the block before; see docs/design.md "Wire format").
 
 RFC 6363 §8.2 in bytes: unless ``allow_repair_above_source``, a block's repair count is cut so
 that its repair symbols (m'·symbol length) do not exceed its source symbols' content (the
@@ -55,6 +55,7 @@ from fecproxy.coding.codec import block_code
 from fecproxy.protocol import wire
 from fecproxy.protocol.auth import Sealer
 from fecproxy.protocol.events import DropReason
+from fecproxy.protocol.ordering import MAX_SEQUENCE_FLOWS, FlowSequencer
 from fecproxy.protocol.repair_rule import DEFAULT_SHORT_BLOCK_REPAIR, SHORT_BLOCK_RULES, repair_count
 
 #: 16 datagrams per block and 4 repair packets (25 % overhead) rides out 4 losses in 20 packets;
@@ -280,6 +281,7 @@ class BlockEncoder:
         self._open: dict[int, _Block] = {}  # by key = class · MAX_INTERLEAVE + lane, blocks still fed
         self._by_sbn: dict[int, _Block] = {}  # every open block, also those a new layout no longer feeds
         self._lanes: dict[int, int] = {}  # per class: the lane of its next datagram
+        self._sequences = FlowSequencer()  # each flow's datagrams numbered in the order taken
         self._carry: tuple[int, int] | None = None  # (SBN, k) of a closed block whose successor is not open yet
         self._spare: dict[tuple[int, int], list[tuple[memoryview, np.ndarray]]] = {}  # zeroed buffers by shape
         self._groups: dict[int, _Group] = {}  # per class: the round its lanes are joining
@@ -394,7 +396,7 @@ class BlockEncoder:
         session, pack_source, pack_prefix = self.session, wire.pack_source_header, wire.SYMBOL_PREFIX.pack_into
         prefix, flag_end = wire.SYMBOL_PREFIX_BYTES, wire.FLAG_END
         generation_bits, generation_mask, flow_shift = wire.GENERATION_BITS, wire.GENERATION_MASK, wire.FLOW_SHIFT
-        blocks, lanes = self._open, self._lanes
+        blocks, lanes, sequences = self._open, self._lanes, self._sequences.counts
         sources: list[bytes] = []
         pieces = [sources]  # source runs, each full block's (still empty) repair list between them
         deferred: list[_Block] = []
@@ -441,8 +443,14 @@ class BlockEncoder:
                     cur, cur_key = block, key
                     count, width, storage, symbol_len = block.count, block.width, block.storage, block.symbol_len
                     content, limit, base, previous_k = block.content, block.limit, block.base, block.previous_k
+                seq = sequences.pop(flow, -1)  # FlowSequencer.next, inlined: once per datagram
+                if seq < 0:
+                    seq = 0
+                    if len(sequences) >= MAX_SEQUENCE_FLOWS:
+                        del sequences[next(iter(sequences))]
+                sequences[flow] = (seq + 1) & 0xFFFF
                 start = count * width + prefix
-                pack_prefix(storage, start - prefix, flow >> generation_bits, flow & generation_mask, size)
+                pack_prefix(storage, start - prefix, flow >> generation_bits, flow & generation_mask, size, seq)
                 storage[start : start + size] = datagram
                 if symbol > symbol_len:
                     symbol_len = symbol
@@ -452,11 +460,11 @@ class BlockEncoder:
                 sent_size[index] += size
                 if count < limit:
                     sources.append(
-                        pack_source(0, session, base | (count - 1), flow << flow_shift | previous_k) + datagram
+                        pack_source(0, session, base | (count - 1), flow << flow_shift | previous_k, seq) + datagram
                     )
                     continue
                 word = flow << flow_shift | previous_k
-                sources.append(pack_source(flag_end, session, base | (count - 1), word) + datagram)
+                sources.append(pack_source(flag_end, session, base | (count - 1), word, seq) + datagram)
                 cur.count, cur.symbol_len, cur.content = count, symbol_len, content
                 del blocks[key]
                 deferred.append(cur)

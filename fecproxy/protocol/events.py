@@ -47,6 +47,7 @@ class DropReason(StrEnum):
     SESSION_LIMIT = "session_limit"  # a new sender session while every session slot is live
     MEMORY_LIMIT = "memory_limit"  # the decoder's byte budget is full of its own block
     DECODE_LIMIT = "decode_limit"  # a rebuild waits: decoder.max_rebuilds_per_s reached
+    ORDER_LATE = "order_late"  # in-order delivery had already skipped its place (delivery.max_wait_ms)
 
 
 class BlockOutcome(StrEnum):
@@ -67,12 +68,14 @@ class Event:
 
 @dataclass(frozen=True, slots=True)
 class Delivery(Event):
-    """A datagram for the application; ``delay`` is 0 unless it was rebuilt."""
+    """A datagram for the application; ``delay`` is 0 unless it was rebuilt; ``seq`` is its
+    place in its flow (the sender's 16-bit count, for in-order delivery)."""
 
     flow: int
     data: bytes
     recovered: bool = False
     delay: float = 0.0
+    seq: int = 0
 
 
 @dataclass(frozen=True, slots=True)
@@ -154,22 +157,23 @@ class PeerCodeSettled(Event):
     configured: tuple[int, int] | None = None
 
 
-def _delivery_maker() -> Callable[[int, bytes], Delivery]:
-    """Delivery(flow, data) for a datagram that came directly, built by filling its slots.
+def _delivery_maker() -> Callable[[int, bytes, int], Delivery]:
+    """Delivery(flow, data, seq=seq) for a datagram that came directly, built by filling its slots.
 
     The generated __init__ of a frozen dataclass sets each field through object.__setattr__:
     measured here, 0.97 µs against 0.51 µs this way, paid once per datagram on the receiver.
     """
     slots = Delivery.__dict__  # the slot descriptors (typed Any: mypy sees the fields' types instead)
     new, set_flow, set_data = object.__new__, slots["flow"].__set__, slots["data"].__set__
-    set_recovered, set_delay = slots["recovered"].__set__, slots["delay"].__set__
+    set_recovered, set_delay, set_seq = slots["recovered"].__set__, slots["delay"].__set__, slots["seq"].__set__
 
-    def direct_delivery(flow: int, data: bytes) -> Delivery:
+    def direct_delivery(flow: int, data: bytes, seq: int = 0) -> Delivery:
         delivery = new(Delivery)
         set_flow(delivery, flow)
         set_data(delivery, data)
         set_recovered(delivery, False)
         set_delay(delivery, 0.0)
+        set_seq(delivery, seq)
         return delivery
 
     return direct_delivery

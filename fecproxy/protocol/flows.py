@@ -4,7 +4,7 @@ The sender gives every application client address a flow; the receiver keeps, pe
 upstream socket it opened towards the application server, so replies find their way back.  Pure
 bookkeeping with ``now`` passed in: the shell owns the sockets.
 
-The rules (DEVELOPERS.md, "Flow identifiers"):
+The rules (docs/design.md, "Flow identifiers"):
 
 * Directions.  A *request* travels from the side that opened the flow (the application client on
   the sender, the link on the receiver); a *reply* travels back.

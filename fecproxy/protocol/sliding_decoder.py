@@ -190,7 +190,7 @@ class SlidingDecoder:
             if esi in stream.given_up:  # given up, never delivered: deliver it now
                 del stream.given_up[esi]
                 self.stats.late_delivered += 1
-                events.append(Delivery(pkt.flow, pkt.data))
+                events.append(Delivery(pkt.flow, pkt.data, seq=pkt.seq))
                 return
             self._count(DropReason.STALE)
             events.append(Dropped(DropReason.STALE, f"source symbol {esi} is behind the decoding window"))
@@ -201,8 +201,8 @@ class SlidingDecoder:
         elif stream.missing.pop(esi, None) is not None:
             self.stats.reordered += 1
         self._advance(stream, esi, now, seen=True)
-        events.append(Delivery(pkt.flow, pkt.data))
-        adui = wire.pack_symbol_prefix(pkt.flow, len(pkt.data)) + pkt.data
+        events.append(Delivery(pkt.flow, pkt.data, seq=pkt.seq))
+        adui = wire.pack_symbol_prefix(pkt.flow, len(pkt.data), pkt.seq) + pkt.data
         self._deliver_solved(stream, system.add_known(esi, adui), now, events)
 
     def _repair(self, stream: _Stream, pkt: wire.SlidingRepairPacket, now: float, events: list[Event]) -> None:
@@ -295,7 +295,7 @@ class SlidingDecoder:
             if noticed is None:
                 continue  # not missing (given up meanwhile): nothing to deliver
             end = wire.SYMBOL_PREFIX_BYTES
-            flow, length = wire.unpack_symbol_prefix(symbol) if len(symbol) >= end else (0, -1)
+            flow, length, seq = wire.unpack_symbol_prefix(symbol) if len(symbol) >= end else (0, -1, 0)
             if not 0 <= length <= limit or end + length > len(symbol) or any(symbol[end + length :]):
                 self._count(DropReason.INCONSISTENT)
                 events.append(Dropped(DropReason.INCONSISTENT, f"rebuilt symbol {esi} fails its framing check"))
@@ -305,7 +305,7 @@ class SlidingDecoder:
                 continue
             self.stats.lost += 1
             self.stats.recovered += 1
-            events.append(Delivery(flow, symbol[end : end + length], recovered=True, delay=now - noticed))
+            events.append(Delivery(flow, symbol[end : end + length], recovered=True, delay=now - noticed, seq=seq))
 
     # --- sessions and authentication ---------------------------------------------------------
 

@@ -26,6 +26,7 @@ from fecproxy.coding import sliding
 from fecproxy.protocol import wire
 from fecproxy.protocol.auth import Sealer
 from fecproxy.protocol.events import DropReason
+from fecproxy.protocol.ordering import FlowSequencer
 
 #: 32 source packets: with one repair every 4 (25 % overhead) each datagram is covered by up to
 #: 8 repair packets, enough to ride out a burst of several losses, while the receiver's system
@@ -102,6 +103,7 @@ class SlidingEncoder:
         self.stats = SlidingEncoderStats()
         self._settings = settings
         self._next_esi = first_esi % wire.ESI_MODULUS
+        self._sequences = FlowSequencer()  # each flow's datagrams numbered in the order taken
         self._window: deque[tuple[int, float, bytes]] = deque()  # (ESI, time added, ADUI)
         self._since_repair = 0  # source packets since the last repair packet
         self._uncovered_since: float | None = None  # time of the oldest datagram no repair covers
@@ -147,14 +149,15 @@ class SlidingEncoder:
                 continue
             esi = self._next_esi
             self._next_esi = (esi + 1) % wire.ESI_MODULUS
-            packet = wire.pack_sliding_source(self.session, esi, flow << wire.FLOW_SHIFT) + datagram
+            seq = self._sequences.next(flow)
+            packet = wire.pack_sliding_source(self.session, esi, flow << wire.FLOW_SHIFT, seq) + datagram
             out.append(packet)
             stats.source_packets += 1
             stats.source_bytes += len(packet)
             stats.datagram_bytes += size
             if size > self._longest:
                 self._longest = size
-            self._window.append((esi, now, wire.pack_symbol_prefix(flow, size) + datagram))
+            self._window.append((esi, now, wire.pack_symbol_prefix(flow, size, seq) + datagram))
             self._slide(now)
             if self._uncovered_since is None:
                 self._uncovered_since = now

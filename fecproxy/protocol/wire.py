@@ -15,7 +15,8 @@ Every packet on the link starts with a 10-byte common header (all integers big-e
 SBN and ESI are the FEC Payload ID of RFC 6865 §5.1 for m = 8 (24 + 8 bits).  Then:
 
 * source (type 0): flow id (24 bits: 16-bit slot ‖ 8-bit generation), the previous block's k
-  (8 bits; 0 = none or not known), then the application datagram exactly as sent.
+  (8 bits; 0 = none or not known), the flow's sequence number (16 bits), then the application
+  datagram exactly as sent.
 * repair (type 1): the block's k (16 bits, RFC 6865 §5.1), then one repair symbol.
 * control (type 2): the body of a receiver's loss report (:mod:`fecproxy.protocol.loss_report`);
   the header's session is the sending side's own (as on all its packets), its SBN and ESI are 0
@@ -24,15 +25,23 @@ SBN and ESI are the FEC Payload ID of RFC 6865 §5.1 for m = 8 (24 + 8 bits).  T
 Repair symbols cover, per source datagram, the RFC 6363 §4 / RFC 6865 §4 source symbol
 "flow id ‖ length (2 bytes) ‖ datagram ‖ zero padding" up to the block's symbol size, with our
 flow id widened from the RFCs' one byte to three (slot and generation, so thousands of clients
-fit and a recycled slot is told from its previous client); those 5 bytes and the padding never
-travel in source packets, so a rebuilt datagram gets back its exact length and flow.  k travels
-only in repair packets: a block closed early by its flush timer has fewer datagrams than
-configured, and that is known only once it is closed.
-The END flag on a source packet says "this is the last datagram of a block filled to its
-configured k", so a receiver with no loss can close the block without waiting for repair.  And
-every source packet tells the k of the block before it: when a block's last datagrams and all its
-repair packets are lost, or the block is lost whole, the next block still tells the receiver how
-many datagrams went missing, so loss is counted, not silently under-counted.
+fit and a recycled slot is told from its previous client) and our flow sequence number (2 bytes)
+after the length; those 7 bytes and the padding never travel in source packets, so a rebuilt
+datagram gets back its exact length, flow and place in its flow.
+
+The flow sequence number counts each flow's datagrams in the order the sender took them (from 0,
+modulo 2^16).  Blocks cannot tell that order: a flow's datagrams spread over size classes and
+interleaved blocks, and a rebuilt datagram comes when its block completes.  A receiver that
+delivers in order (``delivery.order: in_order``, :mod:`fecproxy.protocol.ordering`) reads it
+from source packets and rebuilt symbols alike; it costs 2 bytes per source and per repair packet.
+
+k travels only in repair packets: a block closed early by its flush timer has fewer datagrams than
+configured, and that is known only once it is closed.  The END flag on a source packet says "this
+is the last datagram of a block filled to its configured k", so a receiver with no loss can close
+the block without waiting for repair.  And every source packet tells the k of the block before it:
+when a block's last datagrams and all its repair packets are lost, or the block is lost whole, the
+next block still tells the receiver how many datagrams went missing, so loss is counted, not
+silently under-counted.
 """
 
 from __future__ import annotations
@@ -46,17 +55,18 @@ from typing import Literal, overload
 from fecproxy.coding.codec import MAX_ENCODING_SYMBOLS
 from fecproxy.protocol.events import DropReason
 
-#: Version 2: the flow id is 24 bits (slot ‖ generation) in the source header and symbol prefix;
-#: version 1 had one byte.
-VERSION = 2
+#: Version 3: a 16-bit flow sequence number in the source header and symbol prefix.  Version 2
+#: had none; version 1 had a one-byte flow id.
+VERSION = 3
 #: The FEC Payload ID word of the common header is ``SBN << ESI_BITS | ESI`` (RFC 6865 §5.1, m = 8).
 ESI_BITS = 8
 ESI_MASK = (1 << ESI_BITS) - 1
 COMMON_HEADER = struct.Struct(">BBII")  # version|type, flags, session, SBN<<8 | ESI
-#: Common header + one 32-bit *flow word*: flow id (24 bits) << 8 | previous block's k (8 bits).
-SOURCE_HEADER = struct.Struct(">BBIII")
+#: Common header + one 32-bit *flow word*: flow id (24 bits) << 8 | previous block's k (8 bits),
+#: then the flow sequence number (16 bits).
+SOURCE_HEADER = struct.Struct(">BBIIIH")
 REPAIR_HEADER = struct.Struct(">BBIIH")  # common + k
-SOURCE_HEADER_BYTES = SOURCE_HEADER.size  # 14
+SOURCE_HEADER_BYTES = SOURCE_HEADER.size  # 16
 REPAIR_HEADER_BYTES = REPAIR_HEADER.size  # 12
 #: The flow id is 24 bits: a 16-bit slot (thousands of concurrent clients, where RFC 6363 §4's one
 #: byte stops at 256) and an 8-bit generation (a slot's new client is a new conversation).
@@ -70,12 +80,17 @@ SLOT_BITS = FLOW_ID_BITS - GENERATION_BITS
 #: takes the low byte (k ≤ MAX_K = 255).
 FLOW_SHIFT = 8
 PREVIOUS_K_MASK = (1 << FLOW_SHIFT) - 1
-#: Source symbol prefix after RFC 6363 §4 / RFC 6865 §4, flow id widened to 3 bytes: slot (2) ‖
-#: generation (1) ‖ length (2), all big-endian; packed as
-#: (flow >> GENERATION_BITS, flow & GENERATION_MASK, length).
-SYMBOL_PREFIX = struct.Struct(">HBH")
-#: The flow id and the 2-byte length that precede the datagram (and its zero padding) in a symbol.
-SYMBOL_PREFIX_BYTES = SYMBOL_PREFIX.size  # 5
+#: Sequence numbers count each flow's datagrams modulo 2^16 (serial-number arithmetic,
+#: RFC 1982): a receiver holds at most a few thousand ahead, far below half the space.
+SEQUENCE_BITS = 16
+SEQUENCE_MODULUS = 1 << SEQUENCE_BITS
+#: Source symbol prefix after RFC 6363 §4 / RFC 6865 §4, flow id widened to 3 bytes, and the flow
+#: sequence number: slot (2) ‖ generation (1) ‖ length (2) ‖ sequence (2), all big-endian; packed
+#: as (flow >> GENERATION_BITS, flow & GENERATION_MASK, length, seq).
+SYMBOL_PREFIX = struct.Struct(">HBHH")
+#: The flow id, the 2-byte length and the 2-byte sequence number that precede the datagram (and
+#: its zero padding) in a symbol.
+SYMBOL_PREFIX_BYTES = SYMBOL_PREFIX.size  # 7
 #: Where the length sits in the prefix.
 SYMBOL_LENGTH_OFFSET = 3
 
@@ -89,10 +104,10 @@ MAX_DATAGRAM_LIMIT = 0xFFFF - SYMBOL_PREFIX_BYTES
 #: auth.TRAILER_BYTES = 25 (key id, sequence, 16-byte tag).  RFC 6363 §9 and RFC 5510 §9 recommend
 #: authenticating source and repair packets.
 AUTH_TAG_RESERVE_BYTES = 32
-#: A repair packet is header (12 bytes) + symbol prefix (flow 3 + length 2, after RFC 6363 §4) +
-#: datagram, and should fit a 1500-byte Ethernet MTU (RFC 894) less 20 bytes of IPv4 header
-#: (RFC 791) and 8 of UDP (RFC 768), with 32 bytes kept for the authentication trailer
-#: (AUTH_TAG_RESERVE_BYTES): 1500 − 28 − 12 − 5 − 32 = 1423, rounded down to 1400.
+#: A repair packet is header (12 bytes) + symbol prefix (flow 3 + length 2, after RFC 6363 §4,
+#: + sequence 2) + datagram, and should fit a 1500-byte Ethernet MTU (RFC 894) less 20 bytes of
+#: IPv4 header (RFC 791) and 8 of UDP (RFC 768), with 32 bytes kept for the authentication trailer
+#: (AUTH_TAG_RESERVE_BYTES): 1500 − 28 − 12 − 7 − 32 = 1421, rounded down to 1400.
 DEFAULT_MAX_DATAGRAM = 1400
 
 FLAG_END = 0x01  # source: last datagram of a block filled to its configured k
@@ -119,12 +134,12 @@ CONTROL_HEADER_BYTES = COMMON_HEADER.size  # 10: a control packet is the common 
 # (a ``partial`` of a Struct method adds ~30 ns per call, a Python function ~120 ns).  They trust
 # their arguments; ``encode_*`` and ``parse`` are the checked forms.
 
-#: ``pack_source_header(flags, session, sbn << ESI_BITS | esi, flow << FLOW_SHIFT | previous_k)``
-#: -> 14 bytes.
+#: ``pack_source_header(flags, session, sbn << ESI_BITS | esi, flow << FLOW_SHIFT | previous_k, seq)``
+#: -> 16 bytes.
 pack_source_header = partial(SOURCE_HEADER.pack, SOURCE_TYPE_BYTE)
 #: ``pack_repair_header(session, sbn << ESI_BITS | esi, k)`` -> 12 bytes (repair has no flags).
 pack_repair_header = partial(REPAIR_HEADER.pack, REPAIR_TYPE_BYTE, 0)
-#: ``peek_source(data)`` -> (type byte, flags, session, payload id, flow word), unchecked; needs
+#: ``peek_source(data)`` -> (type byte, flags, session, payload id, flow word, seq), unchecked; needs
 #: len(data) ≥ SOURCE_HEADER_BYTES.  flow = word >> FLOW_SHIFT, previous k = word & PREVIOUS_K_MASK.
 peek_source = SOURCE_HEADER.unpack_from
 #: ``peek_repair(data)`` -> (type byte, flags, session, payload id, k), unchecked; needs
@@ -165,6 +180,7 @@ class SourcePacket:
     end: bool
     data: bytes
     previous_k: int = 0  # k of block sbn − 1, so a block whose repair was all lost still has a size
+    seq: int = 0  # the flow's sequence number: its place in the order the sender took the flow's datagrams
 
 
 @dataclass(frozen=True, slots=True)
@@ -183,23 +199,33 @@ class ControlPacket:
 
 
 def encode_source(
-    session: int, sbn: int, esi: int, flow: int, data: bytes, *, end: bool = False, previous_k: int = 0
+    session: int,
+    sbn: int,
+    esi: int,
+    flow: int,
+    data: bytes,
+    *,
+    end: bool = False,
+    previous_k: int = 0,
+    seq: int = 0,
 ) -> bytes:
     if not 0 <= flow < MAX_FLOW_IDS or not 0 <= previous_k <= PREVIOUS_K_MASK:
         raise ValueError(f"flow {flow} or previous k {previous_k} outside 24 and 8 bits")
+    if not 0 <= seq < SEQUENCE_MODULUS:
+        raise ValueError(f"sequence number {seq} outside {SEQUENCE_BITS} bits")
     word = flow << FLOW_SHIFT | previous_k
-    return pack_source_header(FLAG_END if end else 0, session, (sbn << ESI_BITS) | esi, word) + data
+    return pack_source_header(FLAG_END if end else 0, session, (sbn << ESI_BITS) | esi, word, seq) + data
 
 
-def pack_symbol_prefix(flow: int, length: int) -> bytes:
-    """The 5-byte prefix a source datagram has in its symbol: slot ‖ generation ‖ length."""
-    return SYMBOL_PREFIX.pack(flow >> GENERATION_BITS, flow & GENERATION_MASK, length)
+def pack_symbol_prefix(flow: int, length: int, seq: int) -> bytes:
+    """The 7-byte prefix a source datagram has in its symbol: slot ‖ generation ‖ length ‖ sequence."""
+    return SYMBOL_PREFIX.pack(flow >> GENERATION_BITS, flow & GENERATION_MASK, length, seq)
 
 
-def unpack_symbol_prefix(symbol: bytes | bytearray | memoryview) -> tuple[int, int]:
-    """(flow, length) from the first SYMBOL_PREFIX_BYTES bytes of a symbol."""
-    slot, generation, length = SYMBOL_PREFIX.unpack_from(symbol)
-    return slot << GENERATION_BITS | generation, length
+def unpack_symbol_prefix(symbol: bytes | bytearray | memoryview) -> tuple[int, int, int]:
+    """(flow, length, seq) from the first SYMBOL_PREFIX_BYTES bytes of a symbol."""
+    slot, generation, length, seq = SYMBOL_PREFIX.unpack_from(symbol)
+    return slot << GENERATION_BITS | generation, length, seq
 
 
 def encode_repair(session: int, sbn: int, esi: int, k: int, symbol: bytes) -> bytes:
@@ -241,13 +267,13 @@ def parse(packet: bytes, *, max_datagram: int, sliding: bool = False) -> Packet:
     esi = sbn_esi & ESI_MASK
     if kind == PacketType.SOURCE:
         if size < SOURCE_HEADER_BYTES:
-            raise TruncatedPacket(f"source packet of {size} bytes has no flow id and previous k")
+            raise TruncatedPacket(f"source packet of {size} bytes has no flow id, previous k and sequence number")
         if esi > MAX_ESI:
             raise InvalidField(f"source ESI {esi} is above {MAX_ESI}")
         payload = size - SOURCE_HEADER_BYTES
         if payload > max_datagram:
             raise OversizePacket(f"source datagram of {payload} bytes exceeds the limit of {max_datagram}")
-        word = SOURCE_HEADER.unpack_from(packet)[4]
+        word, seq = SOURCE_HEADER.unpack_from(packet)[4:]
         return SourcePacket(
             session,
             sbn,
@@ -256,6 +282,7 @@ def parse(packet: bytes, *, max_datagram: int, sliding: bool = False) -> Packet:
             bool(flags & FLAG_END),
             bytes(packet[SOURCE_HEADER_BYTES:]),
             word & PREVIOUS_K_MASK,
+            seq,
         )
     if kind == PacketType.REPAIR:
         if flags:
@@ -296,7 +323,7 @@ def parse(packet: bytes, *, max_datagram: int, sliding: bool = False) -> Packet:
 # instead of SBN ‖ ESI (RFC 8681 §4.1.2: the source FEC payload ID is a 32-bit ESI):
 #
 # * sliding source (type 3): common header (word = ESI), flow word (flow id 24 bits ‖ 8 bits 0),
-#   datagram; 14 bytes of header, as a block source packet.
+#   the flow sequence number (16 bits), datagram; 16 bytes of header, as a block source packet.
 # * sliding repair (type 4): common header (word = FSS_ESI, the first source symbol of the
 #   window), repair key (16 bits), DT (4 bits) ‖ NSS (12 bits), repair symbol; 14 bytes of header.
 #   Repair key, DT, NSS and FSS_ESI are exactly what RFC 8681 §4.1.3's repair FEC payload ID
@@ -308,7 +335,7 @@ def parse(packet: bytes, *, max_datagram: int, sliding: bool = False) -> Packet:
 SLIDING_SOURCE_TYPE_BYTE = (VERSION << 4) | PacketType.SLIDING_SOURCE
 SLIDING_REPAIR_TYPE_BYTE = (VERSION << 4) | PacketType.SLIDING_REPAIR
 SLIDING_REPAIR_HEADER = struct.Struct(">BBIIHH")  # common + repair key + DT << 12 | NSS
-SLIDING_SOURCE_HEADER_BYTES = SOURCE_HEADER_BYTES  # 14
+SLIDING_SOURCE_HEADER_BYTES = SOURCE_HEADER_BYTES  # 16
 SLIDING_REPAIR_HEADER_BYTES = SLIDING_REPAIR_HEADER.size  # 14
 #: RFC 8681 §4.1.3: NSS is 12 bits and DT 4 bits; source symbol ids are 32 bits (§4.1.2).
 NSS_BITS = 12
@@ -316,7 +343,7 @@ NSS_MASK = (1 << NSS_BITS) - 1
 MAX_DENSITY = 15
 ESI_MODULUS = 1 << 32
 
-#: ``pack_sliding_source(session, esi, flow << FLOW_SHIFT)`` -> 14 bytes.
+#: ``pack_sliding_source(session, esi, flow << FLOW_SHIFT, seq)`` -> 16 bytes.
 pack_sliding_source = partial(SOURCE_HEADER.pack, SLIDING_SOURCE_TYPE_BYTE, 0)
 #: ``pack_sliding_repair(session, first_esi, repair_key, dt << NSS_BITS | nss)`` -> 14 bytes.
 pack_sliding_repair = partial(SLIDING_REPAIR_HEADER.pack, SLIDING_REPAIR_TYPE_BYTE, 0)
@@ -328,6 +355,7 @@ class SlidingSourcePacket:
     esi: int  # 32 bits on the wire: the receiver unwraps it
     flow: int
     data: bytes
+    seq: int = 0  # the flow's sequence number, as in SourcePacket
 
 
 @dataclass(frozen=True, slots=True)
@@ -346,10 +374,10 @@ BlockCodePacket = SourcePacket | RepairPacket | ControlPacket
 Packet = SourcePacket | RepairPacket | ControlPacket | SlidingSourcePacket | SlidingRepairPacket
 
 
-def encode_sliding_source(session: int, esi: int, flow: int, data: bytes) -> bytes:
-    if not 0 <= flow < MAX_FLOW_IDS:
-        raise ValueError(f"flow {flow} outside 24 bits")
-    return pack_sliding_source(session, esi % ESI_MODULUS, flow << FLOW_SHIFT) + data
+def encode_sliding_source(session: int, esi: int, flow: int, data: bytes, seq: int = 0) -> bytes:
+    if not 0 <= flow < MAX_FLOW_IDS or not 0 <= seq < SEQUENCE_MODULUS:
+        raise ValueError(f"flow {flow} or sequence number {seq} outside 24 and 16 bits")
+    return pack_sliding_source(session, esi % ESI_MODULUS, flow << FLOW_SHIFT, seq) + data
 
 
 def encode_sliding_repair(session: int, first_esi: int, repair_key: int, dt: int, nss: int, symbol: bytes) -> bytes:
@@ -365,13 +393,15 @@ def _parse_sliding(
     if kind == PacketType.SLIDING_SOURCE:
         if size < SLIDING_SOURCE_HEADER_BYTES:
             raise TruncatedPacket(f"sliding source packet of {size} bytes has no flow id")
-        flow_word = SOURCE_HEADER.unpack_from(packet)[4]
+        flow_word, seq = SOURCE_HEADER.unpack_from(packet)[4:]
         if flow_word & PREVIOUS_K_MASK:
             raise InvalidField(f"sliding source packet with reserved bits 0x{flow_word & PREVIOUS_K_MASK:02x} set")
         payload = size - SLIDING_SOURCE_HEADER_BYTES
         if payload > max_datagram:
             raise OversizePacket(f"source datagram of {payload} bytes exceeds the limit of {max_datagram}")
-        return SlidingSourcePacket(session, word, flow_word >> FLOW_SHIFT, bytes(packet[SLIDING_SOURCE_HEADER_BYTES:]))
+        return SlidingSourcePacket(
+            session, word, flow_word >> FLOW_SHIFT, bytes(packet[SLIDING_SOURCE_HEADER_BYTES:]), seq
+        )
     if size < SLIDING_REPAIR_HEADER_BYTES:
         raise TruncatedPacket(f"sliding repair packet of {size} bytes has no repair key, DT and NSS")
     repair_key, dt_nss = SLIDING_REPAIR_HEADER.unpack_from(packet)[4:]

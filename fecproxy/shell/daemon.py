@@ -29,32 +29,30 @@ import trio
 from fecproxy import __version__
 from fecproxy.config import Config
 from fecproxy.config.addresses import format_sockaddr
-from fecproxy.linkmodel.adaptation import STALE_AFTER_INTERVALS, Decision, ReportsResumed, ReportsStale
 from fecproxy.linkmodel.feedback import Feedback, ReportDue
 from fecproxy.protocol import auth
 from fecproxy.protocol.decoder import BlockDecoder
 from fecproxy.protocol.encoder import BlockEncoder
 from fecproxy.protocol.events import (
+    BlockOutcome,
     BlockReport,
     ControlReceived,
     Delivery,
     Dropped,
     DropReason,
     KeyCheckDue,
-    PeerAddressChanged,
-    PeerCodeSettled,
     SessionStarted,
 )
 from fecproxy.protocol.loss_report import KEY_CHECK_BODY
+from fecproxy.protocol.ordering import InOrderDelivery
 from fecproxy.protocol.pacer import PacketKind
-from fecproxy.protocol.peer_view import PeerHeard, PeerSilent
 from fecproxy.shell.app_side import SideOpenError, app_side
 from fecproxy.shell.fdlimit import ensure_open_files, files_needed
 from fecproxy.shell.history import History
 from fecproxy.shell.link_output import LinkOutput
 from fecproxy.shell.logs import event_sink, log_event, log_exception
 from fecproxy.shell.metrics import MetricsServer, build_registry, serve
-from fecproxy.shell.operator_notes import OversizeWarning, ratio_field, stats_loop
+from fecproxy.shell.operator_notes import OversizeWarning, log_core_event, ratio_field, stats_loop
 from fecproxy.shell.settings import (
     ReloadRejected,
     apply_flow_timeouts,
@@ -74,6 +72,18 @@ log = logging.getLogger("fecproxy.shell.daemon")
 
 #: SIGTERM/SIGINT stop (after flushing the open block), SIGHUP reloads the config.
 HANDLED_SIGNALS = (signal.SIGTERM, signal.SIGINT, signal.SIGHUP)
+#: How a block ended without all its datagrams: its gaps are given up for in-order delivery.
+GIVEN_UP = frozenset((BlockOutcome.EXPIRED, BlockOutcome.EVICTED, BlockOutcome.SUPERSEDED))
+
+
+def _add(by_flow: dict[int, list[bytes]], deliveries: list[Delivery]) -> None:
+    """Append deliveries to the per-flow batch the application side sends, in their order."""
+    for delivery in deliveries:
+        datagrams = by_flow.get(delivery.flow)
+        if datagrams is None:
+            by_flow[delivery.flow] = [delivery.data]
+        else:
+            datagrams.append(delivery.data)
 
 
 class SocketOpenError(OSError):
@@ -112,8 +122,18 @@ class Daemon:
         self.link = LinkOutput(config)
         self.oversize = OversizeWarning()
         self._heard = 0  # valid packets from the peer so far (decoder counts + control packets)
+        #: delivery.order: in_order puts each flow back in the sender's order before the
+        #: application side (protocol.ordering); None delivers as available.
+        self.order = InOrderDelivery(config.delivery.max_wait_seconds) if config.delivery.in_order else None
         self.view = DaemonStatsView(
-            str(config.role), self.encoder, self.decoder, self.feedback, self.app, self.counts, self.link
+            str(config.role),
+            self.encoder,
+            self.decoder,
+            self.feedback,
+            self.app,
+            self.counts,
+            self.order,
+            self.link,
         )
         self._link_sock: Any = None
         self._link_writer: DatagramWriter | None = None
@@ -275,7 +295,13 @@ class Daemon:
             return
         self._stopping = True
         await self._send_to_peer(self.encoder.close())
-        await self._handle_events(self.decoder.close(), trio.current_time())
+        now = trio.current_time()
+        await self._handle_events(self.decoder.close(), now)
+        if self.order is not None:  # what waits behind a gap goes now, in order
+            by_flow: dict[int, list[bytes]] = {}
+            _add(by_flow, self.order.close(now))
+            if by_flow:
+                await self.app.deliver(by_flow, now)
         left = await self.link.drain()  # the paced queue: the last block's repair packets
         if left:
             log_event(log, logging.INFO, "queue_discarded", packets=left, detail="still queued for the link at stop")
@@ -323,6 +349,7 @@ class Daemon:
         # The peer sends with GSO, so with GRO a burst of its packets is one read (see udp.py).
         reader = DatagramReader(self._link_sock, coalesce=True)
         receive = self.decoder.receive
+        order = self.order
         by_flow: dict[int, list[bytes]] = {}
         while True:
             batch = await reader.read_batch()
@@ -337,16 +364,24 @@ class Daemon:
                     if type(event) is Delivery:  # the common case, inline: once per datagram
                         if event.recovered:
                             self.recovery_delay.observe(event.delay)
+                        if order is not None:
+                            _add(by_flow, order.push(event, now))
+                            continue
                         datagrams = by_flow.get(event.flow)
                         if datagrams is None:
                             by_flow[event.flow] = [event.data]
                         else:
                             datagrams.append(event.data)
                     else:
-                        if type(event) is SessionStarted and by_flow:
-                            # What came before a peer restart belongs to the old conversations.
-                            await self.app.deliver(by_flow, now)
-                            by_flow = {}
+                        if type(event) is SessionStarted:
+                            if order is not None:  # the old conversations' waiting datagrams first
+                                _add(by_flow, order.reset(now))
+                            if by_flow:
+                                # What came before a peer restart belongs to the old conversations.
+                                await self.app.deliver(by_flow, now)
+                                by_flow = {}
+                        elif order is not None and type(event) is BlockReport:
+                            _add(by_flow, self._give_up(event, now))
                         await self._handle_event(event, now)
             if by_flow:
                 await self.app.deliver(by_flow, now)
@@ -368,7 +403,16 @@ class Daemon:
             self._timer_scope = None
             now = trio.current_time()
             await self._send_to_peer(self.encoder.on_timer(now))
-            await self._handle_events(self.decoder.on_timer(now), now)
+            events = self.decoder.on_timer(now)
+            if self.order is not None:
+                by_flow: dict[int, list[bytes]] = {}
+                for event in events:
+                    if type(event) is BlockReport:
+                        _add(by_flow, self._give_up(event, now))
+                _add(by_flow, self.order.on_timer(now))
+                if by_flow:
+                    await self.app.deliver(by_flow, now)
+            await self._handle_events(events, now)
             await self._handle_events(self.feedback.on_timer(now), now)
             self.app.expire(now)
 
@@ -387,7 +431,10 @@ class Daemon:
             await self._handle_event(event, now)
 
     async def _handle_event(self, event: Any, now: float) -> None:
-        """The one handler of what the cores say (deliveries aside, batched by the link loop)."""
+        """The one handler of what the cores say (deliveries aside, batched by the link loop);
+        events that only inform the operator are logged by operator_notes.log_core_event."""
+        if log_core_event(event, self.feedback.repair):
+            return
         if isinstance(event, BlockReport):
             self.feedback.on_block(event)
             if event.unrecovered:
@@ -408,41 +455,10 @@ class Daemon:
                 log_event(log, logging.WARNING, "auth_failed", kind=kind, detail=event.notice)
             elif event.reason is not DropReason.AUTH:
                 log_event(log, logging.DEBUG, "dropped", reason=event.reason, detail=event.detail)
-        elif isinstance(event, PeerAddressChanged):
-            # A receiver without link.peer says where its replies go, and every change of it.
-            log_event(
-                log,
-                logging.INFO,
-                "peer_learned" if event.previous is None else "peer_changed",
-                old=format_sockaddr(event.previous) if event.previous is not None else "-",
-                new=format_sockaddr(event.address),
-            )
-        elif isinstance(event, PeerSilent):
-            log_event(
-                log,
-                logging.WARNING,
-                "peer_silent",
-                quiet_s=round(event.at - event.last_heard_at, 1),
-                detail="nothing valid from the peer (no loss report, no packet): peer down or return path cut",
-            )
-        elif isinstance(event, PeerHeard):
-            log_event(log, logging.INFO, "peer_heard", silent_s=round(event.silent_for, 1))
         elif isinstance(event, KeyCheckDue):
             # Sealed with our key, so the peer's log says the same as ours (see loss_report).
             if self.encoder.sealer is not None:
                 await self.link.send([self.encoder.control(KEY_CHECK_BODY)], event.address, now)
-        elif isinstance(event, PeerCodeSettled):
-            # INFO the first time per peer session, DEBUG when it changes later (an adapting peer
-            # changes m often).
-            log_event(
-                log,
-                logging.INFO if event.first else logging.DEBUG,
-                "peer_code",
-                k=event.configured[0] if event.configured else event.k,
-                m=event.configured[1] if event.configured else event.m,
-                blocks="full" if event.configured else "short blocks only so far",
-                detail="decoding the peer's blocks (k from its repair packets, m = highest repair ESI - k + 1)",
-            )
         elif isinstance(event, ControlReceived):
             await self._handle_events(self.feedback.on_control(event, now), now)
         elif isinstance(event, SessionStarted):
@@ -457,37 +473,15 @@ class Daemon:
             )
         elif isinstance(event, ReportDue):
             await self._send_to_peer([event.packet])
-        elif isinstance(event, Decision):
-            link, choice = event.link, event.choice
-            log_event(
-                log,
-                logging.INFO,
-                "adapted",
-                direction=event.direction,
-                reason=event.reason,
-                m_from=event.previous.repair,
-                m=choice.repair,
-                depth=choice.depth,
-                k_effective=choice.k_effective,
-                loss=f"{link.loss:.4f}",
-                burst=f"{link.mean_burst:.2f}",
-                basis=link.basis,
-                samples=link.samples,
-                predicted_residual=f"{choice.residual_loss:.2e}",
-            )
-        elif isinstance(event, ReportsStale):
-            log_event(
-                log,
-                logging.WARNING,
-                "loss_reports_stale",
-                holding_m=self.feedback.repair,
-                detail=f"no loss report from the peer for {STALE_AFTER_INTERVALS} intervals "
-                "(return path down?): m is held",
-            )
-        elif isinstance(event, ReportsResumed):
-            log_event(log, logging.INFO, "loss_reports_resumed", m=self.feedback.repair)
 
     # ------------------------------------------------------------ helpers
+    def _give_up(self, report: BlockReport, now: float) -> list[Delivery]:
+        """In order: a block ended without all its datagrams, so gaps older than every block still
+        open can no longer be rebuilt; what waited behind them goes on (protocol.ordering)."""
+        if self.order is None or not report.unrecovered or report.outcome not in GIVEN_UP:
+            return []
+        return self.order.give_up_before(self.decoder.oldest_open_since(), now)
+
     def reload(self, config: Config | None = None) -> bool:
         """Apply new FEC, decoder and flow-timeout settings from the next block on; keep flows.
 
@@ -566,6 +560,7 @@ class Daemon:
             self.decoder.next_deadline(),
             self.app.flows.next_deadline(),
             self.feedback.next_deadline(),
+            None if self.order is None else self.order.next_deadline(),
         )
         deadlines = [d for d in cores if d is not None]
         return min(deadlines) if deadlines else math.inf

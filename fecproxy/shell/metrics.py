@@ -21,11 +21,12 @@ from prometheus_client import (
     disable_created_metrics,
     make_wsgi_app,
 )
-from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, InfoMetricFamily
+from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, HistogramMetricFamily, InfoMetricFamily
 
 from fecproxy import __version__
 from fecproxy.linkmodel.adaptation import DECISION_REASONS, DOWN, IGNORE_REASONS, UP
 from fecproxy.protocol.events import BlockOutcome, DropReason
+from fecproxy.protocol.ordering import WAIT_BUCKETS, OrderStats, SkipReason
 from fecproxy.shell.history import History, keep_history
 from fecproxy.shell.http_server import HttpServer, WsgiApp, open_listener
 from fecproxy.shell.link_metrics import link_metrics
@@ -97,8 +98,11 @@ class DaemonView(Protocol):
     def feedback(self) -> Feedback:
         """Loss reports sent and received, and the adaptation of the direction we send."""
 
-    def link_figures(self) -> LinkFigures | None:
-        """The link output's air budget and pacer queue (None: no link output, nothing paced)."""
+    # Optional (read with getattr): ``order_stats`` -> OrderStats | None, in-order delivery's
+    # counters (None when the daemon delivers as available).
+
+    # Optional (read with getattr): ``link_figures()`` -> LinkFigures | None, the link output's
+    # air budget and pacer queue; ``received_code_full`` -> bool | None.
 
 
 #: The link figures of a view that has no link output: nothing paced, nothing sent.
@@ -227,12 +231,14 @@ class DaemonCollector:
             value=math.nan if received_m is None else received_m,
         )
         yield from _feedback_metrics(d.feedback, d.block_shape, d.received_code)
+        yield from _order_metrics(getattr(d, "order_stats", None))
         try:
             now: float | None = trio.current_time()  # the cores' clock: scrapes run in the daemon's trio loop
         except RuntimeError:  # read outside a trio run (a test): "seconds since" is unknown
             now = None
-        full = getattr(d, "received_code_full", None)  # a stand-in view may not tell
-        yield from link_metrics(d.link_figures() or UNPACED, d.feedback.peer, now, full)
+        figures = getattr(d, "link_figures", lambda: None)()
+        full = getattr(d, "received_code_full", None)
+        yield from link_metrics(figures or UNPACED, d.feedback.peer, now, full)
         k, m = d.block_shape
         info = InfoMetricFamily(
             "fecproxy",
@@ -313,6 +319,43 @@ def _feedback_metrics(feedback: Feedback, shape: tuple[int, int], received: tupl
         "fecproxy_reports_stale",
         "1 while no loss report came for 5 intervals and m is held; else 0.",
         value=int(feedback.stale),
+    )
+
+
+def _order_metrics(stats: OrderStats | None) -> Iterable:
+    """In-order delivery (delivery.order: in_order): the wait it added, what waited, the gaps it
+    skipped by reason.  Exported on every daemon (zeros when it delivers as available), so rules
+    and dashboards can rely on the series existing."""
+    stats = stats if stats is not None else OrderStats()
+    cumulative, buckets = 0, []
+    for bound, count in zip(WAIT_BUCKETS, stats.wait_counts, strict=False):
+        cumulative += count
+        buckets.append((f"{bound:g}" if bound else "0.0", cumulative))
+    buckets.append(("+Inf", sum(stats.wait_counts)))
+    yield HistogramMetricFamily(
+        "fecproxy_delivery_wait_seconds",
+        "Wait added by in-order delivery to each datagram handed on (0 when it came in order).",
+        buckets=buckets,
+        sum_value=stats.wait_sum,
+    )
+    yield CounterMetricFamily(
+        "fecproxy_delivery_held", "Datagrams that waited behind a gap (in-order delivery).", value=stats.held
+    )
+    yield GaugeMetricFamily(
+        "fecproxy_delivery_held_datagrams", "Datagrams waiting behind a gap now.", value=stats.held_datagrams
+    )
+    skipped = CounterMetricFamily(
+        "fecproxy_delivery_gaps_skipped",
+        "Sequence numbers in-order delivery passed over without a datagram, by reason.",
+        labels=["reason"],
+    )
+    for reason in SkipReason:
+        skipped.add_metric([reason.value], stats.skipped.get(reason, 0))
+    yield skipped
+    yield CounterMetricFamily(
+        "fecproxy_delivery_flow_restarts",
+        "Flows whose sequence jumped far back (a restarted peer), followed afresh.",
+        value=stats.restarts,
     )
 
 

@@ -21,9 +21,10 @@ from fecproxy.protocol.encoder import EncoderSettings
 from fecproxy.protocol.flows import ClientFlowTable, PeerFlowTable
 
 #: Config sections a reload cannot apply (they need new sockets or another role; logging is set
-#: up once by the command, whose --log-level/--log-format may override it): a change to one is
-#: reported, and the running value is kept.
-RESTART_KEYS = ("role", "listen", "forward", "link", "metrics", "sockets", "log")
+#: up once by the command, whose --log-level/--log-format may override it; the delivery order is
+#: kept, since switching it mid-stream would reorder what waits): a change to one is reported,
+#: and the running value is kept.
+RESTART_KEYS = ("role", "listen", "forward", "link", "metrics", "sockets", "log", "delivery")
 #: Single keys a reload cannot apply: the flow table is built at its size once.
 RESTART_FIELDS = ("flows.max",)
 

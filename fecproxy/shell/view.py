@@ -12,6 +12,7 @@ from collections.abc import Callable
 from fecproxy.linkmodel.feedback import Feedback
 from fecproxy.protocol.decoder import BlockDecoder, DecoderStats
 from fecproxy.protocol.encoder import BlockEncoder, EncoderStats
+from fecproxy.protocol.ordering import InOrderDelivery, OrderStats
 from fecproxy.shell.app_side import AppSide
 from fecproxy.shell.link_output import LinkFigures, LinkOutput
 
@@ -40,10 +41,12 @@ class DaemonStatsView:
         feedback: Feedback,
         app: AppSide,
         counts: ShellCounts,
+        order: InOrderDelivery | None = None,
         link: LinkOutput | None = None,
     ):
         self.role = role
         self._encoder, self._decoder = encoder, decoder
+        self._order = order
         self.feedback = feedback
         self._app = app
         self._counts = counts
@@ -60,6 +63,11 @@ class DaemonStatsView:
     @property
     def decoder_stats(self) -> DecoderStats:
         return self._decoder.stats
+
+    @property
+    def order_stats(self) -> OrderStats | None:
+        """In-order delivery's counters; None when this daemon delivers as available."""
+        return None if self._order is None else self._order.stats
 
     @property
     def block_shape(self) -> tuple[int, int]:
@@ -87,6 +95,7 @@ class DaemonStatsView:
             self._decoder.stats.dropped,
             self.feedback.stats.dropped,
             self._app.drops,
+            {} if self._order is None else self._order.stats.dropped,
         )
         for source in sources:
             for reason, count in list(source.items()):

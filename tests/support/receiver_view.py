@@ -54,7 +54,10 @@ def visible_limits(channel: GilbertElliott, k: int, m: int, *, decoder_view: boo
     pair = seen[:, 1:]  # both ends of the pair (i, i + 1) inside the span
     bb = (source[:, :-1] & source[:, 1:] & pair).sum(axis=1)
     bg = (source[:, :-1] & ~source[:, 1:] & pair).sum(axis=1)
-    e = lambda x: float((prob * x).sum())  # noqa: E731
+
+    def e(x: np.ndarray) -> float:  # expectation over the paths
+        return float((prob * x).sum())
+
     r = e(bg) / (e(bg) + e(bb))
     return {"loss": e((source & seen).sum(axis=1)) / e(span), "burst": 1.0 / r, "invisible": 1.0 - e(span) / k}
 

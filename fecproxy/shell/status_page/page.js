@@ -13,6 +13,7 @@
   const CHART = { w: 420, h: 200, left: 50, right: 8, top: 10, bottom: 24 };  // the SVGs' viewBox
   const DROPS = "fecproxy_packets_dropped_total";
   const DELAY_BUCKET = "fecproxy_recovery_delay_seconds_bucket";
+  const ORDER_WAIT_BUCKET = "fecproxy_delivery_wait_seconds_bucket";  // delivery.order: in_order
   const TOTALS = [
     ["source packets sent", "fecproxy_source_packets_sent_total"],
     ["repair packets sent", "fecproxy_repair_packets_sent_total"],
@@ -25,6 +26,9 @@
     ["datagrams recovered", "fecproxy_datagrams_recovered_total"],
     ["datagrams unrecovered", "fecproxy_datagrams_unrecovered_total"],
     ["datagrams delivered", "fecproxy_datagrams_delivered_total"],
+    ["datagrams that waited for order (now)", "fecproxy_delivery_held_total", "fecproxy_delivery_held_datagrams"],
+    ["gaps skipped for order after max_wait", 'fecproxy_delivery_gaps_skipped_total{reason="max_wait"}'],
+    ["gaps skipped for order, blocks given up", 'fecproxy_delivery_gaps_skipped_total{reason="given_up"}'],
     ["flows", "fecproxy_flows"],
     ["send errors", "fecproxy_send_errors_total"],
   ];
@@ -72,6 +76,7 @@
     const lost = d("fecproxy_source_packets_lost_total");
     const expected = lost + d('fecproxy_link_packets_received_total{kind="source"}');
     const buckets = keysOf(now.s, DELAY_BUCKET, "le").map(([key, le]) => [le === "+Inf" ? Infinity : parseFloat(le), d(key)]);
+    const waits = keysOf(now.s, ORDER_WAIT_BUCKET, "le").map(([key, le]) => [le === "+Inf" ? Infinity : parseFloat(le), d(key)]);
     const drops = {};
     for (const [key, reason] of keysOf(now.s, DROPS, "reason")) drops[reason] = d(key);
     return {
@@ -84,6 +89,7 @@
       overheadBytes: ratio(d("fecproxy_repair_bytes_sent_total"), d("fecproxy_source_bytes_sent_total")),
       p50: quantile(0.5, buckets.map((b) => b.slice())), p99: quantile(0.99, buckets.map((b) => b.slice())),
       drops, dropTotal: Object.values(drops).reduce((a, b) => a + b, 0),
+      ordered: d("fecproxy_delivery_wait_seconds_count"), orderP99: quantile(0.99, waits),
     };
   }
 
@@ -293,7 +299,7 @@
     show("kpi-overhead", percent(f.overheadPackets), f.overheadPackets, "");
     $("kpi-overhead-sub").textContent = `packets; ${percent(f.overheadBytes)} in bytes`;
     show("kpi-delay", ms(f.p50), f.p50, "");
-    $("kpi-delay-sub").textContent = `p99 ${ms(f.p99)}`;
+    $("kpi-delay-sub").textContent = `p99 ${ms(f.p99)}` + (f.ordered ? `; in-order wait p99 ${ms(f.orderP99)}` : "");
     show("kpi-drops", perSecond(f.dropTotal, f.seconds), f.dropTotal / f.seconds, f.dropTotal ? "warn" : "");
     const top = Object.entries(f.drops).filter(([, v]) => v > 0).sort((a, b) => b[1] - a[1]).map(([r, v]) => `${r} ${count(v)}`);
     $("kpi-drops-sub").textContent = top.length ? top.join(", ") : `none, ${span}`;
