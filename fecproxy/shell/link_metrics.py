@@ -79,7 +79,8 @@ def link_metrics(
     )
     yield GaugeMetricFamily(
         "fecproxy_peer_silent",
-        "1 while the peer is silent (peer_silent logged), else 0; NaN until the peer reports (silence is then not tracked).",
+        "1 while the peer is silent (peer_silent logged), else 0; "
+        "NaN until the peer reports (silence is then not tracked).",
         value=int(peer.silent) if peer.reporting else math.nan,
     )
 
