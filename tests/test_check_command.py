@@ -66,6 +66,10 @@ def test_output_fills_in_defaults(capsys, tmp_path):
         "adapt": None,
         "interleave": 1,
         "size_classes": [256],
+        "code": "block",
+        "window": 32,
+        "window_ms": 1000,
+        "repair_interval": 4,
     }
     assert effective["link"] == {
         "bind": "127.0.0.1:0",

@@ -644,6 +644,10 @@ def test_effective_has_every_key_in_yaml_nesting():
         "adapt": None,
         "interleave": 1,
         "size_classes": [256],
+        "code": "block",
+        "window": 32,
+        "window_ms": 1000,
+        "repair_interval": 4,
     }
     assert effective["reports"] == {"interval_ms": 1000}
     assert effective["forward"] is None and effective["metrics"] == {"listen": None}

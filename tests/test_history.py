@@ -166,3 +166,19 @@ def test_status_json_hands_out_history_only_when_asked():
     assert full["series"] == ["fecproxy_flows"] and len(full["samples"]) == 1 and len(full["events"]) == 2
     assert [e["event"] for e in get("events_since=1")["events"]] == ["adapted"]
     assert history_query("events_since=nonsense") == (False, 0)
+
+
+def test_the_history_stands_down_when_the_daemon_judges_silence_itself():
+    history, clock = _history()
+    token = event_sink.set(history.record)
+    try:
+        log_event(log, logging.WARNING, "peer_silent", silent_after_s=2.5)  # the daemon's own
+        received = 0.0
+        for second in range(40):
+            clock.now += 1
+            if not 10 <= second < 25:
+                received += 100
+            history.sample({'fecproxy_link_packets_received_total{kind="source"}': received})
+    finally:
+        event_sink.reset(token)
+    assert [e["event"] for e in history.events()] == ["peer_silent"]  # none of its own beside it

@@ -144,7 +144,9 @@ async def test_collector_reads_only_the_daemon_view_and_serve_exposes_it(nursery
     assert "fecproxy_datagrams_recovered_total 3.0" in text
     assert 'fecproxy_packets_dropped_total{reason="late"} 2.0' in text
     assert all(f'reason="{reason}"' in text for reason in DropReason)
-    assert 'fecproxy_info{interleave="1",k="8",m="2",role="receiver",size_classes="le256,gt256"' in text
+    assert (
+        'fecproxy_info{fec_code="block",interleave="1",k="8",m="2",role="receiver",size_classes="le256,gt256"' in text
+    )
     assert "fecproxy_link_loss_ratio 0.05" in text
     assert "fecproxy_received_code_source_symbols 16.0" in text and "fecproxy_received_code_repair_symbols 4.0" in text
     assert "_created" not in text  # no creation-time series beside the counters and the histogram

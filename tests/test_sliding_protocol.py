@@ -109,7 +109,7 @@ def test_window_age_and_flush():
     enc.send(b"c", 0, now=0.2)  # a and b are older than 0.1 s: out of the window
     (repair,) = enc.on_timer(0.3)
     assert wire.parse(repair, max_datagram=1400, sliding=True).nss == 1
-    assert enc.stats.flushed_repairs == 2
+    assert enc.flushed_repairs == 2
 
 
 def test_oversize_datagram_is_counted_and_skipped():
@@ -231,7 +231,11 @@ def test_garbage_and_mutated_packets_never_crash_the_decoder(junk, seed):
     dec = SlidingDecoder(SlidingDecoderSettings(max_datagram=64))
     events = feed(dec, packets) + dec.on_timer(5.0) + dec.close()
     for event in events:
-        assert isinstance(event, (Delivery, Dropped)) or type(event).__name__ in ("SessionStarted", "ControlReceived")
+        assert isinstance(event, (Delivery, Dropped)) or type(event).__name__ in (
+            "SessionStarted",
+            "ControlReceived",
+            "BlockReport",
+        )
 
 
 def test_keyed_decoder_delivers_only_what_was_sent_whatever_is_forged():
@@ -259,3 +263,19 @@ def test_keyed_decoder_delivers_only_what_was_sent_whatever_is_forged():
     assert remaining == []
     assert dec.stats.dropped[DropReason.AUTH] == len(forged) + 1
     assert dec.stats.dropped[DropReason.REPLAY] == 5
+
+
+def test_resolved_segments_are_reported_like_blocks_for_the_loss_estimate():
+    enc = SlidingEncoder(SlidingSettings(window=16, repair_interval=4), session=2)
+    dec = SlidingDecoder()
+    link = []
+    for i in range(32):
+        link += enc.send(bytes([i]), 0, 0.0)
+    sources = [n for n, p in enumerate(link) if p[0] == wire.SLIDING_SOURCE_TYPE_BYTE]
+    events = feed(dec, [p for n, p in enumerate(link) if n != sources[5]])
+    reports = [e for e in events if type(e).__name__ == "BlockReport"]
+    assert [(r.sbn, r.k, r.outcome, r.lost, r.recovered, r.span) for r in reports] == [
+        (0, 16, "recovered", 1, 1, 16),
+        (1, 16, "complete", 0, 0, 16),
+    ]
+    assert reports[0].arrived_mask == 0xFFFF & ~(1 << 5)

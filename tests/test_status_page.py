@@ -124,6 +124,7 @@ def test_status_json_holds_exactly_what_metrics_exposes():
     assert document["info"] == {
         "version": document["info"]["version"],
         "role": "receiver",
+        "fec_code": "block",
         "k": "12",
         "m": "4",
         "interleave": "1",

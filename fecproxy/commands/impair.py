@@ -82,8 +82,8 @@ def format_summary(relay: UdpRelay) -> str:
             f"{direction}: submitted {stats.submitted}, on the air {stats.sent}, delivered {stats.delivered} "
             f"(duplicates {stats.duplicates})\n"
             f"  loss model: lost {stats.lost}, {measured}\n"
-            f"  drops: queue {stats.queue_drops}, blackout {stats.blackout_drops}, in-flight limit "
-            f"{stats.in_flight_drops}, "
+            f"  drops: queue {stats.queue_drops}, blackout {stats.blackout_drops}, "
+            f"in-flight limit {stats.in_flight_drops}, "
             f"no client {shell['no_client']}, send errors {shell['send_error']}"
         )
     return "\n".join(lines)

@@ -569,10 +569,9 @@ def format_table(result: Plan, running: dict | None = None) -> str:
         lines.append(f"sender config: {keys}, fec.flush_ms: {req.flush_time * 1000:g}")
         # The same aim, for a sender that follows the link itself (fec.adapt, from loss reports).
         lines.append(
-            f"or let the sender choose m from its loss reports: fec.block_size: {best.k}, fec.interleave: "
-            f"{best.depth}, "
-            f"fec.flush_ms: {req.flush_time * 1000:g}, fec.adapt: "
-            f"{{target_residual: {req.target:g}, max_overhead: {req.max_overhead:g}}}"
+            "or let the sender choose m from its loss reports: "
+            f"fec.block_size: {best.k}, fec.interleave: {best.depth}, fec.flush_ms: {req.flush_time * 1000:g}, "
+            f"fec.adapt: {{target_residual: {req.target:g}, max_overhead: {req.max_overhead:g}}}"
         )
     else:
         lowest = min(result.candidates, key=lambda c: c.residual_loss)
@@ -593,8 +592,8 @@ def format_table(result: Plan, running: dict | None = None) -> str:
             " (interleave depth is not on the wire)"
         )
     lines.append(
-        "(each row: the fewest repair packets meeting the target for that k and D, else the most the overhead budget "
-        "allows)"
+        "(each row: the fewest repair packets meeting the target for that k and D, "
+        "else the most the overhead budget allows)"
     )
     caps = {d: effective_k(max(req.k_values), req.rate, req.flush_time, d) for d in req.depths}
     capped = {d: cap for d, cap in caps.items() if any(k > cap for k in req.k_values)}
@@ -603,15 +602,15 @@ def format_table(result: Plan, running: dict | None = None) -> str:
     if capped:
         at = ", ".join(f"{cap} at D={d}" for d, cap in capped.items())
         lines.append(
-            f"(at {req.rate:g} datagrams/s a block the {req.flush_time * 1000:g} ms flush timer closes holds at most "
-            f"{at}: "
-            f"larger k send the same blocks, so a row repeating another's (k', m') is listed once)"
+            f"(at {req.rate:g} datagrams/s a block the {req.flush_time * 1000:g} ms flush timer closes "
+            f"holds at most {at}: larger k send the same blocks, so a row repeating another's (k', m') "
+            "is listed once)"
         )
     if short:
         lines.append(
-            f"(k', m': the block the sender really sends at this rate — closed by the {req.flush_time * 1000:g} ms "
-            f"flush "
-            f"timer, repair by the {req.short_block_repair} short-block rule; the figures are those of (k', m'))"
+            "(k', m': the block the sender really sends at this rate — closed by the "
+            f"{req.flush_time * 1000:g} ms flush timer, repair by the {req.short_block_repair} short-block rule; "
+            "the figures are those of (k', m'))"
         )
     return "\n".join(lines)
 

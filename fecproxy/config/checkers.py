@@ -193,13 +193,8 @@ class NestedMapping:
             check = self.keys.get(name)
             if check is None:
                 near = closest(name, list(self.keys))
-                faults.append(
-                    (
-                        name,
-                        f"unknown key; "
-                        f"{f'did you mean {near}?' if near else 'valid keys here are ' + ', '.join(self.keys)}",
-                    )
-                )
+                hint = f"did you mean {near}?" if near else "valid keys here are " + ", ".join(self.keys)
+                faults.append((name, f"unknown key; {hint}"))
             elif raw is None and name in self.nullable:
                 parsed[name] = None
             elif raw is None:

@@ -40,6 +40,7 @@ from fecproxy.protocol import decoder as _decoder
 from fecproxy.protocol import encoder as _encoder
 from fecproxy.protocol import ordering as _ordering
 from fecproxy.protocol import pacer as _pacer
+from fecproxy.protocol import sliding_encoder as _sliding
 from fecproxy.protocol import wire
 from fecproxy.protocol.flows import FLOW_SLOTS
 from fecproxy.protocol.keys import MasterKey
@@ -62,6 +63,22 @@ DEFAULT_INTERLEAVE = _encoder.DEFAULT_INTERLEAVE
 MAX_INTERLEAVE = _encoder.MAX_INTERLEAVE
 DEFAULT_SIZE_CLASSES = _encoder.DEFAULT_SIZE_CLASSES
 MAX_SIZE_BOUNDARIES = _encoder.MAX_SIZE_BOUNDARIES
+#: The sliding-window code (fec.code: sliding): the encoder owns its defaults, bounds and reasons.
+DEFAULT_WINDOW = _sliding.DEFAULT_WINDOW
+MAX_WINDOW = _sliding.MAX_WINDOW
+DEFAULT_WINDOW_MS = round(_sliding.DEFAULT_WINDOW_AGE * 1000)
+#: A window older than a minute protects nothing interactive; the same bound as flush_ms.
+MAX_WINDOW_MS = 60_000
+DEFAULT_REPAIR_INTERVAL = _sliding.DEFAULT_REPAIR_INTERVAL
+
+
+class FecCode(StrEnum):
+    """Which code the sender uses (the receiver decodes either, whatever its own setting)."""
+
+    BLOCK = "block"  # Reed–Solomon blocks of k (RFC 5510)
+    SLIDING = "sliding"  # sliding-window random linear code (RFC 8681)
+
+
 #: A block held open for more than a minute protects nothing in time for any real-time use, and
 #: keeps memory busy; beyond that the setting is surely a unit mistake (seconds for ms).
 MAX_FLUSH_MS = 60_000
@@ -260,6 +277,10 @@ class FecSection:
     adapt: AdaptSection | None = None  # None = m stays fixed at repair
     interleave: int = DEFAULT_INTERLEAVE  # D: open blocks per size class, fed in turn
     size_classes: tuple[int, ...] = DEFAULT_SIZE_CLASSES  # boundaries in bytes; () = one class
+    code: FecCode = FecCode.BLOCK  # block by default: the code every earlier receiver decodes
+    window: int = DEFAULT_WINDOW  # sliding: source packets in the encoding window
+    window_ms: int = DEFAULT_WINDOW_MS  # sliding: oldest source packet the window keeps
+    repair_interval: int = DEFAULT_REPAIR_INTERVAL  # sliding: one repair packet every this many
 
     @property
     def flush_seconds(self) -> float:
@@ -518,6 +539,12 @@ _SECTIONS: dict[str, tuple[type, dict[str, Callable]]] = {
             "adapt": _ADAPT,
             "interleave": Integer(1, MAX_INTERLEAVE, f"an integer 1..{MAX_INTERLEAVE} (1 = no interleaving)"),
             "size_classes": SizeBoundaries(MAX_SIZE_BOUNDARIES, MAX_DATAGRAM_BYTES_LIMIT),
+            "code": Choice(FecCode, "code"),
+            "window": Integer(1, MAX_WINDOW, f"an integer 1..{MAX_WINDOW} (source packets)"),
+            "window_ms": Integer(1, MAX_WINDOW_MS, f"an integer number of milliseconds 1..{MAX_WINDOW_MS}"),
+            "repair_interval": Integer(
+                1, MAX_WINDOW, f"an integer 1..{MAX_WINDOW} with repair_interval ≤ window (source packets per repair)"
+            ),
         },
     ),
     "decoder": (
@@ -680,6 +707,7 @@ class _Parser:
             else:
                 self.error(name, f"unknown key; {_suggest(name, None)}")
         first_exchange_given = "flows.first_exchange_timeout_s" in self.values
+        self.given = set(self.values)
         self.fill_defaults()
         self.check_role()
         self.check_fec()
@@ -761,6 +789,7 @@ class _Parser:
         k = self.values.get("fec.block_size")
         m = self.values.get("fec.repair")
         allow = self.values.get("fec.allow_repair_above_source")
+        self.check_sliding()
         if k is None or m is None:
             return
         if k + m > MAX_ENCODING_SYMBOLS:
@@ -776,6 +805,34 @@ class _Parser:
                 f"repair rate at or below the source rate), or set fec.allow_repair_above_source: true",
             )
         self.check_adapt(k, allow)
+
+    def check_sliding(self) -> None:
+        """The sliding window's own keys, and what of the block code's layout it cannot use."""
+        window, interval = self.values.get("fec.window"), self.values.get("fec.repair_interval")
+        if window is not None and interval is not None and interval > window:
+            self.error(
+                "fec.repair_interval",
+                f"{interval} is above fec.window {window}; expected repair_interval ≤ window (a repair packet "
+                "covers the window, so a longer interval leaves source packets no repair covers)",
+            )
+        if self.values.get("fec.code") != FecCode.SLIDING:
+            return
+        depth = self.values.get("fec.interleave")
+        if depth is not None and depth > 1:
+            self.error(
+                "fec.interleave",
+                f"{depth} is set but fec.code is sliding; expected 1 (interleaving spreads the packets of blocks; "
+                "the sliding window already covers each datagram by several repair packets in a row: "
+                "use fec.window for burst protection), or fec.code: block",
+            )
+        classes = self.values.get("fec.size_classes")
+        if "fec.size_classes" in getattr(self, "given", ()) and classes:
+            self.error(
+                "fec.size_classes",
+                f"{list(classes)} is set but fec.code is sliding; expected [] or no size_classes "
+                "(the sliding code keeps one window for all datagram sizes, so its repair packets are as long "
+                "as the window's longest datagram), or fec.code: block",
+            )
 
     def check_delivery(self) -> None:
         wait, hold = self.values.get("delivery.max_wait_ms"), self.values.get("decoder.hold_ms")

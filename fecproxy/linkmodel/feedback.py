@@ -37,6 +37,7 @@ from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
 from fecproxy.protocol.events import BlockReport, ControlReceived, Dropped
 from fecproxy.protocol.loss_report import KEY_CHECK_BODY, LossReport, encode_report, parse_report
 from fecproxy.protocol.peer_view import PeerHeard, PeerSilent, PeerView, silent_after_for
+from fecproxy.protocol.sliding_encoder import SlidingEncoder
 from fecproxy.protocol.wire import PacketError
 
 #: Source positions behind the loss and burst estimate a report carries: about one report
@@ -127,7 +128,9 @@ class Adapter:
     """The adapting side of the direction this daemon encodes: the peer's reports in, the m the
     encoder should use out (``repair``), with the controller's events for the log and metrics."""
 
-    def __init__(self, policy: AdaptPolicy, initial_repair: int, now: float, encoder: BlockEncoder) -> None:
+    def __init__(
+        self, policy: AdaptPolicy, initial_repair: int, now: float, encoder: BlockEncoder | SlidingEncoder
+    ) -> None:
         self.controller = RedundancyController(policy, initial_repair, now)
         self._encoder = encoder
         self._mark = (now, encoder.stats.source_packets, encoder.stats.datagram_bytes)
@@ -181,7 +184,7 @@ class Feedback:
     the adapter of the one it encodes, the link-loss estimates, their counts and deadlines.
     Encoder settings changes go through ``encoder.update`` (from the next block on)."""
 
-    def __init__(self, encoder: BlockEncoder, decoder: BlockDecoder) -> None:
+    def __init__(self, encoder: BlockEncoder | SlidingEncoder, decoder: BlockDecoder) -> None:
         self.encoder, self.decoder = encoder, decoder
         self.stats = ReportStats()
         self.reporter: LossReporter | None = None

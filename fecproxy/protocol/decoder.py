@@ -78,6 +78,7 @@ from fecproxy.protocol.events import (
 )
 from fecproxy.protocol.received_code import ReceivedCode
 from fecproxy.protocol.replay import ReplayWindow
+from fecproxy.protocol.sliding_decoder import SlidingDecoder, SlidingDecoderSettings
 
 #: How long an incomplete block waits for more packets.  Must exceed the sender's flush interval
 #: plus the link's delay spread; 500 ms covers a geostationary hop's jitter with room to spare
@@ -244,6 +245,13 @@ class BlockDecoder:
         #: was used (for the shell's rollover notice); None when unkeyed or not authentic.
         self.last_verified: auth.Verified | None = None
         self._code_told: tuple[int, int] | None = None  # the peer's code last told (PeerCodeSettled)
+        #: A peer with ``fec.code: sliding`` sends sliding-window packets: their windows live here,
+        #: per session of this table (sessions, keys and the peer address are ruled above), and
+        #: count into this decoder's stats.
+        self.sliding = SlidingDecoder(self._sliding_settings(), stats=self.stats)  # type: ignore[arg-type]
+
+    def _sliding_settings(self) -> SlidingDecoderSettings:
+        return SlidingDecoderSettings(hold_time=self.settings.hold_time, max_datagram=self.settings.max_datagram)
 
     @property
     def sessions(self) -> tuple[int, ...]:
@@ -414,7 +422,7 @@ class BlockDecoder:
         """``receive`` without its fast path: complete on its own (the fast path only saves the
         parsing of the two commonest packets), so tests can compare the two."""
         try:
-            pkt = wire.parse(data, max_datagram=self.settings.max_datagram)
+            pkt = wire.parse(data, max_datagram=self.settings.max_datagram, sliding=True)
         except wire.PacketError as error:
             return [self._drop(error.reason, str(error))]
         if isinstance(pkt, wire.ControlPacket):
@@ -441,15 +449,23 @@ class BlockDecoder:
             self.received_code.reset()
             self._code_told = None
             events.append(SessionStarted(sess.id, previous))
-        if isinstance(pkt, wire.SourcePacket):
+        if isinstance(pkt, (wire.SourcePacket, wire.SlidingSourcePacket)):
             self.stats.source_received += 1
         else:
             self.stats.repair_received += 1
-            if sess is self._followed:  # the peer's code is the followed session's
+            if sess is self._followed and isinstance(pkt, wire.RepairPacket):  # the followed session's code
                 settled = self.received_code.note(pkt.sbn, pkt.k, pkt.esi)
                 if settled is not None:
                     self._code_settled(settled, events)
-        self._admit(sess, pkt, now, events)
+        if isinstance(pkt, (wire.SlidingSourcePacket, wire.SlidingRepairPacket)):
+            sliding = self.sliding
+            if sliding.settings.hold_time != self.settings.hold_time or (
+                sliding.settings.max_datagram != self.settings.max_datagram
+            ):
+                sliding.settings = self._sliding_settings()  # a reload changed them
+            events += sliding.take(sess.id, pkt, now)
+        else:
+            self._admit(sess, pkt, now, events)
         if sess is self._followed and self.learn_peer and addr != self.peer:
             self._peer_seen(addr, events)
         return events
@@ -481,6 +497,7 @@ class BlockDecoder:
         for block in list(sess.open.values()):
             events.append(self._finish(block, BlockOutcome.SUPERSEDED))
         del self._sessions[sess.id]
+        events += self.sliding.forget(sess.id)
         if sess.window is not None:
             self._retired_windows[sess.id] = sess.window
             while len(self._retired_windows) > RETIRED_WINDOWS:
@@ -528,6 +545,9 @@ class BlockDecoder:
         hold = self.settings.hold_time
         deadlines = [next(iter(s.open.values())).first_seen + hold for s in self._sessions.values() if s.open]
         deadlines += [s.last_seen + hold for s in self._sessions.values() if s is not self._followed and not s.open]
+        sliding = self.sliding.next_deadline()
+        if sliding is not None:
+            deadlines.append(sliding)
         return min(deadlines) if deadlines else None
 
     def on_timer(self, now: float) -> list[Event]:
@@ -543,6 +563,7 @@ class BlockDecoder:
                 events.append(self._finish(block, BlockOutcome.EXPIRED))
             if sess is not self._followed and not sess.open and now - sess.last_seen >= hold:
                 self._end_session(sess, events)
+        events += self.sliding.on_timer(now)
         return events
 
     def close(self) -> list[Event]:
@@ -554,7 +575,7 @@ class BlockDecoder:
             self._finish(block, BlockOutcome.EXPIRED)
             for sess in list(self._sessions.values())
             for block in list(sess.open.values())
-        ]
+        ] + self.sliding.close()
 
     # ------------------------------------------------------------------ internals
     def _drop(

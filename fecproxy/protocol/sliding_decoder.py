@@ -34,7 +34,16 @@ from dataclasses import dataclass, field
 
 from fecproxy.coding import sliding
 from fecproxy.protocol import auth, wire
-from fecproxy.protocol.events import ControlReceived, Delivery, Dropped, DropReason, Event, SessionStarted
+from fecproxy.protocol.events import (
+    BlockOutcome,
+    BlockReport,
+    ControlReceived,
+    Delivery,
+    Dropped,
+    DropReason,
+    Event,
+    SessionStarted,
+)
 from fecproxy.protocol.replay import ReplayWindow
 from fecproxy.protocol.sliding_encoder import MAX_WINDOW
 
@@ -50,6 +59,7 @@ SESSION_CONFIRM_PACKETS = 8
 #: Given-up ESIs remembered per session, so a very late source packet is still delivered once.
 GIVEN_UP_MEMORY = 4 * MAX_WINDOW
 _HALF = 1 << 31
+_ARRIVED, _RECOVERED, _UNRECOVERED = 0, 1, 2
 
 
 @dataclass(frozen=True)
@@ -69,22 +79,50 @@ class SlidingDecoderSettings:
 
 @dataclass
 class SlidingDecoderStats:
+    """The counters the block decoder's ``DecoderStats`` has too: embedded in a BlockDecoder, the
+    sliding decoder counts into that one, so metrics and logs read one set of figures."""
+
     source_received: int = 0
     repair_received: int = 0
     control_received: int = 0
     repair_unneeded: int = 0  # covered no missing datagram
+    delivered: int = 0
     lost: int = 0  # source datagrams missing on the link (before recovery), once resolved
     recovered: int = 0
     unrecovered: int = 0
-    reordered: int = 0  # noticed missing, then arrived directly
-    late_delivered: int = 0  # arrived directly after being given up
     dropped: dict[str, int] = field(default_factory=dict)
+
+
+#: Consecutive ESIs reported together as one BlockReport (a *segment*), so the link-loss
+#: estimate and the loss reports (which take blocks' arrival masks) see the sliding code's
+#: traffic as they see blocks of 16.  16 = the default block size, for comparable segments.
+SEGMENT = 16
+#: Segments not yet fully resolved kept per session (older ones are reported as they stand).
+MAX_OPEN_SEGMENTS = MAX_WINDOW // SEGMENT + 2
+
+
+class _Segment:
+    __slots__ = ("arrived", "lost", "recovered", "unrecovered", "resolved")
+
+    def __init__(self) -> None:
+        self.arrived = self.lost = self.recovered = self.unrecovered = self.resolved = 0
 
 
 class _Stream:
     """One sender session's decoding window."""
 
-    __slots__ = ("id", "system", "highest", "missing", "given_up", "repair_floor", "window", "last_seen", "packets")
+    __slots__ = (
+        "id",
+        "system",
+        "highest",
+        "missing",
+        "given_up",
+        "repair_floor",
+        "window",
+        "last_seen",
+        "packets",
+        "segments",
+    )
 
     def __init__(self, session: int, now: float, window: ReplayWindow | None):
         self.id = session
@@ -96,6 +134,7 @@ class _Stream:
         self.window = window
         self.last_seen = now
         self.packets = 0
+        self.segments: OrderedDict[int, _Segment] = OrderedDict()  # by ESI // SEGMENT
 
     def unwrap(self, esi: int) -> int:
         """The 32-bit wire ESI as a position in this stream (serial arithmetic around the newest)."""
@@ -108,11 +147,19 @@ class SlidingDecoder:
     """One direction's sliding-window decoder.  Not thread-safe; one per link direction."""
 
     def __init__(
-        self, settings: SlidingDecoderSettings = SlidingDecoderSettings(), keyring: auth.Keyring | None = None
+        self,
+        settings: SlidingDecoderSettings = SlidingDecoderSettings(),
+        keyring: auth.Keyring | None = None,
+        *,
+        stats: SlidingDecoderStats | None = None,
     ):
         self.settings = settings
         self.keyring = keyring
-        self.stats = SlidingDecoderStats()
+        #: Shared with a BlockDecoder that embeds this one (any object with these counters).
+        self.stats = stats if stats is not None else SlidingDecoderStats()
+        self.reordered = 0  # noticed missing, then arrived directly
+        self.late_delivered = 0  # arrived directly after being given up
+        self._events: list[Event] = []  # segment reports made while handling a packet
         self._streams: OrderedDict[int, _Stream] = OrderedDict()  # least recently active first
         self._windows: OrderedDict[int, ReplayWindow] = OrderedDict()  # sessions proved, not yet live
         self._primary: _Stream | None = None
@@ -148,7 +195,38 @@ class SlidingDecoder:
         else:
             self.stats.repair_received += 1
             self._repair(stream, pkt, now, events)
-        return events, stream is self._primary
+        return self._with_reports(events), stream is self._primary
+
+    def take(self, session: int, pkt: wire.SlidingSourcePacket | wire.SlidingRepairPacket, now: float) -> list[Event]:
+        """A parsed, authenticated packet of ``session`` whose session rules the caller (a
+        BlockDecoder) already applied: only the window's work.  Counts nothing but what it does."""
+        stream = self._streams.get(session)
+        if stream is None:
+            while len(self._streams) >= MAX_SESSIONS:
+                self._end(next(iter(self._streams.values())))
+            stream = self._streams[session] = _Stream(session, now, None)
+        else:
+            self._streams.move_to_end(session)
+        stream.last_seen = now
+        events: list[Event] = []
+        if isinstance(pkt, wire.SlidingSourcePacket):
+            self._source(stream, pkt, now, events)
+        else:
+            self._repair(stream, pkt, now, events)
+        return self._with_reports(events)
+
+    def forget(self, session: int) -> list[Event]:
+        """The caller ended this session: what it still misses is lost."""
+        stream = self._streams.get(session)
+        if stream is not None:
+            self._end(stream)
+        return self._with_reports([])
+
+    def _with_reports(self, events: list[Event]) -> list[Event]:
+        if self._events:
+            events += self._events
+            self._events = []
+        return events
 
     def next_deadline(self) -> float | None:
         """When the oldest missing datagram's hold time ends."""
@@ -161,13 +239,15 @@ class SlidingDecoder:
         for stream in self._streams.values():
             old = [esi for esi, noticed in stream.missing.items() if noticed <= limit]
             self._give_up(stream, old)
-        return []
+        return self._with_reports([])
 
     def close(self) -> list[Event]:
-        """On shutdown: what is still missing is lost."""
+        """On shutdown: what is still missing is lost; segments are reported as they stand."""
         for stream in self._streams.values():
             self._give_up(stream, list(stream.missing))
-        return []
+            while stream.segments:
+                self._report_segment(stream, *stream.segments.popitem(last=False))
+        return self._with_reports([])
 
     def held_bytes(self) -> int:
         return sum(stream.system.held_bytes() for stream in self._streams.values())
@@ -189,7 +269,8 @@ class SlidingDecoder:
         if highest is not None and esi <= highest - self.settings.max_window:
             if esi in stream.given_up:  # given up, never delivered: deliver it now
                 del stream.given_up[esi]
-                self.stats.late_delivered += 1
+                self.late_delivered += 1
+                self.stats.delivered += 1
                 events.append(Delivery(pkt.flow, pkt.data, seq=pkt.seq))
                 return
             self._count(DropReason.STALE)
@@ -197,10 +278,13 @@ class SlidingDecoder:
             return
         if esi in stream.given_up:  # within the window but given up by time: still deliver it
             del stream.given_up[esi]
-            self.stats.late_delivered += 1
-        elif stream.missing.pop(esi, None) is not None:
-            self.stats.reordered += 1
+            self.late_delivered += 1
+        else:
+            if stream.missing.pop(esi, None) is not None:
+                self.reordered += 1
+            self._resolve(stream, esi, _ARRIVED)
         self._advance(stream, esi, now, seen=True)
+        self.stats.delivered += 1
         events.append(Delivery(pkt.flow, pkt.data, seq=pkt.seq))
         adui = wire.pack_symbol_prefix(pkt.flow, len(pkt.data), pkt.seq) + pkt.data
         self._deliver_solved(stream, system.add_known(esi, adui), now, events)
@@ -280,6 +364,7 @@ class SlidingDecoder:
         for esi in esis:
             del stream.missing[esi]
             stream.given_up[esi] = None
+            self._resolve(stream, esi, _UNRECOVERED)
         while len(stream.given_up) > GIVEN_UP_MEMORY:
             stream.given_up.popitem(last=False)
         stream.system.give_up(esis)
@@ -302,10 +387,61 @@ class SlidingDecoder:
                 stream.given_up[esi] = None
                 self.stats.lost += 1
                 self.stats.unrecovered += 1
+                self._resolve(stream, esi, _UNRECOVERED)
                 continue
             self.stats.lost += 1
             self.stats.recovered += 1
+            self.stats.delivered += 1
+            self._resolve(stream, esi, _RECOVERED)
             events.append(Delivery(flow, symbol[end : end + length], recovered=True, delay=now - noticed, seq=seq))
+
+    # --- segment reports ---------------------------------------------------------------------
+
+    def _resolve(self, stream: _Stream, esi: int, outcome: int) -> None:
+        """One ESI's fate is known: it counts towards its segment's report."""
+        key = esi // SEGMENT
+        segments = stream.segments
+        segment = segments.get(key)
+        if segment is None:
+            segment = segments[key] = _Segment()
+            while len(segments) > MAX_OPEN_SEGMENTS:
+                segments.popitem(last=False)  # never completed (e.g. began before we listened)
+        if outcome == _ARRIVED:
+            segment.arrived |= 1 << (esi % SEGMENT)
+        else:
+            segment.lost += 1
+            if outcome == _RECOVERED:
+                segment.recovered += 1
+            else:
+                segment.unrecovered += 1
+        segment.resolved += 1
+        if segment.resolved >= SEGMENT:
+            del segments[key]
+            self._report_segment(stream, key, segment)
+
+    def _report_segment(self, stream: _Stream, key: int, segment: _Segment) -> None:
+        """A BlockReport for a fully resolved segment (partial ones tell the estimator nothing
+        reliable and are dropped)."""
+        if segment.resolved < SEGMENT:
+            return
+        if not segment.lost:
+            outcome = BlockOutcome.COMPLETE
+        elif not segment.unrecovered:
+            outcome = BlockOutcome.RECOVERED
+        else:
+            outcome = BlockOutcome.EXPIRED
+        self._events.append(
+            BlockReport(
+                key % wire.SBN_MODULUS,
+                SEGMENT,
+                outcome,
+                segment.lost,
+                segment.recovered,
+                segment.unrecovered,
+                segment.arrived,
+                SEGMENT,
+            )
+        )
 
     # --- sessions and authentication ---------------------------------------------------------
 

@@ -18,13 +18,16 @@ the key (RFC 8682), and a small cycle lets both sides cache them per key.
 
 from __future__ import annotations
 
+import dataclasses
+import math
 from collections import deque
 from collections.abc import Iterable
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 from fecproxy.coding import sliding
 from fecproxy.protocol import wire
 from fecproxy.protocol.auth import Sealer
+from fecproxy.protocol.encoder import EncoderSettings, EncoderStats
 from fecproxy.protocol.events import DropReason
 from fecproxy.protocol.ordering import FlowSequencer
 
@@ -80,27 +83,49 @@ class SlidingSettings:
         return 1 / self.repair_interval
 
 
-@dataclass
-class SlidingEncoderStats:
-    source_packets: int = 0
-    repair_packets: int = 0
-    flushed_repairs: int = 0  # repair packets the flush timer sent (traffic paused)
-    source_bytes: int = 0  # on the link, headers included
-    datagram_bytes: int = 0
-    repair_bytes: int = 0
-    window_symbols: int = 0  # symbols in the encoding window now
-    dropped: dict[str, int] = field(default_factory=dict)
+def interval_for(reference: EncoderSettings) -> int:
+    """The repair interval with the overhead of a block code (k, m): ceil(k / m), so the sliding
+    code never sends more repair than m/k; how ``fec.adapt`` (which chooses m for k =
+    ``fec.block_size``) sets the sliding code's interval.  m = 0: one repair per window."""
+    if reference.repair <= 0:
+        return MAX_WINDOW
+    return max(1, math.ceil(reference.block_size / reference.repair))
 
 
 class SlidingEncoder:
-    """One direction's sliding-window encoder.  Not thread-safe; one per link direction."""
+    """One direction's sliding-window encoder.  Not thread-safe; one per link direction.
 
-    def __init__(self, settings: SlidingSettings, session: int, *, first_esi: int = 0, sealer: Sealer | None = None):
+    It offers the block encoder's surface to the shell and the feedback (``stats`` as
+    :class:`EncoderStats`, ``settings`` as the configured block shape, ``update``), so a daemon
+    runs either code through the same loops: ``settings`` is the block shape fec.adapt reasons
+    about, ``sliding_settings`` the window in force.  With ``follow_repair`` (fec.adapt is on) an
+    ``update`` with a new block shape sets the repair interval to that shape's overhead
+    (:func:`interval_for`); otherwise the configured interval stays.
+    """
+
+    def __init__(
+        self,
+        settings: SlidingSettings,
+        session: int,
+        *,
+        first_esi: int = 0,
+        sealer: Sealer | None = None,
+        reference: EncoderSettings | None = None,
+        follow_repair: bool = False,
+    ):
         if not 0 <= session <= 0xFFFFFFFF:
             raise ValueError(f"session {session} does not fit 32 bits")
         self.session = session
         self.sealer = sealer
-        self.stats = SlidingEncoderStats()
+        self.stats = EncoderStats()
+        self.flushed_repairs = 0  # repair packets the flush timer sent (traffic paused)
+        self.window_symbols = 0  # symbols in the encoding window now
+        self.follow_repair = follow_repair
+        self._reference = (
+            reference
+            if reference is not None
+            else EncoderSettings(max_datagram=settings.max_datagram, interleave=1, size_classes=())
+        )
         self._settings = settings
         self._next_esi = first_esi % wire.ESI_MODULUS
         self._sequences = FlowSequencer()  # each flow's datagrams numbered in the order taken
@@ -111,12 +136,24 @@ class SlidingEncoder:
         self._longest = 0
 
     @property
-    def settings(self) -> SlidingSettings:
+    def settings(self) -> EncoderSettings:
+        """The block shape this encoder stands for (what fec.adapt and the metrics read)."""
+        return self._reference
+
+    @property
+    def sliding_settings(self) -> SlidingSettings:
         return self._settings
 
-    def update(self, settings: SlidingSettings) -> None:
-        """New window, interval, flush or density: from the next packet on (the window shrinks
-        at once if it is now too long)."""
+    def update(self, settings: SlidingSettings | EncoderSettings) -> None:
+        """New window, interval, flush or density (SlidingSettings), or a new block shape
+        (EncoderSettings: with ``follow_repair``, its overhead sets the interval): from the next
+        packet on (the window shrinks at once if it is now too long)."""
+        if isinstance(settings, EncoderSettings):
+            self._reference = settings
+            if not self.follow_repair:
+                return
+            interval = min(interval_for(settings), self._settings.window)
+            settings = dataclasses.replace(self._settings, repair_interval=interval)
         self._settings = settings
         self._slide(None)
 
@@ -175,7 +212,7 @@ class SlidingEncoder:
             oldest = now - settings.window_age
             while window and window[0][1] < oldest:
                 window.popleft()
-        self.stats.window_symbols = len(window)
+        self.window_symbols = len(window)
 
     def _repair(self) -> bytes:
         """One repair packet over the whole window (RFC 8681 §3.6 coefficients from a fresh key)."""
@@ -208,7 +245,7 @@ class SlidingEncoder:
         if not self._window:  # everything aged out: nothing left to protect
             self._since_repair, self._uncovered_since = 0, None
             return []
-        self.stats.flushed_repairs += 1
+        self.flushed_repairs += 1
         return self._sealed([self._repair()])
 
     def close(self) -> list[bytes]:

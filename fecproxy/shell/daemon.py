@@ -32,7 +32,6 @@ from fecproxy.config.addresses import format_sockaddr
 from fecproxy.linkmodel.feedback import Feedback, ReportDue
 from fecproxy.protocol import auth
 from fecproxy.protocol.decoder import BlockDecoder
-from fecproxy.protocol.encoder import BlockEncoder
 from fecproxy.protocol.events import (
     BlockOutcome,
     BlockReport,
@@ -46,6 +45,7 @@ from fecproxy.protocol.events import (
 from fecproxy.protocol.loss_report import KEY_CHECK_BODY
 from fecproxy.protocol.ordering import InOrderDelivery
 from fecproxy.protocol.pacer import PacketKind
+from fecproxy.protocol.sliding_encoder import SlidingEncoder
 from fecproxy.shell.app_side import SideOpenError, app_side
 from fecproxy.shell.fdlimit import ensure_open_files, files_needed
 from fecproxy.shell.history import History
@@ -56,12 +56,13 @@ from fecproxy.shell.operator_notes import OversizeWarning, log_core_event, ratio
 from fecproxy.shell.settings import (
     ReloadRejected,
     apply_flow_timeouts,
+    apply_sliding,
     configure_feedback,
     decoder_settings,
-    encoder_settings,
     flow_table,
     keep_fixed,
     keyring,
+    make_encoder,
     needs_restart,
     read_new_config,
 )
@@ -110,7 +111,8 @@ class Daemon:
         # A fresh random salt per start: with the random session it makes the encrypted mode's
         # nonces unique across restarts (protocol.auth, "Nonce rule").
         sealer = None if keys is None else auth.Sealer(keys.current, secrets.randbits(auth.SALT_BITS))
-        self.encoder = BlockEncoder(encoder_settings(config), self.session, sealer=sealer)
+        # fec.code: block or sliding; both offer the loops and the feedback the same surface.
+        self.encoder = make_encoder(config, self.session, sealer)
         # No configured peer: the decoder learns it from the followed session's packets.
         self.decoder = BlockDecoder(decoder_settings(config), keys, learn_peer=config.link.peer is None)
         # Loss reports on the direction we decode; adaptation of the one we encode (fec.adapt).
@@ -260,8 +262,8 @@ class Daemon:
                     peer=format_sockaddr(self.peer) if self.peer else "learned",
                     listen=side["listen"],
                     forward=side["forward"],
-                    k=cfg.fec.block_size,
-                    m=self.encoder.settings.repair,
+                    code=str(cfg.fec.code),
+                    **self._code_fields(cfg),
                     flush_ms=cfg.fec.flush_ms,
                     adapt="on" if self.feedback.adapting else "off",
                     link_rate=f"{cfg.link.rate:g}" if cfg.link.rate is not None else "off",
@@ -499,6 +501,7 @@ class Daemon:
         fixed = needs_restart(self.config, new)
         if fixed:
             log_event(log, logging.WARNING, "reload_needs_restart", keys=",".join(fixed))
+        apply_sliding(self.encoder, new)
         configure_feedback(self.feedback, new, trio.current_time())
         self.decoder.settings = decoder_settings(new)
         self._apply_keys(new)
@@ -509,12 +512,23 @@ class Daemon:
             log,
             logging.INFO,
             "reloaded",
-            k=new.fec.block_size,
-            m=self.encoder.settings.repair,
+            **self._code_fields(new),
             flush_ms=new.fec.flush_ms,
         )
         self._reschedule()
         return True
+
+    def _code_fields(self, cfg: Config) -> dict[str, Any]:
+        """What the log says of the code this side sends with: k and m, or the sliding window."""
+        encoder = self.encoder
+        if isinstance(encoder, SlidingEncoder):
+            sliding = encoder.sliding_settings
+            return dict(
+                window=sliding.window,
+                window_ms=round(sliding.window_age * 1000),
+                repair_interval=sliding.repair_interval,
+            )
+        return dict(k=cfg.fec.block_size, m=encoder.settings.repair)
 
     def _apply_keys(self, new: Config) -> None:
         """New keys from the reloaded config: sent with from the next packet on, accepted at

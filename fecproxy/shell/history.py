@@ -77,9 +77,7 @@ PEER_SILENT_GAPS = 10.0
 #: Samples in which the peer's packets rose before its silence is judged: its rhythm is unknown before.
 MIN_RISES = 3
 RECEIVED = "fecproxy_link_packets_received_total"
-#: The daemon's report-based silence flag (fecproxy.protocol.peer_view): finite once the peer
-#: reports, and then the daemon logs peer_silent/peer_heard itself.
-PEER_SILENT_GAUGE = "fecproxy_peer_silent"
+PEER_EVENTS = frozenset({"peer_silent", "peer_heard"})
 
 log = logging.getLogger("fecproxy.shell.daemon")
 
@@ -128,6 +126,10 @@ class History:
         self._heard_at: float | None = None  # uptime of the last sample whose received count rose
         self._gaps: deque[tuple[float, float]] = deque(maxlen=60)  # (uptime, received) of recent samples
         self._silent_since: float | None = None
+        #: False once the daemon itself logs peer_silent/peer_heard (protocol.peer_view, where the
+        #: shell wires it): then its own judgement is the one kept, not a second one from here.
+        self.watch_peer = True
+        self._noting = False  # True while this history logs its own peer event
 
     def uptime(self) -> float:
         return self.clock() - self.started
@@ -137,6 +139,8 @@ class History:
         """Keep one event (the event sink :func:`fecproxy.shell.logs.log_event` calls)."""
         if level < logging.INFO or event in NOT_EVENTS:
             return
+        if event in PEER_EVENTS and not self._noting:
+            self.watch_peer = False
         self.recorded += 1
         now = self.wall()
         kept = dict(list(fields.items())[:MAX_EVENT_FIELDS])
@@ -163,21 +167,28 @@ class History:
             self.series = tuple(sorted(key for key in values if _family(key) in HISTORY_FAMILIES))[:MAX_SERIES]
         row = array("d", (values.get(key, math.nan) for key in self.series))
         self._rows.append((now, row))
-        if math.isfinite(values.get(PEER_SILENT_GAUGE, math.nan)):
-            return  # the daemon's own peer view (from the peer's loss reports) tells silence: once is enough
         self._watch_peer(now, sum(value for key, value in values.items() if _family(key) == RECEIVED))
 
     def rows(self) -> list[list[float | None]]:
         """Every kept row as [uptime, value, ...] in the order of :attr:`series` (NaN as None)."""
         return [[round(t, 3), *(value if math.isfinite(value) else None for value in row)] for t, row in self._rows]
 
+    def _note(self, level: int, event: str, **fields: object) -> None:
+        self._noting = True
+        try:
+            log_event(log, level, event, **fields)
+        finally:
+            self._noting = False
+
     def _watch_peer(self, now: float, received: float) -> None:
+        if not self.watch_peer:
+            return
         previous, self._received = self._received, received
         if previous is None or received < previous:
             return  # the first sample, or a restarted count
         if received > previous:
             if self._silent_since is not None:
-                log_event(log, logging.INFO, "peer_heard", silent_s=round(now - self._silent_since, 1))
+                self._note(logging.INFO, "peer_heard", silent_s=round(now - self._silent_since, 1))
                 self._silent_since = None
             self._heard_at = now
             self._gaps.append((now, received))
@@ -187,7 +198,7 @@ class History:
         quiet, threshold = now - self._heard_at, self._silence_threshold()
         if threshold is not None and quiet >= threshold:
             self._silent_since = self._heard_at
-            log_event(log, logging.WARNING, "peer_silent", quiet_s=round(quiet, 1), detail="no packet from the peer")
+            self._note(logging.WARNING, "peer_silent", quiet_s=round(quiet, 1), detail="no packet from the peer")
 
     def _silence_threshold(self) -> float | None:
         """PEER_SILENT_MIN_S, or PEER_SILENT_GAPS of the peer's usual gaps when it sends slowly;

@@ -48,12 +48,14 @@ _KIND_BY_TYPE = {
     wire.SOURCE_TYPE_BYTE: PacketKind.SOURCE,
     wire.REPAIR_TYPE_BYTE: PacketKind.REPAIR,
     wire.CONTROL_TYPE_BYTE: PacketKind.CONTROL,
+    wire.SLIDING_SOURCE_TYPE_BYTE: PacketKind.SOURCE,  # fec.code: sliding (RFC 8681)
+    wire.SLIDING_REPAIR_TYPE_BYTE: PacketKind.REPAIR,
 }
 
 
 def kind_of(packet: bytes) -> PacketKind:
-    """Source, repair or control from the clear first byte (version | type); other packet types
-    (sliding-window codes) carry data and rank as source."""
+    """Source, repair or control from the clear first byte (version | type), block or sliding
+    code alike; an unknown type ranks as source (never dropped before repair)."""
     return _KIND_BY_TYPE.get(packet[0], PacketKind.SOURCE) if packet else PacketKind.SOURCE
 
 

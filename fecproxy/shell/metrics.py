@@ -231,6 +231,19 @@ class DaemonCollector:
             value=math.nan if received_m is None else received_m,
         )
         yield from _feedback_metrics(d.feedback, d.block_shape, d.received_code)
+        sliding = getattr(d, "sliding_shape", None)
+        if sliding is not None:  # fec.code: sliding
+            yield GaugeMetricFamily(
+                "fecproxy_sliding_window_packets",
+                "Source packets the sliding-window code's encoding window holds at most (fec.window).",
+                value=sliding[0],
+            )
+            yield GaugeMetricFamily(
+                "fecproxy_sliding_repair_interval_packets",
+                "Source packets per repair packet of the sliding-window code now (fec.repair_interval, or as "
+                "fec.adapt chose it).",
+                value=sliding[1],
+            )
         yield from _order_metrics(getattr(d, "order_stats", None))
         try:
             now: float | None = trio.current_time()  # the cores' clock: scrapes run in the daemon's trio loop
@@ -250,6 +263,7 @@ class DaemonCollector:
             {
                 "version": __version__,
                 "role": d.role,
+                "fec_code": "block" if sliding is None else "sliding",
                 "k": str(k),
                 "m": str(m),
                 "interleave": str(d.interleave),

@@ -15,10 +15,11 @@ from pathlib import Path
 from fecproxy.config import Config, ConfigError, load_config
 from fecproxy.linkmodel.adaptation import AdaptPolicy
 from fecproxy.linkmodel.feedback import Feedback
-from fecproxy.protocol.auth import Keyring
+from fecproxy.protocol.auth import Keyring, Sealer
 from fecproxy.protocol.decoder import DecoderSettings
-from fecproxy.protocol.encoder import EncoderSettings
+from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
 from fecproxy.protocol.flows import ClientFlowTable, PeerFlowTable
+from fecproxy.protocol.sliding_encoder import SlidingEncoder, SlidingSettings
 
 #: Config sections a reload cannot apply (they need new sockets or another role; logging is set
 #: up once by the command, whose --log-level/--log-format may override it; the delivery order is
@@ -26,7 +27,7 @@ from fecproxy.protocol.flows import ClientFlowTable, PeerFlowTable
 #: and the running value is kept.
 RESTART_KEYS = ("role", "listen", "forward", "link", "metrics", "sockets", "log", "delivery")
 #: Single keys a reload cannot apply: the flow table is built at its size once.
-RESTART_FIELDS = ("flows.max",)
+RESTART_FIELDS = ("flows.max", "fec.code")
 
 
 class ReloadRejected(Exception):
@@ -75,6 +76,38 @@ def encoder_settings(config: Config) -> EncoderSettings:
         size_classes=fec.size_classes,
         allow_repair_above_source=fec.allow_repair_above_source,
     )
+
+
+def sliding_settings(config: Config) -> SlidingSettings:
+    """fec.code: sliding — the window, its age, the repair interval and the flush time."""
+    fec = config.fec
+    return SlidingSettings(
+        window=fec.window,
+        window_age=fec.window_ms / 1000,
+        repair_interval=fec.repair_interval,
+        flush=fec.flush_seconds,
+        max_datagram=fec.max_datagram_bytes,
+    )
+
+
+def make_encoder(config: Config, session: int, sealer: Sealer | None) -> BlockEncoder | SlidingEncoder:
+    """The encoder of ``fec.code``: blocks, or the sliding window (which the same loops drive)."""
+    if config.fec.code == "sliding":
+        return SlidingEncoder(
+            sliding_settings(config),
+            session,
+            sealer=sealer,
+            reference=encoder_settings(config),
+            follow_repair=config.fec.adapt is not None,
+        )
+    return BlockEncoder(encoder_settings(config), session, sealer=sealer)
+
+
+def apply_sliding(encoder: BlockEncoder | SlidingEncoder, config: Config) -> None:
+    """A reload's window, age, interval and flush (fec.code itself needs a restart)."""
+    if isinstance(encoder, SlidingEncoder) and config.fec.code == "sliding":
+        encoder.follow_repair = config.fec.adapt is not None
+        encoder.update(sliding_settings(config))
 
 
 def decoder_settings(config: Config) -> DecoderSettings:

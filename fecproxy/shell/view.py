@@ -13,6 +13,7 @@ from fecproxy.linkmodel.feedback import Feedback
 from fecproxy.protocol.decoder import BlockDecoder, DecoderStats
 from fecproxy.protocol.encoder import BlockEncoder, EncoderStats
 from fecproxy.protocol.ordering import InOrderDelivery, OrderStats
+from fecproxy.protocol.sliding_encoder import SlidingEncoder
 from fecproxy.shell.app_side import AppSide
 from fecproxy.shell.link_output import LinkFigures, LinkOutput
 
@@ -36,7 +37,7 @@ class DaemonStatsView:
     def __init__(
         self,
         role: str,
-        encoder: BlockEncoder,
+        encoder: BlockEncoder | SlidingEncoder,
         decoder: BlockDecoder,
         feedback: Feedback,
         app: AppSide,
@@ -74,6 +75,14 @@ class DaemonStatsView:
         """(k, m) of the blocks being sent now."""
         settings = self._encoder.settings
         return settings.block_size, settings.repair
+
+    @property
+    def sliding_shape(self) -> tuple[int, int, float] | None:
+        """(window, repair interval, window age in s) with fec.code: sliding; None with blocks."""
+        sliding = getattr(self._encoder, "sliding_settings", None)
+        if sliding is None:
+            return None
+        return sliding.window, sliding.repair_interval, sliding.window_age
 
     @property
     def interleave(self) -> int:

@@ -64,6 +64,8 @@ from fecproxy.config import MAX_HOLD_MS, ConfigError
 if TYPE_CHECKING:  # prometheus_client loads only when --metrics-port asks for it
     from prometheus_client import CollectorRegistry
 
+    from fecproxy.shell.history import History
+
 __all__ = ["DemoOptions", "DemoResult", "add_arguments", "main", "run_demo"]
 
 #: The live view is redrawn this often (without a terminal it prints a line less often, see render).
@@ -75,21 +77,21 @@ SETTLE_POLL_S = 0.05
 
 
 def _start_metrics(
-    registry: CollectorRegistry, port: int, nursery: trio.Nursery
+    registry: CollectorRegistry, port: int, nursery: trio.Nursery, history: History | None = None
 ) -> tuple[Callable[[], None] | None, str]:
-    """Serve the receiver's /metrics from a task in ``nursery``; a busy port falls back to any
-    free one, never to a crash."""
+    """Serve the receiver's /metrics (and its ``history`` for the status page) from a task in
+    ``nursery``; a busy port falls back to any free one, never to a crash."""
     from fecproxy.shell.metrics import serve
 
     try:
-        server = serve(registry, LOOPBACK, port)
+        server = serve(registry, LOOPBACK, port, history=history)
         nursery.start_soon(server.run)
         return server.stop, _endpoints(server.port)
     except OSError as error:
         busy = f"port {port}: {error.strerror or error}"
     if port != 0:
         try:
-            server = serve(registry, LOOPBACK, 0)
+            server = serve(registry, LOOPBACK, 0, history=history)
             nursery.start_soon(server.run)
             return server.stop, f"{_endpoints(server.port)} ({busy}, so a free port was taken)"
         except OSError as error:
@@ -138,7 +140,9 @@ async def run_demo(options: DemoOptions, out=None) -> DemoResult:
             sender = await nursery.start(
                 Daemon(build_configs(options, sink_address, relay.listen_address[:2]), handle_signals=False).run
             )
-            stop_metrics, metrics_text = _start_metrics(receiver.registry, options.metrics_port, nursery)
+            stop_metrics, metrics_text = _start_metrics(
+                receiver.registry, options.metrics_port, nursery, receiver.history
+            )
             try:
                 station, sink = Station(options.rate, options.seed), Sink(tap.lost_ids)
                 out.write(

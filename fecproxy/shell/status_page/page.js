@@ -375,6 +375,12 @@
       $("role").textContent = read.info.role || "?";
       $("version").textContent = read.info.version || "?";
       for (const key of ["k", "m"]) { $("code-" + key).textContent = read.info[key] || "?"; $("code-" + key).dataset.value = read.info[key] || ""; }
+      const sliding = read.info.fec_code === "sliding";
+      $("sliding-fact").hidden = !sliding;
+      if (sliding) {
+        $("sliding-window").textContent = read.s["fecproxy_sliding_window_packets"] ?? "?";
+        $("sliding-interval").textContent = read.s["fecproxy_sliding_repair_interval_packets"] ?? "?";
+      }
       $("uptime").textContent = duration(doc.uptime_s);
       drawKpis();
       caption();
