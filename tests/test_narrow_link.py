@@ -75,7 +75,7 @@ class Sink:
         self.sock.close()
 
 
-def _config(name: str, **changes: dict) -> dict:
+def _config(name: str, **changes: dict | None) -> dict:
     document = yaml.safe_load((CONFIG / name).read_text())
     for section, values in changes.items():
         if values is None:

@@ -392,3 +392,27 @@ def test_status_page_in_headless_chromium_shows_the_daemons_metrics(pairs, tmp_p
         assert shown["plan"] is None and "no code meets" in shown["planText"]
     else:
         assert shown["plan"] == [recommended["k"], recommended["m"]]
+
+
+def test_in_the_background_the_plan_is_computed_off_the_event_loop_and_shown_when_ready():
+    """The daemon's loop answers /status.json; a 15–80 ms plan must not hold it up."""
+    import threading
+
+    daemon, clock = _Daemon(), _Clock()
+    release, threads = threading.Event(), []
+
+    def slow_planner(loss, burst, rate):
+        threads.append(threading.current_thread().name)
+        release.wait(10)
+        return {"recommended": None, "note": "planned", "command": status.plan_command(loss, burst, rate)}
+
+    source = status.StatusSource(build_registry(daemon)[0], clock=clock, planner=slow_planner, background=True)
+    clock.now += 5
+    daemon.decoder_stats.source_received += 1000
+    assert source.document()["plan"]["note"].startswith("computing")  # answered at once
+    release.set()
+    deadline = time.monotonic() + 10
+    while source.document()["plan"].get("note") != "planned" and time.monotonic() < deadline:
+        time.sleep(0.01)
+    assert source.document()["plan"]["note"] == "planned"
+    assert threads == ["fecproxy-plan"]  # one worker, not the caller's thread

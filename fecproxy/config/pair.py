@@ -82,6 +82,7 @@ class _Checker:
             self.hold_covers_flush(encoder, decoder)
             self.blocks_fit(encoder, decoder)
             self.reports_for_adaptation(encoder, decoder)
+            self.in_order_wait(encoder, decoder)
         self.flow_tables()
         self.link_budgets()
         self.addresses()
@@ -156,6 +157,22 @@ class _Checker:
                 "decoder.hold_ms",
                 f"{hold} is below {encoder.source}'s fec.flush_ms {flush}{air}{spread} = {needed} ms; expected "
                 f"hold_ms ≥ {needed} (a block would expire before its repair packets arrive)",
+            )
+
+    def in_order_wait(self, encoder: Side, decoder: Side) -> None:
+        """With in-order delivery a datagram behind a gap waits at most max_wait_ms; a gap is
+        rebuilt when its block's repair arrives, up to the encoder's flush time (plus air time
+        and spread) after the block began: a shorter wait skips gaps that would have been rebuilt."""
+        delivery = decoder.config.delivery
+        if not delivery.in_order:
+            return
+        rebuilt = encoder.config.fec.flush_ms + _repair_air_ms(encoder.config) + self.spread
+        if delivery.max_wait_ms < rebuilt:
+            self.warn(
+                decoder,
+                "delivery.max_wait_ms",
+                f"{delivery.max_wait_ms} is below the {rebuilt} ms a gap may take to be rebuilt ({encoder.source}'s "
+                f"fec.flush_ms, plus air time and delay spread): such gaps are skipped although repair is on its way",
             )
 
     def link_budgets(self) -> None:

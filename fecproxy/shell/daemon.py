@@ -37,7 +37,6 @@ from fecproxy.protocol.events import (
     BlockReport,
     ControlReceived,
     Delivery,
-    Dropped,
     DropReason,
     KeyCheckDue,
     SessionStarted,
@@ -47,12 +46,13 @@ from fecproxy.protocol.ordering import InOrderDelivery
 from fecproxy.protocol.pacer import PacketKind
 from fecproxy.protocol.sliding_encoder import SlidingEncoder
 from fecproxy.shell.app_side import SideOpenError, app_side
+from fecproxy.shell.event_log import log_core_event
 from fecproxy.shell.fdlimit import ensure_open_files, files_needed
 from fecproxy.shell.history import History
 from fecproxy.shell.link_output import LinkOutput
 from fecproxy.shell.logs import event_sink, log_event, log_exception
 from fecproxy.shell.metrics import MetricsServer, build_registry, serve
-from fecproxy.shell.operator_notes import OversizeWarning, log_core_event, ratio_field, stats_loop
+from fecproxy.shell.operator_notes import OversizeWarning, ratio_field
 from fecproxy.shell.settings import (
     ReloadRejected,
     apply_flow_timeouts,
@@ -120,22 +120,15 @@ class Daemon:
         #: The application side, by role (sender: clients at ``listen``; receiver: ``forward``).
         self.app = app_side(config, flow_table(config), self._encode_and_send)
         self.counts = ShellCounts()
-        #: Every link packet goes out through here: at once, or paced to link.rate.
-        self.link = LinkOutput(config)
-        self.oversize = OversizeWarning()
-        self._heard = 0  # valid packets from the peer so far (decoder counts + control packets)
         #: delivery.order: in_order puts each flow back in the sender's order before the
         #: application side (protocol.ordering); None delivers as available.
         self.order = InOrderDelivery(config.delivery.max_wait_seconds) if config.delivery.in_order else None
+        #: Every link packet goes out through here: at once, or paced to link.rate.
+        self.link = LinkOutput(config)
+        self.oversize = OversizeWarning()
+        self._heard = 0  # valid packets from the peer so far (decoder counts + loss reports)
         self.view = DaemonStatsView(
-            str(config.role),
-            self.encoder,
-            self.decoder,
-            self.feedback,
-            self.app,
-            self.counts,
-            self.order,
-            self.link,
+            str(config.role), self.encoder, self.decoder, self.feedback, self.app, self.counts, self.order, self.link
         )
         self._link_sock: Any = None
         self._link_writer: DatagramWriter | None = None
@@ -248,7 +241,7 @@ class Daemon:
                 if signals is not None:
                     nursery.start_soon(self._signal_loop, signals)
                 if cfg.log.stats_interval_s:
-                    nursery.start_soon(stats_loop, cfg.log.stats_interval_s, self._stats_snapshot, self._stats_states)
+                    nursery.start_soon(self._stats_loop, cfg.log.stats_interval_s)
                 side = self.app.log_fields()
                 # k and m: the code this side sends with (on a receiver, its replies); the code it
                 # decodes is the peer's, known from its first repair packets (a "peer_code" line).
@@ -336,9 +329,8 @@ class Daemon:
             self._internal_error("encoder")
             out = []
         dropped = encoder.stats.dropped.get(DropReason.OVERSIZE, 0) - oversize
-        if dropped:
-            limit = encoder.settings.max_datagram
-            self.oversize.note(dropped, max(len(data) for data, _ in items), limit, now)
+        if dropped:  # a warning at most every 10 s, with size, limit and key (operator_notes)
+            self.oversize.note(dropped, max(len(data) for data, _ in items), encoder.settings.max_datagram, now)
         await self._send_to_peer(out)
         self._reschedule()
 
@@ -388,9 +380,8 @@ class Daemon:
             if by_flow:
                 await self.app.deliver(by_flow, now)
                 by_flow = {}
-            heard = (
-                self.decoder.stats.source_received + self.decoder.stats.repair_received + self.feedback.stats.received
-            )
+            stats = self.decoder.stats
+            heard = stats.source_received + stats.repair_received + self.feedback.stats.received
             if heard != self._heard:  # anything valid from the peer: it is there
                 self._heard = heard
                 await self._handle_events(self.feedback.peer.heard(now), now)
@@ -433,30 +424,10 @@ class Daemon:
             await self._handle_event(event, now)
 
     async def _handle_event(self, event: Any, now: float) -> None:
-        """The one handler of what the cores say (deliveries aside, batched by the link loop);
-        events that only inform the operator are logged by operator_notes.log_core_event."""
-        if log_core_event(event, self.feedback.repair):
-            return
+        """The one handler of what the cores say (deliveries aside, batched by the link loop):
+        act on the event, then log it (shell.event_log)."""
         if isinstance(event, BlockReport):
             self.feedback.on_block(event)
-            if event.unrecovered:
-                log_event(
-                    log,
-                    logging.DEBUG,
-                    "block_unrecovered",
-                    sbn=event.sbn,
-                    k=event.k,
-                    lost=event.lost,
-                    outcome=event.outcome,
-                )
-        elif isinstance(event, Dropped):
-            if event.notice is not None:
-                # One line per kind of failure per interval: a peer with the wrong key says so
-                # plainly, a flood of forgeries does not flood the log.
-                kind = getattr(event.error, "kind", event.reason)
-                log_event(log, logging.WARNING, "auth_failed", kind=kind, detail=event.notice)
-            elif event.reason is not DropReason.AUTH:
-                log_event(log, logging.DEBUG, "dropped", reason=event.reason, detail=event.detail)
         elif isinstance(event, KeyCheckDue):
             # Sealed with our key, so the peer's log says the same as ours (see loss_report).
             if self.encoder.sealer is not None:
@@ -466,15 +437,9 @@ class Daemon:
         elif isinstance(event, SessionStarted):
             if event.previous is not None:
                 self.app.peer_restarted()
-            log_event(
-                log,
-                logging.INFO,
-                "peer_session",
-                session=f"{event.session:08x}",
-                previous=f"{event.previous:08x}" if event.previous is not None else "-",
-            )
         elif isinstance(event, ReportDue):
             await self._send_to_peer([event.packet])
+        log_core_event(event, self.feedback.repair)
 
     # ------------------------------------------------------------ helpers
     def _give_up(self, report: BlockReport, now: float) -> list[Delivery]:
@@ -545,27 +510,59 @@ class Daemon:
         if changed:
             log_event(log, logging.INFO, "keys", auth=keys.describe() if keys is not None else "off")
 
+    async def _stats_loop(self, interval: float) -> None:
+        """One INFO line every ``interval`` seconds with the counters since the previous line, so
+        a long run shows it is alive and what the link did without a metrics endpoint."""
+        previous = self._stats_snapshot()
+        while True:
+            await trio.sleep(interval)
+            now = self._stats_snapshot()
+            delta = {key: now[key] - previous[key] for key in now}
+            previous = now
+            expected = delta["lost"] + delta["received_source"]
+            log_event(
+                log,
+                logging.INFO,
+                "stats",
+                interval_s=interval,
+                datagrams_in=delta["datagrams_in"],
+                datagrams_out=delta["delivered"],
+                link_packets_in=delta["received_source"] + delta["received_repair"],
+                link_packets_out=delta["source_sent"] + delta["repair_sent"],
+                # Ratios of the interval's source datagrams; "-" when the peer sent none.
+                link_loss=round(delta["lost"] / expected, 6) if expected else "-",
+                residual_loss=round(delta["unrecovered"] / expected, 6) if expected else "-",
+                recovered=delta["recovered"],
+                dropped=delta["dropped"],
+                oversize=delta["oversize"],
+                **{key: delta[key] for key in ("air_bytes", "queue_dropped") if key in delta},
+                **self._stats_states(),
+                # In order only: datagrams that waited behind a gap, and gaps skipped.
+                **{key: delta[key] for key in ("held", "gaps_skipped") if key in delta},
+            )
+
     def _stats_snapshot(self) -> dict[str, int]:
         counts = self.summary()
         counts["datagrams_in"] = self.encoder.stats.source_packets  # one source packet per datagram taken in
+        if self.order is not None:
+            counts["held"], counts["gaps_skipped"] = self.order.stats.held, self.order.stats.gaps_skipped
         counts["oversize"] = self.encoder.stats.dropped.get(DropReason.OVERSIZE, 0)
         figures = self.link.figures()
-        if figures.rate_bps is not None:
-            for kind in PacketKind:
-                counts[f"air_{kind.value}"] = figures.air_bytes[kind]
+        if figures.rate_bps is not None:  # paced: air bytes used and the pacer's drops
+            counts["air_bytes"] = sum(figures.air_bytes[kind] for kind in PacketKind)
             counts["queue_dropped"] = sum(figures.dropped.values())
         return counts
 
     def _stats_states(self) -> dict[str, object]:
-        """The stats line's fields that are states: flows, and the far end as the peer reports it."""
-        before, after = self.feedback.peer.peer_loss()
-        since = self.feedback.peer.seconds_since_heard(trio.current_time())
+        """The stats line's states: flows, the peer address, the far end as the peer reports it."""
+        peer = self.feedback.peer
+        before, after = peer.peer_loss()
         return dict(
             flows=len(self.app.flows),
             peer=format_sockaddr(self.peer) if self.peer else "-",
             peer_link_loss=ratio_field(before),
             peer_residual_loss=ratio_field(after),
-            peer_silent_s=round(since, 1) if self.feedback.peer.silent else 0,
+            peer_silent_s=round(peer.seconds_since_heard(trio.current_time()), 1) if peer.silent else 0,
         )
 
     def _next_deadline(self) -> float:
