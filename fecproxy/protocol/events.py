@@ -156,6 +156,8 @@ class PeerCodeSettled(Event):
     k: int
     m: int
     first: bool
+    #: The largest full block's (k, m): the code as the peer configured it; None = short blocks only so far.
+    configured: tuple[int, int] | None = None
 
 
 @dataclass(frozen=True, slots=True)

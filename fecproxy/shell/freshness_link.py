@@ -35,6 +35,22 @@ class FreshnessLink:
         else:
             self._sequences.note(now, sealer.next_sequence)
 
+    @staticmethod
+    def claims(event: ChallengeDue | ControlReceived) -> bool:
+        """Ours: a challenge to send, or a control packet that is a challenge or an echo (an echo
+        that reaches the shell answers a challenge already answered: retries cross)."""
+        return isinstance(event, ChallengeDue) or freshness.kind_of(event.body) in (
+            freshness.KIND_CHALLENGE,
+            freshness.KIND_ECHO,
+        )
+
+    async def answer(self, event: ChallengeDue | ControlReceived, send: Any, peer: Any, now: float) -> None:
+        """Send our challenge, or our echo to the peer's, with ``send(packets, address, now)``:
+        to where the packet came from (a learned ``peer`` may not be proven yet)."""
+        packet, destination = self.packet_for(event, now), event.address or peer
+        if packet is not None and destination is not None:
+            await send([packet], destination, now)
+
     def packet_for(self, event: ChallengeDue | ControlReceived, now: float) -> bytes | None:
         """The sealed control packet answering ``event`` (our challenge, or our echo to the
         peer's challenge), or None (unkeyed, not a challenge, over the rate)."""
@@ -43,6 +59,8 @@ class FreshnessLink:
             return None
         body: bytes | None = event.body
         if isinstance(event, ControlReceived):
+            if freshness.kind_of(event.body) != freshness.KIND_CHALLENGE:
+                return None
             self.note(now)
             assert self._sequences is not None  # made by note(): the sealer is set
             body = self.echoes.answer(event.body, self.encoder.session, self._sequences, sealer.next_sequence, now)
@@ -50,12 +68,13 @@ class FreshnessLink:
 
     async def hellos(self, send: Any, peer: Any) -> None:
         """Keyed, with a known peer address: a few hellos at start, so the peer's session is
-        proven before its first reply.  ``send(packets, address)``; ``peer()`` the address."""
+        proven before its first reply.  ``send(packets, address, now)``; ``peer()`` the address."""
         gate = self.decoder.freshness
         while self.encoder.sealer is not None and peer() is not None:
-            body = gate.hello(trio.current_time())
+            now = trio.current_time()
+            body = gate.hello(now)
             if body is not None:
-                await send([self.encoder.control(body)], peer())
+                await send([self.encoder.control(body)], peer(), now)
             deadline = gate.hello_deadline()
             if deadline is None:
                 return
