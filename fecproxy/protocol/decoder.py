@@ -208,6 +208,8 @@ class BlockDecoder(SessionTable):
                             if self.learn_peer and addr != self.peer:
                                 self._peer_seen(addr, events)
                             return events
+                    if flags:  # END: the last of a block filled to the peer's configured k
+                        self.received_code.note_full(sbn, esi + 1)
                     previous_k = flow_word & wire.PREVIOUS_K_MASK
                     if previous_k and not block.told_previous:
                         block.told_previous = True
@@ -265,7 +267,8 @@ class BlockDecoder(SessionTable):
 
     def _code_settled(self, settled: tuple[int, int], events: list[Event]) -> None:
         k, m = settled
-        events.append(PeerCodeSettled(k, m, first=self._code_told is None))
+        configured = self.received_code.configured
+        events.append(PeerCodeSettled(k, m, first=self._code_told is None, configured=configured))
         self._code_told = settled
 
     def _authenticate(
@@ -374,6 +377,8 @@ class BlockDecoder(SessionTable):
                 events.append(self._behind(sess, pkt.sbn, repair=True))
             return
         if isinstance(pkt, wire.SourcePacket):
+            if pkt.end and sess is self._followed:  # END: the last of a block filled to the configured k
+                self.received_code.note_full(pkt.sbn, pkt.esi + 1)
             if pkt.previous_k and not block.told_previous:
                 block.told_previous = True
                 self._learn_previous_k(sess, pkt.sbn, pkt.previous_k, now, events)
@@ -381,12 +386,6 @@ class BlockDecoder(SessionTable):
         else:
             self._add_repair(block, pkt, events)
         self._try_finish(block, now, events)
-
-    @property
-    def highest_sbn(self) -> int | None:
-        """The newest source block number seen of the followed session (None before any);
-        a loss report carries it."""
-        return self._followed.newest if self._followed is not None else None
 
     def next_deadline(self) -> float | None:
         hold = self.settings.hold_time

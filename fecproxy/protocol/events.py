@@ -153,6 +153,8 @@ class PeerCodeSettled(Event):
     k: int
     m: int
     first: bool
+    #: The largest full block's (k, m): the code as the peer configured it; None = short blocks only so far.
+    configured: tuple[int, int] | None = None
 
 
 def _delivery_maker() -> Callable[[int, bytes, int], Delivery]:
