@@ -387,12 +387,6 @@ class BlockDecoder(SessionTable):
             self._add_repair(block, pkt, events)
         self._try_finish(block, now, events)
 
-    @property
-    def highest_sbn(self) -> int | None:
-        """The newest source block number seen of the followed session (None before any);
-        a loss report carries it."""
-        return self._followed.newest if self._followed is not None else None
-
     def next_deadline(self) -> float | None:
         hold = self.settings.hold_time
         deadlines = [next(iter(s.open.values())).first_seen + hold for s in self._sessions.values() if s.open]

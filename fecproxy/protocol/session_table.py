@@ -170,6 +170,12 @@ class SessionTable:
     def open_blocks(self) -> int:
         return self._open_count
 
+    @property
+    def highest_sbn(self) -> int | None:
+        """The newest source block number seen of the followed session (None before any);
+        a loss report carries it."""
+        return self._followed.newest if self._followed is not None else None
+
     def oldest_open_since(self) -> float | None:
         """When the oldest open block (any session) was first seen; None when none is open.  In-order
         delivery reads it after a block is given up: a gap older than this can no longer be filled."""
