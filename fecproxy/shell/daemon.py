@@ -524,11 +524,15 @@ class Daemon:
                 recovered=delta["recovered"],
                 dropped=delta["dropped"],
                 flows=len(self.app.flows),
+                # In order only: datagrams that waited behind a gap, and gaps skipped.
+                **{key: delta[key] for key in ("held", "gaps_skipped") if key in delta},
             )
 
     def _stats_snapshot(self) -> dict[str, int]:
         counts = self.summary()
         counts["datagrams_in"] = self.encoder.stats.source_packets  # one source packet per datagram taken in
+        if self.order is not None:
+            counts["held"], counts["gaps_skipped"] = self.order.stats.held, self.order.stats.gaps_skipped
         return counts
 
     def _next_deadline(self) -> float:
