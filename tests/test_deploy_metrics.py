@@ -77,6 +77,9 @@ class _Daemon:
     def flow_count(self):
         return 0
 
+    def link_figures(self):
+        return None  # not paced
+
     def flows_evicted(self):
         return 0
 

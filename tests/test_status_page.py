@@ -71,6 +71,9 @@ class _Daemon:
 
     received_code = (12, 4)
 
+    def link_figures(self):
+        return None  # not paced
+
 
 def _call(app, path: str, method: str = "GET"):
     """One WSGI request: (status line, headers dict, body bytes)."""
@@ -93,15 +96,17 @@ def _call(app, path: str, method: str = "GET"):
     return captured["status"], captured["headers"], body
 
 
-def _exposition(registry) -> dict[str, float]:
+def _exposition(registry) -> dict[str, float | None]:
     """Samples of the registry's /metrics text, keyed the way status.json keys them."""
     from prometheus_client.parser import text_string_to_metric_families
 
-    out = {}
+    out: dict[str, float | None] = {}
     for family in text_string_to_metric_families(generate_latest(registry).decode()):
         for sample in family.samples:
             if sample.name != "fecproxy_info":
-                out[status.sample_key(sample.name, sample.labels)] = sample.value
+                # /status.json writes NaN (not yet known) as null, as JSON has no NaN.
+                value = sample.value
+                out[status.sample_key(sample.name, sample.labels)] = None if math.isnan(value) else value
     return out
 
 

@@ -39,11 +39,8 @@ blocks, so a packet of one session never disturbs another's blocks:
   address while the real sender is sending, and a restarted sender takes over within the hold
   time of its predecessor falling silent.
 
-With a key, each session has its own replay window.  A session's window outlives it: the windows
-of the last RETIRED_WINDOWS sessions that aged out are kept, so a recorded packet of a session
-that ended is still a replay (and a paused sender that resumes keeps its window).  A recording
-of a session older than that is accepted as a new session once; the sequence numbers carry no
-order across sender starts (their start is random), so nothing in the packet tells it apart.
+With a key, each session has its own replay window (kept RETIRED_WINDOWS sessions after it
+ended), and nothing of it is delivered before it answered a fresh challenge (protocol.freshness).
 
 The session table and the memory budget are :mod:`fecproxy.protocol.session_table` (this class's
 base).  Memory is bounded: open blocks across all sessions (``max_open_blocks``; the session holding
@@ -170,6 +167,11 @@ class BlockDecoder(SessionTable):
             if not isinstance(verified, auth.Verified):
                 return verified
             data = verified.packet
+            if not self.freshness.admits(verified.session, verified.sequence):
+                early = self.freshness.screen(verified.session, verified.sequence, data, addr, now, self.stats.dropped)
+                for packet, source in early.released:
+                    early.events += self._receive_general(packet, source, now)
+                return early.events + self._receive_general(data, addr, now) if early.passes else early.events
         # Fast path for the two packets a clean link brings: a source packet of the followed
         # session, and such a repair packet of a block already finished.  The same checks in the
         # same order as wire.parse + _receive_general, with the same outcome, minus the packet
@@ -208,6 +210,8 @@ class BlockDecoder(SessionTable):
                             if self.learn_peer and addr != self.peer:
                                 self._peer_seen(addr, events)
                             return events
+                    if flags:  # END: the last of a block filled to the peer's configured k
+                        self.received_code.note_full(sbn, esi + 1)
                     previous_k = flow_word & wire.PREVIOUS_K_MASK
                     if previous_k and not block.told_previous:
                         block.told_previous = True
@@ -265,7 +269,8 @@ class BlockDecoder(SessionTable):
 
     def _code_settled(self, settled: tuple[int, int], events: list[Event]) -> None:
         k, m = settled
-        events.append(PeerCodeSettled(k, m, first=self._code_told is None))
+        configured = self.received_code.configured
+        events.append(PeerCodeSettled(k, m, first=self._code_told is None, configured=configured))
         self._code_told = settled
 
     def _authenticate(
@@ -302,8 +307,7 @@ class BlockDecoder(SessionTable):
                 live.window = window
             else:  # a new session: _add_session takes it from here
                 self._retired_windows[session] = window
-                while len(self._retired_windows) > RETIRED_WINDOWS:
-                    self._retired_windows.popitem(last=False)
+                self._trim_retired_windows()
         window.commit(sequence)
         self.last_verified = verified
         return verified
@@ -320,7 +324,7 @@ class BlockDecoder(SessionTable):
             # so sealing keeps one replay window and nonce prefix per session), but it is no
             # data: it neither touches the session table nor teaches the shell its peer.
             self.stats.control_received += 1
-            return [ControlReceived(pkt.session, pkt.body)]
+            return [ControlReceived(pkt.session, pkt.body, addr)]
         events: list[Event] = []
         sess = self._sessions.get(pkt.session)
         if sess is None:
@@ -374,6 +378,8 @@ class BlockDecoder(SessionTable):
                 events.append(self._behind(sess, pkt.sbn, repair=True))
             return
         if isinstance(pkt, wire.SourcePacket):
+            if pkt.end and sess is self._followed:  # END: the last of a block filled to the configured k
+                self.received_code.note_full(pkt.sbn, pkt.esi + 1)
             if pkt.previous_k and not block.told_previous:
                 block.told_previous = True
                 self._learn_previous_k(sess, pkt.sbn, pkt.previous_k, now, events)
@@ -381,12 +387,6 @@ class BlockDecoder(SessionTable):
         else:
             self._add_repair(block, pkt, events)
         self._try_finish(block, now, events)
-
-    @property
-    def highest_sbn(self) -> int | None:
-        """The newest source block number seen of the followed session (None before any);
-        a loss report carries it."""
-        return self._followed.newest if self._followed is not None else None
 
     def next_deadline(self) -> float | None:
         hold = self.settings.hold_time

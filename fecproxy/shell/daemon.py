@@ -35,6 +35,7 @@ from fecproxy.protocol.decoder import BlockDecoder
 from fecproxy.protocol.events import (
     BlockOutcome,
     BlockReport,
+    ChallengeDue,
     ControlReceived,
     Delivery,
     DropReason,
@@ -43,13 +44,17 @@ from fecproxy.protocol.events import (
 )
 from fecproxy.protocol.loss_report import KEY_CHECK_BODY
 from fecproxy.protocol.ordering import InOrderDelivery
+from fecproxy.protocol.pacer import PacketKind
 from fecproxy.protocol.sliding_encoder import SlidingEncoder
 from fecproxy.shell.app_side import SideOpenError, app_side
 from fecproxy.shell.event_log import log_core_event
 from fecproxy.shell.fdlimit import ensure_open_files, files_needed
+from fecproxy.shell.freshness_link import FreshnessLink
 from fecproxy.shell.history import History
+from fecproxy.shell.link_output import LinkOutput
 from fecproxy.shell.logs import event_sink, log_event, log_exception
 from fecproxy.shell.metrics import MetricsServer, build_registry, serve
+from fecproxy.shell.operator_notes import OversizeWarning, ratio_field
 from fecproxy.shell.settings import (
     ReloadRejected,
     apply_flow_timeouts,
@@ -117,11 +122,16 @@ class Daemon:
         #: The application side, by role (sender: clients at ``listen``; receiver: ``forward``).
         self.app = app_side(config, flow_table(config), self._encode_and_send)
         self.counts = ShellCounts()
+        self.freshness = FreshnessLink(self.encoder, self.decoder)  # keyed: proving sessions live
         #: delivery.order: in_order puts each flow back in the sender's order before the
         #: application side (protocol.ordering); None delivers as available.
         self.order = InOrderDelivery(config.delivery.max_wait_seconds) if config.delivery.in_order else None
+        #: Every link packet goes out through here: at once, or paced to link.rate.
+        self.link = LinkOutput(config)
+        self.oversize = OversizeWarning()
+        self._heard = 0  # valid packets from the peer so far (decoder counts + loss reports)
         self.view = DaemonStatsView(
-            str(config.role), self.encoder, self.decoder, self.feedback, self.app, self.counts, self.order
+            str(config.role), self.encoder, self.decoder, self.feedback, self.app, self.counts, self.order, self.link
         )
         self._link_sock: Any = None
         self._link_writer: DatagramWriter | None = None
@@ -164,6 +174,7 @@ class Daemon:
             self._link_writer = writer = DatagramWriter(self._link_sock)
             self.counts.link_send_errors = lambda: writer.send_errors
             self.link_address = self._link_sock.getsockname()
+            self.link.attach(writer, self._link_sock.family, trio.current_time())
             if cfg.link.peer is not None:
                 key, address = "link.peer", cfg.link.peer
                 self.decoder.peer = resolve(cfg.link.peer.host, cfg.link.peer.port, self._link_sock.family)
@@ -218,6 +229,7 @@ class Daemon:
         cfg = self.config
         self._check_open_files()
         metrics = self._open_sockets()
+        self.freshness.start(trio.current_time())
         configure_feedback(self.feedback, cfg, trio.current_time())
         # From here on, this task's events and those of the tasks it starts go to the history too.
         sink = event_sink.set(self.history.record)
@@ -228,7 +240,9 @@ class Daemon:
                 if metrics is not None:
                     nursery.start_soon(metrics.run)  # the metrics port: a task here, no thread
                 nursery.start_soon(self._link_loop)
+                nursery.start_soon(self.link.run)
                 nursery.start_soon(self._timer_loop)
+                nursery.start_soon(self.freshness.hellos, self.link.send, lambda: self.peer)
                 if signals is not None:
                     nursery.start_soon(self._signal_loop, signals)
                 if cfg.log.stats_interval_s:
@@ -250,6 +264,7 @@ class Daemon:
                     **self._code_fields(cfg),
                     flush_ms=cfg.fec.flush_ms,
                     adapt="on" if self.feedback.adapting else "off",
+                    link_rate=f"{cfg.link.rate:g}" if cfg.link.rate is not None else "off",
                     reports_ms=cfg.reports.interval_ms,
                     sends=side["sends"],
                     decoding="peer's code unknown until traffic",
@@ -287,6 +302,9 @@ class Daemon:
             _add(by_flow, self.order.close(now))
             if by_flow:
                 await self.app.deliver(by_flow, now)
+        left = await self.link.drain()  # the paced queue: the last block's repair packets
+        if left:
+            log_event(log, logging.INFO, "queue_discarded", packets=left, detail="still queued for the link at stop")
         self._nursery.cancel_scope.cancel()
 
     def summary(self) -> dict[str, int]:
@@ -309,6 +327,7 @@ class Daemon:
         """Frame a batch (blocks it fills share codec calls, see BlockEncoder.send_batch) and
         put it on the link.  Both roles: the sender's client datagrams, the receiver's replies."""
         encoder = self.encoder
+        self.freshness.note(now)
         oversize = encoder.stats.dropped.get(DropReason.OVERSIZE, 0)
         try:
             out = encoder.send_batch(items, now)
@@ -316,15 +335,8 @@ class Daemon:
             self._internal_error("encoder")
             out = []
         dropped = encoder.stats.dropped.get(DropReason.OVERSIZE, 0) - oversize
-        if dropped:
-            log_event(
-                log,
-                logging.DEBUG,
-                "dropped",
-                reason=DropReason.OVERSIZE,
-                count=dropped,
-                detail=f"datagrams over max_datagram {encoder.settings.max_datagram} bytes",
-            )
+        if dropped:  # a warning at most every 10 s, with size, limit and key (operator_notes)
+            self.oversize.note(dropped, max(len(data) for data, _ in items), encoder.settings.max_datagram, now)
         await self._send_to_peer(out)
         self._reschedule()
 
@@ -374,6 +386,11 @@ class Daemon:
             if by_flow:
                 await self.app.deliver(by_flow, now)
                 by_flow = {}
+            stats = self.decoder.stats
+            heard = stats.source_received + stats.repair_received + self.feedback.stats.received
+            if heard != self._heard:  # anything valid from the peer: it is there
+                self._heard = heard
+                await self._handle_events(self.feedback.peer.heard(now), now)
             self._reschedule()
 
     async def _timer_loop(self) -> None:
@@ -419,8 +436,10 @@ class Daemon:
             self.feedback.on_block(event)
         elif isinstance(event, KeyCheckDue):
             # Sealed with our key, so the peer's log says the same as ours (see loss_report).
-            if self.encoder.sealer is not None and self._link_writer is not None:
-                await self._link_writer.send([self.encoder.control(KEY_CHECK_BODY)], event.address)
+            if self.encoder.sealer is not None:
+                await self.link.send([self.encoder.control(KEY_CHECK_BODY)], event.address, now)
+        elif isinstance(event, ChallengeDue | ControlReceived) and self.freshness.claims(event):
+            await self.freshness.answer(event, self.link.send, self.peer, now)
         elif isinstance(event, ControlReceived):
             await self._handle_events(self.feedback.on_control(event, now), now)
         elif isinstance(event, SessionStarted):
@@ -523,7 +542,9 @@ class Daemon:
                 residual_loss=round(delta["unrecovered"] / expected, 6) if expected else "-",
                 recovered=delta["recovered"],
                 dropped=delta["dropped"],
-                flows=len(self.app.flows),
+                oversize=delta["oversize"],
+                **{key: delta[key] for key in ("air_bytes", "queue_dropped") if key in delta},
+                **self._stats_states(),
                 # In order only: datagrams that waited behind a gap, and gaps skipped.
                 **{key: delta[key] for key in ("held", "gaps_skipped") if key in delta},
             )
@@ -533,7 +554,24 @@ class Daemon:
         counts["datagrams_in"] = self.encoder.stats.source_packets  # one source packet per datagram taken in
         if self.order is not None:
             counts["held"], counts["gaps_skipped"] = self.order.stats.held, self.order.stats.gaps_skipped
+        counts["oversize"] = self.encoder.stats.dropped.get(DropReason.OVERSIZE, 0)
+        figures = self.link.figures()
+        if figures.rate_bps is not None:  # paced: air bytes used and the pacer's drops
+            counts["air_bytes"] = sum(figures.air_bytes[kind] for kind in PacketKind)
+            counts["queue_dropped"] = sum(figures.dropped.values())
         return counts
+
+    def _stats_states(self) -> dict[str, object]:
+        """The stats line's states: flows, the peer address, the far end as the peer reports it."""
+        peer = self.feedback.peer
+        before, after = peer.peer_loss()
+        return dict(
+            flows=len(self.app.flows),
+            peer=format_sockaddr(self.peer) if self.peer else "-",
+            peer_link_loss=ratio_field(before),
+            peer_residual_loss=ratio_field(after),
+            peer_silent_s=round(peer.seconds_since_heard(trio.current_time()), 1) if peer.silent else 0,
+        )
 
     def _next_deadline(self) -> float:
         cores = (
@@ -557,4 +595,4 @@ class Daemon:
         if peer is None or self._link_writer is None:
             self.counts.drop(DropReason.NO_PEER, len(packets))
             return
-        await self._link_writer.send(packets, peer)
+        await self.link.send(packets, peer, trio.current_time())

@@ -18,8 +18,10 @@ from fecproxy.protocol.events import (
     DropReason,
     PeerAddressChanged,
     PeerCodeSettled,
+    SessionProven,
     SessionStarted,
 )
+from fecproxy.protocol.peer_view import PeerHeard, PeerSilent
 from fecproxy.shell.logs import log_event
 
 log = logging.getLogger("fecproxy.shell.daemon")
@@ -47,14 +49,24 @@ def log_core_event(event: object, repair: int) -> None:
         elif event.reason is not DropReason.AUTH:
             log_event(log, logging.DEBUG, "dropped", reason=event.reason, detail=event.detail)
     elif isinstance(event, PeerAddressChanged):
-        if event.previous is not None:
-            log_event(
-                log,
-                logging.INFO,
-                "peer_changed",
-                old=format_sockaddr(event.previous),
-                new=format_sockaddr(event.address),
-            )
+        # A receiver without link.peer says where its replies go, and every change of it.
+        log_event(
+            log,
+            logging.INFO,
+            "peer_learned" if event.previous is None else "peer_changed",
+            old=format_sockaddr(event.previous) if event.previous is not None else "-",
+            new=format_sockaddr(event.address),
+        )
+    elif isinstance(event, PeerSilent):
+        log_event(
+            log,
+            logging.WARNING,
+            "peer_silent",
+            quiet_s=round(event.at - event.last_heard_at, 1),
+            detail="nothing valid from the peer (no loss report, no packet): peer down or return path cut",
+        )
+    elif isinstance(event, PeerHeard):
+        log_event(log, logging.INFO, "peer_heard", silent_s=round(event.silent_for, 1))
     elif isinstance(event, PeerCodeSettled):
         # INFO the first time per peer session, DEBUG when it changes later (an adapting peer
         # changes m often).
@@ -62,9 +74,19 @@ def log_core_event(event: object, repair: int) -> None:
             log,
             logging.INFO if event.first else logging.DEBUG,
             "peer_code",
-            k=event.k,
-            m=event.m,
+            k=event.configured[0] if event.configured else event.k,
+            m=event.configured[1] if event.configured else event.m,
+            blocks="full" if event.configured else "short blocks only so far",
             detail="decoding the peer's blocks (k from its repair packets, m = highest repair ESI - k + 1)",
+        )
+    elif isinstance(event, SessionProven):
+        log_event(
+            log,
+            logging.INFO,
+            "session_proven",
+            session=f"{event.session:08x}",
+            young=event.young,
+            released=event.released,
         )
     elif isinstance(event, SessionStarted):
         log_event(

@@ -30,6 +30,8 @@ from fecproxy.protocol.events import BlockOutcome, DropReason
 from fecproxy.protocol.ordering import WAIT_BUCKETS, OrderStats, SkipReason
 from fecproxy.shell.history import History, keep_history
 from fecproxy.shell.http_server import HttpServer, WsgiApp, open_listener
+from fecproxy.shell.link_metrics import link_metrics
+from fecproxy.shell.link_output import LinkFigures
 from fecproxy.shell.status import read_samples, status_app
 
 # prometheus-client adds a `<name>_created` series (the creation time) to every counter and
@@ -100,6 +102,12 @@ class DaemonView(Protocol):
     # Optional (read with getattr): ``order_stats`` -> OrderStats | None, in-order delivery's
     # counters (None when the daemon delivers as available).
 
+    # Optional (read with getattr): ``link_figures()`` -> LinkFigures | None, the link output's
+    # air budget and pacer queue; ``received_code_full`` -> bool | None.
+
+
+#: The link figures of a view that has no link output: nothing paced, nothing sent.
+UNPACED = LinkFigures(None, {}, 0, 0, 0.0, {})
 
 #: From 1 ms (a fast LAN hop) to 2 s (well past any hold time we would configure).
 RECOVERY_DELAY_BUCKETS = (0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.0)
@@ -240,6 +248,13 @@ class DaemonCollector:
                 value=sliding[1],
             )
         yield from _order_metrics(getattr(d, "order_stats", None))
+        try:
+            now: float | None = trio.current_time()  # the cores' clock: scrapes run in the daemon's trio loop
+        except RuntimeError:  # read outside a trio run (a test): "seconds since" is unknown
+            now = None
+        figures = getattr(d, "link_figures", lambda: None)()
+        full = getattr(d, "received_code_full", None)
+        yield from link_metrics(figures or UNPACED, d.feedback.peer, now, full)
         k, m = d.block_shape
         info = InfoMetricFamily(
             "fecproxy",
