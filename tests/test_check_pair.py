@@ -193,3 +193,11 @@ def test_in_order_wait_shorter_than_a_rebuild_is_warned_of(capsys, tmp_path):
         f"{r}: delivery.max_wait_ms: warning: 10 is below the 40 ms a gap may take to be rebuilt ({s}'s "
         f"fec.flush_ms, plus air time and delay spread): such gaps are skipped although repair is on its way"
     ]
+
+
+def test_a_sliding_window_sender_is_checked_without_block_rules(capsys, tmp_path):
+    s, r = write_pair(tmp_path, sender={}, receiver={"hold": 30})
+    Path(s).write_text(Path(s).read_text().replace("fec: {", "fec: {code: sliding, window: 32, "))
+    status, err = run_check(capsys, s, r)
+    assert status == EXIT_INVALID  # the flush rule still holds: a pause's repair leaves at flush_ms
+    assert [line.split(":")[1] for line in err[:-1]] == [" decoder.hold_ms"]

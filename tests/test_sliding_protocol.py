@@ -301,3 +301,21 @@ def test_repair_symbols_match_the_reference_through_ring_wraps_and_window_change
                 assert pkt.symbol == sliding.encode_repair(window, pkt.repair_key, pkt.dt)
                 checked += 1
     assert checked >= 20
+
+
+def test_adaptation_sets_the_repair_interval_from_the_chosen_m():
+    """fec.adapt chooses m for k = fec.block_size; the sliding code sends that overhead:
+    one repair every ceil(k/m) datagrams (never more than the window)."""
+    from fecproxy.protocol.encoder import EncoderSettings
+
+    fixed = SlidingEncoder(SlidingSettings(window=32, repair_interval=4), session=1)
+    fixed.update(EncoderSettings(block_size=16, repair=8))
+    assert fixed.sliding_settings.repair_interval == 4  # no fec.adapt: the configured interval stays
+    adapting = SlidingEncoder(SlidingSettings(window=32, repair_interval=4), session=1, follow_repair=True)
+    for m, interval in ((8, 2), (3, 6), (1, 16), (16, 1)):
+        adapting.update(EncoderSettings(block_size=16, repair=m))
+        assert adapting.sliding_settings.repair_interval == interval
+        assert adapting.settings.repair == m
+    small = SlidingEncoder(SlidingSettings(window=8, repair_interval=4), session=1, follow_repair=True)
+    small.update(EncoderSettings(block_size=16, repair=1))
+    assert small.sliding_settings.repair_interval == 8

@@ -15,6 +15,7 @@ import math
 from dataclasses import dataclass
 
 from fecproxy.config.schema import Config, Role
+from fecproxy.config.sections import FecCode
 from fecproxy.linkmodel.airtime import LinkBudget
 from fecproxy.protocol.auth import TRAILER_BYTES
 from fecproxy.protocol.pacer import IPV4_UDP_HEADER_BYTES, IPV6_UDP_HEADER_BYTES
@@ -199,6 +200,8 @@ class _Checker:
         """The decoder must hold at least one round of the encoder's open blocks (D per size
         class), in blocks and in bytes."""
         fec = encoder.config.fec
+        if fec.code is FecCode.SLIDING:
+            return  # no blocks: the sliding decoder's window has its own fixed bound (README "Bounds")
         classes = len(fec.size_classes) + 1
         open_at_once = fec.interleave * classes
         limits = decoder.config.decoder
@@ -283,6 +286,8 @@ def _repair_air_ms(config: Config) -> int:
         mtu=link.mtu,
     )
     repair = fec.repair if fec.adapt is None else max(fec.repair, fec.adapt.repair_ceiling(fec.block_size))
+    if fec.code is FecCode.SLIDING:
+        repair = 1  # the flush timer sends one repair packet for what no repair covers yet
     return math.ceil(repair * budget.repair_wire_bytes / budget.rate_bytes * 1000)
 
 
