@@ -209,12 +209,15 @@ def test_a_packet_under_another_key_names_both_key_ids(encrypt):
         assert error.kind == "unknown_key" and error.key_id == STRANGER.key_id
         assert f"0x{STRANGER.key_id:02x}" in str(error) and f"0x{OLD.key_id:02x}" in str(error)
         assert "different key files" in str(error)
+        assert f"fingerprint {OLD.fingerprint}" in str(error)  # what the peer's log is compared with
 
 
 def test_a_different_key_with_the_same_id_fails_the_tag_not_the_lookup():
     keyring = ring(OLD)
     impostor = auth.PacketKey(OLD.key_id, keys.mac_key(STRANGER), None)
-    assert reject(auth.protect(SOURCE, impostor, 1), keyring).kind == "bad_tag"
+    error = reject(auth.protect(SOURCE, impostor, 1), keyring)
+    # The 1-byte ids agree (1 time in 256 for two random keys): the fingerprint tells them apart.
+    assert error.kind == "bad_tag" and f"fingerprint {OLD.fingerprint}" in str(error)
 
 
 @pytest.mark.parametrize("sender_encrypts", [True, False])

@@ -13,7 +13,10 @@ from fecproxy.commands.check import EXIT_INVALID, EXIT_VALID
 from fecproxy.commands.keygen import write_key_file
 
 ROOT = Path(__file__).resolve().parents[1]
-SHIPPED_PAIRS = [("sender.yaml", "receiver.yaml"), ("trial-sender.yaml", "trial-receiver.yaml")]
+#: Every shipped pair: each *sender*.yaml in config/ with the receiver.yaml of the same name.
+SHIPPED_PAIRS = [
+    (path.name, path.name.replace("sender", "receiver")) for path in sorted((ROOT / "config").glob("*sender*.yaml"))
+]
 
 SENDER = """\
 role: sender
@@ -49,6 +52,7 @@ def run_check(capsys, *argv: str) -> tuple[int, list[str]]:
 
 @pytest.mark.parametrize(("sender", "receiver"), SHIPPED_PAIRS)
 def test_shipped_pairs_agree(capsys, sender, receiver):
+    assert len(SHIPPED_PAIRS) >= 2
     status, err = run_check(capsys, str(ROOT / "config" / sender), str(ROOT / "config" / receiver))
     assert status == EXIT_VALID, err
     assert all(": warning: " in line for line in err), err
@@ -179,3 +183,21 @@ def test_link_budget_repair_air_time_and_pacing_on_one_side_only(capsys, tmp_pat
     )
     warned = [line.split(": warning: ")[0] for line in err if ": warning: " in line]
     assert f"{r}: link.mtu" in warned and f"{r}: link.rate" in warned
+
+
+def test_in_order_wait_shorter_than_a_rebuild_is_warned_of(capsys, tmp_path):
+    s, r = write_pair(tmp_path, sender={}, receiver={"auth": "delivery: {order: in_order, max_wait_ms: 10}"})
+    status, err = run_check(capsys, s, r)
+    assert status == EXIT_VALID
+    assert err == [
+        f"{r}: delivery.max_wait_ms: warning: 10 is below the 40 ms a gap may take to be rebuilt ({s}'s "
+        f"fec.flush_ms, plus air time and delay spread): such gaps are skipped although repair is on its way"
+    ]
+
+
+def test_a_sliding_window_sender_is_checked_without_block_rules(capsys, tmp_path):
+    s, r = write_pair(tmp_path, sender={}, receiver={"hold": 30})
+    Path(s).write_text(Path(s).read_text().replace("fec: {", "fec: {code: sliding, window: 32, "))
+    status, err = run_check(capsys, s, r)
+    assert status == EXIT_INVALID  # the flush rule still holds: a pause's repair leaves at flush_ms
+    assert [line.split(":")[1] for line in err[:-1]] == [" decoder.hold_ms"]

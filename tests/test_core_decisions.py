@@ -121,12 +121,13 @@ def test_the_peers_code_is_told_once_settled_and_again_when_it_changes():
     told = []
     for packet in packets_of(0x1111, 12, k=4, m=2):
         told += [e for e in decoder.receive(packet, HOME, 1.0) if isinstance(e, PeerCodeSettled)]
-    assert told == [PeerCodeSettled(4, 2, first=True)]  # settled when block 1's repair began
+    assert [(e.k, e.m, e.first) for e in told] == [(4, 2, True)]  # settled when block 1's repair began
+    assert told[0].configured == (4, 2)  # full blocks (END flag seen): the code as configured
     # The peer adapts: m = 3 from its block 3 on (same session, numbering goes on).
     encoder = BlockEncoder(EncoderSettings(block_size=4, repair=3), 0x1111, first_sbn=3)
     for packet in [p for i in range(8) for p in encoder.send(b"y%d" % i, 1, 0.0)]:
         told += [e for e in decoder.receive(packet, HOME, 1.1) if isinstance(e, PeerCodeSettled)]
-    assert told[1:] == [PeerCodeSettled(4, 3, first=False)]
+    assert [(e.k, e.m, e.first) for e in told[1:]] == [(4, 3, False)]
 
 
 # ------------------------------------------------------------------ reports and adaptation

@@ -79,8 +79,8 @@ def test_fast_and_general_paths_agree(k, m, first, second, steps, max_datagram, 
     assert fast.stats == general.stats
 
 
-def test_an_invalid_packet_bearing_the_replied_to_session_does_not_keep_it_alive():
-    """Only valid packets count as the replied-to session's activity, on either path: a bad one
+def test_an_invalid_packet_bearing_the_followed_session_does_not_keep_it_alive():
+    """Only valid packets count as the followed session's activity, on either path: a bad one
     (here an undefined flag) must not hold off a restarted sender's taking the replies."""
     old = link_packets(4, 1, [(b"a", 0)] * 2, session=0x1111)
     new = link_packets(4, 1, [(b"b", 0)] * 8, session=0x2222)  # established: 8 sources

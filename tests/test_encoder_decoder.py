@@ -177,7 +177,7 @@ def test_sender_restart_keeps_both_sessions_apart_and_the_new_one_takes_the_repl
     # A straggler of the old session still completes the old block (repair rebuilds nothing lost).
     events = feed(dec, old[2:], now=1.02)
     assert delivered(events) == old_data[2:] and reports(events)[0].outcome == "complete"
-    # Once the old session is quiet for the hold time, the established new one is replied to.
+    # Once the old session is quiet for the hold time, the established new one is followed (and replied to).
     events = feed(dec, new[2:], now=1.0 + dec.settings.hold_time + 0.1)
     assert dec.session == 200
     assert [e for e in events if isinstance(e, SessionStarted)] == [SessionStarted(200, 100)]

@@ -182,3 +182,20 @@ def test_the_history_stands_down_when_the_daemon_judges_silence_itself():
     finally:
         event_sink.reset(token)
     assert [e["event"] for e in history.events()] == ["peer_silent"]  # none of its own beside it
+
+
+def test_the_history_samples_the_daemons_own_families_not_the_process_collector():
+    """The process collector lists /proc/self/fd (slow with thousands of flow sockets): scrapes
+    get it, the once-a-second history does not."""
+    from support.stand_in_view import a_receiver
+
+    from fecproxy.shell.metrics import build_registry, own_families
+    from fecproxy.shell.status import read_samples
+
+    registry, histogram = build_registry(a_receiver())
+    histogram.observe(0.01)
+    own, _ = read_samples(own_families(registry))
+    everything, _ = read_samples(registry)
+    assert not any(key.startswith(("process_", "python_")) for key in own)
+    assert any(key.startswith("process_") for key in everything)
+    assert {key for key in everything if key.startswith("fecproxy_")} == set(own)

@@ -7,7 +7,7 @@ hands rebuilt datagrams on late.
 
 from __future__ import annotations
 
-from support.daemon_pair import drain, send_paced
+from support.daemon_pair import drain, send_paced, wait_until
 from support.lossy_relay import drop_indices
 
 #: Datagrams/s and seconds of the clean-link run: 2 000 datagrams at the issue's rate.
@@ -62,7 +62,10 @@ def test_as_available_hands_rebuilt_datagrams_on_late(pairs):
 def test_a_gap_that_cannot_be_rebuilt_holds_what_follows_no_longer_than_the_bound(pairs):
     # Block 0 loses a source packet and all four repair packets: datagram 3 is gone for good, so
     # 4, 5, … wait for it until delivery.max_wait_ms (200 ms), then the gap is skipped and counted.
-    pair = pairs(forward=drop_indices([3, 16, 17, 18, 19]), sender_fec={"flush_ms": 200}, receiver_extra=IN_ORDER)
+    each_second = {"log": {"level": "info", "format": "text", "stats_interval_s": 1}}
+    pair = pairs(
+        forward=drop_indices([3, 16, 17, 18, 19]), sender_fec={"flush_ms": 200}, receiver_extra=IN_ORDER | each_second
+    )
     client = pair.client(stream=23)
     send_paced(client.send, 64, rate=500)
     drain(pair, 63)
@@ -72,3 +75,30 @@ def test_a_gap_that_cannot_be_rebuilt_holds_what_follows_no_longer_than_the_boun
     print(f"\nunrecoverable gap, bound 200 ms: waits by bucket (cumulative) {waits}")
     assert waits["0.1"] < waits["count"]  # some waited for the bound ...
     assert waits["0.5"] == waits["count"]  # ... and none much longer (room for a late timer on a busy host)
+    # The periodic stats lines say it too (counts per interval).
+    assert wait_until(lambda: sum(int(e.get("gaps_skipped", 0)) for e in pair.receiver.events("stats")) == 1, 5.0)
+    assert sum(int(e["held"]) for e in pair.receiver.events("stats")) > 0
+
+
+def test_replies_reach_the_sender_side_in_order_too(pairs):
+    # The reply direction: the receiver encodes the server's echoes, the sender decodes them and
+    # delivers them to the client in order (delivery.order on the sender).
+    lost = [i for block in range(4) for i in (block * 20 + 3, block * 20 + 4)]
+    pair = pairs(
+        back=drop_indices(lost),
+        echo=True,
+        receiver_fec={"flush_ms": 200},
+        sender_extra=IN_ORDER,
+    )
+    client = pair.client(stream=24)
+    send_paced(client.send, 80, rate=500)
+    drain(pair, 80)
+
+    def replies_in() -> bool:
+        client.collect()
+        return len(client.replies) >= 80
+
+    assert wait_until(replies_in, 10.0)
+    assert client.replies == [(24, seq) for seq in range(80)]
+    assert pair.sender.metric("fecproxy_datagrams_recovered_total") == 8
+    assert pair.sender.metric("fecproxy_delivery_held_total") > 0

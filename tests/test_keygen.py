@@ -40,7 +40,7 @@ def test_writes_64_hex_digits_mode_0600_and_prints_only_the_key_id(tmp_path):
     check_key_file_mode(path.stat().st_mode, str(path))
     key = read_key_file(path)
     assert key == parse_key_text(text, str(path))
-    assert f"key id 0x{key.key_id:02x}" in result.stdout
+    assert f"key id 0x{key.key_id:02x}, fingerprint {key.fingerprint}" in result.stdout
     assert text[:16] not in result.stdout + result.stderr
 
 

@@ -17,6 +17,7 @@ from support.daemon_pair import (
     LOOPBACK,
     DaemonProcess,
     drain,
+    dropped,
     make_payload,
     parse_link_header,
     send_paced,
@@ -27,10 +28,6 @@ from support.keys import KEY_A, KEY_B, keyed
 from fecproxy.protocol import auth, keys, wire
 
 pytestmark = pytest.mark.slow
-
-
-def dropped(daemon: DaemonProcess, reason: str) -> float:
-    return daemon.metric("fecproxy_packets_dropped_total", reason=reason)
 
 
 @pytest.mark.parametrize("encrypt", [False, True])

@@ -31,7 +31,7 @@ LABEL_MEANINGS = {
     "direction": {"forward", "return"},  # the link direction of the pair (fecproxy impair)
     "code": {"send", "receive"},  # the code this daemon sends with / the peer's it receives
     "change": {"up", "down"},  # an adaptation of m
-    "kind": {"source", "repair"},
+    "kind": {"source", "repair", "control"},  # the kind of link packet (control: reports, key checks)
 }
 
 

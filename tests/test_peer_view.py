@@ -36,7 +36,10 @@ def test_a_peer_never_heard_is_waiting_not_silent():
 def test_silence_within_three_report_intervals_and_cleared_by_the_next_packet():
     interval = 1.0
     view = PeerView(silent_after_for(interval))
+    view.heard(0.0)
+    assert view.next_deadline() is None  # no report yet: the peer may not be reporting at all
     for t in range(10):  # a report a second
+        view.on_report(report(t + 1, 100 * t, 0, 0))
         assert view.heard(float(t)) == []
     stopped = 9.0
     deadline = view.next_deadline()
@@ -52,6 +55,7 @@ def test_silence_within_three_report_intervals_and_cleared_by_the_next_packet():
 
 def test_one_lost_report_does_not_make_the_peer_silent():
     view = PeerView(silent_after_for(1.0))
+    view.on_report(report(1, 0, 0, 0))
     view.heard(0.0)
     assert SILENT_AFTER_INTERVALS > 2  # two intervals: one report missing, the next one on time
     assert view.on_timer(2.0) == []

@@ -74,7 +74,7 @@ def control(fb, body, session=PEER):
 
 
 def follow_peer(fb):
-    """The decoder adopts the peer's session from one of its source packets."""
+    """The decoder follows the peer's session from one of its source packets."""
     fb.decoder.receive(BlockEncoder(EncoderSettings(block_size=4, repair=1), PEER).send(b"x", 0, 0.0)[0], None, 0.0)
 
 

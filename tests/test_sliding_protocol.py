@@ -279,3 +279,79 @@ def test_resolved_segments_are_reported_like_blocks_for_the_loss_estimate():
         (1, 16, "complete", 0, 0, 16),
     ]
     assert reports[0].arrived_mask == 0xFFFF & ~(1 << 5)
+
+
+def test_repair_symbols_match_the_reference_through_ring_wraps_and_window_changes():
+    rng = random.Random(5)
+    enc = SlidingEncoder(SlidingSettings(window=5, repair_interval=2, max_datagram=64), session=1)
+    aduis = {}
+    checked = 0
+    for i in range(60):
+        if i == 20:
+            enc.update(SlidingSettings(window=3, repair_interval=2, max_datagram=64))
+        if i == 40:
+            enc.update(SlidingSettings(window=7, repair_interval=3, max_datagram=64))
+        data = rng.randbytes(rng.randint(0, 64))
+        for packet in enc.send(data, 1, 0.0):
+            pkt = wire.parse(packet, max_datagram=64, sliding=True)
+            if isinstance(pkt, wire.SlidingSourcePacket):
+                aduis[pkt.esi] = wire.pack_symbol_prefix(pkt.flow, len(pkt.data), pkt.seq) + pkt.data
+            else:
+                window = [aduis[e] for e in range(pkt.first_esi, pkt.first_esi + pkt.nss)]
+                assert pkt.symbol == sliding.encode_repair(window, pkt.repair_key, pkt.dt)
+                checked += 1
+    assert checked >= 20
+
+
+def test_adaptation_sets_the_repair_interval_from_the_chosen_m():
+    """fec.adapt chooses m for k = fec.block_size; the sliding code sends that overhead:
+    one repair every ceil(k/m) datagrams (never more than the window)."""
+    from fecproxy.protocol.encoder import EncoderSettings
+
+    fixed = SlidingEncoder(SlidingSettings(window=32, repair_interval=4), session=1)
+    fixed.update(EncoderSettings(block_size=16, repair=8))
+    assert fixed.sliding_settings.repair_interval == 4  # no fec.adapt: the configured interval stays
+    adapting = SlidingEncoder(SlidingSettings(window=32, repair_interval=4), session=1, follow_repair=True)
+    for m, interval in ((8, 2), (3, 6), (1, 16), (16, 1)):
+        adapting.update(EncoderSettings(block_size=16, repair=m))
+        assert adapting.sliding_settings.repair_interval == interval
+        assert adapting.settings.repair == m
+    small = SlidingEncoder(SlidingSettings(window=8, repair_interval=4), session=1, follow_repair=True)
+    small.update(EncoderSettings(block_size=16, repair=1))
+    assert small.sliding_settings.repair_interval == 8
+
+
+def test_forged_far_ahead_esis_do_not_move_the_window_but_a_real_jump_does():
+    rng = random.Random(9)
+    enc = SlidingEncoder(SlidingSettings(window=16, repair_interval=4), session=4)
+    dec = SlidingDecoder()
+    link = []
+    for i in range(200):
+        link += enc.send(b"%03d" % i, 0, 0.0)
+    sources = [n for n, p in enumerate(link) if p[0] == wire.SLIDING_SOURCE_TYPE_BYTE]
+    lost = set(sources[10::17])
+    events = []
+    for n, packet in enumerate(link):
+        if n % 5 == 0:  # a stranger's forged packets of the same session, ESIs anywhere
+            esi = rng.randrange(1 << 32)
+            forged = rng.choice(
+                [
+                    wire.encode_sliding_source(4, esi, 0, b"forged"),
+                    wire.encode_sliding_repair(4, esi, rng.randrange(4096), 15, 16, bytes(12)),
+                ]
+            )
+            events += dec.receive(forged, 0.0)[0]
+        if n not in lost:
+            events += dec.receive(packet, 0.0)[0]
+    genuine = [d for d in deliveries(events) if d[1] != b"forged"]
+    assert sorted(genuine) == [(0, b"%03d" % i) for i in range(200)]
+    # a real jump: the sender goes on 10 000 datagrams later; after RESYNC_PACKETS agreeing
+    # packets the window follows, and losses are rebuilt again
+    enc2 = SlidingEncoder(SlidingSettings(window=16, repair_interval=4), session=4, first_esi=10_200)
+    later = []
+    for i in range(40):
+        later += enc2.send(b"L%02d" % i, 0, 0.0)
+    later_sources = [n for n, p in enumerate(later) if p[0] == wire.SLIDING_SOURCE_TYPE_BYTE]
+    events = feed(dec, [p for n, p in enumerate(later) if n != later_sources[30]])
+    assert sorted(deliveries(events)) == [(0, b"L%02d" % i) for i in range(40)]
+    assert any(isinstance(e, Delivery) and e.recovered for e in events)

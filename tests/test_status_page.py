@@ -75,15 +75,17 @@ def _call(app, path: str, method: str = "GET"):
     return captured["status"], captured["headers"], body
 
 
-def _exposition(registry) -> dict[str, float]:
+def _exposition(registry) -> dict[str, float | None]:
     """Samples of the registry's /metrics text, keyed the way status.json keys them."""
     from prometheus_client.parser import text_string_to_metric_families
 
-    out = {}
+    out: dict[str, float | None] = {}
     for family in text_string_to_metric_families(generate_latest(registry).decode()):
         for sample in family.samples:
             if sample.name != "fecproxy_info":
-                out[status.sample_key(sample.name, sample.labels)] = sample.value
+                # /status.json writes NaN (not yet known) as null, as JSON has no NaN.
+                value = sample.value
+                out[status.sample_key(sample.name, sample.labels)] = None if math.isnan(value) else value
     return out
 
 
@@ -97,7 +99,14 @@ def test_status_json_holds_exactly_what_metrics_exposes():
     code, headers, body = _call(app, "/status.json")
     assert code.startswith("200") and headers["Content-Type"] == "application/json"
     document = json.loads(body)
-    assert document["samples"] == _exposition(registry)
+    exposed = _exposition(registry)
+    # The process's own series (CPU seconds, memory) move between the two reads; their keys match.
+    assert document["samples"].keys() == exposed.keys()
+
+    def steady(samples: dict) -> dict:
+        return {key: value for key, value in samples.items() if not key.startswith("process_")}
+
+    assert steady(document["samples"]) == steady(exposed)
     assert document["info"] == {
         "version": document["info"]["version"],
         "role": "receiver",
@@ -369,3 +378,27 @@ def test_status_page_in_headless_chromium_shows_the_daemons_metrics(pairs, tmp_p
         assert shown["plan"] is None and "no code meets" in shown["planText"]
     else:
         assert shown["plan"] == [recommended["k"], recommended["m"]]
+
+
+def test_in_the_background_the_plan_is_computed_off_the_event_loop_and_shown_when_ready():
+    """The daemon's loop answers /status.json; a 15–80 ms plan must not hold it up."""
+    import threading
+
+    daemon, clock = _view(), _Clock()
+    release, threads = threading.Event(), []
+
+    def slow_planner(loss, burst, rate):
+        threads.append(threading.current_thread().name)
+        release.wait(10)
+        return {"recommended": None, "note": "planned", "command": status.plan_command(loss, burst, rate)}
+
+    source = status.StatusSource(build_registry(daemon)[0], clock=clock, planner=slow_planner, background=True)
+    clock.now += 5
+    daemon.decoder_stats.source_received += 1000
+    assert source.document()["plan"]["note"].startswith("computing")  # answered at once
+    release.set()
+    deadline = time.monotonic() + 10
+    while source.document()["plan"].get("note") != "planned" and time.monotonic() < deadline:
+        time.sleep(0.01)
+    assert source.document()["plan"]["note"] == "planned"
+    assert threads == ["fecproxy-plan"]  # one worker, not the caller's thread

@@ -199,6 +199,8 @@ class WindowSystem:
         self._rhs = np.zeros((0, 0), dtype=np.uint8)  # rows × width
         self._pivots: list[int] = []  # pivot column index of each row
         self.redundant = 0  # equations that added nothing (every unknown already determined)
+        self._newest_known = -(1 << 62)
+        self._unordered = False  # some known ESI was added behind a newer one
 
     @property
     def rows(self) -> int:
@@ -212,6 +214,12 @@ class WindowSystem:
     def width(self) -> int:
         return self._rhs.shape[1]
 
+    def _note_known(self, esi: int) -> None:
+        if esi < self._newest_known:
+            self._unordered = True
+        else:
+            self._newest_known = esi
+
     def held_bytes(self) -> int:
         """Bytes of symbol data the system holds (for the decoder's memory budget)."""
         return sum(symbol.nbytes for symbol in self.known.values()) + self._rhs.nbytes + self._coefs.nbytes
@@ -223,6 +231,7 @@ class WindowSystem:
         array = np.frombuffer(symbol, dtype=np.uint8) if not isinstance(symbol, np.ndarray) else symbol
         if esi in self.known:
             return []
+        self._note_known(esi)
         self.known[esi] = array
         column = self._column_of.get(esi)
         if column is None:
@@ -278,8 +287,16 @@ class WindowSystem:
         Equations that involve a given-up unknown go with it: a row in reduced form cannot
         lose a column without losing what it says about the others.
         """
-        for esi in [e for e in self.known if e < esi_limit]:
-            del self.known[esi]
+        known = self.known
+        while known:  # ESIs come in (nearly) increasing order: the old ones are at the front
+            oldest = next(iter(known))
+            if oldest >= esi_limit:
+                break
+            del known[oldest]
+        if self._unordered:  # a late arrival or a rebuilt symbol went in behind newer ones
+            for esi in [e for e in known if e < esi_limit]:
+                del known[esi]
+            self._unordered = False
         old = [esi for esi in self._columns if esi < esi_limit]
         if not old:
             return []
@@ -398,6 +415,7 @@ class WindowSystem:
         for r in singles.tolist():
             esi = self._columns[self._pivots[r]]
             symbol = self._rhs[r].copy()
+            self._note_known(esi)
             self.known[esi] = symbol
             solved.append((esi, symbol.tobytes()))
         done = set(singles.tolist())

@@ -62,9 +62,10 @@ def main(args: argparse.Namespace) -> int:
     except OSError as error:
         print(f"{path}: cannot create the key file: {error.strerror or error}", file=sys.stderr)
         return EXIT_NOT_WRITTEN
-    key_id = MasterKey(secret).key_id
+    key = MasterKey(secret)
     print(
-        f"{path}: new key written (mode 0600, key id 0x{key_id:02x}). Copy it to the peer over a secure "
-        f"channel and set auth.key_file on both sides; `fecproxy check` shows the key id to compare."
+        f"{path}: new key written (mode 0600, key id 0x{key.key_id:02x}, fingerprint {key.fingerprint}). Copy it "
+        f"to the peer over a secure channel and set auth.key_file on both sides; `fecproxy check` shows the "
+        f"fingerprint to compare (`fecproxy check SENDER.yaml RECEIVER.yaml` compares both sides')."
     )
     return EXIT_WRITTEN

@@ -109,6 +109,8 @@ class Figures:
     drops: dict[str, float] = field(default_factory=dict)
     flows: float = 0.0
     estimate: tuple[float, float] | None = None
+    air: str | None = None  # the link's use of its air rate (link.rate), None when not paced
+    far_end: str = "—"  # what the peer reports on the direction this daemon sends, and its silence
     # In-order delivery (delivery.order: in_order): datagrams handed on through it, the added
     # wait's quantiles, datagrams that waited behind a gap and gaps skipped.
     ordered: float = 0.0
@@ -170,7 +172,51 @@ def figures(now: Samples, before: Samples | None = None, seconds: float | None =
         k, m = _get(now, "fecproxy_received_code_source_symbols"), _get(now, "fecproxy_received_code_repair_symbols")
         if math.isfinite(k):
             out.decoding = f"k={k:.0f} m={m:.0f}" if math.isfinite(m) else f"k={k:.0f}"
+            if _get(now, "fecproxy_received_code_full_blocks") == 0:
+                out.decoding = f"short blocks only so far (last {out.decoding})"
+    out.air = _air_use(now, before, seconds)
+    out.far_end = _far_end(now)
     return out
+
+
+def _air_use(now: Samples, before: Samples | None, seconds: float | None) -> str | None:
+    """Share of link.rate used by source, repair and control, and the pacer's queue."""
+    rate = _get(now, "fecproxy_link_rate_bytes_per_second")
+    if not math.isfinite(rate) or rate <= 0:
+        return None
+    queue = (
+        f"queue {_get(now, 'fecproxy_link_queue_packets'):.0f} pkts, "
+        f"wait {1000 * _get(now, 'fecproxy_link_queue_delay_seconds'):.0f} ms"
+    )
+    dropped = sum(
+        _delta(now, before, name, **dict(labels))
+        for (name, labels), _ in now.items()
+        if name == "fecproxy_link_queue_dropped_total"
+    )
+    if not seconds or before is None:
+        return f"link.rate {8 * rate / 1000:g} kbit/s, {queue}, {dropped:.0f} dropped since start"
+    use = {
+        kind: _delta(now, before, "fecproxy_link_air_bytes_sent_total", kind=kind) / seconds / rate
+        for kind in ("source", "repair", "control")
+    }
+    parts = " + ".join(f"{kind} {100 * share:.1f} %" for kind, share in use.items())
+    return f"{100 * sum(use.values()):.1f} % of {8 * rate / 1000:g} kbit/s ({parts}), {queue}, {dropped:.0f} dropped"
+
+
+def _far_end(now: Samples) -> str:
+    """The peer's reported loss on what this daemon sends, and whether it is heard."""
+    silent = _get(now, "fecproxy_peer_silent")
+    heard = _get(now, "fecproxy_peer_last_heard_seconds")
+    before, after = _get(now, "fecproxy_peer_link_loss_ratio"), _get(now, "fecproxy_peer_residual_loss_ratio")
+    if silent == 1:
+        state = f"PEER SILENT for {heard:.0f} s (nothing valid from it)"
+    elif math.isfinite(heard):
+        state = f"heard {heard:.1f} s ago"
+    else:
+        state = "not heard yet"
+    if math.isfinite(before):
+        return f"peer reports loss {_percent(before)} before, {_percent(after)} after recovery; {state}"
+    return f"no loss report yet; {state}"
 
 
 def _percent(value: float | None) -> str:
@@ -233,6 +279,7 @@ def render_endpoint(url: str, view: Figures | NotADaemon | str, events: list[str
             + f"   held {_per(f.held, f.seconds)}, gaps skipped {_per(f.skipped, f.seconds)}"
         ),
         f"  flows                        {f.flows:.0f}",
+        f"  far end (what we send)       {f.far_end}",
         "  online estimate              "
         + (
             "— (no block received from the peer yet)"
@@ -240,6 +287,8 @@ def render_endpoint(url: str, view: Figures | NotADaemon | str, events: list[str
             else f"loss {_percent(f.estimate[0])}, mean burst {f.estimate[1]:.2f} packets"
         ),
     ]
+    if f.air is not None:
+        lines.append(f"  air rate used                {f.air}")
     if events is not None:
         lines.append("  events                       " + ("" if events else "none"))
         lines.extend(f"    {line}" for line in events)

@@ -1,6 +1,8 @@
 """Configuration: YAML text -> a validated, frozen :class:`Config` the daemon trusts.
 
-Modules: :mod:`~fecproxy.config.schema` (sections, defaults, limits, the checker table),
+Modules: :mod:`~fecproxy.config.schema` (the parser and Config), :mod:`~fecproxy.config.sections`
+(the typed sections), :mod:`~fecproxy.config.limits` (named limits and defaults),
+:mod:`~fecproxy.config.tables` (the key -> checker table),
 :mod:`~fecproxy.config.addresses` (HOST:PORT in and out), :mod:`~fecproxy.config.loading`
 (file and YAML reading, key files), :mod:`~fecproxy.config.messages` (how faults are worded).
 """

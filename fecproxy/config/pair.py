@@ -15,6 +15,7 @@ import math
 from dataclasses import dataclass
 
 from fecproxy.config.schema import Config, Role
+from fecproxy.config.sections import FecCode
 from fecproxy.linkmodel.airtime import LinkBudget
 from fecproxy.protocol.auth import TRAILER_BYTES
 from fecproxy.protocol.pacer import IPV4_UDP_HEADER_BYTES, IPV6_UDP_HEADER_BYTES
@@ -82,6 +83,7 @@ class _Checker:
             self.hold_covers_flush(encoder, decoder)
             self.blocks_fit(encoder, decoder)
             self.reports_for_adaptation(encoder, decoder)
+            self.in_order_wait(encoder, decoder)
         self.flow_tables()
         self.link_budgets()
         self.addresses()
@@ -158,6 +160,22 @@ class _Checker:
                 f"hold_ms ≥ {needed} (a block would expire before its repair packets arrive)",
             )
 
+    def in_order_wait(self, encoder: Side, decoder: Side) -> None:
+        """With in-order delivery a datagram behind a gap waits at most max_wait_ms; a gap is
+        rebuilt when its block's repair arrives, up to the encoder's flush time (plus air time
+        and spread) after the block began: a shorter wait skips gaps that would have been rebuilt."""
+        delivery = decoder.config.delivery
+        if not delivery.in_order:
+            return
+        rebuilt = encoder.config.fec.flush_ms + _repair_air_ms(encoder.config) + self.spread
+        if delivery.max_wait_ms < rebuilt:
+            self.warn(
+                decoder,
+                "delivery.max_wait_ms",
+                f"{delivery.max_wait_ms} is below the {rebuilt} ms a gap may take to be rebuilt ({encoder.source}'s "
+                f"fec.flush_ms, plus air time and delay spread): such gaps are skipped although repair is on its way",
+            )
+
     def link_budgets(self) -> None:
         """The two ends of one path: the same declared MTU, and pacing on both or neither (an
         unpaced side floods the modem buffer the paced side protects)."""
@@ -182,6 +200,8 @@ class _Checker:
         """The decoder must hold at least one round of the encoder's open blocks (D per size
         class), in blocks and in bytes."""
         fec = encoder.config.fec
+        if fec.code is FecCode.SLIDING:
+            return  # no blocks: the sliding decoder's window has its own fixed bound (README "Bounds")
         classes = len(fec.size_classes) + 1
         open_at_once = fec.interleave * classes
         limits = decoder.config.decoder
@@ -266,6 +286,8 @@ def _repair_air_ms(config: Config) -> int:
         mtu=link.mtu,
     )
     repair = fec.repair if fec.adapt is None else max(fec.repair, fec.adapt.repair_ceiling(fec.block_size))
+    if fec.code is FecCode.SLIDING:
+        repair = 1  # the flush timer sends one repair packet for what no repair covers yet
     return math.ceil(repair * budget.repair_wire_bytes / budget.rate_bytes * 1000)
 
 

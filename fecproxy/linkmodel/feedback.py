@@ -36,6 +36,7 @@ from fecproxy.protocol.decoder import BlockDecoder
 from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
 from fecproxy.protocol.events import BlockReport, ControlReceived, Dropped
 from fecproxy.protocol.loss_report import KEY_CHECK_BODY, LossReport, encode_report, parse_report
+from fecproxy.protocol.peer_view import PeerHeard, PeerSilent, PeerView, silent_after_for
 from fecproxy.protocol.sliding_encoder import SlidingEncoder
 from fecproxy.protocol.wire import PacketError
 
@@ -50,6 +51,8 @@ REPORT_ESTIMATE_WINDOW = 1000
 #: (sent by a run of the peer before it restarted, or forged); the others are the controller's
 #: (adaptation.IGNORE_REASONS).
 OTHER_SESSION = "other_session"
+#: The peer's report interval assumed until its first report says its own (config default, 1 s).
+DEFAULT_REPORT_INTERVAL_S = 1.0
 #: Source packets the link-loss estimate (the metrics' and the status page's) looks back over:
 #: long enough to see several bursts at a few percent loss, short enough to follow a changing
 #: link within seconds at telemetry rates (common practice, no source).
@@ -65,7 +68,7 @@ class ReportDue:
 
 
 #: What Feedback returns: a report to send, the controller's events, a control body refused.
-FeedbackEvent = ReportDue | Decision | ReportsStale | ReportsResumed | Dropped
+FeedbackEvent = ReportDue | Decision | ReportsStale | ReportsResumed | Dropped | PeerSilent | PeerHeard
 
 
 @dataclass
@@ -193,6 +196,8 @@ class Feedback:
         self._base: EncoderSettings = encoder.settings
         self._past_decisions: dict[tuple[str, str], int] = {}  # of controllers a reload replaced
         self._past_ignored: dict[str, int] = {}
+        #: The far end: silence (anything valid heard, fed by the shell) and the loss it reports.
+        self.peer = PeerView(silent_after_for(DEFAULT_REPORT_INTERVAL_S))
 
     # -- configuration ---------------------------------------------------------------------------
 
@@ -248,11 +253,14 @@ class Feedback:
             deadline = self.adapter.next_deadline()
             if deadline is not None:
                 deadlines.append(deadline)
+        silence = self.peer.next_deadline()
+        if silence is not None:
+            deadlines.append(silence)
         return min(deadlines) if deadlines else None
 
     def on_timer(self, now: float) -> list[FeedbackEvent]:
         """The adapter's stale check, then a report if one is due (ReportDue: send its packet)."""
-        events: list[FeedbackEvent] = []
+        events: list[FeedbackEvent] = list(self.peer.on_timer(now))
         adapter = self._adapter(now)
         if adapter is not None:
             events += self._applied(adapter.on_timer(now))
@@ -291,6 +299,8 @@ class Feedback:
             self.stats.ignored[OTHER_SESSION] = self.stats.ignored.get(OTHER_SESSION, 0) + 1
             return []
         self.stats.received += 1
+        self.peer.on_report(report)
+        self.peer.silent_after = silent_after_for(report.interval_ms / 1000)  # the peer's own rhythm
         adapter = self._adapter(now)
         if adapter is None:
             return []

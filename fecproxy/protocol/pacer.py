@@ -105,6 +105,7 @@ class PacerCounters:
     """Totals since start; ``offered[kind] == sent[kind] + queued[kind] + Σ dropped[(kind, reason)]``."""
 
     offered: dict[PacketKind, int] = field(default_factory=lambda: dict.fromkeys(PacketKind, 0))
+    offered_wire_bytes: dict[PacketKind, int] = field(default_factory=lambda: dict.fromkeys(PacketKind, 0))
     sent: dict[PacketKind, int] = field(default_factory=lambda: dict.fromkeys(PacketKind, 0))
     sent_wire_bytes: dict[PacketKind, int] = field(default_factory=lambda: dict.fromkeys(PacketKind, 0))
     dropped: dict[tuple[PacketKind, PacerDrop], int] = field(
@@ -164,6 +165,7 @@ class Pacer(Generic[T]):
         counters = self.counters
         counters.offered[kind] += 1
         entry = _Entry(kind, bytes(packet), destination, len(packet) + self.header_bytes, now)
+        counters.offered_wire_bytes[kind] += entry.wire_bytes
         if kind is PacketKind.CONTROL:
             self._make_room(entry.wire_bytes, (self._repairs, self._sources))
             waiting_control = sum(1 for e in self._control if not e.gone)

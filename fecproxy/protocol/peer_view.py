@@ -13,9 +13,10 @@ Two things an operator at the sending end needs and cannot see from its own coun
   before recovery (link) and after (residual) over at least :data:`MIN_SOURCE_SAMPLES` datagrams,
   not over a single second's handful.
 
-A peer never heard from is neither silent nor heard: ``seconds_since_heard`` is NaN until then,
-and silence is only declared after something was heard once (a sender started before its peer
-is "waiting", not "silent").
+A peer never heard from is neither silent nor heard: ``seconds_since_heard`` is NaN until then.
+Silence is declared only once the peer has sent a loss report: a peer reports only on traffic it
+decodes, so a side that sends nothing (or whose peer does not report) expects nothing and an idle
+application never reads as a dead peer.
 """
 
 from __future__ import annotations
@@ -67,6 +68,7 @@ class PeerView:
         self.silent_after = silent_after
         self.silent = False
         self.last_heard_at: float | None = None
+        self.reporting = False  # a loss report came: from now on silence means something
         self._last: LossReport | None = None
         self._history: deque[tuple[int, int, int]] = deque(maxlen=HISTORY_REPORTS)  # (expected, lost, unrecovered)
 
@@ -81,7 +83,7 @@ class PeerView:
         return []
 
     def next_deadline(self) -> float | None:
-        if self.silent or self.last_heard_at is None:
+        if self.silent or self.last_heard_at is None or not self.reporting:
             return None
         return self.last_heard_at + self.silent_after
 
@@ -101,6 +103,7 @@ class PeerView:
     def on_report(self, report: LossReport) -> None:
         """A loss report from the peer (already checked and not a replay); counters are cumulative
         within the report's epoch, so a lost report loses nothing."""
+        self.reporting = True
         last = self._last
         if last is not None and last.epoch == report.epoch:
             if not 0 < (report.sequence - last.sequence) % _SEQUENCE_MODULUS < _SEQUENCE_MODULUS // 2:

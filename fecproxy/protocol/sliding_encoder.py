@@ -24,6 +24,8 @@ from collections import deque
 from collections.abc import Iterable
 from dataclasses import dataclass
 
+import numpy as np
+
 from fecproxy.coding import sliding
 from fecproxy.protocol import wire
 from fecproxy.protocol.auth import Sealer
@@ -129,7 +131,13 @@ class SlidingEncoder:
         self._settings = settings
         self._next_esi = first_esi % wire.ESI_MODULUS
         self._sequences = FlowSequencer()  # each flow's datagrams numbered in the order taken
-        self._window: deque[tuple[int, float, bytes]] = deque()  # (ESI, time added, ADUI)
+        #: The encoding window, oldest first: (ESI, time added, ring row, ADUI length).  The ADUIs
+        #: themselves sit in ``_ring``, one zero-padded row each, so a repair symbol is one kernel
+        #: call on a slice of it, with no per-packet stacking of the window's bytes.
+        self._window: deque[tuple[int, float, int, int]] = deque()
+        self._ring = np.zeros((settings.window, settings.max_datagram + wire.SYMBOL_PREFIX_BYTES), dtype=np.uint8)
+        self._row_lengths = [0] * settings.window
+        self._next_row = 0
         self._since_repair = 0  # source packets since the last repair packet
         self._uncovered_since: float | None = None  # time of the oldest datagram no repair covers
         self._next_key = 0
@@ -155,6 +163,7 @@ class SlidingEncoder:
             interval = min(interval_for(settings), self._settings.window)
             settings = dataclasses.replace(self._settings, repair_interval=interval)
         self._settings = settings
+        self._reshape_ring()
         self._slide(None)
 
     def control(self, body: bytes) -> bytes:
@@ -194,7 +203,7 @@ class SlidingEncoder:
             stats.datagram_bytes += size
             if size > self._longest:
                 self._longest = size
-            self._window.append((esi, now, wire.pack_symbol_prefix(flow, size, seq) + datagram))
+            self._store(esi, now, wire.pack_symbol_prefix(flow, size, seq) + datagram)
             self._slide(now)
             if self._uncovered_since is None:
                 self._uncovered_since = now
@@ -202,6 +211,35 @@ class SlidingEncoder:
             if self._since_repair >= settings.repair_interval:
                 out.append(self._repair())
         return self._sealed(out)
+
+    def _store(self, esi: int, now: float, adui: bytes) -> None:
+        """Put an ADUI in the next ring row (the oldest window entry's, which ``_slide`` drops)."""
+        row, length = self._next_row, len(adui)
+        self._next_row = (row + 1) % self._ring.shape[0]
+        ring = self._ring
+        ring[row, :length] = np.frombuffer(adui, dtype=np.uint8)
+        old = self._row_lengths[row]
+        if old > length:
+            ring[row, length:old] = 0
+        self._row_lengths[row] = length
+        self._window.append((esi, now, row, length))
+
+    def _reshape_ring(self) -> None:
+        """A new window size or datagram limit: the kept entries move to a ring of the new shape."""
+        settings = self._settings
+        rows, width = settings.window, settings.max_datagram + wire.SYMBOL_PREFIX_BYTES
+        if self._ring.shape == (rows, width):
+            return
+        kept = list(self._window)[-rows:]
+        ring = np.zeros((rows, max(width, max((e[3] for e in kept), default=0))), dtype=np.uint8)
+        lengths = [0] * rows
+        window: deque[tuple[int, float, int, int]] = deque()
+        for row, (esi, added, old_row, length) in enumerate(kept):
+            ring[row, :length] = self._ring[old_row, :length]
+            lengths[row] = length
+            window.append((esi, added, row, length))
+        self._ring, self._row_lengths, self._window = ring, lengths, window
+        self._next_row = len(kept) % rows
 
     def _slide(self, now: float | None) -> None:
         """Keep at most ``window`` symbols, none older than ``window_age`` (when ``now`` is known)."""
@@ -219,12 +257,19 @@ class SlidingEncoder:
         settings = self._settings
         key = self._next_key
         self._next_key = (key + 1) % REPAIR_KEY_CYCLE
-        symbols = [adui for _, _, adui in self._window]
-        symbol = sliding.encode_repair(symbols, key, settings.density)
-        packet = wire.pack_sliding_repair(
-            self.session, self._window[0][0], key, settings.density << wire.NSS_BITS | len(symbols)
-        )
-        packet += symbol
+        window = self._window
+        count = len(window)
+        coefs = sliding.coefficients(key, count, settings.density)
+        length = max(entry[3] for entry in window)
+        first_row, last_row = window[0][2], window[-1][2]
+        if last_row - first_row == count - 1:  # the window's rows are one slice, in order
+            symbol = sliding.combine(coefs, self._ring[first_row : last_row + 1, :length])
+        else:  # wrapped: every row, each with its entry's coefficient (0 outside the window)
+            spread = np.zeros(self._ring.shape[0], dtype=np.uint8)
+            spread[[entry[2] for entry in window]] = coefs
+            symbol = sliding.combine(spread, self._ring[:, :length])
+        packet = wire.pack_sliding_repair(self.session, window[0][0], key, settings.density << wire.NSS_BITS | count)
+        packet += symbol.tobytes()
         self._since_repair = 0
         self._uncovered_since = None
         self.stats.repair_packets += 1

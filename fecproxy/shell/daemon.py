@@ -29,30 +29,32 @@ import trio
 from fecproxy import __version__
 from fecproxy.config import Config
 from fecproxy.config.addresses import format_sockaddr
-from fecproxy.linkmodel.adaptation import STALE_AFTER_INTERVALS, Decision, ReportsResumed, ReportsStale
 from fecproxy.linkmodel.feedback import Feedback, ReportDue
 from fecproxy.protocol import auth
 from fecproxy.protocol.decoder import BlockDecoder
 from fecproxy.protocol.events import (
     BlockOutcome,
     BlockReport,
+    ChallengeDue,
     ControlReceived,
     Delivery,
-    Dropped,
     DropReason,
     KeyCheckDue,
-    PeerAddressChanged,
-    PeerCodeSettled,
     SessionStarted,
 )
 from fecproxy.protocol.loss_report import KEY_CHECK_BODY
 from fecproxy.protocol.ordering import InOrderDelivery
+from fecproxy.protocol.pacer import PacketKind
 from fecproxy.protocol.sliding_encoder import SlidingEncoder
 from fecproxy.shell.app_side import SideOpenError, app_side
+from fecproxy.shell.event_log import log_core_event
 from fecproxy.shell.fdlimit import ensure_open_files, files_needed
+from fecproxy.shell.freshness_link import FreshnessLink
 from fecproxy.shell.history import History
+from fecproxy.shell.link_output import LinkOutput
 from fecproxy.shell.logs import event_sink, log_event, log_exception
 from fecproxy.shell.metrics import MetricsServer, build_registry, serve
+from fecproxy.shell.operator_notes import OversizeWarning, ratio_field
 from fecproxy.shell.settings import (
     ReloadRejected,
     apply_flow_timeouts,
@@ -120,11 +122,16 @@ class Daemon:
         #: The application side, by role (sender: clients at ``listen``; receiver: ``forward``).
         self.app = app_side(config, flow_table(config), self._encode_and_send)
         self.counts = ShellCounts()
+        self.freshness = FreshnessLink(self.encoder, self.decoder)  # keyed: proving sessions live
         #: delivery.order: in_order puts each flow back in the sender's order before the
         #: application side (protocol.ordering); None delivers as available.
         self.order = InOrderDelivery(config.delivery.max_wait_seconds) if config.delivery.in_order else None
+        #: Every link packet goes out through here: at once, or paced to link.rate.
+        self.link = LinkOutput(config)
+        self.oversize = OversizeWarning()
+        self._heard = 0  # valid packets from the peer so far (decoder counts + loss reports)
         self.view = DaemonStatsView(
-            str(config.role), self.encoder, self.decoder, self.feedback, self.app, self.counts, self.order
+            str(config.role), self.encoder, self.decoder, self.feedback, self.app, self.counts, self.order, self.link
         )
         self._link_sock: Any = None
         self._link_writer: DatagramWriter | None = None
@@ -167,6 +174,7 @@ class Daemon:
             self._link_writer = writer = DatagramWriter(self._link_sock)
             self.counts.link_send_errors = lambda: writer.send_errors
             self.link_address = self._link_sock.getsockname()
+            self.link.attach(writer, self._link_sock.family, trio.current_time())
             if cfg.link.peer is not None:
                 key, address = "link.peer", cfg.link.peer
                 self.decoder.peer = resolve(cfg.link.peer.host, cfg.link.peer.port, self._link_sock.family)
@@ -221,6 +229,7 @@ class Daemon:
         cfg = self.config
         self._check_open_files()
         metrics = self._open_sockets()
+        self.freshness.start(trio.current_time())
         configure_feedback(self.feedback, cfg, trio.current_time())
         # From here on, this task's events and those of the tasks it starts go to the history too.
         sink = event_sink.set(self.history.record)
@@ -231,7 +240,9 @@ class Daemon:
                 if metrics is not None:
                     nursery.start_soon(metrics.run)  # the metrics port: a task here, no thread
                 nursery.start_soon(self._link_loop)
+                nursery.start_soon(self.link.run)
                 nursery.start_soon(self._timer_loop)
+                nursery.start_soon(self.freshness.hellos, self.link.send, lambda: self.peer)
                 if signals is not None:
                     nursery.start_soon(self._signal_loop, signals)
                 if cfg.log.stats_interval_s:
@@ -253,6 +264,7 @@ class Daemon:
                     **self._code_fields(cfg),
                     flush_ms=cfg.fec.flush_ms,
                     adapt="on" if self.feedback.adapting else "off",
+                    link_rate=f"{cfg.link.rate:g}" if cfg.link.rate is not None else "off",
                     reports_ms=cfg.reports.interval_ms,
                     sends=side["sends"],
                     decoding="peer's code unknown until traffic",
@@ -290,6 +302,9 @@ class Daemon:
             _add(by_flow, self.order.close(now))
             if by_flow:
                 await self.app.deliver(by_flow, now)
+        left = await self.link.drain()  # the paced queue: the last block's repair packets
+        if left:
+            log_event(log, logging.INFO, "queue_discarded", packets=left, detail="still queued for the link at stop")
         self._nursery.cancel_scope.cancel()
 
     def summary(self) -> dict[str, int]:
@@ -312,6 +327,7 @@ class Daemon:
         """Frame a batch (blocks it fills share codec calls, see BlockEncoder.send_batch) and
         put it on the link.  Both roles: the sender's client datagrams, the receiver's replies."""
         encoder = self.encoder
+        self.freshness.note(now)
         oversize = encoder.stats.dropped.get(DropReason.OVERSIZE, 0)
         try:
             out = encoder.send_batch(items, now)
@@ -319,15 +335,8 @@ class Daemon:
             self._internal_error("encoder")
             out = []
         dropped = encoder.stats.dropped.get(DropReason.OVERSIZE, 0) - oversize
-        if dropped:
-            log_event(
-                log,
-                logging.DEBUG,
-                "dropped",
-                reason=DropReason.OVERSIZE,
-                count=dropped,
-                detail=f"datagrams over max_datagram {encoder.settings.max_datagram} bytes",
-            )
+        if dropped:  # a warning at most every 10 s, with size, limit and key (operator_notes)
+            self.oversize.note(dropped, max(len(data) for data, _ in items), encoder.settings.max_datagram, now)
         await self._send_to_peer(out)
         self._reschedule()
 
@@ -377,6 +386,11 @@ class Daemon:
             if by_flow:
                 await self.app.deliver(by_flow, now)
                 by_flow = {}
+            stats = self.decoder.stats
+            heard = stats.source_received + stats.repair_received + self.feedback.stats.received
+            if heard != self._heard:  # anything valid from the peer: it is there
+                self._heard = heard
+                await self._handle_events(self.feedback.peer.heard(now), now)
             self._reschedule()
 
     async def _timer_loop(self) -> None:
@@ -416,94 +430,24 @@ class Daemon:
             await self._handle_event(event, now)
 
     async def _handle_event(self, event: Any, now: float) -> None:
-        """The one handler of what the cores say (deliveries aside, batched by the link loop)."""
+        """The one handler of what the cores say (deliveries aside, batched by the link loop):
+        act on the event, then log it (shell.event_log)."""
         if isinstance(event, BlockReport):
             self.feedback.on_block(event)
-            if event.unrecovered:
-                log_event(
-                    log,
-                    logging.DEBUG,
-                    "block_unrecovered",
-                    sbn=event.sbn,
-                    k=event.k,
-                    lost=event.lost,
-                    outcome=event.outcome,
-                )
-        elif isinstance(event, Dropped):
-            if event.notice is not None:
-                # One line per kind of failure per interval: a peer with the wrong key says so
-                # plainly, a flood of forgeries does not flood the log.
-                kind = getattr(event.error, "kind", event.reason)
-                log_event(log, logging.WARNING, "auth_failed", kind=kind, detail=event.notice)
-            elif event.reason is not DropReason.AUTH:
-                log_event(log, logging.DEBUG, "dropped", reason=event.reason, detail=event.detail)
-        elif isinstance(event, PeerAddressChanged):
-            if event.previous is not None:
-                log_event(
-                    log,
-                    logging.INFO,
-                    "peer_changed",
-                    old=format_sockaddr(event.previous),
-                    new=format_sockaddr(event.address),
-                )
         elif isinstance(event, KeyCheckDue):
             # Sealed with our key, so the peer's log says the same as ours (see loss_report).
-            if self.encoder.sealer is not None and self._link_writer is not None:
-                await self._link_writer.send([self.encoder.control(KEY_CHECK_BODY)], event.address)
-        elif isinstance(event, PeerCodeSettled):
-            # INFO the first time per peer session, DEBUG when it changes later (an adapting peer
-            # changes m often).
-            log_event(
-                log,
-                logging.INFO if event.first else logging.DEBUG,
-                "peer_code",
-                k=event.k,
-                m=event.m,
-                detail="decoding the peer's blocks (k from its repair packets, m = highest repair ESI - k + 1)",
-            )
+            if self.encoder.sealer is not None:
+                await self.link.send([self.encoder.control(KEY_CHECK_BODY)], event.address, now)
+        elif isinstance(event, ChallengeDue | ControlReceived) and self.freshness.claims(event):
+            await self.freshness.answer(event, self.link.send, self.peer, now)
         elif isinstance(event, ControlReceived):
             await self._handle_events(self.feedback.on_control(event, now), now)
         elif isinstance(event, SessionStarted):
             if event.previous is not None:
                 self.app.peer_restarted()
-            log_event(
-                log,
-                logging.INFO,
-                "peer_session",
-                session=f"{event.session:08x}",
-                previous=f"{event.previous:08x}" if event.previous is not None else "-",
-            )
         elif isinstance(event, ReportDue):
             await self._send_to_peer([event.packet])
-        elif isinstance(event, Decision):
-            link, choice = event.link, event.choice
-            log_event(
-                log,
-                logging.INFO,
-                "adapted",
-                direction=event.direction,
-                reason=event.reason,
-                m_from=event.previous.repair,
-                m=choice.repair,
-                depth=choice.depth,
-                k_effective=choice.k_effective,
-                loss=f"{link.loss:.4f}",
-                burst=f"{link.mean_burst:.2f}",
-                basis=link.basis,
-                samples=link.samples,
-                predicted_residual=f"{choice.residual_loss:.2e}",
-            )
-        elif isinstance(event, ReportsStale):
-            log_event(
-                log,
-                logging.WARNING,
-                "loss_reports_stale",
-                holding_m=self.feedback.repair,
-                detail=f"no loss report from the peer for {STALE_AFTER_INTERVALS} intervals "
-                "(return path down?): m is held",
-            )
-        elif isinstance(event, ReportsResumed):
-            log_event(log, logging.INFO, "loss_reports_resumed", m=self.feedback.repair)
+        log_core_event(event, self.feedback.repair)
 
     # ------------------------------------------------------------ helpers
     def _give_up(self, report: BlockReport, now: float) -> list[Delivery]:
@@ -598,13 +542,36 @@ class Daemon:
                 residual_loss=round(delta["unrecovered"] / expected, 6) if expected else "-",
                 recovered=delta["recovered"],
                 dropped=delta["dropped"],
-                flows=len(self.app.flows),
+                oversize=delta["oversize"],
+                **{key: delta[key] for key in ("air_bytes", "queue_dropped") if key in delta},
+                **self._stats_states(),
+                # In order only: datagrams that waited behind a gap, and gaps skipped.
+                **{key: delta[key] for key in ("held", "gaps_skipped") if key in delta},
             )
 
     def _stats_snapshot(self) -> dict[str, int]:
         counts = self.summary()
         counts["datagrams_in"] = self.encoder.stats.source_packets  # one source packet per datagram taken in
+        if self.order is not None:
+            counts["held"], counts["gaps_skipped"] = self.order.stats.held, self.order.stats.gaps_skipped
+        counts["oversize"] = self.encoder.stats.dropped.get(DropReason.OVERSIZE, 0)
+        figures = self.link.figures()
+        if figures.rate_bps is not None:  # paced: air bytes used and the pacer's drops
+            counts["air_bytes"] = sum(figures.air_bytes[kind] for kind in PacketKind)
+            counts["queue_dropped"] = sum(figures.dropped.values())
         return counts
+
+    def _stats_states(self) -> dict[str, object]:
+        """The stats line's states: flows, the peer address, the far end as the peer reports it."""
+        peer = self.feedback.peer
+        before, after = peer.peer_loss()
+        return dict(
+            flows=len(self.app.flows),
+            peer=format_sockaddr(self.peer) if self.peer else "-",
+            peer_link_loss=ratio_field(before),
+            peer_residual_loss=ratio_field(after),
+            peer_silent_s=round(peer.seconds_since_heard(trio.current_time()), 1) if peer.silent else 0,
+        )
 
     def _next_deadline(self) -> float:
         cores = (
@@ -628,4 +595,4 @@ class Daemon:
         if peer is None or self._link_writer is None:
             self.counts.drop(DropReason.NO_PEER, len(packets))
             return
-        await self._link_writer.send(packets, peer)
+        await self.link.send(packets, peer, trio.current_time())

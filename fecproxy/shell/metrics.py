@@ -11,6 +11,7 @@ import math
 import socket
 from collections.abc import Iterable, Mapping
 from typing import TYPE_CHECKING, Protocol
+from weakref import WeakKeyDictionary
 
 import trio
 from prometheus_client import (
@@ -29,6 +30,8 @@ from fecproxy.protocol.events import BlockOutcome, DropReason
 from fecproxy.protocol.ordering import WAIT_BUCKETS, OrderStats, SkipReason
 from fecproxy.shell.history import History, keep_history
 from fecproxy.shell.http_server import HttpServer, WsgiApp, open_listener
+from fecproxy.shell.link_metrics import link_metrics
+from fecproxy.shell.link_output import LinkFigures
 from fecproxy.shell.status import read_samples, status_app
 
 # prometheus-client adds a `<name>_created` series (the creation time) to every counter and
@@ -99,6 +102,12 @@ class DaemonView(Protocol):
     # Optional (read with getattr): ``order_stats`` -> OrderStats | None, in-order delivery's
     # counters (None when the daemon delivers as available).
 
+    # Optional (read with getattr): ``link_figures()`` -> LinkFigures | None, the link output's
+    # air budget and pacer queue; ``received_code_full`` -> bool | None.
+
+
+#: The link figures of a view that has no link output: nothing paced, nothing sent.
+UNPACED = LinkFigures(None, {}, 0, 0, 0.0, {})
 
 #: From 1 ms (a fast LAN hop) to 2 s (well past any hold time we would configure).
 RECOVERY_DELAY_BUCKETS = (0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.0)
@@ -207,13 +216,15 @@ class DaemonCollector:
         )
         yield GaugeMetricFamily(
             "fecproxy_link_mean_burst_packets",
-            "Estimated mean length of loss bursts on the link into this daemon, in packets; NaN until the first block from the peer.",
+            "Estimated mean length of loss bursts on the link into this daemon, in packets; "
+            "NaN until the first block from the peer.",
             value=burst,
         )
         received_k, received_m = d.received_code
         yield GaugeMetricFamily(
             "fecproxy_received_code_source_symbols",
-            "k of the code this daemon decodes (the peer's block size, from its repair packets); NaN until one arrives.",
+            "k of the code this daemon decodes (the peer's block size, from its repair packets); "
+            "NaN until one arrives.",
             value=math.nan if received_k is None else received_k,
         )
         yield GaugeMetricFamily(
@@ -237,11 +248,19 @@ class DaemonCollector:
                 value=sliding[1],
             )
         yield from _order_metrics(getattr(d, "order_stats", None))
+        try:
+            now: float | None = trio.current_time()  # the cores' clock: scrapes run in the daemon's trio loop
+        except RuntimeError:  # read outside a trio run (a test): "seconds since" is unknown
+            now = None
+        figures = getattr(d, "link_figures", lambda: None)()
+        full = getattr(d, "received_code_full", None)
+        yield from link_metrics(figures or UNPACED, d.feedback.peer, now, full)
         k, m = d.block_shape
         info = InfoMetricFamily(
             "fecproxy",
             "Build of this daemon, its role and the code it sends with (k, m, interleave depth, size classes; "
-            "on a receiver: its replies). The code it decodes: fecproxy_received_code_source_symbols and _repair_symbols.",
+            "on a receiver: its replies). "
+            "The code it decodes: fecproxy_received_code_source_symbols and _repair_symbols.",
         )
         info.add_metric(
             [],
@@ -366,10 +385,25 @@ def add_process_collectors(registry: CollectorRegistry) -> None:
     PlatformCollector(registry=registry)
 
 
+#: For each registry :func:`build_registry` made, one with the daemon's own families only (no
+#: ``process_*``, no ``python_info``): what the history samples every second.  The process
+#: collector lists /proc/self/fd, about 50 ms with 4 000 flow sockets open: fine once a scrape,
+#: too much once a second on the event loop.
+_OWN_FAMILIES: WeakKeyDictionary[CollectorRegistry, CollectorRegistry] = WeakKeyDictionary()
+
+
+def own_families(registry: CollectorRegistry) -> CollectorRegistry:
+    """The daemon's own families of a registry from :func:`build_registry` (else the registry)."""
+    return _OWN_FAMILIES.get(registry, registry)
+
+
 def build_registry(daemon: DaemonView) -> tuple[CollectorRegistry, Histogram]:
     """A registry of this daemon's own (several daemons may share one process, as in the demo)."""
     registry = CollectorRegistry(auto_describe=False)
-    registry.register(DaemonCollector(daemon))
+    own = CollectorRegistry(auto_describe=False)
+    collector = DaemonCollector(daemon)
+    registry.register(collector)
+    own.register(collector)
     add_process_collectors(registry)
     histogram = Histogram(
         "fecproxy_recovery_delay_seconds",
@@ -377,6 +411,8 @@ def build_registry(daemon: DaemonView) -> tuple[CollectorRegistry, Histogram]:
         buckets=RECOVERY_DELAY_BUCKETS,
         registry=registry,
     )
+    own.register(histogram)
+    _OWN_FAMILIES[registry] = own
     return registry, histogram
 
 
@@ -392,7 +428,8 @@ class MetricsServer(HttpServer):
     async def run(self, *, task_status: trio.TaskStatus[None] = trio.TASK_STATUS_IGNORED) -> None:
         async with trio.open_nursery() as nursery:
             if self.history is not None:
-                nursery.start_soon(keep_history, self.history, lambda: read_samples(self.registry)[0].items())
+                own = own_families(self.registry)
+                nursery.start_soon(keep_history, self.history, lambda: read_samples(own)[0].items())
             await super().run(task_status=task_status)
             nursery.cancel_scope.cancel()
 

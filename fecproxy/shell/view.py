@@ -15,6 +15,7 @@ from fecproxy.protocol.encoder import BlockEncoder, EncoderStats
 from fecproxy.protocol.ordering import InOrderDelivery, OrderStats
 from fecproxy.protocol.sliding_encoder import SlidingEncoder
 from fecproxy.shell.app_side import AppSide
+from fecproxy.shell.link_output import LinkFigures, LinkOutput
 
 
 class ShellCounts:
@@ -42,6 +43,7 @@ class DaemonStatsView:
         app: AppSide,
         counts: ShellCounts,
         order: InOrderDelivery | None = None,
+        link: LinkOutput | None = None,
     ):
         self.role = role
         self._encoder, self._decoder = encoder, decoder
@@ -49,6 +51,11 @@ class DaemonStatsView:
         self.feedback = feedback
         self._app = app
         self._counts = counts
+        self._link = link
+
+    def link_figures(self) -> LinkFigures | None:
+        """The link output's air budget and queue; None for a view without one."""
+        return None if self._link is None else self._link.figures()
 
     @property
     def encoder_stats(self) -> EncoderStats:
@@ -117,7 +124,15 @@ class DaemonStatsView:
     def received_code(self) -> tuple[int | None, int | None]:
         """(k, m) of the peer's code as seen in its repair packets; (None, None) before any."""
         code = self._decoder.received_code
+        if code.configured is not None:  # the largest full block's: the code as configured
+            return code.configured
         return code.k, code.m
+
+    @property
+    def received_code_full(self) -> bool | None:
+        """True once a full block's code is known; False while only short blocks came; None before any."""
+        code = self._decoder.received_code
+        return None if code.k is None else code.configured is not None
 
     def loss_estimate(self) -> tuple[float, float] | None:
         estimate = self.feedback.loss_estimate()

@@ -58,6 +58,9 @@ class StandInView:
     def loss_estimate(self) -> tuple[float, float] | None:
         return self.estimate
 
+    def link_figures(self) -> None:
+        return None  # not paced
+
 
 def a_receiver() -> StandInView:
     """A receiver that rebuilt 3 datagrams, dropped 2 late packets and took one reload."""

@@ -1,0 +1,126 @@
+"""The log line of each event the cores return: what the daemon's one handler writes after it has
+acted on the event (:meth:`fecproxy.shell.daemon.Daemon._handle_event`).
+
+Wording only, no decision: which events exist and when they come is the cores' business
+(:mod:`fecproxy.protocol.events`, :mod:`fecproxy.linkmodel.feedback`).  The lines go to the
+daemon's logger, whose name log filters and the status page's history rely on.
+"""
+
+from __future__ import annotations
+
+import logging
+
+from fecproxy.config.addresses import format_sockaddr
+from fecproxy.linkmodel.adaptation import STALE_AFTER_INTERVALS, Decision, ReportsResumed, ReportsStale
+from fecproxy.protocol.events import (
+    BlockReport,
+    Dropped,
+    DropReason,
+    PeerAddressChanged,
+    PeerCodeSettled,
+    SessionProven,
+    SessionStarted,
+)
+from fecproxy.protocol.peer_view import PeerHeard, PeerSilent
+from fecproxy.shell.logs import log_event
+
+log = logging.getLogger("fecproxy.shell.daemon")
+
+
+def log_core_event(event: object, repair: int) -> None:
+    """Log ``event`` if it has a line; ``repair`` is the m the encoder uses now."""
+    if isinstance(event, BlockReport):
+        if event.unrecovered:
+            log_event(
+                log,
+                logging.DEBUG,
+                "block_unrecovered",
+                sbn=event.sbn,
+                k=event.k,
+                lost=event.lost,
+                outcome=event.outcome,
+            )
+    elif isinstance(event, Dropped):
+        if event.notice is not None:
+            # One line per kind of failure per interval: a peer with the wrong key says so
+            # plainly, a flood of forgeries does not flood the log.
+            kind = getattr(event.error, "kind", event.reason)
+            log_event(log, logging.WARNING, "auth_failed", kind=kind, detail=event.notice)
+        elif event.reason is not DropReason.AUTH:
+            log_event(log, logging.DEBUG, "dropped", reason=event.reason, detail=event.detail)
+    elif isinstance(event, PeerAddressChanged):
+        # A receiver without link.peer says where its replies go, and every change of it.
+        log_event(
+            log,
+            logging.INFO,
+            "peer_learned" if event.previous is None else "peer_changed",
+            old=format_sockaddr(event.previous) if event.previous is not None else "-",
+            new=format_sockaddr(event.address),
+        )
+    elif isinstance(event, PeerSilent):
+        log_event(
+            log,
+            logging.WARNING,
+            "peer_silent",
+            quiet_s=round(event.at - event.last_heard_at, 1),
+            detail="nothing valid from the peer (no loss report, no packet): peer down or return path cut",
+        )
+    elif isinstance(event, PeerHeard):
+        log_event(log, logging.INFO, "peer_heard", silent_s=round(event.silent_for, 1))
+    elif isinstance(event, PeerCodeSettled):
+        # INFO the first time per peer session, DEBUG when it changes later (an adapting peer
+        # changes m often).
+        log_event(
+            log,
+            logging.INFO if event.first else logging.DEBUG,
+            "peer_code",
+            k=event.configured[0] if event.configured else event.k,
+            m=event.configured[1] if event.configured else event.m,
+            blocks="full" if event.configured else "short blocks only so far",
+            detail="decoding the peer's blocks (k from its repair packets, m = highest repair ESI - k + 1)",
+        )
+    elif isinstance(event, SessionProven):
+        log_event(
+            log,
+            logging.INFO,
+            "session_proven",
+            session=f"{event.session:08x}",
+            young=event.young,
+            released=event.released,
+        )
+    elif isinstance(event, SessionStarted):
+        log_event(
+            log,
+            logging.INFO,
+            "peer_session",
+            session=f"{event.session:08x}",
+            previous=f"{event.previous:08x}" if event.previous is not None else "-",
+        )
+    elif isinstance(event, Decision):
+        link, choice = event.link, event.choice
+        log_event(
+            log,
+            logging.INFO,
+            "adapted",
+            direction=event.direction,
+            reason=event.reason,
+            m_from=event.previous.repair,
+            m=choice.repair,
+            depth=choice.depth,
+            k_effective=choice.k_effective,
+            loss=f"{link.loss:.4f}",
+            burst=f"{link.mean_burst:.2f}",
+            basis=link.basis,
+            samples=link.samples,
+            predicted_residual=f"{choice.residual_loss:.2e}",
+        )
+    elif isinstance(event, ReportsStale):
+        log_event(
+            log,
+            logging.WARNING,
+            "loss_reports_stale",
+            holding_m=repair,
+            detail=f"no loss report from the peer for {STALE_AFTER_INTERVALS} intervals (return path down?): m is held",
+        )
+    elif isinstance(event, ReportsResumed):
+        log_event(log, logging.INFO, "loss_reports_resumed", m=repair)
