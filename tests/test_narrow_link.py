@@ -303,6 +303,9 @@ def test_a_link_rate_below_the_offered_traffic_drops_repair_first_and_counts_add
         assert arrived_repair + repair_dropped == repair_made
         assert max(peaks) <= limit + 64 * 1500  # the air-time bound (+ control's own cap)
         assert pair.server.count() == COUNT
+        warning = s.events("queue_full")[0]  # says by how much the offered traffic exceeds link.rate
+        assert "above link.rate" in warning["detail"] and int(warning["dropped_repair"]) > 0
+        print(f"queue_full: {warning['detail']}")
     finally:
         pair.close()
 
