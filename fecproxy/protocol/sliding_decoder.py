@@ -271,7 +271,7 @@ class SlidingDecoder:
                 del stream.given_up[esi]
                 self.late_delivered += 1
                 self.stats.delivered += 1
-                events.append(Delivery(pkt.flow, pkt.data, seq=pkt.seq))
+                events.append(Delivery(pkt.flow, pkt.data, seq=pkt.seq, session=stream.id))
                 return
             self._count(DropReason.STALE)
             events.append(Dropped(DropReason.STALE, f"source symbol {esi} is behind the decoding window"))
@@ -285,7 +285,7 @@ class SlidingDecoder:
             self._resolve(stream, esi, _ARRIVED)
         self._advance(stream, esi, now, seen=True)
         self.stats.delivered += 1
-        events.append(Delivery(pkt.flow, pkt.data, seq=pkt.seq))
+        events.append(Delivery(pkt.flow, pkt.data, seq=pkt.seq, session=stream.id))
         adui = wire.pack_symbol_prefix(pkt.flow, len(pkt.data), pkt.seq) + pkt.data
         self._deliver_solved(stream, system.add_known(esi, adui), now, events)
 
@@ -393,7 +393,11 @@ class SlidingDecoder:
             self.stats.recovered += 1
             self.stats.delivered += 1
             self._resolve(stream, esi, _RECOVERED)
-            events.append(Delivery(flow, symbol[end : end + length], recovered=True, delay=now - noticed, seq=seq))
+            events.append(
+                Delivery(
+                    flow, symbol[end : end + length], recovered=True, delay=now - noticed, seq=seq, session=stream.id
+                )
+            )
 
     # --- segment reports ---------------------------------------------------------------------
 
