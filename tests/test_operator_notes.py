@@ -15,6 +15,6 @@ def test_oversize_is_warned_with_size_limit_and_key_at_most_once_per_interval(ca
         warning.note(1, 1450, 1400, now=OVERSIZE_WARN_INTERVAL_S + 0.5)
     lines = [record for record in caplog.records if record.getMessage() == "oversize_datagram"]
     assert len(lines) == 2
-    first, second = (record.fields for record in lines)  # type: ignore[attr-defined]  # set by log_event
+    first, second = (record.fields for record in lines)  # `fields`: set by log_event
     assert (first["size"], first["limit"], first["key"], first["dropped"]) == (1472, 1400, "fec.max_datagram_bytes", 1)
     assert (second["size"], second["dropped"]) == (1500, 4)  # the count and the longest since the last line
