@@ -280,8 +280,8 @@ class Daemon:
             self._link_sock.close()
             if metrics is not None:
                 metrics.stop()
-            log_event(log, logging.INFO, "stopped", **self.summary())
             event_sink.reset(sink)
+        log_event(log, logging.INFO, "stopped", **self.summary())
 
     def _metrics_url(self) -> str:
         """Where to point a browser, Prometheus or ``fecproxy watch``; "off" without a port."""
