@@ -37,6 +37,7 @@ def test_label_strings_stay_exactly_as_exported():
         "memory_limit",
         "decode_limit",
         "order_late",
+        "unproven",
     ]
     assert [outcome.value for outcome in BlockOutcome] == ["complete", "recovered", "expired", "evicted", "superseded"]
     assert DropReason.LATE == "late" and f"{DropReason.LATE}" == "late"

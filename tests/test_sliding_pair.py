@@ -73,3 +73,20 @@ def test_check_refuses_what_the_sliding_code_cannot_use(fec, key, words):
 def test_sliding_config_with_default_size_classes_and_adapt_is_valid():
     config = parse_config({**BASE, "fec": {"code": "sliding", "adapt": {}}})
     assert config.fec.code == "sliding" and config.fec.window == 32
+
+
+def test_demo_runs_the_sliding_code():
+    """``fecproxy demo --code sliding``: the same scenario with the sliding-window code."""
+    import contextlib
+    import io
+    import re
+
+    from fecproxy import cli
+
+    out = io.StringIO()
+    with contextlib.redirect_stdout(out):
+        status = cli.main(["demo", "--code", "sliding", "--seconds", "3", "--no-live", "--metrics-port", "0"])
+    text = out.getvalue()
+    assert status == 0
+    assert "sliding-window code (RFC 8681)" in text and "with FEC (sliding window 64, 1 repair per 2)" in text
+    assert re.search(r"corrupted datagrams\s+–\s+0\n", text)

@@ -39,11 +39,8 @@ blocks, so a packet of one session never disturbs another's blocks:
   address while the real sender is sending, and a restarted sender takes over within the hold
   time of its predecessor falling silent.
 
-With a key, each session has its own replay window.  A session's window outlives it: the windows
-of the last RETIRED_WINDOWS sessions that aged out are kept, so a recorded packet of a session
-that ended is still a replay (and a paused sender that resumes keeps its window).  A recording
-of a session older than that is accepted as a new session once; the sequence numbers carry no
-order across sender starts (their start is random), so nothing in the packet tells it apart.
+With a key, each session has its own replay window (kept RETIRED_WINDOWS sessions after it
+ended), and nothing of it is delivered before it answered a fresh challenge (protocol.freshness).
 
 The session table and the memory budget are :mod:`fecproxy.protocol.session_table` (this class's
 base).  Memory is bounded: open blocks across all sessions (``max_open_blocks``; the session holding
@@ -188,6 +185,11 @@ class BlockDecoder(SessionTable):
             if not isinstance(verified, auth.Verified):
                 return verified
             data = verified.packet
+            if not self.freshness.admits(verified.session, verified.sequence):
+                early = self.freshness.screen(verified.session, verified.sequence, data, addr, now, self.stats.dropped)
+                for packet, source in early.released:
+                    early.events += self._receive_general(packet, source, now)
+                return early.events + self._receive_general(data, addr, now) if early.passes else early.events
         # Fast path for the two packets a clean link brings: a source packet of the followed
         # session, and such a repair packet of a block already finished.  The same checks in the
         # same order as wire.parse + _receive_general, with the same outcome, minus the packet
@@ -323,8 +325,7 @@ class BlockDecoder(SessionTable):
                 live.window = window
             else:  # a new session: _add_session takes it from here
                 self._retired_windows[session] = window
-                while len(self._retired_windows) > RETIRED_WINDOWS:
-                    self._retired_windows.popitem(last=False)
+                self._trim_retired_windows()
         window.commit(sequence)
         self.last_verified = verified
         return verified
@@ -341,7 +342,7 @@ class BlockDecoder(SessionTable):
             # so sealing keeps one replay window and nonce prefix per session), but it is no
             # data: it neither touches the session table nor teaches the shell its peer.
             self.stats.control_received += 1
-            return [ControlReceived(pkt.session, pkt.body)]
+            return [ControlReceived(pkt.session, pkt.body, addr)]
         events: list[Event] = []
         sess = self._sessions.get(pkt.session)
         if sess is None:

@@ -14,7 +14,7 @@ per-field ``object.__setattr__``.
 from __future__ import annotations
 
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from enum import StrEnum
 from typing import Any
 
@@ -48,6 +48,7 @@ class DropReason(StrEnum):
     MEMORY_LIMIT = "memory_limit"  # the decoder's byte budget is full of its own block
     DECODE_LIMIT = "decode_limit"  # a rebuild waits: decoder.max_rebuilds_per_s reached
     ORDER_LATE = "order_late"  # in-order delivery had already skipped its place (delivery.max_wait_ms)
+    UNPROVEN = "unproven"  # keyed: an authentic packet of a peer session not yet proven fresh (protocol.freshness)
 
 
 class BlockOutcome(StrEnum):
@@ -121,10 +122,12 @@ class ControlReceived(Event):
     :mod:`fecproxy.protocol.loss_report`).  ``session`` is the header's session: the sending
     side's own sender session, like every packet it sends (one sequence space and replay window
     per session when packets are authenticated); the shell checks it against the session it
-    decodes."""
+    decodes.  With a key the body may also be a freshness challenge or echo
+    (:mod:`fecproxy.protocol.freshness`): the shell answers a challenge to ``address``."""
 
     session: int
     body: bytes
+    address: SockAddr | None = field(default=None, compare=False)  # where it came from
 
 
 @dataclass(frozen=True, slots=True)
@@ -155,6 +158,28 @@ class PeerCodeSettled(Event):
     first: bool
     #: The largest full block's (k, m): the code as the peer configured it; None = short blocks only so far.
     configured: tuple[int, int] | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class ChallengeDue(Event):
+    """Keyed: send this challenge body (:mod:`fecproxy.protocol.freshness`), sealed as a control
+    packet of our own session, to ``address`` (where the unproven packet came from)."""
+
+    session: int
+    body: bytes
+    address: SockAddr | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class SessionProven(Event):
+    """Keyed: the peer session answered our challenge; its packets sealed after ``sequence``
+    are delivered from now on.  ``young``: it started after this side began listening, so the
+    ``released`` packets held meanwhile were delivered too."""
+
+    session: int
+    sequence: int
+    young: bool = False
+    released: int = 0
 
 
 def _delivery_maker() -> Callable[[int, bytes, int], Delivery]:

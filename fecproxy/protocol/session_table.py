@@ -13,6 +13,7 @@ from dataclasses import dataclass, field
 
 from fecproxy.protocol import auth, wire
 from fecproxy.protocol.events import BlockOutcome, BlockReport, Dropped, DropReason, Event, direct_delivery
+from fecproxy.protocol.freshness import FreshnessGate
 from fecproxy.protocol.replay import ReplayWindow
 
 #: How long an incomplete block waits for more packets.  Must exceed the sender's flush interval
@@ -153,6 +154,7 @@ class SessionTable:
         self._followed: Session | None = None
         self._sessions: dict[int, Session] = {}
         self._retired_windows: OrderedDict[int, ReplayWindow] = OrderedDict()
+        self.freshness = FreshnessGate()  # keyed: peer sessions proven live (protocol.freshness)
         self._open_count = 0  # open blocks, all sessions
         self._bytes = 0  # bytes held, all sessions
 
@@ -238,10 +240,16 @@ class SessionTable:
         self._session_ended(sess.id, events)
         if sess.window is not None:
             self._retired_windows[sess.id] = sess.window
-            while len(self._retired_windows) > RETIRED_WINDOWS:
-                self._retired_windows.popitem(last=False)
+            self._trim_retired_windows()
         if sess is self._followed:
             self._followed = None  # the session stays named in self.session until another is chosen
+
+    def _trim_retired_windows(self) -> None:
+        """Keep RETIRED_WINDOWS ended sessions' windows; the freshness gate forgets each session
+        whose window goes (proven fresh without its window, its old packets could pass again)."""
+        while len(self._retired_windows) > RETIRED_WINDOWS:
+            session, _ = self._retired_windows.popitem(last=False)
+            self.freshness.forget(session)
 
     def _block_for(
         self, sess: Session, sbn: int, now: float, events: list[Event], keep: Block | None = None

@@ -35,6 +35,7 @@ from fecproxy.protocol.decoder import BlockDecoder
 from fecproxy.protocol.events import (
     BlockOutcome,
     BlockReport,
+    ChallengeDue,
     ControlReceived,
     Delivery,
     DropReason,
@@ -48,6 +49,7 @@ from fecproxy.protocol.sliding_encoder import SlidingEncoder
 from fecproxy.shell.app_side import SideOpenError, app_side
 from fecproxy.shell.event_log import log_core_event
 from fecproxy.shell.fdlimit import ensure_open_files, files_needed
+from fecproxy.shell.freshness_link import FreshnessLink
 from fecproxy.shell.history import History
 from fecproxy.shell.link_output import LinkOutput
 from fecproxy.shell.logs import event_sink, log_event, log_exception
@@ -120,6 +122,7 @@ class Daemon:
         #: The application side, by role (sender: clients at ``listen``; receiver: ``forward``).
         self.app = app_side(config, flow_table(config), self._encode_and_send)
         self.counts = ShellCounts()
+        self.freshness = FreshnessLink(self.encoder, self.decoder)  # keyed: proving sessions live
         #: delivery.order: in_order puts each flow back in the sender's order before the
         #: application side (protocol.ordering); None delivers as available.
         self.order = InOrderDelivery(config.delivery.max_wait_seconds) if config.delivery.in_order else None
@@ -226,6 +229,7 @@ class Daemon:
         cfg = self.config
         self._check_open_files()
         metrics = self._open_sockets()
+        self.freshness.start(trio.current_time())
         configure_feedback(self.feedback, cfg, trio.current_time())
         # From here on, this task's events and those of the tasks it starts go to the history too.
         sink = event_sink.set(self.history.record)
@@ -238,6 +242,7 @@ class Daemon:
                 nursery.start_soon(self._link_loop)
                 nursery.start_soon(self.link.run)
                 nursery.start_soon(self._timer_loop)
+                nursery.start_soon(self.freshness.hellos, self.link.send, lambda: self.peer)
                 if signals is not None:
                     nursery.start_soon(self._signal_loop, signals)
                 if cfg.log.stats_interval_s:
@@ -322,6 +327,7 @@ class Daemon:
         """Frame a batch (blocks it fills share codec calls, see BlockEncoder.send_batch) and
         put it on the link.  Both roles: the sender's client datagrams, the receiver's replies."""
         encoder = self.encoder
+        self.freshness.note(now)
         oversize = encoder.stats.dropped.get(DropReason.OVERSIZE, 0)
         try:
             out = encoder.send_batch(items, now)
@@ -432,6 +438,8 @@ class Daemon:
             # Sealed with our key, so the peer's log says the same as ours (see loss_report).
             if self.encoder.sealer is not None:
                 await self.link.send([self.encoder.control(KEY_CHECK_BODY)], event.address, now)
+        elif isinstance(event, ChallengeDue | ControlReceived) and self.freshness.claims(event):
+            await self.freshness.answer(event, self.link.send, self.peer, now)
         elif isinstance(event, ControlReceived):
             await self._handle_events(self.feedback.on_control(event, now), now)
         elif isinstance(event, SessionStarted):

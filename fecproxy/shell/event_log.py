@@ -18,6 +18,7 @@ from fecproxy.protocol.events import (
     DropReason,
     PeerAddressChanged,
     PeerCodeSettled,
+    SessionProven,
     SessionStarted,
 )
 from fecproxy.protocol.peer_view import PeerHeard, PeerSilent
@@ -77,6 +78,15 @@ def log_core_event(event: object, repair: int) -> None:
             m=event.configured[1] if event.configured else event.m,
             blocks="full" if event.configured else "short blocks only so far",
             detail="decoding the peer's blocks (k from its repair packets, m = highest repair ESI - k + 1)",
+        )
+    elif isinstance(event, SessionProven):
+        log_event(
+            log,
+            logging.INFO,
+            "session_proven",
+            session=f"{event.session:08x}",
+            young=event.young,
+            released=event.released,
         )
     elif isinstance(event, SessionStarted):
         log_event(

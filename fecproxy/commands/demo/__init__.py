@@ -41,6 +41,7 @@ from fecproxy.commands.demo.options import (
     DEFAULT_METRICS_PORT,
     DEFAULT_SECONDS,
     DEFAULT_SEED,
+    DEFAULT_WINDOW,
     HOLD_MARGIN_MS,
     LOOPBACK,
     DemoError,
@@ -250,6 +251,9 @@ def _result(options, channel, ran_for, station, sink, tap, blocks, receiver_stat
         k=options.k,
         m=options.m,
         flush_ms=options.flush_ms,
+        code=options.code,
+        window=options.window,
+        repair_interval=options.repair_interval,
         channel=channel,
         sent=station.sent,
         app_bytes=station.bytes,
@@ -311,6 +315,16 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         help=f"serve the receiver's Prometheus metrics on {LOOPBACK}:PORT (0 = any free port; a busy port falls back "
         f"to a free one)",
     )
+    parser.add_argument(
+        "--code",
+        choices=("block", "sliding"),
+        default="block",
+        help="the sender's fec.code: Reed–Solomon blocks, or the sliding-window code with the same overhead "
+        "(one repair every ceil(k/m) datagrams)",
+    )
+    parser.add_argument(
+        "--window", type=int, default=DEFAULT_WINDOW, help="with --code sliding: datagrams in the encoding window"
+    )
     parser.add_argument("--no-live", action="store_true", help="no live view, only the header and the summary")
 
 
@@ -326,6 +340,8 @@ def main(args: argparse.Namespace) -> int:
         rate=args.rate,
         metrics_port=args.metrics_port,
         live=not args.no_live,
+        code=args.code,
+        window=args.window,
     )
     try:
         check_options(options)

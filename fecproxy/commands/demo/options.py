@@ -49,6 +49,12 @@ DEFAULT_METRICS_PORT = 11464
 LOOPBACK = "127.0.0.1"
 
 
+#: The sliding-window code's window in the demo: 64 datagrams (about 3 s of telemetry at 20/s),
+#: enough to span the relay's bursts; the repair interval keeps the block code's overhead.
+DEFAULT_WINDOW = 64
+CODES = ("block", "sliding")
+
+
 @dataclass
 class DemoOptions:
     seconds: float = DEFAULT_SECONDS
@@ -61,6 +67,13 @@ class DemoOptions:
     rate: float = DEFAULT_TELEMETRY_RATE
     metrics_port: int = DEFAULT_METRICS_PORT
     live: bool = True
+    code: str = "block"  # fec.code of the sender
+    window: int = DEFAULT_WINDOW  # fec.window, with code sliding
+
+    @property
+    def repair_interval(self) -> int:
+        """The sliding code's interval with the block code's overhead m/k: ceil(k/m), ≤ window."""
+        return min(self.window, math.ceil(self.k / self.m)) if self.m else self.window
 
 
 class DemoError(ValueError):
@@ -69,7 +82,9 @@ class DemoError(ValueError):
 
 def build_configs(options: DemoOptions, sink: tuple, relay: tuple | None = None):
     """The receiver's config (relay unknown yet) or the sender's (relay given); raises ConfigError."""
-    fec = {"block_size": options.k, "repair": options.m, "flush_ms": options.flush_ms}
+    fec: dict = {"block_size": options.k, "repair": options.m, "flush_ms": options.flush_ms}
+    if options.code == "sliding":
+        fec.update(code="sliding", window=options.window, repair_interval=options.repair_interval)
     decoder = {"hold_ms": min(options.flush_ms + HOLD_MARGIN_MS, MAX_HOLD_MS)}
     link = {"bind": f"{LOOPBACK}:0"}
     common = {"link": link, "fec": fec, "decoder": decoder}
@@ -95,6 +110,12 @@ def check_options(options: DemoOptions) -> GilbertElliott:
             f"(RFC 6363 §8.2 keeps the repair rate at or below the source rate) and k + m ≤ {MAX_ENCODING_SYMBOLS} "
             f"(RFC 5510 §8.2, GF(2^8)); got {options.m}"
         )
+    if options.code not in CODES:
+        raise DemoError(f"--code must be {' or '.join(CODES)}, got {options.code!r}")
+    if options.code == "sliding" and not options.m:
+        raise DemoError("--code sliding needs --m ≥ 1: the repair interval is set from the overhead m/k")
+    if options.code == "sliding" and not 1 <= options.window <= 255:
+        raise DemoError(f"--window must be 1..255, got {options.window}")
     if not 0 <= options.loss < 1:
         raise DemoError(f"--loss must be in [0, 1), got {options.loss!r}")
     try:

@@ -164,6 +164,9 @@ class DemoResult:
     #: packets) on the link): small telemetry is not padded to image-sized repair symbols.
     classes: dict = field(default_factory=dict)
     interrupted: bool = False
+    code: str = "block"  # the sender's fec.code
+    window: int = 0  # with code sliding: fec.window and fec.repair_interval
+    repair_interval: int = 0
 
     @property
     def lost_with_fec(self) -> int:
@@ -177,7 +180,10 @@ class DemoResult:
 def format_summary(r: DemoResult) -> str:
     """The side-by-side table: the application's view without FEC and with it."""
     left, right = 30, 24
-    code = f"with FEC (k={r.k}, m={r.m}, flush {r.flush_ms} ms)"
+    if r.code == "sliding":
+        code = f"with FEC (sliding window {r.window}, 1 repair per {r.repair_interval})"
+    else:
+        code = f"with FEC (k={r.k}, m={r.m}, flush {r.flush_ms} ms)"
 
     def row(label: str, without: str, with_fec: str) -> str:
         return f"  {label:<{left}} {without:<{right}} {with_fec}"
@@ -235,7 +241,9 @@ def format_summary(r: DemoResult) -> str:
         row(
             "planner's prediction",
             f"{fmt_percent(r.channel.average_loss)} lost",
-            f"{fmt_percent(r.predicted_with_fec)} lost (exact, for the {blocks} blocks sent)",
+            f"{fmt_percent(r.predicted_with_fec)} lost (exact, for the {blocks} blocks sent)"
+            if r.code != "sliding"
+            else "no exact figure for the sliding code: fecproxy plan --sliding-window estimates it",
         ),
         "",
         f"  link: lost {r.link_lost} of {r.link_packets} packets on the air "
@@ -297,7 +305,10 @@ def format_header(
         f"→ receiver {format_sockaddr(receiver)} → sink {format_sockaddr(sink)}",
         "  (the sink's acknowledgements travel back the same way)",
         f"  FEC: k={options.k} source + m={options.m} repair packets per block; blocks close after "
-        f"{options.flush_ms} ms",
+        f"{options.flush_ms} ms"
+        if options.code != "sliding"
+        else f"  FEC: sliding-window code (RFC 8681), window {options.window} datagrams, one repair packet "
+        f"every {options.repair_interval} (the overhead of k={options.k}, m={options.m})",
         f"  receiver metrics: {metrics_text}",
         f"  running for {options.seconds:g} s (Ctrl-C ends early with the summary)",
         "",

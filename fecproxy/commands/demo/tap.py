@@ -39,10 +39,17 @@ class LinkTap:
         try:
             # The largest limit the format allows: the tap counts what the sender sent, it does
             # not police it (the receiver does, with its configured limit).
-            packet = wire.parse(data, max_datagram=wire.MAX_DATAGRAM_LIMIT)
+            packet = wire.parse(data, max_datagram=wire.MAX_DATAGRAM_LIMIT, sliding=True)
         except wire.PacketError:
             return
         if isinstance(packet, wire.ControlPacket):
+            return
+        if isinstance(packet, wire.SlidingSourcePacket):  # fec.code: sliding: no blocks to count
+            self._source(packet.data, data, lost)
+            return
+        if isinstance(packet, wire.SlidingRepairPacket):
+            self.repair_packets += 1
+            self.repair_bytes += len(data)
             return
         block = self._open.get(packet.sbn)
         if block is None:
@@ -50,19 +57,22 @@ class LinkTap:
             if len(self._open) > self.OPEN_BLOCKS:
                 self._fold(min(self._open))
         if isinstance(packet, wire.SourcePacket):
-            self.source_packets += 1
-            self.source_bytes += len(data)
             block[0] += 1
-            if lost:
-                self.source_lost += 1
-                ident = peek_id(packet.data)
-                if ident is not None:
-                    self.lost_ids.add(ident)
+            self._source(packet.data, data, lost)
         else:
             self.repair_packets += 1
             self.repair_bytes += len(data)
             block[1] += 1
             block[2] = packet.k
+
+    def _source(self, datagram: bytes, data: bytes, lost: bool) -> None:
+        self.source_packets += 1
+        self.source_bytes += len(data)
+        if lost:
+            self.source_lost += 1
+            ident = peek_id(datagram)
+            if ident is not None:
+                self.lost_ids.add(ident)
 
     def _fold(self, sbn: int) -> None:
         source, repair, k = self._open.pop(sbn)
