@@ -7,6 +7,7 @@ Unit tests run the server in the test's own trio loop on 127.0.0.1; the whole-pr
 
 from __future__ import annotations
 
+import re
 import socket
 import threading
 import time
@@ -208,34 +209,57 @@ def _p99(values: list[float]) -> float:
     return ordered[min(len(ordered) - 1, int(0.99 * len(ordered)))]
 
 
-@pytest.mark.slow
-def test_300_idle_metrics_connections_leave_flows_metrics_and_forwarding_alone(pairs):
-    pair = pairs(echo=True, sender_fec={"flush_ms": 5}, receiver_fec={"flush_ms": 5})
-    metrics_address = (LOOPBACK, pair.receiver.metrics_port)
-    baseline = _round_trips(pair, 1)
-    idle = [socket.create_connection(metrics_address, timeout=5) for _ in range(IDLE_CONNECTIONS)]
+#: Rounds of (baseline, with the connections) the p99 comparison may take: a shared machine's
+#: scheduling hiccup of 100 ms spoils one round's p99 now and then; a stall caused by the
+#: connections would spoil every round (each opens and closes its own 300).
+LATENCY_ROUNDS = 3
+
+
+def _measure(pair, stream: int, connections: int) -> list[float]:
+    """Round trips measured while ``connections`` connections to the receiver's metrics port open,
+    sit idle and then all close at once; /metrics is read meanwhile either way (the test process
+    does the same work in both runs, so only the connections differ)."""
+    address = (LOOPBACK, pair.receiver.metrics_port)
     loaded: list[float] = []
+    measure = threading.Thread(target=lambda: loaded.extend(_round_trips(pair, stream)), daemon=True)
+    measure.start()
+    idle = []
     try:
-        # Forwarding runs while the idle connections are held, and on while all close at once.
-        measure = threading.Thread(target=lambda: loaded.extend(_round_trips(pair, 2)), daemon=True)
-        measure.start()
-        time.sleep(0.5)
+        idle.extend(socket.create_connection(address, timeout=5) for _ in range(connections))
         # /metrics still answers (the oldest idle connections are pushed out to make room), and
         # the new flow opened its socket on the receiver: nothing dropped for want of one.
-        assert pair.receiver.metric("fecproxy_flows") >= 2
-        assert pair.receiver.metric("fecproxy_packets_dropped_total", reason="no_socket") == 0
+        status, text = _get(f"http://{LOOPBACK}:{pair.receiver.metrics_port}/metrics")
+        assert status == 200
+        flows = re.search(r"^fecproxy_flows (\S+)$", text, flags=re.MULTILINE)
+        assert flows and float(flows.group(1)) >= 2, "the measuring client's flow is in the table"
+        assert 'fecproxy_packets_dropped_total{reason="no_socket"} 0.0' in text
     finally:
         for sock in idle:
             sock.close()
     measure.join(timeout=30)
-    assert len(baseline) >= 0.95 * LATENCY_SAMPLES and len(loaded) >= 0.95 * LATENCY_SAMPLES
-    p99_base, p99_loaded = _p99(baseline), _p99(loaded)
-    print(
-        f"forwarding round-trip p99: base {p99_base * 1e3:.2f} ms, 300 idle then closed {p99_loaded * 1e3:.2f} ms, "
-        f"ratio {p99_loaded / p99_base:.2f}"
-    )
-    # Generous margins: the machine is shared; the old thread-per-connection server stalled 0.7 s.
-    assert p99_loaded <= max(5 * p99_base, p99_base + 0.05), (p99_base, p99_loaded)
+    return loaded
+
+
+@pytest.mark.slow
+def test_300_idle_metrics_connections_leave_flows_metrics_and_forwarding_alone(pairs):
+    pair = pairs(echo=True, sender_fec={"flush_ms": 5}, receiver_fec={"flush_ms": 5})
+    pair.client(1).send(0)  # a first flow, so the measuring clients' are the second and later
+    rounds = []
+    for attempt in range(LATENCY_ROUNDS):
+        baseline = _measure(pair, 10 + 2 * attempt, 0)
+        loaded = _measure(pair, 11 + 2 * attempt, IDLE_CONNECTIONS)
+        assert len(baseline) >= 0.95 * LATENCY_SAMPLES and len(loaded) >= 0.95 * LATENCY_SAMPLES
+        p99_base, p99_loaded = _p99(baseline), _p99(loaded)
+        rounds.append((round(p99_base * 1e3, 2), round(p99_loaded * 1e3, 2)))
+        print(
+            f"forwarding round-trip p99: without {p99_base * 1e3:.2f} ms, with 300 idle connections opened and "
+            f"closed {p99_loaded * 1e3:.2f} ms, ratio {p99_loaded / p99_base:.2f}"
+        )
+        # Generous margins: the machine is shared; the old thread-per-connection server stalled 0.7 s.
+        if p99_loaded <= max(3 * p99_base, p99_base + 0.03):
+            break
+    else:
+        raise AssertionError(f"p99 (ms) without / with the connections, every round worse: {rounds}")
 
 
 def test_the_started_line_names_the_metrics_url_and_the_key_plainly(pairs, tmp_path):

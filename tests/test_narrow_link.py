@@ -366,3 +366,58 @@ def test_plan_reproduces_the_measured_queue_delay_of_a_burst(tmp_path):
         f"\nburst of {burst} × {size} B at {rate / 1000:g} kbit/s: planned {planned:.3f} s, measured {measured:.3f} s"
     )
     assert abs(measured - planned) <= 0.2 * planned
+
+
+# -- the far end, seen from the sender -------------------------------------------------------------
+
+
+def test_a_stopped_receiver_is_reported_silent_within_three_report_intervals_and_a_restart_clears_it(tmp_path):
+    """Reports every second (the default): the sender hears its receiver, the receiver stops, the
+    sender logs peer_silent within 3 intervals of the last report; a new receiver clears it."""
+    from support.daemon_pair import Pair
+
+    interval = 1.0
+    pair = Pair(tmp_path)
+    new_receiver = None
+    stop_feeding = threading.Event()
+    try:
+        client = pair.client(1)
+
+        def feed() -> None:  # 50 datagrams a second, bounded: at most 60 s
+            for seq in range(3000):
+                if stop_feeding.wait(0.02):
+                    return
+                client.send(seq)
+
+        feeder = threading.Thread(target=feed, daemon=True)
+        feeder.start()
+        sender = pair.sender
+        assert wait_until(lambda: sender.metric("fecproxy_peer_silent") == 0, 15.0, interval=0.2)
+        # The peer's reported loss on what we send: known once its reports cover 200 datagrams.
+        assert wait_until(lambda: sender.metric("fecproxy_peer_link_loss_ratio") >= 0, 20.0, interval=0.2)
+        before, after = (
+            sender.metric("fecproxy_peer_link_loss_ratio"),
+            sender.metric("fecproxy_peer_residual_loss_ratio"),
+        )
+        stopped = time.monotonic()
+        pair.receiver.terminate()
+        silent = sender.wait_event("peer_silent", 10.0)
+        noticed = time.monotonic() - stopped
+        # quiet_s counts from the last valid packet heard, which came before the stop.
+        assert float(silent["quiet_s"]) <= 3 * interval
+        assert sender.metric("fecproxy_peer_silent") == 1
+        new_receiver = DaemonProcess(pair.receiver.config_path)
+        new_receiver.wait_started()
+        pair.relay.target = new_receiver.link_address
+        heard = sender.wait_event("peer_heard", 15.0)
+        assert wait_until(lambda: sender.metric("fecproxy_peer_silent") == 0, 10.0, interval=0.2)
+        print(
+            f"\npeer_silent logged {noticed:.2f} s after the receiver was stopped (quiet_s {silent['quiet_s']}, "
+            f"threshold {2.5 * interval:g} s); peer_heard after a restart (silent_s {heard['silent_s']}); "
+            f"peer's reported loss before the stop: {before:g} before, {after:g} after recovery"
+        )
+    finally:
+        stop_feeding.set()
+        if new_receiver is not None:
+            new_receiver.terminate()
+        pair.close()

@@ -319,3 +319,39 @@ def test_adaptation_sets_the_repair_interval_from_the_chosen_m():
     small = SlidingEncoder(SlidingSettings(window=8, repair_interval=4), session=1, follow_repair=True)
     small.update(EncoderSettings(block_size=16, repair=1))
     assert small.sliding_settings.repair_interval == 8
+
+
+def test_forged_far_ahead_esis_do_not_move_the_window_but_a_real_jump_does():
+    rng = random.Random(9)
+    enc = SlidingEncoder(SlidingSettings(window=16, repair_interval=4), session=4)
+    dec = SlidingDecoder()
+    link = []
+    for i in range(200):
+        link += enc.send(b"%03d" % i, 0, 0.0)
+    sources = [n for n, p in enumerate(link) if p[0] == wire.SLIDING_SOURCE_TYPE_BYTE]
+    lost = set(sources[10::17])
+    events = []
+    for n, packet in enumerate(link):
+        if n % 5 == 0:  # a stranger's forged packets of the same session, ESIs anywhere
+            esi = rng.randrange(1 << 32)
+            forged = rng.choice(
+                [
+                    wire.encode_sliding_source(4, esi, 0, b"forged"),
+                    wire.encode_sliding_repair(4, esi, rng.randrange(4096), 15, 16, bytes(12)),
+                ]
+            )
+            events += dec.receive(forged, 0.0)[0]
+        if n not in lost:
+            events += dec.receive(packet, 0.0)[0]
+    genuine = [d for d in deliveries(events) if d[1] != b"forged"]
+    assert sorted(genuine) == [(0, b"%03d" % i) for i in range(200)]
+    # a real jump: the sender goes on 10 000 datagrams later; after RESYNC_PACKETS agreeing
+    # packets the window follows, and losses are rebuilt again
+    enc2 = SlidingEncoder(SlidingSettings(window=16, repair_interval=4), session=4, first_esi=10_200)
+    later = []
+    for i in range(40):
+        later += enc2.send(b"L%02d" % i, 0, 0.0)
+    later_sources = [n for n, p in enumerate(later) if p[0] == wire.SLIDING_SOURCE_TYPE_BYTE]
+    events = feed(dec, [p for n, p in enumerate(later) if n != later_sources[30]])
+    assert sorted(deliveries(events)) == [(0, b"L%02d" % i) for i in range(40)]
+    assert any(isinstance(e, Delivery) and e.recovered for e in events)

@@ -58,6 +58,16 @@ MAX_SESSIONS = 4
 SESSION_CONFIRM_PACKETS = 8
 #: Given-up ESIs remembered per session, so a very late source packet is still delivered once.
 GIVEN_UP_MEMORY = 4 * MAX_WINDOW
+#: Packets whose ESIs lie more than a window ahead of the newest one must agree (within a window
+#: of each other) this many times before the window jumps there.  Without a key anyone can send
+#: one packet with a forged ESI far ahead; moving the window for it would make every genuine
+#: packet "behind the window".  A real jump (a long outage, more than a window of packets lost)
+#: brings a run of consistent ESIs: 3 costs the first two of them their place in the window
+#: (they are still delivered).  Our own rule, no source.
+RESYNC_PACKETS = 3
+#: ESIs remembered as delivered per session: four windows (≈ 8 KiB of ints), beyond any
+#: reordering a link plausibly does.
+DELIVERED_MEMORY = 4 * MAX_WINDOW
 _HALF = 1 << 31
 _ARRIVED, _RECOVERED, _UNRECOVERED = 0, 1, 2
 
@@ -122,6 +132,8 @@ class _Stream:
         "last_seen",
         "packets",
         "segments",
+        "pending_jump",
+        "delivered",
     )
 
     def __init__(self, session: int, now: float, window: ReplayWindow | None):
@@ -135,6 +147,10 @@ class _Stream:
         self.last_seen = now
         self.packets = 0
         self.segments: OrderedDict[int, _Segment] = OrderedDict()  # by ESI // SEGMENT
+        self.pending_jump: tuple[int, int] | None = None  # (ESI far ahead, packets agreeing)
+        #: ESIs delivered lately (DELIVERED_MEMORY), so that no datagram is delivered twice, even
+        #: across a restart of the window or from far outside it.
+        self.delivered: OrderedDict[int, None] = OrderedDict()
 
     def unwrap(self, esi: int) -> int:
         """The 32-bit wire ESI as a position in this stream (serial arithmetic around the newest)."""
@@ -261,21 +277,27 @@ class SlidingDecoder:
     def _source(self, stream: _Stream, pkt: wire.SlidingSourcePacket, now: float, events: list[Event]) -> None:
         esi = stream.unwrap(pkt.esi)
         system = stream.system
-        if esi in system.known:
+        if esi in system.known or esi in stream.delivered:
             self._count(DropReason.DUPLICATE)
             events.append(Dropped(DropReason.DUPLICATE, f"source symbol {esi} already held"))
             return
         highest = stream.highest
+        if highest is not None and esi >= highest + self.settings.max_window and not self._jump_agreed(stream, esi):
+            # Far ahead and not (yet) confirmed: delivered, but it moves nothing (see RESYNC_PACKETS).
+            self._delivered(stream, esi, events, Delivery(pkt.flow, pkt.data, seq=pkt.seq))
+            return
         if highest is not None and esi <= highest - self.settings.max_window:
             if esi in stream.given_up:  # given up, never delivered: deliver it now
                 del stream.given_up[esi]
                 self.late_delivered += 1
-                self.stats.delivered += 1
-                events.append(Delivery(pkt.flow, pkt.data, seq=pkt.seq))
+                self._delivered(stream, esi, events, Delivery(pkt.flow, pkt.data, seq=pkt.seq))
                 return
-            self._count(DropReason.STALE)
-            events.append(Dropped(DropReason.STALE, f"source symbol {esi} is behind the decoding window"))
-            return
+            if not self._jump_agreed(stream, esi):
+                # Far behind, not yet confirmed: a stray packet may have anchored the window (a
+                # forgery that came first); delivered, it moves nothing (see RESYNC_PACKETS).
+                self._delivered(stream, esi, events, Delivery(pkt.flow, pkt.data, seq=pkt.seq))
+                return
+            self._restart(stream)  # agreed far behind: the window was anchored by a stray packet
         if esi in stream.given_up:  # within the window but given up by time: still deliver it
             del stream.given_up[esi]
             self.late_delivered += 1
@@ -284,8 +306,7 @@ class SlidingDecoder:
                 self.reordered += 1
             self._resolve(stream, esi, _ARRIVED)
         self._advance(stream, esi, now, seen=True)
-        self.stats.delivered += 1
-        events.append(Delivery(pkt.flow, pkt.data, seq=pkt.seq))
+        self._delivered(stream, esi, events, Delivery(pkt.flow, pkt.data, seq=pkt.seq))
         adui = wire.pack_symbol_prefix(pkt.flow, len(pkt.data), pkt.seq) + pkt.data
         self._deliver_solved(stream, system.add_known(esi, adui), now, events)
 
@@ -298,11 +319,18 @@ class SlidingDecoder:
             return
         first = stream.unwrap(pkt.first_esi)
         last = first + pkt.nss - 1
+        if stream.highest is not None and last >= stream.highest + self.settings.max_window:
+            if not self._jump_agreed(stream, last):
+                self._count(DropReason.STALE)
+                events.append(Dropped(DropReason.STALE, f"repair window ending at {last} is far ahead of the window"))
+                return
         highest = stream.highest
         if highest is not None and first <= highest - self.settings.max_window:
-            self._count(DropReason.STALE)
-            events.append(Dropped(DropReason.STALE, f"repair window from {first} is behind the decoding window"))
-            return
+            if not self._jump_agreed(stream, last):
+                self._count(DropReason.STALE)
+                events.append(Dropped(DropReason.STALE, f"repair window from {first} is behind the decoding window"))
+                return
+            self._restart(stream)
         self._advance(stream, last, now, seen=False)
         if stream.repair_floor is None or first > stream.repair_floor:
             stream.repair_floor = first
@@ -319,6 +347,34 @@ class SlidingDecoder:
             return
         self._deliver_solved(stream, solved, now, events)
         self._settle(stream)
+
+    def _delivered(self, stream: _Stream, esi: int, events: list[Event], delivery: Delivery) -> None:
+        """Hand a datagram on once: an ESI already delivered is not delivered again."""
+        if esi in stream.delivered:
+            return
+        stream.delivered[esi] = None
+        self.stats.delivered += 1
+        if len(stream.delivered) > DELIVERED_MEMORY:
+            stream.delivered.popitem(last=False)
+        events.append(delivery)
+
+    def _restart(self, stream: _Stream) -> None:
+        """Packets agree on a place far behind the window: it was anchored by a stray packet (a
+        forgery that came first, or a sender restarted without a new session).  Start anew there."""
+        self._give_up(stream, list(stream.missing))
+        stream.system = sliding.WindowSystem()
+        stream.highest = stream.repair_floor = None
+        stream.segments.clear()
+
+    def _jump_agreed(self, stream: _Stream, esi: int) -> bool:
+        """Another packet far ahead: True once RESYNC_PACKETS of them agree (then the window may go)."""
+        pending = stream.pending_jump
+        count = pending[1] + 1 if pending is not None and abs(esi - pending[0]) < self.settings.max_window else 1
+        if count >= RESYNC_PACKETS:
+            stream.pending_jump = None
+            return True
+        stream.pending_jump = (esi, count)
+        return False
 
     def _advance(self, stream: _Stream, esi: int, now: float, *, seen: bool) -> None:
         """A source packet ``esi`` arrived (``seen``), or a repair window ends at ``esi``: the ESIs
@@ -391,9 +447,13 @@ class SlidingDecoder:
                 continue
             self.stats.lost += 1
             self.stats.recovered += 1
-            self.stats.delivered += 1
             self._resolve(stream, esi, _RECOVERED)
-            events.append(Delivery(flow, symbol[end : end + length], recovered=True, delay=now - noticed, seq=seq))
+            self._delivered(
+                stream,
+                esi,
+                events,
+                Delivery(flow, symbol[end : end + length], recovered=True, delay=now - noticed, seq=seq),
+            )
 
     # --- segment reports ---------------------------------------------------------------------
 

@@ -231,6 +231,11 @@ class _Flood:
                     "listen": "127.0.0.1:0",
                     "link": {"bind": "127.0.0.1:0", "peer": f"127.0.0.1:{tap.getsockname()[1]}"},
                     "log": {"level": "error"},
+                    **(
+                        {"fec": {"code": "sliding", "size_classes": []}}
+                        if getattr(args, "code", "") == "sliding"
+                        else {}
+                    ),
                     **extra,
                 },
                 dir_name,
@@ -282,6 +287,7 @@ class _Flood:
                 key_dir.cleanup()
         return dict(
             auth=args.auth,
+            code=getattr(args, "code", "block"),
             hostile=self.hostile_sent,
             hostile_rate=self.hostile_sent / max(results.get("attack_s", 1e-9), 1e-9),
             real_sent=real_count,
@@ -308,7 +314,7 @@ def format_figures(figures: dict) -> str:
     lines = [
         f"flood benchmark, auth {figures['auth']}: {figures['hostile']:,} hostile packets at "
         f"{figures['hostile_rate']:,.0f}/s to the receiver's link port, "
-        f"real traffic {figures['real_sent']:,} datagrams",
+        f"real traffic {figures['real_sent']:,} datagrams ({figures.get('code', 'block')} code)",
         f"  daemons alive                  {'yes' if figures['alive'] else 'NO':>12}   target yes            "
         f"{verdict(figures['alive'])}",
         f"  real datagrams delivered       {share:>12.2%}   target ≥ {target:.0%}          {verdict(share >= target)}",
@@ -327,6 +333,12 @@ def format_figures(figures: dict) -> str:
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--auth", choices=AUTH_MODES, default="off", help="the pair's packet protection")
+    parser.add_argument(
+        "--code",
+        choices=("block", "sliding"),
+        default="block",
+        help="the sender's fec.code (the receiver decodes either): the flood meets that code's packets",
+    )
     parser.add_argument("--hostile", type=positive(int), default=DEFAULT_HOSTILE, help="hostile packets to send")
     parser.add_argument(
         "--hostile-rate", type=positive(float), default=DEFAULT_HOSTILE_RATE, help="hostile packets per second"

@@ -285,6 +285,45 @@
       ? `Budgets: recovery wait ≤ ${plan.latency_budget_ms} ms, overhead ≤ ${plan.max_overhead}, residual loss ≤ ${plan.target}; ` +
         `inputs rounded to two digits${age}. Compare with the peer's fec.block_size and fec.repair.` : "";
   }
+  // The direction this daemon sends (what matters to a sender): the loss its peer reports, whether
+  // the peer is heard, and the share of link.rate used (README "Pacing a narrow link").
+  function put(id, text, value, tone) {  // a figure in a list (show() is for the big cards)
+    const el = $(id);
+    el.textContent = text;
+    el.dataset.value = value === null || value === undefined ? "" : String(value);
+    el.className = tone || "";
+  }
+  function drawFarEnd() {
+    const last = reads.length - 1;
+    if (last < 0) return;
+    const s = reads[last].s, silent = s.fecproxy_peer_silent, heard = s.fecproxy_peer_last_heard_seconds;
+    const have = (v) => v !== undefined && v !== null;
+    const state = silent === 1 ? `SILENT for ${duration(heard)} (nothing valid from it)`
+      : have(heard) ? `heard ${heard.toFixed(1)} s ago` : "not heard yet";
+    put("far-heard", state, silent === 1 ? 1 : 0, silent === 1 ? "bad" : "");
+    const loss = s.fecproxy_peer_link_loss_ratio, residual = s.fecproxy_peer_residual_loss_ratio;
+    put("far-loss", have(loss) ? percent(loss) : "– (no loss report yet)", loss, have(loss) ? lossTone(loss) : "");
+    put("far-residual", have(residual) ? percent(residual) : "–", residual, have(residual) ? lossTone(residual) : "");
+    const rate = s.fecproxy_link_rate_bytes_per_second;
+    if (!have(rate) || rate <= 0) {
+      put("air-use", "– (link.rate not set: not paced)", null, "");
+      put("air-queue", "–", null, "");
+      return;
+    }
+    const before = reads[Math.max(0, last - KPI_READS)], seconds = reads[last].t - before.t;
+    const kinds = ["source", "repair", "control"];
+    const used = kinds.map((kind) => {
+      const key = `fecproxy_link_air_bytes_sent_total{kind="${kind}"}`;
+      return seconds > 0 ? delta(s, before.s, key) / seconds / rate : 0;
+    });
+    const total = used.reduce((a, b) => a + b, 0);
+    put("air-use", `${percent(total)} of ${(rate * 8 / 1000).toFixed(0)} kbit/s (` +
+      kinds.map((kind, i) => `${kind} ${percent(used[i])}`).join(", ") + ")", total, total > 0.95 ? "warn" : "");
+    const dropped = Object.keys(s).filter((key) => key.startsWith("fecproxy_link_queue_dropped_total{"))
+      .reduce((sum, key) => sum + get(s, key), 0);
+    put("air-queue", `${count(get(s, "fecproxy_link_queue_packets"))} packets, last wait ` +
+      `${ms(get(s, "fecproxy_link_queue_delay_seconds"))}; ${count(dropped)} dropped since start`, dropped, dropped ? "warn" : "");
+  }
   function drawKpis() {
     const last = reads.length - 1;
     const f = last >= 1 ? figures(reads[last], reads[Math.max(0, last - KPI_READS)]) : null;
@@ -387,6 +426,7 @@
       drawCharts();
       drawTotals(read.s);
       drawEstimate(doc);
+      drawFarEnd();
       drawEvents();
       connection("ok", "live · " + new Date().toLocaleTimeString("en-GB"));
       document.body.dataset.refreshes = String(Number(document.body.dataset.refreshes) + 1);
