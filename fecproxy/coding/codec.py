@@ -185,31 +185,34 @@ class BlockCode:
         results: list[dict[int, np.ndarray]],
     ) -> None:
         """Rebuild the blocks ``members`` of ``selected`` in one kernel pass."""
-        by_loss: dict[int, list[int]] = {}
+        # One closed-form computation for all: a block that lost fewer than the most lost gets
+        # stand-in missing positions (unused encoding indices, never among its points), whose
+        # rows are computed and left out.
+        widest = max(len(selected[position][0]) for position in members)
+        positions = np.empty((len(members), widest + self.k), dtype=np.intp)
+        wanted: list[int] = []
+        owners: list[int] = []
         for order, position in enumerate(members):
-            by_loss.setdefault(len(selected[position][0]), []).append(order)
-        total = sum(len(selected[position][0]) for position in members)
-        coefficients = np.empty((total, self.k), dtype=np.uint8)
-        owners = np.empty(total, dtype=np.intp)
-        first_row = [0] * len(members)
-        row = 0
-        for e, orders in by_loss.items():
-            positions = np.empty((len(orders), e + self.k), dtype=np.intp)
-            for line, order in enumerate(orders):
-                missing, repairs, _ = selected[members[order]]
-                lost = set(missing)
-                stand_in = iter(repairs)
-                positions[line] = [*missing, *(next(stand_in) if i in lost else i for i in range(self.k))]
-                first_row[order] = row + line * e
-            coefficients[row : row + len(orders) * e] = lagrange_coefficients_many(positions, e).reshape(-1, self.k)
-            owners[row : row + len(orders) * e] = np.repeat(np.array(orders, dtype=np.intp), e)
-            row += len(orders) * e
+            missing, repairs, _ = selected[position]
+            lost = set(missing)
+            stand_in = iter(repairs)
+            points = [next(stand_in) if i in lost else i for i in range(self.k)]
+            fillers: list[int] = []
+            if len(missing) < widest:
+                taken = lost.union(points)
+                candidates = (i for i in range(self.n - 1, -1, -1) if i not in taken)
+                fillers = [next(candidates) for _ in range(widest - len(missing))]
+            positions[order] = [*missing, *fillers, *points]
+            wanted += range(order * widest, order * widest + len(missing))
+            owners += [order] * len(missing)
+        coefficients = lagrange_coefficients_many(positions, widest).reshape(-1, self.k)[wanted]
         data = np.concatenate([selected[position][2] for position in members])
-        rebuilt = gf256.Multiplier.per_block_rows(coefficients, owners, len(members))(data)
-        for order, position in enumerate(members):
+        rebuilt = gf256.Multiplier.per_block_rows(coefficients, np.array(owners, dtype=np.intp), len(members))(data)
+        row = 0
+        for position in members:
             missing = selected[position][0]
-            first = first_row[order]
-            results[position] = {index: rebuilt[first + j] for j, index in enumerate(missing)}
+            results[position] = {index: rebuilt[row + j] for j, index in enumerate(missing)}
+            row += len(missing)
 
     def _select(self, received: Mapping[int, object]) -> tuple[list[int], list[int], np.ndarray]:
         """Validate the received symbols and stack the k that decoding uses into one array.
