@@ -12,6 +12,7 @@ import os
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from support.keys import needs_crypto
 
 from fecproxy.protocol import auth, keys, wire
 from fecproxy.protocol.replay import ReplayWindow
@@ -27,11 +28,6 @@ REPAIR = wire.encode_repair(SESSION, 0xFFFFFE, 6, 4, bytes.fromhex("0102000001 4
 CONTROL = bytes([wire.VERSION << 4 | wire.PacketType.CONTROL, 0]) + SESSION.to_bytes(4, "big") + bytes(4) + b"report"
 
 MODES = [pytest.param(False, id="mac"), pytest.param(True, id="encrypted")]
-
-
-def needs_crypto(encrypt: bool) -> None:
-    if encrypt:
-        pytest.importorskip("cryptography")
 
 
 def ring(current=OLD, previous=None, *, encrypt=False) -> auth.Keyring:

@@ -1,10 +1,11 @@
 """Authentication wired into the encoder and decoder (sans-IO, fake clock): every packet sealed,
 every bad one refused with its reason before it touches any block, nothing forged delivered."""
 
-import itertools
 import random
 
 import pytest
+from support.decoding import receive_noting_peer
+from support.keys import needs_crypto
 
 from fecproxy.protocol import auth, freshness, keys, wire
 from fecproxy.protocol.decoder import BlockDecoder, DecoderSettings
@@ -15,32 +16,13 @@ from fecproxy.protocol.events import (
     Delivery,
     Dropped,
     KeyCheckDue,
-    PeerAddressChanged,
     SessionProven,
     SessionStarted,
 )
 
-_SOURCES = itertools.count(1024)
-
-
-def receive_noting_peer(decoder, data, now):
-    """``decoder.receive`` from a fresh source address each time: returns the packet's events
-    (the peer-address event aside) and whether the decoder took that address as its peer's,
-    which it does exactly for a valid packet of the followed session."""
-    decoder.learn_peer = True
-    events = decoder.receive(data, ("127.0.0.1", next(_SOURCES)), now)
-    learned = [e for e in events if isinstance(e, PeerAddressChanged)]
-    return [e for e in events if not isinstance(e, PeerAddressChanged)], bool(learned)
-
-
 OLD = keys.MasterKey(bytes.fromhex("11" * 32))
 NEW = keys.MasterKey(bytes.fromhex("22" * 32))
 STRANGER = keys.MasterKey(bytes.fromhex("33" * 32))
-
-
-def needs_crypto(encrypt: bool) -> None:
-    if encrypt:
-        pytest.importorskip("cryptography")
 
 
 def sender(key=OLD, *, encrypt=False, session=0x1234, salt=7, k=4, m=2) -> BlockEncoder:

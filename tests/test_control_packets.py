@@ -5,28 +5,14 @@ The bytes are our own format (docs/design.md "Loss reports (control packets)")."
 
 from __future__ import annotations
 
-import itertools
-
 import pytest
+from support.decoding import receive_noting_peer
 
 from fecproxy.protocol import wire
 from fecproxy.protocol.decoder import BlockDecoder
 from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
-from fecproxy.protocol.events import ControlReceived, Dropped, DropReason, PeerAddressChanged
+from fecproxy.protocol.events import ControlReceived, Dropped, DropReason
 from fecproxy.protocol.loss_report import LossReport, encode_report, parse_report
-
-_SOURCES = itertools.count(1024)
-
-
-def receive_noting_peer(decoder, data, now):
-    """``decoder.receive`` from a fresh source address each time: returns the packet's events
-    (the peer-address event aside) and whether the decoder took that address as its peer's,
-    which it does exactly for a valid packet of the followed session."""
-    decoder.learn_peer = True
-    events = decoder.receive(data, ("127.0.0.1", next(_SOURCES)), now)
-    learned = [e for e in events if isinstance(e, PeerAddressChanged)]
-    return [e for e in events if not isinstance(e, PeerAddressChanged)], bool(learned)
-
 
 REPORT = LossReport(
     epoch=0xFFFFFFFF, sequence=1, interval_ms=250, source_received=0, repair_received=0, source_lost=0, unrecovered=0

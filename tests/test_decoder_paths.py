@@ -13,22 +13,10 @@ import itertools
 
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from support.decoding import receive_noting_peer
 
 from fecproxy.protocol.decoder import BlockDecoder, DecoderSettings
 from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
-from fecproxy.protocol.events import PeerAddressChanged
-
-_SOURCES = itertools.count(1024)
-
-
-def receive_noting_peer(decoder, data, now):
-    """``decoder.receive`` from a fresh source address each time: returns the packet's events
-    (the peer-address event aside) and whether the decoder took that address as its peer's,
-    which it does exactly for a valid packet of the followed session."""
-    decoder.learn_peer = True
-    events = decoder.receive(data, ("127.0.0.1", next(_SOURCES)), now)
-    learned = [e for e in events if isinstance(e, PeerAddressChanged)]
-    return [e for e in events if not isinstance(e, PeerAddressChanged)], bool(learned)
 
 
 def link_packets(k: int, m: int, datagrams: list[tuple[bytes, int]], session: int) -> list[bytes]:

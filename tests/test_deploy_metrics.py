@@ -6,10 +6,9 @@ from __future__ import annotations
 import random
 
 from prometheus_client import CollectorRegistry, generate_latest
+from support.stand_in_view import StandInView
 
-from fecproxy.linkmodel.feedback import Feedback
 from fecproxy.protocol import wire
-from fecproxy.protocol.decoder import BlockDecoder
 from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
 from fecproxy.shell.metrics import DaemonCollector
 
@@ -42,51 +41,18 @@ def test_send_batch_counts_the_bytes_it_returns():
     assert (encoder.stats.source_bytes, encoder.stats.repair_bytes) == split(packets)
 
 
-class _Daemon:
-    """Just what the collector reads (shell.metrics.DaemonView)."""
-
-    def __init__(self, encoder):
-        self.encoder_stats = encoder.stats
-        self.decoder_stats = type(
-            "S",
-            (),
-            {
-                "source_received": 0,
-                "repair_received": 0,
-                "lost": 0,
-                "recovered": 0,
-                "unrecovered": 0,
-                "delivered": 0,
-                "repair_unneeded": 0,
-                "blocks": {},
-            },
-        )()
-        self.role = "sender"
-        self.block_shape = (encoder.settings.block_size, encoder.settings.repair)
-        self.interleave = encoder.settings.interleave
-        self.size_class_names = encoder.settings.class_names
-        self.reloads = {"applied": 0, "rejected": 0}
-        self.feedback = Feedback(BlockEncoder(EncoderSettings(), 1), BlockDecoder())  # no reports yet
-
-    def drop_counts(self):
-        return {}
-
-    def send_errors(self):
-        return 0
-
-    def flow_count(self):
-        return 0
-
-    def link_figures(self):
-        return None  # not paced
-
-    def flows_evicted(self):
-        return 0
-
-    def loss_estimate(self):
-        return None
-
-    received_code = (None, None)
+def stand_in(encoder: BlockEncoder) -> StandInView:
+    """A sender's view with this encoder's counters and nothing received."""
+    return StandInView(
+        role="sender",
+        encoder_stats=encoder.stats,
+        block_shape=(encoder.settings.block_size, encoder.settings.repair),
+        interleave=encoder.settings.interleave,
+        size_class_names=encoder.settings.class_names,
+        flows=0,
+        estimate=None,
+        received_code=(None, None),
+    )
 
 
 def test_metrics_export_the_byte_counters():
@@ -94,7 +60,7 @@ def test_metrics_export_the_byte_counters():
     for data in datagrams(4, seed=3):
         encoder.send(data, flow=0, now=0.0)
     registry = CollectorRegistry(auto_describe=False)
-    registry.register(DaemonCollector(_Daemon(encoder)))
+    registry.register(DaemonCollector(stand_in(encoder)))
     text = generate_latest(registry).decode()
     assert f"fecproxy_source_bytes_sent_total {float(encoder.stats.source_bytes)}" in text
     assert f"fecproxy_repair_bytes_sent_total {float(encoder.stats.repair_bytes)}" in text

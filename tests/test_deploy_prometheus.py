@@ -19,7 +19,6 @@ Without the package the test skips with the reason printed; under CI=true it fai
 from __future__ import annotations
 
 import json
-import os
 import re
 import shutil
 import socket
@@ -34,6 +33,7 @@ import yaml
 from support.daemon_pair import LOOPBACK, SOURCE, Pair, drain, parse_link_header, send_paced, wait_until
 from support.lossy_relay import iid_loss
 from support.processes import end_process
+from support.tools import require
 
 ROOT = Path(__file__).resolve().parent.parent
 PROMETHEUS_DIR = ROOT / "deploy" / "prometheus"
@@ -50,17 +50,6 @@ SEED = 11
 #: A comparison in PromQL; turned into a `bool` comparison so an alert expression returns its
 #: series (0 or 1) whether or not it fires.  The shipped rules use no `!=` label matchers.
 COMPARISON = re.compile(r"(>=|<=|==|!=|>|<)(?!\s*bool)")
-
-
-def require(tool: str) -> str:
-    path = shutil.which(tool)
-    if path is None:
-        reason = f"{tool} not found: install Debian's prometheus package (apt-get install -y prometheus)"
-        if os.environ.get("CI") == "true":
-            pytest.fail(reason + " — CI must run this test")
-        print(f"SKIP: {reason}")
-        pytest.skip(reason)
-    return path
 
 
 def test_promtool_accepts_config_and_rules():

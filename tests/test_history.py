@@ -187,12 +187,12 @@ def test_the_history_stands_down_when_the_daemon_judges_silence_itself():
 def test_the_history_samples_the_daemons_own_families_not_the_process_collector():
     """The process collector lists /proc/self/fd (slow with thousands of flow sockets): scrapes
     get it, the once-a-second history does not."""
-    from test_shell_parts import StandInDaemon
+    from support.stand_in_view import a_receiver
 
     from fecproxy.shell.metrics import build_registry, own_families
     from fecproxy.shell.status import read_samples
 
-    registry, histogram = build_registry(StandInDaemon())
+    registry, histogram = build_registry(a_receiver())
     histogram.observe(0.01)
     own, _ = read_samples(own_families(registry))
     everything, _ = read_samples(registry)

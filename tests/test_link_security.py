@@ -7,7 +7,6 @@ and every load loop by a count.
 
 from __future__ import annotations
 
-import os
 import random
 import socket
 import time
@@ -18,38 +17,17 @@ from support.daemon_pair import (
     LOOPBACK,
     DaemonProcess,
     drain,
+    dropped,
     make_payload,
     parse_link_header,
     send_paced,
     wait_until,
 )
+from support.keys import KEY_A, KEY_B, keyed
 
 from fecproxy.protocol import auth, keys, wire
 
 pytestmark = pytest.mark.slow
-
-KEY_A = "a1" * 32
-KEY_B = "b2" * 32
-
-
-def write_key(path, text: str) -> None:
-    descriptor = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
-    with os.fdopen(descriptor, "w") as file:
-        file.write(text + "\n")
-
-
-def keyed(tmp_path, sender_key=KEY_A, receiver_key=KEY_A, encrypt=False) -> dict:
-    """Pair keyword arguments for keyed configs (key files beside the configs, mode 0600)."""
-    write_key(tmp_path / "sender.key", sender_key)
-    write_key(tmp_path / "receiver.key", receiver_key)
-    return dict(
-        sender_extra={"auth": {"key_file": "sender.key", "encrypt": encrypt}},
-        receiver_extra={"auth": {"key_file": "receiver.key", "encrypt": encrypt}},
-    )
-
-
-def dropped(daemon: DaemonProcess, reason: str) -> float:
-    return daemon.metric("fecproxy_packets_dropped_total", reason=reason)
 
 
 @pytest.mark.parametrize("encrypt", [False, True])

@@ -18,7 +18,8 @@ import yaml
 from prometheus_client.parser import text_string_to_metric_families
 from support.daemon_pair import LOOPBACK, drain, send_paced
 from support.lossy_relay import iid_loss
-from test_deploy_prometheus import require
+from support.stand_in_view import a_receiver
+from support.tools import require
 
 from fecproxy.protocol.events import DropReason
 from fecproxy.shell.metrics import build_registry
@@ -76,9 +77,7 @@ async def _running_relay(nursery) -> UdpRelay:
 
 
 async def test_each_shared_label_name_has_one_meaning_on_the_daemon_and_the_relay(nursery):
-    from test_shell_parts import StandInDaemon
-
-    daemon_registry, _ = build_registry(StandInDaemon())
+    daemon_registry, _ = build_registry(a_receiver())
     relay = await _running_relay(nursery)
     seen = _label_values(daemon_registry.collect())
     for name, values in _label_values(_RelayCollector(relay).collect()).items():
@@ -122,9 +121,8 @@ def test_every_drop_reason_an_alert_names_is_counted():
 
 def test_metric_families_parse_and_names_carry_the_prefix():
     from prometheus_client import generate_latest
-    from test_shell_parts import StandInDaemon
 
-    registry, _ = build_registry(StandInDaemon())
+    registry, _ = build_registry(a_receiver())
     names = {family.name for family in text_string_to_metric_families(generate_latest(registry).decode())}
     ours = {name for name in names if not name.startswith(("process_", "python_"))}
     assert all(name.startswith("fecproxy_") for name in ours), ours

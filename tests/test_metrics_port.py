@@ -18,6 +18,7 @@ import pytest
 import trio
 from prometheus_client import CollectorRegistry, Counter
 from support.daemon_pair import LOOPBACK, send_paced, wait_until
+from support.keys import keyed
 
 from fecproxy.shell import http_server
 from fecproxy.shell.metrics import serve
@@ -223,7 +224,7 @@ def _measure(pair, stream: int, connections: int) -> list[float]:
     loaded: list[float] = []
     measure = threading.Thread(target=lambda: loaded.extend(_round_trips(pair, stream)), daemon=True)
     measure.start()
-    idle = []
+    idle: list[socket.socket] = []
     try:
         idle.extend(socket.create_connection(address, timeout=5) for _ in range(connections))
         # /metrics still answers (the oldest idle connections are pushed out to make room), and
@@ -263,8 +264,6 @@ def test_300_idle_metrics_connections_leave_flows_metrics_and_forwarding_alone(p
 
 
 def test_the_started_line_names_the_metrics_url_and_the_key_plainly(pairs, tmp_path):
-    from test_link_security import keyed
-
     pair = pairs(**keyed(tmp_path))
     for daemon in (pair.sender, pair.receiver):
         url, auth = daemon.started["metrics"], daemon.started["auth"]

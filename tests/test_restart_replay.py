@@ -11,8 +11,8 @@ import socket
 import time
 
 import pytest
-from support.daemon_pair import LOOPBACK, DaemonProcess, drain, send_paced, wait_until
-from test_link_security import dropped, keyed
+from support.daemon_pair import LOOPBACK, DaemonProcess, drain, dropped, send_paced, wait_until
+from support.keys import keyed
 
 pytestmark = pytest.mark.slow
 

@@ -20,27 +20,23 @@ from prometheus_client import generate_latest, make_wsgi_app
 from support.browser import HeadlessChromium, artifact_dir, find_chromium
 from support.daemon_pair import drain, send_paced
 from support.lossy_relay import iid_loss
+from support.stand_in_view import StandInView
 
-from fecproxy.linkmodel.feedback import Feedback
-from fecproxy.protocol.decoder import BlockDecoder, DecoderStats
-from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings, EncoderStats
+from fecproxy.protocol.decoder import DecoderStats
+from fecproxy.protocol.encoder import EncoderStats
 from fecproxy.shell import status, status_page
 from fecproxy.shell.metrics import build_registry
 
 REPO = Path(__file__).resolve().parent.parent
 
 
-class _Daemon:
-    """What the collector reads, with counters a test sets (the daemon's DaemonView)."""
-
-    def __init__(self, estimate=(0.05, 2.0)):
-        self.encoder_stats = EncoderStats(
+def _view(estimate: tuple[float, float] | None = (0.05, 2.0)) -> StandInView:
+    """A receiver's view with counters a test sets."""
+    return StandInView(
+        encoder_stats=EncoderStats(
             source_packets=900, repair_packets=300, source_bytes=90_000, repair_bytes=31_000, blocks=75, short_blocks=2
-        )
-        self.block_shape = (12, 4)
-        self.interleave = 1
-        self.size_class_names = ("le256", "gt256")
-        self.decoder_stats = DecoderStats(
+        ),
+        decoder_stats=DecoderStats(
             source_received=950,
             repair_received=310,
             lost=50,
@@ -48,31 +44,14 @@ class _Daemon:
             unrecovered=2,
             delivered=998,
             blocks={"complete": 40, "recovered": 30},
-        )
-        self.role = "receiver"
-        self.reloads = {"applied": 1, "rejected": 0}
-        self.estimate = estimate
-        self.feedback = Feedback(BlockEncoder(EncoderSettings(), 1), BlockDecoder())  # no reports yet
-
-    def drop_counts(self):
-        return {"late": 3, "duplicate": 1}
-
-    def send_errors(self):
-        return 0
-
-    def flow_count(self):
-        return 2
-
-    def flows_evicted(self):
-        return 0
-
-    def loss_estimate(self):
-        return self.estimate
-
-    received_code = (12, 4)
-
-    def link_figures(self):
-        return None  # not paced
+        ),
+        block_shape=(12, 4),
+        reloads={"applied": 1, "rejected": 0},
+        drops={"late": 3, "duplicate": 1},
+        flows=2,
+        estimate=estimate,
+        received_code=(12, 4),
+    )
 
 
 def _call(app, path: str, method: str = "GET"):
@@ -114,7 +93,7 @@ def _exposition(registry) -> dict[str, float | None]:
 
 
 def test_status_json_holds_exactly_what_metrics_exposes():
-    registry, delay = build_registry(_Daemon())
+    registry, delay = build_registry(_view())
     delay.observe(0.04)
     app = status.status_app(registry, make_wsgi_app(registry))
     code, headers, body = _call(app, "/status.json")
@@ -143,7 +122,7 @@ def test_status_json_holds_exactly_what_metrics_exposes():
 
 
 def test_routes_page_json_and_everything_else_to_prometheus():
-    registry, _ = build_registry(_Daemon())
+    registry, _ = build_registry(_view())
     app = status.status_app(registry, make_wsgi_app(registry))
     code, headers, page = _call(app, "/")
     assert code.startswith("200") and headers["Content-Type"].startswith("text/html")
@@ -159,7 +138,7 @@ def test_missing_page_files_cost_the_page_but_never_metrics(monkeypatch):
         raise FileNotFoundError("page.html")
 
     monkeypatch.setattr(status.status_page, "load", missing)
-    registry, _ = build_registry(_Daemon())
+    registry, _ = build_registry(_view())
     app = status.status_app(registry, make_wsgi_app(registry))
     code, _, body = _call(app, "/")
     assert code.startswith("500") and b"status page files missing" in body
@@ -209,7 +188,7 @@ class _Clock:
 
 
 def test_plan_is_cached_and_recomputed_only_when_its_rounded_inputs_change():
-    daemon, clock, calls = _Daemon(), _Clock(), []
+    daemon, clock, calls = _view(), _Clock(), []
     registry, _ = build_registry(daemon)
 
     def planner(loss, burst, rate):
@@ -240,7 +219,7 @@ def test_plan_is_cached_and_recomputed_only_when_its_rounded_inputs_change():
 
 
 def test_rate_window_follows_a_change_of_traffic():
-    daemon, clock = _Daemon(), _Clock()
+    daemon, clock = _view(), _Clock()
     source = status.StatusSource(build_registry(daemon)[0], clock=clock, planner=lambda *a: {})
     for _ in range(int(status.RATE_WINDOW_S) * 2):  # a minute at 10/s after the 1000 at start
         clock.now += 1
@@ -250,7 +229,7 @@ def test_rate_window_follows_a_change_of_traffic():
 
 
 def test_a_failing_planner_costs_the_recommendation_only():
-    daemon, clock = _Daemon(), _Clock()
+    daemon, clock = _view(), _Clock()
 
     def broken(*inputs):
         raise ZeroDivisionError("bug")
@@ -264,7 +243,7 @@ def test_a_failing_planner_costs_the_recommendation_only():
 
 
 def test_without_an_estimate_the_page_says_why_there_is_no_plan():
-    source = status.StatusSource(build_registry(_Daemon(estimate=None))[0], clock=_Clock())
+    source = status.StatusSource(build_registry(_view(estimate=None))[0], clock=_Clock())
     assert source.document()["plan"] == {
         "recommended": None,
         "note": "no link estimate yet: no block has arrived from the peer",
@@ -272,7 +251,7 @@ def test_without_an_estimate_the_page_says_why_there_is_no_plan():
 
 
 def test_an_estimate_without_a_burst_yet_is_valid_json_and_planned_as_isolated_losses():
-    daemon, clock, calls = _Daemon(estimate=(0.0, math.nan)), _Clock(), []
+    daemon, clock, calls = _view(estimate=(0.0, math.nan)), _Clock(), []
     source = status.StatusSource(build_registry(daemon)[0], clock=clock, planner=lambda *a: calls.append(a) or {})
     clock.now += 5
     daemon.decoder_stats.source_received += 500
@@ -405,7 +384,7 @@ def test_in_the_background_the_plan_is_computed_off_the_event_loop_and_shown_whe
     """The daemon's loop answers /status.json; a 15–80 ms plan must not hold it up."""
     import threading
 
-    daemon, clock = _Daemon(), _Clock()
+    daemon, clock = _view(), _Clock()
     release, threads = threading.Event(), []
 
     def slow_planner(loss, burst, rate):

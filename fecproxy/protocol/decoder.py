@@ -502,7 +502,7 @@ class BlockDecoder(SessionTable):
         if esi > block.max_esi:
             block.max_esi = esi
         self.stats.delivered += 1
-        events.append(direct_delivery(flow, data, seq))
+        events.append(direct_delivery(flow, data, seq, block.owner.id))
 
     def _add_repair(self, block: Block, pkt: wire.RepairPacket, events: list[Event]) -> None:
         if pkt.esi in block.repairs:

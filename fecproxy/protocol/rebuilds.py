@@ -67,7 +67,7 @@ def deliveries(block: Block, rebuilt: dict[int, Any], now: float, stats: Decoder
         block.rebuilt += 1
         stats.delivered += 1
         stats.recovered += 1
-        events.append(Delivery(flow, data, recovered=True, delay=delay, seq=seq))
+        events.append(Delivery(flow, data, recovered=True, delay=delay, seq=seq, session=block.owner.id))
     return events
 
 

@@ -401,3 +401,8 @@ def parse_link_header(data: bytes) -> tuple[int, int, int, int]:
 
 
 SOURCE, REPAIR = 0, 1
+
+
+def dropped(daemon: DaemonProcess, reason: str) -> float:
+    """The daemon's fecproxy_packets_dropped_total for ``reason``, read from its /metrics."""
+    return daemon.metric("fecproxy_packets_dropped_total", reason=reason)
