@@ -374,6 +374,11 @@ class SessionTable:
             events.append(report)
 
     def _finish(self, block: Block, outcome: BlockOutcome) -> BlockReport | None:
+        """Finish ``block``: its report, or None while its loss is not final (loss_ledger)."""
+        report, deferred = self._close_block(block, outcome)
+        return None if deferred else report
+
+    def _close_block(self, block: Block, outcome: BlockOutcome) -> tuple[BlockReport, bool]:
         sess = block.owner
         del sess.open[block.sbn]
         self._open_count -= 1
@@ -408,7 +413,7 @@ class SessionTable:
             for early in self.ledger.defer(sess.id, report, delivered, due):
                 stats.lost += early.lost
                 stats.unrecovered += early.unrecovered
-            return None
+            return report, True
         stats.lost += lost
         stats.unrecovered += unrecovered
-        return report
+        return report, False
