@@ -12,6 +12,7 @@ from http.server import BaseHTTPRequestHandler, HTTPServer
 
 import pytest
 
+from fecproxy.commands import watch
 from fecproxy.commands.watch import figures, histogram_quantile, metrics_url, parse_metrics, render
 
 #: A receiver's /metrics as fecproxy serves it (trimmed to what watch reads), invented figures.
@@ -258,3 +259,17 @@ def test_whole_process_watch_events_shows_a_running_daemons_history(pairs):
     )
     assert result.returncode == 0, result.stderr
     assert re.search(r"^    \d\d:\d\d:\d\d info    started version=", result.stdout, flags=re.MULTILINE), result.stdout
+
+
+def test_far_end_tells_reports_arriving_from_no_reports():
+    """Reports that cover too few datagrams for a ratio are not "no loss report yet"."""
+    nan = float("nan")
+    base = {
+        ("fecproxy_peer_silent", ()): 0.0,
+        ("fecproxy_peer_last_heard_seconds", ()): 0.2,
+        ("fecproxy_peer_link_loss_ratio", ()): nan,
+        ("fecproxy_peer_residual_loss_ratio", ()): nan,
+    }
+    assert watch._far_end(base).startswith("no loss report yet")
+    arriving = {**base, ("fecproxy_reports_received_total", ()): 3.0}
+    assert watch._far_end(arriving).startswith("loss reports arriving, under 200 datagrams")

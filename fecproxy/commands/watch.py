@@ -24,6 +24,7 @@ from dataclasses import dataclass, field
 from prometheus_client.parser import text_string_to_metric_families
 
 from fecproxy.config.addresses import metrics_url
+from fecproxy.protocol.peer_view import MIN_SOURCE_SAMPLES
 
 #: A read slower than this counts as a failing endpoint: a healthy daemon answers in
 #: milliseconds, and two endpoints must fit roughly within a few refresh periods.
@@ -217,6 +218,9 @@ def _far_end(now: Samples) -> str:
         state = "not heard yet"
     if math.isfinite(before):
         return f"peer reports loss {_percent(before)} before, {_percent(after)} after recovery; {state}"
+    if _get(now, "fecproxy_reports_received_total") > 0:
+        # Reports arrive, but the ratios wait for enough datagrams to mean something.
+        return f"loss reports arriving, under {MIN_SOURCE_SAMPLES} datagrams reported so far; {state}"
     return f"no loss report yet; {state}"
 
 
