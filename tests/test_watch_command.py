@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import re
 import socket
 import subprocess
@@ -130,11 +131,16 @@ def test_metrics_url_forms():
     assert metrics_url("http://h:1/custom") == "http://h:1/custom"
 
 
+#: What the same receiver's /status.json says beside its metrics (invented address).
+STATUS = {"daemon": {"role": "receiver", "peer": "127.0.0.1:40001", "peer_from": "learned"}}
+
+
 class _Snapshot(BaseHTTPRequestHandler):
     def do_GET(self):
-        body = SNAPSHOT.encode()
+        status = self.path.startswith("/status.json")
+        body = json.dumps(STATUS).encode() if status else SNAPSHOT.encode()
         self.send_response(200)
-        self.send_header("Content-Type", "text/plain; version=0.0.4")
+        self.send_header("Content-Type", "application/json" if status else "text/plain; version=0.0.4")
         self.send_header("Content-Length", str(len(body)))
         self.end_headers()
         self.wfile.write(body)
@@ -174,6 +180,7 @@ def test_whole_process_two_frames_with_one_endpoint_down(snapshot_server):
     assert "(since start)" in out and "(last 0." in out  # the second frame shows rates
     assert out.count("DOWN: ") == 2 and "Connection refused" in out
     assert "link loss (before recovery)       5.000 %" in out
+    assert out.count("peer address                 127.0.0.1:40001 (learned)") == 2
 
 
 def test_once_with_every_endpoint_down_exits_1():
