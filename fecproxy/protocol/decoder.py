@@ -57,6 +57,7 @@ import numpy as np
 from fecproxy.coding.codec import BlockCode, block_code
 from fecproxy.protocol import auth, wire
 from fecproxy.protocol.events import (
+    JOINED_AFTER_BLOCKS,
     BlockOutcome,
     ControlReceived,
     Delivery,
@@ -342,7 +343,7 @@ class BlockDecoder(SessionTable):
             self._followed, self.session = sess, sess.id
             self.received_code.reset()
             self._code_told = None
-            events.append(SessionStarted(sess.id, previous))
+            events.append(SessionStarted(sess.id, previous, getattr(pkt, "sbn", 0) >= JOINED_AFTER_BLOCKS))
         if isinstance(pkt, (wire.SourcePacket, wire.SlidingSourcePacket)):
             self.stats.source_received += 1
         else:
