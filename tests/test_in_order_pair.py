@@ -7,7 +7,7 @@ hands rebuilt datagrams on late.
 
 from __future__ import annotations
 
-from support.daemon_pair import drain, send_paced, wait_until
+from support.daemon_pair import DaemonProcess, drain, send_paced, wait_until
 from support.lossy_relay import drop_indices
 
 #: Datagrams/s and seconds of the clean-link run: 2 000 datagrams at the issue's rate.
@@ -102,3 +102,21 @@ def test_replies_reach_the_sender_side_in_order_too(pairs):
     assert client.replies == [(24, seq) for seq in range(80)]
     assert pair.sender.metric("fecproxy_datagrams_recovered_total") == 8
     assert pair.sender.metric("fecproxy_delivery_held_total") > 0
+
+
+def test_a_restarted_sender_s_stream_is_delivered_at_once_in_order(pairs):
+    # The new sender numbers its flow from 0 again while the receiver still follows the old
+    # session (for decoder.hold_ms): its datagrams are a new flow of a new session, not late ones.
+    pair = pairs(receiver_extra=IN_ORDER)
+    client = pair.client(stream=25)
+    send_paced(client.send, 40, rate=1000)
+    drain(pair, 40)
+    assert pair.sender.terminate() == 0
+    pair.sender = DaemonProcess(pair.sender_path)
+    pair._closers.append(pair.sender.terminate)  # the fixture stops the new one too
+    pair.sender.wait_started()
+    client = pair.client(stream=25)
+    send_paced(lambda i: client.send(40 + i), 40, rate=1000)
+    drain(pair, 80)
+    assert pair.server.received == [(25, seq) for seq in range(80)]
+    assert pair.receiver.metric("fecproxy_packets_dropped_total", reason="order_late") == 0

@@ -85,9 +85,9 @@ def _config(name: str, **changes: dict | None) -> dict:
     return document
 
 
-def _impair(to: tuple[str, int]) -> tuple[subprocess.Popen, tuple[str, int], float]:
+def _impair(to: tuple[str, int], options: list[str] = IMPAIR) -> tuple[subprocess.Popen, tuple[str, int], float]:
     argv = [sys.executable, "-m", "fecproxy", "impair", "--listen", f"{LOOPBACK}:0", "--to", f"{to[0]}:{to[1]}"]
-    proc = subprocess.Popen(argv + IMPAIR, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    proc = subprocess.Popen(argv + options, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     deadline = time.monotonic() + 30
     assert proc.stdout is not None
     while time.monotonic() < deadline:
@@ -303,6 +303,9 @@ def test_a_link_rate_below_the_offered_traffic_drops_repair_first_and_counts_add
         assert arrived_repair + repair_dropped == repair_made
         assert max(peaks) <= limit + 64 * 1500  # the air-time bound (+ control's own cap)
         assert pair.server.count() == COUNT
+        warning = s.events("queue_full")[0]  # says by how much the offered traffic exceeds link.rate
+        assert "above link.rate" in warning["detail"] and int(warning["dropped_repair"]) > 0
+        print(f"queue_full: {warning['detail']}")
     finally:
         pair.close()
 
@@ -329,32 +332,49 @@ def _paced_pair(tmp_path: Path, link: dict):
 
 
 def test_plan_reproduces_the_measured_queue_delay_of_a_burst(tmp_path):
-    """A still (50 × 1200 bytes, back to back) into a sender paced at 256 kbit/s, nothing else on
-    the link: the last datagram's wait at the application against ``plan --burst-datagrams``."""
+    """A still (50 × 1200 bytes, back to back) into a sender paced at 256 kbit/s, through
+    ``fecproxy impair --rate-kbps 256`` (no loss, no delay), nothing else on the link: the last
+    datagram's wait at the application against ``plan --burst-datagrams``."""
+    import contextlib
+    import io
     import json
-
-    from support.daemon_pair import drain
 
     from fecproxy.cli import main as cli_main
 
     burst, size, rate = 50, 1200, 256_000
-    pair = _paced_pair(tmp_path, {"rate": rate, "queue_ms": 4000})
+    sink = Sink()
+    receiver = _config("trial-receiver.yaml", metrics={"listen": f"{LOOPBACK}:0"})
+    receiver["link"] = {"bind": f"{LOOPBACK}:0"}
+    receiver["forward"] = f"{LOOPBACK}:{sink.sock.getsockname()[1]}"
+    receiver_proc = DaemonProcess(write_config(tmp_path / "r.yaml", receiver))
+    impair = sender_proc = None
     try:
+        receiver_proc.wait_started()
+        impair, relay, _ = _impair(receiver_proc.link_address, ["--rate-kbps", "256", "--queue-packets", "64"])
+        sender = _config("trial-sender.yaml", metrics={"listen": f"{LOOPBACK}:0"})
+        sender["link"] = {"bind": f"{LOOPBACK}:0", "peer": f"{relay[0]}:{relay[1]}", "rate": rate, "queue_ms": 4000}
+        sender["listen"] = f"{LOOPBACK}:0"
+        sender["fec"] |= {"block_size": K, "repair": M, "size_classes": []}
+        sender_proc = DaemonProcess(write_config(tmp_path / "s.yaml", sender))
+        sender_proc.wait_started()
         sock = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
-        payload = bytes(size)
         time.sleep(0.5)
-        for _ in range(burst):
-            sock.sendto(payload, pair.sender.listen_address)
+        for seq in range(burst):
+            sock.sendto(HEAD.pack(2, seq) + bytes(size - HEAD.size), sender_proc.listen_address)
         sent_last = time.monotonic()
         sock.close()
-        assert wait_until(lambda: len(pair.server.raw) >= burst, 20.0, interval=0.001)
+        assert wait_until(lambda: (2, burst - 1) in sink.seen, 20.0, interval=0.001)
         measured = time.monotonic() - sent_last
-        drain(pair, 0)
+        impair.send_signal(signal.SIGINT)
+        impair_out, _ = impair.communicate(timeout=20)
     finally:
-        pair.close()
-    import contextlib
-    import io
-
+        for proc in (sender_proc, receiver_proc):
+            if proc is not None:
+                proc.terminate()
+        if impair is not None and impair.poll() is None:
+            impair.kill()
+            impair.communicate()
+        sink.close()
     out = io.StringIO()
     with contextlib.redirect_stdout(out):
         cli_main(
@@ -362,10 +382,13 @@ def test_plan_reproduces_the_measured_queue_delay_of_a_burst(tmp_path):
              "--datagram-bytes", str(size), "--burst-datagrams", str(burst), "--queue-ms", "4000", "--json"]
         )  # fmt: skip
     planned = json.loads(out.getvalue())["burst_delay_ms"] / 1000
+    queue = [int(n) for n in re.findall(r"drops: queue (\d+)", impair_out)]
     print(
-        f"\nburst of {burst} × {size} B at {rate / 1000:g} kbit/s: planned {planned:.3f} s, measured {measured:.3f} s"
+        f"\nburst of {burst} × {size} B at {rate / 1000:g} kbit/s through fecproxy impair --rate-kbps 256: "
+        f"planned {planned:.3f} s, measured {measured:.3f} s; impair buffer drops {queue}"
     )
     assert abs(measured - planned) <= 0.2 * planned
+    assert queue and queue[0] == 0  # the proxy's pacing kept the modem's buffer from overflowing
 
 
 # -- the far end, seen from the sender -------------------------------------------------------------

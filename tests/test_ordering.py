@@ -89,6 +89,21 @@ def test_a_flow_joined_far_in_starts_where_it_is_and_a_restart_is_followed():
     assert seqs(order.push(d(1), 0.1)) == [1]
 
 
+def test_a_restarted_sender_s_flows_are_new_flows_and_the_old_ones_go_on_reset():
+    order = InOrderDelivery(WAIT)
+    old, new = 0x1111, 0x2222
+    order.push(Delivery(1, b"a", seq=5000, session=old), 0.0)
+    order.push(Delivery(1, b"b", seq=5002, session=old), 0.0)  # waits for 5001
+    # The restarted sender counts flow 1 from 0 again, in its own session: not late, not behind.
+    assert [x.data for x in order.push(Delivery(1, b"n0", seq=0, session=new), 0.01)] == [b"n0"]
+    assert order.stats.late == 0
+    # The decoder now follows the new session: the old one's waiting datagram goes, in order,
+    # and the new session's flow keeps its place.
+    assert [x.data for x in order.reset(0.02, keep=new)] == [b"b"]
+    assert [x.data for x in order.push(Delivery(1, b"n1", seq=1, session=new), 0.03)] == [b"n1"]
+    assert order.stats.held_datagrams == 0
+
+
 def test_sequence_numbers_wrap_around():
     order = InOrderDelivery(WAIT)
     out = []

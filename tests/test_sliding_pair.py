@@ -90,3 +90,18 @@ def test_demo_runs_the_sliding_code():
     assert status == 0
     assert "sliding-window code (RFC 8681)" in text and "with FEC (sliding window 64, 1 repair per 2)" in text
     assert re.search(r"corrupted datagrams\s+–\s+0\n", text)
+
+
+@pytest.mark.slow
+def test_bench_pipeline_runs_the_sliding_code(capsys):
+    import json
+    import multiprocessing
+
+    from fecproxy import cli
+
+    children_before = set(multiprocessing.active_children())
+    assert cli.main(["bench", "pipeline", "--quick", "--code", "sliding", "--json"]) == 0
+    result = json.loads(capsys.readouterr().out)
+    assert {trial["pipeline"] for trial in result["trials"]} == {"plain", "pair"}
+    assert all(trial["sent"] > 0 and trial["received"] > 0 for trial in result["trials"] if trial["pipeline"] == "pair")
+    assert set(multiprocessing.active_children()) <= children_before

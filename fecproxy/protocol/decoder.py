@@ -485,7 +485,7 @@ class BlockDecoder(SessionTable):
         if esi > block.max_esi:
             block.max_esi = esi
         self.stats.delivered += 1
-        events.append(direct_delivery(flow, data, seq))
+        events.append(direct_delivery(flow, data, seq, block.owner.id))
 
     def _add_repair(self, block: Block, pkt: wire.RepairPacket, events: list[Event]) -> None:
         if pkt.esi in block.repairs:
@@ -595,5 +595,5 @@ class BlockDecoder(SessionTable):
             block.rebuilt += 1
             self.stats.delivered += 1
             self.stats.recovered += 1
-            events.append(Delivery(flow, data, recovered=True, delay=delay, seq=seq))
+            events.append(Delivery(flow, data, recovered=True, delay=delay, seq=seq, session=block.owner.id))
         return events

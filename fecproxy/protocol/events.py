@@ -77,6 +77,7 @@ class Delivery(Event):
     recovered: bool = False
     delay: float = 0.0
     seq: int = 0
+    session: int = 0  # the sender session it came in: in-order delivery keeps sessions' flows apart
 
 
 @dataclass(frozen=True, slots=True)
@@ -192,7 +193,7 @@ class SessionProven(Event):
     released: int = 0
 
 
-def _delivery_maker() -> Callable[[int, bytes, int], Delivery]:
+def _delivery_maker() -> Callable[..., Delivery]:
     """Delivery(flow, data, seq=seq) for a datagram that came directly, built by filling its slots.
 
     The generated __init__ of a frozen dataclass sets each field through object.__setattr__:
@@ -201,14 +202,16 @@ def _delivery_maker() -> Callable[[int, bytes, int], Delivery]:
     slots = Delivery.__dict__  # the slot descriptors (typed Any: mypy sees the fields' types instead)
     new, set_flow, set_data = object.__new__, slots["flow"].__set__, slots["data"].__set__
     set_recovered, set_delay, set_seq = slots["recovered"].__set__, slots["delay"].__set__, slots["seq"].__set__
+    set_session = slots["session"].__set__
 
-    def direct_delivery(flow: int, data: bytes, seq: int = 0) -> Delivery:
+    def direct_delivery(flow: int, data: bytes, seq: int = 0, session: int = 0) -> Delivery:
         delivery = new(Delivery)
         set_flow(delivery, flow)
         set_data(delivery, data)
         set_recovered(delivery, False)
         set_delay(delivery, 0.0)
         set_seq(delivery, seq)
+        set_session(delivery, session)
         return delivery
 
     return direct_delivery

@@ -13,7 +13,10 @@ within a flow: a datagram that comes after its place was skipped is dropped and 
 
 Order comes from the per-flow sequence number the sender stamps in every source packet and
 inside every source symbol (``wire``: 16 bits, serial-number arithmetic after RFC 1982 §3.1), so
-it holds across size classes, interleaved blocks and rebuilt datagrams alike.
+it holds across size classes, interleaved blocks and rebuilt datagrams alike.  A flow is known by
+its sender session and flow id together: a restarted sender numbers its flows from 0 again, and
+its datagrams come (the decoder delivers a new session's at once) while the old session's may
+still wait; :meth:`reset` then lets the old sessions' flows go.
 
 Memory is bounded: at most ``WINDOW`` sequence numbers ahead of a flow's next one are held (a
 datagram further ahead moves the flow's front to itself, skipping what is missing), at most
@@ -31,7 +34,7 @@ from dataclasses import dataclass, field
 from enum import StrEnum
 
 from fecproxy.protocol.events import Delivery, DropReason
-from fecproxy.protocol.wire import SEQUENCE_MODULUS
+from fecproxy.protocol.wire import FLOW_ID_BITS, SEQUENCE_MODULUS
 
 #: How long a datagram after a gap may wait for the gap to be rebuilt.  A gap is rebuilt when its
 #: block completes: at most the sender's flush interval after the gap (20 ms by default, more
@@ -195,7 +198,7 @@ class InOrderDelivery:
     # ------------------------------------------------------------------ feeding
     def push(self, delivery: Delivery, now: float) -> list[Delivery]:
         """One delivery from the decoder; returns what may go to the application now, in order."""
-        flow_id = delivery.flow
+        flow_id = delivery.session << FLOW_ID_BITS | delivery.flow  # each sender session's flows apart
         seq = delivery.seq
         state = self._flows.get(flow_id)
         if state is not None and seq == state.next and not state.held:
@@ -289,15 +292,20 @@ class InOrderDelivery:
             self._release_all(state, now, SkipReason.CLOSED, out)
         return out
 
-    def reset(self, now: float, *, joined: bool = False) -> list[Delivery]:
-        """A new sender session: release what waits and forget every flow's position.
+    def reset(self, now: float, keep: int | None = None, *, joined: bool = False) -> list[Delivery]:
+        """The peer's sender restarted: release what waits and forget the flows of every session
+        but ``keep`` (the new one, whose flows may already have begun).
 
-        ``joined``: the session was under way before we heard it (this receiver restarted), so
-        the flows that show up within ``max_wait`` are taken from their first datagram: waiting
-        for the ones before it would hold them ``max_wait`` and count thousands of gaps that
-        are no loss (an earlier process delivered them)."""
-        out = self.close(now)
-        self._flows.clear()
+        ``joined``: the new session was under way before we heard it (this receiver restarted),
+        so the flows that show up within ``max_wait`` are taken from their first datagram:
+        waiting for the ones before it would hold them ``max_wait`` and count thousands of gaps
+        that are no loss (an earlier process delivered them)."""
+        out: list[Delivery] = []
+        for key, state in list(self._flows.items()):
+            if keep is not None and key >> FLOW_ID_BITS == keep:
+                continue
+            self._release_all(state, now, SkipReason.CLOSED, out)
+            del self._flows[key]
         self._joined_until = now + self.max_wait if joined else -1.0
         return out
 

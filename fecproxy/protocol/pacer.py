@@ -64,6 +64,10 @@ DEFAULT_BURST_PACKETS = 2
 #: checks once a minute, so 64 is over a minute of a link that sends nothing at all: hitting the
 #: cap means the rate is far too low for the configuration, and memory stays bounded.
 MAX_CONTROL_QUEUED = 64
+#: The queue never holds more than 64 MiB of packets whatever rate × queue time says: 5 s of air
+#: at 100 Mbit/s, far beyond the narrow links pacing is for; a longer queue is a store, not a
+#: pacer, and memory must stay bounded (common practice, no source).
+MAX_QUEUE_BYTES = 64 * 1024 * 1024
 #: Smallest rate accepted: below 1200 bit/s no radio we know of carries IP (from memory).
 MIN_RATE_BPS = 1200.0
 #: Dropped entries tolerated inside the deques before a compaction pass: keeps the pass rare on a
@@ -139,7 +143,7 @@ class Pacer(Generic[T]):
         self.header_bytes = header_bytes
         self.burst_bytes = max(burst_bytes or DEFAULT_BURST_PACKETS * mtu, mtu)
         #: The air-time bound in bytes: what the queue may hold of data.
-        self.limit_bytes = self.rate_bytes * queue_s
+        self.limit_bytes = min(self.rate_bytes * queue_s, float(MAX_QUEUE_BYTES))
         if self.limit_bytes < mtu:
             raise PacerConfigError(
                 f"a queue of {queue_s * 1000:g} ms holds less than one {mtu}-byte packet at {rate_bps:g} bit/s "
@@ -299,6 +303,7 @@ __all__ = [
     "IPV4_UDP_HEADER_BYTES",
     "IPV6_UDP_HEADER_BYTES",
     "MAX_CONTROL_QUEUED",
+    "MAX_QUEUE_BYTES",
     "MIN_RATE_BPS",
     "Departure",
     "Pacer",

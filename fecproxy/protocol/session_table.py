@@ -200,7 +200,7 @@ class SessionTable:
         if delivered is not None and esi <= wire.MAX_ESI and not delivered >> esi & 1:
             sess.finished[sbn] = delivered | 1 << esi
             self.stats.delivered += 1
-            events.append(direct_delivery(flow, data, seq))
+            events.append(direct_delivery(flow, data, seq, sess.id))
             return
         events.append(self._behind(sess, sbn, repair=False))
 

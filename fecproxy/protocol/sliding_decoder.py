@@ -286,18 +286,18 @@ class SlidingDecoder:
         highest = stream.highest
         if highest is not None and esi >= highest + self.settings.max_window and not self._jump_agreed(stream, esi):
             # Far ahead and not (yet) confirmed: delivered, but it moves nothing (see RESYNC_PACKETS).
-            self._delivered(stream, esi, events, Delivery(pkt.flow, pkt.data, seq=pkt.seq))
+            self._delivered(stream, esi, events, Delivery(pkt.flow, pkt.data, seq=pkt.seq, session=stream.id))
             return
         if highest is not None and esi <= highest - self.settings.max_window:
             if esi in stream.given_up:  # given up, never delivered: deliver it now
                 del stream.given_up[esi]
                 self.late_delivered += 1
-                self._delivered(stream, esi, events, Delivery(pkt.flow, pkt.data, seq=pkt.seq))
+                self._delivered(stream, esi, events, Delivery(pkt.flow, pkt.data, seq=pkt.seq, session=stream.id))
                 return
             if not self._jump_agreed(stream, esi):
                 # Far behind, not yet confirmed: a stray packet may have anchored the window (a
                 # forgery that came first); delivered, it moves nothing (see RESYNC_PACKETS).
-                self._delivered(stream, esi, events, Delivery(pkt.flow, pkt.data, seq=pkt.seq))
+                self._delivered(stream, esi, events, Delivery(pkt.flow, pkt.data, seq=pkt.seq, session=stream.id))
                 return
             self._restart(stream)  # agreed far behind: the window was anchored by a stray packet
         if esi in stream.given_up:  # within the window but given up by time: still deliver it
@@ -308,7 +308,7 @@ class SlidingDecoder:
                 self.reordered += 1
             self._resolve(stream, esi, _ARRIVED)
         self._advance(stream, esi, now, seen=True)
-        self._delivered(stream, esi, events, Delivery(pkt.flow, pkt.data, seq=pkt.seq))
+        self._delivered(stream, esi, events, Delivery(pkt.flow, pkt.data, seq=pkt.seq, session=stream.id))
         adui = wire.pack_symbol_prefix(pkt.flow, len(pkt.data), pkt.seq) + pkt.data
         self._deliver_solved(stream, system.add_known(esi, adui), now, events)
 
@@ -454,7 +454,9 @@ class SlidingDecoder:
                 stream,
                 esi,
                 events,
-                Delivery(flow, symbol[end : end + length], recovered=True, delay=now - noticed, seq=seq),
+                Delivery(
+                    flow, symbol[end : end + length], recovered=True, delay=now - noticed, seq=seq, session=stream.id
+                ),
             )
 
     # --- segment reports ---------------------------------------------------------------------

@@ -280,8 +280,8 @@ class Daemon:
             self._link_sock.close()
             if metrics is not None:
                 metrics.stop()
-            log_event(log, logging.INFO, "stopped", **self.summary())
             event_sink.reset(sink)
+        log_event(log, logging.INFO, "stopped", **self.summary())
 
     def _metrics_url(self) -> str:
         """Where to point a browser, Prometheus or ``fecproxy watch``; "off" without a port."""
@@ -375,7 +375,7 @@ class Daemon:
                     else:
                         if type(event) is SessionStarted:
                             if order is not None:  # the old conversations' waiting datagrams first
-                                _add(by_flow, order.reset(now, joined=event.joined))
+                                _add(by_flow, order.reset(now, event.session, joined=event.joined))
                             if by_flow:
                                 # What came before a peer restart belongs to the old conversations.
                                 await self.app.deliver(by_flow, now)

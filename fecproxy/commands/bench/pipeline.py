@@ -112,8 +112,10 @@ class _Bench:
         impairment: tuple | None = None,
         predicted_residual: float = 0.0,
         auth_mode: str = "off",
+        code: str = "block",
     ):
         self.k, self.m, self.trial_seconds = k, m, trial_seconds
+        self.code = code  # the senders' fec.code
         self.auth_mode = auth_mode  # off, mac or encrypt: the pairs' auth section
         self.key_dir = tempfile.TemporaryDirectory(prefix="fecproxy-bench-") if auth_mode != "off" else None
         if self.key_dir is not None:
@@ -181,7 +183,9 @@ class _Bench:
     def _pair(self, prefix: str, forward: tuple, impairment: tuple | None = None) -> tuple:
         """Start a receiver and a sender (with a lossy link relay between them when impaired);
         return the sender's application address."""
-        fec = {"block_size": self.k, "repair": self.m}
+        fec: dict = {"block_size": self.k, "repair": self.m}
+        if self.code == "sliding":  # the same overhead m/k: one repair every ceil(k/m) datagrams
+            fec.update(code="sliding", size_classes=[], repair_interval=min(32, math.ceil(self.k / max(self.m, 1))))
         extra = auth_section(self.auth_mode)
         receiver_link, _ = self._daemon(
             f"{prefix}receiver",
@@ -350,6 +354,7 @@ def run_pipeline_bench(
     link_burst: float | None = None,
     seed: int = DEFAULT_SEED,
     auth_mode: str = "off",
+    code: str = "block",
     progress=None,
 ) -> PipelineResult:
     """Start every process, search the pipelines' rates in alternation, then measure delay.
@@ -369,7 +374,7 @@ def run_pipeline_bench(
         f"starting the benchmark processes; then a rate search of up to {budget_seconds:g} s "
         f"(trials of {trial_seconds:g} s, {', '.join(pipelines)} in turn) and delay trials"
     )
-    with _Bench(k, m, trial_seconds, impairment, predicted or 0.0, auth_mode) as bench:
+    with _Bench(k, m, trial_seconds, impairment, predicted or 0.0, auth_mode, code) as bench:
         for pipeline in pipelines:  # warm-up: flows opened, sessions learned
             bench.run_trial(pipeline, min(start_rate, 2000.0), 0.2)
         searches = [RateSearch(pipeline, start_rate, max_rate) for pipeline in pipelines]
@@ -505,6 +510,13 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     )
     parser.add_argument("--seed", type=int, default=DEFAULT_SEED, help="seed of the impaired link's losses")
     parser.add_argument(
+        "--code",
+        choices=("block", "sliding"),
+        default="block",
+        help="the pair's fec.code: blocks of --block-size/--repair, or the sliding-window code at their overhead "
+        "(one repair every ceil(k/m) datagrams, window 32)",
+    )
+    parser.add_argument(
         "--auth",
         choices=AUTH_MODES,
         default="off",
@@ -541,6 +553,7 @@ def main(args: argparse.Namespace) -> int:
         link_burst=args.burst,
         seed=args.seed,
         auth_mode=args.auth,
+        code=args.code,
     )
     if args.burst is not None and args.loss is None:
         print("fecproxy bench pipeline: --burst needs --loss", file=sys.stderr)
