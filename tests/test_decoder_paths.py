@@ -9,6 +9,8 @@ reordered and bit-flipped packets of one or two sender sessions.
 
 from __future__ import annotations
 
+import itertools
+
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from support.decoding import receive_noting_peer
@@ -96,3 +98,72 @@ def test_an_invalid_packet_bearing_the_followed_session_does_not_keep_it_alive()
         for packet in new:  # 0.6 s after the old session's last valid packet
             decoder.receive(packet, None, 1.6)
         assert decoder.session == 0x2222
+
+
+@settings(max_examples=100, deadline=None)
+@given(
+    k=st.integers(1, 6),
+    m=st.integers(0, 3),
+    first=st.lists(datagram, min_size=1, max_size=20),
+    second=st.lists(datagram, max_size=20),
+    steps=st.lists(step, min_size=1, max_size=80),
+    cuts=st.lists(st.integers(1, 12), min_size=1, max_size=20),
+    max_open_blocks=st.sampled_from([2, 256]),
+)
+def test_a_batch_gives_the_events_of_its_packets_one_by_one(k, m, first, second, steps, cuts, max_open_blocks):
+    """``receive_batch`` rebuilds the blocks a read makes decodable together (recover_many), yet
+    gives the same events in the same order, the same counters and the same table as ``receive``
+    packet by packet, on the fast path and on the general one."""
+    link = link_packets(k, m, first, session=0x1111)
+    if second:
+        link += link_packets(k, m, second, session=0x2222)
+    decoder_settings = DecoderSettings(max_datagram=24, max_open_blocks=max_open_blocks)
+    single = BlockDecoder(decoder_settings, learn_peer=True)
+    batched = BlockDecoder(decoder_settings, learn_peer=True)
+    general = BlockDecoder(decoder_settings, learn_peer=True)
+    general.receive = general._receive_general  # receive_batch over the general path
+    packets = []
+    for index, flip, offset, xor, _ in steps:
+        data = link[index % len(link)]
+        if flip:
+            changed = bytearray(data)
+            changed[offset % len(changed)] ^= xor
+            data = bytes(changed)
+        packets.append((data, ("127.0.0.1", 1000 + index % 3)))
+    now, start = 0.0, 0
+    for number, cut in enumerate(itertools.cycle(cuts)):
+        if start >= len(packets):
+            break
+        read = packets[start : start + cut]
+        start += cut
+        now += steps[number % len(steps)][4]
+        assert single.on_timer(now) == batched.on_timer(now) == general.on_timer(now)
+        expected = [event for data, source in read for event in single.receive(data, source, now)]
+        assert batched.receive_batch(read, now) == expected
+        assert general.receive_batch(read, now) == expected
+        assert single.stats == batched.stats == general.stats
+        assert (single.sessions, single.held_bytes, single.open_blocks) == (
+            batched.sessions,
+            batched.held_bytes,
+            batched.open_blocks,
+        )
+        assert single.next_deadline() == batched.next_deadline()
+    assert single.close() == batched.close()
+    assert single.stats == batched.stats
+
+
+def test_blocks_decodable_in_one_read_are_rebuilt_by_one_codec_call():
+    """Eight (4, 2) blocks each missing one or two datagrams, in one read: one recover_many for
+    them all, and every datagram delivered once, each block's before its report."""
+    encoder = BlockEncoder(EncoderSettings(block_size=4, repair=2, max_datagram=24), 0x3333)
+    read = []
+    sent = [bytes([i]) * 10 for i in range(32)]
+    for i, data in enumerate(sent):
+        packets = encoder.send(data, 0, 0.0)
+        read += [(p, None) for p in packets if not (i % 4 == 1 or (i % 8 == 2 and p[0] == packets[0][0]))]
+    decoder = BlockDecoder()
+    events = decoder.receive_batch(read, 1.0)
+    assert (decoder.rebuilds.calls, decoder.rebuilds.blocks) == (1, 8)
+    delivered = [e.data for e in events if type(e).__name__ == "Delivery"]
+    assert sorted(delivered) == sorted(sent) and len(delivered) == 32
+    assert decoder.stats.recovered == 12 and decoder.stats.unrecovered == 0

@@ -114,3 +114,23 @@ def test_windowed_estimator_tracks_a_change_of_channel():
     assert est.samples == 20_000
     assert 0.15 < est.average_loss < 0.25  # wide: a 20 000-packet window of a bursty channel
     assert 3.0 < est.mean_burst < 5.0
+
+
+@settings(max_examples=60, deadline=None)
+@given(
+    runs=st.lists(st.tuples(st.booleans(), st.integers(1, 40), st.booleans()), max_size=30),
+    window=st.integers(min_value=2, max_value=25),
+)
+def test_windowed_run_equals_repeated_observe_across_segments(runs, window):
+    """The windowed observe_run takes a run in and the window's excess out at once: the same
+    counters, pair by pair, as one sample at a time, segment boundaries included."""
+    fast, slow = LossEstimator(window=window), LossEstimator(window=window)
+    for lost, count, new_segment in runs:
+        if new_segment:
+            fast.end_segment()
+            slow.end_segment()
+        fast.observe_run(lost, count)
+        for _ in range(count):
+            slow.observe(lost)
+        assert (fast._gg, fast._gb, fast._bg, fast._bb) == (slow._gg, slow._gb, slow._bg, slow._bb)
+        assert (fast._samples, fast._lost, list(fast._flags)) == (slow._samples, slow._lost, list(slow._flags))

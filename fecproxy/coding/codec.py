@@ -164,43 +164,55 @@ class BlockCode:
     def recover_many(self, receptions: Sequence[Mapping[int, object]]) -> list[dict[int, np.ndarray]]:
         """:meth:`recover` for several blocks of this code at once, results in the same order.
 
-        Blocks with the same number of lost source symbols share one closed-form computation and
-        one pass of the kernel (:meth:`gf256.Multiplier.block_diagonal`), so a receiver holding
-        several damaged blocks pays the fixed per-call cost once.  Never uses the pattern cache.
-        An invalid block raises as :meth:`recover` would, before any work is done.
+        The damaged blocks share one pass of the kernel (:meth:`gf256.Multiplier.per_block_rows`)
+        whatever each lost, and those with the same number of lost source symbols one closed-form
+        computation, so a receiver holding several damaged blocks pays the fixed per-call cost
+        once.  Never uses the pattern cache.  An invalid block raises as :meth:`recover` would,
+        before any work is done.
         """
         selected = [self._select(received) for received in receptions]
         results: list[dict[int, np.ndarray]] = [{} for _ in selected]
-        by_loss: dict[int, list[int]] = {}
-        for position, (missing, _repairs, _stacked) in enumerate(selected):
-            if missing:
-                by_loss.setdefault(len(missing), []).append(position)
+        damaged = [position for position, (missing, _repairs, _stacked) in enumerate(selected) if missing]
         per_call = max(1, BATCH_SOURCE_ROWS // self.k)
-        for e, group in by_loss.items():
-            for start in range(0, len(group), per_call):
-                self._recover_together(selected, group[start : start + per_call], e, results)
+        for start in range(0, len(damaged), per_call):
+            self._recover_together(selected, damaged[start : start + per_call], results)
         return results
 
     def _recover_together(
         self,
         selected: list[tuple[list[int], list[int], np.ndarray]],
         members: list[int],
-        e: int,
         results: list[dict[int, np.ndarray]],
     ) -> None:
-        """Rebuild the blocks ``members`` of ``selected`` (all with e losses) in one kernel pass."""
-        positions = np.empty((len(members), e + self.k), dtype=np.intp)
-        for row, position in enumerate(members):
+        """Rebuild the blocks ``members`` of ``selected`` in one kernel pass."""
+        # One closed-form computation for all: a block that lost fewer than the most lost gets
+        # stand-in missing positions (unused encoding indices, never among its points), whose
+        # rows are computed and left out.
+        widest = max(len(selected[position][0]) for position in members)
+        positions = np.empty((len(members), widest + self.k), dtype=np.intp)
+        wanted: list[int] = []
+        owners: list[int] = []
+        for order, position in enumerate(members):
             missing, repairs, _ = selected[position]
             lost = set(missing)
             stand_in = iter(repairs)
-            positions[row] = [*missing, *(next(stand_in) if i in lost else i for i in range(self.k))]
-        coefficients = lagrange_coefficients_many(positions, e)
+            points = [next(stand_in) if i in lost else i for i in range(self.k)]
+            fillers: list[int] = []
+            if len(missing) < widest:
+                taken = lost.union(points)
+                candidates = (i for i in range(self.n - 1, -1, -1) if i not in taken)
+                fillers = [next(candidates) for _ in range(widest - len(missing))]
+            positions[order] = [*missing, *fillers, *points]
+            wanted += range(order * widest, order * widest + len(missing))
+            owners += [order] * len(missing)
+        coefficients = lagrange_coefficients_many(positions, widest).reshape(-1, self.k)[wanted]
         data = np.concatenate([selected[position][2] for position in members])
-        rebuilt = gf256.Multiplier.block_diagonal(coefficients)(data)
-        for row, position in enumerate(members):
+        rebuilt = gf256.Multiplier.per_block_rows(coefficients, np.array(owners, dtype=np.intp), len(members))(data)
+        row = 0
+        for position in members:
             missing = selected[position][0]
-            results[position] = {index: rebuilt[row * e + j] for j, index in enumerate(missing)}
+            results[position] = {index: rebuilt[row + j] for j, index in enumerate(missing)}
+            row += len(missing)
 
     def _select(self, received: Mapping[int, object]) -> tuple[list[int], list[int], np.ndarray]:
         """Validate the received symbols and stack the k that decoding uses into one array.

@@ -262,18 +262,31 @@ class Multiplier:
         if coefficients.ndim != 3:
             raise ValueError(f"coefficients must be 3-D (blocks, rows, inner), got shape {coefficients.shape}")
         blocks, rows, inner = coefficients.shape
+        owners = np.repeat(np.arange(blocks, dtype=np.intp), rows)
+        return cls.per_block_rows(coefficients.reshape(blocks * rows, inner), owners, blocks, digit_bits)
+
+    @classmethod
+    def per_block_rows(
+        cls, coefficients: np.ndarray, owners: np.ndarray, blocks: int, digit_bits: int | None = None
+    ) -> Multiplier:
+        """:meth:`block_diagonal` with any number of rows per block: output row r is
+        ``coefficients[r]`` (R, inner) applied to the rows of block ``owners[r]`` alone, the data
+        being the ``blocks`` blocks' rows stacked, (blocks·inner, L).  Blocks that lost different
+        numbers of symbols thus share one pass of the kernel."""
+        coefficients = np.asarray(coefficients, dtype=np.uint8)
+        total_rows, inner = coefficients.shape
         self = cls.__new__(cls)
-        self.rows, self.inner = blocks * rows, blocks * inner
-        if digit_bits is None:
-            digit_bits = 4 if self.rows >= FOUR_BIT_DIGITS_FROM_ROWS else 2
+        self.rows, self.inner = total_rows, blocks * inner
+        if digit_bits is None:  # the table grows with the data rows as the gathers with the output rows
+            digit_bits = 4 if total_rows >= FOUR_BIT_DIGITS_FROM_ROWS * max(1, blocks) else 2
         if digit_bits not in DIGIT_BITS_CHOICES:
             raise ValueError(f"digit_bits must be one of {DIGIT_BITS_CHOICES}, got {digit_bits}")
         self.digit_bits, self.digits, self._entries = digit_bits, 8 // digit_bits, (1 << digit_bits) - 1
-        # index[i, d, b, r] = digit d of coefficients[b, r, i] · (B·inner) + b·inner + i
-        index = np.empty((inner, self.digits, blocks, rows), dtype=np.intp)
-        np.multiply(_DIGIT_VALUES[digit_bits][coefficients].transpose(2, 3, 0, 1), self.inner, out=index)
-        index += (np.arange(blocks)[:, None] * inner)[None, None] + np.arange(inner)[:, None, None, None]
-        self._index = index.reshape(inner, self.digits * self.rows)
+        # index[i, d, r] = digit d of coefficients[r, i] · (blocks·inner) + owners[r]·inner + i
+        index = np.empty((inner, self.digits, total_rows), dtype=np.intp)
+        np.multiply(_DIGIT_VALUES[digit_bits][coefficients].transpose(1, 2, 0), self.inner, out=index)
+        index += (np.asarray(owners, dtype=np.intp) * inner)[None, None] + np.arange(inner)[:, None, None]
+        self._index = index.reshape(inner, self.digits * total_rows)
         return self
 
     def __repr__(self) -> str:

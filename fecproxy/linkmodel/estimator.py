@@ -11,6 +11,7 @@ import math
 from collections import deque
 from collections.abc import Iterable
 from dataclasses import dataclass
+from itertools import repeat
 
 from fecproxy.linkmodel.loss_models import ChannelConfigError, GilbertElliott
 
@@ -110,6 +111,31 @@ class LossEstimator:
             self._count_pair(bool(oldest & 1), bool(following & 1), -1)
             self._flags[0] = following & 1
 
+    def _forget_oldest_many(self, count: int) -> None:
+        """:meth:`_forget_oldest` ``count`` times, in one loop with local counters."""
+        flags = self._flags
+        popleft = flags.popleft
+        taken = [0, 0, 0, 0]  # pairs taken back, indexed before_lost << 1 | after_lost
+        lost = 0
+        oldest = popleft()
+        for _ in range(count - 1):
+            lost += oldest & 1
+            following = popleft()
+            if following & 2:
+                taken[(oldest & 1) << 1 | following & 1] += 1
+            oldest = following
+        lost += oldest & 1
+        following = flags[0]
+        if following & 2:
+            taken[(oldest & 1) << 1 | following & 1] += 1
+            flags[0] = following & 1
+        self._samples -= count
+        self._lost -= lost
+        self._gg -= taken[0]
+        self._gb -= taken[1]
+        self._bg -= taken[2]
+        self._bb -= taken[3]
+
     def observe_many(self, flags: Iterable[bool]) -> None:
         for lost in flags:
             self.observe(lost)
@@ -122,17 +148,29 @@ class LossEstimator:
         count = int(count)
         if count <= 0:
             return
-        if self.window is not None:
-            for _ in range(min(count, self.window + 1)):
-                self.observe(lost)
-            return
         lost = bool(lost)
-        if self._last is not None:
-            self._count_pair(self._last, lost, +1)
+        previous = self._last
+        linked = previous is not None
+        if self.window is not None:
+            count = min(count, self.window + 1)
+            # The whole run goes in at once and the window's excess comes out at once: the same
+            # samples and counted pairs as observing them one by one (a pair is taken back out
+            # exactly when its first sample leaves, and its second is still in the window then),
+            # without two method calls per datagram on the receiver's path.
+            flags = self._flags
+            flags.append(lost | linked << 1)
+            if count > 1:
+                flags.extend(repeat(lost | 2, count - 1))
+        if previous is not None:
+            self._count_pair(previous, lost, +1)
         self._count_pair(lost, lost, count - 1)
         self._last = lost
         self._samples += count
         self._lost += count if lost else 0
+        if self.window is not None:
+            excess = len(self._flags) - self.window
+            if excess > 0:
+                self._forget_oldest_many(excess)
 
     def end_segment(self) -> None:
         """The next packet is not the link neighbour of the last one: count no transition between them."""

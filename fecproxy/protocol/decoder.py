@@ -52,15 +52,13 @@ capped (``max_rebuilds_per_s``): a block that could be rebuilt while the cap is 
 
 from __future__ import annotations
 
-import numpy as np
+from collections.abc import Iterable
 
-from fecproxy.coding.codec import BlockCode, block_code
 from fecproxy.protocol import auth, wire
 from fecproxy.protocol.events import (
     JOINED_AFTER_BLOCKS,
     BlockOutcome,
     ControlReceived,
-    Delivery,
     Dropped,
     DropReason,
     Event,
@@ -71,6 +69,7 @@ from fecproxy.protocol.events import (
     SockAddr,
     direct_delivery,
 )
+from fecproxy.protocol.rebuilds import RebuildQueue, rebuild_one
 from fecproxy.protocol.received_code import ReceivedCode
 from fecproxy.protocol.replay import ReplayWindow
 from fecproxy.protocol.session_table import (
@@ -151,6 +150,8 @@ class BlockDecoder(SessionTable):
         #: per session of this table (sessions, keys and the peer address are ruled above), and
         #: count into this decoder's stats.
         self.sliding = SlidingDecoder(self._sliding_settings(), stats=self.stats)  # type: ignore[arg-type]
+        self.rebuilds = RebuildQueue(self.stats)  # blocks decodable within the current batch
+        self._batching = False
 
     def _session_ended(self, session: int, events: list[Event]) -> None:
         events += self.sliding.forget(session)  # its sliding windows go with it
@@ -159,6 +160,23 @@ class BlockDecoder(SessionTable):
         return SlidingDecoderSettings(hold_time=self.settings.hold_time, max_datagram=self.settings.max_datagram)
 
     # ------------------------------------------------------------------ feeding
+    def receive_batch(self, items: Iterable[tuple[bytes, SockAddr | None]], now: float) -> list[Event]:
+        """``receive`` for each (packet, source address) of one socket read, in order, with the
+        blocks that become decodable rebuilt together at the end (one ``recover_many`` per shape,
+        see :mod:`fecproxy.protocol.rebuilds`).  The events are those ``receive`` would have given
+        packet by packet, in the same order."""
+        events: list[Event] = []
+        receive = self.receive
+        self._batching = True
+        try:
+            for data, addr in items:
+                events += receive(data, addr, now)
+        finally:
+            self._batching = False
+            if self.rebuilds:
+                events = self.rebuilds.flush(events, self._drop)
+        return events
+
     def receive(self, data: bytes, addr: SockAddr | None, now: float) -> list[Event]:
         """Take one link packet that came from ``addr``.  Returns its events, among them what the
         shell must act on besides deliveries: PeerAddressChanged (only from a valid packet of the
@@ -539,8 +557,16 @@ class BlockDecoder(SessionTable):
                         )
                     )
                 return
-            events.extend(self._rebuild(block, now))
-            events.append(self._finish(block, BlockOutcome.RECOVERED))
+            if not self._batching:
+                events += rebuild_one(block, now, self.stats, self._drop)
+                events.append(self._finish(block, BlockOutcome.RECOVERED))
+                return
+            # In a batch the block finishes now (its late packets are judged as any finished
+            # block's) and its arithmetic waits for the batch's one recover_many per shape.
+            block.rebuilt = k - have  # all of them, unless the flush finds one inconsistent
+            report = self._finish(block, BlockOutcome.RECOVERED)
+            self.rebuilds.add(block, now, report)
+            events.append(report)
 
     def _may_rebuild(self, now: float) -> bool:
         """Token bucket of ``max_rebuilds_per_s``, one second deep; takes a token if it can."""
@@ -556,44 +582,3 @@ class BlockDecoder(SessionTable):
             return False
         self._tokens -= 1
         return True
-
-    def _rebuild(self, block: Block, now: float) -> list[Event]:
-        k = block.k
-        length = block.symbol_len
-        assert k is not None and length is not None
-        missing_count = k - len(block.sources)
-        repair_indices = sorted(block.repairs)[:missing_count]
-        indices = sorted(block.sources) + repair_indices
-        symbols = np.zeros((len(indices), length), dtype=np.uint8)
-        row = 0
-        prefix = wire.SYMBOL_PREFIX_BYTES
-        for esi in sorted(block.sources):
-            flow, data, seq = block.sources[esi]
-            size = len(data)
-            symbols[row, :prefix] = np.frombuffer(wire.pack_symbol_prefix(flow, size, seq), dtype=np.uint8)
-            symbols[row, prefix : prefix + size] = np.frombuffer(data, dtype=np.uint8)
-            row += 1
-        for esi in repair_indices:
-            symbols[row] = np.frombuffer(block.repairs[esi], dtype=np.uint8)
-            row += 1
-        # Column j of the generator depends only on k and j: one code per k serves every block of
-        # that k, and its cache of loss-pattern inverses is shared across them.
-        code: BlockCode = block_code(k, wire.MAX_ESI + 1)
-        rebuilt = code.recover(dict(zip(indices, symbols, strict=True)))
-        delay = now - block.first_seen
-        events: list[Event] = []
-        for esi in sorted(rebuilt):
-            symbol = rebuilt[esi]
-            flow, size, seq = wire.unpack_symbol_prefix(symbol[:prefix].tobytes())
-            if size + prefix > length:
-                events.append(
-                    self._drop(DropReason.INCONSISTENT, f"rebuilt datagram {block.sbn}/{esi} claims {size} bytes")
-                )
-                continue
-            data = symbol[prefix : prefix + size].tobytes()
-            block.sources[esi] = (flow, data, seq)
-            block.rebuilt += 1
-            self.stats.delivered += 1
-            self.stats.recovered += 1
-            events.append(Delivery(flow, data, recovered=True, delay=delay, seq=seq, session=block.owner.id))
-        return events

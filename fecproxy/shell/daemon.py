@@ -348,41 +348,41 @@ class Daemon:
         """Both roles: link packets -> decoder -> applications."""
         # The peer sends with GSO, so with GRO a burst of its packets is one read (see udp.py).
         reader = DatagramReader(self._link_sock, coalesce=True)
-        receive = self.decoder.receive
+        receive_batch = self.decoder.receive_batch
         order = self.order
         by_flow: dict[int, list[bytes]] = {}
         while True:
             batch = await reader.read_batch()
             now = trio.current_time()
-            for data, address in batch:
-                try:
-                    events = receive(data, address, now)
-                except Exception:  # a bug must cost one packet, never the daemon
-                    self._internal_error("decoder")
-                    continue
-                for event in events:
-                    if type(event) is Delivery:  # the common case, inline: once per datagram
-                        if event.recovered:
-                            self.recovery_delay.observe(event.delay)
-                        if order is not None:
-                            _add(by_flow, order.push(event, now))
-                            continue
-                        datagrams = by_flow.get(event.flow)
-                        if datagrams is None:
-                            by_flow[event.flow] = [event.data]
-                        else:
-                            datagrams.append(event.data)
+            # One call per read: the blocks it makes decodable are rebuilt together.
+            try:
+                events = receive_batch(batch, now)
+            except Exception:  # a bug must cost one read, never the daemon
+                self._internal_error("decoder")
+                events = []
+            for event in events:
+                if type(event) is Delivery:  # the common case, inline: once per datagram
+                    if event.recovered:
+                        self.recovery_delay.observe(event.delay)
+                    if order is not None:
+                        _add(by_flow, order.push(event, now))
+                        continue
+                    datagrams = by_flow.get(event.flow)
+                    if datagrams is None:
+                        by_flow[event.flow] = [event.data]
                     else:
-                        if type(event) is SessionStarted:
-                            if order is not None:  # the old conversations' waiting datagrams first
-                                _add(by_flow, order.reset(now, event.session, joined=event.joined))
-                            if by_flow:
-                                # What came before a peer restart belongs to the old conversations.
-                                await self.app.deliver(by_flow, now)
-                                by_flow = {}
-                        elif order is not None and type(event) is BlockReport:
-                            _add(by_flow, self._give_up(event, now))
-                        await self._handle_event(event, now)
+                        datagrams.append(event.data)
+                else:
+                    if type(event) is SessionStarted:
+                        if order is not None:  # the old conversations' waiting datagrams first
+                            _add(by_flow, order.reset(now, event.session, joined=event.joined))
+                        if by_flow:
+                            # What came before a peer restart belongs to the old conversations.
+                            await self.app.deliver(by_flow, now)
+                            by_flow = {}
+                    elif order is not None and type(event) is BlockReport:
+                        _add(by_flow, self._give_up(event, now))
+                    await self._handle_event(event, now)
             if by_flow:
                 await self.app.deliver(by_flow, now)
                 by_flow = {}

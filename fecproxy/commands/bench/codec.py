@@ -50,6 +50,15 @@ PATTERN_POOL = 512
 #: choice: at k = 16 a receiver's batched socket reads bring in a few blocks at a time at high
 #: rates; 8 shows the fixed per-call cost amortised without assuming a long backlog.
 DECODE_BATCH = 8
+#: The link figure: each symbol of a block (sources and repairs) lost independently with this
+#: share, as an i.i.d. 5 % link loses them; only blocks the receiver must and can rebuild (at
+#: least one source lost, at most m symbols lost) are kept, so the number rebuilt varies 1..m.
+LINK_LOSS = 0.05
+#: Damaged blocks per ``recover_many`` call in the link figure: the blocks a receiver found
+#: decodable per socket read, counted in the daemon's decoder (``BlockDecoder.rebuilds``) with
+#: ``bench pipeline``'s processes at 50 000 datagrams/s over a 5 % link, k=16, m=4 (README,
+#: "Benchmarks": 4.9-7.4 per call on the shared 2-core box; 6 is the middle).
+LINK_BATCH = 6
 
 
 @dataclass(frozen=True)
@@ -70,6 +79,14 @@ class CodecFigures:
     decode_batch: float
     zfec_encode: float | None
     zfec_decode: float | None
+    decode_link: float = 0.0
+    zfec_link: float | None = None
+    link_batch: int = LINK_BATCH
+    link_loss: float = LINK_LOSS
+
+    @property
+    def link_ratio(self) -> float | None:
+        return None if self.zfec_link is None else self.decode_link / self.zfec_link
 
     @property
     def encode_ratio(self) -> float | None:
@@ -93,6 +110,7 @@ class CodecFigures:
             encode_ratio=self.encode_ratio,
             decode_ratio=self.decode_ratio,
             batch_ratio=self.batch_ratio,
+            link_ratio=self.link_ratio,
             decode_over_encode=self.decode_over_encode,
         )
         return figures
@@ -119,6 +137,26 @@ def _positive_seconds(text: str) -> float:
     return seconds
 
 
+def _positive_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"need a whole number, got {text!r}") from None
+    if not 1 <= value <= PATTERN_POOL:
+        raise argparse.ArgumentTypeError(f"need 1..{PATTERN_POOL}, got {text!r}")
+    return value
+
+
+def _link_loss(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"need a number, got {text!r}") from None
+    if not 0 < value <= 0.5:
+        raise argparse.ArgumentTypeError(f"need a loss share in (0, 0.5], got {text!r}")
+    return value
+
+
 def add_arguments(codec: argparse.ArgumentParser) -> None:
     codec.add_argument(
         "--shape",
@@ -143,6 +181,19 @@ def add_arguments(codec: argparse.ArgumentParser) -> None:
         "L bytes (repeat for several; default: "
         + " ".join(",".join(map(str, s)) for s in DEFAULT_SLIDING_SHAPES)
         + ")",
+    )
+    codec.add_argument(
+        "--link-batch",
+        type=_positive_int,
+        default=LINK_BATCH,
+        help="damaged blocks per recover_many call in the link figure (default: the batch the daemon's "
+        f"receiver was measured to see at 50 000 datagrams/s over a 5 %% link: {LINK_BATCH})",
+    )
+    codec.add_argument(
+        "--link-loss",
+        type=_link_loss,
+        default=LINK_LOSS,
+        help=f"share of symbols the link figure's i.i.d. link loses (default: {LINK_LOSS})",
     )
     codec.add_argument("--json", action="store_true", help="print the figures as JSON instead of a table")
 
@@ -171,8 +222,34 @@ def _loss_patterns(k: int, m: int, rng: np.random.Generator) -> list[list[int]]:
     return [sorted(rng.choice(k, lost, replace=False).tolist()) for _ in range(PATTERN_POOL)]
 
 
-def measure_codec(k: int, m: int, length: int, seconds: float = DEFAULT_SECONDS, use_zfec: bool = True) -> CodecFigures:
-    """Encode and decode rates for one shape; each decode rebuilds a fresh set of m lost sources."""
+def _link_receptions(k: int, m: int, loss: float, rng: np.random.Generator) -> list[tuple[list[int], list[int]]]:
+    """PATTERN_POOL (lost sources, repairs used) pairs as an i.i.d. link losing ``loss`` of the
+    symbols gives them, kept only when the block needs a rebuild and can have one."""
+    patterns: list[tuple[list[int], list[int]]] = []
+    for _ in range(PATTERN_POOL * 1000):  # bounded: at 5 % about half the blocks qualify
+        lost = rng.random(k + m) < loss
+        lost_sources = np.flatnonzero(lost[:k]).tolist()
+        if lost_sources and int(lost.sum()) <= m:
+            arrived_repairs = [k + j for j in np.flatnonzero(~lost[k:]).tolist()]
+            patterns.append((lost_sources, arrived_repairs[: len(lost_sources)]))
+            if len(patterns) == PATTERN_POOL:
+                break
+    if len(patterns) < PATTERN_POOL:
+        raise ValueError(f"a {loss:g} link too rarely leaves a (k={k}, m={m}) block needing and allowing a rebuild")
+    return patterns
+
+
+def measure_codec(
+    k: int,
+    m: int,
+    length: int,
+    seconds: float = DEFAULT_SECONDS,
+    use_zfec: bool = True,
+    link_batch: int = LINK_BATCH,
+    link_loss: float = LINK_LOSS,
+) -> CodecFigures:
+    """Encode and decode rates for one shape; each decode rebuilds a fresh set of m lost sources
+    (the link figure: as many as a ``link_loss`` link loses, ``link_batch`` blocks per call)."""
     rng = np.random.default_rng(SEED)
     source = rng.integers(0, 256, size=(k, length), dtype=np.uint8)
     source_bytes = [bytes(row) for row in source]
@@ -197,12 +274,27 @@ def measure_codec(k: int, m: int, length: int, seconds: float = DEFAULT_SECONDS,
         if any(not np.array_equal(symbol, source[i]) for i, symbol in rebuilt.items()) or len(rebuilt) != min(m, k):
             raise AssertionError(f"recover_many did not rebuild the source for k={k}, m={m}, L={length}")
     repeated = receptions[0]
+    link_patterns = _link_receptions(k, m, link_loss, rng) if m > 0 else []
+    link_receptions = [
+        {**{i: source_bytes[i] for i in range(k) if i not in set(lost)}, **{j: repair_bytes[j - k] for j in used}}
+        for lost, used in link_patterns
+    ]
+    for received, rebuilt in zip(link_receptions[:8], code.recover_many(link_receptions[:8]), strict=True):
+        if any(not np.array_equal(symbol, source[i]) for i, symbol in rebuilt.items()) or len(rebuilt) + len(
+            received
+        ) != k + sum(j >= k for j in received):
+            raise AssertionError(f"recover_many did not rebuild a link block for k={k}, m={m}, L={length}")
+    link_batches = itertools.cycle(
+        [link_receptions[i : i + link_batch] for i in range(0, len(link_receptions) - link_batch + 1, link_batch)]
+    )
     functions: dict[str, Callable[[], object]] = {
         "encode": lambda: code.encode(source_bytes),
         "decode": lambda: fresh_code.decode(next(fresh)),
         "decode_cached": lambda: code.decode(repeated),
         "decode_batch": lambda: code.recover_many(next(batches)),
     }
+    if link_receptions:
+        functions["decode_link"] = lambda: code.recover_many(next(link_batches))
     if use_zfec:
         try:
             import zfec  # GPL: speed reference only, imported here and nowhere else
@@ -223,6 +315,16 @@ def measure_codec(k: int, m: int, length: int, seconds: float = DEFAULT_SECONDS,
                 if b"".join(decoder.decode(blocks, numbers)) != b"".join(source_bytes):
                     raise AssertionError("zfec did not rebuild the source")  # guards a fair comparison
             zfec_fresh = itertools.cycle(zfec_blocks)
+            zfec_link_blocks = []
+            for lost, used in link_patterns:  # the link figure's patterns, zfec's form
+                numbers = tuple(i for i in range(k) if i not in set(lost)) + tuple(used)
+                blocks = tuple(source_bytes[i] if i < k else zfec_repairs[i - k] for i in numbers)
+                zfec_link_blocks.append((blocks, numbers))
+            for blocks, numbers in zfec_link_blocks[:8]:
+                if b"".join(decoder.decode(blocks, numbers)) != b"".join(source_bytes):
+                    raise AssertionError("zfec did not rebuild a link block")
+            zfec_link = itertools.cycle(zfec_link_blocks)
+            functions["zfec_link"] = lambda: decoder.decode(*next(zfec_link))
             functions["zfec_encode"] = lambda: encoder.encode(inputs, wanted)
             functions["zfec_decode"] = lambda: decoder.decode(*next(zfec_fresh))
     rates = _rates(functions, seconds)
@@ -239,6 +341,10 @@ def measure_codec(k: int, m: int, length: int, seconds: float = DEFAULT_SECONDS,
         decode_batch=rates["decode_batch"] * megabytes * DECODE_BATCH,
         zfec_encode=None if zfec_encode is None else zfec_encode * megabytes,
         zfec_decode=None if zfec_decode is None else zfec_decode * megabytes,
+        decode_link=rates.get("decode_link", 0.0) * megabytes * link_batch,
+        zfec_link=None if "zfec_link" not in rates else rates["zfec_link"] * megabytes,
+        link_batch=link_batch,
+        link_loss=link_loss,
     )
 
 
@@ -355,6 +461,12 @@ def format_table(figures: list[CodecFigures], seconds: float) -> str:
         header,
         "-" * len(header),
     ]
+    link_lines = [
+        f"{f.k:>4} {f.m:>4} {f.length:>6} | {f.decode_link:>8.1f} {_cell(f.zfec_link, 1):>9} "
+        f"{_cell(f.link_ratio, 2):>6}"
+        for f in figures
+        if f.decode_link
+    ]
     for f in figures:
         lines.append(
             f"{f.k:>4} {f.m:>4} {f.length:>6} | {f.encode:>8.1f} {_cell(f.zfec_encode, 1):>9} "
@@ -362,6 +474,16 @@ def format_table(figures: list[CodecFigures], seconds: float) -> str:
             f"{_cell(f.decode_ratio, 2):>6} | {f.decode_over_encode:>7.2f} | {f.decode_batch:>8.1f} "
             f"{_cell(f.batch_ratio, 2):>6} | {f.decode_cached:>8.1f}"
         )
+    if link_lines:
+        f = figures[0]
+        lines += [
+            "",
+            f"link: blocks as an i.i.d. {f.link_loss:g} link leaves them (1..m sources lost, only blocks that need "
+            f"and allow a rebuild), fresh patterns, {f.link_batch} blocks per recover_many call (the receiver's "
+            "batch at 50 000 datagrams/s, see --link-batch); zfec decodes the same blocks one by one",
+            f"{'k':>4} {'m':>4} {'L':>6} | {'link dec':>8} {'zfec dec':>9} {'ratio':>6}",
+            *link_lines,
+        ]
     if figures and all(f.zfec_encode is None for f in figures):
         lines.append("zfec not installed: pip install 'fecproxy[bench]' to measure the baseline side by side")
     return "\n".join(lines)
@@ -369,7 +491,11 @@ def format_table(figures: list[CodecFigures], seconds: float) -> str:
 
 def main(args: argparse.Namespace) -> int:
     shapes = args.shape or list(DEFAULT_SHAPES)
-    figures = [measure_codec(k, m, length, args.seconds) for k, m, length in shapes]
+    link_batch = getattr(args, "link_batch", LINK_BATCH)
+    link_loss = getattr(args, "link_loss", LINK_LOSS)
+    figures = [
+        measure_codec(k, m, length, args.seconds, link_batch=link_batch, link_loss=link_loss) for k, m, length in shapes
+    ]
     sliding_shapes = getattr(args, "sliding", None) or list(DEFAULT_SLIDING_SHAPES)
     sliding_figures = [measure_sliding(w, x, length, args.seconds) for w, x, length in sliding_shapes]
     if args.json:
@@ -380,6 +506,8 @@ def main(args: argparse.Namespace) -> int:
                     "rounds": ROUNDS,
                     "decode_patterns": "fresh per block",
                     "pattern_pool": PATTERN_POOL,
+                    "link_batch": link_batch,
+                    "link_loss": link_loss,
                     "shapes": [f.as_dict() for f in figures],
                     "sliding": [f.as_dict() for f in sliding_figures],
                 },
