@@ -16,15 +16,21 @@ from fecproxy import __version__
 #: name -> (module, one-line summary shown in --help)
 COMMANDS: dict[str, tuple[str, str]] = {
     "run": ("fecproxy.commands.run", "run one daemon (sender or receiver) in the foreground from a YAML config"),
-    "check": ("fecproxy.commands.check", "validate a config file and print the effective settings"),
+    "check": (
+        "fecproxy.commands.check",
+        "validate a config file, or a sender and receiver pair, and print the effective settings",
+    ),
     "demo": ("fecproxy.commands.demo", "run a sender, a lossy link and a receiver on loopback and show what FEC saves"),
     "impair": ("fecproxy.commands.impair", "relay UDP between two addresses through an emulated lossy link"),
     "plan": ("fecproxy.commands.plan", "choose k, m and interleaving for a link from its loss and burst figures"),
     "watch": (
         "fecproxy.commands.watch",
-        "show a pair's loss, recovery, overhead and code from their metrics URLs, once a second",
+        "show a pair's loss, recovery, overhead and code from their metrics endpoints, once a second",
     ),
-    "bench": ("fecproxy.commands.bench", "measure codec and pipeline speed against a baseline run side by side"),
+    "bench": (
+        "fecproxy.commands.bench",
+        "measure codec, pipeline, flood and key costs against a baseline run side by side",
+    ),
     "keygen": ("fecproxy.commands.keygen", "write a new pre-shared link key file (mode 0600) for auth.key_file"),
     "manual": ("fecproxy.commands.manual", "print the manual page fecproxy(1), built from this command line's parser"),
     "completion": ("fecproxy.commands.completion", "print a tab-completion script for bash, zsh or tcsh"),

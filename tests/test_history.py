@@ -146,6 +146,28 @@ def test_a_slow_peer_is_not_silent_between_its_packets():
     assert history.events() == []
 
 
+def test_an_idle_application_is_not_a_silent_peer_while_its_reports_come():
+    """The applications stop sending; the peer's loss reports go on once a second: it is alive."""
+    history, clock = _history()
+    token = event_sink.set(history.record)
+    try:
+        received = reports = 0.0
+        for second in range(40):
+            clock.now += 1
+            if second < 10:
+                received += 100
+            reports += 1
+            history.sample(
+                {
+                    'fecproxy_link_packets_received_total{kind="source"}': received,
+                    "fecproxy_reports_received_total": reports,
+                }
+            )
+    finally:
+        event_sink.reset(token)
+    assert history.events() == []
+
+
 def test_status_json_hands_out_history_only_when_asked():
     from prometheus_client import CollectorRegistry, make_wsgi_app
 

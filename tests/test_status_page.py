@@ -121,6 +121,18 @@ def test_status_json_holds_exactly_what_metrics_exposes():
     assert document["refresh_s"] == status.REFRESH_S
 
 
+def test_status_json_says_where_the_daemon_sends_beside_the_metrics():
+    # A peer address must never be a metric label (Prometheus naming guide: labels with small
+    # fixed value sets only), so it travels beside the samples, read from the daemon at request time.
+    registry, _ = build_registry(_view())
+    peer = {"role": "receiver", "peer": None, "peer_from": "learned"}
+    app = status.status_app(registry, make_wsgi_app(registry), facts=lambda: dict(peer))
+    assert json.loads(_call(app, "/status.json")[2])["daemon"] == peer
+    peer["peer"] = "127.0.0.1:40001"  # learned from the first valid packet
+    assert json.loads(_call(app, "/status.json")[2])["daemon"]["peer"] == "127.0.0.1:40001"
+    assert "daemon" not in json.loads(_call(status.status_app(registry, make_wsgi_app(registry)), "/status.json")[2])
+
+
 def test_routes_page_json_and_everything_else_to_prometheus():
     registry, _ = build_registry(_view())
     app = status.status_app(registry, make_wsgi_app(registry))
@@ -293,7 +305,9 @@ READ_PAGE = """(() => {
   return {
     refreshes: Number(document.body.dataset.refreshes), cells,
     loss: pick("estimate-loss"), burst: pick("estimate-burst"), k: pick("code-k"), m: pick("code-m"),
-    role: document.getElementById("role").textContent, command: document.getElementById("plan-command").textContent,
+    role: document.getElementById("role").textContent,
+    farAddress: document.getElementById("far-address").textContent,
+    command: document.getElementById("plan-command").textContent,
     plan: plan ? [Number(plan.dataset.k), Number(plan.dataset.m)] : null,
     planText: document.getElementById("plan").textContent,
     chartLines: document.querySelectorAll("#chart-loss path").length,
@@ -345,6 +359,8 @@ def test_status_page_in_headless_chromium_shows_the_daemons_metrics(pairs, tmp_p
     assert shown["connection"] == "pill ok"
     assert shown["chartLines"] >= 1  # the loss chart drew the traffic
     assert shown["role"] == "receiver"
+    # The receiver learned its peer (the sender's link socket) from the first valid packet.
+    assert re.fullmatch(r"127\.0\.0\.1:\d+ · learned from its packets", shown["farAddress"]), shown["farAddress"]
     assert shown["k"] == [info["k"], info["k"]] and shown["m"] == [info["m"], info["m"]]
     # Every counter the page shows equals the scrape, both as data and as the text a person reads.
     by_key = {status.sample_key(name, dict(labels)): value for (name, labels), value in metrics.items()}

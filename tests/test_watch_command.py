@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import re
 import socket
 import subprocess
@@ -11,6 +12,7 @@ from http.server import BaseHTTPRequestHandler, HTTPServer
 
 import pytest
 
+from fecproxy.commands import watch
 from fecproxy.commands.watch import figures, histogram_quantile, metrics_url, parse_metrics, render
 
 #: A receiver's /metrics as fecproxy serves it (trimmed to what watch reads), invented figures.
@@ -129,11 +131,16 @@ def test_metrics_url_forms():
     assert metrics_url("http://h:1/custom") == "http://h:1/custom"
 
 
+#: What the same receiver's /status.json says beside its metrics (invented address).
+STATUS = {"daemon": {"role": "receiver", "peer": "127.0.0.1:40001", "peer_from": "learned"}}
+
+
 class _Snapshot(BaseHTTPRequestHandler):
     def do_GET(self):
-        body = SNAPSHOT.encode()
+        status = self.path.startswith("/status.json")
+        body = json.dumps(STATUS).encode() if status else SNAPSHOT.encode()
         self.send_response(200)
-        self.send_header("Content-Type", "text/plain; version=0.0.4")
+        self.send_header("Content-Type", "application/json" if status else "text/plain; version=0.0.4")
         self.send_header("Content-Length", str(len(body)))
         self.end_headers()
         self.wfile.write(body)
@@ -173,6 +180,7 @@ def test_whole_process_two_frames_with_one_endpoint_down(snapshot_server):
     assert "(since start)" in out and "(last 0." in out  # the second frame shows rates
     assert out.count("DOWN: ") == 2 and "Connection refused" in out
     assert "link loss (before recovery)       5.000 %" in out
+    assert out.count("peer address                 127.0.0.1:40001 (learned)") == 2
 
 
 def test_once_with_every_endpoint_down_exits_1():
@@ -251,3 +259,17 @@ def test_whole_process_watch_events_shows_a_running_daemons_history(pairs):
     )
     assert result.returncode == 0, result.stderr
     assert re.search(r"^    \d\d:\d\d:\d\d info    started version=", result.stdout, flags=re.MULTILINE), result.stdout
+
+
+def test_far_end_tells_reports_arriving_from_no_reports():
+    """Reports that cover too few datagrams for a ratio are not "no loss report yet"."""
+    nan = float("nan")
+    base = {
+        ("fecproxy_peer_silent", ()): 0.0,
+        ("fecproxy_peer_last_heard_seconds", ()): 0.2,
+        ("fecproxy_peer_link_loss_ratio", ()): nan,
+        ("fecproxy_peer_residual_loss_ratio", ()): nan,
+    }
+    assert watch._far_end(base).startswith("no loss report yet")
+    arriving = {**base, ("fecproxy_reports_received_total", ()): 3.0}
+    assert watch._far_end(arriving).startswith("loss reports arriving, under 200 datagrams")

@@ -28,7 +28,11 @@ log = logging.getLogger("fecproxy.run")
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.epilog = exit_status_epilog(EXIT_OK, EXIT_UNREADABLE, EXIT_INVALID, EXIT_CANNOT_START)
-    parser.add_argument("config", metavar="CONFIG.yaml", help="daemon configuration (see config/*.yaml)")
+    parser.add_argument(
+        "config",
+        metavar="CONFIG.yaml",
+        help="daemon configuration (examples: `fecproxy init`, or config/*.yaml in a checkout)",
+    )
     parser.add_argument(
         "--log-level",
         choices=["debug", "info", "warning", "error"],

@@ -24,6 +24,7 @@ from dataclasses import dataclass, field
 from prometheus_client.parser import text_string_to_metric_families
 
 from fecproxy.config.addresses import metrics_url
+from fecproxy.protocol.peer_view import MIN_SOURCE_SAMPLES
 
 #: A read slower than this counts as a failing endpoint: a healthy daemon answers in
 #: milliseconds, and two endpoints must fit roughly within a few refresh periods.
@@ -111,6 +112,7 @@ class Figures:
     estimate: tuple[float, float] | None = None
     air: str | None = None  # the link's use of its air rate (link.rate), None when not paced
     far_end: str = "—"  # what the peer reports on the direction this daemon sends, and its silence
+    peer_address: str | None = None  # where it sends (from /status.json: an address is no metric label)
     # In-order delivery (delivery.order: in_order): datagrams handed on through it, the added
     # wait's quantiles, datagrams that waited behind a gap and gaps skipped.
     ordered: float = 0.0
@@ -216,6 +218,9 @@ def _far_end(now: Samples) -> str:
         state = "not heard yet"
     if math.isfinite(before):
         return f"peer reports loss {_percent(before)} before, {_percent(after)} after recovery; {state}"
+    if _get(now, "fecproxy_reports_received_total") > 0:
+        # Reports arrive, but the ratios wait for enough datagrams to mean something.
+        return f"loss reports arriving, under {MIN_SOURCE_SAMPLES} datagrams reported so far; {state}"
     return f"no loss report yet; {state}"
 
 
@@ -280,6 +285,7 @@ def render_endpoint(url: str, view: Figures | NotADaemon | str, events: list[str
         ),
         f"  flows                        {f.flows:.0f}",
         f"  far end (what we send)       {f.far_end}",
+        f"  peer address                 {f.peer_address or '— (not learned yet, or an older daemon)'}",
         "  online estimate              "
         + (
             "— (no block received from the peer yet)"
@@ -325,6 +331,17 @@ def fetch_events(url: str, since: int, timeout: float = FETCH_TIMEOUT_S) -> tupl
     with urllib.request.urlopen(status_url(url, since), timeout=timeout) as response:
         history = json.load(response).get("history") or {}
     return list(history.get("events") or []), int(history.get("events_recorded", since))
+
+
+def peer_address(url: str, timeout: float = FETCH_TIMEOUT_S) -> str | None:
+    """Where the daemon sends its link packets and how it knows, from its /status.json; None when
+    it has no peer yet or does not say (an older daemon)."""
+    scheme, _, rest = url.partition("://")
+    with urllib.request.urlopen(f"{scheme}://{rest.split('/', 1)[0]}/status.json", timeout=timeout) as response:
+        facts = json.load(response).get("daemon") or {}
+    if not facts.get("peer"):
+        return None
+    return f"{facts['peer']} ({'learned' if facts.get('peer_from') == 'learned' else 'link.peer'})"
 
 
 def fetch(url: str, timeout: float = FETCH_TIMEOUT_S) -> Samples:
@@ -410,7 +427,12 @@ def main(args: argparse.Namespace) -> int:
                     continue
                 any_up = True
                 before = previous.get(url)
-                views.append((url, figures(samples, *((before[0], at - before[1]) if before else (None, None)))))
+                shown = figures(samples, *((before[0], at - before[1]) if before else (None, None)))
+                try:
+                    shown.peer_address = peer_address(url)
+                except Exception:  # the figures are shown anyway; the address line says it is unknown
+                    shown.peer_address = None
+                views.append((url, shown))
                 previous[url] = (samples, at)
                 if shown_events is not None:
                     shown_events[url] = _new_events(url, seen_events, kept_events[url], every_frame=clear)

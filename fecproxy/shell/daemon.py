@@ -185,7 +185,8 @@ class Daemon:
                 raise error.error from None
             if cfg.metrics.listen is not None:
                 key, address = "metrics.listen", cfg.metrics.listen
-                metrics = serve(self.registry, cfg.metrics.listen.host, cfg.metrics.listen.port, history=self.history)
+                listen, facts = cfg.metrics.listen, self.view.status_facts
+                metrics = serve(self.registry, listen.host, listen.port, history=self.history, facts=facts)
                 self.metrics_port, self.metrics_address = metrics.port, metrics.address
         except OSError as error:
             self.app.close()

@@ -76,7 +76,9 @@ PEER_SILENT_MIN_S = 5.0
 PEER_SILENT_GAPS = 10.0
 #: Samples in which the peer's packets rose before its silence is judged: its rhythm is unknown before.
 MIN_RISES = 3
-RECEIVED = "fecproxy_link_packets_received_total"
+#: What proves the peer alive: its data packets, and its loss reports, which keep coming while
+#: the applications are idle (an idle application must not read as a dead peer).
+RECEIVED = frozenset({"fecproxy_link_packets_received_total", "fecproxy_reports_received_total"})
 PEER_EVENTS = frozenset({"peer_silent", "peer_heard"})
 
 log = logging.getLogger("fecproxy.shell.daemon")
@@ -167,7 +169,7 @@ class History:
             self.series = tuple(sorted(key for key in values if _family(key) in HISTORY_FAMILIES))[:MAX_SERIES]
         row = array("d", (values.get(key, math.nan) for key in self.series))
         self._rows.append((now, row))
-        self._watch_peer(now, sum(value for key, value in values.items() if _family(key) == RECEIVED))
+        self._watch_peer(now, sum(value for key, value in values.items() if _family(key) in RECEIVED))
 
     def rows(self) -> list[list[float | None]]:
         """Every kept row as [uptime, value, ...] in the order of :attr:`series` (NaN as None)."""

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import math
 import socket
-from collections.abc import Iterable, Mapping
+from collections.abc import Callable, Iterable, Mapping
 from typing import TYPE_CHECKING, Protocol
 from weakref import WeakKeyDictionary
 
@@ -434,7 +434,14 @@ class MetricsServer(HttpServer):
             nursery.cancel_scope.cancel()
 
 
-def serve(registry: CollectorRegistry, host: str, port: int, *, history: History | None = None) -> MetricsServer:
+def serve(
+    registry: CollectorRegistry,
+    host: str,
+    port: int,
+    *,
+    history: History | None = None,
+    facts: Callable[[], dict] | None = None,
+) -> MetricsServer:
     """Bind the metrics port for the registry (/metrics at every path but the status page's).
 
     The one metrics HTTP server of the package: the daemon, the demo and the impairment relay all
@@ -444,5 +451,5 @@ def serve(registry: CollectorRegistry, host: str, port: int, *, history: History
     resolved or bound.
     """
     # `/` and `/status.json` are the status page; every other path is prometheus-client's.
-    app = status_app(registry, make_wsgi_app(registry), history=history)
+    app = status_app(registry, make_wsgi_app(registry), history=history, facts=facts)
     return MetricsServer(open_listener(host, port), app, registry, history)

@@ -250,9 +250,18 @@ def history_query(query: str) -> tuple[bool, int | None]:
     return rows, since
 
 
-def status_app(registry: CollectorRegistry, other: Callable, history: History | None = None) -> Callable:
+def status_app(
+    registry: CollectorRegistry,
+    other: Callable,
+    history: History | None = None,
+    facts: Callable[[], dict] | None = None,
+) -> Callable:
     """WSGI app: ``/`` the page, ``/status.json`` its data (with ``history``: the daemon's recent
-    samples and events on request, see :func:`history_query`), anything else ``other`` (/metrics)."""
+    samples and events on request, see :func:`history_query`), anything else ``other`` (/metrics).
+
+    ``facts``: what the daemon knows that is no metric (a peer address must never be a label),
+    e.g. the peer address it sends to and whether it was learned; under ``"daemon"`` in the JSON.
+    It is called in the event loop that serves the request, so it reads the daemon's state safely."""
     source = StatusSource(registry, background=True)
 
     def app(environ: dict, start_response: Callable) -> Iterable[bytes]:
@@ -264,6 +273,8 @@ def status_app(registry: CollectorRegistry, other: Callable, history: History | 
             return [b"GET or HEAD only\n"]
         if path == "/status.json":
             document = source.document()
+            if facts is not None:
+                document["daemon"] = facts()
             if history is not None:
                 rows, since = history_query(environ.get("QUERY_STRING", ""))
                 document["history"] = history.document(samples=rows, events_since=since)

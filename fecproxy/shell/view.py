@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from collections.abc import Callable
 
+from fecproxy.config.addresses import format_sockaddr
 from fecproxy.linkmodel.feedback import Feedback
 from fecproxy.protocol.decoder import BlockDecoder, DecoderStats
 from fecproxy.protocol.encoder import BlockEncoder, EncoderStats
@@ -52,6 +53,17 @@ class DaemonStatsView:
         self._app = app
         self._counts = counts
         self._link = link
+
+    def status_facts(self) -> dict[str, str | None]:
+        """What /status.json says beside the metrics (a peer address is never a metric label):
+        where this side sends its link packets, and whether that address was configured
+        (``link.peer``) or learned from the peer's packets."""
+        peer = self._decoder.peer
+        return {
+            "role": self.role,
+            "peer": format_sockaddr(peer) if peer else None,
+            "peer_from": "learned" if self._decoder.learn_peer else "link.peer",
+        }
 
     def link_figures(self) -> LinkFigures | None:
         """The link output's air budget and queue; None for a view without one."""

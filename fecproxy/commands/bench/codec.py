@@ -56,9 +56,9 @@ DECODE_BATCH = 8
 LINK_LOSS = 0.05
 #: Damaged blocks per ``recover_many`` call in the link figure: the blocks a receiver found
 #: decodable per socket read, counted in the daemon's decoder (``BlockDecoder.rebuilds``) with
-#: ``bench pipeline``'s processes at 50 000 datagrams/s over a 5 % link, k=16, m=4 (README,
-#: "Benchmarks": 4.9-7.4 per call on the shared 2-core box; 6 is the middle).
-LINK_BATCH = 6
+#: ``bench pipeline``'s processes offering 50 000 datagrams/s over a 5 % link, k=16, m=4: 3.4–7.4
+#: per call in three runs on the shared 2-core box (README, "Benchmarks"); 4 is near the lower end.
+LINK_BATCH = 4
 
 
 @dataclass(frozen=True)

@@ -293,6 +293,14 @@
     el.dataset.value = value === null || value === undefined ? "" : String(value);
     el.className = tone || "";
   }
+  // Where this daemon sends its link packets: configured (link.peer) or learned from the peer's
+  // packets; a change shows here at the next poll and as a peer_changed event below.
+  function drawPeerAddress(daemon) {
+    if (!daemon) return;
+    const from = daemon.peer_from === "learned" ? "learned from its packets" : "configured (link.peer)";
+    put("far-address", daemon.peer ? `${daemon.peer} · ${from}` : "not learned yet (nothing valid from the peer)",
+      daemon.peer || "", daemon.peer ? "" : "muted");
+  }
   function drawFarEnd() {
     const last = reads.length - 1;
     if (last < 0) return;
@@ -427,6 +435,7 @@
       drawTotals(read.s);
       drawEstimate(doc);
       drawFarEnd();
+      drawPeerAddress(doc.daemon);
       drawEvents();
       connection("ok", "live · " + new Date().toLocaleTimeString("en-GB"));
       document.body.dataset.refreshes = String(Number(document.body.dataset.refreshes) + 1);

@@ -1,7 +1,8 @@
 """``fecproxy plan``: choose k, m and interleave depth for a link, or evaluate one code on it.
 
-The arithmetic lives in :mod:`fecproxy.planner`; this module reads the options (or a running
-receiver's metrics page), prints a table or JSON, and turns bad input into one-line errors.
+The arithmetic lives in :mod:`fecproxy.linkmodel.planner`; this module reads the options, prints a
+table (:mod:`.report`) or JSON, and turns bad input into one-line errors; a running receiver's
+metrics page is read by :mod:`.metrics_page`.
 """
 
 from __future__ import annotations
@@ -9,12 +10,8 @@ from __future__ import annotations
 import argparse
 import json
 import math
-import re
 import sys
-import urllib.error
-import urllib.request
 
-from fecproxy.config.addresses import metrics_url
 from fecproxy.linkmodel import sliding_sim
 from fecproxy.linkmodel.airtime import DEFAULT_QUEUE_MS, BudgetError, LinkBudget, parse_rate
 from fecproxy.linkmodel.loss_models import (
@@ -31,30 +28,27 @@ from fecproxy.linkmodel.planner import (
     DEFAULT_SHORT_BLOCK_RULE,
     DEFAULT_TARGET,
     SENDER_MAX_INTERLEAVE,
-    Candidate,
-    Plan,
     PlanError,
     PlanRequest,
     block_span,
     effective_code,
-    effective_k,
     evaluate,
     parse_int_list,
     plan,
 )
 from fecproxy.protocol.repair_rule import SHORT_BLOCK_RULES
 
-#: Gauges the receiver exports from its online estimate (transition counting over the source
-#: datagrams it saw or missed); ``--from-metrics`` reads these two.
-LINK_LOSS_GAUGE = "fecproxy_link_loss_ratio"
-LINK_BURST_GAUGE = "fecproxy_link_mean_burst_packets"
-#: The gauges that tell the code arriving on the measured link (the peer's k and m as decoded).
-RECEIVED_K_GAUGE = "fecproxy_received_code_source_symbols"
-RECEIVED_M_GAUGE = "fecproxy_received_code_repair_symbols"
-#: A metrics page is a few kB; 1 MiB is far above any real page and bounds what we read.
-MAX_METRICS_PAGE_BYTES = 1 << 20
-#: Seconds to wait for the metrics page: a receiver on the same LAN answers in milliseconds.
-DEFAULT_METRICS_TIMEOUT = 5.0
+from .metrics_page import (
+    DEFAULT_METRICS_TIMEOUT,
+    LINK_BURST_GAUGE,
+    LINK_LOSS_GAUGE,
+    MetricsError,
+    link_from_metrics,
+    parse_prometheus_text,
+    read_metrics,
+)
+from .report import _channel_dict, _order_wait_line, format_table
+
 #: Defaults for a small interactive or telemetry flow (the planner's, shared with the daemon's
 #: status page); users with other needs say so on the command line.
 DEFAULT_LATENCY_MS = DEFAULT_LATENCY_BUDGET_S * 1000.0
@@ -80,10 +74,6 @@ EPILOG = (
     "Exit status: 0 with a recommendation (or in evaluation mode), 1 when no candidate meets the "
     "target within the budgets, 2 on bad input."
 )
-
-
-class MetricsError(PlanError):
-    """The metrics page could not be fetched or did not hold the link gauges."""
 
 
 #: Options without a default: absent from the namespace until given (argparse.SUPPRESS keeps
@@ -325,118 +315,6 @@ def _compare_sliding(args: argparse.Namespace, channel: GilbertElliott) -> int:
     return 0
 
 
-# -- link from options or metrics ---------------------------------------------------------------------
-
-_SAMPLE = re.compile(
-    r"""^(?P<name>[A-Za-z_:][A-Za-z0-9_:]*)
-        (?:\{(?P<labels>(?:[^"}]|"(?:[^"\\]|\\.)*")*)\})?
-        \s+(?P<value>\S+)""",
-    re.VERBOSE,
-)
-_LABEL = re.compile(r'\s*([A-Za-z_][A-Za-z0-9_]*)\s*=\s*"((?:[^"\\]|\\.)*)"\s*,?')
-
-
-def parse_prometheus_text(page: str) -> list[tuple[str, dict[str, str], float]]:
-    """(name, labels, value) for each sample line of a Prometheus text exposition page.
-
-    Lines that do not parse are skipped: the page is someone else's, and we want two gauges from it.
-    """
-    samples = []
-    for line in page.splitlines():
-        line = line.strip()
-        if not line or line.startswith("#"):
-            continue
-        match = _SAMPLE.match(line)
-        if not match:
-            continue
-        labels = dict(_LABEL.findall(match.group("labels") or ""))
-        try:
-            value = float(match.group("value"))
-        except ValueError:
-            continue
-        samples.append((match.group("name"), labels, value))
-    return samples
-
-
-def _pick(samples, name: str, select: dict[str, str]) -> float:
-    found = [
-        (labels, value)
-        for n, labels, value in samples
-        if n == name and all(labels.get(k) == v for k, v in select.items())
-    ]
-    if not found:
-        raise MetricsError(
-            f"the metrics page has no {name}"
-            + (f" with {select}" if select else "")
-            + "; is this the metrics page of a fecproxy daemon that receives from the link?"
-        )
-    if len(found) > 1:
-        sets = "; ".join(",".join(f"{k}={v}" for k, v in sorted(labels.items())) or "(none)" for labels, _ in found)
-        raise MetricsError(
-            f"{len(found)} samples of {name} (labels: {sets}); choose one with --metrics-select LABEL=VALUE"
-        )
-    return found[0][1]
-
-
-def running_code(samples, select: dict[str, str]) -> dict[str, int] | None:
-    """The code arriving on the measured link: the peer's k and m as this daemon decodes them
-    (``fecproxy_received_code_source_symbols``/``_repair_symbols``); None while unknown or absent.
-
-    The page's ``fecproxy_info`` labels are not used: they are the code this daemon *sends* with,
-    on the other direction, while the link estimate describes the direction it receives."""
-    figures = {}
-    for key, name in (("k", RECEIVED_K_GAUGE), ("m", RECEIVED_M_GAUGE)):
-        found = [
-            v
-            for n, labels, v in samples
-            if n == name and all(labels.get(a) == b for a, b in select.items() if a in labels)
-        ]
-        if len(found) != 1 or not math.isfinite(found[0]):
-            return None
-        figures[key] = int(found[0])
-    return figures
-
-
-def link_from_metrics(url: str, select: list[str], timeout: float = DEFAULT_METRICS_TIMEOUT) -> tuple[float, float]:
-    """(average loss, mean burst) as a running receiver estimates them."""
-    loss, burst, _ = read_metrics(url, select, timeout)
-    return loss, burst
-
-
-def read_metrics(
-    url: str, select: list[str], timeout: float = DEFAULT_METRICS_TIMEOUT
-) -> tuple[float, float, dict | None]:
-    """(average loss, mean burst, running code or None) from a running receiver's page."""
-    wanted: dict[str, str] = {}
-    for item in select:
-        key, sep, value = item.partition("=")
-        if not sep or not key:
-            raise MetricsError(f"--metrics-select wants LABEL=VALUE, got {item!r}")
-        wanted[key.strip()] = value.strip()
-    url = metrics_url(url)  # host:port as `fecproxy watch` takes it, or a URL
-    if not url.startswith(("http://", "https://")):
-        raise MetricsError(f"--from-metrics wants host:port or an http:// or https:// URL, got {url!r}")
-    try:
-        with urllib.request.urlopen(url, timeout=timeout) as response:
-            body = response.read(MAX_METRICS_PAGE_BYTES + 1)
-    except (urllib.error.URLError, OSError, ValueError) as exc:
-        raise MetricsError(f"cannot fetch {url}: {exc}") from None
-    if len(body) > MAX_METRICS_PAGE_BYTES:
-        raise MetricsError(f"{url} sent more than {MAX_METRICS_PAGE_BYTES} bytes; that is not a metrics page")
-    samples = parse_prometheus_text(body.decode("utf-8", errors="replace"))
-    loss = _pick(samples, LINK_LOSS_GAUGE, wanted)
-    burst = _pick(samples, LINK_BURST_GAUGE, wanted)
-    if not math.isfinite(loss):
-        raise MetricsError(
-            f"no traffic measured yet at {url}: the receiver has no link estimate until blocks arrive; "
-            "run traffic through the pair and try again"
-        )
-    if not math.isfinite(burst):
-        # Loss measured but no burst yet: only possible with nothing lost, where any burst fits.
-        burst = 1.0
-    return loss, burst, running_code(samples, wanted)
-
-
 def channel_from_args(args: argparse.Namespace) -> GilbertElliott:
     four = dict(p=args.ge_p, r=args.ge_r, loss_good=args.ge_loss_good, loss_bad=args.ge_loss_bad)
     if args.from_metrics:
@@ -471,158 +349,6 @@ def budget_from_args(args: argparse.Namespace) -> LinkBudget | None:
         )
     except BudgetError as exc:
         raise PlanError(str(exc)) from None
-
-
-def _budget_lines(budget: LinkBudget, rate: float) -> list[str]:
-    line = (
-        f"air rate {budget.rate_bps:g} bit/s (IP/UDP headers counted): source takes {budget.source_use(rate):.1%} "
-        f"at {rate:g} datagrams/s of {budget.datagram_bytes:g} bytes; pacer queue {budget.queue_ms:g} ms"
-    )
-    lines = [line]
-    if budget.burst_datagrams is not None:
-        lines.append(
-            f"burst: {budget.burst_datagrams} datagrams back to back; burst_ms = queueing delay of its last datagram "
-            "in the pacer on an otherwise idle link"
-        )
-    return lines
-
-
-# -- output --------------------------------------------------------------------------------------------
-
-
-def _channel_dict(channel: GilbertElliott) -> dict:
-    return {
-        "p": channel.p,
-        "r": channel.r,
-        "loss_good": channel.loss_good,
-        "loss_bad": channel.loss_bad,
-        "average_loss": channel.average_loss,
-        "mean_burst": channel.mean_burst,
-    }
-
-
-def _verdict(c: Candidate) -> str:
-    if c.acceptable:
-        return "ok"
-    checks = (
-        ("residual", c.meets_target),
-        ("latency", c.within_latency),
-        ("overhead", c.within_overhead),
-        ("bytes", c.within_byte_overhead),
-        ("air", c.within_air),
-        ("queue", c.within_queue),
-    )
-    misses = [name for name, ok in checks if not ok]
-    return "misses " + ",".join(misses)
-
-
-def format_table(result: Plan, running: dict | None = None) -> str:
-    """The plan as a table.  Columns k' and m' (the block the sender really sends at this rate)
-    appear only when some row's blocks are closed short by the flush timer."""
-    req = result.request
-    short = any(c.short for c in result.candidates)
-    lines = [
-        f"link: {req.channel.describe()}",
-        f"rate {req.rate:g} datagrams/s, latency budget {req.latency_budget * 1000:g} ms, "
-        f"flush {req.flush_time * 1000:g} ms, max overhead {req.max_overhead:g}, target residual loss {req.target:g}",
-        "",
-    ]
-    if req.bytes_modelled:
-        budget = "" if req.max_byte_overhead is None else f", max byte overhead {req.max_byte_overhead:g}"
-        lines.insert(
-            2,
-            f"datagrams: mean {req.mean_bytes:g} bytes, longest {req.max_bytes} (repair symbols are that long){budget}",
-        )
-    if req.budget is not None:
-        lines[2:2] = _budget_lines(req.budget, req.rate)
-    effective_head = " " + "k'".rjust(4) + " " + "m'".rjust(4) if short else ""
-    bytes_head = f" {'bytes_ovh':>9}" if req.bytes_modelled else ""
-    if req.budget is not None:
-        bytes_head += f" {'air':>6}" + (f" {'burst_ms':>8}" if req.budget.burst_datagrams is not None else "")
-    lines.append(
-        f"{'':1} {'k':>4} {'m':>4}{effective_head} {'D':>3} {'overhead':>8}{bytes_head} {'block_fail':>10} "
-        f"{'residual':>10} "
-        f"{'span_ms':>8}  verdict"
-    )
-    for c in result.candidates:
-        mark = "*" if c is result.recommended else " "
-        effective = f" {c.k_effective:>4} {c.m_effective:>4}" if short else ""
-        byte_cell = f" {c.byte_overhead:>9.3f}" if req.bytes_modelled else ""
-        if req.budget is not None and c.source_air is not None and c.repair_air is not None:
-            byte_cell += f" {c.source_air + c.repair_air:>6.1%}"
-            if c.burst_delay is not None:
-                byte_cell += f" {c.burst_delay * 1000:>8.0f}"
-        lines.append(
-            f"{mark} {c.k:>4} {c.m:>4}{effective} {c.depth:>3} {c.overhead:>8.3f}{byte_cell} {c.block_failure:>10.3g} "
-            f"{c.residual_loss:>10.3g} {c.span * 1000:>8.1f}  {_verdict(c)}"
-        )
-    lines.append("")
-    best = result.recommended
-    if best is not None:
-        sent = f" (blocks close short at this rate: k'={best.k_effective} m'={best.m_effective})" if best.short else ""
-        lines.append(
-            f"recommended (*): k={best.k} m={best.m} interleave D={best.depth}{sent} — overhead {best.overhead:.3f}, "
-            f"residual loss {best.residual_loss:.3g}, block span {best.span * 1000:.1f} ms"
-        )
-        lines.append(_order_wait_line(req.channel, best.k_effective, req.rate, best.span, best.depth))
-        keys = ", ".join(f"{key}: {value}" for key, value in best.config_keys().items())
-        lines.append(f"sender config: {keys}, fec.flush_ms: {req.flush_time * 1000:g}")
-        # The same aim, for a sender that follows the link itself (fec.adapt, from loss reports).
-        lines.append(
-            "or let the sender choose m from its loss reports: "
-            f"fec.block_size: {best.k}, fec.interleave: {best.depth}, fec.flush_ms: {req.flush_time * 1000:g}, "
-            f"fec.adapt: {{target_residual: {req.target:g}, max_overhead: {req.max_overhead:g}}}"
-        )
-    else:
-        lowest = min(result.candidates, key=lambda c: c.residual_loss)
-        lines.append(
-            f"no candidate meets residual loss {req.target:g} within the budgets; the lowest is "
-            f"{lowest.residual_loss:.3g} at k={lowest.k} m={lowest.m} D={lowest.depth} — "
-            + (
-                "the air rate leaves no room for more repair: lower the traffic or raise link.rate"
-                if req.budget is not None and not any(c.within_air and c.within_queue for c in result.candidates)
-                else "allow more overhead"
-                + ("" if req.allow_repair_above_source else " (above 1 with --allow-repair-above-source)")
-                + ", latency or interleaving"
-            )
-        )
-    if running:
-        lines.append(
-            f"arriving now (the peer's code as the metrics page's daemon decodes it): k={running['k']} m={running['m']}"
-            " (interleave depth is not on the wire)"
-        )
-    lines.append(
-        "(each row: the fewest repair packets meeting the target for that k and D, "
-        "else the most the overhead budget allows)"
-    )
-    caps = {d: effective_k(max(req.k_values), req.rate, req.flush_time, d) for d in req.depths}
-    capped = {d: cap for d, cap in caps.items() if any(k > cap for k in req.k_values)}
-    if req.budget is not None and req.budget.burst_datagrams is not None:
-        capped = {}  # a burst fills its blocks whatever the average rate
-    if capped:
-        at = ", ".join(f"{cap} at D={d}" for d, cap in capped.items())
-        lines.append(
-            f"(at {req.rate:g} datagrams/s a block the {req.flush_time * 1000:g} ms flush timer closes "
-            f"holds at most {at}: larger k send the same blocks, so a row repeating another's (k', m') "
-            "is listed once)"
-        )
-    if short:
-        lines.append(
-            "(k', m': the block the sender really sends at this rate — closed by the "
-            f"{req.flush_time * 1000:g} ms flush timer, repair by the {req.short_block_repair} short-block rule; "
-            "the figures are those of (k', m'))"
-        )
-    return "\n".join(lines)
-
-
-def _order_wait_line(channel: GilbertElliott, k_effective: int, rate: float, span: float, depth: int) -> str:
-    """What delivery.order: in_order would add on the receiving side (fecproxy.linkmodel.order_wait)."""
-    wait = in_order_wait(channel, k_effective, rate, span, depth)
-    return (
-        f"in-order delivery (delivery.order: in_order) adds: {wait.waiting_share:.1%} of datagrams wait behind a gap, "
-        f"mean {wait.mean_seconds * 1000:.2f} ms, at most {wait.worst_seconds * 1000:.1f} ms while the gap is rebuilt "
-        f"(set delivery.max_wait_ms above that plus the delay spread of the link)"
-    )
 
 
 def _evaluate_one(args: argparse.Namespace, channel: GilbertElliott, depths: tuple[int, ...]) -> int:
@@ -766,4 +492,12 @@ def main(args: argparse.Namespace) -> int:
     return 0 if result.recommended is not None else 1
 
 
-__all__ = ["add_arguments", "main", "link_from_metrics", "parse_prometheus_text", "LINK_LOSS_GAUGE", "LINK_BURST_GAUGE"]
+__all__ = [
+    "add_arguments",
+    "main",
+    "link_from_metrics",
+    "parse_prometheus_text",
+    "MetricsError",
+    "LINK_LOSS_GAUGE",
+    "LINK_BURST_GAUGE",
+]
