@@ -89,6 +89,9 @@ def test_a_report_tells_the_decoder_counts_under_the_reported_session():
         for event in events:
             if isinstance(event, BlockReport):
                 fb.on_block(event)
+    for event in fb.decoder.on_timer(0.3 + 2 * fb.decoder.settings.hold_time):  # the loss settles
+        if isinstance(event, BlockReport):
+            fb.on_block(event)
     [packet] = reports_due(fb.on_timer(0.5))
     header = COMMON_HEADER.unpack_from(packet)
     assert header[2] == fb.encoder.session  # a packet of ours, like all we send

@@ -56,6 +56,7 @@ from collections.abc import Iterable
 
 from fecproxy.protocol import auth, wire
 from fecproxy.protocol.events import (
+    JOINED_AFTER_BLOCKS,
     BlockOutcome,
     ControlReceived,
     Dropped,
@@ -360,7 +361,7 @@ class BlockDecoder(SessionTable):
             self._followed, self.session = sess, sess.id
             self.received_code.reset()
             self._code_told = None
-            events.append(SessionStarted(sess.id, previous))
+            events.append(SessionStarted(sess.id, previous, getattr(pkt, "sbn", 0) >= JOINED_AFTER_BLOCKS))
         if isinstance(pkt, (wire.SourcePacket, wire.SlidingSourcePacket)):
             self.stats.source_received += 1
         else:
@@ -410,9 +411,7 @@ class BlockDecoder(SessionTable):
         hold = self.settings.hold_time
         deadlines = [next(iter(s.open.values())).first_seen + hold for s in self._sessions.values() if s.open]
         deadlines += [s.last_seen + hold for s in self._sessions.values() if s is not self._followed and not s.open]
-        sliding = self.sliding.next_deadline()
-        if sliding is not None:
-            deadlines.append(sliding)
+        deadlines += [t for t in (self.sliding.next_deadline(), self.ledger.next_due()) if t is not None]
         return min(deadlines) if deadlines else None
 
     def on_timer(self, now: float) -> list[Event]:
@@ -425,22 +424,20 @@ class BlockDecoder(SessionTable):
                 block = next(iter(sess.open.values()))
                 if block.first_seen + hold > now:
                     break
-                events.append(self._finish(block, BlockOutcome.EXPIRED))
+                self._finish_into(block, BlockOutcome.EXPIRED, events)
             if sess is not self._followed and not sess.open and now - sess.last_seen >= hold:
                 self._end_session(sess, events)
-        events += self.sliding.on_timer(now)
-        return events
+        return events + self._settle_losses(now) + self.sliding.on_timer(now)
 
     def close(self) -> list[Event]:
         """Shutdown: report every open block as it stands, as expired.
 
         The decoder stays usable; later packets open new blocks.
         """
-        return [
-            self._finish(block, BlockOutcome.EXPIRED)
-            for sess in list(self._sessions.values())
-            for block in list(sess.open.values())
-        ] + self.sliding.close()
+        events: list[Event] = []
+        for block in [block for sess in list(self._sessions.values()) for block in list(sess.open.values())]:
+            self._finish_into(block, BlockOutcome.EXPIRED, events)
+        return events + self._settle_losses(None) + self.sliding.close()
 
     # ------------------------------------------------------------------ internals
     def _learn_previous_k(self, sess: Session, sbn: int, k: int, now: float, events: list[Event]) -> None:
@@ -545,7 +542,7 @@ class BlockDecoder(SessionTable):
             return
         have = len(block.sources)
         if have >= k:
-            events.append(self._finish(block, BlockOutcome.COMPLETE))
+            self._finish_into(block, BlockOutcome.COMPLETE, events)
         elif have + len(block.repairs) >= k:
             if not self._may_rebuild(now):
                 if not block.deferred:
@@ -558,14 +555,14 @@ class BlockDecoder(SessionTable):
                 return
             if not self._batching:
                 events += rebuild_one(block, now, self.stats, self._drop)
-                events.append(self._finish(block, BlockOutcome.RECOVERED))
+                self._finish_into(block, BlockOutcome.RECOVERED, events)
                 return
             # In a batch the block finishes now (its late packets are judged as any finished
             # block's) and its arithmetic waits for the batch's one recover_many per shape.
             block.rebuilt = k - have  # all of them, unless the flush finds one inconsistent
-            report = self._finish(block, BlockOutcome.RECOVERED)
-            self.rebuilds.add(block, now, report)
-            events.append(report)
+            report, deferred = self._close_block(block, BlockOutcome.RECOVERED)
+            self.rebuilds.add(block, now, report, deferred)
+            events.append(report)  # where its deliveries go; a deferred report goes with them
 
     def _may_rebuild(self, now: float) -> bool:
         """Token bucket of ``max_rebuilds_per_s``, one second deep; takes a token if it can."""

@@ -20,8 +20,9 @@ from fecproxy.protocol import wire
 from fecproxy.protocol.events import BlockReport, Delivery, DropReason, Event
 from fecproxy.protocol.session_table import Block, DecoderStats
 
-#: (block, the time it became decodable, its received symbols {ESI: symbol}, its report)
-Pending = tuple[Block, float, dict[int, bytes], BlockReport]
+#: (block, the time it became decodable, its received symbols {ESI: symbol}, its report, and
+#: whether the report waits in the loss ledger: then only the deliveries take its place)
+Pending = tuple[Block, float, dict[int, bytes], BlockReport, bool]
 #: The decoder's drop maker: (reason, detail) -> a counted Dropped event.
 DropMaker = Callable[[DropReason, str], Event]
 
@@ -91,10 +92,10 @@ class RebuildQueue:
     def __bool__(self) -> bool:
         return bool(self._pending)
 
-    def add(self, block: Block, now: float, report: BlockReport) -> None:
+    def add(self, block: Block, now: float, report: BlockReport, deferred: bool = False) -> None:
         """``block`` is decodable and finished as recovered with ``report`` (its ``recovered``
         count assumed to be every missing datagram); its symbols are taken now."""
-        self._pending[id(report)] = (block, now, received_symbols(block), report)
+        self._pending[id(report)] = (block, now, received_symbols(block), report, deferred)
 
     def flush(self, events: list[Event], drop: DropMaker) -> list[Event]:
         """Rebuild every pending block, one ``recover_many`` per shape, and return ``events``
@@ -114,7 +115,7 @@ class RebuildQueue:
                 results = code.recover_many([entry[2] for entry in group])
             self.calls += 1
             self.blocks += len(group)
-            for (block, now, _received, original), rebuilt in zip(group, results, strict=True):
+            for (block, now, _received, original, deferred), rebuilt in zip(group, results, strict=True):
                 report = original
                 expected = block.rebuilt
                 block.rebuilt = 0
@@ -125,7 +126,8 @@ class RebuildQueue:
                     report = dataclasses.replace(
                         report, recovered=block.rebuilt, unrecovered=report.unrecovered + short
                     )
-                out.append(report)
+                if not deferred:
+                    out.append(report)
                 replaced[id(original)] = out
         result: list[Event] = []
         for event in events:

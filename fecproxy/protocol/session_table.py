@@ -14,6 +14,7 @@ from dataclasses import dataclass, field
 from fecproxy.protocol import auth, wire
 from fecproxy.protocol.events import BlockOutcome, BlockReport, Dropped, DropReason, Event, direct_delivery
 from fecproxy.protocol.freshness import FreshnessGate
+from fecproxy.protocol.loss_ledger import REORDER_TOLERANCE, LossLedger, gap_lost
 from fecproxy.protocol.replay import ReplayWindow
 
 #: How long an incomplete block waits for more packets.  Must exceed the sender's flush interval
@@ -53,6 +54,10 @@ MAX_SESSIONS = 4
 SESSION_CONFIRM_PACKETS = 8
 #: Replay windows of ended sessions kept (keyed mode): ~8 KiB each at the default window.
 RETIRED_WINDOWS = 16
+#: The longest run of skipped block numbers counted as an outage: 16 384 blocks of 16 is over four
+#: minutes at 1 000 datagrams/s.  A jump further than that (a damaged or forged block number, with
+#: no key) is not counted as loss.  Our own bound.
+MAX_GAP_BLOCKS = 16384
 
 
 @dataclass(frozen=True)
@@ -93,7 +98,19 @@ class DecoderStats:
 class Session:
     """One sender session's block state."""
 
-    __slots__ = ("id", "open", "finished", "highest", "newest", "first_sbn", "last_seen", "packets", "window", "bytes")
+    __slots__ = (
+        "id",
+        "open",
+        "finished",
+        "highest",
+        "newest",
+        "first_sbn",
+        "last_seen",
+        "packets",
+        "window",
+        "bytes",
+        "last_k",
+    )
 
     def __init__(self, session: int, now: float, window: ReplayWindow | None):
         self.id = session
@@ -106,6 +123,7 @@ class Session:
         self.packets = 0  # valid packets so far
         self.window = window  # keyed mode: its replay window
         self.bytes = 0  # held in its open blocks
+        self.last_k: int | None = None  # the size of its latest block whose size is known
 
 
 class Block:
@@ -155,6 +173,7 @@ class SessionTable:
         self._sessions: dict[int, Session] = {}
         self._retired_windows: OrderedDict[int, ReplayWindow] = OrderedDict()
         self.freshness = FreshnessGate()  # keyed: peer sessions proven live (protocol.freshness)
+        self.ledger = LossLedger()  # losses final only after reordering had its time
         self._open_count = 0  # open blocks, all sessions
         self._bytes = 0  # bytes held, all sessions
 
@@ -197,6 +216,7 @@ class SessionTable:
         lost.  That also undoes the harm of a damaged or forged packet that opened a block ahead
         of the real one and expired before the real packets came."""
         delivered = sess.finished.get(sbn)
+        self.ledger.late_source(sess.id, sbn, esi)  # it came after all: late, not lost
         if delivered is not None and esi <= wire.MAX_ESI and not delivered >> esi & 1:
             sess.finished[sbn] = delivered | 1 << esi
             self.stats.delivered += 1
@@ -235,7 +255,7 @@ class SessionTable:
     def _end_session(self, sess: Session, events: list[Event]) -> None:
         """Forget a session: its open blocks are reported as superseded; its window is kept."""
         for block in list(sess.open.values()):
-            events.append(self._finish(block, BlockOutcome.SUPERSEDED))
+            self._finish_into(block, BlockOutcome.SUPERSEDED, events)
         del self._sessions[sess.id]
         self._session_ended(sess.id, events)
         if sess.window is not None:
@@ -266,8 +286,15 @@ class SessionTable:
             if 0 < behind < wire.SBN_MODULUS // 2 and behind > self._window():
                 return None
         newest = sess.newest
-        if newest is None or 0 < (sbn - newest) % wire.SBN_MODULUS < wire.SBN_MODULUS // 2:
+        ahead = (sbn - newest) % wire.SBN_MODULUS if newest is not None else 1
+        if 0 < ahead < wire.SBN_MODULUS // 2:
             sess.newest = sbn
+            if 1 < ahead <= MAX_GAP_BLOCKS and newest is not None and sess.last_k:
+                # Blocks newest+1 .. sbn−1 never showed a packet (an outage, or still to come).
+                due = now + REORDER_TOLERANCE * self.settings.hold_time
+                self.ledger.note_gap(sess.id, (newest + 1) % wire.SBN_MODULUS, ahead - 1, sess.last_k, due)
+        else:
+            self.ledger.claim(sess.id, sbn, wire.SBN_MODULUS)
         while self._open_count >= self.settings.max_open_blocks:
             if not self._evict_one(keep, events):
                 return None
@@ -292,7 +319,7 @@ class SessionTable:
         for sess in sorted(self._sessions.values(), key=lambda s: s.bytes, reverse=True):
             for block in sess.open.values():
                 if block is not keep:
-                    events.append(self._finish(block, BlockOutcome.EVICTED))
+                    self._finish_into(block, BlockOutcome.EVICTED, events)
                     return True
         return False
 
@@ -314,7 +341,44 @@ class SessionTable:
         self.stats.dropped[reason] = self.stats.dropped.get(reason, 0) + 1
         return Dropped(reason, detail, error, notice)
 
-    def _finish(self, block: Block, outcome: BlockOutcome) -> BlockReport:
+    def _settle_losses(self, now: float | None) -> list[Event]:
+        """Count the losses that became final (protocol.loss_ledger); None: all (shutdown)."""
+        blocks, gaps = self.ledger.settle(now)
+        events: list[Event] = []
+        stats = self.stats
+        for pending in blocks:
+            report = pending.report
+            stats.lost += pending.lost
+            stats.unrecovered += pending.unrecovered
+            events.append(
+                BlockReport(
+                    report.sbn,
+                    report.k,
+                    report.outcome,
+                    pending.lost,
+                    pending.recovered,
+                    pending.unrecovered,
+                    pending.arrived,
+                    report.span,
+                )
+            )
+        for gap in gaps:
+            lost = gap_lost(gap)
+            stats.lost += lost
+            stats.unrecovered += lost
+        return events
+
+    def _finish_into(self, block: Block, outcome: BlockOutcome, events: list[Event]) -> None:
+        report = self._finish(block, outcome)
+        if report is not None:
+            events.append(report)
+
+    def _finish(self, block: Block, outcome: BlockOutcome) -> BlockReport | None:
+        """Finish ``block``: its report, or None while its loss is not final (loss_ledger)."""
+        report, deferred = self._close_block(block, outcome)
+        return None if deferred else report
+
+    def _close_block(self, block: Block, outcome: BlockOutcome) -> tuple[BlockReport, bool]:
         sess = block.owner
         del sess.open[block.sbn]
         self._open_count -= 1
@@ -334,11 +398,22 @@ class SessionTable:
             if highest is None or 0 < (block.sbn - highest) % wire.SBN_MODULUS < wire.SBN_MODULUS // 2:
                 sess.highest = block.sbn
         span = block.k if block.k is not None else block.max_esi + 1
+        if block.k is not None:
+            sess.last_k = block.k
         arrived = block.arrived.bit_count()
         lost = span - arrived
         unrecovered = lost - block.rebuilt
         stats = self.stats
+        stats.blocks[outcome] = stats.blocks.get(outcome, 0) + 1
+        report = BlockReport(block.sbn, block.k, outcome, lost, block.rebuilt, unrecovered, block.arrived, span)
+        if lost and outcome is not BlockOutcome.SUPERSEDED:
+            # Not final yet: its missing packets may still come (protocol.loss_ledger).
+            delivered = (1 << span) - 1 if outcome is BlockOutcome.RECOVERED else block.arrived
+            due = block.first_seen + REORDER_TOLERANCE * self.settings.hold_time
+            for early in self.ledger.defer(sess.id, report, delivered, due):
+                stats.lost += early.lost
+                stats.unrecovered += early.unrecovered
+            return report, True
         stats.lost += lost
         stats.unrecovered += unrecovered
-        stats.blocks[outcome] = stats.blocks.get(outcome, 0) + 1
-        return BlockReport(block.sbn, block.k, outcome, lost, block.rebuilt, unrecovered, block.arrived, span)
+        return report, False
