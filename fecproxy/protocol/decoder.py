@@ -265,10 +265,10 @@ class BlockDecoder(SessionTable):
                     followed.packets += 1
                     self.stats.repair_received += 1
                     events = []
-                    self._repair_for_finished(followed, sbn, now, events)
                     settled = self.received_code.note(sbn, k, payload_id & wire.ESI_MASK)
                     if settled is not None:
                         self._code_settled(settled, events)
+                    self._repair_for_finished(followed, sbn, now, events)  # as the general path: after
                     if self.learn_peer and addr != self.peer:
                         self._peer_seen(addr, events)
                     return events
