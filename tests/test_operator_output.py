@@ -53,11 +53,24 @@ def test_every_family_a_daemon_pair_exposes_is_in_the_readme_table(pairs):
     client = pair.client(1)
     send_paced(client.send, 192, rate=4000.0)  # 16 datagrams in 4 ms: full blocks, not flushed short
     drain(pair, 192)
+    exposed: set[str] = set()
     for daemon in (pair.sender, pair.receiver):
         families, page = _families(f"http://{LOOPBACK}:{daemon.metrics_port}/metrics")
         assert "fecproxy_info" in families and "fecproxy_recovery_delay_seconds" in families
         assert not _undocumented(families), f"add to README's metrics table: {sorted(_undocumented(families))}"
         assert "_created" not in page
+        exposed |= families
+    # ... and back: a name the table lists is one a daemon serves (a renamed metric leaves no ghost).
+    # impair's are checked with the relay below; fecproxy_sliding_* only with fec.code: sliding.
+    stale = {
+        name
+        for name in _metrics_table_names()
+        if name.startswith("fecproxy_")
+        and not name.startswith(("fecproxy_impair_", "fecproxy_sliding_"))
+        and name not in exposed
+        and name.removesuffix("_total") not in exposed
+    }
+    assert not stale, f"README's metrics table lists what no daemon serves: {sorted(stale)}"
     # The receiver decodes the sender's code (k=16, m=4), seen in its repair packets ...
     assert pair.receiver.metric("fecproxy_received_code_source_symbols") == 16
     assert pair.receiver.metric("fecproxy_received_code_repair_symbols") == 4
@@ -121,6 +134,9 @@ def test_every_family_the_impairment_relay_exposes_is_in_the_readme_table():
         families, page = _families(url)
         assert families and all(name.startswith(("fecproxy_impair_", "process_", "python_")) for name in families)
         assert not _undocumented(families), f"add to README's metrics table: {sorted(_undocumented(families))}"
+        listed = {name for name in _metrics_table_names() if name.startswith("fecproxy_impair_")}
+        stale = {name for name in listed if name not in families and name.removesuffix("_total") not in families}
+        assert not stale, f"README's impair table lists what the relay does not serve: {sorted(stale)}"
         assert "_created" not in page
     finally:
         relay.stop()

@@ -15,7 +15,7 @@ from hypothesis import strategies as st
 
 from fecproxy.protocol.decoder import BlockDecoder, DecoderSettings
 from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
-from fecproxy.protocol.events import Delivery
+from fecproxy.protocol.events import Delivery, SessionStarted
 from fecproxy.protocol.ordering import WAIT_BUCKETS, WINDOW, InOrderDelivery, SkipReason
 
 WAIT = 0.1
@@ -297,3 +297,37 @@ def test_through_encoder_and_decoder_every_missing_datagram_is_lost_or_counted(c
     assert len(decoded - delivered) == order.stats.late
     expected = {(i % 2, i // 2) for i in range(count)}
     assert decoded <= expected
+
+
+def test_flows_of_a_session_joined_mid_stream_start_at_their_first_datagram():
+    """A restarted receiver joins flows at seq ~2000 (< WINDOW): they go at once, no gap counted
+    (the datagrams before went to the previous process), while a flow that first shows up after
+    the join window is a new flow again, waited for from 0."""
+    order = InOrderDelivery(WAIT)
+    assert order.reset(1.0, joined=True) == []
+    assert seqs(order.push(d(2000, flow=1), 1.01)) == [2000]
+    assert seqs(order.push(d(2001, flow=1), 1.02)) == [2001]
+    assert seqs(order.push(d(37, flow=2), 1.05)) == [37]
+    assert order.next_deadline() is None
+    assert order.stats.gaps_skipped == 0 and order.stats.held == 0
+    assert order.push(d(3, flow=3), 1.0 + WAIT + 0.01) == []  # after the window: seq 0..2 may come
+    assert order.stats.held == 1
+
+
+def test_a_session_heard_from_its_start_still_waits_for_a_new_flows_first_datagrams():
+    order = InOrderDelivery(WAIT)
+    assert order.reset(1.0) == []
+    assert order.push(d(2000), 1.01) == []
+    assert seqs(order.on_timer(1.01 + WAIT)) == [2000]
+    assert order.stats.skipped[SkipReason.MAX_WAIT] == 2000
+
+
+def test_the_decoder_says_a_session_first_heard_far_in_was_joined():
+    """The receiver's decoder, started while the sender's session is at block 300: joined; a
+    session heard from its first block: not joined."""
+    settings = EncoderSettings(block_size=2, repair=1, flush_interval=0.02, size_classes=())
+    for first_sbn, joined in ((300, True), (0, False)):
+        encoder = BlockEncoder(settings, 9, first_sbn=first_sbn)
+        decoder = BlockDecoder(DecoderSettings(hold_time=0.3))
+        events = [e for p in encoder.send(b"reading", 1, 0.0) for e in decoder.receive(p, None, 0.0)]
+        assert [e for e in events if isinstance(e, SessionStarted)] == [SessionStarted(9, None, joined)]

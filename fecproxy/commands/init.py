@@ -213,7 +213,7 @@ def render_pair(profile: Profile) -> dict[str, str]:
         + "  peer: 192.0.2.10:7000        # the receiver\n\n"
         + "fec:\n"
         + f"  block_size: {code.k}\n  repair: {code.m}\n  interleave: {code.depth}\n"
-        + f"  flush_ms: {profile.latency_ms}             # the latency budget: no datagram waits longer for its block\n"
+        + f"  flush_ms: {profile.latency_ms}             # a block not full by then is closed and protected\n"
         + f"  max_datagram_bytes: {profile.max_datagram_bytes}\n\n"
         + "decoder:\n"
         + f"  hold_ms: {sender_hold}                # the receiver's reply flush {reply_flush} ms + delay spread "

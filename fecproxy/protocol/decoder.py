@@ -56,6 +56,7 @@ from collections.abc import Iterable
 
 from fecproxy.protocol import auth, wire
 from fecproxy.protocol.events import (
+    JOINED_AFTER_BLOCKS,
     BlockOutcome,
     ControlReceived,
     Dropped,
@@ -360,7 +361,7 @@ class BlockDecoder(SessionTable):
             self._followed, self.session = sess, sess.id
             self.received_code.reset()
             self._code_told = None
-            events.append(SessionStarted(sess.id, previous))
+            events.append(SessionStarted(sess.id, previous, getattr(pkt, "sbn", 0) >= JOINED_AFTER_BLOCKS))
         if isinstance(pkt, (wire.SourcePacket, wire.SlidingSourcePacket)):
             self.stats.source_received += 1
         else:

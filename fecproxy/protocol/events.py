@@ -109,12 +109,22 @@ class Dropped(Event):
     notice: str | None = None
 
 
+#: A session first followed at a block number this far in was under way before this receiver
+#: listened (it restarted, or started after its peer): its flows are joined mid-stream, not from
+#: their first datagram.  Above the blocks a sender opens at once (16 lanes × 4 size classes = 64)
+#: with every one of them lost at its start, well below where any real run is after minutes.
+#: Our own bound.
+JOINED_AFTER_BLOCKS = 256
+
+
 @dataclass(frozen=True, slots=True)
 class SessionStarted(Event):
-    """The peer's sender restarted (or first appeared): state from before is gone."""
+    """The peer's sender restarted (or first appeared): state from before is gone.  ``joined``:
+    the session was already under way when we first heard it (see JOINED_AFTER_BLOCKS)."""
 
     session: int
     previous: int | None
+    joined: bool = False
 
 
 @dataclass(frozen=True, slots=True)

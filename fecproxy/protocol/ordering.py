@@ -191,6 +191,9 @@ class InOrderDelivery:
         self._flows: dict[int, _Flow] = {}
         self._waiting: dict[int, _Flow] = {}  # flows holding something
         self._evicted: list[Delivery] = []  # released by a flow pushed out of the table
+        #: After a reset for a session joined mid-stream: until then, a new flow starts at its
+        #: first datagram (the ones before it went to whoever listened before us).
+        self._joined_until = -1.0
 
     # ------------------------------------------------------------------ feeding
     def push(self, delivery: Delivery, now: float) -> list[Delivery]:
@@ -206,8 +209,9 @@ class InOrderDelivery:
         if state is None:
             # A new flow: the sender counts each flow from 0, so a first datagram a little way
             # in means the first ones are missing (and may still be rebuilt); far in, we joined
-            # an established flow and start from it.
-            state = self._new_flow(flow_id, 0 if seq < WINDOW else seq, now)
+            # an established flow and start from it, as we do with every flow that shows up
+            # within max_wait of joining a session already under way (see reset).
+            state = self._new_flow(flow_id, 0 if seq < WINDOW and now >= self._joined_until else seq, now)
             if self._evicted:
                 out_evicted, self._evicted = self._evicted, []
                 return out_evicted + self.push(delivery, now)
@@ -288,15 +292,21 @@ class InOrderDelivery:
             self._release_all(state, now, SkipReason.CLOSED, out)
         return out
 
-    def reset(self, now: float, keep: int | None = None) -> list[Delivery]:
+    def reset(self, now: float, keep: int | None = None, *, joined: bool = False) -> list[Delivery]:
         """The peer's sender restarted: release what waits and forget the flows of every session
-        but ``keep`` (the new one, whose flows may already have begun)."""
+        but ``keep`` (the new one, whose flows may already have begun).
+
+        ``joined``: the new session was under way before we heard it (this receiver restarted),
+        so the flows that show up within ``max_wait`` are taken from their first datagram:
+        waiting for the ones before it would hold them ``max_wait`` and count thousands of gaps
+        that are no loss (an earlier process delivered them)."""
         out: list[Delivery] = []
         for key, state in list(self._flows.items()):
             if keep is not None and key >> FLOW_ID_BITS == keep:
                 continue
             self._release_all(state, now, SkipReason.CLOSED, out)
             del self._flows[key]
+        self._joined_until = now + self.max_wait if joined else -1.0
         return out
 
     # ------------------------------------------------------------------ internals

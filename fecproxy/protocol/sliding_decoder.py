@@ -35,6 +35,7 @@ from dataclasses import dataclass, field
 from fecproxy.coding import sliding
 from fecproxy.protocol import auth, wire
 from fecproxy.protocol.events import (
+    JOINED_AFTER_BLOCKS,
     BlockOutcome,
     BlockReport,
     ControlReceived,
@@ -202,7 +203,8 @@ class SlidingDecoder:
             detail = "block-code packet; this receiver decodes the sliding-window code"
             return [self._drop(DropReason.UNSUPPORTED, detail)], False
         events: list[Event] = []
-        stream = self._stream_for(pkt.session, now, events)
+        esi = pkt.esi if isinstance(pkt, wire.SlidingSourcePacket) else pkt.first_esi
+        stream = self._stream_for(pkt.session, now, events, esi >= JOINED_AFTER_BLOCKS)
         if stream is None:
             return events, False
         if isinstance(pkt, wire.SlidingSourcePacket):
@@ -507,7 +509,7 @@ class SlidingDecoder:
 
     # --- sessions and authentication ---------------------------------------------------------
 
-    def _stream_for(self, session: int, now: float, events: list[Event]) -> _Stream | None:
+    def _stream_for(self, session: int, now: float, events: list[Event], joined: bool = False) -> _Stream | None:
         stream = self._streams.get(session)
         if stream is None:
             if len(self._streams) >= MAX_SESSIONS:
@@ -529,7 +531,7 @@ class SlidingDecoder:
         ):
             previous = self.session
             self._primary, self.session = stream, stream.id
-            events.append(SessionStarted(stream.id, previous))
+            events.append(SessionStarted(stream.id, previous, joined))
         stream.last_seen = now
         return stream
 

@@ -376,7 +376,7 @@ class Daemon:
                 else:
                     if type(event) is SessionStarted:
                         if order is not None:  # the old conversations' waiting datagrams first
-                            _add(by_flow, order.reset(now, event.session))
+                            _add(by_flow, order.reset(now, event.session, joined=event.joined))
                         if by_flow:
                             # What came before a peer restart belongs to the old conversations.
                             await self.app.deliver(by_flow, now)

@@ -38,7 +38,11 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         targets.add_parser(
             "flood",
             help="real traffic through a pair while the receiver's link port is flooded; figures vs targets",
-            formatter_class=argparse.ArgumentDefaultsHelpFormatter,
+            description="Real datagrams through a fecproxy pair on loopback while hostile packets (random "
+            "bytes and mutated copies of real link packets) flood the receiver's link port: the share "
+            "delivered, corrupted datagrams delivered, the receiver's memory growth and whether both "
+            'daemons lived, beside the targets (README, "Benchmarks").',
+            formatter_class=parser.formatter_class,  # the CLI's: defaults shown only where they tell something
         )
     )
     auth.add_arguments(

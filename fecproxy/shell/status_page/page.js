@@ -310,7 +310,10 @@
       : have(heard) ? `heard ${heard.toFixed(1)} s ago` : "not heard yet";
     put("far-heard", state, silent === 1 ? 1 : 0, silent === 1 ? "bad" : "");
     const loss = s.fecproxy_peer_link_loss_ratio, residual = s.fecproxy_peer_residual_loss_ratio;
-    put("far-loss", have(loss) ? percent(loss) : "– (no loss report yet)", loss, have(loss) ? lossTone(loss) : "");
+    const reports = s.fecproxy_reports_received_total;  // reports come before their ratios mean something
+    const noLoss = have(reports) && reports > 0 ? "– (loss reports arriving, under 200 datagrams so far)"
+      : "– (no loss report yet)";
+    put("far-loss", have(loss) ? percent(loss) : noLoss, loss, have(loss) ? lossTone(loss) : "");
     put("far-residual", have(residual) ? percent(residual) : "–", residual, have(residual) ? lossTone(residual) : "");
     const rate = s.fecproxy_link_rate_bytes_per_second;
     if (!have(rate) || rate <= 0) {
