@@ -150,7 +150,7 @@ class BlockDecoder(SessionTable):
         #: per session of this table (sessions, keys and the peer address are ruled above), and
         #: count into this decoder's stats.
         self.sliding = SlidingDecoder(self._sliding_settings(), stats=self.stats)  # type: ignore[arg-type]
-        self.rebuilds = RebuildQueue(self.stats)  # blocks decodable within the current batch
+        self.rebuilds = RebuildQueue(self.stats, self.ledger)  # blocks decodable within the current batch
         self._batching = False
 
     def _session_ended(self, session: int, events: list[Event]) -> None:
@@ -280,6 +280,10 @@ class BlockDecoder(SessionTable):
         of the session's packets from elsewhere makes at least a duplicate or a bad field)."""
         if addr is None:
             return
+        if self._batching and self.rebuilds:
+            # A rebuild this packet made possible may drop a datagram, which must keep the
+            # address from being learned (as packet by packet): rebuild those blocks now.
+            events[:] = self.rebuilds.flush(events, self._drop, within=True)
         for event in events:
             if type(event) is Dropped:
                 return
