@@ -110,6 +110,15 @@ __all__ = [
 ]
 from fecproxy.protocol.sliding_decoder import SlidingDecoder, SlidingDecoderSettings
 
+
+def _how_far_in(pkt: object) -> int:
+    """How far into its session a packet is: its block number, or (sliding code) its ESI."""
+    for name in ("sbn", "esi", "first_esi"):
+        if hasattr(pkt, name):
+            return int(getattr(pkt, name))
+    return 0
+
+
 #: Authentication failures that mean the two sides' keys or encryption modes differ (not a forgery
 #: of ours): each noticed one also has the peer sent a key check (KeyCheckDue).
 KEY_FAULT_KINDS = frozenset({"unknown_key", "mode_mismatch"})
@@ -264,8 +273,8 @@ class BlockDecoder(SessionTable):
                     followed.last_seen = now
                     followed.packets += 1
                     self.stats.repair_received += 1
-                    self.stats.repair_unneeded += 1  # normal: the block completed before its repair came
                     events = []
+                    self._repair_for_finished(followed, sbn, now, events)
                     settled = self.received_code.note(sbn, k, payload_id & wire.ESI_MASK)
                     if settled is not None:
                         self._code_settled(settled, events)
@@ -341,7 +350,8 @@ class BlockDecoder(SessionTable):
         try:
             pkt = wire.parse(data, max_datagram=self.settings.max_datagram, sliding=True)
         except wire.PacketError as error:
-            return [self._drop(error.reason, str(error))]
+            notice = self.misconfig.note(error.reason, now) if error.reason == DropReason.OVERSIZE else None
+            return [self._drop(error.reason, str(error), None, notice)]
         if isinstance(pkt, wire.ControlPacket):
             # A control packet carries its sending side's own session (as every packet it sends,
             # so sealing keeps one replay window and nonce prefix per session), but it is no
@@ -365,7 +375,7 @@ class BlockDecoder(SessionTable):
             self._followed, self.session = sess, sess.id
             self.received_code.reset()
             self._code_told = None
-            events.append(SessionStarted(sess.id, previous, getattr(pkt, "sbn", 0) >= JOINED_AFTER_BLOCKS))
+            events.append(SessionStarted(sess.id, previous, _how_far_in(pkt) >= JOINED_AFTER_BLOCKS))
         if isinstance(pkt, (wire.SourcePacket, wire.SlidingSourcePacket)):
             self.stats.source_received += 1
         else:
@@ -394,7 +404,7 @@ class BlockDecoder(SessionTable):
         block = self._block_for(sess, pkt.sbn, now, events)
         if block is None:
             if isinstance(pkt, wire.RepairPacket) and pkt.sbn in sess.finished:
-                self.stats.repair_unneeded += 1  # normal: a block complete before its repair arrived
+                self._repair_for_finished(sess, pkt.sbn, now, events)
             elif isinstance(pkt, wire.SourcePacket):
                 self._outside_block(sess, pkt.sbn, pkt.esi, pkt.flow, pkt.data, pkt.seq, events)
             else:
