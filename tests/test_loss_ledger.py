@@ -7,10 +7,12 @@ from __future__ import annotations
 
 import random
 
+import pytest
+
 from fecproxy.protocol import wire
 from fecproxy.protocol.decoder import BlockDecoder, DecoderSettings
 from fecproxy.protocol.encoder import BlockEncoder, EncoderSettings
-from fecproxy.protocol.events import BlockReport, Delivery, Dropped
+from fecproxy.protocol.events import BlockReport, Delivery, Dropped, HoldTooShort
 from fecproxy.protocol.loss_ledger import REORDER_TOLERANCE
 
 HOLD = 0.5
@@ -99,3 +101,29 @@ def test_a_forged_far_jump_is_not_counted_as_an_outage():
     decoder.receive(far, None, 0.1)
     decoder.on_timer(10.0)
     assert decoder.stats.lost < 32
+
+
+def test_repair_after_a_block_was_given_up_says_hold_is_too_short_once_a_minute():
+    # The peer flushes at 600 ms (the shipped sender configs); this receiver holds 500 ms.
+    encoder = BlockEncoder(EncoderSettings(block_size=16, repair=4, flush_interval=0.6), session=7)
+    decoder = BlockDecoder(DecoderSettings(hold_time=HOLD))
+    warnings = []
+    for block in range(3):
+        start = block * 2.0
+        first = encoder.send(b"reading", 1, start)
+        events = decoder.receive(first[0], None, start)
+        events += decoder.receive(encoder.send(b"second", 1, start + 0.01)[0], None, start + 0.01)
+        events += decoder.on_timer(start + HOLD + 0.01)  # given up before its repair
+        for repair in encoder.on_timer(start + 0.6):
+            events += decoder.receive(repair, None, start + 0.61)
+        warnings += [e for e in events if isinstance(e, HoldTooShort)]
+    assert len(warnings) == 1  # rate-limited
+    assert warnings[0].hold == HOLD and warnings[0].waited == pytest.approx(0.61)
+
+
+def test_an_oversize_datagram_is_a_rate_limited_notice():
+    big = wire.encode_source(7, 0, 0, 1, bytes(1500))
+    decoder = BlockDecoder(DecoderSettings(hold_time=HOLD, max_datagram=1400))
+    drops = [e for i in range(5) for e in decoder.receive(big, None, i * 1.0) if isinstance(e, Dropped)]
+    assert [d.reason for d in drops] == ["oversize"] * 5
+    assert [d.notice is not None for d in drops] == [True, False, False, False, False]

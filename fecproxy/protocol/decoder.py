@@ -264,8 +264,8 @@ class BlockDecoder(SessionTable):
                     followed.last_seen = now
                     followed.packets += 1
                     self.stats.repair_received += 1
-                    self.stats.repair_unneeded += 1  # normal: the block completed before its repair came
                     events = []
+                    self._repair_for_finished(followed, sbn, now, events)
                     settled = self.received_code.note(sbn, k, payload_id & wire.ESI_MASK)
                     if settled is not None:
                         self._code_settled(settled, events)
@@ -337,7 +337,8 @@ class BlockDecoder(SessionTable):
         try:
             pkt = wire.parse(data, max_datagram=self.settings.max_datagram, sliding=True)
         except wire.PacketError as error:
-            return [self._drop(error.reason, str(error))]
+            notice = self.misconfig.note(error.reason, now) if error.reason == DropReason.OVERSIZE else None
+            return [self._drop(error.reason, str(error), None, notice)]
         if isinstance(pkt, wire.ControlPacket):
             # A control packet carries its sending side's own session (as every packet it sends,
             # so sealing keeps one replay window and nonce prefix per session), but it is no
@@ -390,7 +391,7 @@ class BlockDecoder(SessionTable):
         block = self._block_for(sess, pkt.sbn, now, events)
         if block is None:
             if isinstance(pkt, wire.RepairPacket) and pkt.sbn in sess.finished:
-                self.stats.repair_unneeded += 1  # normal: a block complete before its repair arrived
+                self._repair_for_finished(sess, pkt.sbn, now, events)
             elif isinstance(pkt, wire.SourcePacket):
                 self._outside_block(sess, pkt.sbn, pkt.esi, pkt.flow, pkt.data, pkt.seq, events)
             else:

@@ -182,6 +182,17 @@ class ChallengeDue(Event):
 
 
 @dataclass(frozen=True, slots=True)
+class HoldTooShort(Event):
+    """A repair packet came for a block this side had given up: ``decoder.hold_ms`` (``hold``)
+    is shorter than the peer's flush interval plus the link's delay spread, so such blocks lose
+    their protection.  ``waited`` is how long after the block's first packet the repair came.
+    At most one per MISCONFIG_LOG_INTERVAL_S (protocol.loss_ledger)."""
+
+    hold: float
+    waited: float
+
+
+@dataclass(frozen=True, slots=True)
 class SessionProven(Event):
     """Keyed: the peer session answered our challenge; its packets sealed after ``sequence``
     are delivered from now on.  ``young``: it started after this side began listening, so the

@@ -34,6 +34,8 @@ REORDER_TOLERANCE = 2.0
 MAX_PENDING_BLOCKS = 8192
 #: Gaps awaiting settlement at once; beyond, the oldest is settled early.
 MAX_PENDING_GAPS = 64
+#: Blocks given up whose start is remembered, to tell how late their repair came.
+MAX_GIVEN_UP = 1024
 #: Blocks of one gap that may still show up and be taken out of it (the rest are lost for sure:
 #: further back than the decoder would open a block).
 MAX_GAP_CLAIMS = 4096
@@ -70,6 +72,7 @@ class LossLedger:
     def __init__(self) -> None:
         self._blocks: OrderedDict[tuple[int, int], Pending] = OrderedDict()
         self._gaps: list[Gap] = []
+        self._given_up: OrderedDict[tuple[int, int], float] = OrderedDict()
 
     def defer(self, session: int, report: BlockReport, delivered: int, due: float) -> list[Pending]:
         """Hold ``report`` (a block that ended with positions missing) until ``due``; returns
@@ -112,6 +115,16 @@ class LossLedger:
             if gap.session == session and offset < gap.count and len(gap.claimed) < MAX_GAP_CLAIMS:
                 gap.claimed.add(offset)
 
+    def given_up(self, session: int, sbn: int, first_seen: float) -> None:
+        """Block ``sbn`` was given up (expired or evicted); remember when it began."""
+        self._given_up[(session, sbn)] = first_seen
+        while len(self._given_up) > MAX_GIVEN_UP:
+            self._given_up.popitem(last=False)
+
+    def started(self, session: int, sbn: int) -> float | None:
+        """When a block given up recently had its first packet (None if not known)."""
+        return self._given_up.get((session, sbn))
+
     def next_due(self) -> float | None:
         dues = [pending.due for pending in self._blocks.values()][:1] + [gap.due for gap in self._gaps]
         return min(dues) if dues else None
@@ -132,3 +145,27 @@ class LossLedger:
 def gap_lost(gap: Gap) -> int:
     """Datagrams a settled gap lost: its blocks that never showed up, ``k`` each."""
     return (gap.count - len(gap.claimed)) * gap.k
+
+
+#: One warning per kind of misconfiguration per minute: a pair set up wrong does it on every block,
+#: and the counters carry the rate (as auth.FAILURE_LOG_INTERVAL_S for key faults).
+MISCONFIG_LOG_INTERVAL_S = 60.0
+
+
+class MisconfigNotice:
+    """Rate limit for misconfiguration warnings: ``note(kind, now)`` says whether to warn now, and
+    how many were held back since the last warning of that kind."""
+
+    def __init__(self, interval: float = MISCONFIG_LOG_INTERVAL_S) -> None:
+        self.interval = interval
+        self._last: dict[str, float] = {}
+        self._held: dict[str, int] = {}
+
+    def note(self, kind: str, now: float) -> str | None:
+        last = self._last.get(kind)
+        if last is not None and now - last < self.interval:
+            self._held[kind] = self._held.get(kind, 0) + 1
+            return None
+        self._last[kind] = now
+        held = self._held.pop(kind, 0)
+        return f"{held} more since the last warning" if held else "first in this interval"

@@ -12,9 +12,17 @@ from collections import OrderedDict
 from dataclasses import dataclass, field
 
 from fecproxy.protocol import auth, wire
-from fecproxy.protocol.events import BlockOutcome, BlockReport, Dropped, DropReason, Event, direct_delivery
+from fecproxy.protocol.events import (
+    BlockOutcome,
+    BlockReport,
+    Dropped,
+    DropReason,
+    Event,
+    HoldTooShort,
+    direct_delivery,
+)
 from fecproxy.protocol.freshness import FreshnessGate
-from fecproxy.protocol.loss_ledger import REORDER_TOLERANCE, LossLedger, gap_lost
+from fecproxy.protocol.loss_ledger import REORDER_TOLERANCE, LossLedger, MisconfigNotice, gap_lost
 from fecproxy.protocol.replay import ReplayWindow
 
 #: How long an incomplete block waits for more packets.  Must exceed the sender's flush interval
@@ -174,6 +182,7 @@ class SessionTable:
         self._retired_windows: OrderedDict[int, ReplayWindow] = OrderedDict()
         self.freshness = FreshnessGate()  # keyed: peer sessions proven live (protocol.freshness)
         self.ledger = LossLedger()  # losses final only after reordering had its time
+        self.misconfig = MisconfigNotice()  # rate-limits the warnings of a pair set up wrong
         self._open_count = 0  # open blocks, all sessions
         self._bytes = 0  # bytes held, all sessions
 
@@ -341,6 +350,18 @@ class SessionTable:
         self.stats.dropped[reason] = self.stats.dropped.get(reason, 0) + 1
         return Dropped(reason, detail, error, notice)
 
+    def _repair_for_finished(self, sess: Session, sbn: int, now: float, events: list[Event]) -> None:
+        """A repair packet of a finished block.  Normal when the block completed first; when it
+        had been given up (its hold time passed) the peer flushes later than ``hold_ms``: every
+        such block loses its protection, so say so (rate-limited) with the value to set."""
+        self.stats.repair_unneeded += 1
+        if sess.finished.get(sbn) == -1:
+            return
+        hold = self.settings.hold_time
+        started = self.ledger.started(sess.id, sbn)
+        if started is not None and self.misconfig.note("hold", now) is not None:
+            events.append(HoldTooShort(hold, now - started))
+
     def _settle_losses(self, now: float | None) -> list[Event]:
         """Count the losses that became final (protocol.loss_ledger); None: all (shutdown)."""
         blocks, gaps = self.ledger.settle(now)
@@ -405,6 +426,8 @@ class SessionTable:
         unrecovered = lost - block.rebuilt
         stats = self.stats
         stats.blocks[outcome] = stats.blocks.get(outcome, 0) + 1
+        if outcome is BlockOutcome.EXPIRED or outcome is BlockOutcome.EVICTED:
+            self.ledger.given_up(sess.id, block.sbn, block.first_seen)
         report = BlockReport(block.sbn, block.k, outcome, lost, block.rebuilt, unrecovered, block.arrived, span)
         if lost and outcome is not BlockOutcome.SUPERSEDED:
             # Not final yet: its missing packets may still come (protocol.loss_ledger).

@@ -9,6 +9,7 @@ daemon's logger, whose name log filters and the status page's history rely on.
 from __future__ import annotations
 
 import logging
+import math
 
 from fecproxy.config.addresses import format_sockaddr
 from fecproxy.linkmodel.adaptation import STALE_AFTER_INTERVALS, Decision, ReportsResumed, ReportsStale
@@ -16,6 +17,7 @@ from fecproxy.protocol.events import (
     BlockReport,
     Dropped,
     DropReason,
+    HoldTooShort,
     PeerAddressChanged,
     PeerCodeSettled,
     SessionProven,
@@ -41,7 +43,14 @@ def log_core_event(event: object, repair: int) -> None:
                 outcome=event.outcome,
             )
     elif isinstance(event, Dropped):
-        if event.notice is not None:
+        if event.notice is not None and event.reason is DropReason.OVERSIZE:
+            log_event(
+                log,
+                logging.WARNING,
+                "datagram_size_mismatch",
+                detail=f"{event.detail}: set max_datagram_bytes alike on both sides ({event.notice})",
+            )
+        elif event.notice is not None:
             # One line per kind of failure per interval: a peer with the wrong key says so
             # plainly, a flood of forgeries does not flood the log.
             kind = getattr(event.error, "kind", event.reason)
@@ -78,6 +87,18 @@ def log_core_event(event: object, repair: int) -> None:
             m=event.configured[1] if event.configured else event.m,
             blocks="full" if event.configured else "short blocks only so far",
             detail="decoding the peer's blocks (k from its repair packets, m = highest repair ESI - k + 1)",
+        )
+    elif isinstance(event, HoldTooShort):
+        # Half again what the late repair needed, rounded up to 100 ms: room for jitter.
+        suggested = math.ceil(event.waited * 1500 / 100) * 100
+        log_event(
+            log,
+            logging.WARNING,
+            "hold_too_short",
+            hold_ms=round(event.hold * 1000),
+            repair_after_ms=round(event.waited * 1000),
+            detail=f"repair came for blocks already given up: the peer flushes later than decoder.hold_ms; "
+            f"set decoder.hold_ms: {suggested} (at most one line a minute)",
         )
     elif isinstance(event, SessionProven):
         log_event(
