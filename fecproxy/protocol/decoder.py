@@ -110,6 +110,15 @@ __all__ = [
 ]
 from fecproxy.protocol.sliding_decoder import SlidingDecoder, SlidingDecoderSettings
 
+
+def _how_far_in(pkt: object) -> int:
+    """How far into its session a packet is: its block number, or (sliding code) its ESI."""
+    for name in ("sbn", "esi", "first_esi"):
+        if hasattr(pkt, name):
+            return int(getattr(pkt, name))
+    return 0
+
+
 #: Authentication failures that mean the two sides' keys or encryption modes differ (not a forgery
 #: of ours): each noticed one also has the peer sent a key check (KeyCheckDue).
 KEY_FAULT_KINDS = frozenset({"unknown_key", "mode_mismatch"})
@@ -362,7 +371,7 @@ class BlockDecoder(SessionTable):
             self._followed, self.session = sess, sess.id
             self.received_code.reset()
             self._code_told = None
-            events.append(SessionStarted(sess.id, previous, getattr(pkt, "sbn", 0) >= JOINED_AFTER_BLOCKS))
+            events.append(SessionStarted(sess.id, previous, _how_far_in(pkt) >= JOINED_AFTER_BLOCKS))
         if isinstance(pkt, (wire.SourcePacket, wire.SlidingSourcePacket)):
             self.stats.source_received += 1
         else:
