@@ -274,10 +274,11 @@ class BlockDecoder(SessionTable):
                     followed.packets += 1
                     self.stats.repair_received += 1
                     events = []
-                    self._repair_for_finished(followed, sbn, now, events)
+                    # The code first, then the finished block: the order _receive_general keeps.
                     settled = self.received_code.note(sbn, k, payload_id & wire.ESI_MASK)
                     if settled is not None:
                         self._code_settled(settled, events)
+                    self._repair_for_finished(followed, sbn, now, events)
                     if self.learn_peer and addr != self.peer:
                         self._peer_seen(addr, events)
                     return events
