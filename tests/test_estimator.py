@@ -122,15 +122,26 @@ def test_windowed_estimator_tracks_a_change_of_channel():
     window=st.integers(min_value=2, max_value=25),
 )
 def test_windowed_run_equals_repeated_observe_across_segments(runs, window):
-    """The windowed observe_run takes a run in and the window's excess out at once: the same
-    counters, pair by pair, as one sample at a time, segment boundaries included."""
-    fast, slow = LossEstimator(window=window), LossEstimator(window=window)
+    """The window holds runs and forgets them run by part of a run: its counters are, after
+    every run, a plain recount of the last ``window`` samples and the pairs among them that were
+    link neighbours (segment boundaries break pairs)."""
+    estimator = LossEstimator(window=window)
+    samples = []  # (lost, paired with the sample before it)
+    last = None
     for lost, count, new_segment in runs:
         if new_segment:
-            fast.end_segment()
-            slow.end_segment()
-        fast.observe_run(lost, count)
+            estimator.end_segment()
+            last = None
+        estimator.observe_run(lost, count)
         for _ in range(count):
-            slow.observe(lost)
-        assert (fast._gg, fast._gb, fast._bg, fast._bb) == (slow._gg, slow._gb, slow._bg, slow._bb)
-        assert (fast._samples, fast._lost, list(fast._flags)) == (slow._samples, slow._lost, list(slow._flags))
+            samples.append((lost, last is not None))
+            last = lost
+        tail = samples[-window:]
+        pairs = dict.fromkeys(itertools.product((False, True), repeat=2), 0)
+        for before, (after, paired) in zip(tail, tail[1:], strict=False):  # neighbours
+            if paired:
+                pairs[before[0], after] += 1
+        counted = {(False, False): estimator._gg, (False, True): estimator._gb}
+        counted |= {(True, False): estimator._bg, (True, True): estimator._bb}
+        assert counted == pairs
+        assert (estimator._samples, estimator._lost) == (len(tail), sum(flag for flag, _ in tail))

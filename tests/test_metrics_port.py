@@ -229,10 +229,19 @@ def _measure(pair, stream: int, connections: int) -> list[float]:
         idle.extend(socket.create_connection(address, timeout=5) for _ in range(connections))
         # /metrics still answers (the oldest idle connections are pushed out to make room), and
         # the new flow opened its socket on the receiver: nothing dropped for want of one.
-        status, text = _get(f"http://{LOOPBACK}:{pair.receiver.metrics_port}/metrics")
+        # The measuring thread's first datagram may still be on its way when the connections are
+        # open (a race, not a fault): read until its flow shows, for a few seconds at most.
+        pages: list[tuple[int, str]] = []
+
+        def measuring_flow_shows() -> bool:
+            pages.append(_get(f"http://{LOOPBACK}:{pair.receiver.metrics_port}/metrics"))
+            found = re.search(r"^fecproxy_flows (\S+)$", pages[-1][1], flags=re.MULTILINE)
+            return pages[-1][0] == 200 and found is not None and float(found.group(1)) >= 2
+
+        shown = wait_until(measuring_flow_shows, 5, interval=0.05)
+        status, text = pages[-1]
         assert status == 200
-        flows = re.search(r"^fecproxy_flows (\S+)$", text, flags=re.MULTILINE)
-        assert flows and float(flows.group(1)) >= 2, "the measuring client's flow is in the table"
+        assert shown, "the measuring client's flow is in the table"
         assert 'fecproxy_packets_dropped_total{reason="no_socket"} 0.0' in text
     finally:
         for sock in idle:

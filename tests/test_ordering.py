@@ -331,3 +331,13 @@ def test_the_decoder_says_a_session_first_heard_far_in_was_joined():
         decoder = BlockDecoder(DecoderSettings(hold_time=0.3))
         events = [e for p in encoder.send(b"reading", 1, 0.0) for e in decoder.receive(p, None, 0.0)]
         assert [e for e in events if isinstance(e, SessionStarted)] == [SessionStarted(9, None, joined)]
+
+
+def test_the_decoder_says_a_sliding_session_first_heard_far_in_was_joined():
+    """The same for the sliding-window code, by ESI: a receiver restarted under a running
+    sliding-code sender joins its flows where they are."""
+    from fecproxy.protocol import wire
+
+    decoder = BlockDecoder(DecoderSettings(hold_time=0.3))
+    events = decoder.receive(wire.encode_sliding_source(9, 5000, 1, b"reading", 5000), None, 0.0)
+    assert [e for e in events if isinstance(e, SessionStarted)] == [SessionStarted(9, None, True)]

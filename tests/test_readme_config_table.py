@@ -75,3 +75,12 @@ def test_readme_defaults_are_the_schema_defaults():
         if written != _as_readme_writes(default):
             wrong[key] = (written, _as_readme_writes(default))
     assert not wrong, f"README default vs schema default: {wrong}"
+
+
+def test_readme_names_every_setting_a_reload_cannot_apply():
+    """README's Signals paragraph lists what needs a restart; the daemon's list is the truth."""
+    from fecproxy.shell.settings import RESTART_FIELDS, RESTART_KEYS
+
+    paragraph = README.split("`SIGHUP` re-reads the config", 1)[1].split("\n\n", 1)[0]
+    listed = set(re.findall(r"`([a-z_.]+)`", paragraph.split("need a restart", 1)[0].split("Changes to", 1)[1]))
+    assert listed == set(RESTART_KEYS) | set(RESTART_FIELDS)

@@ -28,7 +28,10 @@ MAX_DELAY_SPREAD_MS = 60_000
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
-    parser.epilog = exit_status_epilog(EXIT_OK, EXIT_UNREADABLE, EXIT_INVALID)
+    parser.epilog = (
+        exit_status_epilog(EXIT_OK, EXIT_UNREADABLE, EXIT_INVALID)
+        + f"; given two files, a pair that disagrees also exits {EXIT_INVALID} (a line per fault, naming file and key)"
+    )
     parser.add_argument(
         "config",
         metavar="CONFIG.yaml",

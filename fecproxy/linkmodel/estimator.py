@@ -11,7 +11,6 @@ import math
 from collections import deque
 from collections.abc import Iterable
 from dataclasses import dataclass
-from itertools import repeat
 
 from fecproxy.linkmodel.loss_models import ChannelConfigError, GilbertElliott
 
@@ -67,8 +66,10 @@ class LossEstimator:
 
     def reset(self) -> None:
         """Forget every sample (the window size stays)."""
-        #: Per sample in the window: bit 0 = lost, bit 1 = paired with the sample before it.
-        self._flags: deque[int] = deque()
+        #: The window's samples as runs of one outcome, oldest first: [lost (0/1), count, linked
+        #: (1 when its first sample is paired with the sample before it)].  Runs, not samples, so
+        #: a block costs O(1) to add and to forget whatever its length.
+        self._runs: deque[list[int]] = deque()
         #: Outcome of the last sample, or None when the next sample starts a new segment.
         self._last: bool | None = None
         self._samples = 0
@@ -76,7 +77,7 @@ class LossEstimator:
         # transitions[(from_lost, to_lost)]
         self._gg = self._gb = self._bg = self._bb = 0
 
-    def _count_pair(self, before: bool, after: bool, delta: int) -> None:
+    def _count_pair(self, before: bool | int, after: bool | int, delta: int) -> None:
         if before:
             if after:
                 self._bb += delta
@@ -89,78 +90,43 @@ class LossEstimator:
 
     def observe(self, lost: bool) -> None:
         """One packet: True if it was lost, False if it arrived."""
-        lost = bool(lost)
-        previous = self._last
-        linked = previous is not None
-        if previous is not None:
-            self._count_pair(previous, lost, +1)
-        self._last = lost
-        self._samples += 1
-        self._lost += lost
-        if self.window is not None:
-            self._flags.append(lost | (linked << 1))
-            if len(self._flags) > self.window:
-                self._forget_oldest()
+        self.observe_run(lost, 1)
 
-    def _forget_oldest(self) -> None:
-        oldest = self._flags.popleft()
-        self._samples -= 1
-        self._lost -= oldest & 1
-        following = self._flags[0]
-        if following & 2:  # the pair (oldest, following) was counted: take it back out
-            self._count_pair(bool(oldest & 1), bool(following & 1), -1)
-            self._flags[0] = following & 1
-
-    def _forget_oldest_many(self, count: int) -> None:
-        """:meth:`_forget_oldest` ``count`` times, in one loop with local counters."""
-        flags = self._flags
-        popleft = flags.popleft
-        taken = [0, 0, 0, 0]  # pairs taken back, indexed before_lost << 1 | after_lost
-        lost = 0
-        oldest = popleft()
-        for _ in range(count - 1):
-            lost += oldest & 1
-            following = popleft()
-            if following & 2:
-                taken[(oldest & 1) << 1 | following & 1] += 1
-            oldest = following
-        lost += oldest & 1
-        following = flags[0]
-        if following & 2:
-            taken[(oldest & 1) << 1 | following & 1] += 1
-            flags[0] = following & 1
-        self._samples -= count
-        self._lost -= lost
-        self._gg -= taken[0]
-        self._gb -= taken[1]
-        self._bg -= taken[2]
-        self._bb -= taken[3]
+    def _forget_oldest(self, count: int) -> None:
+        """Take the ``count`` oldest samples out of the window, with the pairs they start."""
+        runs = self._runs
+        while count:
+            first = runs[0]
+            lost, size = first[0], first[1]
+            if count < size:  # part of the run: each sample taken out starts a pair inside it
+                first[1] = size - count
+                first[2] = 0
+                self._samples -= count
+                self._lost -= lost * count
+                self._count_pair(lost, lost, -count)
+                return
+            runs.popleft()
+            self._samples -= size
+            self._lost -= lost * size
+            self._count_pair(lost, lost, -(size - 1))
+            count -= size
+            following = runs[0]  # the window keeps ≥ 2 samples, so one follows
+            if following[2]:  # the pair (this run's last, the next's first) was counted
+                self._count_pair(lost, following[0], -1)
+                following[2] = 0
 
     def observe_many(self, flags: Iterable[bool]) -> None:
         for lost in flags:
             self.observe(lost)
 
     def observe_run(self, lost: bool, count: int) -> None:
-        """``count`` packets in a row with the same outcome (e.g. a sequence-number gap).
-
-        O(1) without a window; with a window only the last ``window`` + 1 of them matter.
-        """
+        """``count`` packets in a row with the same outcome (e.g. a sequence-number gap or a
+        clean block): O(1), with or without a window."""
         count = int(count)
         if count <= 0:
             return
         lost = bool(lost)
         previous = self._last
-        linked = previous is not None
-        if self.window is not None:
-            count = min(count, self.window + 1)
-            # The whole run goes in at once and the window's excess comes out at once: the same
-            # samples and counted pairs as observing them one by one (a pair is taken back out
-            # exactly when its first sample leaves, and its second is still in the window then),
-            # without two method calls per datagram on the receiver's path.
-            flags = self._flags
-            flags.append(lost | linked << 1)
-            if count > 1:
-                flags.extend(repeat(lost | 2, count - 1))
         if previous is not None:
             self._count_pair(previous, lost, +1)
         self._count_pair(lost, lost, count - 1)
@@ -168,9 +134,14 @@ class LossEstimator:
         self._samples += count
         self._lost += count if lost else 0
         if self.window is not None:
-            excess = len(self._flags) - self.window
+            runs = self._runs
+            if previous is not None and previous == lost and runs:
+                runs[-1][1] += count  # the same outcome, linked: one longer run
+            else:
+                runs.append([int(lost), count, int(previous is not None)])
+            excess = self._samples - self.window
             if excess > 0:
-                self._forget_oldest_many(excess)
+                self._forget_oldest(excess)
 
     def end_segment(self) -> None:
         """The next packet is not the link neighbour of the last one: count no transition between them."""

@@ -110,6 +110,15 @@ __all__ = [
 ]
 from fecproxy.protocol.sliding_decoder import SlidingDecoder, SlidingDecoderSettings
 
+
+def _how_far_in(pkt: object) -> int:
+    """How far into its session a packet is: its block number, or (sliding code) its ESI."""
+    for name in ("sbn", "esi", "first_esi"):
+        if hasattr(pkt, name):
+            return int(getattr(pkt, name))
+    return 0
+
+
 #: Authentication failures that mean the two sides' keys or encryption modes differ (not a forgery
 #: of ours): each noticed one also has the peer sent a key check (KeyCheckDue).
 KEY_FAULT_KINDS = frozenset({"unknown_key", "mode_mismatch"})
@@ -150,7 +159,7 @@ class BlockDecoder(SessionTable):
         #: per session of this table (sessions, keys and the peer address are ruled above), and
         #: count into this decoder's stats.
         self.sliding = SlidingDecoder(self._sliding_settings(), stats=self.stats)  # type: ignore[arg-type]
-        self.rebuilds = RebuildQueue(self.stats)  # blocks decodable within the current batch
+        self.rebuilds = RebuildQueue(self.stats, self.ledger)  # blocks decodable within the current batch
         self._batching = False
 
     def _session_ended(self, session: int, events: list[Event]) -> None:
@@ -265,10 +274,11 @@ class BlockDecoder(SessionTable):
                     followed.packets += 1
                     self.stats.repair_received += 1
                     events = []
+                    # The code first, then the finished block: the order _receive_general keeps.
                     settled = self.received_code.note(sbn, k, payload_id & wire.ESI_MASK)
                     if settled is not None:
                         self._code_settled(settled, events)
-                    self._repair_for_finished(followed, sbn, now, events)  # as the general path: after
+                    self._repair_for_finished(followed, sbn, now, events)
                     if self.learn_peer and addr != self.peer:
                         self._peer_seen(addr, events)
                     return events
@@ -280,6 +290,10 @@ class BlockDecoder(SessionTable):
         of the session's packets from elsewhere makes at least a duplicate or a bad field)."""
         if addr is None:
             return
+        if self._batching and self.rebuilds:
+            # A rebuild this packet made possible may drop a datagram, which must keep the
+            # address from being learned (as packet by packet): rebuild those blocks now.
+            events[:] = self.rebuilds.flush(events, self._drop, within=True)
         for event in events:
             if type(event) is Dropped:
                 return
@@ -362,7 +376,7 @@ class BlockDecoder(SessionTable):
             self._followed, self.session = sess, sess.id
             self.received_code.reset()
             self._code_told = None
-            events.append(SessionStarted(sess.id, previous, getattr(pkt, "sbn", 0) >= JOINED_AFTER_BLOCKS))
+            events.append(SessionStarted(sess.id, previous, _how_far_in(pkt) >= JOINED_AFTER_BLOCKS))
         if isinstance(pkt, (wire.SourcePacket, wire.SlidingSourcePacket)):
             self.stats.source_received += 1
         else:

@@ -100,6 +100,14 @@ class LossLedger:
             pending.delivered |= 1 << esi
         return True
 
+    def rebuilt_fewer(self, session: int, sbn: int, short: int) -> None:
+        """A pending recovered block rebuilt ``short`` datagrams fewer than its report assumed
+        (batched rebuilds, protocol.rebuilds): they stay unrecovered."""
+        pending = self._blocks.get((session, sbn))
+        if pending is not None:
+            pending.recovered -= short
+            pending.unrecovered += short
+
     def note_gap(self, session: int, first: int, count: int, k: int, due: float) -> list[Gap]:
         """Blocks ``first`` .. ``first + count − 1`` were skipped; returns gaps settled early."""
         self._gaps.append(Gap(session, first, count, k, due))

@@ -18,6 +18,7 @@ from typing import Any
 from fecproxy.coding.codec import BlockCode, block_code
 from fecproxy.protocol import wire
 from fecproxy.protocol.events import BlockReport, Delivery, DropReason, Event
+from fecproxy.protocol.loss_ledger import LossLedger
 from fecproxy.protocol.session_table import Block, DecoderStats
 
 #: (block, the time it became decodable, its received symbols {ESI: symbol}, its report, and
@@ -82,8 +83,9 @@ def rebuild_one(block: Block, now: float, stats: DecoderStats, drop: DropMaker) 
 class RebuildQueue:
     """Decodable blocks of one batch, rebuilt together by :meth:`flush`."""
 
-    def __init__(self, stats: DecoderStats):
+    def __init__(self, stats: DecoderStats, ledger: LossLedger):
         self.stats = stats
+        self.ledger = ledger  # where a deferred report's counts wait (protocol.loss_ledger)
         self._pending: dict[int, Pending] = {}  # id(report) -> pending block
         #: Rebuild calls made and blocks they rebuilt, for the benchmark's batch-size figure.
         self.calls = 0
@@ -97,11 +99,15 @@ class RebuildQueue:
         count assumed to be every missing datagram); its symbols are taken now."""
         self._pending[id(report)] = (block, now, received_symbols(block), report, deferred)
 
-    def flush(self, events: list[Event], drop: DropMaker) -> list[Event]:
+    def flush(self, events: list[Event], drop: DropMaker, *, within: bool = False) -> list[Event]:
         """Rebuild every pending block, one ``recover_many`` per shape, and return ``events``
         with each pending report preceded by its block's deliveries (and corrected if one of
         them had to be dropped)."""
         pending, self._pending = self._pending, {}
+        if within:  # only the blocks whose reports are in ``events``; the others stay pending
+            present = {id(event) for event in events}
+            self._pending = {key: entry for key, entry in pending.items() if key not in present}
+            pending = {key: entry for key, entry in pending.items() if key in present}
         by_shape: dict[tuple[int | None, int | None], list[Pending]] = {}
         for entry in pending.values():
             by_shape.setdefault((entry[0].k, entry[0].symbol_len), []).append(entry)
@@ -121,7 +127,9 @@ class RebuildQueue:
                 block.rebuilt = 0
                 out = deliveries(block, rebuilt, now, self.stats, drop)
                 short = expected - block.rebuilt
-                if short:  # a rebuilt datagram was dropped: it stays unrecovered
+                if short and deferred:  # its loss is counted when the ledger settles it
+                    self.ledger.rebuilt_fewer(block.owner.id, block.sbn, short)
+                elif short:  # a rebuilt datagram was dropped: it stays unrecovered
                     self.stats.unrecovered += short
                     report = dataclasses.replace(
                         report, recovered=block.rebuilt, unrecovered=report.unrecovered + short

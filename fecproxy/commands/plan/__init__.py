@@ -67,7 +67,7 @@ EPILOG = (
     "datagrams and m' repair packets by its short-block rule (proportional: m' = ceil(m·k'/k), at least 1; "
     "full: m' = m); the figures are those of (k', m'), and the overhead budget applies to m'/k'. "
     "With --mean-bytes and --max-bytes (the datagram sizes of the flow, or of one fec.size_classes class) "
-    "the byte overhead m'·(repair header + 3 + max)/(k'·(source header + mean)) is shown and can be "
+    "the byte overhead m'·(repair header + symbol prefix + max)/(k'·(source header + mean)) is shown and can be "
     "budgeted (--max-byte-overhead), and m' is cut as the sender cuts it to keep repair bytes at or below "
     f"source bytes (RFC 6363 §8.2). Interleave depths go up to the sender's fec.interleave limit, "
     f"{SENDER_MAX_INTERLEAVE}. "
