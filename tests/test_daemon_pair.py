@@ -118,7 +118,7 @@ def test_every_datagram_arrives_when_each_block_loses_at_most_m(pairs):
     assert sorted(pair.server.received) == [(2, seq) for seq in range(blocks * k)]
     assert pair.server.corrupted == 0
     lost_sources = sum(1 for i in dropped if i % n < k)
-    # Loss is final two hold times after a block's first packet (protocol.loss_ledger).
+    # Loss is final a hold time after a block's first packet (protocol.loss_ledger).
     assert wait_until(lambda: pair.receiver.metric("fecproxy_source_packets_lost_total") >= lost_sources, 5.0)
     metrics = pair.receiver.metrics()
     assert metrics[("fecproxy_source_packets_lost_total", ())] == lost_sources

@@ -73,7 +73,7 @@ async def run_pair(impairment: LinkImpairment, seconds: float, *, repair=1, adap
                 sequence += 1
             ms.append(sender.encoder.settings.repair)
             await trio.sleep_until(start + (tick + 1) * TICK)
-        # Every loss is final two hold times after its block's first packet: wait for it.
+        # Every loss is final a hold time after its block's first packet: wait for it.
         await trio.sleep(2 * receiver.decoder.settings.hold_time + 0.5)
         stats = receiver.decoder.stats
         nursery.cancel_scope.cancel()

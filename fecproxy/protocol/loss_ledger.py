@@ -5,7 +5,7 @@ source packets completes it by a rebuild, and the overtaken packets arrive a mom
 block given up at its hold time may still see its stragglers.  Counted at once, such packets
 would be "lost" although they came — and the loss reports would feed more repair, which
 overtakes more.  So a block that ended with positions missing is *settled* only REORDER_TOLERANCE
-hold times after its first packet: a source packet of it that arrives before then is counted as
+hold time(s) after its first packet: a source packet of it that arrives before then is counted as
 having come (late, not lost).
 
 A run of whole blocks that never showed a packet (an outage) is counted from the block numbers:
@@ -24,11 +24,12 @@ from dataclasses import dataclass, field
 
 from fecproxy.protocol.events import BlockReport
 
-#: A block with missing positions is settled this many hold times after its first packet: one hold
-#: time is how long the block itself waited for its packets, a second one is the tolerance for its
-#: stragglers.  At the default hold that is 1 s behind the block's first packet (our own choice:
-#: reordering beyond the hold time makes a packet useless to the decoder anyway).
-REORDER_TOLERANCE = 2.0
+#: A block with missing positions is settled this many hold times after its first packet: the
+#: time the block itself may wait for its packets (RFC 6364 §4.6: no decoding failure before the
+#: repair window has passed) is also the tolerance for its stragglers, so the counters lag by at
+#: most what a block given up always lagged (our own choice: a packet later than the hold time is
+#: useless to the decoder anyway).
+REORDER_TOLERANCE = 1.0
 #: Blocks awaiting settlement at once (all sessions); beyond, the oldest is settled early.  At
 #: 50 000 datagrams/s in blocks of 16 with every block losing a packet, 1 s holds ~3 000 blocks.
 MAX_PENDING_BLOCKS = 8192
