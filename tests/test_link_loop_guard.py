@@ -20,13 +20,14 @@ DATAGRAMS = 40
 
 
 def _configs(sink: tuple, receiver_link: tuple | None = None):
-    common = {"link": {"bind": f"{LOOPBACK}:0"}, "fec": {"block_size": 4, "repair": 1, "flush_ms": 20}}
+    link: dict[str, str] = {"bind": f"{LOOPBACK}:0"}
+    common = {"link": link, "fec": {"block_size": 4, "repair": 1, "flush_ms": 20}}
     if receiver_link is None:
         return parse_config(
             {"role": "receiver", "forward": f"{sink[0]}:{sink[1]}", "delivery": {"order": "in_order"}, **common},
             "test receiver",
         )
-    common["link"]["peer"] = f"{receiver_link[0]}:{receiver_link[1]}"
+    link["peer"] = f"{receiver_link[0]}:{receiver_link[1]}"
     return parse_config({"role": "sender", "listen": f"{LOOPBACK}:0", **common}, "test sender")
 
 
@@ -58,7 +59,7 @@ async def test_a_failing_in_order_stage_costs_one_read_and_is_counted():
                     raise RuntimeError("a bug in the in-order stage")
                 return push(*args, **kwargs)
 
-            receiver.order.push = fails_once  # type: ignore[method-assign]  # the fault under test
+            receiver.order.push = fails_once  # the fault under test
             for number in range(DATAGRAMS):
                 await client.sendto(b"reading %d" % number, sender.listen_address[:2])
                 await trio.sleep(0.005)
