@@ -47,7 +47,7 @@ from fecproxy.protocol.ordering import InOrderDelivery
 from fecproxy.protocol.pacer import PacketKind
 from fecproxy.protocol.sliding_encoder import SlidingEncoder
 from fecproxy.shell.app_side import SideOpenError, app_side
-from fecproxy.shell.event_log import log_core_event
+from fecproxy.shell.event_log import log_core_event, stats_fields
 from fecproxy.shell.fdlimit import ensure_open_files, files_needed
 from fecproxy.shell.freshness_link import FreshnessLink
 from fecproxy.shell.history import History
@@ -361,31 +361,35 @@ class Daemon:
             except Exception:  # a bug must cost one read, never the daemon
                 self._internal_error("decoder")
                 events = []
-            for event in events:
-                if type(event) is Delivery:  # the common case, inline: once per datagram
-                    if event.recovered:
-                        self.recovery_delay.observe(event.delay)
-                    if order is not None:
-                        _add(by_flow, order.push(event, now))
-                        continue
-                    datagrams = by_flow.get(event.flow)
-                    if datagrams is None:
-                        by_flow[event.flow] = [event.data]
+            try:  # nor may a bug in what follows the decoder (ordering, events): one read, not the daemon
+                for event in events:
+                    if type(event) is Delivery:  # the common case, inline: once per datagram
+                        if event.recovered:
+                            self.recovery_delay.observe(event.delay)
+                        if order is not None:
+                            _add(by_flow, order.push(event, now))
+                            continue
+                        datagrams = by_flow.get(event.flow)
+                        if datagrams is None:
+                            by_flow[event.flow] = [event.data]
+                        else:
+                            datagrams.append(event.data)
                     else:
-                        datagrams.append(event.data)
-                else:
-                    if type(event) is SessionStarted:
-                        if order is not None:  # the old conversations' waiting datagrams first
-                            _add(by_flow, order.reset(now, event.session, joined=event.joined))
-                        if by_flow:
-                            # What came before a peer restart belongs to the old conversations.
-                            await self.app.deliver(by_flow, now)
-                            by_flow = {}
-                    elif order is not None and type(event) is BlockReport:
-                        _add(by_flow, self._give_up(event, now))
-                    await self._handle_event(event, now)
-            if by_flow:
-                await self.app.deliver(by_flow, now)
+                        if type(event) is SessionStarted:
+                            if order is not None:  # the old conversations' waiting datagrams first
+                                _add(by_flow, order.reset(now, event.session, joined=event.joined))
+                            if by_flow:
+                                # What came before a peer restart belongs to the old conversations.
+                                await self.app.deliver(by_flow, now)
+                                by_flow = {}
+                        elif order is not None and type(event) is BlockReport:
+                            _add(by_flow, self._give_up(event, now))
+                        await self._handle_event(event, now)
+                if by_flow:
+                    await self.app.deliver(by_flow, now)
+                    by_flow = {}
+            except Exception:
+                self._internal_error("link events")
                 by_flow = {}
             stats = self.decoder.stats
             heard = stats.source_received + stats.repair_received + self.feedback.stats.received
@@ -528,27 +532,7 @@ class Daemon:
             now = self._stats_snapshot()
             delta = {key: now[key] - previous[key] for key in now}
             previous = now
-            expected = delta["lost"] + delta["received_source"]
-            log_event(
-                log,
-                logging.INFO,
-                "stats",
-                interval_s=interval,
-                datagrams_in=delta["datagrams_in"],
-                datagrams_out=delta["delivered"],
-                link_packets_in=delta["received_source"] + delta["received_repair"],
-                link_packets_out=delta["source_sent"] + delta["repair_sent"],
-                # Ratios of the interval's source datagrams; "-" when the peer sent none.
-                link_loss=round(delta["lost"] / expected, 6) if expected else "-",
-                residual_loss=round(delta["unrecovered"] / expected, 6) if expected else "-",
-                recovered=delta["recovered"],
-                dropped=delta["dropped"],
-                oversize=delta["oversize"],
-                **{key: delta[key] for key in ("air_bytes", "queue_dropped") if key in delta},
-                **self._stats_states(),
-                # In order only: datagrams that waited behind a gap, and gaps skipped.
-                **{key: delta[key] for key in ("held", "gaps_skipped") if key in delta},
-            )
+            log_event(log, logging.INFO, "stats", **stats_fields(interval, delta, self._stats_states()))
 
     def _stats_snapshot(self) -> dict[str, int]:
         counts = self.summary()

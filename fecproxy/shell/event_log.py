@@ -145,3 +145,26 @@ def log_core_event(event: object, repair: int) -> None:
         )
     elif isinstance(event, ReportsResumed):
         log_event(log, logging.INFO, "loss_reports_resumed", m=repair)
+
+
+def stats_fields(interval: float, delta: dict[str, int], states: dict[str, object]) -> dict[str, object]:
+    """The periodic ``stats`` line's fields: the counters' change over the interval, then the
+    states now (flows, peer, far end)."""
+    expected = delta["lost"] + delta["received_source"]
+    return dict(
+        interval_s=interval,
+        datagrams_in=delta["datagrams_in"],
+        datagrams_out=delta["delivered"],
+        link_packets_in=delta["received_source"] + delta["received_repair"],
+        link_packets_out=delta["source_sent"] + delta["repair_sent"],
+        # Ratios of the interval's source datagrams; "-" when the peer sent none.
+        link_loss=round(delta["lost"] / expected, 6) if expected else "-",
+        residual_loss=round(delta["unrecovered"] / expected, 6) if expected else "-",
+        recovered=delta["recovered"],
+        dropped=delta["dropped"],
+        oversize=delta["oversize"],
+        **{key: delta[key] for key in ("air_bytes", "queue_dropped") if key in delta},
+        **states,
+        # In order only: datagrams that waited behind a gap, and gaps skipped.
+        **{key: delta[key] for key in ("held", "gaps_skipped") if key in delta},
+    )
