@@ -240,6 +240,9 @@ def test_update_applies_from_next_block():
     enc = BlockEncoder(EncoderSettings(block_size=2, repair=1), session=1)
     out = enc.send(b"a", 0, 0)
     enc.update(EncoderSettings(block_size=3, repair=2))
+    # The open block keeps its shape; what a reload logs is the next block's (no old m beside a new k).
+    assert (enc.settings.block_size, enc.settings.repair) == (2, 1)
+    assert (enc.next_settings.block_size, enc.next_settings.repair) == (3, 2)
     out += enc.send(b"b", 0, 0)
     assert len(out) == 3  # old block: 2 + 1
     for _ in range(3):

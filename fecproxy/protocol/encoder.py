@@ -208,6 +208,12 @@ class BlockEncoder:
         return self._settings
 
     @property
+    def next_settings(self) -> EncoderSettings:
+        """The settings the next block takes (after :meth:`update`, while an open block keeps its
+        own): what a reload applies, so what its log line must show."""
+        return self._settings
+
+    @property
     def sbn(self) -> int:
         """Number of the oldest open block, or of the next block when none is open."""
         return next(iter(self._by_sbn)) if self._by_sbn else self._next_sbn

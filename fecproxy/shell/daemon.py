@@ -506,7 +506,7 @@ class Daemon:
                 window_ms=round(sliding.window_age * 1000),
                 repair_interval=sliding.repair_interval,
             )
-        return dict(k=cfg.fec.block_size, m=encoder.settings.repair)
+        return dict(k=cfg.fec.block_size, m=encoder.next_settings.repair)  # from the next block on
 
     def _apply_keys(self, new: Config) -> None:
         """New keys from the reloaded config: sent with from the next packet on, accepted at
